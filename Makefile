@@ -1,0 +1,32 @@
+# Two entry points for a fresh machine: `make demo` and `make test`.
+# Both create .venv and install flipfix with its pinned ranges first.
+PYTHON ?= python3
+VENV := .venv
+BIN := $(VENV)/bin
+STAMP := $(VENV)/.installed
+
+.PHONY: demo test bench bench-quick proto clean
+
+$(STAMP): pyproject.toml
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/pip install --quiet --upgrade pip
+	$(BIN)/pip install --quiet -e '.[test]'
+	touch $(STAMP)
+
+demo: $(STAMP)
+	$(BIN)/flipfix demo
+
+test: $(STAMP)
+	$(BIN)/python -m pytest -q
+
+bench: $(STAMP)
+	$(BIN)/python -m bench.run
+
+bench-quick: $(STAMP)
+	$(BIN)/python -m bench.run --quick
+
+proto: $(STAMP)
+	$(BIN)/python scripts/generate_proto.py
+
+clean:
+	rm -rf $(VENV) build *.egg-info

@@ -1,0 +1,357 @@
+"""The problem: a binary quadratic model in 0/1 form with an explicit variable order.
+
+Energy of an assignment ``x`` in {0,1}^n::
+
+    E(x) = offset + sum_i linear[i] x_i + sum_{i<j} J_ij x_i x_j
+
+``J`` is held as a symmetric CSR adjacency (each pair stored in both rows with
+the full coefficient ``J_ij``), so a single-flip update touches only the
+neighbours of the flipped variable.
+
+SPIN input (s in {-1,+1}) is converted exactly with s = 2x - 1; the caller's
+vartype is remembered so results can be reported back in it.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any, Hashable, Iterable, Mapping, Sequence
+
+import numpy as np
+
+from .errors import InputError
+
+__all__ = ["Problem", "Decision", "BINARY", "SPIN", "check_label"]
+
+BINARY = "BINARY"
+SPIN = "SPIN"
+VARTYPES = (BINARY, SPIN)
+
+
+def check_label(label: Any, field_name: str) -> Hashable:
+    """Labels are str or int (not bool); anything else is an error naming the field."""
+    if isinstance(label, bool) or not isinstance(label, (str, int, np.integer)):
+        raise InputError(field_name, f"label {label!r} must be a string or an integer")
+    return int(label) if isinstance(label, np.integer) else label
+
+
+def _finite(value: Any, field_name: str) -> float:
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        raise InputError(field_name, f"{value!r} is not a number") from None
+    if not math.isfinite(v):
+        raise InputError(field_name, f"{value!r} is not finite")
+    return v
+
+
+@dataclass(frozen=True)
+class Decision:
+    """An integer decision encoded in bits (see :mod:`repair.encodings`).
+
+    ``encoding`` is ``"one_hot"`` (k bits for k values) or ``"domain_wall"``
+    (k-1 bits for k values); ``variables`` are bit labels in order and
+    ``values`` the k values the decision can take.
+    """
+
+    name: str
+    encoding: str
+    variables: tuple
+    values: tuple
+
+
+@dataclass(frozen=True, eq=False)
+class Problem:
+    """A binary quadratic model held in 0/1 form.
+
+    Attributes:
+        labels: tuple of n labels; position i is variable i.
+        linear: float64 (n,) linear biases (0/1 form).
+        indptr, indices, data: CSR of the symmetric coupling matrix J,
+            int64 (n+1,), int32 (nnz,), float64 (nnz,); no diagonal entries.
+        offset: constant term (0/1 form).
+        vartype: the vartype the caller speaks ("BINARY" or "SPIN").
+        decisions: integer decisions declared over the bits (may be empty).
+    """
+
+    labels: tuple
+    linear: np.ndarray
+    indptr: np.ndarray
+    indices: np.ndarray
+    data: np.ndarray
+    offset: float
+    vartype: str = BINARY
+    decisions: tuple = ()
+    index: dict = field(default_factory=dict, repr=False)
+
+    # ------------------------------------------------------------------ build
+    @classmethod
+    def from_terms(
+        cls,
+        linear: Mapping[Hashable, float] | Iterable[tuple[Hashable, float]],
+        quadratic: Iterable[tuple[Hashable, Hashable, float]],
+        *,
+        offset: float = 0.0,
+        vartype: str = BINARY,
+        labels: Sequence[Hashable] | None = None,
+        decisions: Sequence[Decision] = (),
+        field_prefix: str = "",
+    ) -> "Problem":
+        """Build from label-keyed terms in the caller's vartype.
+
+        ``labels`` fixes the variable order; by default it is the order of
+        first appearance in ``linear`` and then ``quadratic``. Duplicate
+        quadratic pairs are summed (as dimod does); a pair (u, u) is an error.
+        """
+        p = field_prefix
+        if vartype not in VARTYPES:
+            raise InputError(p + "vartype", f"must be one of {VARTYPES}, got {vartype!r}")
+        lin_items = list(linear.items()) if isinstance(linear, Mapping) else list(linear)
+        quad_items = list(quadratic)
+        index: dict = {}
+        order: list = []
+        if labels is not None:
+            for pos, lab in enumerate(labels):
+                lab = check_label(lab, f"{p}labels[{pos}]")
+                if lab in index:
+                    raise InputError(f"{p}labels[{pos}]", f"duplicate label {lab!r}")
+                index[lab] = len(order)
+                order.append(lab)
+
+        def locate(lab: Any, fname: str) -> int:
+            lab = check_label(lab, fname)
+            if lab not in index:
+                if labels is not None:
+                    raise InputError(fname, f"unknown label {lab!r}")
+                index[lab] = len(order)
+                order.append(lab)
+            return index[lab]
+
+        lin_pos: list[int] = []
+        lin_val: list[float] = []
+        seen_lin: set = set()
+        for k, (lab, bias) in enumerate(lin_items):
+            fname = f"{p}linear[{lab!r}]"
+            i = locate(lab, fname)
+            if i in seen_lin:
+                raise InputError(fname, f"duplicate label {lab!r}")
+            seen_lin.add(i)
+            lin_pos.append(i)
+            lin_val.append(_finite(bias, fname))
+        rows: list[int] = []
+        cols: list[int] = []
+        vals: list[float] = []
+        for k, term in enumerate(quad_items):
+            fname = f"{p}quadratic[{k}]"
+            try:
+                u, v, bias = term
+            except (TypeError, ValueError):
+                raise InputError(fname, "must be [u, v, bias]") from None
+            i = locate(u, fname)
+            j = locate(v, fname)
+            if i == j:
+                raise InputError(fname, f"self-loop on {u!r}: put it in linear instead")
+            rows.append(i)
+            cols.append(j)
+            vals.append(_finite(bias, fname))
+        n = len(order)
+        h = np.zeros(n, dtype=np.float64)
+        np.add.at(h, np.asarray(lin_pos, dtype=np.int64), np.asarray(lin_val, dtype=np.float64))
+        return cls._assemble(
+            order, h, np.asarray(rows, dtype=np.int64), np.asarray(cols, dtype=np.int64),
+            np.asarray(vals, dtype=np.float64), _finite(offset, p + "offset"), vartype,
+            tuple(decisions), p,
+        )
+
+    @classmethod
+    def _assemble(cls, order, h, rows, cols, vals, offset, vartype, decisions, p=""):
+        """Convert to 0/1 form if needed, symmetrise, merge duplicates, build CSR."""
+        n = len(order)
+        if vartype == SPIN:
+            # s = 2x - 1:  h s = 2h x - h ;  J s_i s_j = 4J x_i x_j - 2J x_i - 2J x_j + J
+            h_b = 2.0 * h
+            offset = offset - float(h.sum()) + float(vals.sum())
+            np.add.at(h_b, rows, -2.0 * vals)
+            np.add.at(h_b, cols, -2.0 * vals)
+            vals = 4.0 * vals
+            h = h_b
+        a = np.minimum(rows, cols)
+        b = np.maximum(rows, cols)
+        key = a * max(n, 1) + b
+        uniq, inv = np.unique(key, return_inverse=True)
+        summed = np.zeros(uniq.size, dtype=np.float64)
+        np.add.at(summed, inv, vals)
+        keep = summed != 0.0
+        ua, ub, uv = uniq[keep] // max(n, 1), uniq[keep] % max(n, 1), summed[keep]
+        r = np.concatenate([ua, ub])
+        c = np.concatenate([ub, ua])
+        v = np.concatenate([uv, uv])
+        order_idx = np.lexsort((c, r))
+        r, c, v = r[order_idx], c[order_idx], v[order_idx]
+        indptr = np.zeros(n + 1, dtype=np.int64)
+        np.add.at(indptr, r + 1, 1)
+        indptr = np.cumsum(indptr)
+        prob = cls(
+            labels=tuple(order), linear=h.astype(np.float64), indptr=indptr,
+            indices=c.astype(np.int32), data=v.astype(np.float64), offset=float(offset),
+            vartype=vartype, decisions=tuple(decisions),
+            index={lab: i for i, lab in enumerate(order)},
+        )
+        if decisions:
+            from .encodings import validate_decisions  # local: encodings imports model
+
+            validate_decisions(prob, field_prefix=p + "decisions")
+        return prob
+
+    @classmethod
+    def from_bqm(cls, bqm, *, decisions: Sequence[Decision] = ()) -> "Problem":
+        """From a ``dimod.BinaryQuadraticModel`` (BINARY or SPIN); order = ``bqm.variables``."""
+        import dimod
+
+        if not isinstance(bqm, dimod.BinaryQuadraticModel):
+            raise InputError("bqm", f"expected a dimod.BinaryQuadraticModel, got {type(bqm).__name__}")
+        vartype = SPIN if bqm.vartype is dimod.SPIN else BINARY
+        labels = list(bqm.variables)
+        return cls.from_terms(
+            list(bqm.linear.items()), [(u, v, b) for (u, v), b in bqm.quadratic.items()],
+            offset=float(bqm.offset), vartype=vartype, labels=labels, decisions=decisions,
+        )
+
+    @classmethod
+    def from_matrix(
+        cls, Q, *, labels: Sequence[Hashable] | None = None, vartype: str = BINARY,
+        offset: float = 0.0, decisions: Sequence[Decision] = (),
+    ) -> "Problem":
+        """From a dense array or a scipy.sparse matrix Q (n, n).
+
+        Energy = offset + sum_i Q_ii v_i + sum_{i != j} Q_ij v_i v_j, i.e. v^T Q v
+        for BINARY (upper, lower or symmetric Q alike: both triangles count).
+        """
+        if hasattr(Q, "tocoo"):
+            coo = Q.tocoo()
+            n0, n1 = coo.shape
+            r, c, v = (np.asarray(coo.row, np.int64), np.asarray(coo.col, np.int64),
+                       np.asarray(coo.data, np.float64))
+        else:
+            arr = np.asarray(Q, dtype=np.float64)
+            if arr.ndim != 2:
+                raise InputError("Q", f"must be a 2-D matrix, got shape {arr.shape}")
+            n0, n1 = arr.shape
+            r, c = np.nonzero(arr)
+            v = arr[r, c]
+        if n0 != n1:
+            raise InputError("Q", f"must be square, got shape {(n0, n1)}")
+        if not np.all(np.isfinite(v)):
+            raise InputError("Q", "contains NaN or infinite entries")
+        n = n0
+        if labels is None:
+            labels = list(range(n))
+        elif len(labels) != n:
+            raise InputError("labels", f"has {len(labels)} labels for a {n}x{n} matrix")
+        diag = r == c
+        h = np.zeros(n, dtype=np.float64)
+        np.add.at(h, r[diag], v[diag])
+        quad = [(labels[i], labels[j], b) for i, j, b in zip(r[~diag], c[~diag], v[~diag])]
+        return cls.from_terms(
+            [(labels[i], h[i]) for i in range(n)], quad, offset=offset,
+            vartype=vartype, labels=labels, decisions=decisions,
+        )
+
+    # -------------------------------------------------------------- inspect
+    @property
+    def n(self) -> int:
+        return len(self.labels)
+
+    @property
+    def num_interactions(self) -> int:
+        return int(self.indices.size // 2)
+
+    def pairs(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Upper-triangle couplings: (i int64 (m,), j int64 (m,), J float64 (m,)) with i < j."""
+        rows = np.repeat(np.arange(self.n, dtype=np.int64), np.diff(self.indptr))
+        cols = self.indices.astype(np.int64)
+        up = rows < cols
+        return rows[up], cols[up], self.data[up]
+
+    def energies(self, X: np.ndarray) -> np.ndarray:
+        """Energy of each row of X (int8 (K, n), 0/1) -> float64 (K,)."""
+        X = np.asarray(X)
+        if X.ndim == 1:
+            X = X[None, :]
+        Xf = X.astype(np.float64)
+        i, j, J = self.pairs()
+        e = self.offset + Xf @ self.linear
+        if J.size:
+            e = e + (Xf[:, i] * Xf[:, j]) @ J
+        return e
+
+    def local_fields(self, X: np.ndarray) -> np.ndarray:
+        """h_i + sum_j J_ij x_j for every row of X: float64 (K, n)."""
+        X = np.asarray(X, dtype=np.float64)
+        if X.ndim == 1:
+            X = X[None, :]
+        out = np.tile(self.linear, (X.shape[0], 1))
+        nnz = self.data.size
+        if nnz:
+            # one zero column past the end so every row start is a valid index
+            contrib = np.zeros((X.shape[0], nnz + 1))
+            contrib[:, :nnz] = X[:, self.indices] * self.data  # (K, nnz)
+            nonempty = np.diff(self.indptr) > 0
+            sums = np.add.reduceat(contrib, self.indptr[:-1], axis=1)  # empty rows: junk
+            out += np.where(nonempty, sums, 0.0)
+        return out
+
+    def flip_costs(self, X: np.ndarray) -> np.ndarray:
+        """Energy change of flipping each single variable: float64 (K, n)."""
+        X = np.asarray(X)
+        if X.ndim == 1:
+            X = X[None, :]
+        return (1.0 - 2.0 * X.astype(np.float64)) * self.local_fields(X)
+
+    # ------------------------------------------------------------- vartype
+    def to_caller(self, X: np.ndarray) -> np.ndarray:
+        """0/1 values -> the caller's vartype values (int8, same shape)."""
+        X = np.asarray(X, dtype=np.int8)
+        return (2 * X - 1).astype(np.int8) if self.vartype == SPIN else X.copy()
+
+    def from_caller(self, values: np.ndarray, field_name: str = "values") -> np.ndarray:
+        """Caller's vartype values -> 0/1 int8; values outside the vartype are an error."""
+        arr = np.asarray(values)
+        allowed = (-1, 1) if self.vartype == SPIN else (0, 1)
+        if arr.size and not np.all(np.isin(arr, allowed)):
+            bad = arr[~np.isin(arr, allowed)].ravel()[0]
+            raise InputError(field_name, f"value {bad!r} is not {self.vartype} (allowed {allowed})")
+        if self.vartype == SPIN:
+            return ((arr.astype(np.int64) + 1) // 2).astype(np.int8)
+        return arr.astype(np.int8)
+
+    def value_to_bit(self, value: Any, field_name: str) -> int:
+        """One caller-vartype value -> 0/1, with a field-named error."""
+        allowed = (-1, 1) if self.vartype == SPIN else (0, 1)
+        if isinstance(value, bool):
+            value = int(value)
+        if not isinstance(value, (int, np.integer, float)) or value not in allowed:
+            raise InputError(field_name, f"value {value!r} is not {self.vartype} (allowed {allowed})")
+        return int((int(value) + 1) // 2) if self.vartype == SPIN else int(value)
+
+    def lookup(self, label: Any, field_name: str) -> int:
+        """Label -> position, with a field-named error for unknown labels."""
+        if isinstance(label, bool) or not isinstance(label, (str, int, np.integer)):
+            raise InputError(field_name, f"label {label!r} must be a string or an integer")
+        try:
+            return self.index[label]
+        except KeyError:
+            raise InputError(field_name, f"unknown variable {label!r}") from None
+
+    def to_bqm(self):
+        """The model as a ``dimod.BinaryQuadraticModel`` in the caller's vartype."""
+        import dimod
+
+        i, j, J = self.pairs()
+        bqm = dimod.BinaryQuadraticModel(
+            {self.labels[k]: self.linear[k] for k in range(self.n)},
+            {(self.labels[a], self.labels[b]): w for a, b, w in zip(i, j, J)},
+            self.offset, dimod.BINARY,
+        )
+        return bqm.change_vartype(dimod.SPIN, inplace=False) if self.vartype == SPIN else bqm

@@ -1,0 +1,141 @@
+"""Result objects of a repair run (plain data; no transport types)."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+__all__ = ["Solution", "AuditRow", "RepairResult", "ParetoPoint", "STATUSES", "METHODS"]
+
+#: optimal: proved optimal by CP-SAT over the whole search space (no radius);
+#: feasible: a feasible answer without a proof; infeasible: proved that no
+#: assignment meets the hard constraints; no_feasible_found: none found in the budget.
+STATUSES = ("optimal", "feasible", "infeasible", "no_feasible_found")
+METHODS = ("portfolio", "greedy", "cpsat")
+
+
+@dataclass
+class Solution:
+    """One repaired assignment.
+
+    ``x`` is int8 (n,) in 0/1 form; ``assignment`` maps labels to values in the
+    caller's vartype. ``cost`` = ``base_energy`` + sum of ``penalties``;
+    ``objective`` = cost + flip_price * flips (what the search minimised).
+    ``flips`` = Hamming distance from candidate ``candidate_id``.
+    ``changes`` lists integer-level changes ``(decision, old, new)`` when the
+    problem declares decisions; ``decisions_changed`` counts them.
+    """
+
+    candidate_id: str
+    x: np.ndarray
+    assignment: dict
+    cost: float
+    objective: float
+    base_energy: float
+    penalties: dict
+    flips: int
+    feasible: bool
+    violation: float
+    violations: dict
+    method: str
+    changes: list = field(default_factory=list)
+    decisions_changed: int = 0
+
+
+@dataclass
+class AuditRow:
+    """Repair figures of one candidate."""
+
+    candidate_id: str
+    cost_before: float
+    feasible_before: bool
+    cost_after: float
+    objective_after: float
+    flips: int
+    feasible: bool
+    violation: float
+    method: str
+    seconds: float
+    decisions_changed: int = 0
+
+
+@dataclass(frozen=True)
+class ParetoPoint:
+    """A non-dominated (cost, flips) pair and where it came from."""
+
+    cost: float
+    flips: int
+    candidate_id: str
+    method: str
+
+
+@dataclass
+class RepairResult:
+    """Outcome of :func:`repair.repair`; never raised, always returned.
+
+    ``best`` is the cheapest feasible solution (ties: fewer flips), or, when
+    none is feasible, the least-violating assignment found. ``audit`` has one
+    row per candidate in library order. ``scaling_error`` is the largest
+    absolute error made when CP-SAT coefficients were scaled to integers
+    (0.0 when no scaling was needed or CP-SAT did not run).
+    """
+
+    status: str
+    best: Solution
+    audit: list
+    seed: int
+    method: str
+    seconds: float
+    message: str = ""
+    pareto: list = field(default_factory=list)
+    scaling_error: float = 0.0
+    cpsat_status: str = ""
+    stats: dict = field(default_factory=dict)
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready form (the CLI prints this)."""
+        b = self.best
+
+        def num(v):
+            return float(v)
+
+        return {
+            "status": self.status,
+            "message": self.message,
+            "method": self.method,
+            "seed": self.seed,
+            "seconds": round(self.seconds, 6),
+            "scaling_error": self.scaling_error,
+            "cpsat_status": self.cpsat_status,
+            "best": {
+                "candidate_id": b.candidate_id,
+                "cost": num(b.cost),
+                "objective": num(b.objective),
+                "base_energy": num(b.base_energy),
+                "penalties": {k: num(v) for k, v in b.penalties.items()},
+                "flips": int(b.flips),
+                "feasible": bool(b.feasible),
+                "violation": num(b.violation),
+                "violations": {k: num(v) for k, v in b.violations.items()},
+                "method": b.method,
+                "assignment": {str(k) if not isinstance(k, int) else k: int(v)
+                               for k, v in b.assignment.items()},
+                "changes": [{"decision": d, "old": o, "new": nw} for d, o, nw in b.changes],
+                "decisions_changed": int(b.decisions_changed),
+            },
+            "audit": [
+                {
+                    "candidate_id": r.candidate_id, "cost_before": num(r.cost_before),
+                    "feasible_before": bool(r.feasible_before), "cost": num(r.cost_after),
+                    "objective": num(r.objective_after), "flips": int(r.flips),
+                    "feasible": bool(r.feasible), "violation": num(r.violation),
+                    "method": r.method, "seconds": round(r.seconds, 6),
+                    "decisions_changed": int(r.decisions_changed),
+                }
+                for r in self.audit
+            ],
+            "pareto": [{"cost": num(p.cost), "flips": int(p.flips), "candidate_id": p.candidate_id,
+                        "method": p.method} for p in self.pareto],
+        }
