@@ -363,7 +363,8 @@ def constraint_parsers() -> dict[str, Parser]:
     except ImportError:
         return parsers
     for name, fn in getattr(encodings, "CONSTRAINT_PARSERS", {}).items():
-        parsers.setdefault(name, fn)
+        # encodings' parsers take (obj, field); decision names are checked when lowered
+        parsers.setdefault(name, lambda obj, problem, field, fn=fn: fn(obj, field))
     return parsers
 
 
