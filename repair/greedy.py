@@ -1,0 +1,531 @@
+"""Greedy repair: batched steepest descent by single flips and pair moves.
+
+For every candidate, independently and deterministically:
+
+1. pin the fixed variables;
+2. restore feasibility with the least cost: while a hard row is violated, take
+   the flip (or, when no single flip helps, the pair of flips) with the lowest
+   objective change per unit of violation removed;
+3. descend: take the feasible single flip with the most negative objective
+   change; when none improves and hard rows exist, try pair moves (one variable
+   up, one down, both in the same row) so equality rows can still move; stop at
+   a local minimum.
+
+The objective is the compiled QUBO plus the non-linear count penalties plus
+``flip_price`` times the Hamming distance from the candidate. ``max_flips``
+caps that distance (a hard radius).
+
+Cost per flip update is O(degree): local fields, count-penalty term states and
+row activities are updated only where the flipped variable appears. With no
+hard rows, count penalties or radius, the best flip is kept in a min segment
+tree, so a step costs O(degree * log n) instead of an O(n) scan.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass
+
+import numba as nb
+import numpy as np
+
+from .compiled import FEAS_TOL, Compiled
+
+__all__ = ["GreedyOutput", "greedy_repair", "descend_qubo"]
+
+_INF = np.inf
+
+
+@dataclass
+class GreedyOutput:
+    """X: int8 (K, n) repaired assignments; steps: int64 (K,) moves taken;
+    done: bool (K,) whether the candidate was processed within the budget;
+    seconds: float64 (K,) time spent on each candidate (its chunk's share)."""
+
+    X: np.ndarray
+    steps: np.ndarray
+    done: np.ndarray
+    seconds: np.ndarray
+
+
+# ---------------------------------------------------------------- fast path
+@nb.njit(cache=True)
+def _tree_set(tree_v, tree_i, size, pos, value):
+    k = size + pos
+    tree_v[k] = value
+    k >>= 1
+    while k >= 1:
+        a = 2 * k
+        b = a + 1
+        if tree_v[b] < tree_v[a]:
+            tree_v[k] = tree_v[b]
+            tree_i[k] = tree_i[b]
+        else:
+            tree_v[k] = tree_v[a]
+            tree_i[k] = tree_i[a]
+        k >>= 1
+
+
+@nb.njit(cache=True)
+def _descend_tree(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, steps_out):
+    """Steepest descent on a pure QUBO (+ fixings, + flip price), in place on X (K, n)."""
+    K, n = X.shape
+    size = 1
+    while size < n:
+        size *= 2
+    tree_v = np.empty(2 * size)
+    tree_i = np.empty(2 * size, dtype=np.int64)
+    field = np.empty(n)
+    for k in range(K):
+        x = X[k]
+        o = origin[k]
+        for i in range(n):
+            if fixed[i] >= 0 and x[i] != fixed[i]:
+                x[i] = fixed[i]
+        for i in range(n):
+            f = h[i]
+            for p in range(indptr[i], indptr[i + 1]):
+                f += data[p] * x[indices[p]]
+            field[i] = f
+        for p in range(2 * size):
+            tree_v[p] = _INF
+            tree_i[p] = 0
+        for i in range(size):
+            tree_i[size + i] = i
+        for i in range(n):
+            if fixed[i] < 0:
+                d = (1.0 - 2.0 * x[i]) * field[i]
+                d += price if x[i] == o[i] else -price
+                tree_v[size + i] = d
+        for p in range(size - 1, 0, -1):
+            a = 2 * p
+            if tree_v[a + 1] < tree_v[a]:
+                tree_v[p] = tree_v[a + 1]
+                tree_i[p] = tree_i[a + 1]
+            else:
+                tree_v[p] = tree_v[a]
+                tree_i[p] = tree_i[a]
+        steps = 0
+        while steps < max_steps and tree_v[1] < -tol:
+            i = tree_i[1]
+            s = 1.0 - 2.0 * x[i]  # +1 for 0 -> 1
+            x[i] = 1 - x[i]
+            d = (1.0 - 2.0 * x[i]) * field[i]
+            d += price if x[i] == o[i] else -price
+            _tree_set(tree_v, tree_i, size, i, d)
+            for p in range(indptr[i], indptr[i + 1]):
+                j = indices[p]
+                field[j] += s * data[p]
+                if fixed[j] < 0:
+                    dj = (1.0 - 2.0 * x[j]) * field[j]
+                    dj += price if x[j] == o[j] else -price
+                    _tree_set(tree_v, tree_i, size, j, dj)
+            steps += 1
+        steps_out[k] = steps
+
+
+# -------------------------------------------------------------- general path
+@nb.njit(cache=True)
+def _row_viol(act, lo, hi, tol):
+    v = 0.0
+    if act < lo:
+        v = lo - act
+    elif act > hi:
+        v = act - hi
+    return v if v > tol else 0.0
+
+
+@nb.njit(cache=True)
+def _eval_flip(i, x, o, field, dcount, sat, act, dist,
+               cp_ptr, cp_table, term_pen, term_coef, term_arity, lit_ptr, lit_var, lit_val,
+               vt_ptr, vt_term, vt_lit,
+               col_ptr, col_row, col_val, lo, hi, rtol, price, dd):
+    """(objective change, violation change, new distance) of flipping variable i."""
+    xi = x[i]
+    dobj = (1.0 - 2.0 * xi) * field[i]
+    # count penalties: term t containing i changes its satisfied-literal count by +-1
+    for q in range(vt_ptr[i], vt_ptr[i + 1]):
+        t = vt_term[q]
+        lit = vt_lit[q]
+        a = term_arity[t]
+        s = sat[t]
+        before = 1 if s == a else 0
+        s2 = s - 1 if xi == lit_val[lit] else s + 1
+        after = 1 if s2 == a else 0
+        dd[term_pen[t]] += term_coef[t] * (after - before)
+    for q in range(vt_ptr[i], vt_ptr[i + 1]):
+        pen = term_pen[vt_term[q]]
+        if dd[pen] != 0:
+            base = cp_ptr[pen]
+            d0 = dcount[pen]
+            dobj += cp_table[base + d0 + dd[pen]] - cp_table[base + d0]
+            dd[pen] = 0
+    dviol = 0.0
+    sgn = 1.0 - 2.0 * xi
+    for q in range(col_ptr[i], col_ptr[i + 1]):
+        r = col_row[q]
+        a0 = act[r]
+        a1 = a0 + sgn * col_val[q]
+        dviol += _row_viol(a1, lo[r], hi[r], rtol[r]) - _row_viol(a0, lo[r], hi[r], rtol[r])
+    nd = dist + 1 if xi == o[i] else dist - 1
+    dobj += price * (nd - dist)
+    return dobj, dviol, nd
+
+
+@nb.njit(cache=True)
+def _apply_flip(i, x, o, field, dcount, sat, act, dist,
+                indptr, indices, data, term_pen, term_coef, term_arity, lit_val,
+                vt_ptr, vt_term, vt_lit, col_ptr, col_row, col_val):
+    xi = x[i]
+    sgn = 1.0 - 2.0 * xi
+    for q in range(vt_ptr[i], vt_ptr[i + 1]):
+        t = vt_term[q]
+        a = term_arity[t]
+        s = sat[t]
+        before = 1 if s == a else 0
+        s2 = s - 1 if xi == lit_val[vt_lit[q]] else s + 1
+        sat[t] = s2
+        after = 1 if s2 == a else 0
+        dcount[term_pen[t]] += term_coef[t] * (after - before)
+    for p in range(indptr[i], indptr[i + 1]):
+        field[indices[p]] += sgn * data[p]
+    for q in range(col_ptr[i], col_ptr[i + 1]):
+        act[col_row[q]] += sgn * col_val[q]
+    x[i] = 1 - xi
+    return dist + 1 if xi == o[i] else dist - 1
+
+
+@nb.njit(cache=True)
+def _total_viol(act, lo, hi, rtol):
+    v = 0.0
+    for r in range(act.size):
+        v += _row_viol(act[r], lo[r], hi[r], rtol[r])
+    return v
+
+
+@nb.njit(cache=True)
+def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, radius,
+                     cp_ptr, cp_table, cp_const, term_pen, term_coef, term_arity, lit_ptr,
+                     lit_var, lit_val, vt_ptr, vt_term, vt_lit,
+                     a_ptr, a_col, a_val, col_ptr, col_row, col_val, lo, hi, rtol,
+                     pair_width, steps_out):
+    K, n = X.shape
+    P = cp_const.size
+    T = term_pen.size
+    m = lo.size
+    field = np.empty(n)
+    dcount = np.empty(P, dtype=np.int64)
+    sat = np.empty(T, dtype=np.int64)
+    act = np.empty(m)
+    dd = np.zeros(P, dtype=np.int64)
+    free = np.empty(n, dtype=np.int64)
+    nfree = 0
+    for i in range(n):
+        if fixed[i] < 0:
+            free[nfree] = i
+            nfree += 1
+    up_i = np.empty(pair_width, dtype=np.int64)
+    up_v = np.empty(pair_width)
+    dn_i = np.empty(pair_width, dtype=np.int64)
+    dn_v = np.empty(pair_width)
+    vtol = 1e-12
+    for k in range(K):
+        x = X[k]
+        o = origin[k]
+        for i in range(n):
+            if fixed[i] >= 0 and x[i] != fixed[i]:
+                x[i] = fixed[i]
+        dist = 0
+        for i in range(n):
+            if x[i] != o[i]:
+                dist += 1
+        for i in range(n):
+            f = h[i]
+            for p in range(indptr[i], indptr[i + 1]):
+                f += data[p] * x[indices[p]]
+            field[i] = f
+        for p in range(P):
+            dcount[p] = cp_const[p]
+        for t in range(T):
+            s = 0
+            for q in range(lit_ptr[t], lit_ptr[t + 1]):
+                if x[lit_var[q]] == lit_val[q]:
+                    s += 1
+            sat[t] = s
+            if s == term_arity[t]:
+                dcount[term_pen[t]] += term_coef[t]
+        for r in range(m):
+            a = 0.0
+            for q in range(a_ptr[r], a_ptr[r + 1]):
+                a += a_val[q] * x[a_col[q]]
+            act[r] = a
+        steps = 0
+        # ---- phase 1: restore feasibility at least cost per unit of violation
+        viol = _total_viol(act, lo, hi, rtol)
+        while viol > 0.0 and steps < max_steps:
+            best = _INF
+            bi = -1
+            for f in range(nfree):
+                i = free[f]
+                dobj, dviol, nd = _eval_flip(
+                    i, x, o, field, dcount, sat, act, dist, cp_ptr, cp_table, term_pen,
+                    term_coef, term_arity, lit_ptr, lit_var, lit_val, vt_ptr, vt_term, vt_lit,
+                    col_ptr, col_row, col_val, lo, hi, rtol, price, dd)
+                if dviol < -vtol and (nd <= radius or nd < dist):
+                    score = dobj / (-dviol)
+                    if score < best:
+                        best = score
+                        bi = i
+            if bi >= 0:
+                dist = _apply_flip(bi, x, o, field, dcount, sat, act, dist, indptr, indices,
+                                   data, term_pen, term_coef, term_arity, lit_val, vt_ptr,
+                                   vt_term, vt_lit, col_ptr, col_row, col_val)
+                steps += 1
+                viol = _total_viol(act, lo, hi, rtol)
+                continue
+            # no single flip helps: pairs (i in a violated row, j anywhere)
+            bj = -1
+            for r in range(m):
+                if _row_viol(act[r], lo[r], hi[r], rtol[r]) == 0.0:
+                    continue
+                for q in range(a_ptr[r], a_ptr[r + 1]):
+                    i = a_col[q]
+                    if fixed[i] >= 0:
+                        continue
+                    dobj_i, dv_i, nd_i = _eval_flip(
+                        i, x, o, field, dcount, sat, act, dist, cp_ptr, cp_table, term_pen,
+                        term_coef, term_arity, lit_ptr, lit_var, lit_val, vt_ptr, vt_term,
+                        vt_lit, col_ptr, col_row, col_val, lo, hi, rtol, price, dd)
+                    d1 = _apply_flip(i, x, o, field, dcount, sat, act, dist, indptr, indices,
+                                     data, term_pen, term_coef, term_arity, lit_val, vt_ptr,
+                                     vt_term, vt_lit, col_ptr, col_row, col_val)
+                    for f in range(nfree):
+                        j = free[f]
+                        if j == i:
+                            continue
+                        dobj_j, dv_j, nd_j = _eval_flip(
+                            j, x, o, field, dcount, sat, act, d1, cp_ptr, cp_table, term_pen,
+                            term_coef, term_arity, lit_ptr, lit_var, lit_val, vt_ptr, vt_term,
+                            vt_lit, col_ptr, col_row, col_val, lo, hi, rtol, price, dd)
+                        dv = dv_i + dv_j
+                        if dv < -vtol and (nd_j <= radius or nd_j < dist):
+                            score = (dobj_i + dobj_j) / (-dv)
+                            if score < best:
+                                best = score
+                                bi = i
+                                bj = j
+                    _apply_flip(i, x, o, field, dcount, sat, act, d1, indptr, indices, data,
+                                term_pen, term_coef, term_arity, lit_val, vt_ptr, vt_term,
+                                vt_lit, col_ptr, col_row, col_val)
+            if bi < 0:
+                break  # stuck: report the least-violating point reached
+            for v in (bi, bj):
+                dist = _apply_flip(v, x, o, field, dcount, sat, act, dist, indptr, indices,
+                                   data, term_pen, term_coef, term_arity, lit_val, vt_ptr,
+                                   vt_term, vt_lit, col_ptr, col_row, col_val)
+            steps += 1
+            viol = _total_viol(act, lo, hi, rtol)
+        if viol > 0.0:
+            steps_out[k] = steps
+            continue
+        # ---- phase 2: feasible steepest descent, single flips then pair moves
+        while steps < max_steps:
+            best = -tol
+            bi = -1
+            for f in range(nfree):
+                i = free[f]
+                dobj, dviol, nd = _eval_flip(
+                    i, x, o, field, dcount, sat, act, dist, cp_ptr, cp_table, term_pen,
+                    term_coef, term_arity, lit_ptr, lit_var, lit_val, vt_ptr, vt_term, vt_lit,
+                    col_ptr, col_row, col_val, lo, hi, rtol, price, dd)
+                if dobj < best and dviol <= vtol and (nd <= radius or nd < dist):
+                    best = dobj
+                    bi = i
+            if bi >= 0:
+                dist = _apply_flip(bi, x, o, field, dcount, sat, act, dist, indptr, indices,
+                                   data, term_pen, term_coef, term_arity, lit_val, vt_ptr,
+                                   vt_term, vt_lit, col_ptr, col_row, col_val)
+                steps += 1
+                continue
+            if m == 0:
+                break
+            # pair moves inside each row: the best few "up" and "down" variables
+            bj = -1
+            for r in range(m):
+                nu = 0
+                ndn = 0
+                for q in range(a_ptr[r], a_ptr[r + 1]):
+                    i = a_col[q]
+                    if fixed[i] >= 0:
+                        continue
+                    dobj, dviol, nd = _eval_flip(
+                        i, x, o, field, dcount, sat, act, dist, cp_ptr, cp_table, term_pen,
+                        term_coef, term_arity, lit_ptr, lit_var, lit_val, vt_ptr, vt_term,
+                        vt_lit, col_ptr, col_row, col_val, lo, hi, rtol, price, dd)
+                    if x[i] == 0:
+                        ids, vals, cnt = up_i, up_v, nu
+                    else:
+                        ids, vals, cnt = dn_i, dn_v, ndn
+                    # keep the pair_width lowest dobj (insertion into a short sorted list)
+                    if cnt < pair_width or dobj < vals[cnt - 1]:
+                        pos = cnt if cnt < pair_width else pair_width - 1
+                        while pos > 0 and vals[pos - 1] > dobj:
+                            vals[pos] = vals[pos - 1]
+                            ids[pos] = ids[pos - 1]
+                            pos -= 1
+                        vals[pos] = dobj
+                        ids[pos] = i
+                        if cnt < pair_width:
+                            cnt += 1
+                    if x[i] == 0:
+                        nu = cnt
+                    else:
+                        ndn = cnt
+                for a in range(nu):
+                    i = up_i[a]
+                    dobj_i, dv_i, nd_i = _eval_flip(
+                        i, x, o, field, dcount, sat, act, dist, cp_ptr, cp_table, term_pen,
+                        term_coef, term_arity, lit_ptr, lit_var, lit_val, vt_ptr, vt_term,
+                        vt_lit, col_ptr, col_row, col_val, lo, hi, rtol, price, dd)
+                    d1 = _apply_flip(i, x, o, field, dcount, sat, act, dist, indptr, indices,
+                                     data, term_pen, term_coef, term_arity, lit_val, vt_ptr,
+                                     vt_term, vt_lit, col_ptr, col_row, col_val)
+                    for b in range(ndn):
+                        j = dn_i[b]
+                        dobj_j, dv_j, nd_j = _eval_flip(
+                            j, x, o, field, dcount, sat, act, d1, cp_ptr, cp_table, term_pen,
+                            term_coef, term_arity, lit_ptr, lit_var, lit_val, vt_ptr, vt_term,
+                            vt_lit, col_ptr, col_row, col_val, lo, hi, rtol, price, dd)
+                        tot = dobj_i + dobj_j
+                        if (tot < best and dv_i + dv_j <= vtol
+                                and (nd_j <= radius or nd_j < dist)):
+                            best = tot
+                            bi = i
+                            bj = j
+                    _apply_flip(i, x, o, field, dcount, sat, act, d1, indptr, indices, data,
+                                term_pen, term_coef, term_arity, lit_val, vt_ptr, vt_term,
+                                vt_lit, col_ptr, col_row, col_val)
+            if bi < 0:
+                break
+            for v in (bi, bj):
+                dist = _apply_flip(v, x, o, field, dcount, sat, act, dist, indptr, indices,
+                                   data, term_pen, term_coef, term_arity, lit_val, vt_ptr,
+                                   vt_term, vt_lit, col_ptr, col_row, col_val)
+            steps += 1
+        steps_out[k] = steps
+
+
+# ------------------------------------------------------------------ driver
+def _count_arrays(compiled: Compiled, n: int):
+    """Flatten the count penalties into the kernel's arrays."""
+    tables, consts, t_pen, t_coef, t_ar, l_ptr, l_var, l_val = [], [], [], [], [], [0], [], []
+    for p, spec in enumerate(compiled.counts):
+        tables.append(np.asarray(spec.table, dtype=np.float64))
+        consts.append(spec.const)
+        for coef, lits in spec.terms:
+            t_pen.append(p)
+            t_coef.append(coef)
+            t_ar.append(len(lits))
+            for i, b in lits:
+                l_var.append(i)
+                l_val.append(b)
+            l_ptr.append(len(l_var))
+    cp_ptr = np.zeros(len(tables) + 1, dtype=np.int64)
+    cp_ptr[1:] = np.cumsum([t.size for t in tables]) if tables else []
+    cp_table = np.concatenate(tables) if tables else np.zeros(0)
+    l_var_a = np.asarray(l_var, dtype=np.int64)
+    lit_term = np.repeat(np.arange(len(t_pen), dtype=np.int64), np.diff(np.asarray(l_ptr)))
+    order = np.argsort(l_var_a, kind="stable")
+    vt_ptr = np.zeros(n + 1, dtype=np.int64)
+    np.add.at(vt_ptr, l_var_a + 1, 1)
+    vt_ptr = np.cumsum(vt_ptr)
+    return (cp_ptr, cp_table, np.asarray(consts, dtype=np.int64),
+            np.asarray(t_pen, dtype=np.int64), np.asarray(t_coef, dtype=np.int64),
+            np.asarray(t_ar, dtype=np.int64), np.asarray(l_ptr, dtype=np.int64), l_var_a,
+            np.asarray(l_val, dtype=np.int8), vt_ptr, lit_term[order], order.astype(np.int64))
+
+
+def _row_arrays(compiled: Compiled, n: int):
+    """Rows as CSR and CSC plus a per-row tolerance."""
+    a_ptr, a_col, a_val = compiled.a_indptr, compiled.a_indices.astype(np.int64), compiled.a_data
+    rows = np.repeat(np.arange(a_ptr.size - 1, dtype=np.int64), np.diff(a_ptr))
+    order = np.argsort(a_col, kind="stable")
+    col_ptr = np.zeros(n + 1, dtype=np.int64)
+    np.add.at(col_ptr, a_col + 1, 1)
+    col_ptr = np.cumsum(col_ptr)
+    rtol = np.asarray([FEAS_TOL * (1.0 + np.abs(r.coef).sum()) for r in compiled.rows],
+                      dtype=np.float64)
+    return a_ptr, a_col, a_val, col_ptr, rows[order], a_val[order], rtol
+
+
+def _objective_tol(compiled: Compiled) -> float:
+    scale = max(np.abs(compiled.h).max(initial=0.0), np.abs(compiled.data).max(initial=0.0), 1.0)
+    return 1e-9 * scale
+
+
+def descend_qubo(h, indptr, indices, data, X0, *, fixed=None, flip_price: float = 0.0,
+                 tol: float = 1e-9, max_steps: int | None = None):
+    """Steepest single-flip descent on a QUBO (CSR couplings) from every row of X0 (int8 (K, n)).
+
+    Returns (X int8 (K, n), steps int64 (K,)). The fast path behind greedy_repair.
+    """
+    X = np.array(X0, dtype=np.int8, copy=True, order="C")
+    n = X.shape[1]
+    fixed = np.full(n, -1, dtype=np.int8) if fixed is None else np.asarray(fixed, dtype=np.int8)
+    steps = np.zeros(X.shape[0], dtype=np.int64)
+    _descend_tree(X, X0.astype(np.int8), np.asarray(h, np.float64), np.asarray(indptr, np.int64),
+                  np.asarray(indices, np.int32), np.asarray(data, np.float64), fixed,
+                  float(flip_price), float(tol), int(max_steps or 100 * n + 1000), steps)
+    return X, steps
+
+
+def greedy_repair(compiled: Compiled, X0: np.ndarray, *, max_flips: int | None = None,
+                  flip_price: float = 0.0, deadline: float | None = None, cancel=None,
+                  chunk: int = 64, pair_width: int = 6, progress=None) -> GreedyOutput:
+    """Repair every row of X0 (int8 (K, n), 0/1) greedily on the compiled late problem.
+
+    ``deadline`` is a ``time.perf_counter()`` value; candidates not reached by then
+    (or after ``cancel`` is set) are returned unchanged with ``done`` False.
+    ``progress(done, total)`` is called after each chunk.
+    """
+    X0 = np.ascontiguousarray(X0, dtype=np.int8)
+    K, n = X0.shape
+    X = X0.copy()
+    steps = np.zeros(K, dtype=np.int64)
+    done = np.zeros(K, dtype=bool)
+    seconds = np.zeros(K)
+    radius = n if max_flips is None else int(max_flips)
+    tol = _objective_tol(compiled)
+    max_steps = 100 * n + 1000
+    fast = not compiled.counts and not compiled.rows and radius >= n
+    if not fast:
+        cnt = _count_arrays(compiled, n)
+        rows = _row_arrays(compiled, n)
+    for start in range(0, K, chunk):
+        if (cancel is not None and cancel.is_set()) or (
+                deadline is not None and start > 0 and time.perf_counter() > deadline):
+            break
+        t0 = time.perf_counter()
+        sl = slice(start, min(K, start + chunk))
+        Xc = X[sl].copy()
+        st = np.zeros(Xc.shape[0], dtype=np.int64)
+        if fast:
+            _descend_tree(Xc, X0[sl], compiled.h, compiled.indptr, compiled.indices,
+                          compiled.data, compiled.fixed, float(flip_price), tol, max_steps, st)
+        else:
+            (cp_ptr, cp_table, cp_const, t_pen, t_coef, t_ar, l_ptr, l_var, l_val, vt_ptr,
+             vt_term, vt_lit) = cnt
+            a_ptr, a_col, a_val, col_ptr, col_row, col_val, rtol = rows
+            _descend_general(Xc, X0[sl], compiled.h, compiled.indptr, compiled.indices,
+                             compiled.data, compiled.fixed, float(flip_price), tol, max_steps,
+                             radius, cp_ptr, cp_table, cp_const, t_pen, t_coef, t_ar, l_ptr,
+                             l_var, l_val, vt_ptr, vt_term, vt_lit, a_ptr, a_col, a_val,
+                             col_ptr, col_row, col_val, compiled.lo, compiled.hi, rtol,
+                             int(pair_width), st)
+        X[sl] = Xc
+        steps[sl] = st
+        done[sl] = True
+        seconds[sl] = (time.perf_counter() - t0) / Xc.shape[0]
+        if progress is not None:
+            progress(int(done.sum()), K)
+    return GreedyOutput(X=X, steps=steps, done=done, seconds=seconds)

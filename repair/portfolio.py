@@ -1,0 +1,193 @@
+"""Search plans: greedy only, CP-SAT per candidate, and the portfolio of both.
+
+A plan returns :class:`Attempt` records (one repaired assignment each, tied to the
+candidate it started from); :mod:`repair.api` scores them and builds the result.
+
+Portfolio, within a budget of T seconds:
+
+1. greedy repair of every candidate (it may use up to 60% of T);
+2. local branching: CP-SAT around the candidates whose greedy results rank best,
+   each hinted with its greedy result, within ``greedy flips + margin`` of the
+   candidate (or within ``max_flips``) — half of what is left;
+3. an unhinted CP-SAT search of the whole late problem, asked only for solutions
+   better than the best so far — the rest. A hint alone tends to keep CP-SAT in
+   the hinted basin, so this search runs without one; if it proves that nothing
+   better exists, the answer is optimal.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .compiled import Compiled
+from .cpsat import solve_cpsat
+from .greedy import greedy_repair
+
+__all__ = ["Attempt", "PlanOutcome", "run_plan"]
+
+#: share of the budget greedy may take inside the portfolio; neighbourhoods get half the rest.
+GREEDY_SHARE = 0.6
+NEIGHBOURHOODS = 3
+
+
+@dataclass
+class Attempt:
+    """One repaired assignment: x int8 (n,), from candidate ``k``, by ``method``."""
+
+    k: int
+    x: np.ndarray
+    method: str
+    seconds: float
+
+
+@dataclass
+class PlanOutcome:
+    attempts: list
+    proven_optimal: bool = False
+    proven_infeasible: bool = False
+    cpsat_status: str = ""
+    scaling_error: float = 0.0
+    stats: dict = field(default_factory=dict)
+
+
+def _objective(compiled: Compiled, X: np.ndarray, X0: np.ndarray, price: float):
+    ev = compiled.evaluate(X)
+    flips = (X != X0).sum(axis=1)
+    return ev, ev.cost + price * flips, flips
+
+
+def _ranked(feasible: np.ndarray, objective: np.ndarray) -> np.ndarray:
+    """Indices ordered: feasible first, then by objective (stable)."""
+    return np.lexsort((objective, ~feasible))
+
+
+def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: float,
+             max_flips: int | None, flip_price: float, seed: int, workers: int,
+             cancel=None, progress=None) -> PlanOutcome:
+    """Run one plan on the candidates X0 (int8 (K, n)); see the module docstring."""
+    t0 = time.perf_counter()
+    deadline = t0 + time_limit
+    K, n = X0.shape
+    out = PlanOutcome(attempts=[])
+    report = progress or (lambda **kw: None)
+
+    def stopped() -> bool:
+        return (cancel is not None and cancel.is_set()) or time.perf_counter() >= deadline
+
+    if method == "cpsat":
+        _per_candidate_cpsat(compiled, X0, out, deadline=deadline, max_flips=max_flips,
+                             flip_price=flip_price, seed=seed, workers=workers, cancel=cancel,
+                             report=report)
+        return out
+
+    g_deadline = deadline if method == "greedy" else t0 + GREEDY_SHARE * time_limit
+    g = greedy_repair(compiled, X0, max_flips=max_flips, flip_price=flip_price,
+                      deadline=g_deadline, cancel=cancel,
+                      progress=lambda d, tot: report(done=d, total=tot, phase="greedy"))
+    for k in range(K):
+        out.attempts.append(Attempt(k, g.X[k], "greedy" if g.done[k] else "unrepaired",
+                                    float(g.seconds[k])))
+    out.stats["greedy_done"] = int(g.done.sum())
+    out.stats["greedy_moves"] = int(g.steps.sum())
+    if method == "greedy" or stopped():
+        return out
+
+    ev, obj, flips = _objective(compiled, g.X, X0, flip_price)
+    order = [int(k) for k in _ranked(ev.feasible, obj) if g.done[k]]
+    seen: set = set()
+    tops = []
+    for k in order:
+        key = g.X[k].tobytes()
+        if key not in seen:
+            seen.add(key)
+            tops.append(k)
+        if len(tops) == NEIGHBOURHOODS:
+            break
+    margin = int(np.clip(n // 10, 5, 50))
+    best_obj = float(obj[tops[0]]) if tops and ev.feasible[tops[0]] else None
+    # ---- stage 2: neighbourhoods of the best candidates, hinted with their greedy result
+    share = (deadline - time.perf_counter()) / 2.0 / max(1, len(tops))
+    for rank, k in enumerate(tops):
+        if stopped():
+            break
+        radius = max_flips if max_flips is not None else min(n, int(flips[k]) + margin)
+        budget = min(share, deadline - time.perf_counter())
+        r = solve_cpsat(compiled, hint=g.X[k], center=X0[k], radius=radius,
+                        flip_price=flip_price, time_limit=budget, workers=workers,
+                        seed=seed + rank, cancel=cancel)
+        out.scaling_error = max(out.scaling_error, r.scaling_error)
+        out.cpsat_status = r.status
+        if r.x is not None:
+            out.attempts.append(Attempt(k, r.x, "cpsat", r.seconds))
+            if best_obj is None or r.objective < best_obj:
+                best_obj = r.objective
+        report(done=K, total=K, phase="neighbourhood", best_cost=best_obj)
+    # ---- stage 3: the whole problem, unhinted, only improving solutions
+    if stopped():
+        return out
+    anchor = tops[0] if tops else 0
+    full_space = max_flips is None
+    upper = None
+    if best_obj is not None:
+        upper = best_obj - max(1e-9, 1e-9 * abs(best_obj))
+    r = solve_cpsat(compiled, hint=None, center=X0[anchor],
+                    radius=None if full_space else max_flips, flip_price=flip_price,
+                    upper=upper, time_limit=deadline - time.perf_counter(), workers=workers,
+                    seed=seed + NEIGHBOURHOODS, cancel=cancel)
+    out.scaling_error = max(out.scaling_error, r.scaling_error)
+    out.cpsat_status = r.status
+    out.stats["full_search_status"] = r.status
+    if r.x is not None:
+        # attribute an unhinted answer to the candidate nearest to it
+        near = int(np.argmin((X0 != r.x).sum(axis=1))) if not flip_price else anchor
+        out.attempts.append(Attempt(near, r.x, "cpsat", r.seconds))
+        if r.status == "optimal" and full_space and not flip_price and r.scaling_error == 0.0:
+            out.proven_optimal = True
+    elif r.status == "infeasible" and full_space and r.scaling_error == 0.0:
+        if upper is None:
+            out.proven_infeasible = True
+        elif not flip_price:
+            out.proven_optimal = True  # nothing better than best_obj exists
+    report(done=K, total=K, phase="full", best_cost=best_obj)
+    return out
+
+
+def _per_candidate_cpsat(compiled, X0, out, *, deadline, max_flips, flip_price, seed, workers,
+                         cancel, report):
+    """CP-SAT from each candidate (hinted with it), best-ranked candidates first."""
+    K = X0.shape[0]
+    ev, obj, _ = _objective(compiled, X0, X0, 0.0)
+    order = [int(k) for k in _ranked(ev.feasible, obj)]
+    reached = np.zeros(K, dtype=bool)
+    statuses = []
+    overrun = 0.0  # how far past its limit a solve ran, on average (set-up, presolve)
+    for pos, k in enumerate(order):
+        left = deadline - time.perf_counter()
+        if left <= overrun + 0.005 or (cancel is not None and cancel.is_set()):
+            break
+        budget = max(0.005, left / (K - pos) - overrun)
+        r = solve_cpsat(compiled, hint=X0[k], center=X0[k], radius=max_flips,
+                        flip_price=flip_price, time_limit=budget, workers=workers,
+                        seed=seed, cancel=cancel)
+        reached[k] = True
+        overrun = (overrun * pos + max(0.0, r.seconds - budget)) / (pos + 1)
+        statuses.append(r.status)
+        out.scaling_error = max(out.scaling_error, r.scaling_error)
+        out.cpsat_status = r.status
+        if r.x is not None:
+            out.attempts.append(Attempt(k, r.x, "cpsat", r.seconds))
+        else:
+            out.attempts.append(Attempt(k, X0[k].copy(), "unrepaired", r.seconds))
+        report(done=pos + 1, total=K, phase="cpsat")
+        full = max_flips is None and r.scaling_error == 0.0
+        if full and r.status == "optimal" and not flip_price:
+            out.proven_optimal = True
+        if full and r.status == "infeasible":
+            out.proven_infeasible = True
+    for k in np.flatnonzero(~reached):
+        out.attempts.append(Attempt(int(k), X0[k].copy(), "unrepaired", 0.0))
+    if flip_price and statuses and all(s == "optimal" for s in statuses) and reached.all():
+        out.proven_optimal = max_flips is None and out.scaling_error == 0.0
