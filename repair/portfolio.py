@@ -23,7 +23,6 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .compiled import Compiled
-from .cpsat import solve_cpsat
 from .greedy import greedy_repair
 
 __all__ = ["Attempt", "PlanOutcome", "run_plan"]
@@ -62,6 +61,13 @@ def _objective(compiled: Compiled, X: np.ndarray, X0: np.ndarray, price: float):
 def _ranked(feasible: np.ndarray, objective: np.ndarray) -> np.ndarray:
     """Indices ordered: feasible first, then by objective (stable)."""
     return np.lexsort((objective, ~feasible))
+
+
+def solve_cpsat(*args, **kwargs):
+    """CP-SAT (imported on first use: ortools brings protobuf, which plain greedy runs avoid)."""
+    from .cpsat import solve_cpsat as _solve
+
+    return _solve(*args, **kwargs)
 
 
 def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: float,
@@ -144,9 +150,9 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: flo
         # attribute an unhinted answer to the candidate nearest to it
         near = int(np.argmin((X0 != r.x).sum(axis=1))) if not flip_price else anchor
         out.attempts.append(Attempt(near, r.x, "cpsat", r.seconds))
-        if r.status == "optimal" and full_space and not flip_price and r.scaling_error == 0.0:
+        if r.status == "optimal" and full_space and not flip_price:
             out.proven_optimal = True
-    elif r.status == "infeasible" and full_space and r.scaling_error == 0.0:
+    elif r.status == "infeasible" and full_space:
         if upper is None:
             out.proven_infeasible = True
         elif not flip_price:
@@ -182,7 +188,7 @@ def _per_candidate_cpsat(compiled, X0, out, *, deadline, max_flips, flip_price, 
         else:
             out.attempts.append(Attempt(k, X0[k].copy(), "unrepaired", r.seconds))
         report(done=pos + 1, total=K, phase="cpsat")
-        full = max_flips is None and r.scaling_error == 0.0
+        full = max_flips is None
         if full and r.status == "optimal" and not flip_price:
             out.proven_optimal = True
         if full and r.status == "infeasible":
@@ -190,4 +196,4 @@ def _per_candidate_cpsat(compiled, X0, out, *, deadline, max_flips, flip_price, 
     for k in np.flatnonzero(~reached):
         out.attempts.append(Attempt(int(k), X0[k].copy(), "unrepaired", 0.0))
     if flip_price and statuses and all(s == "optimal" for s in statuses) and reached.all():
-        out.proven_optimal = max_flips is None and out.scaling_error == 0.0
+        out.proven_optimal = max_flips is None

@@ -79,7 +79,8 @@ class RepairResult:
     none is feasible, the least-violating assignment found. ``audit`` has one
     row per candidate in library order. ``scaling_error`` is the largest
     absolute error made when CP-SAT coefficients were scaled to integers
-    (0.0 when no scaling was needed or CP-SAT did not run).
+    (0.0 when no scaling was needed or CP-SAT did not run); "optimal" means
+    optimal for the scaled model, so within that error per coefficient.
     """
 
     status: str

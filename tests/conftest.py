@@ -1,0 +1,28 @@
+"""Shared test helpers: paths to the public benchmark files and small random models."""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+
+def _find_benchmarks() -> Path:
+    for base in (ROOT.parent / "shared" / "benchmarks", ROOT / ".." / "shared" / "benchmarks"):
+        if base.is_dir():
+            return base.resolve()
+    return ROOT.parent / "shared" / "benchmarks"
+
+
+BENCHMARKS = _find_benchmarks()
+
+
+@pytest.fixture(scope="session")
+def benchmarks() -> Path:
+    if not BENCHMARKS.is_dir():
+        pytest.fail(f"public benchmark files not found at {BENCHMARKS}")
+    return BENCHMARKS
