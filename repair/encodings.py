@@ -44,7 +44,7 @@ __all__ = [
     "ONE_HOT", "DOMAIN_WALL", "ENCODINGS", "DISTANCES",
     "validate_decisions", "encoding_pieces", "decision_bits",
     "decode_indices", "decode", "check_candidates", "EncodingIssue", "integer_changes",
-    "encode", "unary_terms", "pair_terms", "validity_penalty",
+    "encode", "codewords", "unary_terms", "pair_terms", "validity_penalty",
     "ForbidValues", "ForceValue", "AllowValues", "DecisionChangePenalty",
     "parse_decisions", "CONSTRAINT_PARSERS",
 ]
@@ -349,6 +349,11 @@ def encode(d: Decision, m: int) -> np.ndarray:
     else:
         bits = (np.arange(len(d.values) - 1) < m).astype(np.int8)
     return bits
+
+
+def codewords(d: Decision) -> np.ndarray:
+    """The valid bit string of every value: int8 (k, len(variables)), row m encodes ``values[m]``."""
+    return np.vstack([encode(d, m) for m in range(len(d.values))]).astype(np.int8)
 
 
 def _decode_block(d: Decision, B: np.ndarray) -> np.ndarray:
