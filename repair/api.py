@@ -115,6 +115,12 @@ def _build(problem, candidates, compiled, attempts, price, method, seed, t0, *, 
         seconds[a.k] += a.seconds
     for a_idx in order:
         chosen.setdefault(int(ks[a_idx]), int(a_idx))
+    issues: dict = {}
+    if problem.decisions:  # broken encodings are repair input; the audit names them
+        from .encodings import check_candidates
+
+        for i in check_candidates(problem, X0):
+            issues.setdefault(i.candidate, []).append((i.decision, i.how))
     audit = []
     for k in range(K):
         a_idx = chosen[k]
@@ -125,7 +131,7 @@ def _build(problem, candidates, compiled, attempts, price, method, seed, t0, *, 
             objective_after=float(obj[a_idx]), flips=int(flips[a_idx]),
             feasible=bool(feas[a_idx]), violation=float(ev.violation[a_idx]),
             method=attempts[a_idx].method, seconds=float(seconds[k]),
-            decisions_changed=changed))
+            decisions_changed=changed, encoding_issues=issues.get(k, [])))
     b = int(order[0])
     bk = int(ks[b])
     changes = _changes(problem, X0[bk], A[b])

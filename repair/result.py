@@ -59,6 +59,8 @@ class AuditRow:
     method: str
     seconds: float
     decisions_changed: int = 0
+    #: ``[(decision, how)]`` for each decision whose bits broke its encoding before repair
+    encoding_issues: list = field(default_factory=list)
 
 
 @dataclass(frozen=True)
@@ -134,6 +136,7 @@ class RepairResult:
                     "feasible": bool(r.feasible), "violation": num(r.violation),
                     "method": r.method, "seconds": round(r.seconds, 6),
                     "decisions_changed": int(r.decisions_changed),
+                    "encoding_issues": [{"decision": d, "how": h} for d, h in r.encoding_issues],
                 }
                 for r in self.audit
             ],

@@ -357,6 +357,11 @@ def test_every_repaired_answer_decodes_validly(method, encoding):
     assert res.best.flips == int((res.best.x != X[cands.ids.index(res.best.candidate_id)]).sum())
     row = res.audit[cands.ids.index(res.best.candidate_id)]
     assert row.decisions_changed == len(want) and row.flips == res.best.flips
+    # the audit names every broken (candidate, decision), and says how
+    for k, row in enumerate(res.audit):
+        assert row.encoding_issues == [(i.decision, i.how) for i in issues if i.candidate == f"r{k}"]
+    assert res.to_dict()["audit"][0]["encoding_issues"] == [
+        {"decision": d, "how": h} for d, h in res.audit[0].encoding_issues]
 
 
 def test_equivalence_one_hot_and_domain_wall():
