@@ -145,10 +145,10 @@ def free_variable_counts(problem: Problem, X, *, epsilon: float = 0.0,
 
 def codewords(decision: Decision) -> np.ndarray:
     """Bit patterns of a decision's values: int8 (k, m), row v encodes ``values[v]``
-    (the encoder's convention, :func:`repair.encodings.encode`)."""
-    from .encodings import encode  # local: encodings imports model
+    (the encoder's convention: :func:`repair.encodings.codewords`)."""
+    from .encodings import codewords as encoder_codewords  # local: encodings imports model
 
-    return np.vstack([encode(decision, v) for v in range(len(decision.values))]).astype(np.int8)
+    return np.asarray(encoder_codewords(decision), dtype=np.int8)
 
 
 def decision_move_costs(problem: Problem, X, decision: Decision, *,

@@ -209,3 +209,49 @@ def test_bad_family_names_the_field(kw, field):
     with pytest.raises(InputError) as err:
         draw_scenarios(p, cs, ScenarioFamily(**kw), count=2)
     assert err.value.field == field
+
+
+def test_audit_cli_end_to_end(tmp_path):
+    import json
+
+    from repair.documents import problem_document
+    from service.audit_cli import main
+
+    groups = [6, 10]
+    p = planted(groups)
+    X = np.vstack([state(p, groups, bits) for bits in itertools.product([0, 1], repeat=2)])
+    (tmp_path / "p.json").write_text(json.dumps(problem_document(p)))
+    cands = [{"id": f"k{k}", "assignment": {str(lab): int(v) for lab, v in zip(p.labels, row)}}
+             for k, row in enumerate(X)]
+    (tmp_path / "c.json").write_text(json.dumps(cands))
+    png, js = tmp_path / "a.png", tmp_path / "a.json"
+    rc = main(["audit", str(tmp_path / "p.json"), str(tmp_path / "c.json"), "--scenarios", "6",
+               "--weight", str(W), "--epsilon", str(ALPHA), "--keep", "2", "--pareto-methods",
+               "greedy", "--png", str(png), "--json", str(js)])
+    assert rc == 0
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # the PNG signature
+    doc = json.loads(js.read_text())
+    assert [c["free_variables"] for c in doc["stress"]["candidates"]] == [0, 10, 6, 16]
+    assert doc["stress"]["scenarios_done"] == 6 and len(doc["curation"]["kept_ids"]) == 2
+    pts = [(q["cost"], q["flips"]) for q in doc["pareto"]]
+    assert all(a[1] < b[1] and a[0] > b[0] for a, b in zip(pts, pts[1:]))
+
+
+@pytest.mark.parametrize("extra, field", [(["--weight", "-2"], "--weight"),
+                                          (["--keep", "9"], "--keep"),
+                                          (["--scenarios", "0"], "--scenarios")])
+def test_audit_cli_bad_option_names_it(tmp_path, capsys, extra, field):
+    import json
+
+    from repair.documents import problem_document
+    from service.audit_cli import main
+
+    p = planted([3])
+    (tmp_path / "p.json").write_text(json.dumps(problem_document(p)))
+    row = state(p, [3], [1])
+    (tmp_path / "c.json").write_text(json.dumps(
+        [{"id": "a", "assignment": {str(lab): int(v) for lab, v in zip(p.labels, row)}}]))
+    rc = main(["audit", str(tmp_path / "p.json"), str(tmp_path / "c.json"), "--pareto-methods",
+               "greedy", "--scenarios", "2"] + extra)
+    assert rc == 2
+    assert f"error: {field}:" in capsys.readouterr().err
