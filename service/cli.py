@@ -1,0 +1,262 @@
+"""The ``flipfix`` command.
+
+    flipfix serve  [--port 50051] [--db flipfix.sqlite3] [--workers 1] [limits...]
+    flipfix repair PROBLEM.json CANDIDATES.json CONSTRAINTS.json [--method M] [--time-limit S]
+                   [--max-flips N] [--flip-price P] [--seed S] [--server HOST:PORT]
+    flipfix demo
+    flipfix audit ...   (when service.audit_cli is installed)
+
+``repair`` runs in-process by default and prints the result JSON on stdout
+(progress on stderr); ``--server`` sends the same files through the service. A
+malformed file gives one line ``flipfix: FILE: FIELD: what is wrong`` and exit code 2.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import re
+import signal
+import sys
+import threading
+import time
+from pathlib import Path
+
+from repair.errors import InputError
+
+__all__ = ["main", "build_parser"]
+
+EXIT_USAGE = 2  # a bad file or option (argparse uses 2 too)
+EXIT_FAILURE = 1
+
+
+class UsageError(Exception):
+    """One line for stderr, exit code 2."""
+
+
+# ------------------------------------------------------------------ helpers
+def _load_json(path: str, what: str):
+    try:
+        text = Path(path).read_text(encoding="utf-8")
+    except OSError as err:
+        raise UsageError(f"{path}: cannot read the {what} file: {err.strerror or err}") from None
+    try:
+        return json.loads(text)
+    except json.JSONDecodeError as err:
+        raise UsageError(f"{path}: not valid JSON (line {err.lineno}, column {err.colno}): "
+                         f"{err.msg}") from None
+
+
+_OPTION_FIELDS = {"method": "--method", "time_limit": "--time-limit", "max_flips": "--max-flips",
+                  "flip_price": "--flip-price", "seed": "--seed", "workers": "--workers"}
+
+
+def _blame(err: InputError, files: dict) -> str:
+    """Which file (or option) an error's field belongs to, as ``SOURCE: FIELD: message``."""
+    field = err.field
+    bare = field[len("inline."):] if field.startswith("inline.") else field
+    m = re.match(r"[A-Za-z_]*", bare)
+    head = {"model": "problem"}.get(m.group(), m.group())
+    if head in files:
+        return f"{files[head]}: {field}: {err.message}"
+    opt = field.split(".")[-1]
+    if opt in _OPTION_FIELDS:
+        return f"option {_OPTION_FIELDS[opt]}: {err.message}"
+    return f"{field}: {err.message}"
+
+
+class _Progress:
+    """Progress lines on stderr, at most a few per second."""
+
+    def __init__(self, enabled: bool):
+        self.enabled = enabled
+        self.t0 = time.monotonic()
+        self.last = 0.0
+
+    def __call__(self, done, total, best_cost, phase="") -> None:
+        now = time.monotonic()
+        if not self.enabled or now - self.last < 0.5:
+            return
+        self.last = now
+        best = "-" if best_cost is None else f"{best_cost:.6g}"
+        print(f"flipfix: {now - self.t0:6.1f}s  {phase or 'running'}: {done}/{total} candidates, "
+              f"best cost {best}", file=sys.stderr, flush=True)
+
+
+def _repair_options(args) -> dict:
+    return {"method": args.method, "time_limit": args.time_limit, "max_flips": args.max_flips,
+            "flip_price": args.flip_price, "seed": args.seed, "workers": args.workers,
+            "pareto": args.pareto}
+
+
+def cmd_repair(args) -> int:
+    files = {"problem": args.problem, "candidates": args.candidates,
+             "constraints": args.constraints}
+    docs = {k: _load_json(v, k) for k, v in files.items()}
+    show = _Progress(not args.quiet)
+    try:
+        if args.server:
+            out = _repair_remote(args, docs, show)
+        else:
+            out = _repair_local(args, docs, show)
+    except InputError as err:
+        raise UsageError(_blame(err, files)) from None
+    json.dump(out, sys.stdout, indent=2)
+    sys.stdout.write("\n")
+    return 0
+
+
+def _repair_local(args, docs: dict, show: _Progress) -> dict:
+    from repair import documents, repair
+
+    problem = documents.parse_problem(docs["problem"])
+    candidates = documents.parse_candidates(docs["candidates"], problem)
+    constraints = documents.parse_constraints(docs["constraints"], problem)
+    res = repair(problem, candidates, constraints, **_repair_options(args),
+                 progress=lambda d: show(d.get("done"), d.get("total"), d.get("best_cost"),
+                                         d.get("phase", "")))
+    return res.to_dict()
+
+
+def _repair_remote(args, docs: dict, show: _Progress) -> dict:
+    import grpc
+
+    from repair import documents
+
+    from .client import FlipfixClient
+
+    problem = documents.parse_problem(docs["problem"])  # check locally: names the file
+    documents.parse_candidates(docs["candidates"], problem)
+    documents.parse_constraints(docs["constraints"], problem)
+    budget = args.time_limit
+    timeout = None if budget is None else budget * 2 + 30.0
+    with FlipfixClient(args.server, timeout=timeout) as fx:
+        try:
+            return fx.repair(docs["problem"], docs["constraints"], candidates=docs["candidates"],
+                             **_repair_options(args),
+                             on_progress=lambda p: show(p.done, p.total,
+                                                        p.best_cost if p.HasField("best_cost") else None,
+                                                        p.phase))
+        except grpc.RpcError as err:
+            code = err.code()
+            if code == grpc.StatusCode.INVALID_ARGUMENT:
+                field, _, msg = (err.details() or "").partition(": ")
+                raise InputError(field, msg) from None
+            raise UsageError(f"server {args.server}: {code.name}: {err.details()}") from None
+
+
+def cmd_serve(args) -> int:
+    import logging
+
+    from .server import ServerConfig, create_server
+
+    logging.basicConfig(level=logging.INFO, format="%(asctime)s %(name)s %(message)s")
+    config = ServerConfig(
+        db_path=args.db, workers=args.workers, queue_size=args.queue,
+        max_message_bytes=int(args.max_message_mb * 1024 * 1024),
+        max_variables=args.max_variables, max_candidates=args.max_candidates,
+        max_constraints=args.max_constraints, default_time_limit=args.default_time_limit)
+    try:
+        srv = create_server(f"{args.host}:{args.port}", config)
+    except OSError as err:
+        raise UsageError(str(err)) from None
+    print(f"flipfix: serving on {args.host}:{srv.port} (db {args.db}, {args.workers} worker(s))",
+          file=sys.stderr, flush=True)
+
+    def stop(signum, _frame):
+        print(f"flipfix: signal {signum}: shutting down (grace {args.grace}s)", file=sys.stderr,
+              flush=True)
+        threading.Thread(target=srv.shutdown, args=(args.grace,), daemon=True).start()
+
+    signal.signal(signal.SIGTERM, stop)
+    signal.signal(signal.SIGINT, stop)
+    while not srv.wait_for_termination(0.5):
+        pass
+    print("flipfix: stopped", file=sys.stderr, flush=True)
+    return 0
+
+
+def cmd_demo(args) -> int:
+    from .demo import run_demo
+
+    return run_demo(seed=args.seed, time_limit=args.time_limit)
+
+
+# ------------------------------------------------------------------- parser
+def _positive_float(text: str) -> float:
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+    if not v > 0:
+        raise argparse.ArgumentTypeError(f"must be > 0, got {text}")
+    return v
+
+
+def build_parser() -> argparse.ArgumentParser:
+    ap = argparse.ArgumentParser(prog="flipfix", description="Repair a library of QUBO/Ising "
+                                 "solutions when a late constraint arrives.")
+    sub = ap.add_subparsers(dest="command", required=True)
+
+    s = sub.add_parser("serve", help="run the gRPC service")
+    s.add_argument("--host", default="127.0.0.1")
+    s.add_argument("--port", type=int, default=50051, help="0 picks a free port")
+    s.add_argument("--db", default="flipfix.sqlite3", help="SQLite database file")
+    s.add_argument("--workers", type=int, default=1, help="repair processes")
+    s.add_argument("--queue", type=int, default=4, help="repairs that may wait for a worker")
+    s.add_argument("--max-message-mb", type=float, default=64.0)
+    s.add_argument("--max-variables", type=int, default=100_000)
+    s.add_argument("--max-candidates", type=int, default=10_000)
+    s.add_argument("--max-constraints", type=int, default=1_000)
+    s.add_argument("--default-time-limit", type=_positive_float, default=5.0)
+    s.add_argument("--grace", type=float, default=10.0, help="seconds in-flight calls get on SIGTERM")
+    s.set_defaults(func=cmd_serve)
+
+    r = sub.add_parser("repair", help="repair the candidates of PROBLEM under CONSTRAINTS")
+    r.add_argument("problem", metavar="PROBLEM.json")
+    r.add_argument("candidates", metavar="CANDIDATES.json")
+    r.add_argument("constraints", metavar="CONSTRAINTS.json")
+    r.add_argument("--method", choices=("portfolio", "greedy", "cpsat"), default="portfolio")
+    r.add_argument("--time-limit", type=_positive_float, default=5.0, metavar="SECONDS")
+    r.add_argument("--max-flips", type=int, default=None, metavar="N")
+    r.add_argument("--flip-price", type=float, default=0.0, metavar="P")
+    r.add_argument("--seed", type=int, default=0)
+    r.add_argument("--workers", type=int, default=1, help="CP-SAT search workers")
+    r.add_argument("--pareto", action="store_true", help="also report the (cost, flips) front")
+    r.add_argument("--server", metavar="HOST:PORT", help="repair through a running service")
+    r.add_argument("--quiet", action="store_true", help="no progress on stderr")
+    r.set_defaults(func=cmd_repair)
+
+    d = sub.add_parser("demo", help="start a server, load a library, repair a late event")
+    d.add_argument("--seed", type=int, default=0)
+    d.add_argument("--time-limit", type=_positive_float, default=3.0)
+    d.set_defaults(func=cmd_demo)
+
+    try:  # the audit commands live in their own module (optional)
+        from . import audit_cli
+    except ImportError:
+        audit_cli = None
+    if audit_cli is not None:
+        audit_cli.register(sub)
+        for name, p in sub.choices.items():
+            if p.get_default("func") is None and name not in ("serve", "repair", "demo"):
+                p.set_defaults(func=audit_cli.run)
+    return ap
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    try:
+        return int(args.func(args) or 0)
+    except UsageError as err:
+        print(f"flipfix: {err}", file=sys.stderr)
+        return EXIT_USAGE
+    except InputError as err:
+        print(f"flipfix: {err.field}: {err.message}", file=sys.stderr)
+        return EXIT_USAGE
+    except KeyboardInterrupt:
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,186 @@
+"""A small Python client for the flipfix service.
+
+    with FlipfixClient("127.0.0.1:50051") as fx:
+        fx.create_problem("roster", bqm)                 # dimod BQM, Problem or JSON document
+        fx.add_candidates("roster", sampleset)           # dimod SampleSet, CandidateSet or JSON list
+        out = fx.repair("roster", [{"type": "fix", "values": {"x3": 0}}], time_limit=2.0)
+        out["best"]["cost"], out["best"]["flips"]
+
+Replies of ``repair`` are dicts in the layout of :meth:`repair.result.RepairResult.to_dict`.
+Errors are ``grpc.RpcError`` with the status codes listed in the proto.
+"""
+
+from __future__ import annotations
+
+from typing import Any, Callable, Iterable, Mapping, Sequence
+
+import grpc
+
+from repair import documents
+from repair.candidates import CandidateSet
+from repair.model import Problem
+
+from . import convert
+from .generated import flipfix_pb2 as pb
+from .generated import flipfix_pb2_grpc as pb_grpc
+
+__all__ = ["FlipfixClient"]
+
+
+def as_problem(model: Any) -> Problem:
+    """dimod BQM, :class:`Problem` or problem JSON document -> Problem."""
+    if isinstance(model, Problem):
+        return model
+    if isinstance(model, Mapping):
+        return documents.parse_problem(model)
+    return Problem.from_bqm(model)
+
+
+class FlipfixClient:
+    """Wraps the generated stub; ``target`` is ``HOST:PORT``."""
+
+    def __init__(self, target: str, *, timeout: float | None = 60.0,
+                 max_message_bytes: int = 64 * 1024 * 1024):
+        self.target = target
+        self.timeout = timeout
+        self.channel = grpc.insecure_channel(target, options=[
+            ("grpc.max_receive_message_length", max_message_bytes),
+            ("grpc.max_send_message_length", max_message_bytes)])
+        self.stub = pb_grpc.FlipfixStub(self.channel)
+
+    def close(self) -> None:
+        self.channel.close()
+
+    def __enter__(self) -> "FlipfixClient":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+    # ------------------------------------------------------------ conversion
+    @staticmethod
+    def _model(model: Any) -> tuple[pb.ProblemModel, Problem]:
+        if isinstance(model, Mapping):  # keep the document's own terms (exact)
+            return convert.doc_to_model(model), documents.parse_problem(model)
+        problem = as_problem(model)
+        return convert.problem_to_model(problem), problem
+
+    @staticmethod
+    def _candidates(problem: Problem, candidates: Any, ids: Sequence[str] | None = None
+                    ) -> list[pb.Candidate]:
+        if isinstance(candidates, CandidateSet):
+            cs = candidates
+        elif type(candidates).__name__ == "SampleSet":
+            cs = CandidateSet.from_sampleset(problem, candidates, ids=ids)
+            energies = list(candidates.record.energy)
+            out = []
+            for cid, a, e in zip(cs.ids, cs.assignments(problem), energies):
+                out.append(pb.Candidate(id=cid, assignment=convert.dict_to_assignment(a),
+                                        provenance=pb.Provenance(source="dimod.SampleSet",
+                                                                 reported_energy=float(e))))
+            return out
+        else:
+            return convert.doc_to_candidates(list(candidates), problem)
+        return [pb.Candidate(id=cid, assignment=convert.dict_to_assignment(a))
+                for cid, a in zip(cs.ids, cs.assignments(problem))]
+
+    @staticmethod
+    def _constraints(problem: Problem, constraints: Iterable[Any]) -> list[pb.Constraint]:
+        out = []
+        for k, c in enumerate(constraints or []):
+            if isinstance(c, pb.Constraint):
+                out.append(c)
+            else:
+                out.append(convert.doc_to_constraint(c, problem, field=f"constraints[{k}]"))
+        return out
+
+    # -------------------------------------------------------------- problems
+    def create_problem(self, name: str, model: Any) -> pb.ProblemInfo:
+        m, _ = self._model(model)
+        return self.stub.CreateProblem(pb.CreateProblemRequest(name=name, model=m),
+                                       timeout=self.timeout)
+
+    def replace_problem(self, name: str, model: Any, *, expected_revision: int = 0) -> pb.ProblemInfo:
+        m, _ = self._model(model)
+        return self.stub.ReplaceProblem(pb.ReplaceProblemRequest(
+            name=name, model=m, expected_revision=expected_revision), timeout=self.timeout)
+
+    def get_problem(self, name: str, revision: int = 0) -> tuple[pb.ProblemInfo, Problem]:
+        r = self.stub.GetProblem(pb.GetProblemRequest(name=name, revision=revision),
+                                 timeout=self.timeout)
+        return r.info, convert.model_to_problem(r.model)
+
+    def list_problems(self) -> list[pb.ProblemInfo]:
+        out, token = [], ""
+        while True:
+            r = self.stub.ListProblems(pb.ListProblemsRequest(page_token=token), timeout=self.timeout)
+            out.extend(r.problems)
+            token = r.next_page_token
+            if not token:
+                return out
+
+    def delete_problem(self, name: str) -> int:
+        return self.stub.DeleteProblem(pb.DeleteProblemRequest(name=name),
+                                       timeout=self.timeout).candidates_deleted
+
+    # ------------------------------------------------------------ candidates
+    def add_candidates(self, name: str, candidates: Any, *, ids: Sequence[str] | None = None
+                       ) -> list[str]:
+        """Add a dimod SampleSet, a CandidateSet or a candidates JSON list."""
+        _info, problem = self.get_problem(name)
+        protos = self._candidates(problem, candidates, ids)
+        return list(self.stub.AddCandidates(pb.AddCandidatesRequest(problem=name, candidates=protos),
+                                            timeout=self.timeout).ids)
+
+    def list_candidates(self, name: str, *, revision: int = 0, page_size: int = 0
+                        ) -> list[pb.Candidate]:
+        out, token = [], ""
+        while True:
+            r = self.stub.ListCandidates(pb.ListCandidatesRequest(
+                problem=name, page_size=page_size, page_token=token, revision=revision),
+                timeout=self.timeout)
+            out.extend(r.candidates)
+            token = r.next_page_token
+            if not token:
+                return out
+
+    def remove_candidates(self, name: str, ids: Sequence[str]) -> int:
+        return self.stub.RemoveCandidates(pb.RemoveCandidatesRequest(problem=name, ids=list(ids)),
+                                          timeout=self.timeout).removed
+
+    # ---------------------------------------------------------------- repair
+    def repair_request(self, problem: str | Any, constraints: Iterable[Any] = (), *,
+                       candidates: Any = None, candidate_ids: Sequence[str] = (),
+                       all_revisions: bool = False, **options) -> pb.RepairRequest:
+        """Build a RepairRequest: a stored problem name, or a model plus ``candidates`` inline."""
+        if isinstance(problem, str):
+            _info, dom = self.get_problem(problem)
+            req = pb.RepairRequest(problem=problem, candidate_ids=list(candidate_ids),
+                                   all_revisions=all_revisions)
+        else:
+            if candidates is None:
+                raise ValueError("an inline repair needs candidates")
+            m, dom = self._model(problem)
+            req = pb.RepairRequest(inline=pb.InlineLibrary(
+                model=m, candidates=self._candidates(dom, candidates)))
+        req.constraints.extend(self._constraints(dom, constraints))
+        req.options.CopyFrom(convert.kwargs_to_options(**options))
+        return req
+
+    def repair(self, problem: str | Any, constraints: Iterable[Any] = (), *,
+               timeout: float | None = None,
+               on_progress: Callable[[pb.RepairProgress], None] | None = None, **kwargs) -> dict:
+        """Repair and return the result dict; ``on_progress`` switches to the streaming RPC."""
+        req = self.repair_request(problem, constraints, **kwargs)
+        timeout = timeout if timeout is not None else self.timeout
+        if on_progress is None:
+            return convert.reply_to_dict(self.stub.Repair(req, timeout=timeout))
+        reply = None
+        for ev in self.stub.RepairStream(req, timeout=timeout):
+            if ev.HasField("progress"):
+                on_progress(ev.progress)
+            else:
+                reply = ev.result
+        if reply is None:
+            raise RuntimeError("the stream ended without a result")
+        return convert.reply_to_dict(reply)

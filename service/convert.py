@@ -1,0 +1,476 @@
+"""Proto <-> domain conversion: pure functions, no I/O, no grpc calls.
+
+Field names in errors follow the proto (``model.quadratic[3]``,
+``constraints[1].hamming.weight``) so a caller can find the offending field.
+JSON documents (the CLI formats) are converted through :mod:`repair.documents`
+first, so the int/str label rule is the same on every path.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from typing import Any, Hashable, Iterable, Mapping, Sequence
+
+import numpy as np
+
+from repair import documents
+from repair.candidates import CandidateSet
+from repair.constraints import (
+    ExtraTerms, FixVariables, ForbidAssignment, HammingPenalty, LinearConstraint,
+)
+from repair.encodings import AllowValues, DecisionChangePenalty, ForbidValues, ForceValue
+from repair.errors import InputError, LimitError
+from repair.model import Problem
+from repair.result import RepairResult
+
+from .generated import flipfix_pb2 as pb
+
+__all__ = [
+    "label_to_py", "py_to_label", "model_to_problem", "problem_to_model", "doc_to_model",
+    "candidates_to_arrays", "record_to_candidate", "doc_to_candidates", "constraint_to_domain",
+    "constraints_to_domain", "doc_to_constraint", "options_to_kwargs", "result_to_reply",
+    "reply_to_dict", "METHOD_NAMES", "Limits",
+]
+
+METHOD_NAMES = {pb.METHOD_UNSPECIFIED: "portfolio", pb.PORTFOLIO: "portfolio",
+                pb.GREEDY: "greedy", pb.CPSAT: "cpsat"}
+_METHOD_ENUM = {"portfolio": pb.PORTFOLIO, "greedy": pb.GREEDY, "cpsat": pb.CPSAT}
+_VARTYPE_NAMES = {pb.BINARY: "BINARY", pb.SPIN: "SPIN"}
+_SHAPE_NAMES = {pb.SHAPE_UNSPECIFIED: "linear", pb.LINEAR: "linear", pb.QUADRATIC: "quadratic",
+                pb.THRESHOLD: "threshold", pb.TABLE: "table"}
+_SHAPE_ENUM = {"linear": pb.LINEAR, "quadratic": pb.QUADRATIC, "threshold": pb.THRESHOLD,
+               "table": pb.TABLE}
+_SENSE_NAMES = {pb.LE: "<=", pb.EQ: "==", pb.GE: ">="}
+_SENSE_ENUM = {v: k for k, v in _SENSE_NAMES.items()}
+_DISTANCE_NAMES = {pb.DISTANCE_UNSPECIFIED: "changed", pb.CHANGED: "changed",
+                   pb.ABSOLUTE: "absolute"}
+_DISTANCE_ENUM = {"changed": pb.CHANGED, "absolute": pb.ABSOLUTE}
+
+
+def _value_to_py(v: pb.DecisionValue, field: str) -> Any:
+    """DecisionValue -> str | int | float (integer-decision values, issue 4)."""
+    kind = v.WhichOneof("kind")
+    if kind is None:
+        raise InputError(field, "no value set (str, int or num)")
+    return getattr(v, kind)
+
+
+def _py_to_value(v: Any) -> pb.DecisionValue:
+    if isinstance(v, str):
+        return pb.DecisionValue(str=v)
+    if isinstance(v, int) and not isinstance(v, bool):
+        return pb.DecisionValue(int=v)
+    return pb.DecisionValue(num=float(v))
+
+
+class Limits:
+    """Per-request size limits (None: unlimited); exceeding one is a LimitError."""
+
+    def __init__(self, *, max_variables: int | None = None, max_candidates: int | None = None,
+                 max_constraints: int | None = None):
+        self.max_variables = max_variables
+        self.max_candidates = max_candidates
+        self.max_constraints = max_constraints
+
+    @staticmethod
+    def _check(count: int, limit: int | None, field: str, what: str) -> None:
+        if limit is not None and count > limit:
+            raise LimitError(field, f"{count} {what} exceed the limit of {limit}")
+
+    def variables(self, n: int, field: str) -> None:
+        self._check(n, self.max_variables, field, "variables")
+
+    def candidates(self, k: int, field: str) -> None:
+        self._check(k, self.max_candidates, field, "candidates")
+
+    def constraints(self, m: int, field: str) -> None:
+        self._check(m, self.max_constraints, field, "constraints")
+
+
+NO_LIMITS = Limits()
+
+
+# ------------------------------------------------------------------ labels
+def label_to_py(label: pb.Label, field: str) -> Hashable:
+    kind = label.WhichOneof("kind")
+    if kind == "str":
+        return label.str
+    if kind == "int":
+        return int(label.int)
+    raise InputError(field, "label is empty (set str or int)")
+
+
+def py_to_label(label: Any) -> pb.Label:
+    if isinstance(label, (int, np.integer)) and not isinstance(label, bool):
+        return pb.Label(int=int(label))
+    return pb.Label(str=str(label))
+
+
+def _finite(v: float, field: str) -> float:
+    if not math.isfinite(v):
+        raise InputError(field, f"{v!r} is not finite")
+    return float(v)
+
+
+def assignment_to_dict(a: pb.Assignment, field: str) -> dict:
+    out: dict = {}
+    for k, item in enumerate(a.values):
+        lab = label_to_py(item.label, f"{field}.values[{k}].label")
+        if lab in out:
+            raise InputError(f"{field}.values[{k}]", f"variable {lab!r} given twice")
+        out[lab] = int(item.value)
+    return out
+
+
+def dict_to_assignment(mapping: Mapping) -> pb.Assignment:
+    return pb.Assignment(values=[pb.VariableValue(label=py_to_label(k), value=int(v))
+                                 for k, v in mapping.items()])
+
+
+# ----------------------------------------------------------------- problems
+def model_to_problem(model: pb.ProblemModel, *, field: str = "model",
+                     limits: Limits = NO_LIMITS) -> Problem:
+    """A ProblemModel -> validated :class:`Problem`."""
+    if model.vartype not in _VARTYPE_NAMES:
+        raise InputError(field + ".vartype", "must be BINARY or SPIN")
+    lin = [(label_to_py(t.label, f"{field}.linear[{k}].label"),
+            _finite(t.bias, f"{field}.linear[{k}].bias")) for k, t in enumerate(model.linear)]
+    quad = [(label_to_py(t.u, f"{field}.quadratic[{k}].u"), label_to_py(t.v, f"{field}.quadratic[{k}].v"),
+             _finite(t.bias, f"{field}.quadratic[{k}].bias")) for k, t in enumerate(model.quadratic)]
+    labels = [label_to_py(lab, f"{field}.labels[{k}]") for k, lab in enumerate(model.labels)] or None
+    n_seen = len(labels) if labels else len({lab for lab, _ in lin} | {x for u, v, _ in quad for x in (u, v)})
+    limits.variables(n_seen, field)
+    decisions = ()
+    if model.decisions_json:
+        try:
+            obj = json.loads(model.decisions_json)
+        except ValueError as err:
+            raise InputError(field + ".decisions_json", f"is not JSON: {err}") from None
+        if obj:
+            try:
+                from repair import encodings
+            except ImportError:
+                raise InputError(field + ".decisions_json",
+                                 "integer decisions need repair.encodings, which is not available") from None
+            decisions = tuple(encodings.parse_decisions(obj, field + ".decisions_json"))
+    return Problem.from_terms(lin, quad, offset=_finite(model.offset, field + ".offset"),
+                              vartype=_VARTYPE_NAMES[model.vartype], labels=labels,
+                              decisions=decisions, field_prefix=field + ".")
+
+
+def problem_to_model(problem: Problem) -> pb.ProblemModel:
+    """A :class:`Problem` -> ProblemModel in the caller's vartype, labels in order."""
+    bqm = problem.to_bqm()
+    m = pb.ProblemModel(
+        vartype=pb.SPIN if problem.vartype == "SPIN" else pb.BINARY,
+        linear=[pb.LinearTerm(label=py_to_label(lab), bias=float(bqm.get_linear(lab)))
+                for lab in problem.labels],
+        quadratic=[pb.QuadraticTerm(u=py_to_label(u), v=py_to_label(v), bias=float(b))
+                   for (u, v), b in bqm.quadratic.items()],
+        offset=float(bqm.offset),
+        labels=[py_to_label(lab) for lab in problem.labels],
+    )
+    if problem.decisions:
+        m.decisions_json = json.dumps([
+            {"name": d.name, "encoding": d.encoding, "variables": list(d.variables),
+             "values": list(d.values)} for d in problem.decisions])
+    return m
+
+
+def doc_to_model(doc: Any, *, field: str = "problem") -> pb.ProblemModel:
+    """A problem JSON document -> ProblemModel with the document's own terms (exact)."""
+    problem = documents.parse_problem(doc, field=field)
+    m = pb.ProblemModel(vartype=pb.SPIN if problem.vartype == "SPIN" else pb.BINARY,
+                        offset=float(doc.get("offset", 0.0)),
+                        labels=[py_to_label(lab) for lab in problem.labels])
+    for key, bias in doc.get("linear", {}).items():
+        lab = documents.resolve_label(problem, key, f"{field}.linear[{key!r}]")
+        m.linear.append(pb.LinearTerm(label=py_to_label(lab), bias=float(bias)))
+    for u, v, bias in doc.get("quadratic", []):
+        m.quadratic.append(pb.QuadraticTerm(u=py_to_label(u), v=py_to_label(v), bias=float(bias)))
+    if doc.get("decisions"):
+        m.decisions_json = json.dumps(doc["decisions"])
+    return m
+
+
+# --------------------------------------------------------------- candidates
+def candidates_to_arrays(problem: Problem, candidates: Sequence[pb.Candidate], *,
+                         field: str = "candidates", limits: Limits = NO_LIMITS
+                         ) -> tuple[list[str], np.ndarray, list[dict]]:
+    """Candidate protos -> (ids ('' = assign one), X int8 (K, n) 0/1, provenance dicts)."""
+    limits.candidates(len(candidates), field)
+    if not candidates:
+        raise InputError(field, "is empty: at least one candidate is needed")
+    items, provs = [], []
+    for k, c in enumerate(candidates):
+        f = f"{field}[{k}]"
+        items.append({"id": c.id or f"__unnamed{k}",
+                      "assignment": assignment_to_dict(c.assignment, f + ".assignment")})
+        p = c.provenance
+        energy = p.reported_energy if p.HasField("reported_energy") else None
+        if energy is not None:
+            _finite(energy, f + ".provenance.reported_energy")
+        provs.append({"source": p.source, "energy": energy, "tags": list(p.tags)})
+    cs = CandidateSet.from_mappings(problem, items, field_name=field)
+    ids = [c.id for c in candidates]
+    return ids, cs.X, provs
+
+
+def record_to_candidate(rec) -> pb.Candidate:
+    """A stored :class:`service.store.CandidateRecord` -> Candidate (caller's vartype)."""
+    vals = (2 * rec.x.astype(np.int64) - 1) if rec.vartype == "SPIN" else rec.x
+    prov = pb.Provenance(source=rec.source, tags=list(rec.tags))
+    if rec.energy is not None:
+        prov.reported_energy = rec.energy
+    return pb.Candidate(id=rec.id, revision=rec.revision, provenance=prov,
+                        assignment=dict_to_assignment(dict(zip(rec.labels, map(int, vals)))))
+
+
+def doc_to_candidates(doc: Any, problem: Problem, *, field: str = "candidates") -> list[pb.Candidate]:
+    """A candidates JSON document -> Candidate protos (labels resolved against ``problem``)."""
+    out = []
+    for rec in documents.parse_candidate_records(doc, problem, field=field):
+        prov = pb.Provenance(source=rec["source"], tags=rec["tags"])
+        if rec["energy"] is not None:
+            prov.reported_energy = rec["energy"]
+        out.append(pb.Candidate(id=str(rec["id"]), assignment=dict_to_assignment(rec["assignment"]),
+                                provenance=prov))
+    return out
+
+
+# -------------------------------------------------------------- constraints
+def _reprefix(err: InputError, field: str) -> InputError:
+    return err if err.field.startswith(field) else InputError(f"{field}.{err.field}", err.message)
+
+
+def constraint_to_domain(c: pb.Constraint, problem: Problem, *, field: str) -> Any:
+    """One Constraint proto -> its domain object (checked by the core when compiled)."""
+    kind = c.WhichOneof("kind")
+    name = c.name or None
+    f = f"{field}.{kind}"
+    try:
+        if kind == "hamming":
+            h = c.hamming
+            table = list(h.table) if len(h.table) else None
+            variables = [label_to_py(v, f"{f}.variables[{k}]") for k, v in enumerate(h.variables)] or None
+            return HammingPenalty(assignment_to_dict(h.reference, f + ".reference"),
+                                  weight=_finite(h.weight, f + ".weight"),
+                                  shape=_SHAPE_NAMES.get(h.shape, "?"), threshold=h.threshold,
+                                  table=table, variables=variables, name=name or "hamming")
+        if kind == "extra":
+            e = c.extra
+            lin: dict = {}
+            for k, t in enumerate(e.linear):
+                lab = label_to_py(t.label, f"{f}.linear[{k}].label")
+                lin[lab] = lin.get(lab, 0.0) + _finite(t.bias, f"{f}.linear[{k}].bias")
+            quad = tuple((label_to_py(t.u, f"{f}.quadratic[{k}].u"),
+                          label_to_py(t.v, f"{f}.quadratic[{k}].v"),
+                          _finite(t.bias, f"{f}.quadratic[{k}].bias")) for k, t in enumerate(e.quadratic))
+            return ExtraTerms(lin, quad, _finite(e.offset, f + ".offset"), name=name or "extra")
+        if kind == "fix":
+            return FixVariables(assignment_to_dict(c.fix.values, f + ".values"), name=name or "fix")
+        if kind == "linear":
+            ln = c.linear
+            if ln.sense not in _SENSE_NAMES:
+                raise InputError(f + ".sense", "must be LE, EQ or GE")
+            terms: dict = {}
+            for k, t in enumerate(ln.terms):
+                lab = label_to_py(t.label, f"{f}.terms[{k}].label")
+                terms[lab] = terms.get(lab, 0.0) + _finite(t.bias, f"{f}.terms[{k}].bias")
+            return LinearConstraint(terms, _SENSE_NAMES[ln.sense], _finite(ln.rhs, f + ".rhs"),
+                                    name=name or "linear")
+        if kind == "forbid":
+            return ForbidAssignment(assignment_to_dict(c.forbid.assignment, f + ".assignment"),
+                                    name=name or "forbid")
+        if kind in ("forbid_values", "allow_values"):
+            msg = getattr(c, kind)
+            vals = [_value_to_py(v, f"{f}.values[{k}]") for k, v in enumerate(msg.values)]
+            cls = ForbidValues if kind == "forbid_values" else AllowValues
+            return cls(msg.decision, vals, name=name or kind)
+        if kind == "force_value":
+            return ForceValue(c.force_value.decision, _value_to_py(c.force_value.value, f + ".value"),
+                              name=name or kind)
+        if kind == "decision_change":
+            dc = c.decision_change
+            ref = {r.decision: _value_to_py(r.value, f"{f}.reference[{k}].value")
+                   for k, r in enumerate(dc.reference)}
+            return DecisionChangePenalty(
+                ref, weight=_finite(dc.weight, f + ".weight"),
+                shape=_SHAPE_NAMES.get(dc.shape, "?"), threshold=dc.threshold,
+                table=list(dc.table) or None, distance=_DISTANCE_NAMES.get(dc.distance, "?"),
+                name=name or kind)
+        if kind == "json":
+            try:
+                obj = json.loads(c.json)
+            except ValueError as err:
+                raise InputError(f, f"is not JSON: {err}") from None
+            if isinstance(obj, dict) and name and "name" not in obj:
+                obj["name"] = name
+            return documents.parse_constraint(obj, problem, field=f)
+    except InputError as err:
+        raise _reprefix(err, f) from None
+    raise InputError(field, "no constraint kind set")
+
+
+def constraints_to_domain(constraints: Sequence[pb.Constraint], problem: Problem, *,
+                          field: str = "constraints", limits: Limits = NO_LIMITS) -> list:
+    limits.constraints(len(constraints), field)
+    out = [constraint_to_domain(c, problem, field=f"{field}[{k}]") for k, c in enumerate(constraints)]
+    # validate now (names the field in proto terms); the worker compiles again
+    from repair.compiled import compile_constraints
+
+    compile_constraints(problem, out, field_name=field)
+    return out
+
+
+def doc_to_constraint(obj: Any, problem: Problem, *, field: str) -> pb.Constraint:
+    """One constraint JSON object -> Constraint proto (typed kinds; others as ``json``)."""
+    dom = documents.parse_constraint(obj, problem, field=field)
+    name = obj.get("name", "") if isinstance(obj, Mapping) else ""
+    if isinstance(dom, HammingPenalty):
+        msg = pb.HammingPenalty(reference=dict_to_assignment(dom.reference), weight=dom.weight,
+                                shape=_SHAPE_ENUM[dom.shape], threshold=dom.threshold,
+                                table=list(dom.table or []),
+                                variables=[py_to_label(v) for v in (dom.variables or [])])
+        return pb.Constraint(name=name, hamming=msg)
+    if isinstance(dom, ExtraTerms):
+        return pb.Constraint(name=name, extra=pb.ExtraTerms(
+            linear=[pb.LinearTerm(label=py_to_label(k), bias=v) for k, v in dom.linear.items()],
+            quadratic=[pb.QuadraticTerm(u=py_to_label(u), v=py_to_label(v), bias=b)
+                       for u, v, b in dom.quadratic], offset=dom.offset))
+    if isinstance(dom, FixVariables):
+        return pb.Constraint(name=name, fix=pb.FixVariables(values=dict_to_assignment(dom.values)))
+    if isinstance(dom, LinearConstraint):
+        return pb.Constraint(name=name, linear=pb.LinearConstraint(
+            terms=[pb.LinearTerm(label=py_to_label(k), bias=v) for k, v in dom.terms.items()],
+            sense=_SENSE_ENUM[dom.sense], rhs=dom.rhs))
+    if isinstance(dom, ForbidAssignment):
+        return pb.Constraint(name=name, forbid=pb.ForbidAssignment(
+            assignment=dict_to_assignment(dom.assignment)))
+    if isinstance(dom, (ForbidValues, AllowValues)):
+        msg = pb.ForbidValues if isinstance(dom, ForbidValues) else pb.AllowValues
+        key = "forbid_values" if isinstance(dom, ForbidValues) else "allow_values"
+        return pb.Constraint(name=name, **{key: msg(decision=dom.decision,
+                                                   values=[_py_to_value(v) for v in dom.values])})
+    if isinstance(dom, ForceValue):
+        return pb.Constraint(name=name, force_value=pb.ForceValue(
+            decision=dom.decision, value=_py_to_value(dom.value)))
+    if isinstance(dom, DecisionChangePenalty):
+        return pb.Constraint(name=name, decision_change=pb.DecisionChangePenalty(
+            reference=[pb.DecisionReference(decision=d, value=_py_to_value(v))
+                       for d, v in dom.reference.items()],
+            weight=dom.weight, shape=_SHAPE_ENUM[dom.shape], threshold=dom.threshold,
+            table=list(dom.table or []), distance=_DISTANCE_ENUM[dom.distance]))
+    return pb.Constraint(name=name, json=json.dumps(obj))
+
+
+def docs_to_constraints(doc: Any, problem: Problem, *, field: str = "constraints") -> list[pb.Constraint]:
+    if isinstance(doc, Mapping):
+        doc = [doc]
+    if not isinstance(doc, list):
+        raise InputError(field, "must be a list of constraint objects")
+    return [doc_to_constraint(obj, problem, field=f"{field}[{k}]") for k, obj in enumerate(doc)]
+
+
+# ------------------------------------------------------------------ options
+def options_to_kwargs(o: pb.RepairOptions, *, default_time_limit: float = 5.0,
+                      field: str = "options") -> dict:
+    """RepairOptions -> keyword arguments of :func:`repair.repair` (time limit uncapped)."""
+    if o.method not in METHOD_NAMES:
+        raise InputError(field + ".method", f"unknown method {o.method}")
+    if not math.isfinite(o.time_limit) or o.time_limit < 0:
+        raise InputError(field + ".time_limit", f"must be >= 0 seconds, got {o.time_limit!r}")
+    if not math.isfinite(o.flip_price) or o.flip_price < 0:
+        raise InputError(field + ".flip_price", f"must be >= 0, got {o.flip_price!r}")
+    return {
+        "method": METHOD_NAMES[o.method],
+        "time_limit": float(o.time_limit) if o.time_limit > 0 else float(default_time_limit),
+        "max_flips": int(o.max_flips) if o.HasField("max_flips") else None,
+        "flip_price": float(o.flip_price),
+        "seed": int(o.seed),
+        "workers": max(1, int(o.workers)),
+        "pareto": bool(o.pareto),
+    }
+
+
+def kwargs_to_options(*, method: str = "portfolio", time_limit: float = 0.0,
+                      max_flips: int | None = None, flip_price: float = 0.0, seed: int = 0,
+                      workers: int = 1, audit_limit: int | None = None, pareto: bool = False
+                      ) -> pb.RepairOptions:
+    if method not in _METHOD_ENUM:
+        raise InputError("method", f"must be one of {sorted(_METHOD_ENUM)}, got {method!r}")
+    o = pb.RepairOptions(method=_METHOD_ENUM[method], time_limit=float(time_limit or 0.0),
+                         flip_price=float(flip_price), seed=int(seed), workers=int(workers),
+                         pareto=bool(pareto))
+    if max_flips is not None:
+        o.max_flips = int(max_flips)
+    if audit_limit is not None:
+        o.audit_limit = int(audit_limit)
+    return o
+
+
+# ------------------------------------------------------------------- result
+def _named(d: Mapping) -> list:
+    return [pb.NamedValue(name=str(k), value=float(v)) for k, v in d.items()]
+
+
+def result_to_reply(res: RepairResult, *, audit_limit: int | None = None,
+                    time_limit: float = 0.0, revision: int = 0) -> pb.RepairReply:
+    b = res.best
+    best = pb.Solution(
+        candidate_id=b.candidate_id, assignment=dict_to_assignment(b.assignment),
+        cost=float(b.cost), objective=float(b.objective), base_energy=float(b.base_energy),
+        penalties=_named(b.penalties), flips=int(b.flips), feasible=bool(b.feasible),
+        violation=float(b.violation), violations=_named(b.violations), method=b.method,
+        changes=[pb.DecisionChange(decision=str(d), old_value=json.dumps(o), new_value=json.dumps(n))
+                 for d, o, n in b.changes],
+        decisions_changed=int(b.decisions_changed))
+    rows = res.audit if audit_limit is None else res.audit[:audit_limit]
+    return pb.RepairReply(
+        status=res.status, message=res.message, method=res.method, seed=int(res.seed),
+        seconds=float(res.seconds), time_limit=float(time_limit), best=best,
+        audit=[pb.AuditRow(candidate_id=r.candidate_id, cost_before=float(r.cost_before),
+                           feasible_before=bool(r.feasible_before), cost=float(r.cost_after),
+                           objective=float(r.objective_after), flips=int(r.flips),
+                           feasible=bool(r.feasible), violation=float(r.violation),
+                           method=r.method, seconds=float(r.seconds),
+                           decisions_changed=int(r.decisions_changed),
+                           encoding_issues=[pb.EncodingIssue(decision=d, how=h)
+                                            for d, h in r.encoding_issues]) for r in rows],
+        audit_total=len(res.audit),
+        pareto=[pb.ParetoPoint(cost=float(p.cost), flips=int(p.flips), candidate_id=p.candidate_id,
+                               method=p.method) for p in res.pareto],
+        scaling_error=float(res.scaling_error), cpsat_status=res.cpsat_status, revision=revision)
+
+
+def reply_to_dict(r: pb.RepairReply) -> dict:
+    """A RepairReply -> the same layout as :meth:`RepairResult.to_dict` (the CLI's JSON)."""
+    b = r.best
+    return {
+        "status": r.status, "message": r.message, "method": r.method, "seed": int(r.seed),
+        "seconds": round(r.seconds, 6), "scaling_error": r.scaling_error,
+        "cpsat_status": r.cpsat_status,
+        "best": {
+            "candidate_id": b.candidate_id, "cost": b.cost, "objective": b.objective,
+            "base_energy": b.base_energy, "penalties": {p.name: p.value for p in b.penalties},
+            "flips": int(b.flips), "feasible": bool(b.feasible), "violation": b.violation,
+            "violations": {p.name: p.value for p in b.violations}, "method": b.method,
+            "assignment": {label_to_py(v.label, "best.assignment"): int(v.value)
+                           for v in b.assignment.values},
+            "changes": [{"decision": c.decision, "old": json.loads(c.old_value),
+                         "new": json.loads(c.new_value)} for c in b.changes],
+            "decisions_changed": int(b.decisions_changed),
+        },
+        "audit": [
+            {"candidate_id": a.candidate_id, "cost_before": a.cost_before,
+             "feasible_before": bool(a.feasible_before), "cost": a.cost, "objective": a.objective,
+             "flips": int(a.flips), "feasible": bool(a.feasible), "violation": a.violation,
+             "method": a.method, "seconds": round(a.seconds, 6),
+             "decisions_changed": int(a.decisions_changed),
+             "encoding_issues": [{"decision": e.decision, "how": e.how}
+                                 for e in a.encoding_issues]} for a in r.audit
+        ],
+        "pareto": [{"cost": p.cost, "flips": int(p.flips), "candidate_id": p.candidate_id,
+                    "method": p.method} for p in r.pareto],
+    }

@@ -1,0 +1,335 @@
+"""The flipfix gRPC server: thin servicer over the store and the repair pool.
+
+Each RPC converts the request (:mod:`service.convert`), calls the store or the
+core, and converts back; errors become status codes in :mod:`service.errors`.
+
+* Repairs run in a process pool (:mod:`service.worker`) so CPU work never holds
+  the gRPC threads; a full queue is RESOURCE_EXHAUSTED.
+* Deadline: the solver budget is ``min(requested, remaining deadline - margin)``,
+  so a short deadline still gets the best found so far.
+* Cancellation: ``context.add_callback`` sets the job's cancel flag; the worker
+  turns it into the ``threading.Event`` the core watches.
+* The standard health service (``""`` and ``flipfix.v1.Flipfix``) and server
+  reflection are registered; health answers while repairs run.
+* :meth:`RunningServer.shutdown`: health NOT_SERVING, no new calls, in-flight
+  calls get ``grace`` seconds, then are cancelled (their solvers stop).
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import threading
+import time
+from concurrent import futures
+from concurrent.futures.process import BrokenProcessPool
+from dataclasses import dataclass
+from pathlib import Path
+
+import grpc
+from grpc_health.v1 import health, health_pb2, health_pb2_grpc
+from grpc_reflection.v1alpha import reflection
+
+from repair.candidates import CandidateSet
+
+from . import convert
+from .errors import TransientError, translate_errors
+from .generated import flipfix_pb2 as pb
+from .generated import flipfix_pb2_grpc as pb_grpc
+from .store import Store
+from .worker import RepairPool
+
+__all__ = ["create_server", "RunningServer", "ServerConfig", "SERVICE_NAME"]
+
+log = logging.getLogger("flipfix.server")
+
+SERVICE_NAME = pb.DESCRIPTOR.services_by_name["Flipfix"].full_name  # "flipfix.v1.Flipfix"
+
+
+@dataclass
+class ServerConfig:
+    """Server settings; limits of None mean unlimited."""
+
+    db_path: str = "flipfix.sqlite3"
+    workers: int = 1
+    queue_size: int = 4
+    max_message_bytes: int = 64 * 1024 * 1024
+    max_variables: int | None = 100_000
+    max_candidates: int | None = 10_000
+    max_constraints: int | None = 1_000
+    default_time_limit: float = 5.0
+    max_time_limit: float = 600.0
+    warm: bool = True
+
+    @property
+    def limits(self) -> convert.Limits:
+        return convert.Limits(max_variables=self.max_variables,
+                              max_candidates=self.max_candidates,
+                              max_constraints=self.max_constraints)
+
+
+def deadline_budget(requested: float, remaining: float | None) -> float:
+    """Solver budget (s) for a call with ``remaining`` seconds to its deadline (None: none).
+
+    The margin (30 % of what remains, 0.6 s to 3 s) covers conversion, process
+    hand-over, the solver's stop after cancellation and the reply.
+    """
+    if remaining is None:
+        return requested
+    margin = min(3.0, max(0.6, 0.3 * remaining))
+    return max(0.05, min(requested, remaining - margin))
+
+
+class FlipfixServicer(pb_grpc.FlipfixServicer):
+    def __init__(self, store: Store, pool: RepairPool, config: ServerConfig):
+        self.store = store
+        self.pool = pool
+        self.config = config
+        self.limits = config.limits
+
+    # ------------------------------------------------------------- problems
+    @staticmethod
+    def _info(rec) -> pb.ProblemInfo:
+        return pb.ProblemInfo(name=rec.name, revision=rec.revision, num_variables=rec.num_variables,
+                              num_interactions=rec.num_interactions,
+                              num_candidates=rec.num_candidates, created_at=rec.created_at,
+                              updated_at=rec.updated_at)
+
+    @translate_errors
+    def CreateProblem(self, request, context):
+        problem = convert.model_to_problem(request.model, limits=self.limits)
+        return self._info(self.store.create_problem(request.name, problem))
+
+    @translate_errors
+    def ReplaceProblem(self, request, context):
+        problem = convert.model_to_problem(request.model, limits=self.limits)
+        return self._info(self.store.replace_problem(
+            request.name, problem, expected_revision=request.expected_revision))
+
+    @translate_errors
+    def GetProblem(self, request, context):
+        info, rev, problem = self.store.get_problem(request.name, request.revision)
+        return pb.GetProblemReply(info=self._info(info), revision=rev,
+                                  model=convert.problem_to_model(problem))
+
+    @translate_errors
+    def ListProblems(self, request, context):
+        infos, token = self.store.list_problems(page_size=request.page_size,
+                                                page_token=request.page_token)
+        return pb.ListProblemsReply(problems=[self._info(i) for i in infos], next_page_token=token)
+
+    @translate_errors
+    def DeleteProblem(self, request, context):
+        return pb.DeleteProblemReply(candidates_deleted=self.store.delete_problem(request.name))
+
+    # ----------------------------------------------------------- candidates
+    @translate_errors
+    def AddCandidates(self, request, context):
+        _info, rev, problem = self.store.get_problem(request.problem)
+        ids, X, provs = convert.candidates_to_arrays(problem, request.candidates,
+                                                     limits=self.limits)
+        out = self.store.add_candidates(request.problem, rev, ids, X, provs)
+        return pb.AddCandidatesReply(ids=out, revision=rev)
+
+    @translate_errors
+    def ListCandidates(self, request, context):
+        recs, token = self.store.list_candidates(request.problem, page_size=request.page_size,
+                                                 page_token=request.page_token,
+                                                 revision=request.revision)
+        return pb.ListCandidatesReply(candidates=[convert.record_to_candidate(r) for r in recs],
+                                      next_page_token=token)
+
+    @translate_errors
+    def RemoveCandidates(self, request, context):
+        return pb.RemoveCandidatesReply(removed=self.store.remove_candidates(request.problem,
+                                                                             list(request.ids)))
+
+    # --------------------------------------------------------------- repair
+    def _library(self, request):
+        which = request.WhichOneof("library")
+        if which == "problem":
+            rev, problem, cands = self.store.library(
+                request.problem, ids=list(request.candidate_ids),
+                all_revisions=request.all_revisions, max_candidates=self.config.max_candidates)
+            return rev, problem, cands
+        if which == "inline":
+            problem = convert.model_to_problem(request.inline.model, field="inline.model",
+                                               limits=self.limits)
+            ids, X, _ = convert.candidates_to_arrays(problem, request.inline.candidates,
+                                                     field="inline.candidates", limits=self.limits)
+            ids = [cid or f"c{k}" for k, cid in enumerate(ids)]
+            return 0, problem, CandidateSet(CandidateSet._check_ids(ids, len(ids),
+                                                                    "inline.candidates"), X)
+        from repair.errors import InputError
+        raise InputError("library", "set problem (a stored problem) or inline")
+
+    def _start(self, request, context):
+        """Validate, pick the budget, submit; returns (job, budget, audit_limit, revision)."""
+        rev, problem, cands = self._library(request)
+        constraints = convert.constraints_to_domain(request.constraints, problem,
+                                                    limits=self.limits)
+        kwargs = convert.options_to_kwargs(request.options,
+                                           default_time_limit=self.config.default_time_limit)
+        budget = deadline_budget(min(kwargs["time_limit"], self.config.max_time_limit),
+                                 context.time_remaining())
+        kwargs["time_limit"] = budget
+        job = self.pool.submit(problem, cands, constraints, kwargs)
+        context.add_callback(job.cancel)  # runs when the call ends: cancelled, timed out or done
+        audit_limit = (request.options.audit_limit if request.options.HasField("audit_limit")
+                       else None)
+        return job, budget, audit_limit, rev
+
+    def _wait(self, job, context, budget: float, tick=None):
+        """Wait for the job and return its result.
+
+        The solver is asked to stop (and return its best so far) when its budget is
+        spent: at once under a deadline, after some slack without one (the core may
+        overrun a little while finishing a phase). A call that ends stops it too.
+        """
+        has_deadline = context.time_remaining() is not None
+        stop_at = time.monotonic() + (budget if has_deadline else budget + max(1.0, 0.25 * budget))
+        while True:
+            try:
+                return job.future.result(timeout=0.05)
+            except futures.TimeoutError:
+                pass
+            except futures.CancelledError:
+                raise TransientError("repair", "the repair was cancelled before it started") from None
+            except BrokenProcessPool:
+                self.pool.restart_if_broken()
+                raise
+            if not job.cancel_requested and (not context.is_active() or time.monotonic() > stop_at):
+                job.cancel()
+            if tick is not None:
+                tick()
+
+    @translate_errors
+    def Repair(self, request, context):
+        job, budget, audit_limit, rev = self._start(request, context)
+        res = self._wait(job, context, budget)
+        return convert.result_to_reply(res, audit_limit=audit_limit, time_limit=budget,
+                                       revision=rev)
+
+    @translate_errors
+    def RepairStream(self, request, context):
+        job, budget, audit_limit, rev = self._start(request, context)
+        last = [0]
+        out: list = []
+
+        def tick():
+            p = job.progress()
+            if p.updates != last[0]:
+                last[0] = p.updates
+                msg = pb.RepairProgress(done=p.done, total=p.total, phase="running")
+                if p.best_cost is not None and math.isfinite(p.best_cost):
+                    msg.best_cost = p.best_cost
+                out.append(pb.RepairEvent(progress=msg))
+
+        result_box: list = []
+        done = threading.Event()
+
+        def waiter():
+            try:
+                result_box.append(self._wait(job, context, budget, tick))
+            except BaseException as exc:  # noqa: BLE001 - re-raised in the stream thread
+                result_box.append(exc)
+            finally:
+                done.set()
+
+        threading.Thread(target=waiter, daemon=True, name="flipfix-stream-wait").start()
+        sent = 0
+        while not done.wait(0.05):
+            while sent < len(out):
+                yield out[sent]
+                sent += 1
+        while sent < len(out):
+            yield out[sent]
+            sent += 1
+        res = result_box[0]
+        if isinstance(res, BaseException):
+            raise res
+        yield pb.RepairEvent(result=convert.result_to_reply(res, audit_limit=audit_limit,
+                                                             time_limit=budget, revision=rev))
+
+
+class RunningServer:
+    """A started server; ``port`` is the bound port (bind port 0 in tests)."""
+
+    def __init__(self, server: grpc.Server, port: int, servicer: FlipfixServicer,
+                 health_servicer: health.HealthServicer, pool: RepairPool, store: Store):
+        self.server = server
+        self.port = port
+        self.servicer = servicer
+        self.health = health_servicer
+        self.pool = pool
+        self.store = store
+        self._stopped = threading.Event()
+        self._lock = threading.Lock()
+
+    @property
+    def address(self) -> str:
+        return f"127.0.0.1:{self.port}"
+
+    def shutdown(self, grace: float = 10.0) -> None:
+        """Health NOT_SERVING, refuse new calls, give in-flight ones ``grace`` s, then cancel."""
+        with self._lock:
+            if self._stopped.is_set():
+                return
+            self.health.enter_graceful_shutdown()
+            stopped = self.server.stop(grace)
+            stopped.wait()
+            self.pool.shutdown(wait=True)
+            self.store.close()
+            self._stopped.set()
+
+    stop = shutdown
+
+    def wait_for_termination(self, timeout: float | None = None) -> bool:
+        return self._stopped.wait(timeout)
+
+    def __enter__(self) -> "RunningServer":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.shutdown(grace=1.0)
+
+
+def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = None,
+                  **overrides) -> RunningServer:
+    """Build, bind and start the server; returns a :class:`RunningServer` (``.port``)."""
+    config = config or ServerConfig()
+    for k, v in overrides.items():
+        if not hasattr(config, k):
+            raise TypeError(f"unknown server option {k!r}")
+        setattr(config, k, v)
+    store = Store(config.db_path)
+    pool = RepairPool(workers=config.workers, queue_size=config.queue_size, warm=config.warm)
+    options = [("grpc.max_receive_message_length", config.max_message_bytes),
+               ("grpc.max_send_message_length", config.max_message_bytes),
+               ("grpc.so_reuseport", 0)]
+    # threads: one per repair slot (they wait on the pool) plus room for quick calls
+    server = grpc.server(futures.ThreadPoolExecutor(max_workers=pool.slots + 8,
+                                                    thread_name_prefix="flipfix-rpc"),
+                         options=options)
+    servicer = FlipfixServicer(store, pool, config)
+    pb_grpc.add_FlipfixServicer_to_server(servicer, server)
+    health_servicer = health.HealthServicer()
+    health_pb2_grpc.add_HealthServicer_to_server(health_servicer, server)
+    names = (SERVICE_NAME, health_pb2.DESCRIPTOR.services_by_name["Health"].full_name,
+             reflection.SERVICE_NAME)
+    reflection.enable_server_reflection(names, server)
+    try:
+        port = server.add_insecure_port(address)
+    except RuntimeError as err:
+        pool.shutdown(wait=False)
+        store.close()
+        raise OSError(f"cannot bind {address}: {err}") from None
+    if port == 0:
+        pool.shutdown(wait=False)
+        store.close()
+        raise OSError(f"cannot bind {address}")
+    server.start()
+    for name in ("", SERVICE_NAME):
+        health_servicer.set(name, health_pb2.HealthCheckResponse.SERVING)
+    log.info("flipfix listening on port %d (db %s)", port, Path(config.db_path))
+    return RunningServer(server, port, servicer, health_servicer, pool, store)

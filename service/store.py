@@ -1,0 +1,418 @@
+"""Durable store of problems (with revisions) and candidate libraries: SQLite.
+
+* WAL journal, ``synchronous=FULL``: a write is on disk before it is acknowledged.
+* Every public write is one transaction (``BEGIN IMMEDIATE`` ... ``COMMIT``):
+  a request that fails validation half-way stores nothing.
+* ``schema_version`` holds the schema number; opening a newer database fails.
+
+Models are stored exactly, in 0/1 form (labels in order, linear biases, upper
+couplings, offset) with the caller's vartype; candidates as a string of 0/1 bits
+in the label order of the revision they were made for.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import sqlite3
+import threading
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Sequence
+
+import numpy as np
+
+from repair.candidates import CandidateSet
+from repair.errors import InputError
+from repair.model import Decision, Problem
+
+from .errors import AlreadyExistsError, ConflictError, NotFoundError
+
+__all__ = ["Store", "ProblemRecord", "CandidateRecord", "SCHEMA_VERSION"]
+
+SCHEMA_VERSION = 1
+
+_SCHEMA = """
+CREATE TABLE IF NOT EXISTS schema_version (version INTEGER NOT NULL);
+CREATE TABLE IF NOT EXISTS problems (
+    name TEXT PRIMARY KEY,
+    revision INTEGER NOT NULL,
+    next_candidate INTEGER NOT NULL DEFAULT 1,
+    created_at TEXT NOT NULL,
+    updated_at TEXT NOT NULL
+);
+CREATE TABLE IF NOT EXISTS revisions (
+    problem TEXT NOT NULL REFERENCES problems(name) ON DELETE CASCADE,
+    revision INTEGER NOT NULL,
+    model TEXT NOT NULL,
+    num_variables INTEGER NOT NULL,
+    num_interactions INTEGER NOT NULL,
+    created_at TEXT NOT NULL,
+    PRIMARY KEY (problem, revision)
+);
+CREATE TABLE IF NOT EXISTS candidates (
+    seq INTEGER PRIMARY KEY AUTOINCREMENT,
+    problem TEXT NOT NULL REFERENCES problems(name) ON DELETE CASCADE,
+    id TEXT NOT NULL,
+    revision INTEGER NOT NULL,
+    bits TEXT NOT NULL,
+    source TEXT NOT NULL DEFAULT '',
+    energy REAL,
+    tags TEXT NOT NULL DEFAULT '[]',
+    created_at TEXT NOT NULL,
+    UNIQUE (problem, id)
+);
+CREATE INDEX IF NOT EXISTS candidates_by_problem ON candidates(problem, seq);
+"""
+
+
+def _now() -> str:
+    return datetime.now(timezone.utc).isoformat(timespec="milliseconds")
+
+
+@dataclass(frozen=True)
+class ProblemRecord:
+    name: str
+    revision: int
+    num_variables: int
+    num_interactions: int
+    num_candidates: int
+    created_at: str
+    updated_at: str
+
+
+@dataclass(frozen=True)
+class CandidateRecord:
+    """A stored candidate; ``x`` is int8 (n,) 0/1 in ``labels`` order (its revision's)."""
+
+    id: str
+    revision: int
+    labels: tuple
+    vartype: str
+    x: np.ndarray
+    source: str
+    energy: float | None
+    tags: tuple
+
+
+def encode_model(problem: Problem) -> str:
+    """Exact JSON of a problem (0/1 form + caller vartype + decisions)."""
+    i, j, J = problem.pairs()
+    return json.dumps({
+        "format": 1, "vartype": problem.vartype, "labels": list(problem.labels),
+        "linear": problem.linear.tolist(),
+        "pairs": [[int(a), int(b), float(w)] for a, b, w in zip(i, j, J)],
+        "offset": float(problem.offset),
+        "decisions": [{"name": d.name, "encoding": d.encoding, "variables": list(d.variables),
+                       "values": list(d.values)} for d in problem.decisions],
+    }, separators=(",", ":"))
+
+
+def decode_model(text: str) -> Problem:
+    doc = json.loads(text)
+    labels = doc["labels"]
+    p = Problem.from_terms(
+        list(zip(labels, doc["linear"])),
+        [(labels[a], labels[b], w) for a, b, w in doc["pairs"]],
+        offset=doc["offset"], vartype="BINARY", labels=labels,
+    )
+    decisions = tuple(Decision(d["name"], d["encoding"], tuple(d["variables"]), tuple(d["values"]))
+                      for d in doc.get("decisions", []))
+    return dataclasses.replace(p, vartype=doc["vartype"], decisions=decisions, index=p.index)
+
+
+class Store:
+    """Problems and candidates in one SQLite file (``":memory:"`` for tests only).
+
+    Thread-safe: one connection, one lock; each public method is one transaction.
+    """
+
+    def __init__(self, path: str | Path):
+        self.path = str(path)
+        if self.path != ":memory:":
+            Path(self.path).parent.mkdir(parents=True, exist_ok=True)
+        self._lock = threading.Lock()
+        self._db = sqlite3.connect(self.path, isolation_level=None, check_same_thread=False,
+                                   timeout=10.0)
+        self._db.execute("PRAGMA journal_mode=WAL")
+        self._db.execute("PRAGMA synchronous=FULL")
+        self._db.execute("PRAGMA foreign_keys=ON")
+        # executescript commits by itself; every statement is CREATE ... IF NOT EXISTS
+        self._db.executescript(_SCHEMA)
+        with self._tx() as db:
+            row = db.execute("SELECT version FROM schema_version").fetchone()
+            if row is None:
+                db.execute("INSERT INTO schema_version VALUES (?)", (SCHEMA_VERSION,))
+            elif row[0] > SCHEMA_VERSION:
+                raise RuntimeError(f"{self.path}: schema version {row[0]} is newer than this "
+                                   f"flipfix ({SCHEMA_VERSION})")
+
+    # ---------------------------------------------------------------- plumbing
+    class _Tx:
+        def __init__(self, store: "Store"):
+            self.store = store
+
+        def __enter__(self) -> sqlite3.Connection:
+            self.store._lock.acquire()
+            try:
+                self.store._db.execute("BEGIN IMMEDIATE")
+            except BaseException:
+                self.store._lock.release()
+                raise
+            return self.store._db
+
+        def __exit__(self, exc_type, exc, tb):
+            try:
+                self.store._db.execute("COMMIT" if exc_type is None else "ROLLBACK")
+            finally:
+                self.store._lock.release()
+            return False
+
+    def _tx(self) -> "Store._Tx":
+        return Store._Tx(self)
+
+    def close(self) -> None:
+        with self._lock:
+            self._db.close()
+
+    @property
+    def journal_mode(self) -> str:
+        with self._lock:
+            return self._db.execute("PRAGMA journal_mode").fetchone()[0]
+
+    @property
+    def synchronous(self) -> int:
+        with self._lock:
+            return int(self._db.execute("PRAGMA synchronous").fetchone()[0])
+
+    @property
+    def schema_version(self) -> int:
+        with self._lock:
+            return int(self._db.execute("SELECT version FROM schema_version").fetchone()[0])
+
+    @staticmethod
+    def _info(db: sqlite3.Connection, name: str) -> ProblemRecord:
+        row = db.execute(
+            "SELECT p.name, p.revision, r.num_variables, r.num_interactions, "
+            "(SELECT COUNT(*) FROM candidates c WHERE c.problem = p.name), p.created_at, "
+            "p.updated_at FROM problems p JOIN revisions r ON r.problem = p.name AND "
+            "r.revision = p.revision WHERE p.name = ?", (name,)).fetchone()
+        if row is None:
+            raise NotFoundError("name", f"no problem named {name!r}")
+        return ProblemRecord(*row)
+
+    @staticmethod
+    def _check_name(name: str) -> None:
+        if not isinstance(name, str) or not name.strip():
+            raise InputError("name", "must be a non-empty string")
+        if len(name) > 200:
+            raise InputError("name", "must be at most 200 characters")
+
+    # ---------------------------------------------------------------- problems
+    def create_problem(self, name: str, problem: Problem) -> ProblemRecord:
+        self._check_name(name)
+        model = encode_model(problem)
+        with self._tx() as db:
+            if db.execute("SELECT 1 FROM problems WHERE name = ?", (name,)).fetchone():
+                raise AlreadyExistsError("name", f"a problem named {name!r} exists")
+            now = _now()
+            db.execute("INSERT INTO problems (name, revision, created_at, updated_at) "
+                       "VALUES (?, 1, ?, ?)", (name, now, now))
+            db.execute("INSERT INTO revisions VALUES (?, 1, ?, ?, ?, ?)",
+                       (name, model, problem.n, problem.num_interactions, now))
+            return self._info(db, name)
+
+    def replace_problem(self, name: str, problem: Problem, *, expected_revision: int = 0
+                        ) -> ProblemRecord:
+        model = encode_model(problem)
+        with self._tx() as db:
+            row = db.execute("SELECT revision FROM problems WHERE name = ?", (name,)).fetchone()
+            if row is None:
+                raise NotFoundError("name", f"no problem named {name!r}")
+            if expected_revision and row[0] != expected_revision:
+                raise ConflictError("expected_revision",
+                                    f"problem {name!r} is at revision {row[0]}, not {expected_revision}")
+            rev, now = row[0] + 1, _now()
+            db.execute("UPDATE problems SET revision = ?, updated_at = ? WHERE name = ?",
+                       (rev, now, name))
+            db.execute("INSERT INTO revisions VALUES (?, ?, ?, ?, ?, ?)",
+                       (name, rev, model, problem.n, problem.num_interactions, now))
+            return self._info(db, name)
+
+    def get_problem(self, name: str, revision: int = 0) -> tuple[ProblemRecord, int, Problem]:
+        """(info, revision of the model, model); revision 0 is the current one."""
+        with self._tx() as db:
+            info = self._info(db, name)
+            rev = revision or info.revision
+            row = db.execute("SELECT model FROM revisions WHERE problem = ? AND revision = ?",
+                             (name, rev)).fetchone()
+            if row is None:
+                raise NotFoundError("revision", f"problem {name!r} has no revision {rev}")
+        return info, rev, decode_model(row[0])
+
+    def list_problems(self, *, page_size: int = 100, page_token: str = ""
+                      ) -> tuple[list[ProblemRecord], str]:
+        page_size = max(1, min(int(page_size or 100), 1000))
+        with self._tx() as db:
+            names = [r[0] for r in db.execute(
+                "SELECT name FROM problems WHERE name > ? ORDER BY name LIMIT ?",
+                (page_token, page_size + 1))]
+            more = len(names) > page_size
+            names = names[:page_size]
+            infos = [self._info(db, n) for n in names]
+        return infos, (names[-1] if more else "")
+
+    def delete_problem(self, name: str) -> int:
+        """Delete a problem, its revisions and candidates; returns the candidates deleted."""
+        with self._tx() as db:
+            if not db.execute("SELECT 1 FROM problems WHERE name = ?", (name,)).fetchone():
+                raise NotFoundError("name", f"no problem named {name!r}")
+            n = db.execute("SELECT COUNT(*) FROM candidates WHERE problem = ?", (name,)).fetchone()[0]
+            db.execute("DELETE FROM candidates WHERE problem = ?", (name,))
+            db.execute("DELETE FROM revisions WHERE problem = ?", (name,))
+            db.execute("DELETE FROM problems WHERE name = ?", (name,))
+            return int(n)
+
+    # -------------------------------------------------------------- candidates
+    def add_candidates(self, name: str, revision: int, ids: Sequence[str],
+                       X: np.ndarray, provenance: Sequence[dict], *, field: str = "candidates"
+                       ) -> list[str]:
+        """Add K candidates made for ``revision`` (X int8 (K, n), 0/1 in that revision's order).
+
+        Empty ids are assigned ``c<N>``. All or nothing: a taken id stores none.
+        """
+        X = np.asarray(X, dtype=np.int8)
+        with self._tx() as db:
+            row = db.execute("SELECT revision, next_candidate FROM problems WHERE name = ?",
+                             (name,)).fetchone()
+            if row is None:
+                raise NotFoundError("problem", f"no problem named {name!r}")
+            if row[0] != revision:
+                raise ConflictError("problem", f"problem {name!r} moved to revision {row[0]}")
+            counter = row[1]
+            out, now = [], _now()
+            for k, (cid, x, prov) in enumerate(zip(ids, X, provenance)):
+                if not cid:
+                    while True:
+                        cid = f"c{counter}"
+                        counter += 1
+                        if not db.execute("SELECT 1 FROM candidates WHERE problem = ? AND id = ?",
+                                          (name, cid)).fetchone() and cid not in out:
+                            break
+                try:
+                    db.execute(
+                        "INSERT INTO candidates (problem, id, revision, bits, source, energy, tags, "
+                        "created_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                        (name, cid, revision, "".join("1" if b else "0" for b in x),
+                         prov.get("source", ""), prov.get("energy"),
+                         json.dumps(list(prov.get("tags", ()))), now))
+                except sqlite3.IntegrityError:
+                    raise AlreadyExistsError(f"{field}[{k}].id",
+                                             f"candidate {cid!r} already exists") from None
+                out.append(cid)
+            db.execute("UPDATE problems SET next_candidate = ?, updated_at = ? WHERE name = ?",
+                       (counter, now, name))
+            return out
+
+    def _labels_of(self, db, name: str, revision: int, cache: dict) -> tuple:
+        if revision not in cache:
+            row = db.execute("SELECT model FROM revisions WHERE problem = ? AND revision = ?",
+                             (name, revision)).fetchone()
+            doc = json.loads(row[0])
+            cache[revision] = (tuple(doc["labels"]), doc["vartype"])
+        return cache[revision]
+
+    def _record(self, db, name, row, cache) -> CandidateRecord:
+        _seq, cid, rev, bits, source, energy, tags = row
+        labels, vartype = self._labels_of(db, name, rev, cache)
+        return CandidateRecord(cid, rev, labels, vartype,
+                               np.frombuffer(bits.encode(), dtype=np.uint8).astype(np.int8) - 48,
+                               source, energy, tuple(json.loads(tags)))
+
+    def list_candidates(self, name: str, *, page_size: int = 100, page_token: str = "",
+                        revision: int = 0) -> tuple[list[CandidateRecord], str]:
+        page_size = max(1, min(int(page_size or 100), 1000))
+        try:
+            after = int(page_token) if page_token else 0
+        except ValueError:
+            raise InputError("page_token", f"{page_token!r} is not a token from this server") from None
+        with self._tx() as db:
+            if not db.execute("SELECT 1 FROM problems WHERE name = ?", (name,)).fetchone():
+                raise NotFoundError("problem", f"no problem named {name!r}")
+            q = ("SELECT seq, id, revision, bits, source, energy, tags FROM candidates "
+                 "WHERE problem = ? AND seq > ?")
+            args: list = [name, after]
+            if revision:
+                q += " AND revision = ?"
+                args.append(revision)
+            rows = db.execute(q + " ORDER BY seq LIMIT ?", args + [page_size + 1]).fetchall()
+            more = len(rows) > page_size
+            rows = rows[:page_size]
+            cache: dict = {}
+            recs = [self._record(db, name, r, cache) for r in rows]
+        return recs, (str(rows[-1][0]) if more else "")
+
+    def remove_candidates(self, name: str, ids: Sequence[str]) -> int:
+        with self._tx() as db:
+            if not db.execute("SELECT 1 FROM problems WHERE name = ?", (name,)).fetchone():
+                raise NotFoundError("problem", f"no problem named {name!r}")
+            for k, cid in enumerate(ids):
+                if not db.execute("SELECT 1 FROM candidates WHERE problem = ? AND id = ?",
+                                  (name, cid)).fetchone():
+                    raise NotFoundError(f"ids[{k}]", f"problem {name!r} has no candidate {cid!r}")
+            n = 0
+            for cid in dict.fromkeys(ids):
+                n += db.execute("DELETE FROM candidates WHERE problem = ? AND id = ?",
+                                (name, cid)).rowcount
+            return n
+
+    # ------------------------------------------------------------------ repair
+    def library(self, name: str, *, ids: Sequence[str] = (), all_revisions: bool = False,
+                max_candidates: int | None = None) -> tuple[int, Problem, CandidateSet]:
+        """(current revision, its model, the candidates to repair).
+
+        Default: the candidates made for the current revision. ``ids`` picks
+        candidates by id (any revision); ``all_revisions`` takes every candidate.
+        Candidates of an older revision must assign exactly the current labels.
+        """
+        with self._tx() as db:
+            row = db.execute("SELECT revision FROM problems WHERE name = ?", (name,)).fetchone()
+            if row is None:
+                raise NotFoundError("problem", f"no problem named {name!r}")
+            rev = row[0]
+            model = db.execute("SELECT model FROM revisions WHERE problem = ? AND revision = ?",
+                               (name, rev)).fetchone()[0]
+            q = "SELECT seq, id, revision, bits, source, energy, tags FROM candidates WHERE problem = ?"
+            if ids:
+                rows = []
+                for k, cid in enumerate(ids):
+                    r = db.execute(q + " AND id = ?", (name, cid)).fetchone()
+                    if r is None:
+                        raise NotFoundError(f"candidate_ids[{k}]",
+                                            f"problem {name!r} has no candidate {cid!r}")
+                    rows.append(r)
+            elif all_revisions:
+                rows = db.execute(q + " ORDER BY seq", (name,)).fetchall()
+            else:
+                rows = db.execute(q + " AND revision = ? ORDER BY seq", (name, rev)).fetchall()
+            cache: dict = {}
+            recs = [self._record(db, name, r, cache) for r in rows]
+        problem = decode_model(model)
+        if not recs:
+            raise InputError("problem", f"problem {name!r} has no candidates for revision {rev}")
+        if max_candidates is not None and len(recs) > max_candidates:
+            from repair.errors import LimitError
+            raise LimitError("candidates", f"{len(recs)} candidates exceed the limit of {max_candidates}")
+        X = np.empty((len(recs), problem.n), dtype=np.int8)
+        for k, rec in enumerate(recs):
+            if rec.labels == problem.labels:
+                X[k] = rec.x
+                continue
+            if set(rec.labels) != set(problem.labels):
+                raise InputError(f"candidate_ids[{k}]" if ids else "all_revisions",
+                                 f"candidate {rec.id!r} (revision {rec.revision}) does not assign "
+                                 f"the variables of revision {rev}")
+            pos = {lab: i for i, lab in enumerate(rec.labels)}
+            X[k] = rec.x[[pos[lab] for lab in problem.labels]]
+        return rev, problem, CandidateSet(tuple(r.id for r in recs), X)

@@ -1,0 +1,191 @@
+"""Repair jobs in a process pool, with cancellation and progress through shared memory.
+
+The server owns a :class:`RepairPool`: a ``ProcessPoolExecutor`` (spawn context)
+plus a fixed number of *slots* (workers + queue length). A job takes a slot or is
+refused (:class:`service.errors.QueueFullError` -> RESOURCE_EXHAUSTED). Each slot
+is a row of a shared ``float64`` array, ``SLOT_WIDTH`` wide:
+
+    [0] cancel flag (set by the server; the worker turns it into a threading.Event)
+    [1] candidates done   [2] total   [3] best cost so far (NaN: none)   [4] update count
+
+so a cancelled gRPC call stops its solver, and a streaming call can report progress,
+without a manager process or pipes per job.
+"""
+
+from __future__ import annotations
+
+import math
+import multiprocessing as mp
+import os
+import threading
+from concurrent.futures import Future, ProcessPoolExecutor
+from concurrent.futures.process import BrokenProcessPool
+from dataclasses import dataclass
+
+from .errors import QueueFullError, TransientError
+
+__all__ = ["RepairPool", "Job", "SLOT_WIDTH"]
+
+SLOT_WIDTH = 5
+_FLAGS = None  # the shared array, in a worker process
+
+
+# ------------------------------------------------------------ worker side
+def _init(flags) -> None:
+    global _FLAGS
+    _FLAGS = flags
+
+
+def _warm() -> int:
+    """Import the core (and compile its kernels) before the first real job."""
+    import numpy as np
+
+    from repair import CandidateSet, Problem, repair
+
+    p = Problem.from_terms({0: 1.0, 1: -1.0}, [(0, 1, 0.5)])
+    try:
+        repair(p, CandidateSet.from_array(p, np.array([[1, 0]])), [], method="greedy",
+               time_limit=0.5)
+    except Exception:  # noqa: BLE001 - warming is best effort
+        pass
+    return os.getpid()
+
+
+def _run(slot: int, problem, candidates, constraints, kwargs: dict):
+    """Run :func:`repair.repair` for one job; honours the slot's cancel flag."""
+    from repair import repair
+
+    base = slot * SLOT_WIDTH
+    cancel = threading.Event()
+    finished = threading.Event()
+
+    def watch() -> None:
+        while not finished.wait(0.02):
+            if _FLAGS[base] != 0.0:
+                cancel.set()
+                return
+
+    if _FLAGS[base] != 0.0:
+        cancel.set()
+    threading.Thread(target=watch, daemon=True, name="flipfix-cancel-watch").start()
+
+    def progress(info: dict) -> None:
+        _FLAGS[base + 1] = float(info.get("done", 0) or 0)
+        _FLAGS[base + 2] = float(info.get("total", 0) or 0)
+        best = info.get("best_cost")
+        _FLAGS[base + 3] = math.nan if best is None else float(best)
+        _FLAGS[base + 4] += 1.0
+
+    try:
+        return repair(problem, candidates, constraints, cancel=cancel, progress=progress, **kwargs)
+    finally:
+        finished.set()
+
+
+# ------------------------------------------------------------ server side
+@dataclass
+class Progress:
+    done: int
+    total: int
+    best_cost: float | None
+    updates: int
+
+
+class Job:
+    """A submitted repair: its slot, its future, and the shared flags."""
+
+    def __init__(self, slot: int, future: Future, flags):
+        self.slot = slot
+        self.future = future
+        self._flags = flags
+
+    def cancel(self) -> None:
+        """Ask the worker to stop (it returns its best so far); drop it if still queued."""
+        if not self.future.done():
+            self._flags[self.slot * SLOT_WIDTH] = 1.0
+            self.future.cancel()
+
+    @property
+    def cancel_requested(self) -> bool:
+        return self._flags[self.slot * SLOT_WIDTH] != 0.0
+
+    def progress(self) -> Progress:
+        b = self.slot * SLOT_WIDTH
+        best = self._flags[b + 3]
+        return Progress(int(self._flags[b + 1]), int(self._flags[b + 2]),
+                        None if math.isnan(best) else float(best), int(self._flags[b + 4]))
+
+
+class RepairPool:
+    """``workers`` processes and ``workers + queue_size`` slots (running + waiting jobs)."""
+
+    def __init__(self, *, workers: int = 1, queue_size: int = 4, warm: bool = True):
+        if workers < 1:
+            raise ValueError("workers must be >= 1")
+        self.workers = workers
+        self.slots = workers + max(0, queue_size)
+        self._ctx = mp.get_context("spawn")
+        self._flags = self._ctx.RawArray("d", self.slots * SLOT_WIDTH)
+        self._lock = threading.Lock()
+        self._free = list(range(self.slots))
+        self._jobs: dict[int, Job] = {}
+        self._closed = False
+        self._executor = self._new_executor()
+        if warm:
+            for _ in range(workers):
+                self._executor.submit(_warm)
+
+    def _new_executor(self) -> ProcessPoolExecutor:
+        return ProcessPoolExecutor(max_workers=self.workers, mp_context=self._ctx,
+                                   initializer=_init, initargs=(self._flags,))
+
+    @property
+    def busy(self) -> int:
+        """Slots in use (running or queued jobs)."""
+        with self._lock:
+            return self.slots - len(self._free)
+
+    def submit(self, problem, candidates, constraints, kwargs: dict) -> Job:
+        with self._lock:
+            if self._closed:
+                raise TransientError("server", "shutting down")
+            if not self._free:
+                raise QueueFullError("repair", f"all {self.slots} repair slots are busy; retry later")
+            slot = self._free.pop()
+            b = slot * SLOT_WIDTH
+            self._flags[b:b + SLOT_WIDTH] = [0.0, 0.0, 0.0, math.nan, 0.0]
+            try:
+                fut = self._executor.submit(_run, slot, problem, candidates, constraints, kwargs)
+            except BrokenProcessPool:
+                self._free.append(slot)
+                self._executor = self._new_executor()
+                raise TransientError("repair", "the worker pool was restarted; retry") from None
+            except RuntimeError:  # executor shut down
+                self._free.append(slot)
+                raise TransientError("server", "shutting down") from None
+            job = Job(slot, fut, self._flags)
+            self._jobs[slot] = job
+        fut.add_done_callback(lambda _f, s=slot: self._release(s))
+        return job
+
+    def _release(self, slot: int) -> None:
+        with self._lock:
+            self._jobs.pop(slot, None)
+            self._free.append(slot)
+
+    def restart_if_broken(self) -> None:
+        with self._lock:
+            if getattr(self._executor, "_broken", False) and not self._closed:
+                self._executor = self._new_executor()
+
+    def cancel_all(self) -> None:
+        with self._lock:
+            jobs = list(self._jobs.values())
+        for job in jobs:
+            job.cancel()
+
+    def shutdown(self, *, wait: bool = True) -> None:
+        with self._lock:
+            self._closed = True
+        self.cancel_all()
+        self._executor.shutdown(wait=wait, cancel_futures=True)
