@@ -479,17 +479,20 @@ def descend_qubo(h, indptr, indices, data, X0, *, fixed=None, flip_price: float 
     return X, steps
 
 
-def greedy_repair(compiled: Compiled, X0: np.ndarray, *, max_flips: int | None = None,
-                  flip_price: float = 0.0, deadline: float | None = None, cancel=None,
-                  chunk: int = 64, pair_width: int = 6, progress=None) -> GreedyOutput:
+def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | None = None,
+                  max_flips: int | None = None, flip_price: float = 0.0,
+                  deadline: float | None = None, cancel=None, chunk: int = 64,
+                  pair_width: int = 6, progress=None) -> GreedyOutput:
     """Repair every row of X0 (int8 (K, n), 0/1) greedily on the compiled late problem.
 
+    ``origin`` (int8 (K, n), default X0) is what flips are counted from (radius, price).
     ``deadline`` is a ``time.perf_counter()`` value; candidates not reached by then
     (or after ``cancel`` is set) are returned unchanged with ``done`` False.
     ``progress(done, total)`` is called after each chunk.
     """
     X0 = np.ascontiguousarray(X0, dtype=np.int8)
     K, n = X0.shape
+    O = X0 if origin is None else np.ascontiguousarray(origin, dtype=np.int8)
     X = X0.copy()
     steps = np.zeros(K, dtype=np.int64)
     done = np.zeros(K, dtype=bool)
@@ -510,13 +513,13 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, max_flips: int | None =
         Xc = X[sl].copy()
         st = np.zeros(Xc.shape[0], dtype=np.int64)
         if fast:
-            _descend_tree(Xc, X0[sl], compiled.h, compiled.indptr, compiled.indices,
+            _descend_tree(Xc, O[sl], compiled.h, compiled.indptr, compiled.indices,
                           compiled.data, compiled.fixed, float(flip_price), tol, max_steps, st)
         else:
             (cp_ptr, cp_table, cp_const, t_pen, t_coef, t_ar, l_ptr, l_var, l_val, vt_ptr,
              vt_term, vt_lit) = cnt
             a_ptr, a_col, a_val, col_ptr, col_row, col_val, rtol = rows
-            _descend_general(Xc, X0[sl], compiled.h, compiled.indptr, compiled.indices,
+            _descend_general(Xc, O[sl], compiled.h, compiled.indptr, compiled.indices,
                              compiled.data, compiled.fixed, float(flip_price), tol, max_steps,
                              radius, cp_ptr, cp_table, cp_const, t_pen, t_coef, t_ar, l_ptr,
                              l_var, l_val, vt_ptr, vt_term, vt_lit, a_ptr, a_col, a_val,
@@ -529,3 +532,18 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, max_flips: int | None =
         if progress is not None:
             progress(int(done.sum()), K)
     return GreedyOutput(X=X, steps=steps, done=done, seconds=seconds)
+
+
+def warm_up() -> None:
+    """Compile (or load from cache) both kernels on a tiny model, so a first request
+    does not pay the compilation time. Safe to call more than once."""
+    from .compiled import compile_constraints
+    from .constraints import HammingPenalty, LinearConstraint
+    from .model import Problem
+
+    p = Problem.from_terms({0: -1.0, 1: 1.0, 2: 0.5}, [(0, 1, 2.0), (1, 2, -1.0)])
+    X0 = np.zeros((1, 3), dtype=np.int8)
+    greedy_repair(compile_constraints(p, []), X0)
+    greedy_repair(compile_constraints(p, [
+        HammingPenalty({0: 1, 1: 1, 2: 1}, shape="quadratic"),
+        LinearConstraint({0: 1, 1: 1}, "==", 1)]), X0)

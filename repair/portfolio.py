@@ -6,10 +6,13 @@ candidate it started from); :mod:`repair.api` scores them and builds the result.
 Portfolio, within a budget of T seconds:
 
 1. greedy repair of every candidate (it may use up to 60% of T);
-2. local branching: CP-SAT around the candidates whose greedy results rank best,
+2. iterated local search: random kicks of a few free variables applied to the best
+   repaired solutions, each followed by greedy descent, improvements kept — a share
+   ``KICK_SHARE`` of what is left;
+3. local branching: CP-SAT around the candidates whose greedy results rank best,
    each hinted with its greedy result, within ``greedy flips + margin`` of the
    candidate (or within ``max_flips``) — half of what is left;
-3. an unhinted CP-SAT search of the whole late problem, asked only for solutions
+4. an unhinted CP-SAT search of the whole late problem, asked only for solutions
    better than the best so far — the rest. A hint alone tends to keep CP-SAT in
    the hinted basin, so this search runs without one; if it proves that nothing
    better exists, the answer is optimal.
@@ -29,7 +32,9 @@ __all__ = ["Attempt", "PlanOutcome", "run_plan"]
 
 #: share of the budget greedy may take inside the portfolio; neighbourhoods get half the rest.
 GREEDY_SHARE = 0.6
+KICK_SHARE = 0.4
 NEIGHBOURHOODS = 3
+KICK_BATCH = 32
 
 
 @dataclass
@@ -102,6 +107,18 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: flo
         return out
 
     ev, obj, flips = _objective(compiled, g.X, X0, flip_price)
+    cur = g.X.copy()
+    kick_deadline = time.perf_counter() + KICK_SHARE * (deadline - time.perf_counter())
+    rounds, kept = _kicks(compiled, X0, cur, obj, ev.feasible, g.done, out,
+                          deadline=kick_deadline, max_flips=max_flips, flip_price=flip_price,
+                          seed=seed, cancel=cancel)
+    out.stats["kick_rounds"] = rounds
+    out.stats["kick_improvements"] = kept
+    report(done=K, total=K, phase="kicks")
+    if stopped():
+        return out
+    ev, obj, flips = _objective(compiled, cur, X0, flip_price)
+    g.X = cur
     order = [int(k) for k in _ranked(ev.feasible, obj) if g.done[k]]
     seen: set = set()
     tops = []
@@ -159,6 +176,44 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: flo
             out.proven_optimal = True  # nothing better than best_obj exists
     report(done=K, total=K, phase="full", best_cost=best_obj)
     return out
+
+
+def _kicks(compiled, X0, cur, obj, feasible, done, out, *, deadline, max_flips, flip_price,
+           seed, cancel):
+    """Iterated local search on the best repaired solutions, in place on ``cur`` / ``obj``.
+
+    Each round takes the best ``KICK_BATCH`` candidates' current solutions, flips a
+    random handful of free variables in each (seeded), descends greedily and keeps
+    a result when it is feasible and better for its candidate. Returns (rounds, kept).
+    """
+    rng = np.random.default_rng(seed)
+    free = np.flatnonzero(compiled.fixed < 0)
+    K, n = cur.shape
+    if free.size == 0:
+        return 0, 0
+    rounds = kept = 0
+    top_kick = max(2, min(free.size, n // 10))
+    while time.perf_counter() < deadline and not (cancel is not None and cancel.is_set()):
+        order = [int(k) for k in _ranked(feasible, obj) if done[k]][:KICK_BATCH]
+        if not order:
+            break
+        starts = cur[order].copy()
+        for row in starts:
+            r = int(rng.integers(2, top_kick + 1))
+            idx = rng.choice(free, size=min(r, free.size), replace=False)
+            row[idx] ^= 1
+        g = greedy_repair(compiled, starts, origin=X0[order], max_flips=max_flips,
+                          flip_price=flip_price, deadline=deadline, cancel=cancel)
+        ev, new_obj, _ = _objective(compiled, g.X, X0[order], flip_price)
+        for pos, k in enumerate(order):
+            if g.done[pos] and ev.feasible[pos] and (not feasible[k] or new_obj[pos] < obj[k] - 1e-9):
+                cur[k] = g.X[pos]
+                obj[k] = new_obj[pos]
+                feasible[k] = True
+                out.attempts.append(Attempt(k, g.X[pos].copy(), "greedy", float(g.seconds[pos])))
+                kept += 1
+        rounds += 1
+    return rounds, kept
 
 
 def _per_candidate_cpsat(compiled, X0, out, *, deadline, max_flips, flip_price, seed, workers,
