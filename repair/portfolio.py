@@ -204,9 +204,12 @@ def _kicks(compiled, X0, cur, obj, feasible, done, out, *, deadline, max_flips, 
             row[idx] ^= 1
         g = greedy_repair(compiled, starts, origin=X0[order], max_flips=max_flips,
                           flip_price=flip_price, deadline=deadline, cancel=cancel)
-        ev, new_obj, _ = _objective(compiled, g.X, X0[order], flip_price)
+        ev, new_obj, new_flips = _objective(compiled, g.X, X0[order], flip_price)
+        inside = np.ones(len(order), dtype=bool) if max_flips is None else new_flips <= max_flips
         for pos, k in enumerate(order):
-            if g.done[pos] and ev.feasible[pos] and (not feasible[k] or new_obj[pos] < obj[k] - 1e-9):
+            if not (g.done[pos] and ev.feasible[pos] and inside[pos]):
+                continue
+            if not feasible[k] or new_obj[pos] < obj[k] - 1e-9:
                 cur[k] = g.X[pos]
                 obj[k] = new_obj[pos]
                 feasible[k] = True
