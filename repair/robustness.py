@@ -32,7 +32,7 @@ from .model import Decision, Problem
 __all__ = [
     "CandidateProfile", "RobustnessReport", "robustness_profile", "free_variable_counts",
     "free_decision_counts", "decision_move_costs", "hamming_to_rows", "nearest_other",
-    "codewords", "ROUNDOFF",
+    "codewords", "flip_cost_matrix", "ROUNDOFF", "DENSE_MAX_N",
 ]
 
 #: Relative round-off allowance when comparing a flip cost to epsilon: a cost
@@ -130,6 +130,40 @@ def _tolerance(problem: Problem) -> float:
     return ROUNDOFF * (1.0 + scale)
 
 
+#: Largest n for which single-flip costs use a dense (n, n) coupling matrix.
+DENSE_MAX_N = 2048
+
+
+def _costs_and_energies(problem: Problem, X: np.ndarray, *,
+                        block: int = 512) -> tuple[np.ndarray, np.ndarray]:
+    """Single-flip costs float64 (K, n) and energies float64 (K,) of a whole library.
+
+    Small models (n <= DENSE_MAX_N) use one dense product: local fields
+    ``F = X @ J + h``, costs ``(1 - 2X) * F`` and energies
+    ``offset + sum_i x_i (h_i + F_i) / 2``; larger ones call
+    ``problem.flip_costs`` and ``problem.energies`` on blocks of rows.
+    """
+    K, n = X.shape
+    if n <= DENSE_MAX_N:
+        J = np.zeros((n, n))
+        rows = np.repeat(np.arange(n), np.diff(problem.indptr))
+        J[rows, problem.indices] = problem.data
+        Xf = X.astype(np.float64)
+        F = Xf @ J + problem.linear
+        return (1.0 - 2.0 * Xf) * F, problem.offset + 0.5 * (Xf * (F + problem.linear)).sum(axis=1)
+    costs = np.empty((K, n))
+    energy = np.empty(K)
+    for start in range(0, K, block):
+        costs[start:start + block] = problem.flip_costs(X[start:start + block])
+        energy[start:start + block] = problem.energies(X[start:start + block])
+    return costs, energy
+
+
+def flip_cost_matrix(problem: Problem, X: np.ndarray) -> np.ndarray:
+    """``problem.flip_costs(X)`` float64 (K, n), computed for a whole library."""
+    return _costs_and_energies(problem, X)[0]
+
+
 def free_variable_counts(problem: Problem, X, *, epsilon: float = 0.0,
                          costs: np.ndarray | None = None) -> np.ndarray:
     """Number of variables whose single flip costs ``<= epsilon``: int64 (K,).
@@ -139,7 +173,7 @@ def free_variable_counts(problem: Problem, X, *, epsilon: float = 0.0,
     """
     X = _as_X(problem, X, "candidates")
     eps = _epsilon(epsilon)
-    c = problem.flip_costs(X) if costs is None else costs
+    c = flip_cost_matrix(problem, X) if costs is None else costs
     return (c <= eps + _tolerance(problem)).sum(axis=1).astype(np.int64)
 
 
@@ -161,7 +195,7 @@ def decision_move_costs(problem: Problem, X, decision: Decision, *,
     are not a valid code word, are ``+inf``.
     """
     X = _as_X(problem, X, "candidates")
-    c = problem.flip_costs(X) if costs is None else costs
+    c = flip_cost_matrix(problem, X) if costs is None else costs
     cols = np.asarray([problem.index[v] for v in decision.variables], dtype=np.int64)
     words = codewords(decision)  # (k, m)
     bits = X[:, cols]  # (K, m)
@@ -200,7 +234,7 @@ def free_decision_counts(problem: Problem, X, *, epsilon: float = 0.0,
     """Number of decisions with a valid move costing ``<= epsilon``: int64 (K,)."""
     X = _as_X(problem, X, "candidates")
     eps = _epsilon(epsilon)
-    c = problem.flip_costs(X) if costs is None else costs
+    c = flip_cost_matrix(problem, X) if costs is None else costs
     tol = _tolerance(problem)
     count = np.zeros(X.shape[0], dtype=np.int64)
     for d in problem.decisions:
@@ -211,9 +245,12 @@ def free_decision_counts(problem: Problem, X, *, epsilon: float = 0.0,
 
 def hamming_to_rows(X: np.ndarray, R: np.ndarray) -> np.ndarray:
     """Hamming distances between every row of X (K, n) and of R (L, n): int64 (K, L)."""
-    Xf = X.astype(np.float64)
-    Rf = R.astype(np.float64)
-    d = Xf.sum(axis=1)[:, None] + Rf.sum(axis=1)[None, :] - 2.0 * (Xf @ Rf.T)
+    # float32 products of 0/1 rows are exact while n < 2**24
+    dt = np.float32 if X.shape[1] < 2**24 else np.float64
+    Xf = X.astype(dt)
+    Rf = R.astype(dt)
+    d = (X.sum(axis=1, dtype=np.int64)[:, None] + R.sum(axis=1, dtype=np.int64)[None, :]
+         - 2.0 * (Xf @ Rf.T).astype(np.float64))
     return np.rint(d).astype(np.int64)
 
 
@@ -240,30 +277,31 @@ def nearest_other(X: np.ndarray, *, block: int = 1024) -> tuple[np.ndarray, np.n
 
 # --------------------------------------------------------------- the profile
 def robustness_profile(problem: Problem, candidates: CandidateSet, *,
-                       epsilon: float = 0.0) -> RobustnessReport:
+                       epsilon: float = 0.0, spectrum: bool = True) -> RobustnessReport:
     """Robustness figures of every candidate (see the module docstring).
 
     The best candidate is the one of lowest energy (ties: first in library order).
+    ``spectrum=False`` leaves each profile's ``spectrum`` empty (K * n floats
+    are many for a large library; the summary counts are always computed).
     """
     if not isinstance(candidates, CandidateSet):
         raise InputError("candidates", f"expected a CandidateSet, got {type(candidates).__name__}")
     eps = _epsilon(epsilon)
     X = _as_X(problem, candidates.X, "candidates")
     K = X.shape[0]
-    energy = problem.energies(X)  # (K,)
-    costs = problem.flip_costs(X)  # (K, n)
+    costs, energy = _costs_and_energies(problem, X)  # (K, n), (K,)
     tol = _tolerance(problem)
     free = (costs <= eps + tol).sum(axis=1)
     free_dec = free_decision_counts(problem, X, epsilon=eps, costs=costs)
     improving = (costs < -tol).sum(axis=1)
-    spectrum = np.sort(costs, axis=1)
+    ordered = np.sort(costs, axis=1)
     absE = np.abs(energy)[:, None]
     w1 = (costs <= 0.01 * absE + tol).sum(axis=1)
     w5 = (costs <= 0.05 * absE + tol).sum(axis=1)
     best = int(np.argmin(energy)) if K else 0
     to_best = hamming_to_rows(X, X[best:best + 1])[:, 0]
     near_d, near_i = nearest_other(X)
-    min_cost = spectrum[:, 0] if problem.n else np.full(K, np.inf)
+    min_cost = ordered[:, 0] if problem.n else np.full(K, np.inf)
     profiles = [
         CandidateProfile(
             candidate_id=candidates.ids[k], energy=float(energy[k]),
@@ -272,7 +310,7 @@ def robustness_profile(problem: Problem, candidates: CandidateSet, *,
             within_1pct=int(w1[k]), within_5pct=int(w5[k]),
             distance_to_best=int(to_best[k]), nearest_other=int(near_d[k]),
             nearest_other_id=candidates.ids[near_i[k]] if near_i[k] >= 0 else "",
-            spectrum=spectrum[k].tolist(),
+            spectrum=ordered[k].tolist() if spectrum else [],
         )
         for k in range(K)
     ]

@@ -375,7 +375,7 @@ def stress_test(problem: Problem, candidates: CandidateSet,
         if not drawn or not all(isinstance(s, Scenario) for s in drawn):
             raise InputError("family", "must be a ScenarioFamily or a non-empty list of Scenario")
         family_doc = {"scenarios": "given"}
-    profile = robustness_profile(problem, candidates, epsilon=epsilon)
+    profile = robustness_profile(problem, candidates, epsilon=epsilon, spectrum=False)
     ids = list(candidates.ids)
     energy = profile.column("energy")
     free = profile.column("free_variables")

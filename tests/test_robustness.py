@@ -40,7 +40,12 @@ def _enumerated_deltas(bqm, samples, labels):
 
 @pytest.mark.parametrize("vartype", [dimod.BINARY, dimod.SPIN])
 @pytest.mark.parametrize("epsilon", [0.0, 1.0, 2.5])
-def test_free_variables_match_exhaustive_single_flip_enumeration(vartype, epsilon):
+@pytest.mark.parametrize("dense_max_n", [2048, 0])  # dense product / blocked CSR path
+def test_free_variables_match_exhaustive_single_flip_enumeration(vartype, epsilon, dense_max_n,
+                                                                  monkeypatch):
+    import repair.robustness as rob
+
+    monkeypatch.setattr(rob, "DENSE_MAX_N", dense_max_n)
     rng = np.random.default_rng(7)
     for trial in range(5):
         bqm = _random_bqm(rng, 9, vartype)
