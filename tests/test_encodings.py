@@ -514,3 +514,35 @@ def test_workshop_scenario_repairs_to_a_valid_timetable():
     text = s["render"](res.to_dict())
     assert "Mon AM" in text and "Mill" in text and "proposal" in text
     assert workshop_scenario(seed=0)["candidates"] == s["candidates"]   # seeded
+
+
+def test_proto_carries_integer_constraints_and_encoding_issues():
+    # proto round trip (service.convert): typed messages for the four integer kinds
+    from service import convert
+
+    s_doc = _doc()
+    p = documents.parse_problem(s_doc)
+    objs = [
+        {"type": "forbid_values", "decision": "a", "values": [3, 4], "name": "down"},
+        {"type": "force_value", "decision": "b", "value": "y"},
+        {"type": "allow_values", "decision": "a", "values": [1, 2, 3]},
+        {"type": "decision_change", "reference": {"a": 4, "b": "x"}, "weight": 2.5,
+         "distance": "changed", "shape": "table", "table": [0, 1, 5]},
+    ]
+    msgs = [convert.doc_to_constraint(o, p, field=f"constraints[{k}]") for k, o in enumerate(objs)]
+    assert [m.WhichOneof("kind") for m in msgs] == ["forbid_values", "force_value", "allow_values",
+                                                    "decision_change"]
+    back = convert.constraints_to_domain(msgs, p)
+    assert back == documents.parse_constraints(objs, p)
+    bad = convert.doc_to_constraint({"type": "forbid_values", "decision": "a", "values": [9]}, p,
+                                    field="constraints[0]")
+    with pytest.raises(InputError) as e:
+        convert.constraints_to_domain([bad], p)
+    assert e.value.field == "constraints[0].values[0]"
+    X = np.asarray([[0, 1, 1, 1, 1], [1, 0, 0, 1, 0]], dtype=np.int8)   # row 0 breaks a and b
+    res = repair(p, CandidateSet.from_array(p, X), back, method="cpsat", time_limit=0.5, seed=0)
+    reply = convert.result_to_reply(res)
+    assert [(i.decision, i.how) for i in reply.audit[0].encoding_issues] == res.audit[0].encoding_issues
+    assert [i.decision for i in reply.audit[0].encoding_issues] == ["a", "b"]
+    assert convert.reply_to_dict(reply)["audit"] == [
+        {**row, "seconds": round(row["seconds"], 6)} for row in res.to_dict()["audit"]]

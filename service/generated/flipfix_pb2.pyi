@@ -29,6 +29,12 @@ class Sense(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     EQ: _ClassVar[Sense]
     GE: _ClassVar[Sense]
 
+class DecisionDistance(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+    __slots__ = ()
+    DISTANCE_UNSPECIFIED: _ClassVar[DecisionDistance]
+    CHANGED: _ClassVar[DecisionDistance]
+    ABSOLUTE: _ClassVar[DecisionDistance]
+
 class Method(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = ()
     METHOD_UNSPECIFIED: _ClassVar[Method]
@@ -47,6 +53,9 @@ SENSE_UNSPECIFIED: Sense
 LE: Sense
 EQ: Sense
 GE: Sense
+DISTANCE_UNSPECIFIED: DecisionDistance
+CHANGED: DecisionDistance
+ABSOLUTE: DecisionDistance
 METHOD_UNSPECIFIED: Method
 PORTFOLIO: Method
 GREEDY: Method
@@ -310,8 +319,66 @@ class ForbidAssignment(_message.Message):
     assignment: Assignment
     def __init__(self, assignment: _Optional[_Union[Assignment, _Mapping]] = ...) -> None: ...
 
+class DecisionValue(_message.Message):
+    __slots__ = ("str", "int", "num")
+    STR_FIELD_NUMBER: _ClassVar[int]
+    INT_FIELD_NUMBER: _ClassVar[int]
+    NUM_FIELD_NUMBER: _ClassVar[int]
+    str: str
+    int: int
+    num: float
+    def __init__(self, str: _Optional[str] = ..., int: _Optional[int] = ..., num: _Optional[float] = ...) -> None: ...
+
+class ForbidValues(_message.Message):
+    __slots__ = ("decision", "values")
+    DECISION_FIELD_NUMBER: _ClassVar[int]
+    VALUES_FIELD_NUMBER: _ClassVar[int]
+    decision: str
+    values: _containers.RepeatedCompositeFieldContainer[DecisionValue]
+    def __init__(self, decision: _Optional[str] = ..., values: _Optional[_Iterable[_Union[DecisionValue, _Mapping]]] = ...) -> None: ...
+
+class ForceValue(_message.Message):
+    __slots__ = ("decision", "value")
+    DECISION_FIELD_NUMBER: _ClassVar[int]
+    VALUE_FIELD_NUMBER: _ClassVar[int]
+    decision: str
+    value: DecisionValue
+    def __init__(self, decision: _Optional[str] = ..., value: _Optional[_Union[DecisionValue, _Mapping]] = ...) -> None: ...
+
+class AllowValues(_message.Message):
+    __slots__ = ("decision", "values")
+    DECISION_FIELD_NUMBER: _ClassVar[int]
+    VALUES_FIELD_NUMBER: _ClassVar[int]
+    decision: str
+    values: _containers.RepeatedCompositeFieldContainer[DecisionValue]
+    def __init__(self, decision: _Optional[str] = ..., values: _Optional[_Iterable[_Union[DecisionValue, _Mapping]]] = ...) -> None: ...
+
+class DecisionReference(_message.Message):
+    __slots__ = ("decision", "value")
+    DECISION_FIELD_NUMBER: _ClassVar[int]
+    VALUE_FIELD_NUMBER: _ClassVar[int]
+    decision: str
+    value: DecisionValue
+    def __init__(self, decision: _Optional[str] = ..., value: _Optional[_Union[DecisionValue, _Mapping]] = ...) -> None: ...
+
+class DecisionChangePenalty(_message.Message):
+    __slots__ = ("reference", "weight", "shape", "threshold", "table", "distance")
+    REFERENCE_FIELD_NUMBER: _ClassVar[int]
+    WEIGHT_FIELD_NUMBER: _ClassVar[int]
+    SHAPE_FIELD_NUMBER: _ClassVar[int]
+    THRESHOLD_FIELD_NUMBER: _ClassVar[int]
+    TABLE_FIELD_NUMBER: _ClassVar[int]
+    DISTANCE_FIELD_NUMBER: _ClassVar[int]
+    reference: _containers.RepeatedCompositeFieldContainer[DecisionReference]
+    weight: float
+    shape: PenaltyShape
+    threshold: float
+    table: _containers.RepeatedScalarFieldContainer[float]
+    distance: DecisionDistance
+    def __init__(self, reference: _Optional[_Iterable[_Union[DecisionReference, _Mapping]]] = ..., weight: _Optional[float] = ..., shape: _Optional[_Union[PenaltyShape, str]] = ..., threshold: _Optional[float] = ..., table: _Optional[_Iterable[float]] = ..., distance: _Optional[_Union[DecisionDistance, str]] = ...) -> None: ...
+
 class Constraint(_message.Message):
-    __slots__ = ("name", "hamming", "extra", "fix", "linear", "forbid", "json")
+    __slots__ = ("name", "hamming", "extra", "fix", "linear", "forbid", "json", "forbid_values", "force_value", "allow_values", "decision_change")
     NAME_FIELD_NUMBER: _ClassVar[int]
     HAMMING_FIELD_NUMBER: _ClassVar[int]
     EXTRA_FIELD_NUMBER: _ClassVar[int]
@@ -319,6 +386,10 @@ class Constraint(_message.Message):
     LINEAR_FIELD_NUMBER: _ClassVar[int]
     FORBID_FIELD_NUMBER: _ClassVar[int]
     JSON_FIELD_NUMBER: _ClassVar[int]
+    FORBID_VALUES_FIELD_NUMBER: _ClassVar[int]
+    FORCE_VALUE_FIELD_NUMBER: _ClassVar[int]
+    ALLOW_VALUES_FIELD_NUMBER: _ClassVar[int]
+    DECISION_CHANGE_FIELD_NUMBER: _ClassVar[int]
     name: str
     hamming: HammingPenalty
     extra: ExtraTerms
@@ -326,7 +397,11 @@ class Constraint(_message.Message):
     linear: LinearConstraint
     forbid: ForbidAssignment
     json: str
-    def __init__(self, name: _Optional[str] = ..., hamming: _Optional[_Union[HammingPenalty, _Mapping]] = ..., extra: _Optional[_Union[ExtraTerms, _Mapping]] = ..., fix: _Optional[_Union[FixVariables, _Mapping]] = ..., linear: _Optional[_Union[LinearConstraint, _Mapping]] = ..., forbid: _Optional[_Union[ForbidAssignment, _Mapping]] = ..., json: _Optional[str] = ...) -> None: ...
+    forbid_values: ForbidValues
+    force_value: ForceValue
+    allow_values: AllowValues
+    decision_change: DecisionChangePenalty
+    def __init__(self, name: _Optional[str] = ..., hamming: _Optional[_Union[HammingPenalty, _Mapping]] = ..., extra: _Optional[_Union[ExtraTerms, _Mapping]] = ..., fix: _Optional[_Union[FixVariables, _Mapping]] = ..., linear: _Optional[_Union[LinearConstraint, _Mapping]] = ..., forbid: _Optional[_Union[ForbidAssignment, _Mapping]] = ..., json: _Optional[str] = ..., forbid_values: _Optional[_Union[ForbidValues, _Mapping]] = ..., force_value: _Optional[_Union[ForceValue, _Mapping]] = ..., allow_values: _Optional[_Union[AllowValues, _Mapping]] = ..., decision_change: _Optional[_Union[DecisionChangePenalty, _Mapping]] = ...) -> None: ...
 
 class RepairOptions(_message.Message):
     __slots__ = ("method", "time_limit", "max_flips", "flip_price", "seed", "workers", "audit_limit", "pareto")
@@ -421,7 +496,7 @@ class Solution(_message.Message):
     def __init__(self, candidate_id: _Optional[str] = ..., assignment: _Optional[_Union[Assignment, _Mapping]] = ..., cost: _Optional[float] = ..., objective: _Optional[float] = ..., base_energy: _Optional[float] = ..., penalties: _Optional[_Iterable[_Union[NamedValue, _Mapping]]] = ..., flips: _Optional[int] = ..., feasible: _Optional[bool] = ..., violation: _Optional[float] = ..., violations: _Optional[_Iterable[_Union[NamedValue, _Mapping]]] = ..., method: _Optional[str] = ..., changes: _Optional[_Iterable[_Union[DecisionChange, _Mapping]]] = ..., decisions_changed: _Optional[int] = ...) -> None: ...
 
 class AuditRow(_message.Message):
-    __slots__ = ("candidate_id", "cost_before", "feasible_before", "cost", "objective", "flips", "feasible", "violation", "method", "seconds", "decisions_changed")
+    __slots__ = ("candidate_id", "cost_before", "feasible_before", "cost", "objective", "flips", "feasible", "violation", "method", "seconds", "decisions_changed", "encoding_issues")
     CANDIDATE_ID_FIELD_NUMBER: _ClassVar[int]
     COST_BEFORE_FIELD_NUMBER: _ClassVar[int]
     FEASIBLE_BEFORE_FIELD_NUMBER: _ClassVar[int]
@@ -433,6 +508,7 @@ class AuditRow(_message.Message):
     METHOD_FIELD_NUMBER: _ClassVar[int]
     SECONDS_FIELD_NUMBER: _ClassVar[int]
     DECISIONS_CHANGED_FIELD_NUMBER: _ClassVar[int]
+    ENCODING_ISSUES_FIELD_NUMBER: _ClassVar[int]
     candidate_id: str
     cost_before: float
     feasible_before: bool
@@ -444,7 +520,16 @@ class AuditRow(_message.Message):
     method: str
     seconds: float
     decisions_changed: int
-    def __init__(self, candidate_id: _Optional[str] = ..., cost_before: _Optional[float] = ..., feasible_before: _Optional[bool] = ..., cost: _Optional[float] = ..., objective: _Optional[float] = ..., flips: _Optional[int] = ..., feasible: _Optional[bool] = ..., violation: _Optional[float] = ..., method: _Optional[str] = ..., seconds: _Optional[float] = ..., decisions_changed: _Optional[int] = ...) -> None: ...
+    encoding_issues: _containers.RepeatedCompositeFieldContainer[EncodingIssue]
+    def __init__(self, candidate_id: _Optional[str] = ..., cost_before: _Optional[float] = ..., feasible_before: _Optional[bool] = ..., cost: _Optional[float] = ..., objective: _Optional[float] = ..., flips: _Optional[int] = ..., feasible: _Optional[bool] = ..., violation: _Optional[float] = ..., method: _Optional[str] = ..., seconds: _Optional[float] = ..., decisions_changed: _Optional[int] = ..., encoding_issues: _Optional[_Iterable[_Union[EncodingIssue, _Mapping]]] = ...) -> None: ...
+
+class EncodingIssue(_message.Message):
+    __slots__ = ("decision", "how")
+    DECISION_FIELD_NUMBER: _ClassVar[int]
+    HOW_FIELD_NUMBER: _ClassVar[int]
+    decision: str
+    how: str
+    def __init__(self, decision: _Optional[str] = ..., how: _Optional[str] = ...) -> None: ...
 
 class ParetoPoint(_message.Message):
     __slots__ = ("cost", "flips", "candidate_id", "method")
