@@ -23,6 +23,7 @@ from .constraints import (
     ExtraTerms, FixVariables, ForbidAssignment, HammingPenalty, LinearConstraint, _number,
     shape_table,
 )
+from .batching import row_slices
 from .errors import InputError
 from .model import Problem
 
@@ -297,10 +298,22 @@ class Compiled:
         return np.where(viol > tol, viol, 0.0)
 
     def evaluate(self, X: np.ndarray) -> "Evaluation":
-        """Cost split and violations for X int8 (K, n)."""
+        """Cost split and violations for X int8 (K, n), computed in row chunks."""
         X = np.asarray(X, dtype=np.int8)
         if X.ndim == 1:
             X = X[None, :]
+        width = max(self.n, self.data.size, sum(len(s.terms) for s in self.counts) or 1)
+        parts = [self._evaluate(X[sl]) for sl in row_slices(X.shape[0], width)]
+        if len(parts) == 1:
+            return parts[0]
+        cat = np.concatenate
+        return Evaluation(
+            cost=cat([p.cost for p in parts]), base=cat([p.base for p in parts]),
+            penalties={k: cat([p.penalties[k] for p in parts]) for k in parts[0].penalties},
+            violations={k: cat([p.violations[k] for p in parts]) for k in parts[0].violations},
+            violation=cat([p.violation for p in parts]))
+
+    def _evaluate(self, X: np.ndarray) -> "Evaluation":
         base = self.problem.energies(X)
         penalties: dict = {}
         violations: dict = {}

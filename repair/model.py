@@ -20,6 +20,7 @@ from typing import Any, Hashable, Iterable, Mapping, Sequence
 
 import numpy as np
 
+from .batching import row_slices
 from .errors import InputError
 
 __all__ = ["Problem", "Decision", "BINARY", "SPIN", "check_label"]
@@ -279,27 +280,30 @@ class Problem:
         X = np.asarray(X)
         if X.ndim == 1:
             X = X[None, :]
-        Xf = X.astype(np.float64)
         i, j, J = self.pairs()
-        e = self.offset + Xf @ self.linear
-        if J.size:
-            e = e + (Xf[:, i] * Xf[:, j]) @ J
+        e = np.empty(X.shape[0])
+        for sl in row_slices(X.shape[0], max(self.n, J.size)):
+            Xf = X[sl].astype(np.float64)
+            e[sl] = self.offset + Xf @ self.linear
+            if J.size:
+                e[sl] += (Xf[:, i] * Xf[:, j]) @ J
         return e
 
     def local_fields(self, X: np.ndarray) -> np.ndarray:
         """h_i + sum_j J_ij x_j for every row of X: float64 (K, n)."""
-        X = np.asarray(X, dtype=np.float64)
+        X = np.asarray(X)
         if X.ndim == 1:
             X = X[None, :]
         out = np.tile(self.linear, (X.shape[0], 1))
         nnz = self.data.size
         if nnz:
-            # one zero column past the end so every row start is a valid index
-            contrib = np.zeros((X.shape[0], nnz + 1))
-            contrib[:, :nnz] = X[:, self.indices] * self.data  # (K, nnz)
             nonempty = np.diff(self.indptr) > 0
-            sums = np.add.reduceat(contrib, self.indptr[:-1], axis=1)  # empty rows: junk
-            out += np.where(nonempty, sums, 0.0)
+            for sl in row_slices(X.shape[0], nnz + 1):
+                # one zero column past the end so every row start is a valid index
+                contrib = np.zeros((sl.stop - sl.start, nnz + 1))
+                contrib[:, :nnz] = X[sl][:, self.indices] * self.data  # (k, nnz)
+                sums = np.add.reduceat(contrib, self.indptr[:-1], axis=1)  # empty rows: junk
+                out[sl] += np.where(nonempty, sums, 0.0)
         return out
 
     def flip_costs(self, X: np.ndarray) -> np.ndarray:
