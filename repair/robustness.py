@@ -4,8 +4,8 @@ A candidate sitting in a broad, flat basin has many variables whose single flip
 costs (almost) nothing; such a candidate tends to absorb late changes cheaply.
 This module measures that, vectorised over the whole library:
 
-* free variables: variables whose single-flip energy change is ``<= epsilon``
-  (default 0; negative changes count too: they are free and then some);
+* free variables: variables (outside declared decisions) whose single-flip
+  energy change is ``<= epsilon`` (default 0; negative changes count too);
 * free decisions: integer decisions (one-hot, domain wall; see
   :mod:`repair.encodings`) that can move to another value at a cost ``<= epsilon``
   (one-hot: the swap of the "on" bit with another bit, a pair flip; domain wall:
@@ -168,13 +168,24 @@ def free_variable_counts(problem: Problem, X, *, epsilon: float = 0.0,
                          costs: np.ndarray | None = None) -> np.ndarray:
     """Number of variables whose single flip costs ``<= epsilon``: int64 (K,).
 
-    ``X`` is int8 (K, n) 0/1 (or a :class:`CandidateSet`); ``costs`` may pass
-    precomputed ``problem.flip_costs(X)`` float64 (K, n).
+    Bits of declared decisions are left out: a single flip of a one-hot bit is
+    never a valid move, and decision moves are counted by
+    :func:`free_decision_counts`. ``X`` is int8 (K, n) 0/1 (or a
+    :class:`CandidateSet`); ``costs`` may pass precomputed
+    ``problem.flip_costs(X)`` float64 (K, n).
     """
     X = _as_X(problem, X, "candidates")
     eps = _epsilon(epsilon)
     c = flip_cost_matrix(problem, X) if costs is None else costs
-    return (c <= eps + _tolerance(problem)).sum(axis=1).astype(np.int64)
+    return ((c <= eps + _tolerance(problem)) & _plain_bits(problem)).sum(axis=1).astype(np.int64)
+
+
+def _plain_bits(problem: Problem) -> np.ndarray:
+    """bool (n,): True for variables that belong to no declared decision."""
+    mask = np.ones(problem.n, dtype=bool)
+    for d in problem.decisions:
+        mask[[problem.index[v] for v in d.variables]] = False
+    return mask
 
 
 def codewords(decision: Decision) -> np.ndarray:
@@ -291,7 +302,7 @@ def robustness_profile(problem: Problem, candidates: CandidateSet, *,
     K = X.shape[0]
     costs, energy = _costs_and_energies(problem, X)  # (K, n), (K,)
     tol = _tolerance(problem)
-    free = (costs <= eps + tol).sum(axis=1)
+    free = ((costs <= eps + tol) & _plain_bits(problem)).sum(axis=1)
     free_dec = free_decision_counts(problem, X, epsilon=eps, costs=costs)
     improving = (costs < -tol).sum(axis=1)
     ordered = np.sort(costs, axis=1)

@@ -230,7 +230,9 @@ class CandidateStress:
     assignment, in energy units; ``mean_regret`` is the mean excess over the
     scenario's best repair. Means and worsts cover the scenarios where this
     candidate's repair was feasible (``failures`` counts the others) and are
-    NaN when there is none.
+    NaN when there is none. ``free_variables`` counts free moves: free
+    variables outside declared decisions plus free decisions
+    (:mod:`repair.robustness`); it is the robustness side of the correlation.
     """
 
     candidate_id: str
@@ -378,7 +380,9 @@ def stress_test(problem: Problem, candidates: CandidateSet,
     profile = robustness_profile(problem, candidates, epsilon=epsilon, spectrum=False)
     ids = list(candidates.ids)
     energy = profile.column("energy")
-    free = profile.column("free_variables")
+    # robustness = free moves: free variables outside decisions plus free decisions
+    free = [a + b for a, b in zip(profile.column("free_variables"),
+                                  profile.column("free_decisions"))]
     pos = {cid: k for k, cid in enumerate(ids)}
     K = len(ids)
     cost_rows, flip_rows, feas_rows, seeds, descs = [], [], [], [], []

@@ -125,6 +125,11 @@ def test_decision_moves_match_enumeration_of_valid_codes():
             assert int(np.isfinite(got[k]).sum()) == moves
             want_any[k] += free
     assert free_decision_counts(p, cs).tolist() == want_any.tolist()
+    # free variables leave the decision bits out: only "c" counts (dimod energies)
+    c_flip = X.copy()
+    c_flip[:, 6] ^= 1
+    want_c = (bqm.energies((c_flip, labels)) - base <= 0.0).astype(int)
+    assert free_variable_counts(p, cs).tolist() == want_c.tolist()
     assert robustness_profile(p, cs).column("free_decisions") == want_any.tolist()
     assert want_any.max() >= 1  # the construction has free moves, so the check can fail
 
