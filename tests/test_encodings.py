@@ -253,6 +253,40 @@ def test_lowering_matches_definitions_on_every_string(encoding, shape, distance,
         assert ev.cost[r] == pytest.approx(want, abs=1e-9)
 
 
+@pytest.mark.parametrize("encoding", ["one_hot", "domain_wall"])
+@pytest.mark.parametrize("values", [(3, 1, 2, 0), (9, 5, 4, -2)])
+def test_absolute_distance_with_unordered_values(encoding, values):
+    # dimod.ExactSolver over every bit string: |value - ref| for values out of order
+    # (non-monotone: one term per value) and descending ones (per-bit steps)
+    U, G = integer_model(2, 4, seed=9)
+    p = encoded_problem(encoding, U, G, values=values)
+    ref = {"d0": values[1], "d1": values[3]}
+    comp = compile_constraints(p, [enc.DecisionChangePenalty(ref, weight=0.5, shape="quadratic",
+                                                             distance="absolute")])
+    ss = dimod.ExactSolver().sample(p.to_bqm())
+    X = np.asarray(ss.record.sample)[:, [ss.variables.index(v) for v in p.labels]].astype(np.int8)
+    ev = comp.evaluate(X)
+    for r, x in enumerate(X):
+        plan = plan_of(p, x)
+        if None in plan:
+            continue
+        dist = abs(values[plan[0]] - ref["d0"]) + abs(values[plan[1]] - ref["d1"])
+        assert ev.cost[r] == pytest.approx(ss.record.energy[r] + 0.5 * dist ** 2, abs=1e-9)
+
+
+def test_spin_problem_with_decisions():
+    # decisions read the internal 0/1 bits: spin +1 is bit 1 (s = 2x - 1)
+    d = Decision("c", "one_hot", ("a", "b", "c"), ("A", "B", "C"))
+    p = Problem.from_terms({"a": 0.5, "b": -0.25, "c": 0.0}, [("a", "b", 1.0)], vartype="SPIN",
+                           decisions=[d])
+    cands = CandidateSet.from_array(p, [[1, 1, -1], [-1, -1, -1]])
+    issues = enc.check_candidates(p, cands.X, ids=list(cands.ids))
+    assert [(i.candidate, i.decision) for i in issues] == [("c0", "c"), ("c1", "c")]
+    res = repair(p, cands, [enc.ForceValue("c", "B")], method="cpsat", time_limit=0.5, seed=0)
+    assert res.best.assignment == {"a": -1, "b": 1, "c": -1}
+    assert res.best.changes == [("c", None, "B")]
+
+
 def test_force_value_pins_every_bit():
     U, G = integer_model(2, 5, seed=2)
     for encoding in ("one_hot", "domain_wall"):
