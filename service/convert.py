@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 from typing import Any, Hashable, Iterable, Mapping, Sequence
 
 import numpy as np
@@ -240,6 +241,11 @@ def doc_to_candidates(doc: Any, problem: Problem, *, field: str = "candidates") 
 
 
 # -------------------------------------------------------------- constraints
+#: Further proto constraint kinds: oneof field name -> fn(message, problem, field, name) -> constraint.
+#: (The integer-decision kinds register here; the ``json`` kind covers every JSON type anyway.)
+CONSTRAINT_CONVERTERS: dict = {}
+
+
 def _reprefix(err: InputError, field: str) -> InputError:
     return err if err.field.startswith(field) else InputError(f"{field}.{err.field}", err.message)
 
@@ -308,9 +314,13 @@ def constraint_to_domain(c: pb.Constraint, problem: Problem, *, field: str) -> A
             if isinstance(obj, dict) and name and "name" not in obj:
                 obj["name"] = name
             return documents.parse_constraint(obj, problem, field=f)
+        if kind in CONSTRAINT_CONVERTERS:
+            return CONSTRAINT_CONVERTERS[kind](getattr(c, kind), problem, f, name)
     except InputError as err:
         raise _reprefix(err, f) from None
-    raise InputError(field, "no constraint kind set")
+    if kind is None:
+        raise InputError(field, "no constraint kind set")
+    raise InputError(f, "this constraint kind is not supported by this server")
 
 
 def constraints_to_domain(constraints: Sequence[pb.Constraint], problem: Problem, *,
@@ -320,7 +330,15 @@ def constraints_to_domain(constraints: Sequence[pb.Constraint], problem: Problem
     # validate now (names the field in proto terms); the worker compiles again
     from repair.compiled import compile_constraints
 
-    compile_constraints(problem, out, field_name=field)
+    try:
+        compile_constraints(problem, out, field_name=field)
+    except InputError as err:  # "constraints[k].rest" -> "constraints[k].<kind>.rest"
+        m = re.match(rf"{re.escape(field)}\[(\d+)\]\.(.*)", err.field)
+        if m and int(m.group(1)) < len(constraints):
+            kind = constraints[int(m.group(1))].WhichOneof("kind")
+            if kind != "json" and not m.group(2).startswith(f"{kind}."):
+                raise InputError(f"{field}[{m.group(1)}].{kind}.{m.group(2)}", err.message) from None
+        raise
     return out
 
 

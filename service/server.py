@@ -71,12 +71,12 @@ class ServerConfig:
 def deadline_budget(requested: float, remaining: float | None) -> float:
     """Solver budget (s) for a call with ``remaining`` seconds to its deadline (None: none).
 
-    The margin (30 % of what remains, 0.6 s to 3 s) covers conversion, process
+    The margin (30 % of what remains, 1 s to 3 s) covers conversion, process
     hand-over, the solver's stop after cancellation and the reply.
     """
     if remaining is None:
         return requested
-    margin = min(3.0, max(0.6, 0.3 * remaining))
+    margin = min(3.0, max(1.0, 0.3 * remaining))
     return max(0.05, min(requested, remaining - margin))
 
 
@@ -182,12 +182,16 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
     def _wait(self, job, context, budget: float, tick=None):
         """Wait for the job and return its result.
 
-        The solver is asked to stop (and return its best so far) when its budget is
-        spent: at once under a deadline, after some slack without one (the core may
-        overrun a little while finishing a phase). A call that ends stops it too.
+        The solver is asked to stop (and return its best so far) when its budget,
+        counted from the moment a worker starts it, is spent (plus some slack when
+        the call has no deadline: the core may overrun a little to finish a phase),
+        when the deadline is near, or when the call ends.
         """
-        has_deadline = context.time_remaining() is not None
-        stop_at = time.monotonic() + (budget if has_deadline else budget + max(1.0, 0.25 * budget))
+        remaining0 = context.time_remaining()
+        slack = 0.0 if remaining0 is not None else max(1.0, 0.25 * budget)
+        # stop this long before the deadline: 60 % of the margin deadline_budget kept
+        near = None if remaining0 is None else 0.6 * max(0.0, remaining0 - budget)
+        started_at = None
         while True:
             try:
                 return job.future.result(timeout=0.05)
@@ -198,8 +202,15 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
             except BrokenProcessPool:
                 self.pool.restart_if_broken()
                 raise
-            if not job.cancel_requested and (not context.is_active() or time.monotonic() > stop_at):
-                job.cancel()
+            now = time.monotonic()
+            if started_at is None and job.started:
+                started_at = now
+            if not job.cancel_requested:
+                spent = started_at is not None and now > started_at + budget + slack
+                remaining = context.time_remaining()
+                close = near is not None and remaining is not None and remaining < near
+                if spent or close or not context.is_active():
+                    job.cancel()
             if tick is not None:
                 tick()
 

@@ -7,6 +7,7 @@ is a row of a shared ``float64`` array, ``SLOT_WIDTH`` wide:
 
     [0] cancel flag (set by the server; the worker turns it into a threading.Event)
     [1] candidates done   [2] total   [3] best cost so far (NaN: none)   [4] update count
+    [5] 1 once the worker has started the job (the budget clock starts then)
 
 so a cancelled gRPC call stops its solver, and a streaming call can report progress,
 without a manager process or pipes per job.
@@ -26,7 +27,7 @@ from .errors import QueueFullError, TransientError
 
 __all__ = ["RepairPool", "Job", "SLOT_WIDTH"]
 
-SLOT_WIDTH = 5
+SLOT_WIDTH = 6
 _FLAGS = None  # the shared array, in a worker process
 
 
@@ -42,10 +43,15 @@ def _warm() -> int:
 
     from repair import CandidateSet, Problem, repair
 
-    p = Problem.from_terms({0: 1.0, 1: -1.0}, [(0, 1, 0.5)])
+    from repair.constraints import FixVariables, HammingPenalty, LinearConstraint
+
+    p = Problem.from_terms({0: 1.0, 1: -1.0, 2: 0.5}, [(0, 1, 0.5), (1, 2, -1.0)])
+    cands = CandidateSet.from_array(p, np.array([[1, 0, 1], [0, 1, 1]]))
+    late = [FixVariables({0: 1}), LinearConstraint({1: 1.0, 2: 1.0}, "<=", 1.0),
+            HammingPenalty({0: 1, 1: 0, 2: 1}, weight=0.5, shape="quadratic")]
     try:
-        repair(p, CandidateSet.from_array(p, np.array([[1, 0]])), [], method="greedy",
-               time_limit=0.5)
+        repair(p, cands, [], method="greedy", time_limit=0.5)
+        repair(p, cands, late, method="portfolio", time_limit=0.5)
     except Exception:  # noqa: BLE001 - warming is best effort
         pass
     return os.getpid()
@@ -65,6 +71,7 @@ def _run(slot: int, problem, candidates, constraints, kwargs: dict):
                 cancel.set()
                 return
 
+    _FLAGS[base + 5] = 1.0
     if _FLAGS[base] != 0.0:
         cancel.set()
     threading.Thread(target=watch, daemon=True, name="flipfix-cancel-watch").start()
@@ -104,6 +111,10 @@ class Job:
         if not self.future.done():
             self._flags[self.slot * SLOT_WIDTH] = 1.0
             self.future.cancel()
+
+    @property
+    def started(self) -> bool:
+        return self._flags[self.slot * SLOT_WIDTH + 5] != 0.0
 
     @property
     def cancel_requested(self) -> bool:
@@ -153,7 +164,7 @@ class RepairPool:
                 raise QueueFullError("repair", f"all {self.slots} repair slots are busy; retry later")
             slot = self._free.pop()
             b = slot * SLOT_WIDTH
-            self._flags[b:b + SLOT_WIDTH] = [0.0, 0.0, 0.0, math.nan, 0.0]
+            self._flags[b:b + SLOT_WIDTH] = [0.0, 0.0, 0.0, math.nan, 0.0, 0.0]
             try:
                 fut = self._executor.submit(_run, slot, problem, candidates, constraints, kwargs)
             except BrokenProcessPool:

@@ -1,0 +1,307 @@
+"""A real server on port 0: status codes, repair results, deadlines, cancellation,
+streaming, health during repairs, persistence across a restart, graceful shutdown.
+
+Expected optima come from dimod's ExactSolver (brute force over every assignment);
+long-running repairs use OR-Library bqp100-1 (../shared/benchmarks/bqp, J. E. Beasley
+1998), on which CP-SAT finds no optimality proof in 30 s (benchmarks README).
+"""
+
+from __future__ import annotations
+
+import threading
+import time
+from concurrent.futures import ThreadPoolExecutor
+
+import dimod
+import grpc
+import numpy as np
+import pytest
+from grpc_health.v1 import health_pb2, health_pb2_grpc
+from grpc_reflection.v1alpha import reflection_pb2, reflection_pb2_grpc
+
+from repair import documents
+from repair.instances import read_bqp
+from service import convert
+from service.generated import flipfix_pb2 as pb
+from service.generated import flipfix_pb2_grpc as pb_grpc
+from service.server import SERVICE_NAME, create_server, deadline_budget
+
+SMALL = {"vartype": "BINARY",
+         "linear": {"a": -1.0, "b": -1.0, "c": -1.0, "d": 0.5, "e": -0.5},
+         "quadratic": [["a", "b", 2.0], ["b", "c", 2.0], ["c", "d", -1.5], ["d", "e", 1.0],
+                       ["a", "e", -0.5]],
+         "offset": 0.0}
+SMALL_CANDS = [{"id": "k1", "assignment": {"a": 1, "b": 0, "c": 1, "d": 1, "e": 1}},
+               {"id": "k2", "assignment": {"a": 0, "b": 1, "c": 0, "d": 0, "e": 0}}]
+
+
+def _code(call) -> grpc.StatusCode:
+    with pytest.raises(grpc.RpcError) as e:
+        call()
+    return e.value
+
+
+@pytest.fixture(scope="module")
+def server(tmp_path_factory):
+    db = tmp_path_factory.mktemp("srv") / "flipfix.sqlite3"
+    srv = create_server("127.0.0.1:0", db_path=str(db), workers=1, queue_size=1,
+                        max_variables=500, max_constraints=20)
+    yield srv
+    srv.shutdown(grace=1.0)
+
+
+@pytest.fixture(scope="module")
+def stub(server):
+    ch = grpc.insecure_channel(server.address)
+    yield pb_grpc.FlipfixStub(ch)
+    ch.close()
+
+
+@pytest.fixture(scope="module")
+def small(stub):
+    stub.CreateProblem(pb.CreateProblemRequest(name="small", model=convert.doc_to_model(SMALL)))
+    p = documents.parse_problem(SMALL)
+    stub.AddCandidates(pb.AddCandidatesRequest(problem="small",
+                                               candidates=convert.doc_to_candidates(SMALL_CANDS, p)))
+    return p
+
+
+@pytest.fixture(scope="module")
+def big_request(benchmarks):
+    p = read_bqp(benchmarks / "bqp" / "bqp100-1.sparse")
+    rng = np.random.default_rng(1)
+    X = rng.integers(0, 2, size=(8, p.n))
+    cands = [pb.Candidate(id=f"r{k}", assignment=convert.dict_to_assignment(dict(zip(p.labels, map(int, x)))))
+             for k, x in enumerate(X)]
+    fix = pb.Constraint(fix=pb.FixVariables(values=convert.dict_to_assignment({p.labels[0]: 1})))
+
+    def make(time_limit=30.0, method=pb.CPSAT):
+        return pb.RepairRequest(inline=pb.InlineLibrary(model=convert.problem_to_model(p),
+                                                        candidates=cands),
+                                constraints=[fix],
+                                options=pb.RepairOptions(method=method, time_limit=time_limit))
+    return make
+
+
+def _wait_idle(server, timeout=10.0) -> float:
+    t0 = time.monotonic()
+    while server.pool.busy and time.monotonic() - t0 < timeout:
+        time.sleep(0.02)
+    return time.monotonic() - t0
+
+
+# ------------------------------------------------------------------ basics
+def test_health_and_reflection(server):
+    ch = grpc.insecure_channel(server.address)
+    h = health_pb2_grpc.HealthStub(ch)
+    for name in ("", SERVICE_NAME):
+        assert h.Check(health_pb2.HealthCheckRequest(service=name), timeout=5).status == \
+            health_pb2.HealthCheckResponse.SERVING
+    r = reflection_pb2_grpc.ServerReflectionStub(ch)
+    reply = next(iter(r.ServerReflectionInfo(iter([reflection_pb2.ServerReflectionRequest(
+        list_services="")]), timeout=5)))
+    names = {s.name for s in reply.list_services_response.service}
+    assert SERVICE_NAME in names and "grpc.health.v1.Health" in names
+    ch.close()
+
+
+def test_problem_lifecycle_and_revisions(stub, small):
+    info = stub.GetProblem(pb.GetProblemRequest(name="small")).info
+    assert (info.revision, info.num_variables, info.num_candidates) == (1, 5, 2)
+    e = _code(lambda: stub.CreateProblem(pb.CreateProblemRequest(
+        name="small", model=convert.doc_to_model(SMALL))))
+    assert e.code() == grpc.StatusCode.ALREADY_EXISTS
+    stub.CreateProblem(pb.CreateProblemRequest(name="tmp", model=convert.doc_to_model(SMALL)))
+    r = stub.ReplaceProblem(pb.ReplaceProblemRequest(name="tmp", model=convert.doc_to_model(
+        {**SMALL, "offset": 2.0}), expected_revision=1))
+    assert r.revision == 2
+    e = _code(lambda: stub.ReplaceProblem(pb.ReplaceProblemRequest(
+        name="tmp", model=convert.doc_to_model(SMALL), expected_revision=1)))
+    assert e.code() == grpc.StatusCode.FAILED_PRECONDITION
+    assert stub.GetProblem(pb.GetProblemRequest(name="tmp", revision=1)).model.offset == 0.0
+    names = [p.name for p in stub.ListProblems(pb.ListProblemsRequest()).problems]
+    assert "small" in names and "tmp" in names
+    stub.DeleteProblem(pb.DeleteProblemRequest(name="tmp"))
+    assert _code(lambda: stub.GetProblem(pb.GetProblemRequest(name="tmp"))).code() == \
+        grpc.StatusCode.NOT_FOUND
+
+
+# ------------------------------------------------------------ status codes
+def test_invalid_argument_names_the_field(stub, small):
+    bad_model = convert.doc_to_model(SMALL)
+    bad_model.vartype = pb.VARTYPE_UNSPECIFIED
+    e = _code(lambda: stub.CreateProblem(pb.CreateProblemRequest(name="bad", model=bad_model)))
+    assert e.code() == grpc.StatusCode.INVALID_ARGUMENT and e.details().startswith("model.vartype")
+
+    bad = pb.Constraint(hamming=pb.HammingPenalty(
+        reference=convert.dict_to_assignment({"a": 1}), weight=-1.0))
+    e = _code(lambda: stub.Repair(pb.RepairRequest(problem="small", constraints=[bad])))
+    assert e.code() == grpc.StatusCode.INVALID_ARGUMENT
+    assert e.details().startswith("constraints[0].hamming.weight:")
+
+    unknown = pb.Constraint(fix=pb.FixVariables(values=convert.dict_to_assignment({"zz": 1})))
+    e = _code(lambda: stub.Repair(pb.RepairRequest(problem="small", constraints=[unknown])))
+    assert e.code() == grpc.StatusCode.INVALID_ARGUMENT and "constraints[0].fix.values" in e.details()
+
+
+def test_not_found(stub, small):
+    assert _code(lambda: stub.Repair(pb.RepairRequest(problem="nope"))).code() == \
+        grpc.StatusCode.NOT_FOUND
+    e = _code(lambda: stub.RemoveCandidates(pb.RemoveCandidatesRequest(problem="small", ids=["ghost"])))
+    assert e.code() == grpc.StatusCode.NOT_FOUND
+    e = _code(lambda: stub.Repair(pb.RepairRequest(problem="small", candidate_ids=["ghost"])))
+    assert e.code() == grpc.StatusCode.NOT_FOUND
+
+
+def test_malformed_request_stores_nothing(stub, small):
+    before = stub.ListCandidates(pb.ListCandidatesRequest(problem="small")).candidates
+    good = {"id": "ok", "assignment": {"a": 1, "b": 1, "c": 1, "d": 1, "e": 1}}
+    protos = convert.doc_to_candidates([good, {"id": "bad", "assignment": {"a": 1, "b": 1}}],
+                                       small)
+    e = _code(lambda: stub.AddCandidates(pb.AddCandidatesRequest(problem="small", candidates=protos)))
+    assert e.code() == grpc.StatusCode.INVALID_ARGUMENT
+    assert e.details().startswith("candidates[1].assignment")
+    dup = convert.doc_to_candidates([good, {**SMALL_CANDS[0]}], small)  # k1 is taken
+    e = _code(lambda: stub.AddCandidates(pb.AddCandidatesRequest(problem="small", candidates=dup)))
+    assert e.code() == grpc.StatusCode.ALREADY_EXISTS
+    after = stub.ListCandidates(pb.ListCandidatesRequest(problem="small")).candidates
+    assert [c.id for c in after] == [c.id for c in before]
+
+
+def test_limits_are_resource_exhausted(stub):
+    big = {"vartype": "BINARY", "linear": {f"v{i}": 1.0 for i in range(501)}}
+    e = _code(lambda: stub.CreateProblem(pb.CreateProblemRequest(name="big",
+                                                                 model=convert.doc_to_model(big))))
+    assert e.code() == grpc.StatusCode.RESOURCE_EXHAUSTED and "model" in e.details()
+    fix = pb.Constraint(fix=pb.FixVariables(values=convert.dict_to_assignment({"a": 1})))
+    e = _code(lambda: stub.Repair(pb.RepairRequest(problem="small", constraints=[fix] * 21)))
+    assert e.code() == grpc.StatusCode.RESOURCE_EXHAUSTED and e.details().startswith("constraints")
+
+
+# ------------------------------------------------------------------ repair
+def test_repair_matches_brute_force(stub, small):
+    # late constraints: a must be 0, and a linear penalty on distance from k1 (weight 0.25)
+    ref = SMALL_CANDS[0]["assignment"]
+    cons = convert.docs_to_constraints([{"type": "fix", "values": {"a": 0}},
+                                        {"type": "hamming", "reference": ref, "weight": 0.25}], small)
+    r = stub.Repair(pb.RepairRequest(problem="small", constraints=cons,
+                                     options=pb.RepairOptions(time_limit=2.0, seed=3)))
+    # reference: dimod.ExactSolver over all 2^5 assignments of the penalised model
+    bqm = dimod.BinaryQuadraticModel({k: v for k, v in SMALL["linear"].items()},
+                                     {(u, v): b for u, v, b in SMALL["quadratic"]}, 0.0, "BINARY")
+    for lab, val in ref.items():  # 0.25 * [x != ref]  =  0.25 * (x if ref == 0 else 1 - x)
+        bqm.add_linear(lab, 0.25 if val == 0 else -0.25)
+        bqm.offset += 0.0 if val == 0 else 0.25
+    ss = dimod.ExactSolver().sample(bqm)
+    feasible = [d.energy for d in ss.data(["sample", "energy"]) if d.sample["a"] == 0]
+    assert r.best.feasible and r.status in ("optimal", "feasible")
+    assert r.best.cost == pytest.approx(min(feasible), abs=1e-9)
+    got = {convert.label_to_py(v.label, "x"): v.value for v in r.best.assignment.values}
+    assert got["a"] == 0
+    origin = {c["id"]: c["assignment"] for c in SMALL_CANDS}[r.best.candidate_id]
+    assert r.best.flips == sum(got[k] != origin[k] for k in origin)
+    assert r.audit_total == 2 and len(r.audit) == 2 and r.revision == 1
+    limited = stub.Repair(pb.RepairRequest(problem="small", constraints=cons, options=pb.RepairOptions(
+        time_limit=1.0, audit_limit=1)))
+    assert len(limited.audit) == 1 and limited.audit_total == 2
+
+
+def test_stream_ends_in_the_result(stub, small):
+    cons = convert.docs_to_constraints([{"type": "fix", "values": {"b": 1}}], small)
+    events = list(stub.RepairStream(pb.RepairRequest(
+        problem="small", constraints=cons, options=pb.RepairOptions(time_limit=1.0)), timeout=30))
+    assert events and events[-1].HasField("result")
+    assert all(ev.HasField("progress") for ev in events[:-1])
+    assert len(events) >= 2, "at least one progress message before the result"
+    unary = stub.Repair(pb.RepairRequest(problem="small", constraints=cons,
+                                         options=pb.RepairOptions(time_limit=1.0)))
+    assert events[-1].result.best.cost == pytest.approx(unary.best.cost)
+    assert events[-1].result.best.feasible
+
+
+def test_deadline_caps_the_budget_and_still_answers(server, stub, big_request):
+    _wait_idle(server)
+    t0 = time.monotonic()
+    r = stub.Repair(big_request(time_limit=30.0, method=pb.PORTFOLIO), timeout=4.0)
+    elapsed = time.monotonic() - t0
+    assert elapsed < 4.0
+    assert 0 < r.time_limit < 4.0  # min(requested 30 s, deadline - margin)
+    assert r.best.feasible and r.status == "feasible"
+    assert deadline_budget(30.0, None) == 30.0 and deadline_budget(30.0, 10.0) == 7.0
+
+
+def test_cancelled_call_stops_its_worker_and_health_stays_responsive(server, stub, big_request):
+    _wait_idle(server)
+    fut = stub.Repair.future(big_request(time_limit=30.0), timeout=60)
+    t0 = time.monotonic()
+    while not server.pool.busy and time.monotonic() - t0 < 5:
+        time.sleep(0.01)
+    time.sleep(0.5)
+    # health answers quickly while the worker is busy
+    h = health_pb2_grpc.HealthStub(grpc.insecure_channel(server.address))
+    for _ in range(3):
+        t = time.monotonic()
+        status = h.Check(health_pb2.HealthCheckRequest(service=SERVICE_NAME), timeout=2).status
+        assert status == health_pb2.HealthCheckResponse.SERVING
+        assert time.monotonic() - t < 0.5
+    assert server.pool.busy == 1
+    fut.cancel()
+    assert fut.cancelled() or _code(fut.result).code() == grpc.StatusCode.CANCELLED
+    waited = _wait_idle(server, timeout=10)
+    assert server.pool.busy == 0 and waited < 5.0, f"worker still busy {waited:.1f}s after cancel"
+
+
+def test_full_queue_is_resource_exhausted(server, stub, big_request):
+    _wait_idle(server)
+    futs = [stub.Repair.future(big_request(time_limit=30.0), timeout=60) for _ in range(2)]
+    t0 = time.monotonic()
+    while server.pool.busy < 2 and time.monotonic() - t0 < 5:
+        time.sleep(0.01)
+    e = _code(lambda: stub.Repair(big_request(time_limit=1.0), timeout=10))
+    assert e.code() == grpc.StatusCode.RESOURCE_EXHAUSTED
+    for f in futs:
+        f.cancel()
+    _wait_idle(server)
+
+
+# -------------------------------------------------------- restart, shutdown
+def test_persistence_across_restart(tmp_path):
+    db = str(tmp_path / "p.sqlite3")
+    p = documents.parse_problem(SMALL)
+    with create_server("127.0.0.1:0", db_path=db, warm=False) as a:
+        s = pb_grpc.FlipfixStub(grpc.insecure_channel(a.address))
+        s.CreateProblem(pb.CreateProblemRequest(name="keep", model=convert.doc_to_model(SMALL)))
+        ids = s.AddCandidates(pb.AddCandidatesRequest(
+            problem="keep", candidates=convert.doc_to_candidates(SMALL_CANDS, p))).ids
+        s.ReplaceProblem(pb.ReplaceProblemRequest(name="keep", model=convert.doc_to_model(SMALL)))
+        before = s.ListCandidates(pb.ListCandidatesRequest(problem="keep"))
+    with create_server("127.0.0.1:0", db_path=db, warm=False) as b:
+        s = pb_grpc.FlipfixStub(grpc.insecure_channel(b.address))
+        got = s.GetProblem(pb.GetProblemRequest(name="keep"))
+        assert got.info.revision == 2 and got.info.num_candidates == 2
+        after = s.ListCandidates(pb.ListCandidatesRequest(problem="keep"))
+        assert list(ids) == [c.id for c in after.candidates]
+        assert after == before and all(c.revision == 1 for c in after.candidates)
+
+
+def test_graceful_shutdown(tmp_path, big_request):
+    srv = create_server("127.0.0.1:0", db_path=str(tmp_path / "g.sqlite3"), workers=1)
+    ch = grpc.insecure_channel(srv.address)
+    stub = pb_grpc.FlipfixStub(ch)
+    fut = stub.Repair.future(big_request(time_limit=30.0), timeout=60)
+    t0 = time.monotonic()
+    while not srv.pool.busy and time.monotonic() - t0 < 10:
+        time.sleep(0.01)
+    stopper = threading.Thread(target=srv.shutdown, kwargs={"grace": 1.0})
+    stopper.start()
+    time.sleep(0.2)
+    req = health_pb2.HealthCheckRequest(service=SERVICE_NAME)
+    assert srv.health.Check(req, None).status == health_pb2.HealthCheckResponse.NOT_SERVING
+    e = _code(lambda: stub.ListProblems(pb.ListProblemsRequest(), timeout=2))
+    assert e.code() == grpc.StatusCode.UNAVAILABLE  # no new calls
+    stopper.join(timeout=20)
+    assert not stopper.is_alive(), "shutdown did not finish"
+    # the in-flight call ended (cancelled after the grace period), its worker stopped
+    assert _code(fut.result).code() in (grpc.StatusCode.CANCELLED, grpc.StatusCode.UNAVAILABLE)
+    assert time.monotonic() - t0 < 15
+    ch.close()

@@ -1,0 +1,106 @@
+"""The SQLite store: durability settings, revisions, all-or-nothing writes, restart."""
+
+from __future__ import annotations
+
+import sqlite3
+
+import numpy as np
+import pytest
+
+from repair import documents
+from service.errors import AlreadyExistsError, ConflictError, NotFoundError
+from service.store import SCHEMA_VERSION, Store
+
+DOC = {"vartype": "SPIN", "linear": {"a": 1.0, "0": -0.5}, "quadratic": [["a", 0, 0.25], [0, 1, -1.0]]}
+
+
+@pytest.fixture
+def store(tmp_path):
+    s = Store(tmp_path / "f.sqlite3")
+    yield s
+    s.close()
+
+
+def test_wal_full_sync_and_schema_version(store):
+    assert store.journal_mode == "wal"
+    assert store.synchronous == 2  # FULL (SQLite docs: 0 OFF, 1 NORMAL, 2 FULL, 3 EXTRA)
+    assert store.schema_version == SCHEMA_VERSION
+
+
+def test_newer_schema_is_refused(tmp_path):
+    path = tmp_path / "n.sqlite3"
+    Store(path).close()
+    db = sqlite3.connect(path)
+    db.execute("UPDATE schema_version SET version = ?", (SCHEMA_VERSION + 1,))
+    db.commit()
+    db.close()
+    with pytest.raises(RuntimeError, match="newer"):
+        Store(path)
+
+
+def test_revisions_and_candidates_survive_reopen(tmp_path):
+    path = tmp_path / "r.sqlite3"
+    s = Store(path)
+    p = documents.parse_problem(DOC)
+    s.create_problem("p", p)
+    ids = s.add_candidates("p", 1, ["", "mine"], np.array([[1, 0, 1], [0, 1, 1]], dtype=np.int8),
+                           [{}, {"source": "anneal", "energy": -1.5, "tags": ["t1"]}])
+    assert ids[1] == "mine" and ids[0]
+    p2 = documents.parse_problem({**DOC, "offset": 3.0})
+    assert s.replace_problem("p", p2, expected_revision=1).revision == 2
+    with pytest.raises(ConflictError):
+        s.replace_problem("p", p2, expected_revision=1)
+    s.close()
+
+    s = Store(path)
+    info, rev, q = s.get_problem("p")
+    assert (info.revision, rev, info.num_candidates) == (2, 2, 2)
+    assert q.offset == pytest.approx(p2.offset) and q.labels == p.labels and q.vartype == "SPIN"
+    _, rev1, q1 = s.get_problem("p", revision=1)
+    assert rev1 == 1 and q1.offset == pytest.approx(p.offset)
+    recs, token = s.list_candidates("p")
+    assert token == "" and [r.id for r in recs] == ids
+    assert recs[1].revision == 1 and recs[1].energy == -1.5 and recs[1].tags == ("t1",)
+    assert recs[1].x.tolist() == [0, 1, 1]
+    # candidates remember their revision: the current revision has none of its own
+    with pytest.raises(Exception, match="no candidates for revision 2"):
+        s.library("p")
+    rev, prob, cands = s.library("p", all_revisions=True)
+    assert rev == 2 and cands.ids == tuple(ids) and cands.X.tolist() == [[1, 0, 1], [0, 1, 1]]
+    s.close()
+
+
+def test_a_failing_add_stores_nothing(store):
+    store.create_problem("p", documents.parse_problem(DOC))
+    store.add_candidates("p", 1, ["dup"], np.zeros((1, 3), np.int8), [{}])
+    with pytest.raises(AlreadyExistsError) as e:
+        store.add_candidates("p", 1, ["new1", "dup"], np.zeros((2, 3), np.int8), [{}, {}])
+    assert e.value.field == "candidates[1].id"
+    recs, _ = store.list_candidates("p")
+    assert [r.id for r in recs] == ["dup"]
+
+
+def test_not_found_and_exists(store):
+    p = documents.parse_problem(DOC)
+    store.create_problem("p", p)
+    with pytest.raises(AlreadyExistsError):
+        store.create_problem("p", p)
+    for call in (lambda: store.get_problem("nope"), lambda: store.delete_problem("nope"),
+                 lambda: store.remove_candidates("p", ["ghost"]),
+                 lambda: store.get_problem("p", revision=7)):
+        with pytest.raises(NotFoundError):
+            call()
+
+
+def test_paging_visits_every_candidate_once(store):
+    store.create_problem("p", documents.parse_problem(DOC))
+    store.add_candidates("p", 1, [f"k{i}" for i in range(7)], np.zeros((7, 3), np.int8), [{}] * 7)
+    seen, token = [], ""
+    while True:
+        recs, token = store.list_candidates("p", page_size=3, page_token=token)
+        seen += [r.id for r in recs]
+        if not token:
+            break
+    assert seen == [f"k{i}" for i in range(7)]
+    assert store.remove_candidates("p", ["k1", "k2"]) == 2
+    assert store.delete_problem("p") == 5
