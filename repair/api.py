@@ -13,7 +13,7 @@ from .candidates import CandidateSet
 from .compiled import Compiled, compile_constraints
 from .errors import InputError
 from .model import Problem
-from .portfolio import run_plan
+from .portfolio import DEFAULT_MIX, Mix, run_plan
 from .result import METHODS, AuditRow, ParetoPoint, RepairResult, Solution
 
 __all__ = ["repair", "check_options"]
@@ -53,12 +53,13 @@ def repair(
     flip_price: float = 0.0, seed: int = 0, workers: int = 1, pareto: bool = False,
     cancel: threading.Event | None = None,
     progress: Callable[[dict], None] | None = None,
-    compiled: Compiled | None = None,
+    compiled: Compiled | None = None, mix: Mix = DEFAULT_MIX,
 ) -> RepairResult:
     """Repair every candidate under the late constraints; return the best and the audit.
 
     Never raises for infeasibility or an exhausted budget: see ``RepairResult.status``.
-    ``compiled`` may pass a precompiled ``compile_constraints(problem, constraints)``.
+    ``compiled`` may pass a precompiled ``compile_constraints(problem, constraints)``;
+    ``mix`` sets how the portfolio shares its budget (see :class:`repair.portfolio.Mix`).
     """
     t0 = time.perf_counter()
     if not isinstance(problem, Problem):
@@ -67,6 +68,8 @@ def repair(
         raise InputError("candidates", f"expected a CandidateSet, got {type(candidates).__name__}")
     if candidates.X.ndim != 2 or candidates.X.shape[1] != problem.n:
         raise InputError("candidates", f"must have {problem.n} columns, got {candidates.X.shape}")
+    if not isinstance(mix, Mix):
+        raise InputError("mix", f"expected a repair.portfolio.Mix, got {type(mix).__name__}")
     check_options(method=method, time_limit=time_limit, max_flips=max_flips,
                   flip_price=flip_price, seed=seed, workers=workers)
     if compiled is None:
@@ -87,7 +90,7 @@ def repair(
                       message=f"variable {label!r} is fixed to both values ({name})")
     plan = run_plan(compiled, X0, method=method, time_limit=float(time_limit),
                     max_flips=max_flips, flip_price=price, seed=seed, workers=workers,
-                    cancel=cancel, progress=report)
+                    cancel=cancel, progress=report, mix=mix)
     return _build(problem, candidates, compiled, plan.attempts, price, method, seed, t0,
                   pareto=pareto, plan=plan)
 

@@ -482,13 +482,16 @@ def descend_qubo(h, indptr, indices, data, X0, *, fixed=None, flip_price: float 
 def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | None = None,
                   max_flips: int | None = None, flip_price: float = 0.0,
                   deadline: float | None = None, cancel=None, chunk: int = 64,
-                  pair_width: int = 6, progress=None) -> GreedyOutput:
+                  pair_width: int | None = None, progress=None) -> GreedyOutput:
     """Repair every row of X0 (int8 (K, n), 0/1) greedily on the compiled late problem.
 
     ``origin`` (int8 (K, n), default X0) is what flips are counted from (radius, price).
     ``deadline`` is a ``time.perf_counter()`` value; candidates not reached by then
     (or after ``cancel`` is set) are returned unchanged with ``done`` False.
     ``progress(done, total)`` is called after each chunk.
+    ``pair_width``: pair moves inside a row try the best ``pair_width`` "up" and "down"
+    variables of that row; by default every pair of rows up to 32 variables long,
+    the best 32 of each side in longer rows.
     """
     X0 = np.ascontiguousarray(X0, dtype=np.int8)
     K, n = X0.shape
@@ -501,6 +504,9 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
     tol = _objective_tol(compiled)
     max_steps = 100 * n + 1000
     fast = not compiled.counts and not compiled.rows and radius >= n
+    if pair_width is None:
+        longest = int(np.diff(compiled.a_indptr).max(initial=1))
+        pair_width = max(1, min(32, longest))
     if not fast:
         cnt = _count_arrays(compiled, n)
         rows = _row_arrays(compiled, n)

@@ -5,10 +5,10 @@ candidate it started from); :mod:`repair.api` scores them and builds the result.
 
 Portfolio, within a budget of T seconds:
 
-1. greedy repair of every candidate (it may use up to 60% of T);
+1. greedy repair of every candidate, best-ranked first (it may use up to 60% of T);
 2. iterated local search: random kicks of a few free variables applied to the best
    repaired solutions, each followed by greedy descent, improvements kept — a share
-   ``KICK_SHARE`` of what is left;
+   ``Mix.kicks`` of what is left;
 3. local branching: CP-SAT around the candidates whose greedy results rank best,
    each hinted with its greedy result, within ``greedy flips + margin`` of the
    candidate (or within ``max_flips``) — half of what is left;
@@ -26,15 +26,41 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .compiled import Compiled
+from .errors import InputError
 from .greedy import greedy_repair
 
 __all__ = ["Attempt", "PlanOutcome", "run_plan"]
 
 #: share of the budget greedy may take inside the portfolio; neighbourhoods get half the rest.
-GREEDY_SHARE = 0.6
-KICK_SHARE = 0.4
-NEIGHBOURHOODS = 3
 KICK_BATCH = 32
+
+
+@dataclass(frozen=True)
+class Mix:
+    """How the portfolio shares its budget (the defaults are what bench/mix.py measured best).
+
+    greedy: most of the budget greedy repair may take; kicks: share of the rest for
+    iterated local search; neighbourhoods: how many local-branching CP-SAT runs, which
+    get ``neighbourhood_share`` of what is left after the kicks; full_search: whether the
+    unhinted whole-problem CP-SAT search gets the remainder.
+    """
+
+    greedy: float = 0.6
+    kicks: float = 0.4
+    neighbourhoods: int = 3
+    neighbourhood_share: float = 0.5
+    full_search: bool = True
+
+    def __post_init__(self):
+        for name in ("greedy", "kicks", "neighbourhood_share"):
+            v = getattr(self, name)
+            if not 0.0 <= v <= 1.0:
+                raise InputError(f"mix.{name}", f"must be a share from 0 to 1, got {v!r}")
+        if self.neighbourhoods < 0:
+            raise InputError("mix.neighbourhoods", "must be >= 0")
+
+
+DEFAULT_MIX = Mix()
 
 
 @dataclass
@@ -77,7 +103,7 @@ def solve_cpsat(*args, **kwargs):
 
 def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: float,
              max_flips: int | None, flip_price: float, seed: int, workers: int,
-             cancel=None, progress=None) -> PlanOutcome:
+             cancel=None, progress=None, mix: Mix = DEFAULT_MIX) -> PlanOutcome:
     """Run one plan on the candidates X0 (int8 (K, n)); see the module docstring."""
     t0 = time.perf_counter()
     deadline = t0 + time_limit
@@ -94,10 +120,15 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: flo
                              report=report)
         return out
 
-    g_deadline = deadline if method == "greedy" else t0 + GREEDY_SHARE * time_limit
-    g = greedy_repair(compiled, X0, max_flips=max_flips, flip_price=flip_price,
+    g_deadline = deadline if method == "greedy" else t0 + mix.greedy * time_limit
+    # most promising candidates first, so a short budget is spent where it pays most
+    ev0, obj0, _ = _objective(compiled, X0, X0, 0.0)
+    first = _ranked(ev0.feasible, obj0)
+    g = greedy_repair(compiled, X0[first], max_flips=max_flips, flip_price=flip_price,
                       deadline=g_deadline, cancel=cancel,
                       progress=lambda d, tot: report(done=d, total=tot, phase="greedy"))
+    back = np.argsort(first)
+    g.X, g.steps, g.done, g.seconds = g.X[back], g.steps[back], g.done[back], g.seconds[back]
     for k in range(K):
         out.attempts.append(Attempt(k, g.X[k], "greedy" if g.done[k] else "unrepaired",
                                     float(g.seconds[k])))
@@ -108,7 +139,7 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: flo
 
     ev, obj, flips = _objective(compiled, g.X, X0, flip_price)
     cur = g.X.copy()
-    kick_deadline = time.perf_counter() + KICK_SHARE * (deadline - time.perf_counter())
+    kick_deadline = time.perf_counter() + mix.kicks * (deadline - time.perf_counter())
     rounds, kept = _kicks(compiled, X0, cur, obj, ev.feasible, g.done, out,
                           deadline=kick_deadline, max_flips=max_flips, flip_price=flip_price,
                           seed=seed, cancel=cancel)
@@ -127,12 +158,14 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: flo
         if key not in seen:
             seen.add(key)
             tops.append(k)
-        if len(tops) == NEIGHBOURHOODS:
+        if len(tops) >= mix.neighbourhoods:
             break
     margin = int(np.clip(n // 10, 5, 50))
+    # ---- stage 3: neighbourhoods of the best candidates, hinted with their greedy result
     best_obj = float(obj[tops[0]]) if tops and ev.feasible[tops[0]] else None
-    # ---- stage 2: neighbourhoods of the best candidates, hinted with their greedy result
-    share = (deadline - time.perf_counter()) / 2.0 / max(1, len(tops))
+    tops = tops[: mix.neighbourhoods]
+    share = (deadline - time.perf_counter()) * (mix.neighbourhood_share if mix.full_search else 1.0)
+    share /= max(1, len(tops))
     for rank, k in enumerate(tops):
         if stopped():
             break
@@ -148,10 +181,10 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: flo
             if best_obj is None or r.objective < best_obj:
                 best_obj = r.objective
         report(done=K, total=K, phase="neighbourhood", best_cost=best_obj)
-    # ---- stage 3: the whole problem, unhinted, only improving solutions
-    if stopped():
+    # ---- stage 4: the whole problem, unhinted, only improving solutions
+    if stopped() or not mix.full_search:
         return out
-    anchor = tops[0] if tops else 0
+    anchor = tops[0] if tops else (order[0] if order else 0)
     full_space = max_flips is None
     upper = None
     if best_obj is not None:
@@ -159,7 +192,7 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: flo
     r = solve_cpsat(compiled, hint=None, center=X0[anchor],
                     radius=None if full_space else max_flips, flip_price=flip_price,
                     upper=upper, time_limit=deadline - time.perf_counter(), workers=workers,
-                    seed=seed + NEIGHBOURHOODS, cancel=cancel)
+                    seed=seed + mix.neighbourhoods, cancel=cancel)
     out.scaling_error = max(out.scaling_error, r.scaling_error)
     out.cpsat_status = r.status
     out.stats["full_search_status"] = r.status
