@@ -125,7 +125,7 @@ def _descend_tree(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
 
 
 # -------------------------------------------------------------- general path
-@nb.njit(cache=True)
+@nb.njit(cache=True, inline="always")
 def _row_viol(act, lo, hi, tol):
     v = 0.0
     if act < lo:
@@ -135,7 +135,7 @@ def _row_viol(act, lo, hi, tol):
     return v if v > tol else 0.0
 
 
-@nb.njit(cache=True)
+@nb.njit(cache=True, inline="always")
 def _eval_flip(i, x, o, field, dcount, sat, act, dist,
                cp_ptr, cp_table, term_pen, term_coef, term_arity, lit_ptr, lit_var, lit_val,
                vt_ptr, vt_term, vt_lit,
@@ -172,7 +172,7 @@ def _eval_flip(i, x, o, field, dcount, sat, act, dist,
     return dobj, dviol, nd
 
 
-@nb.njit(cache=True)
+@nb.njit(cache=True, inline="always")
 def _apply_flip(i, x, o, field, dcount, sat, act, dist,
                 indptr, indices, data, term_pen, term_coef, term_arity, lit_val,
                 vt_ptr, vt_term, vt_lit, col_ptr, col_row, col_val):
