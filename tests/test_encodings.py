@@ -572,7 +572,7 @@ def test_proto_carries_integer_constraints_and_encoding_issues():
                                     field="constraints[0]")
     with pytest.raises(InputError) as e:
         convert.constraints_to_domain([bad], p)
-    assert e.value.field == "constraints[0].values[0]"
+    assert e.value.field == "constraints[0].forbid_values.values[0]"   # proto field path
     X = np.asarray([[0, 1, 1, 1, 1], [1, 0, 0, 1, 0]], dtype=np.int8)   # row 0 breaks a and b
     res = repair(p, CandidateSet.from_array(p, X), back, method="cpsat", time_limit=0.5, seed=0)
     reply = convert.result_to_reply(res)
