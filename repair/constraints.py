@@ -21,6 +21,7 @@ from typing import Any, Hashable, Mapping, Sequence
 import numpy as np
 
 from .errors import InputError
+from .model import finite as _number
 
 __all__ = [
     "HammingPenalty", "ExtraTerms", "FixVariables", "LinearConstraint", "ForbidAssignment",
@@ -56,18 +57,6 @@ def shape_table(shape: str, weight: float, d_max: int, *, threshold: float = 0.0
     else:
         raise InputError(field_name, f"must be one of {SHAPES}, got {shape!r}")
     return float(weight) * f
-
-
-def _number(value: Any, field_name: str) -> float:
-    if isinstance(value, bool):
-        raise InputError(field_name, f"{value!r} is not a number")
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        raise InputError(field_name, f"{value!r} is not a number") from None
-    if not math.isfinite(v):
-        raise InputError(field_name, f"{value!r} is not finite")
-    return v
 
 
 @dataclass(frozen=True)

@@ -136,11 +136,15 @@ def _row_viol(act, lo, hi, tol):
 
 
 @nb.njit(cache=True, inline="always")
-def _eval_flip(i, x, o, field, dcount, sat, act, dist,
-               cp_ptr, cp_table, term_pen, term_coef, term_arity, lit_ptr, lit_var, lit_val,
-               vt_ptr, vt_term, vt_lit,
-               col_ptr, col_row, col_val, lo, hi, rtol, price, dd):
-    """(objective change, violation change, new distance) of flipping variable i."""
+def _eval_flip(i, S, dist, C, R, price):
+    """(objective change, violation change, new distance) of flipping variable i.
+
+    S = (x, origin, field, dcount, sat, act, dd): one candidate's state;
+    C = count-penalty arrays, R = row arrays (see _descend_general).
+    """
+    x, o, field, dcount, sat, act, dd = S
+    cp_ptr, cp_table, term_pen, term_coef, term_arity, lit_val, vt_ptr, vt_term, vt_lit = C
+    col_ptr, col_row, col_val, lo, hi, rtol = R
     xi = x[i]
     dobj = (1.0 - 2.0 * xi) * field[i]
     # count penalties: term t containing i changes its satisfied-literal count by +-1
@@ -173,9 +177,12 @@ def _eval_flip(i, x, o, field, dcount, sat, act, dist,
 
 
 @nb.njit(cache=True, inline="always")
-def _apply_flip(i, x, o, field, dcount, sat, act, dist,
-                indptr, indices, data, term_pen, term_coef, term_arity, lit_val,
-                vt_ptr, vt_term, vt_lit, col_ptr, col_row, col_val):
+def _apply_flip(i, S, dist, Q, C, R):
+    """Flip variable i, updating fields, term states, counts and row activities in O(degree)."""
+    x, o, field, dcount, sat, act, dd = S
+    indptr, indices, data = Q
+    cp_ptr, cp_table, term_pen, term_coef, term_arity, lit_val, vt_ptr, vt_term, vt_lit = C
+    col_ptr, col_row, col_val, lo, hi, rtol = R
     xi = x[i]
     sgn = 1.0 - 2.0 * xi
     for q in range(vt_ptr[i], vt_ptr[i + 1]):
@@ -229,9 +236,13 @@ def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max
     dn_i = np.empty(pair_width, dtype=np.int64)
     dn_v = np.empty(pair_width)
     vtol = 1e-12
+    Q = (indptr, indices, data)
+    C = (cp_ptr, cp_table, term_pen, term_coef, term_arity, lit_val, vt_ptr, vt_term, vt_lit)
+    R = (col_ptr, col_row, col_val, lo, hi, rtol)
     for k in range(K):
         x = X[k]
         o = origin[k]
+        S = (x, o, field, dcount, sat, act, dd)
         for i in range(n):
             if fixed[i] >= 0 and x[i] != fixed[i]:
                 x[i] = fixed[i]
@@ -267,19 +278,14 @@ def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max
             bi = -1
             for f in range(nfree):
                 i = free[f]
-                dobj, dviol, nd = _eval_flip(
-                    i, x, o, field, dcount, sat, act, dist, cp_ptr, cp_table, term_pen,
-                    term_coef, term_arity, lit_ptr, lit_var, lit_val, vt_ptr, vt_term, vt_lit,
-                    col_ptr, col_row, col_val, lo, hi, rtol, price, dd)
+                dobj, dviol, nd = _eval_flip(i, S, dist, C, R, price)
                 if dviol < -vtol and (nd <= radius or nd < dist):
                     score = dobj / (-dviol)
                     if score < best:
                         best = score
                         bi = i
             if bi >= 0:
-                dist = _apply_flip(bi, x, o, field, dcount, sat, act, dist, indptr, indices,
-                                   data, term_pen, term_coef, term_arity, lit_val, vt_ptr,
-                                   vt_term, vt_lit, col_ptr, col_row, col_val)
+                dist = _apply_flip(bi, S, dist, Q, C, R)
                 steps += 1
                 viol = _total_viol(act, lo, hi, rtol)
                 continue
@@ -292,21 +298,13 @@ def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max
                     i = a_col[q]
                     if fixed[i] >= 0:
                         continue
-                    dobj_i, dv_i, nd_i = _eval_flip(
-                        i, x, o, field, dcount, sat, act, dist, cp_ptr, cp_table, term_pen,
-                        term_coef, term_arity, lit_ptr, lit_var, lit_val, vt_ptr, vt_term,
-                        vt_lit, col_ptr, col_row, col_val, lo, hi, rtol, price, dd)
-                    d1 = _apply_flip(i, x, o, field, dcount, sat, act, dist, indptr, indices,
-                                     data, term_pen, term_coef, term_arity, lit_val, vt_ptr,
-                                     vt_term, vt_lit, col_ptr, col_row, col_val)
+                    dobj_i, dv_i, nd_i = _eval_flip(i, S, dist, C, R, price)
+                    d1 = _apply_flip(i, S, dist, Q, C, R)
                     for f in range(nfree):
                         j = free[f]
                         if j == i:
                             continue
-                        dobj_j, dv_j, nd_j = _eval_flip(
-                            j, x, o, field, dcount, sat, act, d1, cp_ptr, cp_table, term_pen,
-                            term_coef, term_arity, lit_ptr, lit_var, lit_val, vt_ptr, vt_term,
-                            vt_lit, col_ptr, col_row, col_val, lo, hi, rtol, price, dd)
+                        dobj_j, dv_j, nd_j = _eval_flip(j, S, d1, C, R, price)
                         dv = dv_i + dv_j
                         if dv < -vtol and (nd_j <= radius or nd_j < dist):
                             score = (dobj_i + dobj_j) / (-dv)
@@ -314,15 +312,11 @@ def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max
                                 best = score
                                 bi = i
                                 bj = j
-                    _apply_flip(i, x, o, field, dcount, sat, act, d1, indptr, indices, data,
-                                term_pen, term_coef, term_arity, lit_val, vt_ptr, vt_term,
-                                vt_lit, col_ptr, col_row, col_val)
+                    _apply_flip(i, S, d1, Q, C, R)
             if bi < 0:
                 break  # stuck: report the least-violating point reached
             for v in (bi, bj):
-                dist = _apply_flip(v, x, o, field, dcount, sat, act, dist, indptr, indices,
-                                   data, term_pen, term_coef, term_arity, lit_val, vt_ptr,
-                                   vt_term, vt_lit, col_ptr, col_row, col_val)
+                dist = _apply_flip(v, S, dist, Q, C, R)
             steps += 1
             viol = _total_viol(act, lo, hi, rtol)
         if viol > 0.0:
@@ -334,17 +328,12 @@ def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max
             bi = -1
             for f in range(nfree):
                 i = free[f]
-                dobj, dviol, nd = _eval_flip(
-                    i, x, o, field, dcount, sat, act, dist, cp_ptr, cp_table, term_pen,
-                    term_coef, term_arity, lit_ptr, lit_var, lit_val, vt_ptr, vt_term, vt_lit,
-                    col_ptr, col_row, col_val, lo, hi, rtol, price, dd)
+                dobj, dviol, nd = _eval_flip(i, S, dist, C, R, price)
                 if dobj < best and dviol <= vtol and (nd <= radius or nd < dist):
                     best = dobj
                     bi = i
             if bi >= 0:
-                dist = _apply_flip(bi, x, o, field, dcount, sat, act, dist, indptr, indices,
-                                   data, term_pen, term_coef, term_arity, lit_val, vt_ptr,
-                                   vt_term, vt_lit, col_ptr, col_row, col_val)
+                dist = _apply_flip(bi, S, dist, Q, C, R)
                 steps += 1
                 continue
             if m == 0:
@@ -358,10 +347,7 @@ def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max
                     i = a_col[q]
                     if fixed[i] >= 0:
                         continue
-                    dobj, dviol, nd = _eval_flip(
-                        i, x, o, field, dcount, sat, act, dist, cp_ptr, cp_table, term_pen,
-                        term_coef, term_arity, lit_ptr, lit_var, lit_val, vt_ptr, vt_term,
-                        vt_lit, col_ptr, col_row, col_val, lo, hi, rtol, price, dd)
+                    dobj, dviol, nd = _eval_flip(i, S, dist, C, R, price)
                     if x[i] == 0:
                         ids, vals, cnt = up_i, up_v, nu
                     else:
@@ -383,34 +369,22 @@ def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max
                         ndn = cnt
                 for a in range(nu):
                     i = up_i[a]
-                    dobj_i, dv_i, nd_i = _eval_flip(
-                        i, x, o, field, dcount, sat, act, dist, cp_ptr, cp_table, term_pen,
-                        term_coef, term_arity, lit_ptr, lit_var, lit_val, vt_ptr, vt_term,
-                        vt_lit, col_ptr, col_row, col_val, lo, hi, rtol, price, dd)
-                    d1 = _apply_flip(i, x, o, field, dcount, sat, act, dist, indptr, indices,
-                                     data, term_pen, term_coef, term_arity, lit_val, vt_ptr,
-                                     vt_term, vt_lit, col_ptr, col_row, col_val)
+                    dobj_i, dv_i, nd_i = _eval_flip(i, S, dist, C, R, price)
+                    d1 = _apply_flip(i, S, dist, Q, C, R)
                     for b in range(ndn):
                         j = dn_i[b]
-                        dobj_j, dv_j, nd_j = _eval_flip(
-                            j, x, o, field, dcount, sat, act, d1, cp_ptr, cp_table, term_pen,
-                            term_coef, term_arity, lit_ptr, lit_var, lit_val, vt_ptr, vt_term,
-                            vt_lit, col_ptr, col_row, col_val, lo, hi, rtol, price, dd)
+                        dobj_j, dv_j, nd_j = _eval_flip(j, S, d1, C, R, price)
                         tot = dobj_i + dobj_j
                         if (tot < best and dv_i + dv_j <= vtol
                                 and (nd_j <= radius or nd_j < dist)):
                             best = tot
                             bi = i
                             bj = j
-                    _apply_flip(i, x, o, field, dcount, sat, act, d1, indptr, indices, data,
-                                term_pen, term_coef, term_arity, lit_val, vt_ptr, vt_term,
-                                vt_lit, col_ptr, col_row, col_val)
+                    _apply_flip(i, S, d1, Q, C, R)
             if bi < 0:
                 break
             for v in (bi, bj):
-                dist = _apply_flip(v, x, o, field, dcount, sat, act, dist, indptr, indices,
-                                   data, term_pen, term_coef, term_arity, lit_val, vt_ptr,
-                                   vt_term, vt_lit, col_ptr, col_row, col_val)
+                dist = _apply_flip(v, S, dist, Q, C, R)
             steps += 1
         steps_out[k] = steps
 

@@ -23,17 +23,24 @@ from .model import Problem
 __all__ = ["read_bqp", "read_qkp", "read_gset", "Knapsack"]
 
 
-def read_bqp(path) -> Problem:
-    """Beasley BQP instance -> Problem with labels 0..n-1 (energy = the instance's objective)."""
+def _triples(path) -> tuple[int, list]:
+    """``n m`` then ``i j w`` lines (1-based) -> (n, [(i, j, w)] 0-based)."""
     rows = Path(path).read_text().split("\n")
-    n, _m = (int(t) for t in rows[0].split()[:2])
-    lin = np.zeros(n)
-    quad = []
+    n = int(rows[0].split()[0])
+    out = []
     for line in rows[1:]:
         parts = line.split()
-        if len(parts) < 3:
-            continue
-        i, j, w = int(parts[0]) - 1, int(parts[1]) - 1, float(parts[2])
+        if len(parts) >= 3:
+            out.append((int(parts[0]) - 1, int(parts[1]) - 1, float(parts[2])))
+    return n, out
+
+
+def read_bqp(path) -> Problem:
+    """Beasley BQP instance -> Problem with labels 0..n-1 (energy = the instance's objective)."""
+    n, triples = _triples(path)
+    lin = np.zeros(n)
+    quad = []
+    for i, j, w in triples:
         if i == j:
             lin[i] += w
         else:
@@ -88,15 +95,10 @@ def read_qkp(path) -> Knapsack:
 
 def read_gset(path) -> Problem:
     """Gset graph -> QUBO with E(x) = -cut(x): sum over edges w (2 x_i x_j - x_i - x_j)."""
-    rows = Path(path).read_text().split("\n")
-    n, _m = (int(t) for t in rows[0].split()[:2])
+    n, triples = _triples(path)
     lin = np.zeros(n)
     quad = []
-    for line in rows[1:]:
-        parts = line.split()
-        if len(parts) < 3:
-            continue
-        i, j, w = int(parts[0]) - 1, int(parts[1]) - 1, float(parts[2])
+    for i, j, w in triples:
         lin[i] -= w
         lin[j] -= w
         quad.append((i, j, 2.0 * w))

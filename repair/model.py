@@ -23,7 +23,7 @@ import numpy as np
 from .batching import row_slices
 from .errors import InputError
 
-__all__ = ["Problem", "Decision", "BINARY", "SPIN", "check_label"]
+__all__ = ["Problem", "Decision", "BINARY", "SPIN", "check_label", "finite"]
 
 BINARY = "BINARY"
 SPIN = "SPIN"
@@ -37,7 +37,10 @@ def check_label(label: Any, field_name: str) -> Hashable:
     return int(label) if isinstance(label, np.integer) else label
 
 
-def _finite(value: Any, field_name: str) -> float:
+def finite(value: Any, field_name: str) -> float:
+    """A finite float, or an InputError naming the field (booleans are not numbers)."""
+    if isinstance(value, bool):
+        raise InputError(field_name, f"{value!r} is not a number")
     try:
         v = float(value)
     except (TypeError, ValueError):
@@ -139,7 +142,7 @@ class Problem:
                 raise InputError(fname, f"duplicate label {lab!r}")
             seen_lin.add(i)
             lin_pos.append(i)
-            lin_val.append(_finite(bias, fname))
+            lin_val.append(finite(bias, fname))
         rows: list[int] = []
         cols: list[int] = []
         vals: list[float] = []
@@ -155,13 +158,13 @@ class Problem:
                 raise InputError(fname, f"self-loop on {u!r}: put it in linear instead")
             rows.append(i)
             cols.append(j)
-            vals.append(_finite(bias, fname))
+            vals.append(finite(bias, fname))
         n = len(order)
         h = np.zeros(n, dtype=np.float64)
         np.add.at(h, np.asarray(lin_pos, dtype=np.int64), np.asarray(lin_val, dtype=np.float64))
         return cls._assemble(
             order, h, np.asarray(rows, dtype=np.int64), np.asarray(cols, dtype=np.int64),
-            np.asarray(vals, dtype=np.float64), _finite(offset, p + "offset"), vartype,
+            np.asarray(vals, dtype=np.float64), finite(offset, p + "offset"), vartype,
             tuple(decisions), p,
         )
 
