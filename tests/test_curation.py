@@ -12,7 +12,7 @@ from repair import CandidateSet, InputError
 from repair.curation import curate
 from repair.stress import ScenarioFamily, stress_test
 
-from test_stress import ALPHA, W, planted, state
+from test_stress import ALPHA, BUDGET, W, planted, state
 
 
 def _brute_key(C, sub):
@@ -68,7 +68,7 @@ def test_curating_a_stress_tested_library_keeps_the_broad_candidates():
     X = np.vstack([state(p, groups, bits) for bits in itertools.product([0, 1], repeat=3)])
     cs = CandidateSet.from_array(p, X)
     rep = stress_test(p, cs, ScenarioFamily(hamming_weight=W), scenarios=20, seed=5,
-                      method="greedy", epsilon=ALPHA)
+                      method="greedy", epsilon=ALPHA, time_limit=BUDGET)
     C = rep.cost_matrix()
     Cl = C.tolist()
     for m in (1, 2, 3):
