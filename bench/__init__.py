@@ -1,0 +1,4 @@
+"""flipfix benchmarks: repair versus re-solving, greedy kernel, service overhead, memory.
+
+Entry point: ``python -m bench.run [--quick] [--only NAME]``. Never part of the test suite.
+"""
