@@ -3,13 +3,19 @@
 Model (data, variables, constraints, objective, solve, status — in that order):
 
 * one Boolean ``x_i`` per bit; fixings as unit constraints;
-* one Boolean ``y_ij = x_i AND x_j`` per coupling of the merged QUBO;
+* one Boolean ``y_ij`` per coupling of the merged QUBO, linked to ``x_i AND x_j`` on
+  the side the objective pushes against (``y <= x_i, y <= x_j`` for a negative
+  coupling, ``y >= x_i + x_j - 1`` for a positive one: common practice, exact at
+  every optimum and for every hint, and a third fewer constraints to build);
 * per count penalty: ``z_t = AND(literals)`` for terms of two or more literals,
   an integer ``d = const + sum coef_t z_t`` and ``f = table[d]`` by an element
   constraint;
 * hard rows as linear constraints; an optional local-branching radius
   ``sum_i |x_i - c_i| <= R`` around a centre ``c``; an optional price per flip;
 * an optional objective cut-off (``objective <= upper``) for improving searches.
+
+The model is built once (:class:`LateModel`) and cloned for each search, which
+then adds its own objective (price per flip), radius, cut-off and hint.
 
 The hint is complete: every auxiliary (products, term ANDs, d, f) is hinted with
 the value implied by the hinted bits, since CP-SAT makes little use of partial
@@ -29,7 +35,7 @@ from ortools.sat.python import cp_model
 
 from .compiled import Compiled
 
-__all__ = ["CpsatOutput", "solve_cpsat", "integer_scale"]
+__all__ = ["CpsatOutput", "LateModel", "solve_cpsat", "integer_scale"]
 
 _STATUS = {
     cp_model.OPTIMAL: "optimal",
@@ -81,131 +87,185 @@ def _int(v: float, s: float) -> int:
     return int(round(v * s))
 
 
+class LateModel:
+    """The CP-SAT model of a compiled late problem, built once, solved many times."""
+
+    def __init__(self, compiled: Compiled):
+        t0 = time.perf_counter()
+        self.compiled = compiled
+        n = compiled.n
+        m = cp_model.CpModel()
+        pi, pj, pv = compiled.objective_model.pairs()
+        obj_values = [compiled.h, pv] + [spec.table - spec.table[0] for spec in compiled.counts]
+        s, self.scale_error = integer_scale(np.concatenate(obj_values))
+        self.scale = s
+        x = [m.new_bool_var(f"x{i}") for i in range(n)]
+        self.x = x
+        lin = np.round(compiled.h * s).astype(np.int64)  # objective coefficient of each x
+        obj_idx: list = []
+        obj_coef: list = []
+        self.products = []
+        for a, b, w in zip(pi.tolist(), pj.tolist(), pv.tolist()):
+            c = _int(w, s)
+            if c == 0:
+                continue
+            y = m.new_bool_var(f"y{a}_{b}")
+            if c > 0:
+                m.add_bool_or([~x[a], ~x[b], y])
+            else:
+                m.add_implication(y, x[a])
+                m.add_implication(y, x[b])
+            self.products.append((y, a, b))
+            obj_idx.append(y.index)
+            obj_coef.append(c)
+        self.const = compiled.offset
+        self.counts = []
+        for p, spec in enumerate(compiled.counts):
+            parts = []
+            z_list = []
+            for t, (coef, lits) in enumerate(spec.terms):
+                if len(lits) == 1:
+                    i, b = lits[0]
+                    parts.append(coef * (x[i] if b == 1 else 1 - x[i]))
+                else:
+                    z = m.new_bool_var(f"z{p}_{t}")
+                    lv = [x[i] if b == 1 else ~x[i] for i, b in lits]
+                    m.add_bool_and(lv).only_enforce_if(z)
+                    m.add_bool_or([~lit for lit in lv] + [z])
+                    parts.append(coef * z)
+                    z_list.append((z, lits))
+            d = m.new_int_var(0, spec.table.size - 1, f"d{p}")
+            m.add(d == spec.const + sum(parts))
+            tab = [_int(v - spec.table[0], s) for v in spec.table]
+            f = m.new_int_var(min(tab), max(tab), f"f{p}")
+            m.add_element(d, tab, f)
+            obj_idx.append(f.index)
+            obj_coef.append(1)
+            self.const += spec.table[0]
+            self.counts.append((d, f, z_list, spec, tab))
+        for i in np.flatnonzero(compiled.fixed >= 0):
+            m.add(x[int(i)] == int(compiled.fixed[i]))
+        for r in compiled.rows:
+            bounds = [v for v in (r.lo, r.hi) if math.isfinite(v)]
+            rs, _ = integer_scale(np.concatenate([r.coef, bounds]))
+            expr = cp_model.LinearExpr.weighted_sum(
+                [x[int(i)] for i in r.idx], [_int(a, rs) for a in r.coef])
+            if math.isfinite(r.lo):
+                m.add(expr >= math.ceil(r.lo * rs - 1e-9))
+            if math.isfinite(r.hi):
+                m.add(expr <= math.floor(r.hi * rs + 1e-9))
+        self.model = m
+        self.lin = lin
+        self.obj_idx = np.asarray(obj_idx, dtype=np.int64)
+        self.obj_coef = np.asarray(obj_coef, dtype=np.int64)
+        self.build_seconds = time.perf_counter() - t0
+
+    # ------------------------------------------------------------------ solve
+    def solve(self, *, hint: np.ndarray | None = None, center: np.ndarray | None = None,
+              radius: int | None = None, flip_price: float = 0.0, upper: float | None = None,
+              time_limit: float = 1.0, workers: int = 1, seed: int = 0,
+              cancel: threading.Event | None = None) -> CpsatOutput:
+        """One search on a clone of the model; see :func:`solve_cpsat` for the options."""
+        t0 = time.perf_counter()
+        n = self.compiled.n
+        s = self.scale
+        m = self.model.clone()
+        proto = m.proto
+        lin = self.lin.copy()
+        const_units = 0  # integer objective constant (scaled)
+        err = self.scale_error
+        x_idx = np.asarray([v.index for v in self.x], dtype=np.int64)
+        if center is not None and (radius is not None or flip_price):
+            c = np.asarray(center, dtype=np.int64)
+            sign = 1 - 2 * c  # dist = sum_i (x_i if c_i == 0 else 1 - x_i)
+            if radius is not None:
+                ct = proto.constraints.add()
+                ct.linear.vars.extend(x_idx.tolist())
+                ct.linear.coeffs.extend(sign.tolist())
+                ct.linear.domain.extend([-(2**40), int(radius) - int(c.sum())])
+            if flip_price:
+                ps = _int(flip_price, s)
+                err = max(err, abs(ps / s - flip_price))
+                lin = lin + ps * sign
+                const_units += ps * int(c.sum())
+        idx = np.concatenate([x_idx, self.obj_idx])
+        coef = np.concatenate([lin, self.obj_coef])
+        keep = coef != 0
+        proto.objective.vars.extend(idx[keep].tolist())
+        proto.objective.coeffs.extend(coef[keep].tolist())
+        proto.objective.offset = float(const_units)
+        if upper is not None:
+            ct = proto.constraints.add()
+            ct.linear.vars.extend(idx[keep].tolist())
+            ct.linear.coeffs.extend(coef[keep].tolist())
+            top = math.floor((upper - self.const) * s + 1e-6) - const_units
+            ct.linear.domain.extend([-(2**62), int(top)])
+        if hint is not None:
+            self._hint(proto, np.asarray(hint, dtype=np.int64))
+        solver = cp_model.CpSolver()
+        solver.parameters.max_time_in_seconds = max(0.01, float(time_limit) - (time.perf_counter() - t0))
+        solver.parameters.num_workers = max(1, int(workers))
+        solver.parameters.random_seed = int(seed)
+        solver.parameters.log_search_progress = False
+        finished = threading.Event()
+        watcher = None
+        if cancel is not None:
+            def watch():
+                while not finished.wait(0.02):
+                    if cancel.is_set():
+                        solver.stop_search()
+                        return
+            watcher = threading.Thread(target=watch, daemon=True)
+            watcher.start()
+        code = solver.solve(m)
+        finished.set()
+        if watcher is not None:
+            watcher.join()
+        status = _STATUS.get(code, "unknown")
+        xs = None
+        value = bound = float("nan")
+        if code in (cp_model.OPTIMAL, cp_model.FEASIBLE):
+            xs = np.asarray([solver.value(v) for v in self.x], dtype=np.int8)
+            value = solver.objective_value / s + self.const
+            bound = solver.best_objective_bound / s + self.const
+        return CpsatOutput(x=xs, status=status, objective=value, bound=bound,
+                           seconds=time.perf_counter() - t0, scaling_error=err, scale=s)
+
+    def _hint(self, proto, hv: np.ndarray) -> None:
+        """A complete hint: the bits and every auxiliary value they imply."""
+        vars_, vals = [v.index for v in self.x], hv.tolist()
+        for y, a, b in self.products:
+            vars_.append(y.index)
+            vals.append(int(hv[a] & hv[b]))
+        for d, f, z_list, spec, tab in self.counts:
+            for z, lits in z_list:
+                vars_.append(z.index)
+                vals.append(int(all(hv[i] == b for i, b in lits)))
+            dv = spec.const + sum(coef * int(all(hv[i] == b for i, b in lits))
+                                  for coef, lits in spec.terms)
+            vars_ += [d.index, f.index]
+            vals += [int(dv), int(tab[dv])]
+        proto.solution_hint.vars.extend(vars_)
+        proto.solution_hint.values.extend(vals)
+
+
 def solve_cpsat(
-    compiled: Compiled, *, hint: np.ndarray | None = None, center: np.ndarray | None = None,
-    radius: int | None = None, flip_price: float = 0.0, upper: float | None = None,
-    time_limit: float = 1.0, workers: int = 1, seed: int = 0,
+    compiled: "Compiled | LateModel", *, hint: np.ndarray | None = None,
+    center: np.ndarray | None = None, radius: int | None = None, flip_price: float = 0.0,
+    upper: float | None = None, time_limit: float = 1.0, workers: int = 1, seed: int = 0,
     cancel: threading.Event | None = None,
 ) -> CpsatOutput:
-    """Solve the compiled late problem with CP-SAT.
+    """Solve the compiled late problem (or a prebuilt :class:`LateModel`) with CP-SAT.
 
     hint: int8 (n,) bits to hint (completed over every auxiliary variable).
     center: int8 (n,) assignment that ``radius`` and ``flip_price`` are measured from.
     upper: only accept solutions whose objective (cost + price * flips) is <= upper.
+    ``time_limit`` covers the model build when a Compiled is passed.
     """
     t0 = time.perf_counter()
-    n = compiled.n
-    m = cp_model.CpModel()
-    # ---- data: one scale for the whole objective
-    pi, pj, pv = compiled.objective_model.pairs()
-    obj_values = [compiled.h, pv]
-    for spec in compiled.counts:
-        obj_values.append(spec.table - spec.table[0])
-    if flip_price:
-        obj_values.append(np.asarray([flip_price]))
-    s, scale_err = integer_scale(np.concatenate(obj_values))
-    # ---- variables
-    x = [m.new_bool_var(f"x{i}") for i in range(n)]
-    obj_terms: list = []
-    obj_const = 0.0
-    for i in range(n):
-        c = _int(compiled.h[i], s)
-        if c:
-            obj_terms.append(c * x[i])
-    y_vars = []
-    for a, b, w in zip(pi.tolist(), pj.tolist(), pv.tolist()):
-        y = m.new_bool_var(f"y{a}_{b}")
-        m.add_bool_or([x[a].Not(), x[b].Not(), y])
-        m.add_implication(y, x[a])
-        m.add_implication(y, x[b])
-        y_vars.append((y, a, b))
-        obj_terms.append(_int(w, s) * y)
-    count_vars = []
-    for p, spec in enumerate(compiled.counts):
-        parts = []
-        z_list = []
-        for t, (coef, lits) in enumerate(spec.terms):
-            if len(lits) == 1:
-                i, b = lits[0]
-                parts.append(coef * (x[i] if b == 1 else 1 - x[i]))
-            else:
-                z = m.new_bool_var(f"z{p}_{t}")
-                lv = [x[i] if b == 1 else x[i].Not() for i, b in lits]
-                m.add_bool_and(lv).only_enforce_if(z)
-                m.add_bool_or([lit.Not() for lit in lv] + [z])
-                parts.append(coef * z)
-                z_list.append((z, lits))
-        top = spec.table.size - 1
-        d = m.new_int_var(0, top, f"d{p}")
-        m.add(d == spec.const + sum(parts))
-        tab = [_int(v - spec.table[0], s) for v in spec.table]
-        f = m.new_int_var(min(tab), max(tab), f"f{p}")
-        m.add_element(d, tab, f)
-        obj_terms.append(f)
-        obj_const += spec.table[0]
-        count_vars.append((d, f, z_list, spec, tab))
-    # ---- constraints
-    for i in np.flatnonzero(compiled.fixed >= 0):
-        m.add(x[int(i)] == int(compiled.fixed[i]))
-    for r in compiled.rows:
-        rs, _ = integer_scale(np.concatenate([r.coef, [v for v in (r.lo, r.hi) if math.isfinite(v)]]))
-        expr = sum(_int(a, rs) * x[int(i)] for i, a in zip(r.idx, r.coef))
-        if math.isfinite(r.lo):
-            m.add(expr >= math.ceil(r.lo * rs - 1e-9))
-        if math.isfinite(r.hi):
-            m.add(expr <= math.floor(r.hi * rs + 1e-9))
-    dist = None
-    if center is not None and (radius is not None or flip_price):
-        dist = sum(x[i] if center[i] == 0 else 1 - x[i] for i in range(n))
-        if radius is not None:
-            m.add(dist <= int(radius))
-        if flip_price:
-            obj_terms.append(_int(flip_price, s) * dist)
-    objective = sum(obj_terms) if obj_terms else 0
-    if upper is not None:
-        m.add(objective <= math.floor((upper - compiled.offset - obj_const) * s + 1e-6))
-    m.minimize(objective)
-    # ---- complete hint
-    if hint is not None:
-        hv = [int(v) for v in hint]
-        for i in range(n):
-            m.add_hint(x[i], hv[i])
-        for y, a, b in y_vars:
-            m.add_hint(y, hv[a] & hv[b])
-        for d, f, z_list, spec, tab in count_vars:
-            for z, lits in z_list:
-                m.add_hint(z, int(all(hv[i] == b for i, b in lits)))
-            dv = spec.const + sum(coef * int(all(hv[i] == b for i, b in lits))
-                                  for coef, lits in spec.terms)
-            m.add_hint(d, dv)
-            m.add_hint(f, tab[dv])
-    # ---- solve
-    solver = cp_model.CpSolver()
-    solver.parameters.max_time_in_seconds = max(0.01, float(time_limit) - (time.perf_counter() - t0))
-    solver.parameters.num_workers = max(1, int(workers))
-    solver.parameters.random_seed = int(seed)
-    solver.parameters.log_search_progress = False
-    finished = threading.Event()
-    watcher = None
-    if cancel is not None:
-        def watch():
-            while not finished.wait(0.02):
-                if cancel.is_set():
-                    solver.stop_search()
-                    return
-        watcher = threading.Thread(target=watch, daemon=True)
-        watcher.start()
-    code = solver.solve(m)
-    finished.set()
-    if watcher is not None:
-        watcher.join()
-    status = _STATUS.get(code, "unknown")
-    xs = None
-    value = float("nan")
-    bound = float("nan")
-    if code in (cp_model.OPTIMAL, cp_model.FEASIBLE):
-        xs = np.asarray([solver.value(v) for v in x], dtype=np.int8)
-        value = solver.objective_value / s + compiled.offset + obj_const
-        bound = solver.best_objective_bound / s + compiled.offset + obj_const
-    return CpsatOutput(x=xs, status=status, objective=value, bound=bound,
-                       seconds=time.perf_counter() - t0, scaling_error=scale_err, scale=s)
+    model = compiled if isinstance(compiled, LateModel) else LateModel(compiled)
+    left = time_limit - (time.perf_counter() - t0)
+    out = model.solve(hint=hint, center=center, radius=radius, flip_price=flip_price,
+                      upper=upper, time_limit=left, workers=workers, seed=seed, cancel=cancel)
+    out.seconds = time.perf_counter() - t0
+    return out

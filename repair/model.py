@@ -20,7 +20,7 @@ from typing import Any, Hashable, Iterable, Mapping, Sequence
 
 import numpy as np
 
-from .batching import row_slices
+from .energy import csr_energies, csr_local_fields
 from .errors import InputError
 
 __all__ = ["Problem", "Decision", "BINARY", "SPIN", "check_label", "finite"]
@@ -283,31 +283,14 @@ class Problem:
         X = np.asarray(X)
         if X.ndim == 1:
             X = X[None, :]
-        i, j, J = self.pairs()
-        e = np.empty(X.shape[0])
-        for sl in row_slices(X.shape[0], max(self.n, J.size)):
-            Xf = X[sl].astype(np.float64)
-            e[sl] = self.offset + Xf @ self.linear
-            if J.size:
-                e[sl] += (Xf[:, i] * Xf[:, j]) @ J
-        return e
+        return csr_energies(X, self.linear, self.indptr, self.indices, self.data, self.offset)
 
     def local_fields(self, X: np.ndarray) -> np.ndarray:
         """h_i + sum_j J_ij x_j for every row of X: float64 (K, n)."""
         X = np.asarray(X)
         if X.ndim == 1:
             X = X[None, :]
-        out = np.tile(self.linear, (X.shape[0], 1))
-        nnz = self.data.size
-        if nnz:
-            nonempty = np.diff(self.indptr) > 0
-            for sl in row_slices(X.shape[0], nnz + 1):
-                # one zero column past the end so every row start is a valid index
-                contrib = np.zeros((sl.stop - sl.start, nnz + 1))
-                contrib[:, :nnz] = X[sl][:, self.indices] * self.data  # (k, nnz)
-                sums = np.add.reduceat(contrib, self.indptr[:-1], axis=1)  # empty rows: junk
-                out[sl] += np.where(nonempty, sums, 0.0)
-        return out
+        return csr_local_fields(X, self.linear, self.indptr, self.indices, self.data)
 
     def flip_costs(self, X: np.ndarray) -> np.ndarray:
         """Energy change of flipping each single variable: float64 (K, n)."""

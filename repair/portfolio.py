@@ -94,11 +94,40 @@ def _ranked(feasible: np.ndarray, objective: np.ndarray) -> np.ndarray:
     return np.lexsort((objective, ~feasible))
 
 
-def solve_cpsat(*args, **kwargs):
-    """CP-SAT (imported on first use: ortools brings protobuf, which plain greedy runs avoid)."""
-    from .cpsat import solve_cpsat as _solve
+def build_cost(compiled: Compiled) -> float:
+    """Rough seconds to build the CP-SAT model (measured here: ~25 us per product or term)."""
+    items = compiled.data.size // 2 + sum(len(c.terms) for c in compiled.counts)
+    return 25e-6 * (items + compiled.a_data.size + compiled.n)
 
-    return _solve(*args, **kwargs)
+
+def _cpsat_affordable(compiled: Compiled, seconds: float) -> bool:
+    return build_cost(compiled) + 0.05 < seconds
+
+
+class _LazyCpsat:
+    """The CP-SAT model, built on first use and only when the budget can pay for it.
+
+    (Imported late: ortools brings protobuf, which plain greedy runs avoid.)
+    """
+
+    def __init__(self, compiled: Compiled, stats: dict):
+        self.compiled = compiled
+        self.model = None
+        self.stats = stats
+
+    def ready(self, deadline: float) -> bool:
+        if self.model is None:
+            from .cpsat import LateModel
+
+            if time.perf_counter() + build_cost(self.compiled) >= deadline:
+                self.stats["cpsat_skipped"] = "budget too short to build the CP-SAT model"
+                return False
+            self.model = LateModel(self.compiled)
+            self.stats["cpsat_build_seconds"] = round(self.model.build_seconds, 4)
+        return time.perf_counter() < deadline - 0.005
+
+    def solve(self, **kwargs):
+        return self.model.solve(**kwargs)
 
 
 def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: float,
@@ -114,8 +143,9 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: flo
     def stopped() -> bool:
         return (cancel is not None and cancel.is_set()) or time.perf_counter() >= deadline
 
+    cp = _LazyCpsat(compiled, out.stats)
     if method == "cpsat":
-        _per_candidate_cpsat(compiled, X0, out, deadline=deadline, max_flips=max_flips,
+        _per_candidate_cpsat(cp, compiled, X0, out, deadline=deadline, max_flips=max_flips,
                              flip_price=flip_price, seed=seed, workers=workers, cancel=cancel,
                              report=report)
         return out
@@ -139,7 +169,11 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: flo
 
     ev, obj, flips = _objective(compiled, g.X, X0, flip_price)
     cur = g.X.copy()
-    kick_deadline = time.perf_counter() + mix.kicks * (deadline - time.perf_counter())
+    left = deadline - time.perf_counter()
+    kick_share = mix.kicks
+    if mix.kicks > 0 and not _cpsat_affordable(compiled, (1.0 - mix.kicks) * left):
+        kick_share = 1.0  # CP-SAT could not even be built in its share: kicks take it all
+    kick_deadline = time.perf_counter() + kick_share * left
     rounds, kept = _kicks(compiled, X0, cur, obj, ev.feasible, g.done, out,
                           deadline=kick_deadline, max_flips=max_flips, flip_price=flip_price,
                           seed=seed, cancel=cancel)
@@ -167,11 +201,11 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: flo
     share = (deadline - time.perf_counter()) * (mix.neighbourhood_share if mix.full_search else 1.0)
     share /= max(1, len(tops))
     for rank, k in enumerate(tops):
-        if stopped():
+        if stopped() or not cp.ready(deadline):
             break
         radius = max_flips if max_flips is not None else min(n, int(flips[k]) + margin)
         budget = min(share, deadline - time.perf_counter())
-        r = solve_cpsat(compiled, hint=g.X[k], center=X0[k], radius=radius,
+        r = cp.solve(hint=g.X[k], center=X0[k], radius=radius,
                         flip_price=flip_price, time_limit=budget, workers=workers,
                         seed=seed + rank, cancel=cancel)
         out.scaling_error = max(out.scaling_error, r.scaling_error)
@@ -182,14 +216,14 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: flo
                 best_obj = r.objective
         report(done=K, total=K, phase="neighbourhood", best_cost=best_obj)
     # ---- stage 4: the whole problem, unhinted, only improving solutions
-    if stopped() or not mix.full_search:
+    if stopped() or not mix.full_search or not cp.ready(deadline):
         return out
     anchor = tops[0] if tops else (order[0] if order else 0)
     full_space = max_flips is None
     upper = None
     if best_obj is not None:
         upper = best_obj - max(1e-9, 1e-9 * abs(best_obj))
-    r = solve_cpsat(compiled, hint=None, center=X0[anchor],
+    r = cp.solve(hint=None, center=X0[anchor],
                     radius=None if full_space else max_flips, flip_price=flip_price,
                     upper=upper, time_limit=deadline - time.perf_counter(), workers=workers,
                     seed=seed + mix.neighbourhoods, cancel=cancel)
@@ -236,7 +270,7 @@ def _kicks(compiled, X0, cur, obj, feasible, done, out, *, deadline, max_flips, 
             idx = rng.choice(free, size=min(r, free.size), replace=False)
             row[idx] ^= 1
         g = greedy_repair(compiled, starts, origin=X0[order], max_flips=max_flips,
-                          flip_price=flip_price, deadline=deadline, cancel=cancel)
+                          flip_price=flip_price, deadline=deadline, cancel=cancel, chunk=4)
         ev, new_obj, new_flips = _objective(compiled, g.X, X0[order], flip_price)
         inside = np.ones(len(order), dtype=bool) if max_flips is None else new_flips <= max_flips
         for pos, k in enumerate(order):
@@ -252,7 +286,7 @@ def _kicks(compiled, X0, cur, obj, feasible, done, out, *, deadline, max_flips, 
     return rounds, kept
 
 
-def _per_candidate_cpsat(compiled, X0, out, *, deadline, max_flips, flip_price, seed, workers,
+def _per_candidate_cpsat(cp, compiled, X0, out, *, deadline, max_flips, flip_price, seed, workers,
                          cancel, report):
     """CP-SAT from each candidate (hinted with it), best-ranked candidates first."""
     K = X0.shape[0]
@@ -265,8 +299,11 @@ def _per_candidate_cpsat(compiled, X0, out, *, deadline, max_flips, flip_price, 
         left = deadline - time.perf_counter()
         if left <= overrun + 0.005 or (cancel is not None and cancel.is_set()):
             break
+        if not cp.ready(deadline):
+            break
+        left = deadline - time.perf_counter()
         budget = max(0.005, left / (K - pos) - overrun)
-        r = solve_cpsat(compiled, hint=X0[k], center=X0[k], radius=max_flips,
+        r = cp.solve(hint=X0[k], center=X0[k], radius=max_flips,
                         flip_price=flip_price, time_limit=budget, workers=workers,
                         seed=seed, cancel=cancel)
         reached[k] = True
