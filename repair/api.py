@@ -61,6 +61,9 @@ def repair(
     ``compiled`` may pass a precompiled ``compile_constraints(problem, constraints)``;
     ``mix`` sets how the portfolio shares its budget (see :class:`repair.portfolio.Mix`).
     """
+    if method in ("portfolio", "cpsat"):
+        # load OR-Tools before the clock starts: a one-time cost per process, not search time
+        from . import cpsat  # noqa: F401
     t0 = time.perf_counter()
     if not isinstance(problem, Problem):
         raise InputError("problem", f"expected a Problem, got {type(problem).__name__}")

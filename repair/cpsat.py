@@ -96,12 +96,19 @@ class LateModel:
         n = compiled.n
         m = cp_model.CpModel()
         pi, pj, pv = compiled.objective_model.pairs()
-        obj_values = [compiled.h, pv] + [spec.table - spec.table[0] for spec in compiled.counts]
+        h = compiled.h
+        self.decisions = None
+        if compiled.problem.decisions:
+            h, pi, pj, pv, self.decisions = _decision_terms(compiled, h, pi, pj, pv)
+        obj_values = [h, pv] + [spec.table - spec.table[0] for spec in compiled.counts]
+        if self.decisions is not None:
+            obj_values += [u for u in self.decisions.unary] + [
+                g.ravel() for g in self.decisions.pair_cost.values()]
         s, self.scale_error = integer_scale(np.concatenate(obj_values))
         self.scale = s
         x = [m.new_bool_var(f"x{i}") for i in range(n)]
         self.x = x
-        lin = np.round(compiled.h * s).astype(np.int64)  # objective coefficient of each x
+        lin = np.round(h * s).astype(np.int64)  # objective coefficient of each x
         obj_idx: list = []
         obj_coef: list = []
         self.products = []
@@ -118,6 +125,8 @@ class LateModel:
             self.products.append((y, a, b))
             obj_idx.append(y.index)
             obj_coef.append(c)
+        if self.decisions is not None:
+            self.decisions.build(m, x, s, obj_idx, obj_coef)
         self.const = compiled.offset
         self.counts = []
         for p, spec in enumerate(compiled.counts):
@@ -245,8 +254,112 @@ class LateModel:
                                   for coef, lits in spec.terms)
             vars_ += [d.index, f.index]
             vals += [int(dv), int(tab[dv])]
+        if self.decisions is not None:
+            self.decisions.hint(self.compiled.problem, hv, vars_, vals)
         proto.solution_hint.vars.extend(vars_)
         proto.solution_hint.values.extend(vals)
+
+
+class _Decisions:
+    """Value-indicator form of the objective over declared integer decisions.
+
+    For each decision, Booleans ``e_v`` (value v chosen) with exactly one true and the
+    bits channelled to them (bit = sum_v code[v, bit] e_v). Energy terms inside one
+    decision become a cost per value; couplings between two decisions become a
+    k1 x k2 cost table on products ``p_ac = e_a AND e_c``, with the marginal equalities
+    ``sum_c p_ac = e_a`` and ``sum_a p_ac = e_c`` (the local-polytope relaxation, much
+    tighter than products of domain-wall bits).
+    """
+
+    def __init__(self, problem, codes, bits, unary, pair_cost):
+        self.codes = codes          # per decision: int8 (k, b) codewords
+        self.bits = bits            # per decision: int64 (b,) bit positions
+        self.unary = unary          # per decision: float64 (k,) cost per value
+        self.pair_cost = pair_cost  # (d1, d2) -> float64 (k1, k2), d1 < d2
+        self.e = []
+        self.p = {}
+
+    def build(self, m, x, s, obj_idx, obj_coef):
+        for di, (code, bits) in enumerate(zip(self.codes, self.bits)):
+            e = [m.new_bool_var(f"e{di}_{v}") for v in range(code.shape[0])]
+            m.add_exactly_one(e)
+            for col, i in enumerate(bits.tolist()):
+                m.add(x[i] == cp_model.LinearExpr.weighted_sum(e, code[:, col].tolist()))
+            for v, u in enumerate(self.unary[di]):
+                if _int(u, s):
+                    obj_idx.append(e[v].index)
+                    obj_coef.append(_int(u, s))
+            self.e.append(e)
+        for (d1, d2), G in self.pair_cost.items():
+            e1, e2 = self.e[d1], self.e[d2]
+            P = [[m.new_bool_var(f"p{d1}_{d2}_{a}_{c}") for c in range(len(e2))]
+                 for a in range(len(e1))]
+            for a in range(len(e1)):
+                m.add(sum(P[a]) == e1[a])
+            for c in range(len(e2)):
+                m.add(sum(P[a][c] for a in range(len(e1))) == e2[c])
+            for a in range(len(e1)):
+                for c in range(len(e2)):
+                    if _int(G[a, c], s):
+                        obj_idx.append(P[a][c].index)
+                        obj_coef.append(_int(G[a, c], s))
+            self.p[(d1, d2)] = P
+
+    def hint(self, problem, hv, vars_, vals):
+        from .encodings import decode_indices
+
+        M = decode_indices(problem, hv.astype(np.int8)[None, :])[0]
+        for di, e in enumerate(self.e):
+            if M[di] >= 0:
+                vars_ += [v.index for v in e]
+                vals += [int(v == M[di]) for v in range(len(e))]
+        for (d1, d2), P in self.p.items():
+            if M[d1] >= 0 and M[d2] >= 0:
+                for a, row in enumerate(P):
+                    for c, var in enumerate(row):
+                        vars_.append(var.index)
+                        vals.append(int(a == M[d1] and c == M[d2]))
+
+
+def _decision_terms(compiled, h, pi, pj, pv):
+    """Move the objective terms over decision bits into value form (see :class:`_Decisions`).
+
+    Returns (h float64 (n,), pi, pj, pv of the couplings left at bit level, _Decisions).
+    """
+    from .encodings import codewords, decision_bits
+
+    problem = compiled.problem
+    n = problem.n
+    dec_of = np.full(n, -1, dtype=np.int64)
+    col_of = np.zeros(n, dtype=np.int64)
+    codes, bits = [], []
+    for di, d in enumerate(problem.decisions):
+        idx = decision_bits(problem, d)
+        dec_of[idx] = di
+        col_of[idx] = np.arange(idx.size)
+        codes.append(codewords(d).astype(np.int8))
+        bits.append(idx)
+    h = h.copy()
+    unary = [np.zeros(c.shape[0]) for c in codes]
+    for i in np.flatnonzero(dec_of >= 0):
+        unary[dec_of[i]] += h[i] * codes[dec_of[i]][:, col_of[i]]
+        h[i] = 0.0
+    pair_cost: dict = {}
+    keep = np.ones(pi.size, dtype=bool)
+    for t, (a, b, w) in enumerate(zip(pi.tolist(), pj.tolist(), pv.tolist())):
+        da, db = dec_of[a], dec_of[b]
+        if da < 0 or db < 0:
+            continue
+        keep[t] = False
+        ca, cb = codes[da][:, col_of[a]], codes[db][:, col_of[b]]
+        if da == db:
+            unary[da] += w * ca * cb
+            continue
+        if da > db:
+            da, db, ca, cb = db, da, cb, ca
+        G = pair_cost.setdefault((int(da), int(db)), np.zeros((codes[da].shape[0], codes[db].shape[0])))
+        G += w * np.outer(ca, cb)
+    return h, pi[keep], pj[keep], pv[keep], _Decisions(problem, codes, bits, unary, pair_cost)
 
 
 def solve_cpsat(
