@@ -7,6 +7,14 @@
         out["best"]["cost"], out["best"]["flips"]
 
 Replies of ``repair`` are dicts in the layout of :meth:`repair.result.RepairResult.to_dict`.
+The audit methods (``robustness``, ``stress_test``, ``pareto_front``, ``curate``) return
+the core's own report objects (:mod:`repair.robustness`, :mod:`repair.stress`,
+:mod:`repair.pareto`, :mod:`repair.curation`), each with a ``to_dict()``:
+
+        prof = fx.robustness("roster", epsilon=0.5)
+        rep = fx.stress_test("roster", ScenarioFamily(hamming_weight=3.0), scenarios=30)
+        out = fx.curate("roster", ScenarioFamily(hamming_weight=3.0), 5, keep=True)
+
 Errors are ``grpc.RpcError`` with the status codes listed in the proto.
 """
 
@@ -90,6 +98,8 @@ class FlipfixClient:
         for k, c in enumerate(constraints or []):
             if isinstance(c, pb.Constraint):
                 out.append(c)
+            elif not isinstance(c, Mapping) and convert.constraint_to_proto(c) is not None:
+                out.append(convert.constraint_to_proto(c))  # a repair.constraints object
             else:
                 out.append(convert.doc_to_constraint(c, problem, field=f"constraints[{k}]"))
         return out
@@ -184,3 +194,114 @@ class FlipfixClient:
         if reply is None:
             raise RuntimeError("the stream ended without a result")
         return convert.reply_to_dict(reply)
+
+    # ----------------------------------------------------------------- audit
+    @staticmethod
+    def _family(family: Any) -> tuple[pb.ScenarioFamily, dict]:
+        """ScenarioFamily (core), a dict of its fields, or the proto -> (proto, dict)."""
+        from repair.stress import ScenarioFamily
+
+        if isinstance(family, pb.ScenarioFamily):
+            return family, {}
+        if isinstance(family, Mapping):
+            family = ScenarioFamily(**family)
+        if not isinstance(family, ScenarioFamily):
+            raise TypeError(f"family: expected a repair.stress.ScenarioFamily, got "
+                            f"{type(family).__name__}")
+        return convert.family_to_proto(family), family.to_dict()
+
+    @staticmethod
+    def _method(method: str) -> int:
+        if method not in convert._METHOD_ENUM:
+            raise ValueError(f"method must be one of {sorted(convert._METHOD_ENUM)}, got {method!r}")
+        return convert._METHOD_ENUM[method]
+
+    def robustness(self, name: str, *, epsilon: float = 0.0, spectrum: bool = False,
+                   candidate_ids: Sequence[str] = (), all_revisions: bool = False,
+                   timeout: float | None = None):
+        """The robustness profile of a stored library: :class:`repair.robustness.RobustnessReport`."""
+        r = self.stub.ProfileRobustness(pb.RobustnessRequest(
+            problem=name, candidate_ids=list(candidate_ids), all_revisions=all_revisions,
+            epsilon=epsilon, spectrum=spectrum), timeout=timeout or self.timeout)
+        return convert.reply_to_robustness(r)
+
+    def stress_request(self, name: str, family: Any, *, scenarios: int = 20, seed: int = 0,
+                       method: str = "greedy", time_limit: float = 0.0, epsilon: float = 0.0,
+                       max_flips: int | None = None, flip_price: float = 0.0,
+                       candidate_ids: Sequence[str] = (), all_revisions: bool = False,
+                       matrices: bool = False) -> pb.StressRequest:
+        fam, _ = self._family(family)
+        req = pb.StressRequest(problem=name, candidate_ids=list(candidate_ids),
+                               all_revisions=all_revisions, family=fam, scenarios=scenarios,
+                               seed=seed, method=self._method(method), time_limit=time_limit,
+                               epsilon=epsilon, flip_price=flip_price, matrices=matrices)
+        if max_flips is not None:
+            req.max_flips = int(max_flips)
+        return req
+
+    def stress_test(self, name: str, family: Any, *, timeout: float | None = None,
+                    on_progress: Callable[[pb.RepairProgress], None] | None = None, **options):
+        """The what-if stress test of a stored library: :class:`repair.stress.StressReport`.
+
+        ``options`` as :meth:`stress_request`; ``on_progress`` switches to the streaming
+        RPC (one progress message per scenario, phase ``"stress"``).
+        """
+        req = self.stress_request(name, family, **options)
+        _, fam_doc = self._family(family)
+        timeout = timeout if timeout is not None else self.timeout
+        if on_progress is None:
+            return convert.reply_to_stress(self.stub.StressTest(req, timeout=timeout),
+                                           family=fam_doc)
+        reply = None
+        for ev in self.stub.StressTestStream(req, timeout=timeout):
+            if ev.HasField("progress"):
+                on_progress(ev.progress)
+            else:
+                reply = ev.result
+        if reply is None:
+            raise RuntimeError("the stream ended without a result")
+        return convert.reply_to_stress(reply, family=fam_doc)
+
+    def pareto_front(self, name: str, constraints: Iterable[Any], *,
+                     methods: Sequence[str] = ("greedy", "cpsat"), time_limit: float = 0.0,
+                     seed: int = 0, include_unchanged: bool = True,
+                     cheapest_within_flips: int | None = None,
+                     fewest_flips_within_percent: float | None = None,
+                     candidate_ids: Sequence[str] = (), all_revisions: bool = False,
+                     timeout: float | None = None) -> dict:
+        """The (cost, flips) front: ``{"front": [ParetoPoint], "cheapest_within": ParetoPoint |
+        None, "fewest_flips_within": ParetoPoint | None, "seconds", "time_limit", "revision"}``."""
+        _info, dom = self.get_problem(name)
+        req = pb.ParetoRequest(problem=name, candidate_ids=list(candidate_ids),
+                               all_revisions=all_revisions,
+                               constraints=self._constraints(dom, constraints),
+                               methods=[self._method(m) for m in methods], time_limit=time_limit,
+                               seed=seed, exclude_unchanged=not include_unchanged)
+        if cheapest_within_flips is not None:
+            req.cheapest_within_flips = int(cheapest_within_flips)
+        if fewest_flips_within_percent is not None:
+            req.fewest_flips_within_percent = float(fewest_flips_within_percent)
+        r = self.stub.ParetoFront(req, timeout=timeout or self.timeout)
+        return {"front": [convert.reply_to_point(p) for p in r.front],
+                "cheapest_within": convert.reply_to_point(r.cheapest_within)
+                if r.HasField("cheapest_within") else None,
+                "fewest_flips_within": convert.reply_to_point(r.fewest_flips_within)
+                if r.HasField("fewest_flips_within") else None,
+                "seconds": r.seconds, "time_limit": r.time_limit, "revision": int(r.revision)}
+
+    def curate(self, name: str, family: Any, m: int, *, keep: bool = False,
+               selection: str = "greedy", timeout: float | None = None, **options) -> dict:
+        """Choose ``m`` candidates by the stress test; ``keep=True`` removes the others from the
+        store. ``{"stress": StressReport, "curation": CurationResult | None, "kept": bool,
+        "removed_ids": [...], "message": str, "revision": int}``."""
+        sel = {"greedy": pb.FORWARD, "exhaustive": pb.EXHAUSTIVE}
+        if selection not in sel:
+            raise ValueError(f"selection must be 'greedy' or 'exhaustive', got {selection!r}")
+        req = pb.CurateRequest(stress=self.stress_request(name, family, **options), m=m,
+                               selection=sel[selection], keep=keep)
+        _, fam_doc = self._family(family)
+        r = self.stub.CurateLibrary(req, timeout=timeout if timeout is not None else self.timeout)
+        return {"stress": convert.reply_to_stress(r.stress, family=fam_doc),
+                "curation": convert.reply_to_curation(r, m, selection),
+                "kept": bool(r.kept), "removed_ids": list(r.removed_ids), "message": r.message,
+                "revision": int(r.revision)}

@@ -22,16 +22,19 @@ from repair.constraints import (
 )
 from repair.encodings import AllowValues, DecisionChangePenalty, ForbidValues, ForceValue
 from repair.errors import InputError, LimitError
-from repair.model import Problem
+from repair.model import Decision, Problem
 from repair.result import RepairResult
 
 from .generated import flipfix_pb2 as pb
 
 __all__ = [
-    "label_to_py", "py_to_label", "model_to_problem", "problem_to_model", "doc_to_model",
+    "label_to_py", "py_to_label", "decision_to_domain", "decision_to_proto", "model_to_problem", "problem_to_model", "doc_to_model",
     "candidates_to_arrays", "record_to_candidate", "doc_to_candidates", "constraint_to_domain",
-    "constraints_to_domain", "doc_to_constraint", "options_to_kwargs", "result_to_reply",
+    "constraints_to_domain", "doc_to_constraint", "constraint_to_proto", "options_to_kwargs", "result_to_reply",
     "reply_to_dict", "METHOD_NAMES", "Limits",
+    "family_to_domain", "family_to_proto", "stress_to_kwargs", "pareto_to_kwargs",
+    "robustness_to_reply", "stress_to_reply", "pareto_to_reply", "curation_to_reply",
+    "reply_to_robustness", "reply_to_stress", "reply_to_point", "reply_to_curation",
 ]
 
 METHOD_NAMES = {pb.METHOD_UNSPECIFIED: "portfolio", pb.PORTFOLIO: "portfolio",
@@ -129,6 +132,27 @@ def dict_to_assignment(mapping: Mapping) -> pb.Assignment:
                                  for k, v in mapping.items()])
 
 
+# ---------------------------------------------------------------- decisions
+_ENCODING_NAMES = {pb.ONE_HOT: "one_hot", pb.DOMAIN_WALL: "domain_wall"}
+_ENCODING_ENUM = {v: k for k, v in _ENCODING_NAMES.items()}
+
+
+def decision_to_domain(d: pb.Decision, field: str) -> Decision:
+    """A Decision proto -> :class:`repair.model.Decision` (sizes and bit ownership are
+    checked with the problem, by :func:`repair.encodings.validate_decisions`)."""
+    if d.encoding not in _ENCODING_NAMES:
+        raise InputError(field + ".encoding", "must be ONE_HOT or DOMAIN_WALL")
+    variables = tuple(label_to_py(v, f"{field}.variables[{j}]") for j, v in enumerate(d.variables))
+    values = tuple(_value_to_py(v, f"{field}.values[{j}]") for j, v in enumerate(d.values))
+    return Decision(d.name, _ENCODING_NAMES[d.encoding], variables, values)
+
+
+def decision_to_proto(d: Decision) -> pb.Decision:
+    return pb.Decision(name=d.name, encoding=_ENCODING_ENUM[d.encoding],
+                       variables=[py_to_label(v) for v in d.variables],
+                       values=[_py_to_value(v) for v in d.values])
+
+
 # ----------------------------------------------------------------- problems
 def model_to_problem(model: pb.ProblemModel, *, field: str = "model",
                      limits: Limits = NO_LIMITS) -> Problem:
@@ -142,19 +166,8 @@ def model_to_problem(model: pb.ProblemModel, *, field: str = "model",
     labels = [label_to_py(lab, f"{field}.labels[{k}]") for k, lab in enumerate(model.labels)] or None
     n_seen = len(labels) if labels else len({lab for lab, _ in lin} | {x for u, v, _ in quad for x in (u, v)})
     limits.variables(n_seen, field)
-    decisions = ()
-    if model.decisions_json:
-        try:
-            obj = json.loads(model.decisions_json)
-        except ValueError as err:
-            raise InputError(field + ".decisions_json", f"is not JSON: {err}") from None
-        if obj:
-            try:
-                from repair import encodings
-            except ImportError:
-                raise InputError(field + ".decisions_json",
-                                 "integer decisions need repair.encodings, which is not available") from None
-            decisions = tuple(encodings.parse_decisions(obj, field + ".decisions_json"))
+    decisions = tuple(decision_to_domain(d, f"{field}.decisions[{k}]")
+                      for k, d in enumerate(model.decisions))
     return Problem.from_terms(lin, quad, offset=_finite(model.offset, field + ".offset"),
                               vartype=_VARTYPE_NAMES[model.vartype], labels=labels,
                               decisions=decisions, field_prefix=field + ".")
@@ -172,10 +185,7 @@ def problem_to_model(problem: Problem) -> pb.ProblemModel:
         offset=float(bqm.offset),
         labels=[py_to_label(lab) for lab in problem.labels],
     )
-    if problem.decisions:
-        m.decisions_json = json.dumps([
-            {"name": d.name, "encoding": d.encoding, "variables": list(d.variables),
-             "values": list(d.values)} for d in problem.decisions])
+    m.decisions.extend(decision_to_proto(d) for d in problem.decisions)
     return m
 
 
@@ -190,8 +200,7 @@ def doc_to_model(doc: Any, *, field: str = "problem") -> pb.ProblemModel:
         m.linear.append(pb.LinearTerm(label=py_to_label(lab), bias=float(bias)))
     for u, v, bias in doc.get("quadratic", []):
         m.quadratic.append(pb.QuadraticTerm(u=py_to_label(u), v=py_to_label(v), bias=float(bias)))
-    if doc.get("decisions"):
-        m.decisions_json = json.dumps(doc["decisions"])
+    m.decisions.extend(decision_to_proto(d) for d in problem.decisions)
     return m
 
 
@@ -346,6 +355,16 @@ def doc_to_constraint(obj: Any, problem: Problem, *, field: str) -> pb.Constrain
     """One constraint JSON object -> Constraint proto (typed kinds; others as ``json``)."""
     dom = documents.parse_constraint(obj, problem, field=field)
     name = obj.get("name", "") if isinstance(obj, Mapping) else ""
+    msg = constraint_to_proto(dom, name=name)
+    return msg if msg is not None else pb.Constraint(name=name, json=json.dumps(obj))
+
+
+def constraint_to_proto(dom: Any, *, name: str | None = None) -> pb.Constraint | None:
+    """A domain constraint -> Constraint proto of its typed kind (None: no typed kind).
+
+    ``name`` defaults to the constraint's own ``name`` attribute.
+    """
+    name = getattr(dom, "name", "") or "" if name is None else name
     if isinstance(dom, HammingPenalty):
         msg = pb.HammingPenalty(reference=dict_to_assignment(dom.reference), weight=dom.weight,
                                 shape=_SHAPE_ENUM[dom.shape], threshold=dom.threshold,
@@ -380,7 +399,7 @@ def doc_to_constraint(obj: Any, problem: Problem, *, field: str) -> pb.Constrain
                        for d, v in dom.reference.items()],
             weight=dom.weight, shape=_SHAPE_ENUM[dom.shape], threshold=dom.threshold,
             table=list(dom.table or []), distance=_DISTANCE_ENUM[dom.distance]))
-    return pb.Constraint(name=name, json=json.dumps(obj))
+    return None
 
 
 def docs_to_constraints(doc: Any, problem: Problem, *, field: str = "constraints") -> list[pb.Constraint]:
@@ -492,3 +511,253 @@ def reply_to_dict(r: pb.RepairReply) -> dict:
         "pareto": [{"cost": p.cost, "flips": int(p.flips), "candidate_id": p.candidate_id,
                     "method": p.method} for p in r.pareto],
     }
+
+
+# -------------------------------------------------------------- audit (issue 5)
+#: METHOD_UNSPECIFIED in the audit requests: greedy (fast, deterministic)
+_AUDIT_METHOD_NAMES = {**METHOD_NAMES, pb.METHOD_UNSPECIFIED: "greedy"}
+_REFERENCE_NAMES = {pb.REFERENCE_UNSPECIFIED: "uniform", pb.UNIFORM: "uniform",
+                    pb.PERTURBED: "perturbed"}
+_REFERENCE_ENUM = {"uniform": pb.UNIFORM, "perturbed": pb.PERTURBED}
+_SELECTION_NAMES = {pb.SELECTION_UNSPECIFIED: "greedy", pb.FORWARD: "greedy",
+                    pb.EXHAUSTIVE: "exhaustive"}
+DEFAULT_SCENARIOS = 20
+
+
+def _nonneg(v: float, field: str) -> float:
+    if not math.isfinite(v) or v < 0:
+        raise InputError(field, f"must be a finite number >= 0, got {v!r}")
+    return float(v)
+
+
+def _set_opt(msg, name: str, v: float | None) -> None:
+    if v is not None and math.isfinite(v):
+        setattr(msg, name, float(v))
+
+
+def _get_opt(msg, name: str) -> float:
+    return getattr(msg, name) if msg.HasField(name) else math.nan
+
+
+def family_to_domain(f: pb.ScenarioFamily, problem: Problem, *, field: str = "family"):
+    """ScenarioFamily proto -> validated :class:`repair.stress.ScenarioFamily`."""
+    from repair.stress import ScenarioFamily
+
+    if f.reference not in _REFERENCE_NAMES:
+        raise InputError(field + ".reference", "must be UNIFORM or PERTURBED")
+    if f.hamming_shape not in _SHAPE_NAMES:
+        raise InputError(field + ".hamming_shape", "must be LINEAR, QUADRATIC or THRESHOLD")
+    weights = None
+    if len(f.capacity_weights):
+        weights = {}
+        for k, t in enumerate(f.capacity_weights):
+            lab = label_to_py(t.label, f"{field}.capacity_weights[{k}].label")
+            problem.lookup(lab, f"{field}.capacity_weights[{k}].label")
+            if lab in weights:
+                raise InputError(f"{field}.capacity_weights[{k}].label", f"{lab!r} given twice")
+            weights[lab] = _nonneg(t.bias, f"{field}.capacity_weights[{k}].bias")
+    fam = ScenarioFamily(
+        hamming_weight=float(f.hamming_weight), hamming_shape=_SHAPE_NAMES[f.hamming_shape],
+        hamming_threshold=float(f.hamming_threshold),
+        hamming_fraction=float(f.hamming_fraction) if f.hamming_fraction != 0 else 1.0,
+        reference=_REFERENCE_NAMES[f.reference],
+        perturb_rate=float(f.perturb_rate) if f.HasField("perturb_rate") else 0.1,
+        fix_k=int(f.fix_k), capacity_cut_percent=float(f.capacity_cut_percent),
+        capacity_weights=weights)
+    fam.validate(problem, field_name=field)
+    return fam
+
+
+def family_to_proto(fam) -> pb.ScenarioFamily:
+    """:class:`repair.stress.ScenarioFamily` -> proto (the client's side)."""
+    msg = pb.ScenarioFamily(
+        hamming_weight=fam.hamming_weight, hamming_shape=_SHAPE_ENUM[fam.hamming_shape],
+        hamming_threshold=fam.hamming_threshold, hamming_fraction=fam.hamming_fraction,
+        reference=_REFERENCE_ENUM[fam.reference], perturb_rate=fam.perturb_rate,
+        fix_k=int(fam.fix_k), capacity_cut_percent=fam.capacity_cut_percent)
+    for lab, w in (fam.capacity_weights or {}).items():
+        msg.capacity_weights.append(pb.LinearTerm(label=py_to_label(lab), bias=float(w)))
+    return msg
+
+
+def stress_to_kwargs(r: pb.StressRequest, problem: Problem, *, default_time_limit: float,
+                     max_scenarios: int | None = None, field: str = "") -> tuple[Any, dict]:
+    """StressRequest -> (ScenarioFamily, keyword arguments of :func:`service.audit_jobs.stress`).
+
+    ``time_limit`` is the requested whole-run budget (the server caps it); ``field``
+    prefixes the error fields (``"stress."`` inside a CurateRequest).
+    """
+    fam = family_to_domain(r.family, problem, field=field + "family")
+    scenarios = int(r.scenarios) or DEFAULT_SCENARIOS
+    if max_scenarios is not None and scenarios > max_scenarios:
+        raise LimitError(field + "scenarios", f"{scenarios} scenarios exceed the limit of {max_scenarios}")
+    if r.method not in _AUDIT_METHOD_NAMES:
+        raise InputError(field + "method", f"unknown method {r.method}")
+    t = _nonneg(r.time_limit, field + "time_limit")
+    opts: dict = {"flip_price": _nonneg(r.flip_price, field + "flip_price")}
+    if r.HasField("max_flips"):
+        opts["max_flips"] = int(r.max_flips)
+    return fam, {
+        "scenarios": scenarios, "seed": int(r.seed), "method": _AUDIT_METHOD_NAMES[r.method],
+        "time_limit": t if t > 0 else float(default_time_limit),
+        "epsilon": _nonneg(r.epsilon, field + "epsilon"), "repair_options": opts,
+    }
+
+
+def pareto_to_kwargs(r: pb.ParetoRequest, *, default_time_limit: float) -> dict:
+    """ParetoRequest options -> keyword arguments of :func:`service.audit_jobs.pareto`."""
+    methods = []
+    for k, m in enumerate(r.methods):
+        if m not in METHOD_NAMES:
+            raise InputError(f"methods[{k}]", f"unknown method {m}")
+        methods.append(METHOD_NAMES[m])
+    if r.seed >= 2**31:
+        raise InputError("seed", f"must be below 2^31, got {r.seed}")
+    t = _nonneg(r.time_limit, "time_limit")
+    if r.HasField("fewest_flips_within_percent"):
+        _nonneg(r.fewest_flips_within_percent, "fewest_flips_within_percent")
+    return {"methods": tuple(methods) or ("greedy", "cpsat"),
+            "time_limit": t if t > 0 else float(default_time_limit), "seed": int(r.seed),
+            "include_unchanged": not r.exclude_unchanged}
+
+
+# replies (server side) ------------------------------------------------------
+def robustness_to_reply(rep, *, revision: int = 0) -> pb.RobustnessReply:
+    """:class:`repair.robustness.RobustnessReport` -> RobustnessReply."""
+    return pb.RobustnessReply(
+        epsilon=rep.epsilon, best_id=rep.best_id, num_variables=rep.n_variables,
+        num_decisions=rep.n_decisions, revision=revision,
+        profiles=[pb.CandidateProfile(
+            candidate_id=p.candidate_id, energy=p.energy, free_variables=p.free_variables,
+            free_decisions=p.free_decisions, improving=p.improving,
+            min_flip_cost=p.min_flip_cost, within_1pct=p.within_1pct, within_5pct=p.within_5pct,
+            distance_to_best=p.distance_to_best, nearest_other=p.nearest_other,
+            nearest_other_id=p.nearest_other_id, spectrum=[float(v) for v in p.spectrum])
+            for p in rep.profiles])
+
+
+def stress_to_reply(rep, *, matrices: bool = False, time_limit: float = 0.0,
+                    revision: int = 0) -> pb.StressReply:
+    """:class:`repair.stress.StressReport` -> StressReply (NaN figures left unset)."""
+    out = pb.StressReply(
+        method=rep.method, seed=rep.seed, epsilon=rep.epsilon,
+        scenarios_requested=rep.scenarios_requested, scenarios_done=rep.scenarios_done,
+        stopped=rep.stopped, message=rep.message, seconds=rep.seconds, time_limit=time_limit,
+        correlated=rep.correlated, revision=revision)
+    _set_opt(out, "pearson", rep.pearson)
+    _set_opt(out, "spearman", rep.spearman)
+    for c in rep.candidates:
+        row = pb.CandidateStress(candidate_id=c.candidate_id, energy=c.energy,
+                                 free_variables=c.free_variables, wins=c.wins,
+                                 win_rate=c.win_rate if math.isfinite(c.win_rate) else 0.0,
+                                 worst_flips=c.worst_flips, failures=c.failures)
+        for name in ("mean_cost", "worst_cost", "mean_regret", "mean_flips"):
+            _set_opt(row, name, getattr(c, name))
+        out.candidates.append(row)
+    for s, d, b, w in zip(rep.scenario_seeds, rep.scenario_descriptions, rep.scenario_best,
+                          rep.winners):
+        sc = pb.StressScenario(seed=int(s), description=d, winners=list(w))
+        _set_opt(sc, "best_cost", b)
+        out.scenarios.append(sc)
+    if matrices:
+        for c, f, ok in zip(rep.cost, rep.flips, rep.feasible):
+            out.rows.append(pb.StressRow(cost=[float(v) for v in c], flips=[int(v) for v in f],
+                                         feasible=[bool(v) for v in ok]))
+    return out
+
+
+def _point_proto(p) -> pb.ParetoPoint:
+    return pb.ParetoPoint(cost=float(p.cost), flips=int(p.flips), candidate_id=p.candidate_id,
+                          method=p.method)
+
+
+def pareto_to_reply(front, *, cheapest=None, fewest=None, seconds: float = 0.0,
+                    time_limit: float = 0.0, revision: int = 0) -> pb.ParetoReply:
+    out = pb.ParetoReply(front=[_point_proto(p) for p in front], seconds=seconds,
+                         time_limit=time_limit, revision=revision)
+    if cheapest is not None:
+        out.cheapest_within.CopyFrom(_point_proto(cheapest))
+    if fewest is not None:
+        out.fewest_flips_within.CopyFrom(_point_proto(fewest))
+    return out
+
+
+def curation_to_reply(stress: pb.StressReply, cur, *, kept: bool = False,
+                      removed: Sequence[str] = (), message: str = "",
+                      revision: int = 0) -> pb.CurateReply:
+    """A StressReply plus :class:`repair.curation.CurationResult` (or None) -> CurateReply."""
+    out = pb.CurateReply(stress=stress, kept=kept, removed_ids=list(removed), message=message,
+                         revision=revision)
+    if cur is not None:
+        out.kept_ids.extend(cur.kept_ids)
+        out.scenarios = cur.scenarios
+        out.total_cost, out.full_total_cost = cur.total_cost, cur.full_total_cost
+        out.uncovered = cur.uncovered
+        out.mean_gap, out.worst_gap, out.relative_gap = cur.mean_gap, cur.worst_gap, cur.relative_gap
+        out.curve.extend(cur.curve)
+    return out
+
+
+# replies -> domain objects (client side) -----------------------------------
+def reply_to_robustness(r: pb.RobustnessReply):
+    """RobustnessReply -> :class:`repair.robustness.RobustnessReport`."""
+    from repair.robustness import CandidateProfile, RobustnessReport
+
+    return RobustnessReport(
+        epsilon=r.epsilon, best_id=r.best_id, n_variables=r.num_variables,
+        n_decisions=r.num_decisions,
+        profiles=[CandidateProfile(
+            candidate_id=p.candidate_id, energy=p.energy, free_variables=p.free_variables,
+            free_decisions=p.free_decisions, improving=p.improving,
+            min_flip_cost=p.min_flip_cost, within_1pct=p.within_1pct, within_5pct=p.within_5pct,
+            distance_to_best=p.distance_to_best, nearest_other=p.nearest_other,
+            nearest_other_id=p.nearest_other_id, spectrum=list(p.spectrum)) for p in r.profiles])
+
+
+def reply_to_stress(r: pb.StressReply, *, family: dict | None = None):
+    """StressReply -> :class:`repair.stress.StressReport` (matrices empty unless requested)."""
+    from repair.stress import CandidateStress, StressReport
+
+    return StressReport(
+        family=dict(family or {}), method=r.method, seed=int(r.seed), epsilon=r.epsilon,
+        scenarios_requested=r.scenarios_requested, scenarios_done=r.scenarios_done,
+        stopped=r.stopped, seconds=r.seconds,
+        candidates=[CandidateStress(
+            candidate_id=c.candidate_id, energy=c.energy, free_variables=c.free_variables,
+            wins=c.wins, win_rate=c.win_rate, mean_cost=_get_opt(c, "mean_cost"),
+            worst_cost=_get_opt(c, "worst_cost"), mean_regret=_get_opt(c, "mean_regret"),
+            mean_flips=_get_opt(c, "mean_flips"), worst_flips=c.worst_flips,
+            failures=c.failures) for c in r.candidates],
+        scenario_seeds=[int(s.seed) for s in r.scenarios],
+        scenario_descriptions=[s.description for s in r.scenarios],
+        scenario_best=[_get_opt(s, "best_cost") for s in r.scenarios],
+        winners=[list(s.winners) for s in r.scenarios],
+        cost=[list(row.cost) for row in r.rows], flips=[list(row.flips) for row in r.rows],
+        feasible=[list(row.feasible) for row in r.rows],
+        pearson=r.pearson if r.HasField("pearson") else None,
+        spearman=r.spearman if r.HasField("spearman") else None,
+        correlated=r.correlated, message=r.message)
+
+
+def reply_to_point(p: pb.ParetoPoint):
+    from repair.result import ParetoPoint
+
+    return ParetoPoint(cost=p.cost, flips=int(p.flips), candidate_id=p.candidate_id, method=p.method)
+
+
+def reply_to_curation(r: pb.CurateReply, m: int, selection: str = "greedy"):
+    """CurateReply -> :class:`repair.curation.CurationResult` (None when nothing was chosen).
+
+    ``kept_indices`` are positions in the audited library (the stress report's order).
+    """
+    from repair.curation import CurationResult
+
+    if not r.kept_ids:
+        return None
+    pos = {c.candidate_id: k for k, c in enumerate(r.stress.candidates)}
+    return CurationResult(
+        method=selection, m=m, kept_ids=list(r.kept_ids),
+        kept_indices=[pos.get(i, -1) for i in r.kept_ids], scenarios=r.scenarios,
+        total_cost=r.total_cost, full_total_cost=r.full_total_cost, uncovered=r.uncovered,
+        mean_gap=r.mean_gap, worst_gap=r.worst_gap, relative_gap=r.relative_gap,
+        curve=list(r.curve))

@@ -13,6 +13,9 @@ core, and converts back; errors become status codes in :mod:`service.errors`.
   reflection are registered; health answers while repairs run.
 * :meth:`RunningServer.shutdown`: health NOT_SERVING, no new calls, in-flight
   calls get ``grace`` seconds, then are cancelled (their solvers stop).
+* The audit RPCs (robustness, stress test, Pareto front, curation; issue 5) take
+  the same path: validate and convert here, run :mod:`service.audit_jobs` in the
+  pool with the same slots, budget, deadline and cancellation, convert back.
 """
 
 from __future__ import annotations
@@ -32,8 +35,10 @@ from grpc_reflection.v1alpha import reflection
 
 from repair.candidates import CandidateSet
 
-from . import convert
-from .errors import TransientError, translate_errors
+from repair.errors import InputError
+
+from . import audit_jobs, convert
+from .errors import NotFoundError, TransientError, translate_errors
 from .generated import flipfix_pb2 as pb
 from .generated import flipfix_pb2_grpc as pb_grpc
 from .store import Store
@@ -59,6 +64,8 @@ class ServerConfig:
     max_constraints: int | None = 1_000
     default_time_limit: float = 5.0
     max_time_limit: float = 600.0
+    default_audit_time_limit: float = 30.0  # whole stress-test run
+    max_scenarios: int | None = 1_000
     warm: bool = True
 
     @property
@@ -224,6 +231,16 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
     @translate_errors
     def RepairStream(self, request, context):
         job, budget, audit_limit, rev = self._start(request, context)
+        yield from self._stream(
+            job, context, budget, lambda msg: pb.RepairEvent(progress=msg),
+            lambda res: pb.RepairEvent(result=convert.result_to_reply(
+                res, audit_limit=audit_limit, time_limit=budget, revision=rev)))
+
+    def _stream(self, job, context, budget: float, progress_event, result_event):
+        """Progress messages while the job runs (the core's phase names), then the result.
+
+        ``progress_event(RepairProgress) -> event``, ``result_event(result) -> event``.
+        """
         last = [0]
         out: list = []
 
@@ -231,17 +248,19 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
             p = job.progress()
             if p.updates != last[0]:
                 last[0] = p.updates
-                msg = pb.RepairProgress(done=p.done, total=p.total, phase="running")
+                msg = pb.RepairProgress(done=p.done, total=p.total, phase=p.phase or "running")
                 if p.best_cost is not None and math.isfinite(p.best_cost):
                     msg.best_cost = p.best_cost
-                out.append(pb.RepairEvent(progress=msg))
+                out.append(progress_event(msg))
 
         result_box: list = []
         done = threading.Event()
 
         def waiter():
             try:
-                result_box.append(self._wait(job, context, budget, tick))
+                res = self._wait(job, context, budget, tick)
+                tick()  # the last progress report, even when the job beat the first poll
+                result_box.append(res)
             except BaseException as exc:  # noqa: BLE001 - re-raised in the stream thread
                 result_box.append(exc)
             finally:
@@ -259,8 +278,134 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         res = result_box[0]
         if isinstance(res, BaseException):
             raise res
-        yield pb.RepairEvent(result=convert.result_to_reply(res, audit_limit=audit_limit,
-                                                             time_limit=budget, revision=rev))
+        yield result_event(res)
+
+    # ---------------------------------------------------------------- audit
+    def _audit_library(self, name: str, ids, all_revisions: bool, *, field: str = ""):
+        """(revision, problem, candidates) of a stored library; errors under ``field``."""
+        try:
+            if not name:
+                raise InputError("problem", "must name a stored problem")
+            ids = list(ids)
+            seen: dict = {}
+            for k, cid in enumerate(ids):
+                if cid in seen:
+                    raise InputError(f"candidate_ids[{k}]", f"{cid!r} is listed twice")
+                seen[cid] = k
+            return self.store.library(name, ids=ids, all_revisions=all_revisions,
+                                      max_candidates=self.config.max_candidates)
+        except InputError as err:
+            raise type(err)(field + err.field, err.message) from None
+        except NotFoundError as err:
+            raise NotFoundError(field + err.field, err.message) from None
+
+    def _budget(self, requested: float, context) -> float:
+        return deadline_budget(min(requested, self.config.max_time_limit), context.time_remaining())
+
+    def _submit_call(self, fn, args: tuple, kwargs: dict, context):
+        job = self.pool.submit_call(fn, args, kwargs)
+        context.add_callback(job.cancel)  # runs when the call ends: cancelled, timed out or done
+        return job
+
+    @translate_errors
+    def ProfileRobustness(self, request, context):
+        rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
+                                                  request.all_revisions)
+        eps = convert._nonneg(request.epsilon, "epsilon")
+        job = self._submit_call(audit_jobs.robustness, (problem, cands),
+                                {"epsilon": eps, "spectrum": bool(request.spectrum)}, context)
+        rep = self._wait(job, context, math.inf)  # vectorised, not interruptible
+        return convert.robustness_to_reply(rep, revision=rev)
+
+    def _start_stress(self, request, context, *, field: str = ""):
+        rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
+                                                  request.all_revisions, field=field)
+        family, kwargs = convert.stress_to_kwargs(
+            request, problem, default_time_limit=self.config.default_audit_time_limit,
+            max_scenarios=self.config.max_scenarios, field=field)
+        kwargs["time_limit"] = self._budget(kwargs["time_limit"], context)
+        return rev, problem, cands, family, kwargs
+
+    @translate_errors
+    def StressTest(self, request, context):
+        rev, problem, cands, family, kwargs = self._start_stress(request, context)
+        job = self._submit_call(audit_jobs.stress, (problem, cands, family), kwargs, context)
+        rep = self._wait(job, context, kwargs["time_limit"])
+        return convert.stress_to_reply(rep, matrices=request.matrices,
+                                       time_limit=kwargs["time_limit"], revision=rev)
+
+    @translate_errors
+    def StressTestStream(self, request, context):
+        rev, problem, cands, family, kwargs = self._start_stress(request, context)
+        job = self._submit_call(audit_jobs.stress, (problem, cands, family), kwargs, context)
+        budget = kwargs["time_limit"]
+        yield from self._stream(
+            job, context, budget, lambda msg: pb.StressEvent(progress=msg),
+            lambda rep: pb.StressEvent(result=convert.stress_to_reply(
+                rep, matrices=request.matrices, time_limit=budget, revision=rev)))
+
+    @translate_errors
+    def ParetoFront(self, request, context):
+        from repair.pareto import cheapest_within, fewest_flips_within
+
+        rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
+                                                  request.all_revisions)
+        constraints = convert.constraints_to_domain(request.constraints, problem,
+                                                    limits=self.limits)
+        kwargs = convert.pareto_to_kwargs(request,
+                                          default_time_limit=self.config.default_time_limit)
+        kwargs["time_limit"] = budget = self._budget(kwargs["time_limit"], context)
+        t0 = time.perf_counter()
+        job = self._submit_call(audit_jobs.pareto, (problem, cands, constraints), kwargs, context)
+        front = self._wait(job, context, budget)
+        cheapest = fewest = None
+        if request.HasField("cheapest_within_flips"):
+            cheapest = cheapest_within(front, int(request.cheapest_within_flips))
+        if request.HasField("fewest_flips_within_percent"):
+            fewest = fewest_flips_within(front, request.fewest_flips_within_percent)
+        return convert.pareto_to_reply(front, cheapest=cheapest, fewest=fewest,
+                                       seconds=time.perf_counter() - t0, time_limit=budget,
+                                       revision=rev)
+
+    @translate_errors
+    def CurateLibrary(self, request, context):
+        rev, problem, cands, family, kwargs = self._start_stress(request.stress, context,
+                                                                 field="stress.")
+        K = len(cands.ids)
+        if not 1 <= request.m <= K:
+            raise InputError("m", f"must be in [1, {K}] (the audited library), got {request.m}")
+        if request.selection not in convert._SELECTION_NAMES:
+            raise InputError("selection", f"unknown selection {request.selection}")
+        selection = convert._SELECTION_NAMES[request.selection]
+        # checked here, before the stress test runs (curate's default max_subsets)
+        if selection == "exhaustive" and math.comb(K, request.m) > 200_000:
+            raise InputError("selection", f"EXHAUSTIVE over C({K}, {request.m}) subsets is too "
+                                          "many; use FORWARD")
+        budget = kwargs["time_limit"]
+        job = self._submit_call(audit_jobs.curation, (problem, cands, family),
+                                {"m": int(request.m), "selection": selection,
+                                 "stress_options": kwargs}, context)
+        rep, cur = self._wait(job, context, budget)
+        stress = convert.stress_to_reply(rep, matrices=request.stress.matrices,
+                                         time_limit=budget, revision=rev)
+        kept, removed, message = False, [], ""
+        if cur is None:
+            message = "no scenario completed: nothing chosen"
+        elif request.keep:
+            if rep.stopped != "done":
+                message = (f"not kept: only {rep.scenarios_done} of {rep.scenarios_requested} "
+                           f"scenarios ran ({rep.message})")
+            elif not context.is_active():
+                message = "not kept: the call ended before the store was changed"
+            else:
+                keep = set(cur.kept_ids)
+                removed = self.store.keep_only(request.stress.problem, cur.kept_ids,
+                                               [c for c in cands.ids if c not in keep],
+                                               revision=rev)
+                kept = True
+                message = f"kept {len(cur.kept_ids)} candidates, removed {len(removed)}"
+        return convert.curation_to_reply(stress, cur, kept=kept, removed=removed,
+                                         message=message, revision=rev)
 
 
 class RunningServer:

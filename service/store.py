@@ -367,6 +367,33 @@ class Store:
                                 (name, cid)).rowcount
             return n
 
+    def keep_only(self, name: str, keep_ids: Sequence[str], drop_ids: Sequence[str], *,
+                  revision: int) -> list[str]:
+        """Remove ``drop_ids`` (curation), in one transaction; returns the ids removed.
+
+        The problem must still be at ``revision`` and every id of ``keep_ids`` and
+        ``drop_ids`` must still exist (else :class:`ConflictError`, nothing removed):
+        the choice was made on exactly that library.
+        """
+        with self._tx() as db:
+            row = db.execute("SELECT revision FROM problems WHERE name = ?", (name,)).fetchone()
+            if row is None:
+                raise NotFoundError("problem", f"no problem named {name!r}")
+            if row[0] != revision:
+                raise ConflictError("problem", f"problem {name!r} moved to revision {row[0]} "
+                                               f"during the audit of revision {revision}")
+            for cid in list(keep_ids) + list(drop_ids):
+                if not db.execute("SELECT 1 FROM candidates WHERE problem = ? AND id = ?",
+                                  (name, cid)).fetchone():
+                    raise ConflictError("problem", f"candidate {cid!r} was removed during the audit")
+            out = []
+            for cid in dict.fromkeys(drop_ids):
+                db.execute("DELETE FROM candidates WHERE problem = ? AND id = ?", (name, cid))
+                out.append(cid)
+            if out:
+                db.execute("UPDATE problems SET updated_at = ? WHERE name = ?", (_now(), name))
+            return out
+
     # ------------------------------------------------------------------ repair
     def library(self, name: str, *, ids: Sequence[str] = (), all_revisions: bool = False,
                 max_candidates: int | None = None) -> tuple[int, Problem, CandidateSet]:

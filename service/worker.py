@@ -8,9 +8,16 @@ is a row of a shared ``float64`` array, ``SLOT_WIDTH`` wide:
     [0] cancel flag (set by the server; the worker turns it into a threading.Event)
     [1] candidates done   [2] total   [3] best cost so far (NaN: none)   [4] update count
     [5] 1 once the worker has started the job (the budget clock starts then)
+    [6] phase sequence number (odd while the worker writes the phase name)
 
+and a row of a shared byte array, ``PHASE_BYTES`` wide, holding the core's phase
+name (``greedy``, ``kicks``, ``neighbourhood``, ``full``, ``cpsat``, ``stress``, ...),
 so a cancelled gRPC call stops its solver, and a streaming call can report progress,
 without a manager process or pipes per job.
+
+A job is :func:`repair.repair` (:meth:`RepairPool.submit`) or any module-level
+function taking ``cancel=`` and ``progress=`` keywords (:meth:`RepairPool.submit_call`,
+used by the audit RPCs, see :mod:`service.audit_jobs`).
 """
 
 from __future__ import annotations
@@ -23,18 +30,47 @@ from concurrent.futures import Future, ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass
 
+from repair.errors import InputError, LimitError
+
 from .errors import QueueFullError, TransientError
 
-__all__ = ["RepairPool", "Job", "SLOT_WIDTH"]
+__all__ = ["RepairPool", "Job", "Progress", "SLOT_WIDTH", "PHASE_BYTES", "WorkerInputError"]
 
-SLOT_WIDTH = 6
-_FLAGS = None  # the shared array, in a worker process
+SLOT_WIDTH = 7
+PHASE_BYTES = 32
+_FLAGS = None  # the shared arrays, in a worker process
+_PHASES = None
+
+
+class WorkerInputError(InputError):
+    """An :class:`InputError` raised in a worker, rebuilt in the server (plain InputError
+    does not survive pickling: its args are the joined message)."""
+
+    def __reduce__(self):
+        return (type(self), (self.field, self.message))
+
+
+class WorkerLimitError(LimitError):
+    def __reduce__(self):
+        return (type(self), (self.field, self.message))
 
 
 # ------------------------------------------------------------ worker side
-def _init(flags) -> None:
-    global _FLAGS
+def _init(flags, phases=None) -> None:
+    global _FLAGS, _PHASES
     _FLAGS = flags
+    _PHASES = phases
+
+
+def _write_phase(slot: int, phase: str) -> None:
+    if _PHASES is None:
+        return
+    raw = phase.encode("utf-8", "replace")[:PHASE_BYTES]
+    base = slot * SLOT_WIDTH + 6
+    _FLAGS[base] += 1.0  # odd: writing
+    start = slot * PHASE_BYTES
+    _PHASES[start:start + PHASE_BYTES] = raw.ljust(PHASE_BYTES, b"\0")
+    _FLAGS[base] += 1.0  # even: done
 
 
 def _warm() -> int:
@@ -61,6 +97,11 @@ def _run(slot: int, problem, candidates, constraints, kwargs: dict):
     """Run :func:`repair.repair` for one job; honours the slot's cancel flag."""
     from repair import repair
 
+    return _run_call(slot, repair, (problem, candidates, constraints), kwargs)
+
+
+def _run_call(slot: int, fn, args: tuple, kwargs: dict):
+    """Run ``fn(*args, cancel=event, progress=callback, **kwargs)`` in the slot."""
     base = slot * SLOT_WIDTH
     cancel = threading.Event()
     finished = threading.Event()
@@ -76,7 +117,13 @@ def _run(slot: int, problem, candidates, constraints, kwargs: dict):
         cancel.set()
     threading.Thread(target=watch, daemon=True, name="flipfix-cancel-watch").start()
 
+    last_phase = [None]
+
     def progress(info: dict) -> None:
+        phase = str(info.get("phase") or "")
+        if phase != last_phase[0]:
+            _write_phase(slot, phase)
+            last_phase[0] = phase
         _FLAGS[base + 1] = float(info.get("done", 0) or 0)
         _FLAGS[base + 2] = float(info.get("total", 0) or 0)
         best = info.get("best_cost")
@@ -84,7 +131,11 @@ def _run(slot: int, problem, candidates, constraints, kwargs: dict):
         _FLAGS[base + 4] += 1.0
 
     try:
-        return repair(problem, candidates, constraints, cancel=cancel, progress=progress, **kwargs)
+        return fn(*args, cancel=cancel, progress=progress, **kwargs)
+    except LimitError as err:  # rebuilt as the same kind in the server
+        raise WorkerLimitError(err.field, err.message) from None
+    except InputError as err:
+        raise WorkerInputError(err.field, err.message) from None
     finally:
         finished.set()
 
@@ -96,15 +147,18 @@ class Progress:
     total: int
     best_cost: float | None
     updates: int
+    phase: str = ""  # the core's phase name ("" before the first report)
 
 
 class Job:
     """A submitted repair: its slot, its future, and the shared flags."""
 
-    def __init__(self, slot: int, future: Future, flags):
+    def __init__(self, slot: int, future: Future, flags, phases=None):
         self.slot = slot
         self.future = future
         self._flags = flags
+        self._phases = phases
+        self._phase = ""
 
     def cancel(self) -> None:
         """Ask the worker to stop (it returns its best so far); drop it if still queued."""
@@ -120,11 +174,28 @@ class Job:
     def cancel_requested(self) -> bool:
         return self._flags[self.slot * SLOT_WIDTH] != 0.0
 
+    def phase(self) -> str:
+        """The last phase name the worker wrote (read under its sequence number)."""
+        if self._phases is None:
+            return self._phase
+        seq_at = self.slot * SLOT_WIDTH + 6
+        start = self.slot * PHASE_BYTES
+        for _ in range(8):
+            before = self._flags[seq_at]
+            if int(before) % 2:
+                continue
+            raw = bytes(self._phases[start:start + PHASE_BYTES])
+            if self._flags[seq_at] == before:
+                self._phase = raw.rstrip(b"\0").decode("utf-8", "replace")
+                break
+        return self._phase
+
     def progress(self) -> Progress:
         b = self.slot * SLOT_WIDTH
         best = self._flags[b + 3]
         return Progress(int(self._flags[b + 1]), int(self._flags[b + 2]),
-                        None if math.isnan(best) else float(best), int(self._flags[b + 4]))
+                        None if math.isnan(best) else float(best), int(self._flags[b + 4]),
+                        self.phase())
 
 
 class RepairPool:
@@ -137,6 +208,7 @@ class RepairPool:
         self.slots = workers + max(0, queue_size)
         self._ctx = mp.get_context("spawn")
         self._flags = self._ctx.RawArray("d", self.slots * SLOT_WIDTH)
+        self._phases = self._ctx.RawArray("c", self.slots * PHASE_BYTES)
         self._lock = threading.Lock()
         self._free = list(range(self.slots))
         self._jobs: dict[int, Job] = {}
@@ -148,7 +220,7 @@ class RepairPool:
 
     def _new_executor(self) -> ProcessPoolExecutor:
         return ProcessPoolExecutor(max_workers=self.workers, mp_context=self._ctx,
-                                   initializer=_init, initargs=(self._flags,))
+                                   initializer=_init, initargs=(self._flags, self._phases))
 
     @property
     def busy(self) -> int:
@@ -157,6 +229,15 @@ class RepairPool:
             return self.slots - len(self._free)
 
     def submit(self, problem, candidates, constraints, kwargs: dict) -> Job:
+        """A :func:`repair.repair` job (``kwargs`` are its options)."""
+        return self._submit(_run, (problem, candidates, constraints, kwargs))
+
+    def submit_call(self, fn, args: tuple = (), kwargs: dict | None = None) -> Job:
+        """A job running ``fn(*args, cancel=, progress=, **kwargs)``; ``fn`` must be a
+        module-level function (pickled by reference into the worker)."""
+        return self._submit(_run_call, (fn, tuple(args), dict(kwargs or {})))
+
+    def _submit(self, target, args: tuple) -> Job:
         with self._lock:
             if self._closed:
                 raise TransientError("server", "shutting down")
@@ -164,9 +245,10 @@ class RepairPool:
                 raise QueueFullError("repair", f"all {self.slots} repair slots are busy; retry later")
             slot = self._free.pop()
             b = slot * SLOT_WIDTH
-            self._flags[b:b + SLOT_WIDTH] = [0.0, 0.0, 0.0, math.nan, 0.0, 0.0]
+            self._flags[b:b + SLOT_WIDTH] = [0.0, 0.0, 0.0, math.nan, 0.0, 0.0, 0.0]
+            self._phases[slot * PHASE_BYTES:(slot + 1) * PHASE_BYTES] = b"\0" * PHASE_BYTES
             try:
-                fut = self._executor.submit(_run, slot, problem, candidates, constraints, kwargs)
+                fut = self._executor.submit(target, slot, *args)
             except BrokenProcessPool:
                 self._free.append(slot)
                 self._executor = self._new_executor()
@@ -174,7 +256,7 @@ class RepairPool:
             except RuntimeError:  # executor shut down
                 self._free.append(slot)
                 raise TransientError("server", "shutting down") from None
-            job = Job(slot, fut, self._flags)
+            job = Job(slot, fut, self._flags, self._phases)
             self._jobs[slot] = job
         fut.add_done_callback(lambda _f, s=slot: self._release(s))
         return job

@@ -14,6 +14,12 @@ class Vartype(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     BINARY: _ClassVar[Vartype]
     SPIN: _ClassVar[Vartype]
 
+class Encoding(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+    __slots__ = ()
+    ENCODING_UNSPECIFIED: _ClassVar[Encoding]
+    ONE_HOT: _ClassVar[Encoding]
+    DOMAIN_WALL: _ClassVar[Encoding]
+
 class PenaltyShape(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = ()
     SHAPE_UNSPECIFIED: _ClassVar[PenaltyShape]
@@ -41,9 +47,24 @@ class Method(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     PORTFOLIO: _ClassVar[Method]
     GREEDY: _ClassVar[Method]
     CPSAT: _ClassVar[Method]
+
+class ReferenceKind(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+    __slots__ = ()
+    REFERENCE_UNSPECIFIED: _ClassVar[ReferenceKind]
+    UNIFORM: _ClassVar[ReferenceKind]
+    PERTURBED: _ClassVar[ReferenceKind]
+
+class Selection(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+    __slots__ = ()
+    SELECTION_UNSPECIFIED: _ClassVar[Selection]
+    FORWARD: _ClassVar[Selection]
+    EXHAUSTIVE: _ClassVar[Selection]
 VARTYPE_UNSPECIFIED: Vartype
 BINARY: Vartype
 SPIN: Vartype
+ENCODING_UNSPECIFIED: Encoding
+ONE_HOT: Encoding
+DOMAIN_WALL: Encoding
 SHAPE_UNSPECIFIED: PenaltyShape
 LINEAR: PenaltyShape
 QUADRATIC: PenaltyShape
@@ -60,6 +81,12 @@ METHOD_UNSPECIFIED: Method
 PORTFOLIO: Method
 GREEDY: Method
 CPSAT: Method
+REFERENCE_UNSPECIFIED: ReferenceKind
+UNIFORM: ReferenceKind
+PERTURBED: ReferenceKind
+SELECTION_UNSPECIFIED: Selection
+FORWARD: Selection
+EXHAUSTIVE: Selection
 
 class Label(_message.Message):
     __slots__ = ("str", "int")
@@ -102,20 +129,32 @@ class Assignment(_message.Message):
     def __init__(self, values: _Optional[_Iterable[_Union[VariableValue, _Mapping]]] = ...) -> None: ...
 
 class ProblemModel(_message.Message):
-    __slots__ = ("vartype", "linear", "quadratic", "offset", "labels", "decisions_json")
+    __slots__ = ("vartype", "linear", "quadratic", "offset", "labels", "decisions")
     VARTYPE_FIELD_NUMBER: _ClassVar[int]
     LINEAR_FIELD_NUMBER: _ClassVar[int]
     QUADRATIC_FIELD_NUMBER: _ClassVar[int]
     OFFSET_FIELD_NUMBER: _ClassVar[int]
     LABELS_FIELD_NUMBER: _ClassVar[int]
-    DECISIONS_JSON_FIELD_NUMBER: _ClassVar[int]
+    DECISIONS_FIELD_NUMBER: _ClassVar[int]
     vartype: Vartype
     linear: _containers.RepeatedCompositeFieldContainer[LinearTerm]
     quadratic: _containers.RepeatedCompositeFieldContainer[QuadraticTerm]
     offset: float
     labels: _containers.RepeatedCompositeFieldContainer[Label]
-    decisions_json: str
-    def __init__(self, vartype: _Optional[_Union[Vartype, str]] = ..., linear: _Optional[_Iterable[_Union[LinearTerm, _Mapping]]] = ..., quadratic: _Optional[_Iterable[_Union[QuadraticTerm, _Mapping]]] = ..., offset: _Optional[float] = ..., labels: _Optional[_Iterable[_Union[Label, _Mapping]]] = ..., decisions_json: _Optional[str] = ...) -> None: ...
+    decisions: _containers.RepeatedCompositeFieldContainer[Decision]
+    def __init__(self, vartype: _Optional[_Union[Vartype, str]] = ..., linear: _Optional[_Iterable[_Union[LinearTerm, _Mapping]]] = ..., quadratic: _Optional[_Iterable[_Union[QuadraticTerm, _Mapping]]] = ..., offset: _Optional[float] = ..., labels: _Optional[_Iterable[_Union[Label, _Mapping]]] = ..., decisions: _Optional[_Iterable[_Union[Decision, _Mapping]]] = ...) -> None: ...
+
+class Decision(_message.Message):
+    __slots__ = ("name", "encoding", "variables", "values")
+    NAME_FIELD_NUMBER: _ClassVar[int]
+    ENCODING_FIELD_NUMBER: _ClassVar[int]
+    VARIABLES_FIELD_NUMBER: _ClassVar[int]
+    VALUES_FIELD_NUMBER: _ClassVar[int]
+    name: str
+    encoding: Encoding
+    variables: _containers.RepeatedCompositeFieldContainer[Label]
+    values: _containers.RepeatedCompositeFieldContainer[DecisionValue]
+    def __init__(self, name: _Optional[str] = ..., encoding: _Optional[_Union[Encoding, str]] = ..., variables: _Optional[_Iterable[_Union[Label, _Mapping]]] = ..., values: _Optional[_Iterable[_Union[DecisionValue, _Mapping]]] = ...) -> None: ...
 
 class ProblemInfo(_message.Message):
     __slots__ = ("name", "revision", "num_variables", "num_interactions", "num_candidates", "created_at", "updated_at")
@@ -592,3 +631,287 @@ class RepairEvent(_message.Message):
     progress: RepairProgress
     result: RepairReply
     def __init__(self, progress: _Optional[_Union[RepairProgress, _Mapping]] = ..., result: _Optional[_Union[RepairReply, _Mapping]] = ...) -> None: ...
+
+class RobustnessRequest(_message.Message):
+    __slots__ = ("problem", "candidate_ids", "all_revisions", "epsilon", "spectrum")
+    PROBLEM_FIELD_NUMBER: _ClassVar[int]
+    CANDIDATE_IDS_FIELD_NUMBER: _ClassVar[int]
+    ALL_REVISIONS_FIELD_NUMBER: _ClassVar[int]
+    EPSILON_FIELD_NUMBER: _ClassVar[int]
+    SPECTRUM_FIELD_NUMBER: _ClassVar[int]
+    problem: str
+    candidate_ids: _containers.RepeatedScalarFieldContainer[str]
+    all_revisions: bool
+    epsilon: float
+    spectrum: bool
+    def __init__(self, problem: _Optional[str] = ..., candidate_ids: _Optional[_Iterable[str]] = ..., all_revisions: _Optional[bool] = ..., epsilon: _Optional[float] = ..., spectrum: _Optional[bool] = ...) -> None: ...
+
+class CandidateProfile(_message.Message):
+    __slots__ = ("candidate_id", "energy", "free_variables", "free_decisions", "improving", "min_flip_cost", "within_1pct", "within_5pct", "distance_to_best", "nearest_other", "nearest_other_id", "spectrum")
+    CANDIDATE_ID_FIELD_NUMBER: _ClassVar[int]
+    ENERGY_FIELD_NUMBER: _ClassVar[int]
+    FREE_VARIABLES_FIELD_NUMBER: _ClassVar[int]
+    FREE_DECISIONS_FIELD_NUMBER: _ClassVar[int]
+    IMPROVING_FIELD_NUMBER: _ClassVar[int]
+    MIN_FLIP_COST_FIELD_NUMBER: _ClassVar[int]
+    WITHIN_1PCT_FIELD_NUMBER: _ClassVar[int]
+    WITHIN_5PCT_FIELD_NUMBER: _ClassVar[int]
+    DISTANCE_TO_BEST_FIELD_NUMBER: _ClassVar[int]
+    NEAREST_OTHER_FIELD_NUMBER: _ClassVar[int]
+    NEAREST_OTHER_ID_FIELD_NUMBER: _ClassVar[int]
+    SPECTRUM_FIELD_NUMBER: _ClassVar[int]
+    candidate_id: str
+    energy: float
+    free_variables: int
+    free_decisions: int
+    improving: int
+    min_flip_cost: float
+    within_1pct: int
+    within_5pct: int
+    distance_to_best: int
+    nearest_other: int
+    nearest_other_id: str
+    spectrum: _containers.RepeatedScalarFieldContainer[float]
+    def __init__(self, candidate_id: _Optional[str] = ..., energy: _Optional[float] = ..., free_variables: _Optional[int] = ..., free_decisions: _Optional[int] = ..., improving: _Optional[int] = ..., min_flip_cost: _Optional[float] = ..., within_1pct: _Optional[int] = ..., within_5pct: _Optional[int] = ..., distance_to_best: _Optional[int] = ..., nearest_other: _Optional[int] = ..., nearest_other_id: _Optional[str] = ..., spectrum: _Optional[_Iterable[float]] = ...) -> None: ...
+
+class RobustnessReply(_message.Message):
+    __slots__ = ("epsilon", "best_id", "num_variables", "num_decisions", "profiles", "revision")
+    EPSILON_FIELD_NUMBER: _ClassVar[int]
+    BEST_ID_FIELD_NUMBER: _ClassVar[int]
+    NUM_VARIABLES_FIELD_NUMBER: _ClassVar[int]
+    NUM_DECISIONS_FIELD_NUMBER: _ClassVar[int]
+    PROFILES_FIELD_NUMBER: _ClassVar[int]
+    REVISION_FIELD_NUMBER: _ClassVar[int]
+    epsilon: float
+    best_id: str
+    num_variables: int
+    num_decisions: int
+    profiles: _containers.RepeatedCompositeFieldContainer[CandidateProfile]
+    revision: int
+    def __init__(self, epsilon: _Optional[float] = ..., best_id: _Optional[str] = ..., num_variables: _Optional[int] = ..., num_decisions: _Optional[int] = ..., profiles: _Optional[_Iterable[_Union[CandidateProfile, _Mapping]]] = ..., revision: _Optional[int] = ...) -> None: ...
+
+class ScenarioFamily(_message.Message):
+    __slots__ = ("hamming_weight", "hamming_shape", "hamming_threshold", "hamming_fraction", "reference", "perturb_rate", "fix_k", "capacity_cut_percent", "capacity_weights")
+    HAMMING_WEIGHT_FIELD_NUMBER: _ClassVar[int]
+    HAMMING_SHAPE_FIELD_NUMBER: _ClassVar[int]
+    HAMMING_THRESHOLD_FIELD_NUMBER: _ClassVar[int]
+    HAMMING_FRACTION_FIELD_NUMBER: _ClassVar[int]
+    REFERENCE_FIELD_NUMBER: _ClassVar[int]
+    PERTURB_RATE_FIELD_NUMBER: _ClassVar[int]
+    FIX_K_FIELD_NUMBER: _ClassVar[int]
+    CAPACITY_CUT_PERCENT_FIELD_NUMBER: _ClassVar[int]
+    CAPACITY_WEIGHTS_FIELD_NUMBER: _ClassVar[int]
+    hamming_weight: float
+    hamming_shape: PenaltyShape
+    hamming_threshold: float
+    hamming_fraction: float
+    reference: ReferenceKind
+    perturb_rate: float
+    fix_k: int
+    capacity_cut_percent: float
+    capacity_weights: _containers.RepeatedCompositeFieldContainer[LinearTerm]
+    def __init__(self, hamming_weight: _Optional[float] = ..., hamming_shape: _Optional[_Union[PenaltyShape, str]] = ..., hamming_threshold: _Optional[float] = ..., hamming_fraction: _Optional[float] = ..., reference: _Optional[_Union[ReferenceKind, str]] = ..., perturb_rate: _Optional[float] = ..., fix_k: _Optional[int] = ..., capacity_cut_percent: _Optional[float] = ..., capacity_weights: _Optional[_Iterable[_Union[LinearTerm, _Mapping]]] = ...) -> None: ...
+
+class StressRequest(_message.Message):
+    __slots__ = ("problem", "candidate_ids", "all_revisions", "family", "scenarios", "seed", "method", "time_limit", "epsilon", "max_flips", "flip_price", "matrices")
+    PROBLEM_FIELD_NUMBER: _ClassVar[int]
+    CANDIDATE_IDS_FIELD_NUMBER: _ClassVar[int]
+    ALL_REVISIONS_FIELD_NUMBER: _ClassVar[int]
+    FAMILY_FIELD_NUMBER: _ClassVar[int]
+    SCENARIOS_FIELD_NUMBER: _ClassVar[int]
+    SEED_FIELD_NUMBER: _ClassVar[int]
+    METHOD_FIELD_NUMBER: _ClassVar[int]
+    TIME_LIMIT_FIELD_NUMBER: _ClassVar[int]
+    EPSILON_FIELD_NUMBER: _ClassVar[int]
+    MAX_FLIPS_FIELD_NUMBER: _ClassVar[int]
+    FLIP_PRICE_FIELD_NUMBER: _ClassVar[int]
+    MATRICES_FIELD_NUMBER: _ClassVar[int]
+    problem: str
+    candidate_ids: _containers.RepeatedScalarFieldContainer[str]
+    all_revisions: bool
+    family: ScenarioFamily
+    scenarios: int
+    seed: int
+    method: Method
+    time_limit: float
+    epsilon: float
+    max_flips: int
+    flip_price: float
+    matrices: bool
+    def __init__(self, problem: _Optional[str] = ..., candidate_ids: _Optional[_Iterable[str]] = ..., all_revisions: _Optional[bool] = ..., family: _Optional[_Union[ScenarioFamily, _Mapping]] = ..., scenarios: _Optional[int] = ..., seed: _Optional[int] = ..., method: _Optional[_Union[Method, str]] = ..., time_limit: _Optional[float] = ..., epsilon: _Optional[float] = ..., max_flips: _Optional[int] = ..., flip_price: _Optional[float] = ..., matrices: _Optional[bool] = ...) -> None: ...
+
+class CandidateStress(_message.Message):
+    __slots__ = ("candidate_id", "energy", "free_variables", "wins", "win_rate", "mean_cost", "worst_cost", "mean_regret", "mean_flips", "worst_flips", "failures")
+    CANDIDATE_ID_FIELD_NUMBER: _ClassVar[int]
+    ENERGY_FIELD_NUMBER: _ClassVar[int]
+    FREE_VARIABLES_FIELD_NUMBER: _ClassVar[int]
+    WINS_FIELD_NUMBER: _ClassVar[int]
+    WIN_RATE_FIELD_NUMBER: _ClassVar[int]
+    MEAN_COST_FIELD_NUMBER: _ClassVar[int]
+    WORST_COST_FIELD_NUMBER: _ClassVar[int]
+    MEAN_REGRET_FIELD_NUMBER: _ClassVar[int]
+    MEAN_FLIPS_FIELD_NUMBER: _ClassVar[int]
+    WORST_FLIPS_FIELD_NUMBER: _ClassVar[int]
+    FAILURES_FIELD_NUMBER: _ClassVar[int]
+    candidate_id: str
+    energy: float
+    free_variables: int
+    wins: int
+    win_rate: float
+    mean_cost: float
+    worst_cost: float
+    mean_regret: float
+    mean_flips: float
+    worst_flips: int
+    failures: int
+    def __init__(self, candidate_id: _Optional[str] = ..., energy: _Optional[float] = ..., free_variables: _Optional[int] = ..., wins: _Optional[int] = ..., win_rate: _Optional[float] = ..., mean_cost: _Optional[float] = ..., worst_cost: _Optional[float] = ..., mean_regret: _Optional[float] = ..., mean_flips: _Optional[float] = ..., worst_flips: _Optional[int] = ..., failures: _Optional[int] = ...) -> None: ...
+
+class StressScenario(_message.Message):
+    __slots__ = ("seed", "description", "best_cost", "winners")
+    SEED_FIELD_NUMBER: _ClassVar[int]
+    DESCRIPTION_FIELD_NUMBER: _ClassVar[int]
+    BEST_COST_FIELD_NUMBER: _ClassVar[int]
+    WINNERS_FIELD_NUMBER: _ClassVar[int]
+    seed: int
+    description: str
+    best_cost: float
+    winners: _containers.RepeatedScalarFieldContainer[str]
+    def __init__(self, seed: _Optional[int] = ..., description: _Optional[str] = ..., best_cost: _Optional[float] = ..., winners: _Optional[_Iterable[str]] = ...) -> None: ...
+
+class StressRow(_message.Message):
+    __slots__ = ("cost", "flips", "feasible")
+    COST_FIELD_NUMBER: _ClassVar[int]
+    FLIPS_FIELD_NUMBER: _ClassVar[int]
+    FEASIBLE_FIELD_NUMBER: _ClassVar[int]
+    cost: _containers.RepeatedScalarFieldContainer[float]
+    flips: _containers.RepeatedScalarFieldContainer[int]
+    feasible: _containers.RepeatedScalarFieldContainer[bool]
+    def __init__(self, cost: _Optional[_Iterable[float]] = ..., flips: _Optional[_Iterable[int]] = ..., feasible: _Optional[_Iterable[bool]] = ...) -> None: ...
+
+class StressReply(_message.Message):
+    __slots__ = ("method", "seed", "epsilon", "scenarios_requested", "scenarios_done", "stopped", "message", "seconds", "time_limit", "candidates", "scenarios", "pearson", "spearman", "correlated", "rows", "revision")
+    METHOD_FIELD_NUMBER: _ClassVar[int]
+    SEED_FIELD_NUMBER: _ClassVar[int]
+    EPSILON_FIELD_NUMBER: _ClassVar[int]
+    SCENARIOS_REQUESTED_FIELD_NUMBER: _ClassVar[int]
+    SCENARIOS_DONE_FIELD_NUMBER: _ClassVar[int]
+    STOPPED_FIELD_NUMBER: _ClassVar[int]
+    MESSAGE_FIELD_NUMBER: _ClassVar[int]
+    SECONDS_FIELD_NUMBER: _ClassVar[int]
+    TIME_LIMIT_FIELD_NUMBER: _ClassVar[int]
+    CANDIDATES_FIELD_NUMBER: _ClassVar[int]
+    SCENARIOS_FIELD_NUMBER: _ClassVar[int]
+    PEARSON_FIELD_NUMBER: _ClassVar[int]
+    SPEARMAN_FIELD_NUMBER: _ClassVar[int]
+    CORRELATED_FIELD_NUMBER: _ClassVar[int]
+    ROWS_FIELD_NUMBER: _ClassVar[int]
+    REVISION_FIELD_NUMBER: _ClassVar[int]
+    method: str
+    seed: int
+    epsilon: float
+    scenarios_requested: int
+    scenarios_done: int
+    stopped: str
+    message: str
+    seconds: float
+    time_limit: float
+    candidates: _containers.RepeatedCompositeFieldContainer[CandidateStress]
+    scenarios: _containers.RepeatedCompositeFieldContainer[StressScenario]
+    pearson: float
+    spearman: float
+    correlated: int
+    rows: _containers.RepeatedCompositeFieldContainer[StressRow]
+    revision: int
+    def __init__(self, method: _Optional[str] = ..., seed: _Optional[int] = ..., epsilon: _Optional[float] = ..., scenarios_requested: _Optional[int] = ..., scenarios_done: _Optional[int] = ..., stopped: _Optional[str] = ..., message: _Optional[str] = ..., seconds: _Optional[float] = ..., time_limit: _Optional[float] = ..., candidates: _Optional[_Iterable[_Union[CandidateStress, _Mapping]]] = ..., scenarios: _Optional[_Iterable[_Union[StressScenario, _Mapping]]] = ..., pearson: _Optional[float] = ..., spearman: _Optional[float] = ..., correlated: _Optional[int] = ..., rows: _Optional[_Iterable[_Union[StressRow, _Mapping]]] = ..., revision: _Optional[int] = ...) -> None: ...
+
+class StressEvent(_message.Message):
+    __slots__ = ("progress", "result")
+    PROGRESS_FIELD_NUMBER: _ClassVar[int]
+    RESULT_FIELD_NUMBER: _ClassVar[int]
+    progress: RepairProgress
+    result: StressReply
+    def __init__(self, progress: _Optional[_Union[RepairProgress, _Mapping]] = ..., result: _Optional[_Union[StressReply, _Mapping]] = ...) -> None: ...
+
+class ParetoRequest(_message.Message):
+    __slots__ = ("problem", "candidate_ids", "all_revisions", "constraints", "methods", "time_limit", "seed", "exclude_unchanged", "cheapest_within_flips", "fewest_flips_within_percent")
+    PROBLEM_FIELD_NUMBER: _ClassVar[int]
+    CANDIDATE_IDS_FIELD_NUMBER: _ClassVar[int]
+    ALL_REVISIONS_FIELD_NUMBER: _ClassVar[int]
+    CONSTRAINTS_FIELD_NUMBER: _ClassVar[int]
+    METHODS_FIELD_NUMBER: _ClassVar[int]
+    TIME_LIMIT_FIELD_NUMBER: _ClassVar[int]
+    SEED_FIELD_NUMBER: _ClassVar[int]
+    EXCLUDE_UNCHANGED_FIELD_NUMBER: _ClassVar[int]
+    CHEAPEST_WITHIN_FLIPS_FIELD_NUMBER: _ClassVar[int]
+    FEWEST_FLIPS_WITHIN_PERCENT_FIELD_NUMBER: _ClassVar[int]
+    problem: str
+    candidate_ids: _containers.RepeatedScalarFieldContainer[str]
+    all_revisions: bool
+    constraints: _containers.RepeatedCompositeFieldContainer[Constraint]
+    methods: _containers.RepeatedScalarFieldContainer[Method]
+    time_limit: float
+    seed: int
+    exclude_unchanged: bool
+    cheapest_within_flips: int
+    fewest_flips_within_percent: float
+    def __init__(self, problem: _Optional[str] = ..., candidate_ids: _Optional[_Iterable[str]] = ..., all_revisions: _Optional[bool] = ..., constraints: _Optional[_Iterable[_Union[Constraint, _Mapping]]] = ..., methods: _Optional[_Iterable[_Union[Method, str]]] = ..., time_limit: _Optional[float] = ..., seed: _Optional[int] = ..., exclude_unchanged: _Optional[bool] = ..., cheapest_within_flips: _Optional[int] = ..., fewest_flips_within_percent: _Optional[float] = ...) -> None: ...
+
+class ParetoReply(_message.Message):
+    __slots__ = ("front", "cheapest_within", "fewest_flips_within", "seconds", "time_limit", "revision")
+    FRONT_FIELD_NUMBER: _ClassVar[int]
+    CHEAPEST_WITHIN_FIELD_NUMBER: _ClassVar[int]
+    FEWEST_FLIPS_WITHIN_FIELD_NUMBER: _ClassVar[int]
+    SECONDS_FIELD_NUMBER: _ClassVar[int]
+    TIME_LIMIT_FIELD_NUMBER: _ClassVar[int]
+    REVISION_FIELD_NUMBER: _ClassVar[int]
+    front: _containers.RepeatedCompositeFieldContainer[ParetoPoint]
+    cheapest_within: ParetoPoint
+    fewest_flips_within: ParetoPoint
+    seconds: float
+    time_limit: float
+    revision: int
+    def __init__(self, front: _Optional[_Iterable[_Union[ParetoPoint, _Mapping]]] = ..., cheapest_within: _Optional[_Union[ParetoPoint, _Mapping]] = ..., fewest_flips_within: _Optional[_Union[ParetoPoint, _Mapping]] = ..., seconds: _Optional[float] = ..., time_limit: _Optional[float] = ..., revision: _Optional[int] = ...) -> None: ...
+
+class CurateRequest(_message.Message):
+    __slots__ = ("stress", "m", "selection", "keep")
+    STRESS_FIELD_NUMBER: _ClassVar[int]
+    M_FIELD_NUMBER: _ClassVar[int]
+    SELECTION_FIELD_NUMBER: _ClassVar[int]
+    KEEP_FIELD_NUMBER: _ClassVar[int]
+    stress: StressRequest
+    m: int
+    selection: Selection
+    keep: bool
+    def __init__(self, stress: _Optional[_Union[StressRequest, _Mapping]] = ..., m: _Optional[int] = ..., selection: _Optional[_Union[Selection, str]] = ..., keep: _Optional[bool] = ...) -> None: ...
+
+class CurateReply(_message.Message):
+    __slots__ = ("stress", "kept_ids", "scenarios", "total_cost", "full_total_cost", "uncovered", "mean_gap", "worst_gap", "relative_gap", "curve", "kept", "removed_ids", "message", "revision")
+    STRESS_FIELD_NUMBER: _ClassVar[int]
+    KEPT_IDS_FIELD_NUMBER: _ClassVar[int]
+    SCENARIOS_FIELD_NUMBER: _ClassVar[int]
+    TOTAL_COST_FIELD_NUMBER: _ClassVar[int]
+    FULL_TOTAL_COST_FIELD_NUMBER: _ClassVar[int]
+    UNCOVERED_FIELD_NUMBER: _ClassVar[int]
+    MEAN_GAP_FIELD_NUMBER: _ClassVar[int]
+    WORST_GAP_FIELD_NUMBER: _ClassVar[int]
+    RELATIVE_GAP_FIELD_NUMBER: _ClassVar[int]
+    CURVE_FIELD_NUMBER: _ClassVar[int]
+    KEPT_FIELD_NUMBER: _ClassVar[int]
+    REMOVED_IDS_FIELD_NUMBER: _ClassVar[int]
+    MESSAGE_FIELD_NUMBER: _ClassVar[int]
+    REVISION_FIELD_NUMBER: _ClassVar[int]
+    stress: StressReply
+    kept_ids: _containers.RepeatedScalarFieldContainer[str]
+    scenarios: int
+    total_cost: float
+    full_total_cost: float
+    uncovered: int
+    mean_gap: float
+    worst_gap: float
+    relative_gap: float
+    curve: _containers.RepeatedScalarFieldContainer[float]
+    kept: bool
+    removed_ids: _containers.RepeatedScalarFieldContainer[str]
+    message: str
+    revision: int
+    def __init__(self, stress: _Optional[_Union[StressReply, _Mapping]] = ..., kept_ids: _Optional[_Iterable[str]] = ..., scenarios: _Optional[int] = ..., total_cost: _Optional[float] = ..., full_total_cost: _Optional[float] = ..., uncovered: _Optional[int] = ..., mean_gap: _Optional[float] = ..., worst_gap: _Optional[float] = ..., relative_gap: _Optional[float] = ..., curve: _Optional[_Iterable[float]] = ..., kept: _Optional[bool] = ..., removed_ids: _Optional[_Iterable[str]] = ..., message: _Optional[str] = ..., revision: _Optional[int] = ...) -> None: ...

@@ -84,6 +84,31 @@ class FlipfixStub:
                 request_serializer=flipfix_dot_v1_dot_flipfix__pb2.RepairRequest.SerializeToString,
                 response_deserializer=flipfix_dot_v1_dot_flipfix__pb2.RepairEvent.FromString,
                 _registered_method=True)
+        self.ProfileRobustness = channel.unary_unary(
+                '/flipfix.v1.Flipfix/ProfileRobustness',
+                request_serializer=flipfix_dot_v1_dot_flipfix__pb2.RobustnessRequest.SerializeToString,
+                response_deserializer=flipfix_dot_v1_dot_flipfix__pb2.RobustnessReply.FromString,
+                _registered_method=True)
+        self.StressTest = channel.unary_unary(
+                '/flipfix.v1.Flipfix/StressTest',
+                request_serializer=flipfix_dot_v1_dot_flipfix__pb2.StressRequest.SerializeToString,
+                response_deserializer=flipfix_dot_v1_dot_flipfix__pb2.StressReply.FromString,
+                _registered_method=True)
+        self.StressTestStream = channel.unary_stream(
+                '/flipfix.v1.Flipfix/StressTestStream',
+                request_serializer=flipfix_dot_v1_dot_flipfix__pb2.StressRequest.SerializeToString,
+                response_deserializer=flipfix_dot_v1_dot_flipfix__pb2.StressEvent.FromString,
+                _registered_method=True)
+        self.ParetoFront = channel.unary_unary(
+                '/flipfix.v1.Flipfix/ParetoFront',
+                request_serializer=flipfix_dot_v1_dot_flipfix__pb2.ParetoRequest.SerializeToString,
+                response_deserializer=flipfix_dot_v1_dot_flipfix__pb2.ParetoReply.FromString,
+                _registered_method=True)
+        self.CurateLibrary = channel.unary_unary(
+                '/flipfix.v1.Flipfix/CurateLibrary',
+                request_serializer=flipfix_dot_v1_dot_flipfix__pb2.CurateRequest.SerializeToString,
+                response_deserializer=flipfix_dot_v1_dot_flipfix__pb2.CurateReply.FromString,
+                _registered_method=True)
 
 
 class FlipfixServicer:
@@ -156,6 +181,46 @@ class FlipfixServicer:
         context.set_details('Method not implemented!')
         raise NotImplementedError('Method not implemented!')
 
+    def ProfileRobustness(self, request, context):
+        """Audit of repair cost (issue 5): which candidates of a stored library are
+        worth keeping. All run in the repair pool (RESOURCE_EXHAUSTED when every
+        slot is busy) and honour the call's deadline and cancellation as Repair does.
+
+        Per candidate: free variables and decisions, flip-cost spectrum, distances.
+        """
+        context.set_code(grpc.StatusCode.UNIMPLEMENTED)
+        context.set_details('Method not implemented!')
+        raise NotImplementedError('Method not implemented!')
+
+    def StressTest(self, request, context):
+        """Repair the library under N seeded random late constraints.
+        """
+        context.set_code(grpc.StatusCode.UNIMPLEMENTED)
+        context.set_details('Method not implemented!')
+        raise NotImplementedError('Method not implemented!')
+
+    def StressTestStream(self, request, context):
+        """The same, as progress messages (one per scenario) ending in the result.
+        """
+        context.set_code(grpc.StatusCode.UNIMPLEMENTED)
+        context.set_details('Method not implemented!')
+        raise NotImplementedError('Method not implemented!')
+
+    def ParetoFront(self, request, context):
+        """The non-dominated (cost, flips) repairs for a set of late constraints.
+        """
+        context.set_code(grpc.StatusCode.UNIMPLEMENTED)
+        context.set_details('Method not implemented!')
+        raise NotImplementedError('Method not implemented!')
+
+    def CurateLibrary(self, request, context):
+        """Choose M candidates by the stress test; with keep, remove the others from
+        the store in one transaction.
+        """
+        context.set_code(grpc.StatusCode.UNIMPLEMENTED)
+        context.set_details('Method not implemented!')
+        raise NotImplementedError('Method not implemented!')
+
 
 def add_FlipfixServicer_to_server(servicer, server):
     rpc_method_handlers = {
@@ -208,6 +273,31 @@ def add_FlipfixServicer_to_server(servicer, server):
                     servicer.RepairStream,
                     request_deserializer=flipfix_dot_v1_dot_flipfix__pb2.RepairRequest.FromString,
                     response_serializer=flipfix_dot_v1_dot_flipfix__pb2.RepairEvent.SerializeToString,
+            ),
+            'ProfileRobustness': grpc.unary_unary_rpc_method_handler(
+                    servicer.ProfileRobustness,
+                    request_deserializer=flipfix_dot_v1_dot_flipfix__pb2.RobustnessRequest.FromString,
+                    response_serializer=flipfix_dot_v1_dot_flipfix__pb2.RobustnessReply.SerializeToString,
+            ),
+            'StressTest': grpc.unary_unary_rpc_method_handler(
+                    servicer.StressTest,
+                    request_deserializer=flipfix_dot_v1_dot_flipfix__pb2.StressRequest.FromString,
+                    response_serializer=flipfix_dot_v1_dot_flipfix__pb2.StressReply.SerializeToString,
+            ),
+            'StressTestStream': grpc.unary_stream_rpc_method_handler(
+                    servicer.StressTestStream,
+                    request_deserializer=flipfix_dot_v1_dot_flipfix__pb2.StressRequest.FromString,
+                    response_serializer=flipfix_dot_v1_dot_flipfix__pb2.StressEvent.SerializeToString,
+            ),
+            'ParetoFront': grpc.unary_unary_rpc_method_handler(
+                    servicer.ParetoFront,
+                    request_deserializer=flipfix_dot_v1_dot_flipfix__pb2.ParetoRequest.FromString,
+                    response_serializer=flipfix_dot_v1_dot_flipfix__pb2.ParetoReply.SerializeToString,
+            ),
+            'CurateLibrary': grpc.unary_unary_rpc_method_handler(
+                    servicer.CurateLibrary,
+                    request_deserializer=flipfix_dot_v1_dot_flipfix__pb2.CurateRequest.FromString,
+                    response_serializer=flipfix_dot_v1_dot_flipfix__pb2.CurateReply.SerializeToString,
             ),
     }
     generic_handler = grpc.method_handlers_generic_handler(
@@ -480,6 +570,141 @@ class Flipfix:
             '/flipfix.v1.Flipfix/RepairStream',
             flipfix_dot_v1_dot_flipfix__pb2.RepairRequest.SerializeToString,
             flipfix_dot_v1_dot_flipfix__pb2.RepairEvent.FromString,
+            options,
+            channel_credentials,
+            insecure,
+            call_credentials,
+            compression,
+            wait_for_ready,
+            timeout,
+            metadata,
+            _registered_method=True)
+
+    @staticmethod
+    def ProfileRobustness(request,
+            target,
+            options=(),
+            channel_credentials=None,
+            call_credentials=None,
+            insecure=False,
+            compression=None,
+            wait_for_ready=None,
+            timeout=None,
+            metadata=None):
+        return grpc.experimental.unary_unary(
+            request,
+            target,
+            '/flipfix.v1.Flipfix/ProfileRobustness',
+            flipfix_dot_v1_dot_flipfix__pb2.RobustnessRequest.SerializeToString,
+            flipfix_dot_v1_dot_flipfix__pb2.RobustnessReply.FromString,
+            options,
+            channel_credentials,
+            insecure,
+            call_credentials,
+            compression,
+            wait_for_ready,
+            timeout,
+            metadata,
+            _registered_method=True)
+
+    @staticmethod
+    def StressTest(request,
+            target,
+            options=(),
+            channel_credentials=None,
+            call_credentials=None,
+            insecure=False,
+            compression=None,
+            wait_for_ready=None,
+            timeout=None,
+            metadata=None):
+        return grpc.experimental.unary_unary(
+            request,
+            target,
+            '/flipfix.v1.Flipfix/StressTest',
+            flipfix_dot_v1_dot_flipfix__pb2.StressRequest.SerializeToString,
+            flipfix_dot_v1_dot_flipfix__pb2.StressReply.FromString,
+            options,
+            channel_credentials,
+            insecure,
+            call_credentials,
+            compression,
+            wait_for_ready,
+            timeout,
+            metadata,
+            _registered_method=True)
+
+    @staticmethod
+    def StressTestStream(request,
+            target,
+            options=(),
+            channel_credentials=None,
+            call_credentials=None,
+            insecure=False,
+            compression=None,
+            wait_for_ready=None,
+            timeout=None,
+            metadata=None):
+        return grpc.experimental.unary_stream(
+            request,
+            target,
+            '/flipfix.v1.Flipfix/StressTestStream',
+            flipfix_dot_v1_dot_flipfix__pb2.StressRequest.SerializeToString,
+            flipfix_dot_v1_dot_flipfix__pb2.StressEvent.FromString,
+            options,
+            channel_credentials,
+            insecure,
+            call_credentials,
+            compression,
+            wait_for_ready,
+            timeout,
+            metadata,
+            _registered_method=True)
+
+    @staticmethod
+    def ParetoFront(request,
+            target,
+            options=(),
+            channel_credentials=None,
+            call_credentials=None,
+            insecure=False,
+            compression=None,
+            wait_for_ready=None,
+            timeout=None,
+            metadata=None):
+        return grpc.experimental.unary_unary(
+            request,
+            target,
+            '/flipfix.v1.Flipfix/ParetoFront',
+            flipfix_dot_v1_dot_flipfix__pb2.ParetoRequest.SerializeToString,
+            flipfix_dot_v1_dot_flipfix__pb2.ParetoReply.FromString,
+            options,
+            channel_credentials,
+            insecure,
+            call_credentials,
+            compression,
+            wait_for_ready,
+            timeout,
+            metadata,
+            _registered_method=True)
+
+    @staticmethod
+    def CurateLibrary(request,
+            target,
+            options=(),
+            channel_credentials=None,
+            call_credentials=None,
+            insecure=False,
+            compression=None,
+            wait_for_ready=None,
+            timeout=None,
+            metadata=None):
+        return grpc.experimental.unary_unary(
+            request,
+            target,
+            '/flipfix.v1.Flipfix/CurateLibrary',
+            flipfix_dot_v1_dot_flipfix__pb2.CurateRequest.SerializeToString,
+            flipfix_dot_v1_dot_flipfix__pb2.CurateReply.FromString,
             options,
             channel_credentials,
             insecure,
