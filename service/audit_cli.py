@@ -6,6 +6,12 @@ in the core (:mod:`repair.robustness`, :mod:`repair.stress`, :mod:`repair.pareto
 :mod:`repair.curation`); this module reads the documents, prints a table and draws
 the figure (matplotlib, Agg backend, no display needed).
 
+With ``--server HOST:PORT`` the first argument names a problem stored in a running
+service and the candidates are the ones stored with it: the same four parts run
+there (``ProfileRobustness``, ``StressTestStream`` or ``CurateLibrary``, ``ParetoFront``)
+and the same table and figure are printed here. ``--keep M --commit`` then keeps only
+the M chosen candidates in the store.
+
 The figures are advice for the person who keeps the library: they propose which
 candidates to keep; that person decides.
 """
@@ -22,7 +28,7 @@ from typing import Any, TextIO
 
 from repair.errors import InputError
 
-__all__ = ["register", "run", "audit", "draw_figure", "format_table"]
+__all__ = ["register", "run", "audit", "audit_remote", "draw_figure", "format_table"]
 
 
 def register(subparsers) -> argparse.ArgumentParser:
@@ -32,8 +38,9 @@ def register(subparsers) -> argparse.ArgumentParser:
         description="Profile every candidate (free variables, flip costs), repair the whole "
                     "library under N seeded random late constraints, and report which candidates "
                     "absorb late changes cheaply.")
-    p.add_argument("problem", help="problem JSON document")
-    p.add_argument("candidates", help="candidates JSON document")
+    p.add_argument("problem", help="problem JSON document (with --server: a stored problem's name)")
+    p.add_argument("candidates", nargs="?", default=None,
+                   help="candidates JSON document (not with --server: the stored ones are used)")
     p.add_argument("--scenarios", type=int, default=20, help="number of seeded scenarios (20)")
     p.add_argument("--shape", default="linear", choices=("linear", "quadratic", "threshold"),
                    help="shape of the Hamming penalty to a random reference (linear)")
@@ -63,6 +70,10 @@ def register(subparsers) -> argparse.ArgumentParser:
     p.add_argument("--keep", type=int, default=None, help="choose M candidates to keep")
     p.add_argument("--png", default=None, help="write the figure to this PNG file")
     p.add_argument("--json", default=None, help="write the full audit to this JSON file")
+    p.add_argument("--server", metavar="HOST:PORT", default=None,
+                   help="audit a problem stored in a running flipfix service")
+    p.add_argument("--commit", action="store_true",
+                   help="with --server and --keep M: keep only the chosen candidates in the store")
     p.set_defaults(func=run)
     return p
 
@@ -106,6 +117,49 @@ def audit(problem, candidates, family, *, scenarios: int, seed: int, method: str
             "cheapest_within_5": cheapest_within(front, 5) if front else None,
             "fewest_within_1pct": fewest_flips_within(front, 1.0) if front else None,
             "best_cost": best}
+
+
+def audit_remote(client, name: str, family, *, scenarios: int, seed: int, method: str,
+                 time_limit: float, epsilon: float, keep: int | None, commit: bool = False,
+                 pareto_constraints=None, pareto_methods=("greedy", "cpsat"),
+                 pareto_time: float = 2.0, progress=None) -> dict:
+    """:func:`audit` through a running service (``client``: :class:`service.client.FlipfixClient`);
+    the library is the stored problem ``name`` (candidates of its current revision)."""
+    from repair.stress import draw_scenarios
+
+    from .convert import label_to_py
+
+    prof = client.robustness(name, epsilon=epsilon)
+    opts = dict(scenarios=scenarios, seed=seed, method=method, time_limit=time_limit,
+                epsilon=epsilon)
+    cur, kept_note = None, None
+    if keep is not None:
+        out = client.curate(name, family, keep, keep=commit, **opts)
+        stress, cur = out["stress"], out["curation"]
+        kept_note = out["message"] + (f"; removed: {', '.join(out['removed_ids'])}"
+                                      if out["removed_ids"] else "")
+    else:
+        stress = client.stress_test(name, family, on_progress=progress, **opts)
+    if pareto_constraints is None:  # scenario 0, drawn exactly as the server draws it
+        from repair.candidates import CandidateSet
+
+        info, problem = client.get_problem(name)
+        recs = client.list_candidates(name, revision=info.revision)
+        items = [{"id": c.id, "assignment": {label_to_py(v.label, "assignment"): int(v.value)
+                                             for v in c.assignment.values}} for c in recs]
+        cands = CandidateSet.from_mappings(problem, items)
+        sc = draw_scenarios(problem, cands, family, count=1, seed=seed)[0]
+        pareto_constraints, pareto_what = sc.constraints, f"scenario 0: {sc.description}"
+    else:
+        pareto_what = "given constraints"
+    got = client.pareto_front(name, pareto_constraints, methods=tuple(pareto_methods),
+                              time_limit=pareto_time, seed=seed, cheapest_within_flips=5,
+                              fewest_flips_within_percent=1.0)
+    front = got["front"]
+    return {"robustness": prof, "stress": stress, "pareto": front, "pareto_for": pareto_what,
+            "curation": cur, "cheapest_within_5": got["cheapest_within"],
+            "fewest_within_1pct": got["fewest_flips_within"],
+            "best_cost": front[-1].cost if front else None, "kept": kept_note}
 
 
 def _f(v: float | None, width: int = 10) -> str:
@@ -153,6 +207,8 @@ def format_table(report: dict) -> str:
         lines.append(f"keep {cur.m}: {', '.join(cur.kept_ids)}; mean excess over the full library "
                      f"{cur.mean_gap:.4g} (worst {cur.worst_gap:.4g}, {100 * cur.relative_gap:.2f}% "
                      f"of total |cost|), scenarios lost: {cur.uncovered}")
+    if report.get("kept"):
+        lines.append(f"store: {report['kept']}")
     return "\n".join(lines)
 
 
@@ -239,8 +295,13 @@ def run(args: argparse.Namespace, *, out: TextIO | None = None, err: TextIO | No
     out = sys.stdout if out is None else out
     err = sys.stderr if err is None else err
     from repair.documents import parse_candidates, parse_constraints, parse_problem
-    from repair.stress import ScenarioFamily
 
+    if getattr(args, "server", None):
+        return _run_remote(args, out, err)
+    if args.candidates is None:
+        print("flipfix audit: error: candidates: a candidates JSON document is needed "
+              "(or --server HOST:PORT with a stored problem)", file=err)
+        return 2
     try:
         problem = parse_problem(_load(args.problem, "problem"))
         doc = _load(args.candidates, "candidates")
@@ -253,10 +314,7 @@ def run(args: argparse.Namespace, *, out: TextIO | None = None, err: TextIO | No
             if isinstance(cdoc, dict) and "constraints" in cdoc:
                 cdoc = cdoc["constraints"]
             cons = parse_constraints(cdoc, problem)
-        family = ScenarioFamily(
-            hamming_weight=args.weight, hamming_shape=args.shape, hamming_threshold=args.threshold,
-            hamming_fraction=args.fraction, reference=args.reference, fix_k=args.fix_k,
-            capacity_cut_percent=args.cut)
+        family = _family_of(args)
         methods = tuple(m.strip() for m in args.pareto_methods.split(",") if m.strip())
         report = audit(problem, candidates, family, scenarios=args.scenarios, seed=args.seed,
                        method=args.method, time_limit=args.time_limit, epsilon=args.epsilon,
@@ -266,6 +324,69 @@ def run(args: argparse.Namespace, *, out: TextIO | None = None, err: TextIO | No
         field = _OPTION_OF.get(exc.field, exc.field)
         print(f"flipfix audit: error: {field}: {exc.message}", file=err)
         return 2
+    _emit(args, report, out)
+    return 0
+
+
+def _family_of(args):
+    from repair.stress import ScenarioFamily
+
+    return ScenarioFamily(
+        hamming_weight=args.weight, hamming_shape=args.shape, hamming_threshold=args.threshold,
+        hamming_fraction=args.fraction, reference=args.reference, fix_k=args.fix_k,
+        capacity_cut_percent=args.cut)
+
+
+def _run_remote(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
+    import grpc
+
+    from repair.documents import parse_constraints
+
+    from .client import FlipfixClient
+
+    if args.candidates is not None:
+        print("flipfix audit: error: candidates: with --server the stored candidates are "
+              "audited; give only the problem's name", file=err)
+        return 2
+    if args.commit and args.keep is None:
+        print("flipfix audit: error: --commit: needs --keep M", file=err)
+        return 2
+    budget = args.time_limit + args.pareto_time
+    with FlipfixClient(args.server, timeout=2 * budget + 60.0) as fx:
+        try:
+            cons = None
+            if args.constraints:
+                _info, problem = fx.get_problem(args.problem)
+                cdoc = _load(args.constraints, "constraints")
+                if isinstance(cdoc, dict) and "constraints" in cdoc:
+                    cdoc = cdoc["constraints"]
+                cons = parse_constraints(cdoc, problem)
+            family = _family_of(args)
+            methods = tuple(m.strip() for m in args.pareto_methods.split(",") if m.strip())
+            report = audit_remote(
+                fx, args.problem, family, scenarios=args.scenarios, seed=args.seed,
+                method=args.method, time_limit=args.time_limit, epsilon=args.epsilon,
+                keep=args.keep, commit=args.commit, pareto_constraints=cons,
+                pareto_methods=methods, pareto_time=args.pareto_time)
+        except InputError as exc:
+            field = _OPTION_OF.get(exc.field, exc.field)
+            print(f"flipfix audit: error: {field}: {exc.message}", file=err)
+            return 2
+        except grpc.RpcError as exc:
+            if exc.code() in (grpc.StatusCode.INVALID_ARGUMENT, grpc.StatusCode.NOT_FOUND):
+                field, _, msg = (exc.details() or "").partition(": ")
+                bare = field.removeprefix("stress.")  # CurateLibrary nests the stress request
+                field = {"problem": "PROBLEM"}.get(bare) or _OPTION_OF.get(bare, field)
+                print(f"flipfix audit: error: {field}: {msg}", file=err)
+                return 2
+            print(f"flipfix audit: error: server {args.server}: {exc.code().name}: "
+                  f"{exc.details()}", file=err)
+            return 1
+    _emit(args, report, out)
+    return 0
+
+
+def _emit(args: argparse.Namespace, report: dict, out: TextIO) -> None:
     print(format_table(report), file=out)
     if args.png:
         draw_figure(report, args.png)
@@ -273,7 +394,6 @@ def run(args: argparse.Namespace, *, out: TextIO | None = None, err: TextIO | No
     if args.json:
         Path(args.json).write_text(json.dumps(_json_ready(report), indent=2), encoding="utf-8")
         print(f"audit written to {args.json}", file=out)
-    return 0
 
 
 def main(argv: list[str] | None = None) -> int:
