@@ -436,3 +436,19 @@ def test_audit_cli_through_the_server(fx, planted_lib, server, tmp_path, capsys)
     assert out_json.exists() and len(fx.list_candidates("planted")) == 4  # no --commit: kept all
     rc = main(["audit", "nope", "--server", server.address, "--scenarios", "2"])
     assert rc == 2 and "PROBLEM" in capsys.readouterr().err
+
+
+def test_input_errors_from_a_worker_keep_their_field():
+    # a plain InputError does not survive pickling (its args are the joined message); the
+    # pool's wrappers do, so an error raised in a worker still names its field
+    import pickle
+
+    from repair.errors import InputError, LimitError
+    from service.errors import status_for
+    from service.worker import WorkerInputError, WorkerLimitError
+
+    for cls, base, code in ((WorkerInputError, InputError, grpc.StatusCode.INVALID_ARGUMENT),
+                            (WorkerLimitError, LimitError, grpc.StatusCode.RESOURCE_EXHAUSTED)):
+        e = pickle.loads(pickle.dumps(cls("family.fix_k", "too many")))
+        assert isinstance(e, base) and (e.field, e.message) == ("family.fix_k", "too many")
+        assert status_for(e) == (code, "family.fix_k: too many" if base is InputError else str(e))
