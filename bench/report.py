@@ -1,6 +1,8 @@
-"""Write bench/RESULTS.md from a results file: ``python -m bench.report [results/latest.json]``.
+"""Write bench/RESULTS.md from results files: ``python -m bench.report [FILE ...]``.
 
 The committed copy of the tables, with the machine and the command that produced them.
+With several files (e.g. a full run, then ``--only service`` re-run), later files replace
+the sections they contain; every command is listed.
 """
 
 from __future__ import annotations
@@ -9,6 +11,7 @@ import json
 import sys
 from pathlib import Path
 
+from . import SECTIONS_ORDER
 from .common import RESULTS_DIR
 
 __all__ = ["render_markdown", "main"]
@@ -16,32 +19,53 @@ __all__ = ["render_markdown", "main"]
 HERE = Path(__file__).resolve().parent
 
 
+def merge(docs: list) -> dict:
+    """One document from several runs: sections of later runs win; commands are listed."""
+    out = dict(docs[0])
+    out["sections"] = dict(docs[0]["sections"])
+    out["runs"] = [{"command": d["command"], "started": d["started"],
+                    "seconds": d.get("seconds", 0.0), "sections": list(d["sections"])}
+                   for d in docs]
+    for d in docs[1:]:
+        out["sections"].update(d["sections"])
+    return out
+
+
 def render_markdown(doc: dict, *, notes: str = "") -> str:
+    from . import run as runner
+
     m = doc["machine"]
-    head = [
-        "# flipfix benchmark results",
+    runs = doc.get("runs") or [{"command": doc["command"], "started": doc["started"],
+                                "seconds": doc.get("seconds", 0.0),
+                                "sections": list(doc["sections"])}]
+    head = ["# flipfix benchmark results", ""]
+    for r in runs:
+        head.append(f"- `{r['command']}` (sections: {', '.join(r['sections'])}), started "
+                    f"{r['started']}, {r['seconds']:.0f} s")
+    head += [
         "",
-        f"Command: `{doc['command']}` (from the repository root, with `.venv/bin/python`; "
-        f"seed {doc['seed']}). Started {doc['started']}, took {doc.get('seconds', 0):.0f} s.",
+        f"Run from the repository root with `.venv/bin/python` (`make bench` runs the first "
+        f"command); seed {doc['seed']}.",
         "",
         f"Machine: {m['nproc']} cores, {m['cpu']}; {m['platform']}; python {m['python']}, "
         f"numpy {m['numpy']}, ortools {m['ortools']}, numba {m['numba']}, grpcio {m['grpcio']}; "
         f"commit {m['commit']}" + (f" plus the working tree at {doc['started']}" if m["commit"] else ""),
         "",
     ]
-    if notes:
-        head += [notes.strip(), ""]
-    return "\n".join(head) + "\n" + doc.get("markdown", "") + "\n"
+    body = [runner.SECTIONS[name].render(doc["sections"][name])
+            for name in SECTIONS_ORDER if name in doc["sections"]]
+    tail = ["", notes.strip()] if notes else []
+    return "\n".join(head) + "\n" + "\n\n".join(body) + "\n" + "\n".join(tail) + "\n"
 
 
 def main(argv=None) -> int:
     argv = sys.argv[1:] if argv is None else argv
-    src = Path(argv[0]) if argv else RESULTS_DIR / "latest.json"
+    srcs = [Path(a) for a in argv] or [RESULTS_DIR / "latest.json"]
     notes_path = HERE / "RESULTS_NOTES.md"
     notes = notes_path.read_text() if notes_path.exists() else ""
-    doc = json.loads(src.read_text())
+    doc = merge([json.loads(s.read_text()) for s in srcs])
     (HERE / "RESULTS.md").write_text(render_markdown(doc, notes=notes))
-    print(f"wrote {HERE / 'RESULTS.md'} from {src}")
+    print(f"wrote {HERE / 'RESULTS.md'} from {', '.join(map(str, srcs))}")
     return 0
 
 

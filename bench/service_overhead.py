@@ -122,7 +122,7 @@ def run(*, quick: bool = False, seed: int = 0, log=print) -> dict:
                           else "max_message_bytes",
                           "largest_request_MB_at_n1000": (fixed_part + per_cand * k_max) / 2**20}
                 if not quick:
-                    limits.update(_probe(client, p, doc, rng, k_max, per_cand))
+                    limits.update(_probe(client, p, doc, rng, k_max, per_cand, cfg.max_message_bytes))
                 raw["limits"] = limits
                 log(f"largest request: {limits}")
         finally:
@@ -152,19 +152,35 @@ def _server_decode(convert, pb, blob, cfg):
     return time.perf_counter() - t
 
 
-def _probe(client, p, doc, rng, k_max, per_cand):
-    """Send one candidate more than the largest accepted request, then exactly the largest
-    (the same request with its last candidate removed; greedy, 1 s)."""
+def _probe(client, p, doc, rng, k_max, per_cand, limit):
+    """Find by the request's own ByteSize the largest inline request (random candidates, greedy,
+    1 s) within ``limit`` bytes, then send it and the same request with one candidate more.
+
+    proto3 omits zero values, so the size per candidate depends on its number of ones: the
+    estimate from the library only seeds the search."""
     import grpc
 
     out = {}
-    X = rng.integers(0, 2, size=(k_max + 1, p.n), dtype=np.int8)
+    k0 = int(k_max * 1.15) + 2
+    X = rng.integers(0, 2, size=(k0, p.n), dtype=np.int8)
     cs = CandidateSet.from_array(p, X)
     req = client.repair_request(p, doc_fix(doc, p), candidates=cs, method="greedy",
                                 time_limit=1.0)
+    # each repeated candidate costs its size + a length varint + a tag byte (the inline
+    # library is itself a length-delimited field whose varint grows by at most a few bytes)
+    steps = [c.ByteSize() + 1 + len(_varint(c.ByteSize())) for c in req.inline.candidates]
+    total = req.ByteSize() - sum(steps)
+    k_fit = 0
+    for step in steps:
+        if total + step > limit:
+            break
+        total += step
+        k_fit += 1
+    del req.inline.candidates[k_fit + 1:]
     for key in ("probe_over_max", "probe_at_max"):
         if key == "probe_at_max":
-            del req.inline.candidates[-1]
+            while req.ByteSize() > limit:
+                del req.inline.candidates[-1]
         t = time.perf_counter()
         try:
             client.stub.Repair(req, timeout=600)
@@ -175,6 +191,16 @@ def _probe(client, p, doc, rng, k_max, per_cand):
                         "result": err.code().name, "detail": (err.details() or "")[:200],
                         "seconds": time.perf_counter() - t}
     return out
+
+
+def _varint(v: int) -> bytes:
+    out = bytearray()
+    while True:
+        b = v & 0x7F
+        v >>= 7
+        out.append(b | (0x80 if v else 0))
+        if not v:
+            return bytes(out)
 
 
 def render(section: dict) -> str:
@@ -193,5 +219,6 @@ def render(section: dict) -> str:
         for key in ("probe_at_max", "probe_over_max"):
             if key in lim:
                 pr = lim[key]
-                text += f"; sent K={pr['K']}: {pr['result']} in {pr['seconds']:.1f} s"
+                text += (f"; sent K={pr['K']} random candidates ({pr.get('bytes', 0)} bytes): "
+                         f"{pr['result']} in {pr['seconds']:.1f} s")
     return text
