@@ -111,6 +111,14 @@ def _build(problem, candidates, compiled, attempts, price, method, seed, t0, *, 
     ks = np.asarray([a.k for a in attempts])
     ev = compiled.evaluate(A)
     flips = (A != X0[ks]).sum(axis=1)
+    # feasible first, then objective, then violation, then flips
+    b = int(np.lexsort((flips, ev.cost + price * flips, ev.violation, ~ev.feasible))[0])
+    origin = int(ks[b])
+    # the answer is reported against the library candidate nearest to it (the one it was
+    # repaired from on ties): the smallest change from any plan the user keeps. Audit
+    # rows stay per origin: each row is what that candidate's own repair reached.
+    dist = (X0 != A[b][None, :]).sum(axis=1)
+    bk = origin if dist[origin] == dist.min() else int(np.argmin(dist))
     obj = ev.cost + price * flips
     feas = ev.feasible
     # best per candidate: feasible first, then objective, then flips
@@ -138,14 +146,13 @@ def _build(problem, candidates, compiled, attempts, price, method, seed, t0, *, 
             feasible=bool(feas[a_idx]), violation=float(ev.violation[a_idx]),
             method=attempts[a_idx].method, seconds=float(seconds[k]),
             decisions_changed=changed, encoding_issues=issues.get(k, [])))
-    b = int(order[0])
-    bk = int(ks[b])
     changes = _changes(problem, X0[bk], A[b])
     best = Solution(
         candidate_id=candidates.ids[bk], x=A[b].copy(),
         assignment=dict(zip(problem.labels, map(int, problem.to_caller(A[b])))),
-        cost=float(ev.cost[b]), objective=float(obj[b]), base_energy=float(ev.base[b]),
-        penalties={k: float(v[b]) for k, v in ev.penalties.items()}, flips=int(flips[b]),
+        cost=float(ev.cost[b]), objective=float(ev.cost[b] + price * dist[bk]),
+        base_energy=float(ev.base[b]), repaired_from=candidates.ids[origin],
+        penalties={k: float(v[b]) for k, v in ev.penalties.items()}, flips=int(dist[bk]),
         feasible=bool(feas[b]), violation=float(ev.violation[b]),
         violations={k: float(v[b]) for k, v in ev.violations.items()},
         method=attempts[b].method, changes=changes, decisions_changed=len(changes))

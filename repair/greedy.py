@@ -31,7 +31,7 @@ import numpy as np
 
 from .compiled import FEAS_TOL, Compiled
 
-__all__ = ["GreedyOutput", "greedy_repair", "descend_qubo"]
+__all__ = ["GreedyOutput", "greedy_repair", "descend_qubo", "objective_tol", "warm_up"]
 
 _INF = np.inf
 
@@ -432,7 +432,8 @@ def _row_arrays(compiled: Compiled, n: int):
     return a_ptr, a_col, a_val, col_ptr, rows[order], a_val[order], rtol
 
 
-def _objective_tol(compiled: Compiled) -> float:
+def objective_tol(compiled: Compiled) -> float:
+    """Smallest objective change counted as an improvement (1e-9 of the largest coefficient)."""
     scale = max(np.abs(compiled.h).max(initial=0.0), np.abs(compiled.data).max(initial=0.0), 1.0)
     return 1e-9 * scale
 
@@ -475,7 +476,7 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
     done = np.zeros(K, dtype=bool)
     seconds = np.zeros(K)
     radius = n if max_flips is None else int(max_flips)
-    tol = _objective_tol(compiled)
+    tol = objective_tol(compiled)
     max_steps = 100 * n + 1000
     fast = not compiled.counts and not compiled.rows and radius >= n
     if pair_width is None:
@@ -484,12 +485,21 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
     if not fast:
         cnt = _count_arrays(compiled, n)
         rows = _row_arrays(compiled, n)
-    for start in range(0, K, chunk):
-        if (cancel is not None and cancel.is_set()) or (
-                deadline is not None and start > 0 and time.perf_counter() > deadline):
+    start = 0
+    size = 1 if deadline is not None else chunk  # with a deadline: measure one, then fit
+    per_cand = 0.0  # measured seconds per candidate
+    while start < K:
+        if cancel is not None and cancel.is_set():
             break
+        if deadline is not None:
+            left = deadline - time.perf_counter()
+            if start > 0 and left <= 0.0:
+                break
+            if per_cand > 0.0:  # a chunk should fit in what is left
+                size = int(max(1, min(chunk, left / per_cand)))
         t0 = time.perf_counter()
-        sl = slice(start, min(K, start + chunk))
+        sl = slice(start, min(K, start + size))
+        start = sl.stop
         Xc = X[sl].copy()
         st = np.zeros(Xc.shape[0], dtype=np.int64)
         if fast:
@@ -505,10 +515,11 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
                              l_var, l_val, vt_ptr, vt_term, vt_lit, a_ptr, a_col, a_val,
                              col_ptr, col_row, col_val, compiled.lo, compiled.hi, rtol,
                              int(pair_width), st)
+        per_cand = (time.perf_counter() - t0) / Xc.shape[0]
         X[sl] = Xc
         steps[sl] = st
         done[sl] = True
-        seconds[sl] = (time.perf_counter() - t0) / Xc.shape[0]
+        seconds[sl] = per_cand
         if progress is not None:
             progress(int(done.sum()), K)
     return GreedyOutput(X=X, steps=steps, done=done, seconds=seconds)

@@ -27,12 +27,14 @@ import numpy as np
 
 from .compiled import Compiled
 from .errors import InputError
-from .greedy import greedy_repair
+from .greedy import objective_tol, greedy_repair
 
 __all__ = ["Attempt", "PlanOutcome", "run_plan"]
 
 #: share of the budget greedy may take inside the portfolio; neighbourhoods get half the rest.
 KICK_BATCH = 32
+POLISH_SHARE = 0.05
+POLISH_TOP = 8
 
 
 @dataclass(frozen=True)
@@ -131,6 +133,25 @@ class _LazyCpsat:
 
 
 def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: float,
+             max_flips: int | None, flip_price: float, seed: int, workers: int,
+             cancel=None, progress=None, mix: Mix = DEFAULT_MIX) -> PlanOutcome:
+    """Run one plan on the candidates X0 (int8 (K, n)); see the module docstring.
+
+    greedy and portfolio keep the last ``POLISH_SHARE`` of the budget to move the best
+    answers back toward their candidates where that costs nothing (:func:`_polish`).
+    """
+    t0 = time.perf_counter()
+    share = 1.0 if method == "cpsat" else 1.0 - POLISH_SHARE
+    out = _search(compiled, X0, method=method, time_limit=share * time_limit,
+                  max_flips=max_flips, flip_price=flip_price, seed=seed, workers=workers,
+                  cancel=cancel, progress=progress, mix=mix)
+    if method != "cpsat" and not (cancel is not None and cancel.is_set()):
+        _polish(compiled, X0, out, deadline=t0 + time_limit, max_flips=max_flips,
+                flip_price=flip_price)
+    return out
+
+
+def _search(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: float,
              max_flips: int | None, flip_price: float, seed: int, workers: int,
              cancel=None, progress=None, mix: Mix = DEFAULT_MIX) -> PlanOutcome:
     """Run one plan on the candidates X0 (int8 (K, n)); see the module docstring."""
@@ -243,6 +264,43 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: flo
             out.proven_optimal = True  # nothing better than best_obj exists
     report(done=K, total=K, phase="full", best_cost=best_obj)
     return out
+
+
+def _polish(compiled, X0, out, *, deadline, max_flips, flip_price):
+    """Move the best answers back toward their candidates where the cost does not rise.
+
+    Greedy descent from each of the ``POLISH_TOP`` best answers with a tiny extra price
+    per flip away from its candidate: only flips that cost (next to) nothing and undo a
+    change are taken. A result is kept when it is feasible, no costlier and has fewer flips.
+    """
+    if not out.attempts:
+        return
+    A = np.vstack([a.x for a in out.attempts])
+    ks = np.asarray([a.k for a in out.attempts])
+    ev, obj, flips = _objective(compiled, A, X0[ks], flip_price)
+    order = [int(i) for i in _ranked(ev.feasible, obj) if ev.feasible[i]]
+    picked, seen = [], set()
+    for i in order:
+        key = (int(ks[i]), A[i].tobytes())
+        if key not in seen:
+            seen.add(key)
+            picked.append(i)
+        if len(picked) == POLISH_TOP:
+            break
+    if not picked:
+        return
+    eps = 1e3 * objective_tol(compiled)
+    g = greedy_repair(compiled, A[picked], origin=X0[ks[picked]], max_flips=max_flips,
+                      flip_price=flip_price + eps, deadline=deadline, chunk=4)
+    ev2, obj2, flips2 = _objective(compiled, g.X, X0[ks[picked]], flip_price)
+    for pos, i in enumerate(picked):
+        slack = 1e-9 * max(1.0, abs(obj[i]))
+        if (g.done[pos] and ev2.feasible[pos] and flips2[pos] < flips[i]
+                and obj2[pos] <= obj[i] + slack):
+            src = out.attempts[i]
+            label = "greedy" if src.method == "greedy" else f"{src.method}+greedy"
+            out.attempts.append(Attempt(int(ks[i]), g.X[pos].copy(), label, float(g.seconds[pos])))
+            out.stats["polished"] = out.stats.get("polished", 0) + 1
 
 
 def _kicks(compiled, X0, cur, obj, feasible, done, out, *, deadline, max_flips, flip_price,

@@ -23,7 +23,9 @@ class Solution:
     ``x`` is int8 (n,) in 0/1 form; ``assignment`` maps labels to values in the
     caller's vartype. ``cost`` = ``base_energy`` + sum of ``penalties``;
     ``objective`` = cost + flip_price * flips (what the search minimised).
-    ``flips`` = Hamming distance from candidate ``candidate_id``.
+    ``candidate_id`` is the library candidate nearest to the answer and ``flips`` the
+    Hamming distance from it; ``repaired_from`` is the candidate whose repair produced
+    the answer (the same one unless another candidate is closer).
     ``changes`` lists integer-level changes ``(decision, old, new)`` when the
     problem declares decisions; ``decisions_changed`` counts them.
     """
@@ -42,6 +44,7 @@ class Solution:
     method: str
     changes: list = field(default_factory=list)
     decisions_changed: int = 0
+    repaired_from: str = ""
 
 
 @dataclass
@@ -114,6 +117,7 @@ class RepairResult:
             "cpsat_status": self.cpsat_status,
             "best": {
                 "candidate_id": b.candidate_id,
+                "repaired_from": b.repaired_from,
                 "cost": num(b.cost),
                 "objective": num(b.objective),
                 "base_energy": num(b.base_energy),
