@@ -17,8 +17,8 @@ caps that distance (a hard radius).
 
 Cost per flip update is O(degree): local fields, count-penalty term states and
 row activities are updated only where the flipped variable appears. With no
-hard rows, count penalties or radius, the best flip is kept in a min segment
-tree, so a step costs O(degree * log n) instead of an O(n) scan.
+hard rows, count penalties or radius, the improving flips are kept in a binary
+heap, so a step costs O(degree * log heap) instead of an O(n) scan.
 """
 
 from __future__ import annotations
@@ -49,33 +49,87 @@ class GreedyOutput:
 
 
 # ---------------------------------------------------------------- fast path
-@nb.njit(cache=True)
-def _tree_set(tree_v, tree_i, size, pos, value):
-    k = size + pos
-    tree_v[k] = value
-    k >>= 1
-    while k >= 1:
-        a = 2 * k
-        b = a + 1
-        if tree_v[b] < tree_v[a]:
-            tree_v[k] = tree_v[b]
-            tree_i[k] = tree_i[b]
-        else:
-            tree_v[k] = tree_v[a]
-            tree_i[k] = tree_i[a]
-        k >>= 1
+@nb.njit(cache=True, inline="always")
+def _less(hv, hi, a, b):
+    """Heap order: smaller change first, then the lower variable index (deterministic ties)."""
+    return hv[a] < hv[b] or (hv[a] == hv[b] and hi[a] < hi[b])
+
+
+@nb.njit(cache=True, inline="always")
+def _swap(hv, hi, hs, a, b):
+    hv[a], hv[b] = hv[b], hv[a]
+    hi[a], hi[b] = hi[b], hi[a]
+    hs[a], hs[b] = hs[b], hs[a]
 
 
 @nb.njit(cache=True)
-def _descend_tree(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, steps_out):
-    """Steepest descent on a pure QUBO (+ fixings, + flip price), in place on X (K, n)."""
+def _sift_down(hv, hi, hs, size, p):
+    while True:
+        c = 2 * p + 1
+        if c >= size:
+            return
+        if c + 1 < size and _less(hv, hi, c + 1, c):
+            c += 1
+        if not _less(hv, hi, c, p):
+            return
+        _swap(hv, hi, hs, c, p)
+        p = c
+
+
+@nb.njit(cache=True)
+def _push(hv, hi, hs, size, value, var, stamp):
+    hv[size] = value
+    hi[size] = var
+    hs[size] = stamp
+    c = size
+    while c > 0:
+        p = (c - 1) // 2
+        if not _less(hv, hi, c, p):
+            break
+        _swap(hv, hi, hs, c, p)
+        c = p
+    return size + 1
+
+
+@nb.njit(cache=True, inline="always")
+def _delta(x, o, field, price, i):
+    d = (1.0 - 2.0 * x[i]) * field[i]
+    return d + price if x[i] == o[i] else d - price
+
+
+@nb.njit(cache=True)
+def _refill(x, o, field, fixed, price, tol, stamp, hv, hi, hs):
+    """Heap of every improving free variable (current stamps), built in O(n)."""
+    size = 0
+    for i in range(x.size):
+        if fixed[i] < 0:
+            d = _delta(x, o, field, price, i)
+            if d < -tol:
+                hv[size] = d
+                hi[size] = i
+                hs[size] = stamp[i]
+                size += 1
+    for p in range(size // 2 - 1, -1, -1):
+        _sift_down(hv, hi, hs, size, p)
+    return size
+
+
+@nb.njit(cache=True)
+def _descend_heap(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, steps_out):
+    """Steepest descent on a pure QUBO (+ fixings, + flip price), in place on X (K, n).
+
+    The improving flips sit in a binary heap with lazy deletion: a variable's entry is
+    current while its stamp matches. A flip re-stamps the variable and its neighbours and
+    pushes those that improve, so a step costs O(degree * log heap); near a local minimum
+    the heap is small, so start-up is the O(n + nnz) field computation alone.
+    """
     K, n = X.shape
-    size = 1
-    while size < n:
-        size *= 2
-    tree_v = np.empty(2 * size)
-    tree_i = np.empty(2 * size, dtype=np.int64)
+    cap = 4 * n + 64
+    hv = np.empty(cap)
+    hi = np.empty(cap, dtype=np.int64)
+    hs = np.empty(cap, dtype=np.int64)
     field = np.empty(n)
+    stamp = np.zeros(n, dtype=np.int64)
     for k in range(K):
         x = X[k]
         o = origin[k]
@@ -87,39 +141,41 @@ def _descend_tree(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
             for p in range(indptr[i], indptr[i + 1]):
                 f += data[p] * x[indices[p]]
             field[i] = f
-        for p in range(2 * size):
-            tree_v[p] = _INF
-            tree_i[p] = 0
-        for i in range(size):
-            tree_i[size + i] = i
-        for i in range(n):
-            if fixed[i] < 0:
-                d = (1.0 - 2.0 * x[i]) * field[i]
-                d += price if x[i] == o[i] else -price
-                tree_v[size + i] = d
-        for p in range(size - 1, 0, -1):
-            a = 2 * p
-            if tree_v[a + 1] < tree_v[a]:
-                tree_v[p] = tree_v[a + 1]
-                tree_i[p] = tree_i[a + 1]
-            else:
-                tree_v[p] = tree_v[a]
-                tree_i[p] = tree_i[a]
+        size = _refill(x, o, field, fixed, price, tol, stamp, hv, hi, hs)
         steps = 0
-        while steps < max_steps and tree_v[1] < -tol:
-            i = tree_i[1]
+        while steps < max_steps and size > 0:
+            i = hi[0]
+            if hs[0] != stamp[i]:  # stale entry: drop it
+                size -= 1
+                _swap(hv, hi, hs, 0, size)
+                _sift_down(hv, hi, hs, size, 0)
+                continue
+            if hv[0] >= -tol:
+                break
+            size -= 1
+            _swap(hv, hi, hs, 0, size)
+            _sift_down(hv, hi, hs, size, 0)
             s = 1.0 - 2.0 * x[i]  # +1 for 0 -> 1
             x[i] = 1 - x[i]
-            d = (1.0 - 2.0 * x[i]) * field[i]
-            d += price if x[i] == o[i] else -price
-            _tree_set(tree_v, tree_i, size, i, d)
+            stamp[i] += 1
+            if size + indptr[i + 1] - indptr[i] + 1 > cap:
+                for p in range(indptr[i], indptr[i + 1]):
+                    field[indices[p]] += s * data[p]
+                    stamp[indices[p]] += 1
+                size = _refill(x, o, field, fixed, price, tol, stamp, hv, hi, hs)
+                steps += 1
+                continue
+            d = _delta(x, o, field, price, i)
+            if d < -tol:
+                size = _push(hv, hi, hs, size, d, i, stamp[i])
             for p in range(indptr[i], indptr[i + 1]):
                 j = indices[p]
                 field[j] += s * data[p]
                 if fixed[j] < 0:
-                    dj = (1.0 - 2.0 * x[j]) * field[j]
-                    dj += price if x[j] == o[j] else -price
-                    _tree_set(tree_v, tree_i, size, j, dj)
+                    stamp[j] += 1
+                    dj = _delta(x, o, field, price, j)
+                    if dj < -tol:
+                        size = _push(hv, hi, hs, size, dj, j, stamp[j])
             steps += 1
         steps_out[k] = steps
 
@@ -448,7 +504,7 @@ def descend_qubo(h, indptr, indices, data, X0, *, fixed=None, flip_price: float 
     n = X.shape[1]
     fixed = np.full(n, -1, dtype=np.int8) if fixed is None else np.asarray(fixed, dtype=np.int8)
     steps = np.zeros(X.shape[0], dtype=np.int64)
-    _descend_tree(X, X0.astype(np.int8), np.asarray(h, np.float64), np.asarray(indptr, np.int64),
+    _descend_heap(X, X0.astype(np.int8), np.asarray(h, np.float64), np.asarray(indptr, np.int64),
                   np.asarray(indices, np.int32), np.asarray(data, np.float64), fixed,
                   float(flip_price), float(tol), int(max_steps or 100 * n + 1000), steps)
     return X, steps
@@ -503,7 +559,7 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
         Xc = X[sl].copy()
         st = np.zeros(Xc.shape[0], dtype=np.int64)
         if fast:
-            _descend_tree(Xc, O[sl], compiled.h, compiled.indptr, compiled.indices,
+            _descend_heap(Xc, O[sl], compiled.h, compiled.indptr, compiled.indices,
                           compiled.data, compiled.fixed, float(flip_price), tol, max_steps, st)
         else:
             (cp_ptr, cp_table, cp_const, t_pen, t_coef, t_ar, l_ptr, l_var, l_val, vt_ptr,
