@@ -1,7 +1,7 @@
 """Run the benchmarks: ``python -m bench.run [--quick] [--only NAME ...]``.
 
 Sections: repair (repair vs re-solve), kernel (greedy throughput), service (gRPC overhead),
-memory (peak RSS). Prints a table per section and writes bench/results/latest.json
+memory (peak RSS), mix (which portfolio budget mix wins at each budget). Prints a table per section and writes bench/results/latest.json
 (the figures, the machine, the command). Never part of the test suite.
 """
 
@@ -11,7 +11,7 @@ import argparse
 import sys
 import time
 
-from . import kernel, memory, repair_vs_resolve, service_overhead
+from . import kernel, memory, mix, repair_vs_resolve, service_overhead
 from .common import machine, write_results
 
 __all__ = ["main", "SECTIONS"]
@@ -21,6 +21,7 @@ SECTIONS = {
     "kernel": kernel,
     "service": service_overhead,
     "memory": memory,
+    "mix": mix,
 }
 
 
