@@ -221,7 +221,7 @@ def _search(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: floa
         if len(tops) >= mix.neighbourhoods:
             break
     margin = int(np.clip(n // 10, 5, 50))
-    # ---- stage 3: neighbourhoods of the best candidates, hinted with their greedy result
+    # ---- stage 3: neighbourhoods of the best candidates, hinted with their repaired result
     best_obj = float(obj[tops[0]]) if tops and ev.feasible[tops[0]] else None
     tops = tops[: mix.neighbourhoods]
     share = (deadline - time.perf_counter()) * (mix.neighbourhood_share if mix.full_search else 1.0)
@@ -231,9 +231,8 @@ def _search(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: floa
             break
         radius = max_flips if max_flips is not None else min(n, int(flips[k]) + margin)
         budget = min(share, deadline - time.perf_counter())
-        r = cp.solve(hint=g.X[k], center=X0[k], radius=radius,
-                        flip_price=flip_price, time_limit=budget, workers=workers,
-                        seed=seed + rank, cancel=cancel)
+        r = cp.solve(hint=g.X[k], center=X0[k], radius=radius, flip_price=flip_price,
+                     time_limit=budget, workers=workers, seed=seed + rank, cancel=cancel)
         out.scaling_error = max(out.scaling_error, r.scaling_error)
         out.cpsat_status = r.status
         if r.x is not None:
@@ -249,10 +248,9 @@ def _search(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: floa
     upper = None
     if best_obj is not None:
         upper = best_obj - max(1e-9, 1e-9 * abs(best_obj))
-    r = cp.solve(hint=None, center=X0[anchor],
-                    radius=None if full_space else max_flips, flip_price=flip_price,
-                    upper=upper, time_limit=deadline - time.perf_counter(), workers=workers,
-                    seed=seed + mix.neighbourhoods, cancel=cancel)
+    r = cp.solve(hint=None, center=X0[anchor], radius=None if full_space else max_flips,
+                 flip_price=flip_price, upper=upper, time_limit=deadline - time.perf_counter(),
+                 workers=workers, seed=seed + mix.neighbourhoods, cancel=cancel)
     out.scaling_error = max(out.scaling_error, r.scaling_error)
     out.cpsat_status = r.status
     out.stats["full_search_status"] = r.status
@@ -366,9 +364,8 @@ def _per_candidate_cpsat(cp, compiled, X0, out, *, deadline, max_flips, flip_pri
             break
         left = deadline - time.perf_counter()
         budget = max(0.005, left / (K - pos) - overrun)
-        r = cp.solve(hint=X0[k], center=X0[k], radius=max_flips,
-                        flip_price=flip_price, time_limit=budget, workers=workers,
-                        seed=seed, cancel=cancel)
+        r = cp.solve(hint=X0[k], center=X0[k], radius=max_flips, flip_price=flip_price,
+                     time_limit=budget, workers=workers, seed=seed, cancel=cancel)
         reached[k] = True
         overrun = (overrun * pos + max(0.0, r.seconds - budget)) / (pos + 1)
         statuses.append(r.status)
