@@ -169,6 +169,58 @@ class Problem:
         )
 
     @classmethod
+    def from_arrays(
+        cls, labels: Sequence[Hashable], linear, u, v, bias, *, offset: float = 0.0,
+        vartype: str = BINARY, decisions: Sequence[Decision] = (), field_prefix: str = "",
+        fields: tuple[str, str, str, str] = ("linear", "u", "v", "bias"),
+    ) -> "Problem":
+        """Build from terms by position, in the caller's vartype, without per-term Python.
+
+        ``labels`` (n) fix the order; ``linear`` float64 (n,) or empty; term k of
+        ``u``, ``v`` int (m,) and ``bias`` float64 (m,) couples ``labels[u[k]]`` and
+        ``labels[v[k]]`` (duplicate pairs are summed, u == v is an error). ``fields``
+        names the four arrays in errors (after ``field_prefix``).
+        """
+        p = field_prefix
+        if vartype not in VARTYPES:
+            raise InputError(p + "vartype", f"must be one of {VARTYPES}, got {vartype!r}")
+        order: list = []
+        index: dict = {}
+        for pos, lab in enumerate(labels):
+            lab = check_label(lab, f"{p}labels[{pos}]")
+            if lab in index:
+                raise InputError(f"{p}labels[{pos}]", f"duplicate label {lab!r}")
+            index[lab] = pos
+            order.append(lab)
+        n = len(order)
+        f_lin, f_u, f_v, f_b = (p + f for f in fields)
+        h = np.asarray(linear, dtype=np.float64).ravel()
+        if h.size == 0:
+            h = np.zeros(n, dtype=np.float64)
+        elif h.size != n:
+            raise InputError(f_lin, f"has {h.size} biases for {n} labels")
+        rows = np.asarray(u, dtype=np.int64).ravel()
+        cols = np.asarray(v, dtype=np.int64).ravel()
+        vals = np.asarray(bias, dtype=np.float64).ravel()
+        if not rows.size == cols.size == vals.size:
+            raise InputError(f_b, f"{f_u}, {f_v} and {f_b} have {rows.size}, {cols.size} and "
+                                  f"{vals.size} entries (must be equal)")
+        for arr, f in ((h, f_lin), (vals, f_b)):
+            bad = np.flatnonzero(~np.isfinite(arr))
+            if bad.size:
+                raise InputError(f"{f}[{bad[0]}]", f"{arr[bad[0]]!r} is not finite")
+        for arr, f in ((rows, f_u), (cols, f_v)):
+            bad = np.flatnonzero((arr < 0) | (arr >= n))
+            if bad.size:
+                raise InputError(f"{f}[{bad[0]}]", f"index {arr[bad[0]]} is outside 0..{n - 1}")
+        loop = np.flatnonzero(rows == cols)
+        if loop.size:
+            k = int(loop[0])
+            raise InputError(f"{f_u}[{k}]", f"self-loop on {order[rows[k]]!r}: put it in linear instead")
+        return cls._assemble(order, h, rows, cols, vals, finite(offset, p + "offset"), vartype,
+                             tuple(decisions), p)
+
+    @classmethod
     def _assemble(cls, order, h, rows, cols, vals, offset, vartype, decisions, p=""):
         """Convert to 0/1 form if needed, symmetrise, merge duplicates, build CSR."""
         n = len(order)

@@ -127,8 +127,6 @@ def audit_remote(client, name: str, family, *, scenarios: int, seed: int, method
     the library is the stored problem ``name`` (candidates of its current revision)."""
     from repair.stress import draw_scenarios
 
-    from .convert import label_to_py
-
     prof = client.robustness(name, epsilon=epsilon)
     opts = dict(scenarios=scenarios, seed=seed, method=method, time_limit=time_limit,
                 epsilon=epsilon)
@@ -141,13 +139,9 @@ def audit_remote(client, name: str, family, *, scenarios: int, seed: int, method
     else:
         stress = client.stress_test(name, family, on_progress=progress, **opts)
     if pareto_constraints is None:  # scenario 0, drawn exactly as the server draws it
-        from repair.candidates import CandidateSet
-
         info, problem = client.get_problem(name)
-        recs = client.list_candidates(name, revision=info.revision)
-        items = [{"id": c.id, "assignment": {label_to_py(v.label, "assignment"): int(v.value)
-                                             for v in c.assignment.values}} for c in recs]
-        cands = CandidateSet.from_mappings(problem, items)
+        [lib] = client.list_candidates(name, revision=info.revision)  # one revision: one run
+        cands = lib.candidate_set()
         sc = draw_scenarios(problem, cands, family, count=1, seed=seed)[0]
         pareto_constraints, pareto_what = sc.constraints, f"scenario 0: {sc.description}"
     else:

@@ -2,10 +2,14 @@
 
     with FlipfixClient("127.0.0.1:50051") as fx:
         fx.create_problem("roster", bqm)                 # dimod BQM, Problem or JSON document
-        fx.add_candidates("roster", sampleset)           # dimod SampleSet, CandidateSet or JSON list
+        fx.add_candidates("roster", sampleset)           # SampleSet, CandidateSet, array or JSON list
         out = fx.repair("roster", [{"type": "fix", "values": {"x3": 0}}], time_limit=2.0)
         out["best"]["cost"], out["best"]["flips"]
+        [lib] = fx.list_candidates("roster")             # StoredCandidates: ids, values (K, n)
 
+Candidates travel packed (``PackedAssignments``: one bit per variable in the problem's
+label order), converted with numpy on both sides; the client fetches the problem's labels
+(``get_problem``) to pack candidates for a stored problem and to read the answer.
 Replies of ``repair`` are dicts in the layout of :meth:`repair.result.RepairResult.to_dict`.
 The audit methods (``robustness``, ``stress_test``, ``pareto_front``, ``curate``) return
 the core's own report objects (:mod:`repair.robustness`, :mod:`repair.stress`,
@@ -20,9 +24,11 @@ Errors are ``grpc.RpcError`` with the status codes listed in the proto.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from typing import Any, Callable, Iterable, Mapping, Sequence
 
 import grpc
+import numpy as np
 
 from repair import documents
 from repair.candidates import CandidateSet
@@ -32,7 +38,34 @@ from . import convert
 from .generated import flipfix_pb2 as pb
 from .generated import flipfix_pb2_grpc as pb_grpc
 
-__all__ = ["FlipfixClient"]
+__all__ = ["FlipfixClient", "StoredCandidates"]
+
+
+@dataclass(frozen=True)
+class StoredCandidates:
+    """Stored candidates of one problem revision (a ListCandidates batch, pages joined).
+
+    ``values`` is int8 (K, n) in the problem's vartype (0/1 or -1/+1), columns in
+    ``problem.labels`` order (the model of ``revision``); ``provenance`` has K dicts
+    ``{"source", "energy", "tags"}``.
+    """
+
+    revision: int
+    problem: Problem
+    ids: tuple
+    values: np.ndarray
+    provenance: list
+
+    def __len__(self) -> int:
+        return len(self.ids)
+
+    def candidate_set(self) -> CandidateSet:
+        """The candidates as the core's :class:`CandidateSet` (0/1 form) of ``problem``."""
+        return CandidateSet(self.ids, self.problem.from_caller(self.values))
+
+    def assignments(self) -> list[dict]:
+        """``[{label: value}]`` in the caller's vartype (readable; one dict per candidate)."""
+        return [dict(zip(self.problem.labels, row)) for row in self.values.tolist()]
 
 
 def as_problem(model: Any) -> Problem:
@@ -75,22 +108,13 @@ class FlipfixClient:
 
     @staticmethod
     def _candidates(problem: Problem, candidates: Any, ids: Sequence[str] | None = None
-                    ) -> list[pb.Candidate]:
-        if isinstance(candidates, CandidateSet):
-            cs = candidates
-        elif type(candidates).__name__ == "SampleSet":
-            cs = CandidateSet.from_sampleset(problem, candidates, ids=ids)
-            energies = list(candidates.record.energy)
-            out = []
-            for cid, a, e in zip(cs.ids, cs.assignments(problem), energies):
-                out.append(pb.Candidate(id=cid, assignment=convert.dict_to_assignment(a),
-                                        provenance=pb.Provenance(source="dimod.SampleSet",
-                                                                 reported_energy=float(e))))
-            return out
-        else:
-            return convert.doc_to_candidates(list(candidates), problem)
-        return [pb.Candidate(id=cid, assignment=convert.dict_to_assignment(a))
-                for cid, a in zip(cs.ids, cs.assignments(problem))]
+                    ) -> pb.CandidateBatch:
+        """A SampleSet, CandidateSet, numpy array (K, n) in the problem's vartype (columns in
+        label order) or candidates JSON list -> one packed CandidateBatch."""
+        if not isinstance(candidates, (CandidateSet, np.ndarray, pb.CandidateBatch)) and \
+                type(candidates).__name__ != "SampleSet":
+            candidates = list(candidates)
+        return convert.candidates_to_batch(problem, candidates, ids=ids)
 
     @staticmethod
     def _constraints(problem: Problem, constraints: Iterable[Any]) -> list[pb.Constraint]:
@@ -116,9 +140,13 @@ class FlipfixClient:
             name=name, model=m, expected_revision=expected_revision), timeout=self.timeout)
 
     def get_problem(self, name: str, revision: int = 0) -> tuple[pb.ProblemInfo, Problem]:
+        """(info, the model of ``revision``; 0: the current one)."""
+        return self._get_problem(name, revision)[::2]
+
+    def _get_problem(self, name: str, revision: int = 0) -> tuple[pb.ProblemInfo, int, Problem]:
         r = self.stub.GetProblem(pb.GetProblemRequest(name=name, revision=revision),
                                  timeout=self.timeout)
-        return r.info, convert.model_to_problem(r.model)
+        return r.info, int(r.revision), convert.model_to_problem(r.model)
 
     def list_problems(self) -> list[pb.ProblemInfo]:
         out, token = [], ""
@@ -136,20 +164,37 @@ class FlipfixClient:
     # ------------------------------------------------------------ candidates
     def add_candidates(self, name: str, candidates: Any, *, ids: Sequence[str] | None = None
                        ) -> list[str]:
-        """Add a dimod SampleSet, a CandidateSet or a candidates JSON list."""
-        _info, problem = self.get_problem(name)
-        protos = self._candidates(problem, candidates, ids)
-        return list(self.stub.AddCandidates(pb.AddCandidatesRequest(problem=name, candidates=protos),
-                                            timeout=self.timeout).ids)
+        """Add a dimod SampleSet, a CandidateSet, a numpy array (K, n) of values in the
+        problem's vartype (columns in label order; ``ids`` optional, else assigned) or a
+        candidates JSON list, packed for the current revision (FAILED_PRECONDITION if the
+        problem is replaced meanwhile)."""
+        _info, rev, problem = self._get_problem(name)
+        batch = self._candidates(problem, candidates, ids)
+        return list(self.stub.AddCandidates(pb.AddCandidatesRequest(
+            problem=name, candidates=batch, revision=rev), timeout=self.timeout).ids)
 
     def list_candidates(self, name: str, *, revision: int = 0, page_size: int = 0
-                        ) -> list[pb.Candidate]:
-        out, token = [], ""
+                        ) -> list[StoredCandidates]:
+        """Every stored candidate (of ``revision``; 0: of every revision), one
+        :class:`StoredCandidates` per run of candidates made for the same revision."""
+        out: list[StoredCandidates] = []
+        models: dict[int, Problem] = {}
+        token = ""
         while True:
             r = self.stub.ListCandidates(pb.ListCandidatesRequest(
                 problem=name, page_size=page_size, page_token=token, revision=revision),
                 timeout=self.timeout)
-            out.extend(r.candidates)
+            for batch in r.batches:
+                if batch.revision not in models:
+                    models[batch.revision] = self._get_problem(name, batch.revision)[2]
+                problem = models[batch.revision]
+                cs, provs = convert.batch_to_candidates(batch, problem)
+                if out and out[-1].revision == batch.revision:  # a run split by paging
+                    last = out.pop()
+                    cs = CandidateSet(last.ids + cs.ids, np.vstack([last.candidate_set().X, cs.X]))
+                    provs = last.provenance + provs
+                out.append(StoredCandidates(int(batch.revision), problem, cs.ids,
+                                            problem.to_caller(cs.X), provs))
             token = r.next_page_token
             if not token:
                 return out
@@ -162,29 +207,43 @@ class FlipfixClient:
     def repair_request(self, problem: str | Any, constraints: Iterable[Any] = (), *,
                        candidates: Any = None, candidate_ids: Sequence[str] = (),
                        all_revisions: bool = False, **options) -> pb.RepairRequest:
-        """Build a RepairRequest: a stored problem name, or a model plus ``candidates`` inline."""
+        """Build a RepairRequest: a stored problem name, or a model plus ``candidates`` inline
+        (any form :meth:`add_candidates` takes, packed in the model's label order)."""
+        return self._repair_request(problem, constraints, candidates=candidates,
+                                    candidate_ids=candidate_ids, all_revisions=all_revisions,
+                                    **options)[0]
+
+    def _repair_request(self, problem, constraints, *, candidates=None, candidate_ids=(),
+                        all_revisions=False, **options) -> tuple[pb.RepairRequest, Problem, int]:
+        """(request, the model its values refer to, its revision; 0: inline)."""
         if isinstance(problem, str):
-            _info, dom = self.get_problem(problem)
+            _info, rev, dom = self._get_problem(problem)
             req = pb.RepairRequest(problem=problem, candidate_ids=list(candidate_ids),
                                    all_revisions=all_revisions)
         else:
             if candidates is None:
                 raise ValueError("an inline repair needs candidates")
             m, dom = self._model(problem)
+            rev = 0
             req = pb.RepairRequest(inline=pb.InlineLibrary(
                 model=m, candidates=self._candidates(dom, candidates)))
         req.constraints.extend(self._constraints(dom, constraints))
         req.options.CopyFrom(convert.kwargs_to_options(**options))
-        return req
+        return req, dom, rev
+
+    def _reply_dict(self, reply: pb.RepairReply, problem: str | Any, dom: Problem, rev: int) -> dict:
+        if isinstance(problem, str) and reply.revision != rev:  # replaced meanwhile
+            dom = self._get_problem(problem, reply.revision)[2]
+        return convert.reply_to_dict(reply, dom)
 
     def repair(self, problem: str | Any, constraints: Iterable[Any] = (), *,
                timeout: float | None = None,
                on_progress: Callable[[pb.RepairProgress], None] | None = None, **kwargs) -> dict:
         """Repair and return the result dict; ``on_progress`` switches to the streaming RPC."""
-        req = self.repair_request(problem, constraints, **kwargs)
+        req, dom, rev = self._repair_request(problem, constraints, **kwargs)
         timeout = timeout if timeout is not None else self.timeout
         if on_progress is None:
-            return convert.reply_to_dict(self.stub.Repair(req, timeout=timeout))
+            return self._reply_dict(self.stub.Repair(req, timeout=timeout), problem, dom, rev)
         reply = None
         for ev in self.stub.RepairStream(req, timeout=timeout):
             if ev.HasField("progress"):
@@ -193,7 +252,7 @@ class FlipfixClient:
                 reply = ev.result
         if reply is None:
             raise RuntimeError("the stream ended without a result")
-        return convert.reply_to_dict(reply)
+        return self._reply_dict(reply, problem, dom, rev)
 
     # ----------------------------------------------------------------- audit
     @staticmethod

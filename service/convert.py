@@ -25,13 +25,16 @@ from repair.errors import InputError, LimitError
 from repair.model import Decision, Problem
 from repair.result import RepairResult
 
+from . import packing
 from .generated import flipfix_pb2 as pb
 
 __all__ = [
-    "label_to_py", "py_to_label", "decision_to_domain", "decision_to_proto", "model_to_problem", "problem_to_model", "doc_to_model",
-    "candidates_to_arrays", "record_to_candidate", "doc_to_candidates", "constraint_to_domain",
+    "label_to_py", "py_to_label", "decision_to_domain", "decision_to_proto", "model_to_problem",
+    "problem_to_model", "caller_terms", "doc_to_model",
+    "array_to_packed", "packed_to_array", "batch_to_arrays", "arrays_to_batch", "records_to_batches",
+    "batch_to_candidates", "candidates_to_batch", "constraint_to_domain",
     "constraints_to_domain", "doc_to_constraint", "constraint_to_proto", "options_to_kwargs", "result_to_reply",
-    "reply_to_dict", "METHOD_NAMES", "Limits",
+    "reply_values", "reply_to_dict", "METHOD_NAMES", "Limits",
     "family_to_domain", "family_to_proto", "stress_to_kwargs", "pareto_to_kwargs",
     "robustness_to_reply", "stress_to_reply", "pareto_to_reply", "curation_to_reply",
     "reply_to_robustness", "reply_to_stress", "reply_to_point", "reply_to_curation",
@@ -159,6 +162,8 @@ def model_to_problem(model: pb.ProblemModel, *, field: str = "model",
     """A ProblemModel -> validated :class:`Problem`."""
     if model.vartype not in _VARTYPE_NAMES:
         raise InputError(field + ".vartype", "must be BINARY or SPIN")
+    if model.HasField("indexed"):
+        return _indexed_to_problem(model, field=field, limits=limits)
     lin = [(label_to_py(t.label, f"{field}.linear[{k}].label"),
             _finite(t.bias, f"{field}.linear[{k}].bias")) for k, t in enumerate(model.linear)]
     quad = [(label_to_py(t.u, f"{field}.quadratic[{k}].u"), label_to_py(t.v, f"{field}.quadratic[{k}].v"),
@@ -173,18 +178,50 @@ def model_to_problem(model: pb.ProblemModel, *, field: str = "model",
                               decisions=decisions, field_prefix=field + ".")
 
 
+def _indexed_to_problem(model: pb.ProblemModel, *, field: str, limits: Limits) -> Problem:
+    """A ProblemModel with ``indexed`` terms -> Problem (numpy, no per-term Python)."""
+    if len(model.linear) or len(model.quadratic):
+        raise InputError(field + ".indexed", "give the terms either label-keyed (linear, "
+                                             "quadratic) or indexed, not both")
+    if not len(model.labels):
+        raise InputError(field + ".labels", "must be set with indexed terms (they refer to it)")
+    limits.variables(len(model.labels), field)
+    labels = [label_to_py(lab, f"{field}.labels[{k}]") for k, lab in enumerate(model.labels)]
+    decisions = tuple(decision_to_domain(d, f"{field}.decisions[{k}]")
+                      for k, d in enumerate(model.decisions))
+    t = model.indexed
+    f = "indexed."
+    return Problem.from_arrays(
+        labels, np.asarray(t.linear, dtype=np.float64), np.asarray(t.u, dtype=np.int64),
+        np.asarray(t.v, dtype=np.int64), np.asarray(t.bias, dtype=np.float64),
+        offset=_finite(model.offset, field + ".offset"), vartype=_VARTYPE_NAMES[model.vartype],
+        decisions=decisions, field_prefix=field + ".",
+        fields=(f + "linear", f + "u", f + "v", f + "bias"))
+
+
+def caller_terms(problem: Problem) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, float]:
+    """The model's terms in the caller's vartype: (linear float64 (n,), u, v int64 (m,),
+    bias float64 (m,), offset), one term per coupled pair (u < v)."""
+    i, j, J = problem.pairs()
+    h, off = problem.linear.astype(np.float64), float(problem.offset)
+    if problem.vartype == "SPIN":  # x = (s + 1) / 2, exactly the inverse of the core's s = 2x - 1
+        J = J / 4.0
+        hs = h / 2.0
+        np.add.at(hs, i, J)
+        np.add.at(hs, j, J)
+        off = off + float(h.sum()) / 2.0 + float(J.sum())
+        h = hs
+    return h, i, j, J, off
+
+
 def problem_to_model(problem: Problem) -> pb.ProblemModel:
-    """A :class:`Problem` -> ProblemModel in the caller's vartype, labels in order."""
-    bqm = problem.to_bqm()
+    """A :class:`Problem` -> ProblemModel in the caller's vartype, labels in order, terms
+    indexed (packed arrays)."""
+    h, i, j, J, off = caller_terms(problem)
     m = pb.ProblemModel(
-        vartype=pb.SPIN if problem.vartype == "SPIN" else pb.BINARY,
-        linear=[pb.LinearTerm(label=py_to_label(lab), bias=float(bqm.get_linear(lab)))
-                for lab in problem.labels],
-        quadratic=[pb.QuadraticTerm(u=py_to_label(u), v=py_to_label(v), bias=float(b))
-                   for (u, v), b in bqm.quadratic.items()],
-        offset=float(bqm.offset),
+        vartype=pb.SPIN if problem.vartype == "SPIN" else pb.BINARY, offset=off,
         labels=[py_to_label(lab) for lab in problem.labels],
-    )
+        indexed=pb.IndexedTerms(linear=h.tolist(), u=i.tolist(), v=j.tolist(), bias=J.tolist()))
     m.decisions.extend(decision_to_proto(d) for d in problem.decisions)
     return m
 
@@ -205,48 +242,129 @@ def doc_to_model(doc: Any, *, field: str = "problem") -> pb.ProblemModel:
 
 
 # --------------------------------------------------------------- candidates
-def candidates_to_arrays(problem: Problem, candidates: Sequence[pb.Candidate], *,
-                         field: str = "candidates", limits: Limits = NO_LIMITS
-                         ) -> tuple[list[str], np.ndarray, list[dict]]:
-    """Candidate protos -> (ids ('' = assign one), X int8 (K, n) 0/1, provenance dicts)."""
-    limits.candidates(len(candidates), field)
-    if not candidates:
-        raise InputError(field, "is empty: at least one candidate is needed")
-    items, provs = [], []
-    for k, c in enumerate(candidates):
-        f = f"{field}[{k}]"
-        items.append({"id": c.id or f"__unnamed{k}",
-                      "assignment": assignment_to_dict(c.assignment, f + ".assignment")})
-        p = c.provenance
-        energy = p.reported_energy if p.HasField("reported_energy") else None
-        if energy is not None:
-            _finite(energy, f + ".provenance.reported_energy")
-        provs.append({"source": p.source, "energy": energy, "tags": list(p.tags)})
-    cs = CandidateSet.from_mappings(problem, items, field_name=field)
-    ids = [c.id for c in candidates]
-    return ids, cs.X, provs
+def array_to_packed(X: np.ndarray) -> pb.PackedAssignments:
+    """int8 (K, n) or (n,) 0/1 -> PackedAssignments (see the proto for the layout)."""
+    X = np.asarray(X)
+    if X.ndim == 1:
+        X = X[None, :]
+    return pb.PackedAssignments(count=X.shape[0], num_variables=X.shape[1],
+                                bits=packing.pack_rows(X))
 
 
-def record_to_candidate(rec) -> pb.Candidate:
-    """A stored :class:`service.store.CandidateRecord` -> Candidate (caller's vartype)."""
-    vals = (2 * rec.x.astype(np.int64) - 1) if rec.vartype == "SPIN" else rec.x
-    prov = pb.Provenance(source=rec.source, tags=list(rec.tags))
-    if rec.energy is not None:
-        prov.reported_energy = rec.energy
-    return pb.Candidate(id=rec.id, revision=rec.revision, provenance=prov,
-                        assignment=dict_to_assignment(dict(zip(rec.labels, map(int, vals)))))
+def packed_to_array(msg: pb.PackedAssignments, n: int, *, field: str,
+                    count: int | None = None) -> np.ndarray:
+    """PackedAssignments -> int8 (count, n) 0/1, checked against the problem's ``n``
+    (and the expected ``count``); errors name ``field.num_variables``, ``.count``, ``.bits``."""
+    if msg.num_variables != n:
+        raise InputError(field + ".num_variables",
+                         f"is {msg.num_variables}; the problem has {n} variables")
+    if count is not None and msg.count != count:
+        raise InputError(field + ".count", f"is {msg.count}; expected {count}")
+    return packing.unpack_rows(msg.bits, int(msg.count), n, field=field)
 
 
-def doc_to_candidates(doc: Any, problem: Problem, *, field: str = "candidates") -> list[pb.Candidate]:
-    """A candidates JSON document -> Candidate protos (labels resolved against ``problem``)."""
-    out = []
-    for rec in documents.parse_candidate_records(doc, problem, field=field):
-        prov = pb.Provenance(source=rec["source"], tags=rec["tags"])
-        if rec["energy"] is not None:
-            prov.reported_energy = rec["energy"]
-        out.append(pb.Candidate(id=str(rec["id"]), assignment=dict_to_assignment(rec["assignment"]),
-                                provenance=prov))
+def _provenance(p: pb.Provenance, field: str) -> dict:
+    energy = p.reported_energy if p.HasField("reported_energy") else None
+    if energy is not None:
+        _finite(energy, field + ".reported_energy")
+    return {"source": p.source, "energy": energy, "tags": list(p.tags)}
+
+
+def batch_to_arrays(problem: Problem, batch: pb.CandidateBatch, *, field: str = "candidates",
+                    limits: Limits = NO_LIMITS) -> tuple[list[str], np.ndarray, list[dict]]:
+    """CandidateBatch -> (ids ('' = assign one), X int8 (K, n) 0/1 in ``problem.labels``
+    order, K provenance dicts). Non-empty ids must be distinct."""
+    ids = list(batch.ids)
+    K = len(ids)
+    limits.candidates(K, field)
+    if K == 0:
+        raise InputError(field + ".ids", "is empty: at least one candidate is needed")
+    seen: set = set()
+    for k, cid in enumerate(ids):
+        if cid:
+            if cid in seen:
+                raise InputError(f"{field}.ids[{k}]", f"duplicate candidate id {cid!r}")
+            seen.add(cid)
+    X = packed_to_array(batch.values, problem.n, field=field + ".values", count=K)
+    if len(batch.provenance) not in (0, K):
+        raise InputError(field + ".provenance",
+                         f"has {len(batch.provenance)} entries for {K} candidates (give 0 or {K})")
+    provs = ([_provenance(p, f"{field}.provenance[{k}]") for k, p in enumerate(batch.provenance)]
+             or [{"source": "", "energy": None, "tags": []} for _ in range(K)])
+    return ids, X, provs
+
+
+def _provenance_proto(prov: Mapping) -> pb.Provenance:
+    p = pb.Provenance(source=prov.get("source") or "", tags=list(prov.get("tags") or ()))
+    if prov.get("energy") is not None:
+        p.reported_energy = float(prov["energy"])
+    return p
+
+
+def arrays_to_batch(ids: Sequence[str], X: np.ndarray, provenance: Sequence[Mapping] = (), *,
+                    revision: int = 0) -> pb.CandidateBatch:
+    """(K ids, X int8 (K, n) 0/1, 0 or K provenance dicts) -> CandidateBatch."""
+    out = pb.CandidateBatch(ids=[str(i) for i in ids], values=array_to_packed(X),
+                            revision=int(revision))
+    if any(p.get("source") or p.get("energy") is not None or p.get("tags") for p in provenance):
+        out.provenance.extend(_provenance_proto(p) for p in provenance)
     return out
+
+
+def records_to_batches(recs: Sequence) -> list[pb.CandidateBatch]:
+    """Stored :class:`service.store.CandidateRecord` s -> one batch per run of one revision."""
+    out: list[pb.CandidateBatch] = []
+    start = 0
+    for k in range(1, len(recs) + 1):
+        if k == len(recs) or recs[k].revision != recs[start].revision:
+            run = recs[start:k]
+            n = len(run[0].labels)
+            batch = pb.CandidateBatch(
+                ids=[r.id for r in run], revision=int(run[0].revision),
+                values=pb.PackedAssignments(count=len(run), num_variables=n,
+                                            bits=b"".join(r.bits for r in run)))
+            provs = [{"source": r.source, "energy": r.energy, "tags": r.tags} for r in run]
+            if any(p["source"] or p["energy"] is not None or p["tags"] for p in provs):
+                batch.provenance.extend(_provenance_proto(p) for p in provs)
+            out.append(batch)
+            start = k
+    return out
+
+
+def batch_to_candidates(batch: pb.CandidateBatch, problem: Problem, *,
+                        field: str = "candidates") -> tuple[CandidateSet, list[dict]]:
+    """A CandidateBatch (client side: ListCandidates) -> (CandidateSet, K provenance dicts);
+    ``problem`` is the model of the batch's revision."""
+    ids, X, provs = batch_to_arrays(problem, batch, field=field)
+    return CandidateSet(CandidateSet._check_ids(ids, len(ids), field + ".ids"), X), provs
+
+
+def candidates_to_batch(problem: Problem, candidates: Any, *, ids: Sequence[str] | None = None,
+                        field: str = "candidates") -> pb.CandidateBatch:
+    """Candidates in any form the client takes -> CandidateBatch in ``problem.labels`` order.
+
+    ``candidates``: a :class:`CandidateSet`, a ``dimod.SampleSet`` (its energies become
+    provenance), a numpy array (K, n) of values in the problem's vartype (columns in label
+    order) or a candidates JSON document (list of objects). Without ``ids``, arrays and
+    sample sets go with empty ids: the server assigns them (stored: ``c<N>``, inline: ``c<k>``).
+    """
+    if isinstance(candidates, pb.CandidateBatch):
+        return candidates
+    if isinstance(candidates, CandidateSet):
+        return arrays_to_batch(candidates.ids, candidates.X)
+    if type(candidates).__name__ == "SampleSet":
+        cs = CandidateSet.from_sampleset(problem, candidates, ids=ids, field_name=field)
+        energies = np.asarray(candidates.record.energy, dtype=np.float64)
+        return arrays_to_batch(cs.ids if ids is not None else [""] * len(cs), cs.X,
+                               [{"source": "dimod.SampleSet", "energy": float(e)}
+                                for e in energies])
+    if isinstance(candidates, np.ndarray):
+        cs = CandidateSet.from_array(problem, candidates, ids=ids, field_name=field)
+        return arrays_to_batch(cs.ids if ids is not None else [""] * len(cs), cs.X)
+    recs = documents.parse_candidate_records(candidates, problem, field=field)
+    cs = CandidateSet.from_mappings(
+        problem, [{"id": r["id"], "assignment": r["assignment"]} for r in recs], field_name=field)
+    return arrays_to_batch(cs.ids, cs.X, recs)
 
 
 # -------------------------------------------------------------- constraints
@@ -456,7 +574,8 @@ def result_to_reply(res: RepairResult, *, audit_limit: int | None = None,
                     time_limit: float = 0.0, revision: int = 0) -> pb.RepairReply:
     b = res.best
     best = pb.Solution(
-        candidate_id=b.candidate_id, assignment=dict_to_assignment(b.assignment),
+        candidate_id=b.candidate_id, repaired_from=b.repaired_from,
+        values=array_to_packed(np.asarray(b.x, dtype=np.int8)),
         cost=float(b.cost), objective=float(b.objective), base_energy=float(b.base_energy),
         penalties=_named(b.penalties), flips=int(b.flips), feasible=bool(b.feasible),
         violation=float(b.violation), violations=_named(b.violations), method=b.method,
@@ -481,24 +600,36 @@ def result_to_reply(res: RepairResult, *, audit_limit: int | None = None,
         scaling_error=float(res.scaling_error), cpsat_status=res.cpsat_status, revision=revision)
 
 
-def reply_to_dict(r: pb.RepairReply) -> dict:
-    """A RepairReply -> the same layout as :meth:`RepairResult.to_dict` (the CLI's JSON)."""
+def reply_values(r: pb.RepairReply, problem: Problem) -> np.ndarray:
+    """The best answer of a reply as int8 (n,) in 0/1 form, ``problem.labels`` order
+    (``problem``: the model repaired, i.e. of revision ``r.revision`` or the inline one)."""
+    return packed_to_array(r.best.values, problem.n, field="best.values", count=1)[0]
+
+
+def reply_to_dict(r: pb.RepairReply, problem: Problem | None = None) -> dict:
+    """A RepairReply -> the same layout as :meth:`RepairResult.to_dict` (the CLI's JSON).
+
+    ``problem`` (the model repaired) gives the labels and vartype of ``best.assignment``;
+    without it the reply has no ``assignment`` (the packed values need the label order).
+    """
     b = r.best
+    best = {
+        "candidate_id": b.candidate_id, "repaired_from": b.repaired_from, "cost": b.cost,
+        "objective": b.objective, "base_energy": b.base_energy,
+        "penalties": {p.name: p.value for p in b.penalties}, "flips": int(b.flips),
+        "feasible": bool(b.feasible), "violation": b.violation,
+        "violations": {p.name: p.value for p in b.violations}, "method": b.method,
+    }
+    if problem is not None:
+        vals = problem.to_caller(reply_values(r, problem))
+        best["assignment"] = dict(zip(problem.labels, vals.tolist()))
+    best["changes"] = [{"decision": c.decision, "old": json.loads(c.old_value),
+                        "new": json.loads(c.new_value)} for c in b.changes]
+    best["decisions_changed"] = int(b.decisions_changed)
     return {
         "status": r.status, "message": r.message, "method": r.method, "seed": int(r.seed),
         "seconds": round(r.seconds, 6), "scaling_error": r.scaling_error,
-        "cpsat_status": r.cpsat_status,
-        "best": {
-            "candidate_id": b.candidate_id, "cost": b.cost, "objective": b.objective,
-            "base_energy": b.base_energy, "penalties": {p.name: p.value for p in b.penalties},
-            "flips": int(b.flips), "feasible": bool(b.feasible), "violation": b.violation,
-            "violations": {p.name: p.value for p in b.violations}, "method": b.method,
-            "assignment": {label_to_py(v.label, "best.assignment"): int(v.value)
-                           for v in b.assignment.values},
-            "changes": [{"decision": c.decision, "old": json.loads(c.old_value),
-                         "new": json.loads(c.new_value)} for c in b.changes],
-            "decisions_changed": int(b.decisions_changed),
-        },
+        "cpsat_status": r.cpsat_status, "best": best,
         "audit": [
             {"candidate_id": a.candidate_id, "cost_before": a.cost_before,
              "feasible_before": bool(a.feasible_before), "cost": a.cost, "objective": a.objective,

@@ -38,7 +38,7 @@ from repair.candidates import CandidateSet
 from repair.errors import InputError
 
 from . import audit_jobs, convert
-from .errors import NotFoundError, TransientError, translate_errors
+from .errors import ConflictError, NotFoundError, TransientError, translate_errors
 from .generated import flipfix_pb2 as pb
 from .generated import flipfix_pb2_grpc as pb_grpc
 from .store import Store
@@ -133,8 +133,10 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
     @translate_errors
     def AddCandidates(self, request, context):
         _info, rev, problem = self.store.get_problem(request.problem)
-        ids, X, provs = convert.candidates_to_arrays(problem, request.candidates,
-                                                     limits=self.limits)
+        if request.revision and request.revision != rev:
+            raise ConflictError("revision", f"problem {request.problem!r} is at revision {rev}, "
+                                            f"not {request.revision}")
+        ids, X, provs = convert.batch_to_arrays(problem, request.candidates, limits=self.limits)
         out = self.store.add_candidates(request.problem, rev, ids, X, provs)
         return pb.AddCandidatesReply(ids=out, revision=rev)
 
@@ -143,7 +145,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         recs, token = self.store.list_candidates(request.problem, page_size=request.page_size,
                                                  page_token=request.page_token,
                                                  revision=request.revision)
-        return pb.ListCandidatesReply(candidates=[convert.record_to_candidate(r) for r in recs],
+        return pb.ListCandidatesReply(batches=convert.records_to_batches(recs),
                                       next_page_token=token)
 
     @translate_errors
@@ -162,11 +164,11 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         if which == "inline":
             problem = convert.model_to_problem(request.inline.model, field="inline.model",
                                                limits=self.limits)
-            ids, X, _ = convert.candidates_to_arrays(problem, request.inline.candidates,
-                                                     field="inline.candidates", limits=self.limits)
+            ids, X, _ = convert.batch_to_arrays(problem, request.inline.candidates,
+                                                field="inline.candidates", limits=self.limits)
             ids = [cid or f"c{k}" for k, cid in enumerate(ids)]
             return 0, problem, CandidateSet(CandidateSet._check_ids(ids, len(ids),
-                                                                    "inline.candidates"), X)
+                                                                    "inline.candidates.ids"), X)
         from repair.errors import InputError
         raise InputError("library", "set problem (a stored problem) or inline")
 

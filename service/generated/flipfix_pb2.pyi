@@ -128,21 +128,45 @@ class Assignment(_message.Message):
     values: _containers.RepeatedCompositeFieldContainer[VariableValue]
     def __init__(self, values: _Optional[_Iterable[_Union[VariableValue, _Mapping]]] = ...) -> None: ...
 
+class PackedAssignments(_message.Message):
+    __slots__ = ("count", "num_variables", "bits")
+    COUNT_FIELD_NUMBER: _ClassVar[int]
+    NUM_VARIABLES_FIELD_NUMBER: _ClassVar[int]
+    BITS_FIELD_NUMBER: _ClassVar[int]
+    count: int
+    num_variables: int
+    bits: bytes
+    def __init__(self, count: _Optional[int] = ..., num_variables: _Optional[int] = ..., bits: _Optional[bytes] = ...) -> None: ...
+
+class IndexedTerms(_message.Message):
+    __slots__ = ("linear", "u", "v", "bias")
+    LINEAR_FIELD_NUMBER: _ClassVar[int]
+    U_FIELD_NUMBER: _ClassVar[int]
+    V_FIELD_NUMBER: _ClassVar[int]
+    BIAS_FIELD_NUMBER: _ClassVar[int]
+    linear: _containers.RepeatedScalarFieldContainer[float]
+    u: _containers.RepeatedScalarFieldContainer[int]
+    v: _containers.RepeatedScalarFieldContainer[int]
+    bias: _containers.RepeatedScalarFieldContainer[float]
+    def __init__(self, linear: _Optional[_Iterable[float]] = ..., u: _Optional[_Iterable[int]] = ..., v: _Optional[_Iterable[int]] = ..., bias: _Optional[_Iterable[float]] = ...) -> None: ...
+
 class ProblemModel(_message.Message):
-    __slots__ = ("vartype", "linear", "quadratic", "offset", "labels", "decisions")
+    __slots__ = ("vartype", "linear", "quadratic", "offset", "labels", "indexed", "decisions")
     VARTYPE_FIELD_NUMBER: _ClassVar[int]
     LINEAR_FIELD_NUMBER: _ClassVar[int]
     QUADRATIC_FIELD_NUMBER: _ClassVar[int]
     OFFSET_FIELD_NUMBER: _ClassVar[int]
     LABELS_FIELD_NUMBER: _ClassVar[int]
+    INDEXED_FIELD_NUMBER: _ClassVar[int]
     DECISIONS_FIELD_NUMBER: _ClassVar[int]
     vartype: Vartype
     linear: _containers.RepeatedCompositeFieldContainer[LinearTerm]
     quadratic: _containers.RepeatedCompositeFieldContainer[QuadraticTerm]
     offset: float
     labels: _containers.RepeatedCompositeFieldContainer[Label]
+    indexed: IndexedTerms
     decisions: _containers.RepeatedCompositeFieldContainer[Decision]
-    def __init__(self, vartype: _Optional[_Union[Vartype, str]] = ..., linear: _Optional[_Iterable[_Union[LinearTerm, _Mapping]]] = ..., quadratic: _Optional[_Iterable[_Union[QuadraticTerm, _Mapping]]] = ..., offset: _Optional[float] = ..., labels: _Optional[_Iterable[_Union[Label, _Mapping]]] = ..., decisions: _Optional[_Iterable[_Union[Decision, _Mapping]]] = ...) -> None: ...
+    def __init__(self, vartype: _Optional[_Union[Vartype, str]] = ..., linear: _Optional[_Iterable[_Union[LinearTerm, _Mapping]]] = ..., quadratic: _Optional[_Iterable[_Union[QuadraticTerm, _Mapping]]] = ..., offset: _Optional[float] = ..., labels: _Optional[_Iterable[_Union[Label, _Mapping]]] = ..., indexed: _Optional[_Union[IndexedTerms, _Mapping]] = ..., decisions: _Optional[_Iterable[_Union[Decision, _Mapping]]] = ...) -> None: ...
 
 class Decision(_message.Message):
     __slots__ = ("name", "encoding", "variables", "values")
@@ -248,25 +272,27 @@ class Provenance(_message.Message):
     tags: _containers.RepeatedScalarFieldContainer[str]
     def __init__(self, source: _Optional[str] = ..., reported_energy: _Optional[float] = ..., tags: _Optional[_Iterable[str]] = ...) -> None: ...
 
-class Candidate(_message.Message):
-    __slots__ = ("id", "assignment", "provenance", "revision")
-    ID_FIELD_NUMBER: _ClassVar[int]
-    ASSIGNMENT_FIELD_NUMBER: _ClassVar[int]
+class CandidateBatch(_message.Message):
+    __slots__ = ("ids", "values", "provenance", "revision")
+    IDS_FIELD_NUMBER: _ClassVar[int]
+    VALUES_FIELD_NUMBER: _ClassVar[int]
     PROVENANCE_FIELD_NUMBER: _ClassVar[int]
     REVISION_FIELD_NUMBER: _ClassVar[int]
-    id: str
-    assignment: Assignment
-    provenance: Provenance
+    ids: _containers.RepeatedScalarFieldContainer[str]
+    values: PackedAssignments
+    provenance: _containers.RepeatedCompositeFieldContainer[Provenance]
     revision: int
-    def __init__(self, id: _Optional[str] = ..., assignment: _Optional[_Union[Assignment, _Mapping]] = ..., provenance: _Optional[_Union[Provenance, _Mapping]] = ..., revision: _Optional[int] = ...) -> None: ...
+    def __init__(self, ids: _Optional[_Iterable[str]] = ..., values: _Optional[_Union[PackedAssignments, _Mapping]] = ..., provenance: _Optional[_Iterable[_Union[Provenance, _Mapping]]] = ..., revision: _Optional[int] = ...) -> None: ...
 
 class AddCandidatesRequest(_message.Message):
-    __slots__ = ("problem", "candidates")
+    __slots__ = ("problem", "candidates", "revision")
     PROBLEM_FIELD_NUMBER: _ClassVar[int]
     CANDIDATES_FIELD_NUMBER: _ClassVar[int]
+    REVISION_FIELD_NUMBER: _ClassVar[int]
     problem: str
-    candidates: _containers.RepeatedCompositeFieldContainer[Candidate]
-    def __init__(self, problem: _Optional[str] = ..., candidates: _Optional[_Iterable[_Union[Candidate, _Mapping]]] = ...) -> None: ...
+    candidates: CandidateBatch
+    revision: int
+    def __init__(self, problem: _Optional[str] = ..., candidates: _Optional[_Union[CandidateBatch, _Mapping]] = ..., revision: _Optional[int] = ...) -> None: ...
 
 class AddCandidatesReply(_message.Message):
     __slots__ = ("ids", "revision")
@@ -289,12 +315,12 @@ class ListCandidatesRequest(_message.Message):
     def __init__(self, problem: _Optional[str] = ..., page_size: _Optional[int] = ..., page_token: _Optional[str] = ..., revision: _Optional[int] = ...) -> None: ...
 
 class ListCandidatesReply(_message.Message):
-    __slots__ = ("candidates", "next_page_token")
-    CANDIDATES_FIELD_NUMBER: _ClassVar[int]
+    __slots__ = ("batches", "next_page_token")
+    BATCHES_FIELD_NUMBER: _ClassVar[int]
     NEXT_PAGE_TOKEN_FIELD_NUMBER: _ClassVar[int]
-    candidates: _containers.RepeatedCompositeFieldContainer[Candidate]
+    batches: _containers.RepeatedCompositeFieldContainer[CandidateBatch]
     next_page_token: str
-    def __init__(self, candidates: _Optional[_Iterable[_Union[Candidate, _Mapping]]] = ..., next_page_token: _Optional[str] = ...) -> None: ...
+    def __init__(self, batches: _Optional[_Iterable[_Union[CandidateBatch, _Mapping]]] = ..., next_page_token: _Optional[str] = ...) -> None: ...
 
 class RemoveCandidatesRequest(_message.Message):
     __slots__ = ("problem", "ids")
@@ -467,8 +493,8 @@ class InlineLibrary(_message.Message):
     MODEL_FIELD_NUMBER: _ClassVar[int]
     CANDIDATES_FIELD_NUMBER: _ClassVar[int]
     model: ProblemModel
-    candidates: _containers.RepeatedCompositeFieldContainer[Candidate]
-    def __init__(self, model: _Optional[_Union[ProblemModel, _Mapping]] = ..., candidates: _Optional[_Iterable[_Union[Candidate, _Mapping]]] = ...) -> None: ...
+    candidates: CandidateBatch
+    def __init__(self, model: _Optional[_Union[ProblemModel, _Mapping]] = ..., candidates: _Optional[_Union[CandidateBatch, _Mapping]] = ...) -> None: ...
 
 class RepairRequest(_message.Message):
     __slots__ = ("problem", "inline", "candidate_ids", "all_revisions", "constraints", "options")
@@ -505,9 +531,10 @@ class DecisionChange(_message.Message):
     def __init__(self, decision: _Optional[str] = ..., old_value: _Optional[str] = ..., new_value: _Optional[str] = ...) -> None: ...
 
 class Solution(_message.Message):
-    __slots__ = ("candidate_id", "assignment", "cost", "objective", "base_energy", "penalties", "flips", "feasible", "violation", "violations", "method", "changes", "decisions_changed")
+    __slots__ = ("candidate_id", "values", "repaired_from", "cost", "objective", "base_energy", "penalties", "flips", "feasible", "violation", "violations", "method", "changes", "decisions_changed")
     CANDIDATE_ID_FIELD_NUMBER: _ClassVar[int]
-    ASSIGNMENT_FIELD_NUMBER: _ClassVar[int]
+    VALUES_FIELD_NUMBER: _ClassVar[int]
+    REPAIRED_FROM_FIELD_NUMBER: _ClassVar[int]
     COST_FIELD_NUMBER: _ClassVar[int]
     OBJECTIVE_FIELD_NUMBER: _ClassVar[int]
     BASE_ENERGY_FIELD_NUMBER: _ClassVar[int]
@@ -520,7 +547,8 @@ class Solution(_message.Message):
     CHANGES_FIELD_NUMBER: _ClassVar[int]
     DECISIONS_CHANGED_FIELD_NUMBER: _ClassVar[int]
     candidate_id: str
-    assignment: Assignment
+    values: PackedAssignments
+    repaired_from: str
     cost: float
     objective: float
     base_energy: float
@@ -532,7 +560,7 @@ class Solution(_message.Message):
     method: str
     changes: _containers.RepeatedCompositeFieldContainer[DecisionChange]
     decisions_changed: int
-    def __init__(self, candidate_id: _Optional[str] = ..., assignment: _Optional[_Union[Assignment, _Mapping]] = ..., cost: _Optional[float] = ..., objective: _Optional[float] = ..., base_energy: _Optional[float] = ..., penalties: _Optional[_Iterable[_Union[NamedValue, _Mapping]]] = ..., flips: _Optional[int] = ..., feasible: _Optional[bool] = ..., violation: _Optional[float] = ..., violations: _Optional[_Iterable[_Union[NamedValue, _Mapping]]] = ..., method: _Optional[str] = ..., changes: _Optional[_Iterable[_Union[DecisionChange, _Mapping]]] = ..., decisions_changed: _Optional[int] = ...) -> None: ...
+    def __init__(self, candidate_id: _Optional[str] = ..., values: _Optional[_Union[PackedAssignments, _Mapping]] = ..., repaired_from: _Optional[str] = ..., cost: _Optional[float] = ..., objective: _Optional[float] = ..., base_energy: _Optional[float] = ..., penalties: _Optional[_Iterable[_Union[NamedValue, _Mapping]]] = ..., flips: _Optional[int] = ..., feasible: _Optional[bool] = ..., violation: _Optional[float] = ..., violations: _Optional[_Iterable[_Union[NamedValue, _Mapping]]] = ..., method: _Optional[str] = ..., changes: _Optional[_Iterable[_Union[DecisionChange, _Mapping]]] = ..., decisions_changed: _Optional[int] = ...) -> None: ...
 
 class AuditRow(_message.Message):
     __slots__ = ("candidate_id", "cost_before", "feasible_before", "cost", "objective", "flips", "feasible", "violation", "method", "seconds", "decisions_changed", "encoding_issues")
