@@ -3,11 +3,14 @@
 * WAL journal, ``synchronous=FULL``: a write is on disk before it is acknowledged.
 * Every public write is one transaction (``BEGIN IMMEDIATE`` ... ``COMMIT``):
   a request that fails validation half-way stores nothing.
-* ``schema_version`` holds the schema number; opening a newer database fails.
+* ``schema_version`` holds the schema number; opening a newer database fails,
+  an older one is migrated in one transaction (see :data:`SCHEMA_HISTORY`).
 
 Models are stored exactly, in 0/1 form (labels in order, linear biases, upper
-couplings, offset) with the caller's vartype; candidates as a string of 0/1 bits
-in the label order of the revision they were made for.
+couplings, offset) with the caller's vartype; candidates as packed bits, one BLOB
+per candidate in the label order of the revision they were made for, in the
+layout of the proto's ``PackedAssignments`` row (:mod:`service.packing`): the
+server answers ListCandidates by joining the stored blobs.
 """
 
 from __future__ import annotations
@@ -27,11 +30,19 @@ from repair.candidates import CandidateSet
 from repair.errors import InputError
 from repair.model import Decision, Problem
 
+from . import packing
 from .errors import AlreadyExistsError, ConflictError, NotFoundError
 
-__all__ = ["Store", "ProblemRecord", "CandidateRecord", "SCHEMA_VERSION"]
+__all__ = ["Store", "ProblemRecord", "CandidateRecord", "SCHEMA_VERSION", "SCHEMA_HISTORY"]
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
+
+#: What each schema version changed (a database of an older version is migrated on open).
+SCHEMA_HISTORY = {
+    1: "candidates.bits TEXT: one '0'/'1' character per variable",
+    2: "candidates.bits BLOB: packed bits, ceil(n / 8) bytes per candidate (numpy.packbits "
+       "order, most significant bit first; the unused low bits of the last byte 0)",
+}
 
 _SCHEMA = """
 CREATE TABLE IF NOT EXISTS schema_version (version INTEGER NOT NULL);
@@ -51,20 +62,31 @@ CREATE TABLE IF NOT EXISTS revisions (
     created_at TEXT NOT NULL,
     PRIMARY KEY (problem, revision)
 );
-CREATE TABLE IF NOT EXISTS candidates (
+"""
+#: the candidates table and its index (also run alone by the schema-1 migration)
+_CANDIDATES_DDL = (
+    """CREATE TABLE IF NOT EXISTS candidates (
     seq INTEGER PRIMARY KEY AUTOINCREMENT,
     problem TEXT NOT NULL REFERENCES problems(name) ON DELETE CASCADE,
     id TEXT NOT NULL,
     revision INTEGER NOT NULL,
-    bits TEXT NOT NULL,
+    bits BLOB NOT NULL,
     source TEXT NOT NULL DEFAULT '',
     energy REAL,
     tags TEXT NOT NULL DEFAULT '[]',
     created_at TEXT NOT NULL,
     UNIQUE (problem, id)
-);
-CREATE INDEX IF NOT EXISTS candidates_by_problem ON candidates(problem, seq);
-"""
+)""",
+    "CREATE INDEX IF NOT EXISTS candidates_by_problem ON candidates(problem, seq)",
+)
+_SCHEMA += "".join(stmt + ";\n" for stmt in _CANDIDATES_DDL)
+_CANDIDATE_COLUMNS = "seq, problem, id, revision, bits, source, energy, tags, created_at"
+
+
+def _text_to_blob(text: str) -> bytes:
+    """A schema-1 candidate ('0'/'1' characters) -> its packed schema-2 blob."""
+    x = np.frombuffer(text.encode("ascii"), dtype=np.uint8) - ord("0")
+    return packing.pack_rows(x)
 
 
 def _now() -> str:
@@ -84,16 +106,21 @@ class ProblemRecord:
 
 @dataclass(frozen=True)
 class CandidateRecord:
-    """A stored candidate; ``x`` is int8 (n,) 0/1 in ``labels`` order (its revision's)."""
+    """A stored candidate: ``bits`` packed (:mod:`service.packing`) in ``labels`` order
+    (its revision's); ``x`` is the same as int8 (n,) 0/1."""
 
     id: str
     revision: int
     labels: tuple
     vartype: str
-    x: np.ndarray
+    bits: bytes
     source: str
     energy: float | None
     tags: tuple
+
+    @property
+    def x(self) -> np.ndarray:
+        return packing.unpack_rows(self.bits, 1, len(self.labels), field="bits")[0]
 
 
 def encode_model(problem: Problem) -> str:
@@ -112,11 +139,10 @@ def encode_model(problem: Problem) -> str:
 def decode_model(text: str) -> Problem:
     doc = json.loads(text)
     labels = doc["labels"]
-    p = Problem.from_terms(
-        list(zip(labels, doc["linear"])),
-        [(labels[a], labels[b], w) for a, b, w in doc["pairs"]],
-        offset=doc["offset"], vartype="BINARY", labels=labels,
-    )
+    pairs = np.asarray(doc["pairs"], dtype=np.float64).reshape(-1, 3)
+    p = Problem.from_arrays(labels, doc["linear"], pairs[:, 0].astype(np.int64),
+                            pairs[:, 1].astype(np.int64), pairs[:, 2],
+                            offset=doc["offset"], vartype="BINARY")
     decisions = tuple(Decision(d["name"], d["encoding"], tuple(d["variables"]), tuple(d["values"]))
                       for d in doc.get("decisions", []))
     return dataclasses.replace(p, vartype=doc["vartype"], decisions=decisions, index=p.index)
@@ -139,6 +165,7 @@ class Store:
         self._db.execute("PRAGMA synchronous=FULL")
         self._db.execute("PRAGMA foreign_keys=ON")
         # executescript commits by itself; every statement is CREATE ... IF NOT EXISTS
+        # (on an older database the existing tables are kept and migrated below)
         self._db.executescript(_SCHEMA)
         with self._tx() as db:
             row = db.execute("SELECT version FROM schema_version").fetchone()
@@ -147,6 +174,29 @@ class Store:
             elif row[0] > SCHEMA_VERSION:
                 raise RuntimeError(f"{self.path}: schema version {row[0]} is newer than this "
                                    f"flipfix ({SCHEMA_VERSION})")
+            elif row[0] < SCHEMA_VERSION:
+                self._migrate(db, row[0])
+
+    @staticmethod
+    def _migrate(db: sqlite3.Connection, version: int) -> None:
+        """Bring a database of ``version`` to :data:`SCHEMA_VERSION` (inside the open
+        transaction: a failure leaves the old database as it was)."""
+        if version == 1:  # bits TEXT '0101...' -> packed BLOB; the table is rebuilt
+            db.execute("ALTER TABLE candidates RENAME TO candidates_v1")
+            db.execute("DROP INDEX IF EXISTS candidates_by_problem")
+            for stmt in _CANDIDATES_DDL:  # db.execute: executescript would commit
+                db.execute(stmt)
+            cur = db.execute(f"SELECT {_CANDIDATE_COLUMNS} FROM candidates_v1 ORDER BY seq")
+            while True:
+                rows = cur.fetchmany(1000)
+                if not rows:
+                    break
+                db.executemany(
+                    f"INSERT INTO candidates ({_CANDIDATE_COLUMNS}) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                    [(r[0], r[1], r[2], r[3], _text_to_blob(r[4])) + tuple(r[5:]) for r in rows])
+            db.execute("DROP TABLE candidates_v1")
+            version = 2
+        db.execute("UPDATE schema_version SET version = ?", (version,))
 
     # ---------------------------------------------------------------- plumbing
     class _Tx:
@@ -283,6 +333,8 @@ class Store:
         Empty ids are assigned ``c<N>``. All or nothing: a taken id stores none.
         """
         X = np.asarray(X, dtype=np.int8)
+        rb = packing.row_bytes(X.shape[1])
+        blob = packing.pack_rows(X)
         with self._tx() as db:
             row = db.execute("SELECT revision, next_candidate FROM problems WHERE name = ?",
                              (name,)).fetchone()
@@ -292,7 +344,7 @@ class Store:
                 raise ConflictError("problem", f"problem {name!r} moved to revision {row[0]}")
             counter = row[1]
             out, now = [], _now()
-            for k, (cid, x, prov) in enumerate(zip(ids, X, provenance)):
+            for k, (cid, prov) in enumerate(zip(ids, provenance)):
                 if not cid:
                     while True:
                         cid = f"c{counter}"
@@ -304,11 +356,11 @@ class Store:
                     db.execute(
                         "INSERT INTO candidates (problem, id, revision, bits, source, energy, tags, "
                         "created_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
-                        (name, cid, revision, "".join("1" if b else "0" for b in x),
+                        (name, cid, revision, blob[k * rb:(k + 1) * rb],
                          prov.get("source", ""), prov.get("energy"),
                          json.dumps(list(prov.get("tags", ()))), now))
                 except sqlite3.IntegrityError:
-                    raise AlreadyExistsError(f"{field}[{k}].id",
+                    raise AlreadyExistsError(f"{field}.ids[{k}]",
                                              f"candidate {cid!r} already exists") from None
                 out.append(cid)
             db.execute("UPDATE problems SET next_candidate = ?, updated_at = ? WHERE name = ?",
@@ -326,9 +378,8 @@ class Store:
     def _record(self, db, name, row, cache) -> CandidateRecord:
         _seq, cid, rev, bits, source, energy, tags = row
         labels, vartype = self._labels_of(db, name, rev, cache)
-        return CandidateRecord(cid, rev, labels, vartype,
-                               np.frombuffer(bits.encode(), dtype=np.uint8).astype(np.int8) - 48,
-                               source, energy, tuple(json.loads(tags)))
+        return CandidateRecord(cid, rev, labels, vartype, bytes(bits), source, energy,
+                               tuple(json.loads(tags)))
 
     def list_candidates(self, name: str, *, page_size: int = 100, page_token: str = "",
                         revision: int = 0) -> tuple[list[CandidateRecord], str]:
@@ -431,10 +482,13 @@ class Store:
         if max_candidates is not None and len(recs) > max_candidates:
             from repair.errors import LimitError
             raise LimitError("candidates", f"{len(recs)} candidates exceed the limit of {max_candidates}")
+        same = [k for k, rec in enumerate(recs) if rec.labels == problem.labels]
         X = np.empty((len(recs), problem.n), dtype=np.int8)
+        if same:  # one unpack for every candidate in the current label order
+            X[same] = packing.unpack_rows(b"".join(recs[k].bits for k in same), len(same),
+                                          problem.n, field="bits")
         for k, rec in enumerate(recs):
             if rec.labels == problem.labels:
-                X[k] = rec.x
                 continue
             if set(rec.labels) != set(problem.labels):
                 raise InputError(f"candidate_ids[{k}]" if ids else "all_revisions",

@@ -75,7 +75,7 @@ def test_a_failing_add_stores_nothing(store):
     store.add_candidates("p", 1, ["dup"], np.zeros((1, 3), np.int8), [{}])
     with pytest.raises(AlreadyExistsError) as e:
         store.add_candidates("p", 1, ["new1", "dup"], np.zeros((2, 3), np.int8), [{}, {}])
-    assert e.value.field == "candidates[1].id"
+    assert e.value.field == "candidates.ids[1]"
     recs, _ = store.list_candidates("p")
     assert [r.id for r in recs] == ["dup"]
 
@@ -104,3 +104,59 @@ def test_paging_visits_every_candidate_once(store):
     assert seen == [f"k{i}" for i in range(7)]
     assert store.remove_candidates("p", ["k1", "k2"]) == 2
     assert store.delete_problem("p") == 5
+
+
+def test_candidates_are_stored_packed(store):
+    """ceil(n / 8) bytes per candidate, numpy.packbits order (n = 3: one byte, 5 pad bits)."""
+    store.create_problem("p", documents.parse_problem(DOC))
+    store.add_candidates("p", 1, ["a", "b"], np.array([[1, 0, 1], [0, 1, 1]], np.int8), [{}, {}])
+    rows = store._db.execute("SELECT bits FROM candidates ORDER BY seq").fetchall()
+    assert [bytes(r[0]) for r in rows] == [bytes([0b10100000]), bytes([0b01100000])]
+
+
+def test_schema_1_database_is_migrated(tmp_path):
+    """A schema-1 file (bits as '0'/'1' text) opens as schema 2 with the same candidates."""
+    path = tmp_path / "v1.sqlite3"
+    s = Store(path)
+    p = documents.parse_problem(DOC)
+    s.create_problem("p", p)
+    X = np.array([[1, 0, 1], [0, 1, 1], [1, 1, 0]], dtype=np.int8)
+    s.add_candidates("p", 1, ["x", "", "z"], X, [{"source": "old", "energy": 2.0, "tags": ["t"]},
+                                                {}, {}])
+    ids_before = [r.id for r in s.list_candidates("p")[0]]
+    s.close()
+    db = sqlite3.connect(path)  # rewrite the file as schema 1 had it
+    db.executescript("""
+        ALTER TABLE candidates RENAME TO c2;
+        DROP INDEX candidates_by_problem;
+        CREATE TABLE candidates (seq INTEGER PRIMARY KEY AUTOINCREMENT,
+            problem TEXT NOT NULL REFERENCES problems(name) ON DELETE CASCADE, id TEXT NOT NULL,
+            revision INTEGER NOT NULL, bits TEXT NOT NULL, source TEXT NOT NULL DEFAULT '',
+            energy REAL, tags TEXT NOT NULL DEFAULT '[]', created_at TEXT NOT NULL,
+            UNIQUE (problem, id));
+        CREATE INDEX candidates_by_problem ON candidates(problem, seq);
+        DROP TABLE c2;
+        UPDATE schema_version SET version = 1;
+    """)
+    for seq, (cid, x) in enumerate(zip(ids_before, X), start=1):
+        db.execute("INSERT INTO candidates VALUES (?, 'p', ?, 1, ?, ?, ?, ?, 'then')",
+                   (seq, cid, "".join(map(str, x)), "old" if seq == 1 else "",
+                    2.0 if seq == 1 else None, '["t"]' if seq == 1 else "[]"))
+    db.commit()
+    db.close()
+
+    s = Store(path)
+    assert s.schema_version == SCHEMA_VERSION == 2
+    recs, _ = s.list_candidates("p")
+    assert [r.id for r in recs] == ids_before
+    assert [r.x.tolist() for r in recs] == X.tolist()
+    assert (recs[0].source, recs[0].energy, recs[0].tags) == ("old", 2.0, ("t",))
+    assert isinstance(s._db.execute("SELECT bits FROM candidates").fetchone()[0], bytes)
+    # the migrated table keeps its constraints and its sequence: new ids do not collide
+    with pytest.raises(AlreadyExistsError):
+        s.add_candidates("p", 1, ["x"], X[:1], [{}])
+    new = s.add_candidates("p", 1, [""], X[:1], [{}])
+    assert new[0] not in ids_before
+    _rev, _p, cands = s.library("p")
+    assert cands.X.tolist() == X.tolist() + X[:1].tolist()
+    s.close()
