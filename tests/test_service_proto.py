@@ -114,3 +114,74 @@ def test_constraint_errors_use_proto_field_names():
     with pytest.raises(InputError) as e:
         convert.constraints_to_domain([unknown], p)
     assert e.value.field.startswith("constraints[0].")
+
+
+@pytest.mark.parametrize("n", [1, 7, 8, 9, 13, 64])
+def test_packed_layout_is_numpy_packbits_msb_first(n):
+    """The proto's PackedAssignments layout, checked bit by bit against its written rule
+    (bit 7 - j % 8 of byte j // 8 of the row) and against numpy.packbits."""
+    from service import packing
+
+    rng = np.random.default_rng(n)
+    X = rng.integers(0, 2, size=(5, n), dtype=np.int8)
+    bits = packing.pack_rows(X)
+    rb = (n + 7) // 8
+    assert len(bits) == 5 * rb and bits == np.packbits(X.astype(np.uint8), axis=1).tobytes()
+    for k in range(5):
+        for j in range(n):
+            assert (bits[k * rb + j // 8] >> (7 - j % 8)) & 1 == X[k, j]
+    np.testing.assert_array_equal(packing.unpack_rows(bits, 5, n), X)
+
+
+@pytest.mark.parametrize("vartype", ["BINARY", "SPIN"])
+def test_packed_values_mean_the_vartype_values(vartype):
+    """Bit 1 is value 1 (BINARY) or +1 (SPIN), bit 0 is 0 or -1: the energies of the
+    unpacked candidates equal dimod's energies of the same samples (label-keyed)."""
+    import dimod
+
+    from repair import documents
+    from service import convert
+
+    doc = {"vartype": vartype, "linear": {"a": 0.5, "b": -1.0, "c": 0.25},
+           "quadratic": [["a", "b", 1.5], ["b", "c", -0.75]], "offset": 0.5}
+    p = documents.parse_problem(doc)
+    lo = -1 if vartype == "SPIN" else 0
+    vals = np.array(list(itertools.product((lo, 1), repeat=3)), dtype=np.int8)
+    cands = [{"id": f"k{i}", "assignment": dict(zip(p.labels, map(int, v)))} for i, v in enumerate(vals)]
+    batch = convert.candidates_to_batch(p, cands)
+    ids, X, _ = convert.batch_to_arrays(p, type(batch).FromString(batch.SerializeToString()))
+    bqm = dimod.BinaryQuadraticModel(doc["linear"], {(u, v): b for u, v, b in doc["quadratic"]},
+                                     doc["offset"], vartype)
+    want = [bqm.energy(c["assignment"]) for c in cands]  # dimod's own energy, label-keyed
+    np.testing.assert_allclose(p.energies(X), want, atol=1e-12)
+    assert ids == [c["id"] for c in cands]
+
+
+def test_indexed_model_errors_name_the_field():
+    from repair.errors import InputError
+    from service import convert
+    from service.generated import flipfix_pb2 as pb
+
+    def model(**kw):
+        m = pb.ProblemModel(vartype=pb.BINARY, labels=[convert.py_to_label(x) for x in "abc"])
+        m.indexed.CopyFrom(pb.IndexedTerms(**{"linear": [1.0, 2.0, 3.0], "u": [0], "v": [1],
+                                              "bias": [0.5], **kw}))
+        return m
+
+    cases = [({"u": [3]}, "model.indexed.u[0]"), ({"v": [0]}, "model.indexed.u[0]"),
+             ({"linear": [1.0]}, "model.indexed.linear"), ({"bias": [1.0, 2.0]}, "model.indexed.bias"),
+             ({"bias": [float("inf")]}, "model.indexed.bias[0]")]
+    for kw, field in cases:
+        with pytest.raises(InputError) as e:
+            convert.model_to_problem(model(**kw))
+        assert e.value.field == field, (kw, e.value.field)
+    both = model()
+    both.linear.append(pb.LinearTerm(label=convert.py_to_label("a"), bias=1.0))
+    with pytest.raises(InputError) as e:
+        convert.model_to_problem(both)
+    assert e.value.field == "model.indexed"
+    nolabels = model()
+    del nolabels.labels[:]
+    with pytest.raises(InputError) as e:
+        convert.model_to_problem(nolabels)
+    assert e.value.field == "model.labels"

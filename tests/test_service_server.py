@@ -62,7 +62,7 @@ def small(stub):
     stub.CreateProblem(pb.CreateProblemRequest(name="small", model=convert.doc_to_model(SMALL)))
     p = documents.parse_problem(SMALL)
     stub.AddCandidates(pb.AddCandidatesRequest(problem="small",
-                                               candidates=convert.doc_to_candidates(SMALL_CANDS, p)))
+                                               candidates=convert.candidates_to_batch(p, SMALL_CANDS)))
     return p
 
 
@@ -70,9 +70,8 @@ def small(stub):
 def big_request(benchmarks):
     p = read_bqp(benchmarks / "bqp" / "bqp100-1.sparse")
     rng = np.random.default_rng(1)
-    X = rng.integers(0, 2, size=(8, p.n))
-    cands = [pb.Candidate(id=f"r{k}", assignment=convert.dict_to_assignment(dict(zip(p.labels, map(int, x)))))
-             for k, x in enumerate(X)]
+    X = rng.integers(0, 2, size=(8, p.n), dtype=np.int8)
+    cands = convert.arrays_to_batch([f"r{k}" for k in range(8)], X)
     fix = pb.Constraint(fix=pb.FixVariables(values=convert.dict_to_assignment({p.labels[0]: 1})))
 
     def make(time_limit=30.0, method=pb.CPSAT):
@@ -153,19 +152,113 @@ def test_not_found(stub, small):
     assert e.code() == grpc.StatusCode.NOT_FOUND
 
 
+def _ids(stub, name):
+    return [i for b in stub.ListCandidates(pb.ListCandidatesRequest(problem=name)).batches
+            for i in b.ids]
+
+
+def _bad_batches(n):
+    """(mutation of a good 2-candidate batch of n variables, field the error must name)."""
+    good = lambda: convert.arrays_to_batch(["ok", "ok2"], np.ones((2, n), np.int8))  # noqa: E731
+
+    def short(b):
+        b.values.bits = b.values.bits[:-1]
+
+    def padding(b):  # n = 5: 3 unused low bits per row, must stay 0
+        b.values.bits = bytes([b.values.bits[0] | 1]) + b.values.bits[1:]
+
+    def width(b):
+        b.values.num_variables = n + 1
+
+    def count(b):
+        b.values.count = 3
+
+    def provenance(b):
+        b.provenance.append(pb.Provenance(source="only one"))
+
+    def dup(b):
+        b.ids[1] = "ok"
+
+    def energy(b):
+        b.provenance.extend([pb.Provenance(reported_energy=float("nan")), pb.Provenance()])
+
+    cases = [(short, "values.bits"), (padding, "values.bits"), (width, "values.num_variables"),
+             (count, "values.count"), (provenance, "provenance"), (dup, "ids[1]"),
+             (energy, "provenance[0].reported_energy")]
+    for mutate, field in cases:
+        b = good()
+        mutate(b)
+        yield b, field
+
+
 def test_malformed_request_stores_nothing(stub, small):
-    before = stub.ListCandidates(pb.ListCandidatesRequest(problem="small")).candidates
+    before = _ids(stub, "small")
+    for batch, field in _bad_batches(small.n):
+        e = _code(lambda: stub.AddCandidates(pb.AddCandidatesRequest(problem="small",
+                                                                     candidates=batch)))
+        assert e.code() == grpc.StatusCode.INVALID_ARGUMENT, field
+        assert e.details().startswith(f"candidates.{field}:"), (field, e.details())
     good = {"id": "ok", "assignment": {"a": 1, "b": 1, "c": 1, "d": 1, "e": 1}}
-    protos = convert.doc_to_candidates([good, {"id": "bad", "assignment": {"a": 1, "b": 1}}],
-                                       small)
-    e = _code(lambda: stub.AddCandidates(pb.AddCandidatesRequest(problem="small", candidates=protos)))
-    assert e.code() == grpc.StatusCode.INVALID_ARGUMENT
-    assert e.details().startswith("candidates[1].assignment")
-    dup = convert.doc_to_candidates([good, {**SMALL_CANDS[0]}], small)  # k1 is taken
+    dup = convert.candidates_to_batch(small, [good, {**SMALL_CANDS[0]}])  # k1 is taken
     e = _code(lambda: stub.AddCandidates(pb.AddCandidatesRequest(problem="small", candidates=dup)))
-    assert e.code() == grpc.StatusCode.ALREADY_EXISTS
-    after = stub.ListCandidates(pb.ListCandidatesRequest(problem="small")).candidates
-    assert [c.id for c in after] == [c.id for c in before]
+    assert e.code() == grpc.StatusCode.ALREADY_EXISTS and e.details().startswith("candidates.ids[1]")
+    stale = convert.candidates_to_batch(small, [good])
+    e = _code(lambda: stub.AddCandidates(pb.AddCandidatesRequest(problem="small", candidates=stale,
+                                                                 revision=7)))
+    assert e.code() == grpc.StatusCode.FAILED_PRECONDITION and e.details().startswith("revision")
+    assert _ids(stub, "small") == before
+
+
+def test_inline_packed_errors_name_the_field(stub, small):
+    model = convert.doc_to_model(SMALL)
+    for batch, field in _bad_batches(small.n):
+        if field.startswith("ids"):  # inline ids: checked after the values (both named)
+            continue
+        e = _code(lambda: stub.Repair(pb.RepairRequest(
+            inline=pb.InlineLibrary(model=model, candidates=batch))))
+        assert e.code() == grpc.StatusCode.INVALID_ARGUMENT, field
+        assert e.details().startswith(f"inline.candidates.{field}:"), (field, e.details())
+
+
+@pytest.mark.parametrize("vartype", ["BINARY", "SPIN"])
+def test_packed_candidates_round_trip(server, vartype):
+    """AddCandidates -> ListCandidates gives back the same ids, values and provenance, and
+    an inline repair reads the same values as the stored one (n = 13: padded rows)."""
+    from service.client import FlipfixClient
+
+    labels = ["s", 7, "t", 0, "u", 3, "v", 11, "w", 2, "x", 5, "y"]
+    doc = {"vartype": vartype, "labels": labels,
+           "linear": {str(lab): 0.1 * k for k, lab in enumerate(labels)},
+           "quadratic": [[labels[k], labels[k + 1], (-1.0) ** k] for k in range(12)]}
+    p = documents.parse_problem(doc)
+    lo = -1 if vartype == "SPIN" else 0
+    rng = np.random.default_rng(4)
+    values = np.where(rng.integers(0, 2, size=(9, p.n)) == 1, 1, lo).astype(np.int8)
+    name = f"round-{vartype}"
+    with FlipfixClient(server.address) as fx:
+        fx.create_problem(name, doc)
+        ids = fx.add_candidates(name, values[:4])  # server-assigned ids
+        ids += fx.add_candidates(name, values[4:], ids=[f"mine{k}" for k in range(5)])
+        assert ids[:4] == ["c1", "c2", "c3", "c4"] and ids[4] == "mine0"
+        [lib] = fx.list_candidates(name, page_size=2)  # 5 pages joined into one run
+        assert lib.ids == tuple(ids) and lib.revision == 1
+        np.testing.assert_array_equal(lib.values, values)
+        assert lib.assignments()[5] == dict(zip(p.labels, values[5].tolist()))
+        assert lib.candidate_set().X.tolist() == p.from_caller(values).tolist()
+        # stored and inline repairs of the same library agree (greedy is deterministic)
+        fix = [{"type": "fix", "values": {"7": int(values[0, 1])}}]
+        stored = fx.repair(name, fix, method="greedy", time_limit=2.0)
+        inline = fx.repair(doc, fix, candidates=lib.candidate_set(), method="greedy",
+                           time_limit=2.0)
+        assert stored["best"]["assignment"] == inline["best"]["assignment"]
+        assert stored["best"]["assignment"][7] == values[0, 1]
+        assert set(stored["best"]["assignment"].values()) <= {lo, 1}
+        assert stored["best"]["repaired_from"] in ids and stored["best"]["candidate_id"] in ids
+        # the answer is reported against its nearest candidate (flips = that distance)
+        ans = np.array([stored["best"]["assignment"][lab] for lab in p.labels])
+        dist = (values != ans).sum(axis=1)
+        assert stored["best"]["flips"] == dist.min() == dist[ids.index(stored["best"]["candidate_id"])]
+
 
 
 def test_limits_are_resource_exhausted(stub):
@@ -196,7 +289,7 @@ def test_repair_matches_brute_force(stub, small):
     feasible = [d.energy for d in ss.data(["sample", "energy"]) if d.sample["a"] == 0]
     assert r.best.feasible and r.status in ("optimal", "feasible")
     assert r.best.cost == pytest.approx(min(feasible), abs=1e-9)
-    got = {convert.label_to_py(v.label, "x"): v.value for v in r.best.assignment.values}
+    got = convert.reply_to_dict(r, small)["best"]["assignment"]
     assert got["a"] == 0
     origin = {c["id"]: c["assignment"] for c in SMALL_CANDS}[r.best.candidate_id]
     assert r.best.flips == sum(got[k] != origin[k] for k in origin)
@@ -272,7 +365,7 @@ def test_persistence_across_restart(tmp_path):
         s = pb_grpc.FlipfixStub(grpc.insecure_channel(a.address))
         s.CreateProblem(pb.CreateProblemRequest(name="keep", model=convert.doc_to_model(SMALL)))
         ids = s.AddCandidates(pb.AddCandidatesRequest(
-            problem="keep", candidates=convert.doc_to_candidates(SMALL_CANDS, p))).ids
+            problem="keep", candidates=convert.candidates_to_batch(p, SMALL_CANDS))).ids
         s.ReplaceProblem(pb.ReplaceProblemRequest(name="keep", model=convert.doc_to_model(SMALL)))
         before = s.ListCandidates(pb.ListCandidatesRequest(problem="keep"))
     with create_server("127.0.0.1:0", db_path=db, warm=False) as b:
@@ -280,8 +373,12 @@ def test_persistence_across_restart(tmp_path):
         got = s.GetProblem(pb.GetProblemRequest(name="keep"))
         assert got.info.revision == 2 and got.info.num_candidates == 2
         after = s.ListCandidates(pb.ListCandidatesRequest(problem="keep"))
-        assert list(ids) == [c.id for c in after.candidates]
-        assert after == before and all(c.revision == 1 for c in after.candidates)
+        [batch] = after.batches
+        assert list(ids) == list(batch.ids) and batch.revision == 1
+        assert after == before
+        cs, _ = convert.batch_to_candidates(batch, p)
+        assert cs.X.tolist() == [[SMALL_CANDS[k]["assignment"][lab] for lab in p.labels]
+                                 for k in range(2)]
 
 
 def test_graceful_shutdown(tmp_path, big_request):
@@ -305,3 +402,46 @@ def test_graceful_shutdown(tmp_path, big_request):
     assert _code(fut.result).code() in (grpc.StatusCode.CANCELLED, grpc.StatusCode.UNAVAILABLE)
     assert time.monotonic() - t0 < 15
     ch.close()
+
+
+@pytest.mark.parametrize("vartype", ["BINARY", "SPIN"])
+def test_reply_carries_the_core_solution_both_ways(vartype):
+    """result_to_reply -> bytes -> reply_to_dict gives RepairResult.to_dict()'s best (packed
+    answer, candidate_id, repaired_from) exactly."""
+    from repair import CandidateSet, repair
+
+    doc = {**SMALL, "vartype": vartype}
+    p = documents.parse_problem(doc)
+    lo = -1 if vartype == "SPIN" else 0
+    vals = [[1 if v else lo for v in c["assignment"].values()] for c in SMALL_CANDS]
+    cands = CandidateSet.from_array(p, np.array(vals), ids=["k1", "k2"])
+    cons = [documents.parse_constraint({"type": "fix", "values": {"a": lo, "c": lo}}, p,
+                                       field="c")]
+    res = repair(p, cands, cons, method="greedy", time_limit=1.0)
+    reply = pb.RepairReply.FromString(convert.result_to_reply(res).SerializeToString())
+    assert reply.best.repaired_from == res.best.repaired_from != ""
+    got, want = convert.reply_to_dict(reply, p)["best"], res.to_dict()["best"]
+    assert got == want and got["assignment"]["a"] == lo
+    assert "assignment" not in convert.reply_to_dict(reply)["best"]  # no labels: not guessed
+
+
+def test_client_sends_sample_sets_and_arrays_packed(server):
+    """A dimod SampleSet goes in packed with its energies as provenance; a short array row
+    is refused by the client's own check, naming the field."""
+    from repair.errors import InputError
+    from service.client import FlipfixClient
+
+    bqm = dimod.BinaryQuadraticModel({"a": 1.0, "b": -1.0}, {("a", "b"): 2.0, ("b", "c"): -1.0},
+                                     0.0, "SPIN")
+    ss = dimod.ExactSolver().sample(bqm)  # all 8 spin states with dimod's energies
+    with FlipfixClient(server.address) as fx:
+        fx.create_problem("ss", bqm)
+        ids = fx.add_candidates("ss", ss)
+        [lib] = fx.list_candidates("ss")
+        assert lib.ids == tuple(ids) and len(ids) == 8
+        order = [ss.variables.index(lab) for lab in lib.problem.labels]
+        np.testing.assert_array_equal(lib.values, ss.record.sample[:, order])
+        assert [pr["energy"] for pr in lib.provenance] == pytest.approx(list(ss.record.energy))
+        with pytest.raises(InputError) as e:
+            fx.add_candidates("ss", np.ones((2, 2), dtype=np.int8))
+        assert e.value.field == "candidates"
