@@ -6,8 +6,9 @@ The in-process baseline calls ``repair.repair`` with the same options the server
 (CP-SAT workers=1). Serialisation share: client-side request building (domain -> proto) and
 encoding, server-side decoding and conversion (proto -> domain), reply building, timed
 separately with the service's own converters. Target (issue 6): service/in-process < 1.5x.
+Candidates travel packed (``CandidateBatch``: one bit per variable, ids, no per-bit messages).
 The largest accepted request under the default ``ServerConfig`` limits is computed from the
-measured bytes per candidate and, in the full run, checked by sending it.
+measured bytes per candidate and, in the full run, checked by sending it and one candidate more.
 """
 
 from __future__ import annotations
@@ -92,7 +93,7 @@ def run(*, quick: bool = False, seed: int = 0, log=print) -> dict:
                     reply, t_rep = _timed(lambda: convert.result_to_reply(res, time_limit=T))
                     rblob, t_renc = _timed(reply.SerializeToString)
                     _, t_rdec = _timed(lambda: convert.reply_to_dict(
-                        pb.RepairReply.FromString(rblob)))
+                        pb.RepairReply.FromString(rblob), p))
                     ser = t_req + t_enc + t_dec + t_rep + t_renc + t_rdec
                     ratio = t_svc / t_in
                     agree = abs(float(out["best"]["cost"]) - res.best.cost) <= 1e-6 * max(
@@ -122,7 +123,8 @@ def run(*, quick: bool = False, seed: int = 0, log=print) -> dict:
                           else "max_message_bytes",
                           "largest_request_MB_at_n1000": (fixed_part + per_cand * k_max) / 2**20}
                 if not quick:
-                    limits.update(_probe(client, p, doc, rng, k_max, per_cand, cfg.max_message_bytes))
+                    limits.update(_probe(client, p, doc, rng, k_max, cfg.max_message_bytes,
+                                         bytes_bound=k_max == k_bytes))
                 raw["limits"] = limits
                 log(f"largest request: {limits}")
         finally:
@@ -147,60 +149,44 @@ def _server_decode(convert, pb, blob, cfg):
     req = pb.RepairRequest.FromString(blob)
     lim = cfg.limits
     prob = convert.model_to_problem(req.inline.model, limits=lim)
-    convert.candidates_to_arrays(prob, req.inline.candidates, limits=lim)
+    convert.batch_to_arrays(prob, req.inline.candidates, limits=lim)
     convert.constraints_to_domain(req.constraints, prob)
     return time.perf_counter() - t
 
 
-def _probe(client, p, doc, rng, k_max, per_cand, limit):
-    """Find by the request's own ByteSize the largest inline request (random candidates, greedy,
-    1 s) within ``limit`` bytes, then send it and the same request with one candidate more.
+def _probe(client, p, doc, rng, k_max, limit, *, bytes_bound):
+    """Send the largest inline request within the default limits (random candidates, greedy,
+    1 s) and the same request with one candidate more.
 
-    proto3 omits zero values, so the size per candidate depends on its number of ones: the
-    estimate from the library only seeds the search."""
+    ``k_max`` is the estimate (the smaller of ``max_candidates`` and what fits in ``limit``
+    bytes); when the bytes bind, the exact K is found by bisection around it on the
+    request's own ByteSize (ids grow with K, so the size per candidate is not constant)."""
     import grpc
 
+    def request(k):
+        X = rng.integers(0, 2, size=(k, p.n), dtype=np.int8)
+        return client.repair_request(p, doc_fix(doc, p), candidates=CandidateSet.from_array(p, X),
+                                     method="greedy", time_limit=1.0)
+
+    k_fit = k_max
+    if bytes_bound:
+        lo, hi = int(0.9 * k_max), int(1.1 * k_max) + 2
+        while hi - lo > 1:  # request(lo) fits, request(hi) does not
+            mid = (lo + hi) // 2
+            lo, hi = (mid, hi) if request(mid).ByteSize() <= limit else (lo, mid)
+        k_fit = lo
     out = {}
-    k0 = int(k_max * 1.15) + 2
-    X = rng.integers(0, 2, size=(k0, p.n), dtype=np.int8)
-    cs = CandidateSet.from_array(p, X)
-    req = client.repair_request(p, doc_fix(doc, p), candidates=cs, method="greedy",
-                                time_limit=1.0)
-    # each repeated candidate costs its size + a length varint + a tag byte (the inline
-    # library is itself a length-delimited field whose varint grows by at most a few bytes)
-    steps = [c.ByteSize() + 1 + len(_varint(c.ByteSize())) for c in req.inline.candidates]
-    total = req.ByteSize() - sum(steps)
-    k_fit = 0
-    for step in steps:
-        if total + step > limit:
-            break
-        total += step
-        k_fit += 1
-    del req.inline.candidates[k_fit + 1:]
-    for key in ("probe_over_max", "probe_at_max"):
-        if key == "probe_at_max":
-            while req.ByteSize() > limit:
-                del req.inline.candidates[-1]
+    for key, k in (("probe_at_max", k_fit), ("probe_over_max", k_fit + 1)):
+        req = request(k)
         t = time.perf_counter()
         try:
             client.stub.Repair(req, timeout=600)
-            out[key] = {"K": len(req.inline.candidates), "bytes": req.ByteSize(), "result": "OK",
+            out[key] = {"K": k, "bytes": req.ByteSize(), "result": "OK",
                         "seconds": time.perf_counter() - t}
         except grpc.RpcError as err:
-            out[key] = {"K": len(req.inline.candidates), "bytes": req.ByteSize(),
-                        "result": err.code().name, "detail": (err.details() or "")[:200],
-                        "seconds": time.perf_counter() - t}
+            out[key] = {"K": k, "bytes": req.ByteSize(), "result": err.code().name,
+                        "detail": (err.details() or "")[:200], "seconds": time.perf_counter() - t}
     return out
-
-
-def _varint(v: int) -> bytes:
-    out = bytearray()
-    while True:
-        b = v & 0x7F
-        v >>= 7
-        out.append(b | (0x80 if v else 0))
-        if not v:
-            return bytes(out)
 
 
 def render(section: dict) -> str:
