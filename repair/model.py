@@ -360,12 +360,14 @@ class Problem:
     def from_caller(self, values: np.ndarray, field_name: str = "values") -> np.ndarray:
         """Caller's vartype values -> 0/1 int8; values outside the vartype are an error."""
         arr = np.asarray(values)
-        allowed = (-1, 1) if self.vartype == SPIN else (0, 1)
-        if arr.size and not np.all(np.isin(arr, allowed)):
-            bad = arr[~np.isin(arr, allowed)].ravel()[0]
-            raise InputError(field_name, f"value {bad!r} is not {self.vartype} (allowed {allowed})")
+        lo, hi = (-1, 1) if self.vartype == SPIN else (0, 1)
+        ok = (arr == lo) | (arr == hi)  # bool temporaries only: one byte per value
+        if arr.size and not ok.all():
+            bad = arr[~ok].ravel()[0]
+            bad = bad.item() if hasattr(bad, "item") else bad
+            raise InputError(field_name, f"value {bad!r} is not {self.vartype} (allowed {(lo, hi)})")
         if self.vartype == SPIN:
-            return ((arr.astype(np.int64) + 1) // 2).astype(np.int8)
+            return (arr == 1).astype(np.int8)
         return arr.astype(np.int8)
 
     def value_to_bit(self, value: Any, field_name: str) -> int:

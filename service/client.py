@@ -41,6 +41,19 @@ from .generated import flipfix_pb2_grpc as pb_grpc
 __all__ = ["FlipfixClient", "StoredCandidates"]
 
 
+def _last_result(stream, on_progress):
+    """Pass each progress message of a server stream on; return its final result."""
+    reply = None
+    for ev in stream:
+        if ev.HasField("progress"):
+            on_progress(ev.progress)
+        else:
+            reply = ev.result
+    if reply is None:
+        raise RuntimeError("the stream ended without a result")
+    return reply
+
+
 @dataclass(frozen=True)
 class StoredCandidates:
     """Stored candidates of one problem revision (a ListCandidates batch, pages joined).
@@ -244,14 +257,7 @@ class FlipfixClient:
         timeout = timeout if timeout is not None else self.timeout
         if on_progress is None:
             return self._reply_dict(self.stub.Repair(req, timeout=timeout), problem, dom, rev)
-        reply = None
-        for ev in self.stub.RepairStream(req, timeout=timeout):
-            if ev.HasField("progress"):
-                on_progress(ev.progress)
-            else:
-                reply = ev.result
-        if reply is None:
-            raise RuntimeError("the stream ended without a result")
+        reply = _last_result(self.stub.RepairStream(req, timeout=timeout), on_progress)
         return self._reply_dict(reply, problem, dom, rev)
 
     # ----------------------------------------------------------------- audit
@@ -311,14 +317,7 @@ class FlipfixClient:
         if on_progress is None:
             return convert.reply_to_stress(self.stub.StressTest(req, timeout=timeout),
                                            family=fam_doc)
-        reply = None
-        for ev in self.stub.StressTestStream(req, timeout=timeout):
-            if ev.HasField("progress"):
-                on_progress(ev.progress)
-            else:
-                reply = ev.result
-        if reply is None:
-            raise RuntimeError("the stream ended without a result")
+        reply = _last_result(self.stub.StressTestStream(req, timeout=timeout), on_progress)
         return convert.reply_to_stress(reply, family=fam_doc)
 
     def pareto_front(self, name: str, constraints: Iterable[Any], *,

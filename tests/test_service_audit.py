@@ -37,33 +37,20 @@ from service.server import create_server
 # Narrow state (z=1, y=0): E = -R, every flip costs >= R or P - ALPHA.
 # Broad state (z=0, y=1): E = -ALPHA g, each y flip costs only ALPHA (a broad minimum).
 # RIGID variables with bias -5 are always 1. Invented data (test construction).
-R, ALPHA, P, RIGID, W = 10.0, 0.5, 20.0, 3, 3.0
+from planted import ALPHA, planted as _planted, state as _state  # noqa: E402  (tests/planted.py)
+
+RIGID, W = 3, 3.0
 GROUPS = [4, 8]
 BUDGET = 120.0  # whole-run budget: greedy needs milliseconds; figures must not depend on load
 CORE_PHASES = {"greedy", "kicks", "neighbourhood", "full", "cpsat"}
 
 
 def planted(groups=GROUPS) -> Problem:
-    lin, quad = {}, []
-    for b, g in enumerate(groups):
-        lin[f"z{b}"] = -R
-        for i in range(g):
-            lin[f"y{b}_{i}"] = -ALPHA
-            quad.append((f"z{b}", f"y{b}_{i}", P))
-    for j in range(RIGID):
-        lin[f"r{j}"] = -5.0
-    return Problem.from_terms(lin, quad)
+    return _planted(groups, rigid=RIGID)
 
 
 def state(p: Problem, broad, groups=GROUPS) -> np.ndarray:
-    x = np.zeros(p.n, np.int8)
-    for b, g in enumerate(groups):
-        if broad[b]:
-            x[[p.index[f"y{b}_{i}"] for i in range(g)]] = 1
-        else:
-            x[p.index[f"z{b}"]] = 1
-    x[[p.index[f"r{j}"] for j in range(RIGID)]] = 1
-    return x
+    return _state(p, groups, broad, rigid=RIGID)
 
 
 def library(p: Problem) -> CandidateSet:

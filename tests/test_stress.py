@@ -14,36 +14,19 @@ from repair.constraints import FixVariables, HammingPenalty, LinearConstraint
 from repair.stress import ScenarioFamily, draw_scenarios, pearson, spearman, stress_test
 
 # ----------------------------------------------------------------- planted model
-# Block b has a switch z_b and a group y_b of g_b variables:
-#     E_b = -R z_b + sum_i (-ALPHA y_bi + P z_b y_bi)
-# Narrow state (z=1, y=0): E = -R; every flip costs >= R (z) or P - ALPHA (y): a narrow optimum.
-# Broad state (z=0, y=1): E = -ALPHA g; each y flip costs only ALPHA (a broad minimum), the switch
-# costs -R + P g > 0. RIGID variables with bias -5 (always 1) cost 5 to flip in both.
-R, ALPHA, P, RIGID, W = 10.0, 0.5, 20.0, 4, 3.0
+# construction in tests/planted.py
+from planted import ALPHA, R, planted as _planted, state as _state  # noqa: E402
+
+RIGID, W = 4, 3.0
 BUDGET = 120.0  # seconds for a whole stress run in tests (used runs take well under 1 s)
 
 
 def planted(groups):
-    lin, quad = {}, []
-    for b, g in enumerate(groups):
-        lin[f"z{b}"] = -R
-        for i in range(g):
-            lin[f"y{b}_{i}"] = -ALPHA
-            quad.append((f"z{b}", f"y{b}_{i}", P))
-    for j in range(RIGID):
-        lin[f"r{j}"] = -5.0
-    return Problem.from_terms(lin, quad)
+    return _planted(groups, rigid=RIGID)
 
 
 def state(p, groups, broad):
-    x = np.zeros(p.n, np.int8)
-    for b, g in enumerate(groups):
-        if broad[b]:
-            x[[p.index[f"y{b}_{i}"] for i in range(g)]] = 1
-        else:
-            x[p.index[f"z{b}"]] = 1
-    x[[p.index[f"r{j}"] for j in range(RIGID)]] = 1
-    return x
+    return _state(p, groups, broad, rigid=RIGID)
 
 
 def predicted_costs(p, g, ref):
