@@ -89,16 +89,19 @@ def repair(
     if compiled.fix_conflicts:
         label, name = compiled.fix_conflicts[0]
         return _build(problem, candidates, compiled, [], price, method, seed, t0,
+                      max_flips=max_flips,
                       status="infeasible", pareto=pareto,
                       message=f"variable {label!r} is fixed to both values ({name})")
     plan = run_plan(compiled, X0, method=method, time_limit=float(time_limit),
                     max_flips=max_flips, flip_price=price, seed=seed, workers=workers,
                     cancel=cancel, progress=report, mix=mix)
     return _build(problem, candidates, compiled, plan.attempts, price, method, seed, t0,
+                  max_flips=max_flips,
                   pareto=pareto, plan=plan)
 
 
 def _build(problem, candidates, compiled, attempts, price, method, seed, t0, *, pareto,
+           max_flips=None,
            status=None, message="", plan=None) -> RepairResult:
     X0 = candidates.X
     K = X0.shape[0]
@@ -111,6 +114,10 @@ def _build(problem, candidates, compiled, attempts, price, method, seed, t0, *, 
     ks = np.asarray([a.k for a in attempts])
     ev = compiled.evaluate(A)
     flips = (A != X0[ks]).sum(axis=1)
+    if max_flips is not None:  # the cap is hard: flips past it count as violation
+        over = np.maximum(0, flips - max_flips).astype(np.float64)
+        ev.violations["max_flips"] = over
+        ev.violation = ev.violation + over
     # feasible first, then objective, then violation, then flips
     b = int(np.lexsort((flips, ev.cost + price * flips, ev.violation, ~ev.feasible))[0])
     origin = int(ks[b])

@@ -314,3 +314,16 @@ def test_spin_and_binary_inputs_give_the_same_repair(seed, n):
         assert a.flips == b.flips
     assert rs.best.x.tolist() == rb.best.x.tolist()
     assert set(rs.best.assignment.values()) <= {-1, 1}
+
+
+@pytest.mark.parametrize("method", ["greedy", "cpsat", "portfolio"])
+def test_a_flip_cap_that_the_fixings_break_leaves_no_feasible_answer(method):
+    # fixing a bit away from every candidate needs one flip; a cap of 0 forbids it
+    p = Problem.from_terms({0: 1.0, 1: -1.0}, [(0, 1, 0.5)])
+    cands = CandidateSet.from_array(p, [[0, 0], [0, 1]])
+    res = repair(p, cands, [FixVariables({0: 1})], method=method, max_flips=0, time_limit=0.5)
+    assert not res.best.feasible
+    assert res.status == "no_feasible_found"
+    assert all(not row.feasible for row in res.audit)
+    ok = repair(p, cands, [FixVariables({0: 1})], method=method, max_flips=1, time_limit=0.5)
+    assert ok.best.feasible and ok.best.flips <= 1 and ok.best.violations["max_flips"] == 0
