@@ -375,7 +375,7 @@ def parse_constraint(obj: Any, problem: Problem, *, field: str = "constraints[0]
     if not isinstance(obj, Mapping):
         raise InputError(field, f"must be an object with a \"type\", got {type(obj).__name__}")
     kind = obj.get("type")
-    if kind not in parsers:
+    if not isinstance(kind, str) or kind not in parsers:
         raise InputError(field + ".type", f"must be one of {sorted(parsers)}, got {kind!r}")
     try:
         return parsers[kind](obj, problem, field)

@@ -135,3 +135,13 @@ def test_problem_document_round_trip_keeps_labels_and_energies(vartype):
     assert q.labels == p.labels and q.vartype == p.vartype
     X = np.array(list(itertools.product((0, 1), repeat=p.n)), dtype=np.int8)
     np.testing.assert_allclose(q.energies(X), p.energies(X), atol=1e-12)
+
+
+def test_a_constraint_type_that_is_not_a_string_names_the_field():
+    # found by randomised mutation of documents: {"type": {...}} used to raise TypeError
+    from repair.documents import parse_constraints, parse_problem
+
+    p = parse_problem({"vartype": "BINARY", "linear": {"a": 1.0}, "quadratic": []})
+    with pytest.raises(InputError) as err:
+        parse_constraints([{"type": {"a": 1}}], p)
+    assert err.value.field == "constraints[0].type"
