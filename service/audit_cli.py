@@ -206,12 +206,22 @@ def format_table(report: dict) -> str:
     return "\n".join(lines)
 
 
+
+def _integer_axis(ax, locator) -> None:
+    """Whole-number ticks on a count axis; a narrow range gets half a unit of room each side."""
+    lo, hi = ax.get_xlim()
+    if hi - lo < 4.0:
+        ax.set_xlim(round(lo) - 0.5, round(hi) + 0.5)
+    ax.xaxis.set_major_locator(locator(integer=True, min_n_ticks=1))
+
+
 def draw_figure(report: dict, path: str) -> None:
     """PNG: mean (and worst) repair cost against free variables; the Pareto front."""
     import matplotlib
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
+    from matplotlib.ticker import MaxNLocator
 
     st = report["stress"]
     fig, (ax1, ax2) = plt.subplots(1, 2, figsize=(11, 4.6), constrained_layout=True)
@@ -231,6 +241,7 @@ def draw_figure(report: dict, path: str) -> None:
     corr = "" if st.spearman is None else f" (Spearman {st.spearman:+.2f})"
     ax1.set_title(f"Repair cost vs free variables, {st.scenarios_done} scenarios{corr}", fontsize=10)
     ax1.set_xlabel(f"free variables (single flip cost <= {st.epsilon:g}), count")
+    _integer_axis(ax1, MaxNLocator)
     ax1.set_ylabel("repair cost (energy units of the problem)")
     ax1.margins(x=0.12, y=0.08)
     ax1.grid(alpha=0.3)
@@ -251,6 +262,7 @@ def draw_figure(report: dict, path: str) -> None:
     ax2.set_title("Pareto front of cost and flips\n" + textwrap.fill(what, 62), fontsize=9)
     ax2.margins(x=0.15, y=0.08)
     ax2.set_xlabel("flips (variables changed), count")
+    _integer_axis(ax2, MaxNLocator)
     ax2.set_ylabel("repair cost (energy units of the problem)")
     ax2.grid(alpha=0.3)
     fig.savefig(path, dpi=120)
