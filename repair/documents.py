@@ -306,14 +306,20 @@ def _parse_extra(obj: Mapping, problem: Problem, field: str) -> ExtraTerms:
                       name=_opt_name(obj, field, "extra"))
 
 
+def _required_mapping(obj: Mapping, problem: Problem, field: str, key: str) -> dict:
+    """``obj[key]``: a non-empty label -> value mapping, labels resolved against the problem."""
+    if key not in obj:
+        raise InputError(f"{field}.{key}", "is missing")
+    out = resolve_mapping(problem, obj[key], f"{field}.{key}")
+    if not out:
+        raise InputError(f"{field}.{key}", "is empty")
+    return out
+
+
 def _parse_fix(obj: Mapping, problem: Problem, field: str) -> FixVariables:
     _check_keys(obj, {"type", "name", "values"}, field)
-    if "values" not in obj:
-        raise InputError(field + ".values", "is missing")
-    values = resolve_mapping(problem, obj["values"], field + ".values")
-    if not values:
-        raise InputError(field + ".values", "is empty")
-    return FixVariables(values, name=_opt_name(obj, field, "fix"))
+    return FixVariables(_required_mapping(obj, problem, field, "values"),
+                        name=_opt_name(obj, field, "fix"))
 
 
 def _parse_linear(obj: Mapping, problem: Problem, field: str) -> LinearConstraint:
@@ -335,12 +341,8 @@ def _parse_linear(obj: Mapping, problem: Problem, field: str) -> LinearConstrain
 
 def _parse_forbid(obj: Mapping, problem: Problem, field: str) -> ForbidAssignment:
     _check_keys(obj, {"type", "name", "assignment"}, field)
-    if "assignment" not in obj:
-        raise InputError(field + ".assignment", "is missing")
-    assignment = resolve_mapping(problem, obj["assignment"], field + ".assignment")
-    if not assignment:
-        raise InputError(field + ".assignment", "is empty")
-    return ForbidAssignment(assignment, name=_opt_name(obj, field, "forbid"))
+    return ForbidAssignment(_required_mapping(obj, problem, field, "assignment"),
+                            name=_opt_name(obj, field, "forbid"))
 
 
 Parser = Callable[[Mapping, Problem, str], Any]

@@ -200,6 +200,13 @@ def _values_list(values: Any, field_name: str) -> list:
     return list(values)
 
 
+def _decision_values(problem: Problem, decision: Any, values: Any, prefix: str):
+    """(the named decision, the value indices of ``values``), errors naming the field."""
+    d = _find(problem, decision, prefix + "decision")
+    vals = _values_list(values, prefix + "values")
+    return d, [_index_of(d, v, f"{prefix}values[{k}]") for k, v in enumerate(vals)]
+
+
 @dataclass(frozen=True)
 class ForbidValues:
     """Hard: decision ``decision`` takes none of ``values`` ("machine M is down in slots 3-4")."""
@@ -209,9 +216,7 @@ class ForbidValues:
     name: str = "forbid_values"
 
     def lower(self, problem: Problem, name: str, prefix: str) -> Pieces:
-        d = _find(problem, self.decision, prefix + "decision")
-        vals = _values_list(self.values, prefix + "values")
-        ms = [_index_of(d, v, f"{prefix}values[{k}]") for k, v in enumerate(vals)]
+        d, ms = _decision_values(problem, self.decision, self.values, prefix)
         return _forbid_pieces(problem, d, ms, name)
 
 
@@ -224,9 +229,7 @@ class AllowValues:
     name: str = "allow_values"
 
     def lower(self, problem: Problem, name: str, prefix: str) -> Pieces:
-        d = _find(problem, self.decision, prefix + "decision")
-        vals = _values_list(self.values, prefix + "values")
-        keep = {_index_of(d, v, f"{prefix}values[{k}]") for k, v in enumerate(vals)}
+        d, keep = _decision_values(problem, self.decision, self.values, prefix)
         return _forbid_pieces(problem, d, [m for m in range(len(d.values)) if m not in keep], name)
 
 
