@@ -232,7 +232,7 @@ def _eval_flip(i, S, dist, C, R, price):
     return dobj, dviol, nd
 
 
-@nb.njit(cache=True, inline="always")
+@nb.njit(cache=True)
 def _apply_flip(i, S, dist, Q, C, R):
     """Flip variable i, updating fields, term states, counts and row activities in O(degree)."""
     x, o, field, dcount, sat, act, dd = S
