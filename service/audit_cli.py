@@ -300,7 +300,7 @@ def run(args: argparse.Namespace, *, out: TextIO | None = None, err: TextIO | No
     """Run ``flipfix audit``; 0 on success, 2 on bad input (the message names the field)."""
     out = sys.stdout if out is None else out
     err = sys.stderr if err is None else err
-    from repair.documents import parse_candidates, parse_constraints, parse_problem
+    from repair.documents import parse_candidates, parse_problem
 
     if getattr(args, "server", None):
         return _run_remote(args, out, err)
@@ -314,14 +314,9 @@ def run(args: argparse.Namespace, *, out: TextIO | None = None, err: TextIO | No
         if isinstance(doc, dict) and "candidates" in doc:
             doc = doc["candidates"]
         candidates = parse_candidates(doc, problem)
-        cons = None
-        if args.constraints:
-            cdoc = _load(args.constraints, "constraints")
-            if isinstance(cdoc, dict) and "constraints" in cdoc:
-                cdoc = cdoc["constraints"]
-            cons = parse_constraints(cdoc, problem)
+        cons = _pareto_constraints(args, problem)
         family = _family_of(args)
-        methods = tuple(m.strip() for m in args.pareto_methods.split(",") if m.strip())
+        methods = _pareto_methods(args)
         report = audit(problem, candidates, family, scenarios=args.scenarios, seed=args.seed,
                        method=args.method, time_limit=args.time_limit, epsilon=args.epsilon,
                        keep=args.keep, pareto_constraints=cons, pareto_methods=methods,
@@ -332,6 +327,22 @@ def run(args: argparse.Namespace, *, out: TextIO | None = None, err: TextIO | No
         return 2
     _emit(args, report, out)
     return 0
+
+
+def _pareto_constraints(args, problem):
+    """The --constraints document (a list, or {"constraints": [...]}) parsed, or None."""
+    from repair.documents import parse_constraints
+
+    if not args.constraints:
+        return None
+    cdoc = _load(args.constraints, "constraints")
+    if isinstance(cdoc, dict) and "constraints" in cdoc:
+        cdoc = cdoc["constraints"]
+    return parse_constraints(cdoc, problem)
+
+
+def _pareto_methods(args) -> tuple:
+    return tuple(m.strip() for m in args.pareto_methods.split(",") if m.strip())
 
 
 def _family_of(args):
@@ -345,8 +356,6 @@ def _family_of(args):
 
 def _run_remote(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     import grpc
-
-    from repair.documents import parse_constraints
 
     from .client import FlipfixClient
 
@@ -363,12 +372,9 @@ def _run_remote(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
             cons = None
             if args.constraints:
                 _info, problem = fx.get_problem(args.problem)
-                cdoc = _load(args.constraints, "constraints")
-                if isinstance(cdoc, dict) and "constraints" in cdoc:
-                    cdoc = cdoc["constraints"]
-                cons = parse_constraints(cdoc, problem)
+                cons = _pareto_constraints(args, problem)
             family = _family_of(args)
-            methods = tuple(m.strip() for m in args.pareto_methods.split(",") if m.strip())
+            methods = _pareto_methods(args)
             report = audit_remote(
                 fx, args.problem, family, scenarios=args.scenarios, seed=args.seed,
                 method=args.method, time_limit=args.time_limit, epsilon=args.epsilon,

@@ -26,3 +26,12 @@ def benchmarks() -> Path:
     if not BENCHMARKS.is_dir():
         pytest.fail(f"public benchmark files not found at {BENCHMARKS}")
     return BENCHMARKS
+
+
+def rpc_error(call):
+    """The grpc.RpcError that ``call()`` raises (fails the test when it raises none)."""
+    import grpc
+
+    with pytest.raises(grpc.RpcError) as e:
+        call()
+    return e.value

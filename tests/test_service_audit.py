@@ -60,10 +60,7 @@ def library(p: Problem) -> CandidateSet:
     return CandidateSet.from_array(p, X, ids=ids)
 
 
-def _err(call) -> grpc.RpcError:
-    with pytest.raises(grpc.RpcError) as e:
-        call()
-    return e.value
+from conftest import rpc_error as _err  # noqa: E402
 
 
 @pytest.fixture(scope="module")

@@ -35,10 +35,7 @@ SMALL_CANDS = [{"id": "k1", "assignment": {"a": 1, "b": 0, "c": 1, "d": 1, "e": 
                {"id": "k2", "assignment": {"a": 0, "b": 1, "c": 0, "d": 0, "e": 0}}]
 
 
-def _code(call) -> grpc.StatusCode:
-    with pytest.raises(grpc.RpcError) as e:
-        call()
-    return e.value
+from conftest import rpc_error as _code  # noqa: E402
 
 
 @pytest.fixture(scope="module")
