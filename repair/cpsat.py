@@ -12,7 +12,10 @@ Model (data, variables, constraints, objective, solve, status — in that order)
   constraint;
 * hard rows as linear constraints; an optional local-branching radius
   ``sum_i |x_i - c_i| <= R`` around a centre ``c``; an optional price per flip;
-* an optional objective cut-off (``objective <= upper``) for improving searches.
+* an optional objective cut-off (``objective <= upper``) for improving searches;
+* or, lexicographically (:meth:`LateModel.fewest_flips`), the objective as a cut-off
+  (``objective <= best cost + slack``) and the Hamming distance to a centre minimised:
+  the fewest flips at the best cost.
 
 The model is built once (:class:`LateModel`) and cloned for each search, which
 then adds its own objective (price per flip), radius, cut-off and hint.
@@ -176,41 +179,130 @@ class LateModel:
               cancel: threading.Event | None = None) -> CpsatOutput:
         """One search on a clone of the model; see :func:`solve_cpsat` for the options."""
         t0 = time.perf_counter()
-        n = self.compiled.n
         s = self.scale
         m = self.model.clone()
         proto = m.proto
+        self._add_radius(proto, center, radius)
+        idx, coef, const_units, err = self._objective_terms(center, flip_price)
+        proto.objective.vars.extend(idx.tolist())
+        proto.objective.coeffs.extend(coef.tolist())
+        proto.objective.offset = float(const_units)
+        if upper is not None:
+            self._add_cut(proto, idx, coef, self._units(upper, const_units))
+        if hint is not None:
+            self._hint(proto, np.asarray(hint, dtype=np.int64))
+        solver, code = self._run(m, t0=t0, time_limit=time_limit, workers=workers, seed=seed,
+                                 cancel=cancel)
+        status = _STATUS.get(code, "unknown")
+        xs = None
+        value = bound = float("nan")
+        if code in (cp_model.OPTIMAL, cp_model.FEASIBLE):
+            xs = np.asarray([solver.value(v) for v in self.x], dtype=np.int8)
+            value = solver.objective_value / s + self.const
+            bound = solver.best_objective_bound / s + self.const
+        return CpsatOutput(x=xs, status=status, objective=value, bound=bound,
+                           seconds=time.perf_counter() - t0, scaling_error=err, scale=s)
+
+    def fewest_flips(self, *, center: np.ndarray, upper: float, hint: np.ndarray | None = None,
+                     radius: int | None = None, flip_price: float = 0.0, slack: float = 1e-9,
+                     time_limit: float = 1.0, workers: int = 1, seed: int = 0,
+                     cancel: threading.Event | None = None) -> CpsatOutput:
+        """Fewest flips from ``center`` (int8 (n,)) among assignments costing at most ``upper``.
+
+        The cost is the objective :meth:`solve` minimises with the same ``center`` and
+        ``flip_price`` (cost + flip_price * flips from ``center``), on the integer-scaled
+        model, and must be <= ``upper + slack * max(1, |upper|)``. With a ``hint`` (int8 (n,),
+        normally the answer whose cost gave ``upper``) the bound is widened, if needed, to the
+        hint's own scaled objective, so that rounding never makes the hint infeasible.
+        Fixings, hard rows and ``radius`` (around ``center``) hold as in :meth:`solve`.
+
+        Returns a :class:`CpsatOutput` whose ``objective`` is the Hamming distance of ``x`` from
+        ``center`` and ``bound`` the proven lower bound on it: status "optimal" means no
+        assignment within the cost bound (in the scaled model, so within ``scaling_error``
+        per coefficient) has fewer flips.
+        """
+        t0 = time.perf_counter()
+        m = self.model.clone()
+        proto = m.proto
+        c = np.asarray(center, dtype=np.int64)
+        self._add_radius(proto, c, radius)
+        idx, coef, const_units, err = self._objective_terms(c, flip_price)
+        top = self._units(upper + slack * max(1.0, abs(upper)), const_units)
+        if hint is not None:
+            hv = np.asarray(hint, dtype=np.int64)
+            vars_, vals = self._hint_values(hv)
+            val_of = dict(zip(vars_, vals))
+            if all(int(v) in val_of for v in idx.tolist()):
+                own = sum(int(a) * val_of[int(v)] for v, a in zip(idx.tolist(), coef.tolist()))
+                top = max(top, own)
+            proto.solution_hint.vars.extend(vars_)
+            proto.solution_hint.values.extend(vals)
+        self._add_cut(proto, idx, coef, top)
+        x_idx = [v.index for v in self.x]
+        sign = 1 - 2 * c  # flips = sum_i sign_i x_i + sum_i c_i
+        proto.objective.vars.extend(x_idx)
+        proto.objective.coeffs.extend(sign.tolist())
+        proto.objective.offset = float(c.sum())
+        solver, code = self._run(m, t0=t0, time_limit=time_limit, workers=workers, seed=seed,
+                                 cancel=cancel)
+        status = _STATUS.get(code, "unknown")
+        xs = None
+        value = bound = float("nan")
+        if code in (cp_model.OPTIMAL, cp_model.FEASIBLE):
+            xs = np.asarray([solver.value(v) for v in self.x], dtype=np.int8)
+            value = float(solver.objective_value)
+            bound = float(solver.best_objective_bound)
+        return CpsatOutput(x=xs, status=status, objective=value, bound=bound,
+                           seconds=time.perf_counter() - t0, scaling_error=err, scale=self.scale)
+
+    # ------------------------------------------------------------------ parts of a search
+    def _add_radius(self, proto, center, radius) -> None:
+        """Local branching: ``sum_i |x_i - center_i| <= radius`` (nothing without both)."""
+        if center is None or radius is None:
+            return
+        c = np.asarray(center, dtype=np.int64)
+        ct = proto.constraints.add()
+        ct.linear.vars.extend([v.index for v in self.x])
+        ct.linear.coeffs.extend((1 - 2 * c).tolist())
+        ct.linear.domain.extend([-(2**40), int(radius) - int(c.sum())])
+
+    def _objective_terms(self, center, flip_price):
+        """The scaled late objective, with ``flip_price`` per flip from ``center`` if both given.
+
+        Returns (vars int64, coefs int64 (nonzero), constant in scaled units, largest
+        coefficient scaling error). The objective in caller units is
+        ``(sum coef * value + constant) / scale + self.const``.
+        """
+        s = self.scale
         lin = self.lin.copy()
-        const_units = 0  # integer objective constant (scaled)
+        const_units = 0
         err = self.scale_error
-        x_idx = np.asarray([v.index for v in self.x], dtype=np.int64)
-        if center is not None and (radius is not None or flip_price):
+        if center is not None and flip_price:
             c = np.asarray(center, dtype=np.int64)
-            sign = 1 - 2 * c  # dist = sum_i (x_i if c_i == 0 else 1 - x_i)
-            if radius is not None:
-                ct = proto.constraints.add()
-                ct.linear.vars.extend(x_idx.tolist())
-                ct.linear.coeffs.extend(sign.tolist())
-                ct.linear.domain.extend([-(2**40), int(radius) - int(c.sum())])
-            if flip_price:
-                ps = _int(flip_price, s)
-                err = max(err, abs(ps / s - flip_price))
-                lin = lin + ps * sign
-                const_units += ps * int(c.sum())
+            ps = _int(flip_price, s)
+            err = max(err, abs(ps / s - flip_price))
+            lin = lin + ps * (1 - 2 * c)
+            const_units += ps * int(c.sum())
+        x_idx = np.asarray([v.index for v in self.x], dtype=np.int64)
         idx = np.concatenate([x_idx, self.obj_idx])
         coef = np.concatenate([lin, self.obj_coef])
         keep = coef != 0
-        proto.objective.vars.extend(idx[keep].tolist())
-        proto.objective.coeffs.extend(coef[keep].tolist())
-        proto.objective.offset = float(const_units)
-        if upper is not None:
-            ct = proto.constraints.add()
-            ct.linear.vars.extend(idx[keep].tolist())
-            ct.linear.coeffs.extend(coef[keep].tolist())
-            top = math.floor((upper - self.const) * s + 1e-6) - const_units
-            ct.linear.domain.extend([-(2**62), int(top)])
-        if hint is not None:
-            self._hint(proto, np.asarray(hint, dtype=np.int64))
+        return idx[keep], coef[keep], const_units, err
+
+    def _units(self, upper: float, const_units: int) -> int:
+        """Largest scaled objective (without the constant) whose value is <= ``upper``."""
+        return int(math.floor((upper - self.const) * self.scale + 1e-6) - const_units)
+
+    @staticmethod
+    def _add_cut(proto, idx, coef, top: int) -> None:
+        ct = proto.constraints.add()
+        ct.linear.vars.extend(idx.tolist())
+        ct.linear.coeffs.extend(coef.tolist())
+        ct.linear.domain.extend([-(2**62), int(top)])
+
+    @staticmethod
+    def _run(m, *, t0, time_limit, workers, seed, cancel):
+        """Solve ``m`` within what is left of ``time_limit`` since ``t0``; stop on ``cancel``."""
         solver = cp_model.CpSolver()
         solver.parameters.max_time_in_seconds = max(0.01, float(time_limit) - (time.perf_counter() - t0))
         solver.parameters.num_workers = max(1, int(workers))
@@ -230,18 +322,16 @@ class LateModel:
         finished.set()
         if watcher is not None:
             watcher.join()
-        status = _STATUS.get(code, "unknown")
-        xs = None
-        value = bound = float("nan")
-        if code in (cp_model.OPTIMAL, cp_model.FEASIBLE):
-            xs = np.asarray([solver.value(v) for v in self.x], dtype=np.int8)
-            value = solver.objective_value / s + self.const
-            bound = solver.best_objective_bound / s + self.const
-        return CpsatOutput(x=xs, status=status, objective=value, bound=bound,
-                           seconds=time.perf_counter() - t0, scaling_error=err, scale=s)
+        return solver, code
 
     def _hint(self, proto, hv: np.ndarray) -> None:
         """A complete hint: the bits and every auxiliary value they imply."""
+        vars_, vals = self._hint_values(hv)
+        proto.solution_hint.vars.extend(vars_)
+        proto.solution_hint.values.extend(vals)
+
+    def _hint_values(self, hv: np.ndarray) -> tuple[list, list]:
+        """(variable indices, values) of the complete hint of the bits ``hv`` int64 (n,)."""
         vars_, vals = [v.index for v in self.x], hv.tolist()
         for y, a, b in self.products:
             vars_.append(y.index)
@@ -256,8 +346,7 @@ class LateModel:
             vals += [int(dv), int(tab[dv])]
         if self.decisions is not None:
             self.decisions.hint(self.compiled.problem, hv, vars_, vals)
-        proto.solution_hint.vars.extend(vars_)
-        proto.solution_hint.values.extend(vals)
+        return vars_, vals
 
 
 class _Decisions:

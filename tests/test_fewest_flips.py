@@ -1,0 +1,181 @@
+"""The lexicographic CP-SAT step: fewest flips from a candidate at the best cost.
+
+Every expected value is computed by brute force: dimod.ExactSolver (dimod's exhaustive
+reference solver) gives the energy of all 2^n assignments (n <= 12); fixings and hard rows
+are checked on those assignments directly in numpy; the expected answer is the smallest
+Hamming distance from the centre among the assignments that meet them at the bound.
+"""
+
+import dimod
+import numpy as np
+import pytest
+
+from repair import CandidateSet, Problem, repair
+from repair.compiled import compile_constraints
+from repair.constraints import FixVariables, LinearConstraint
+from repair.cpsat import LateModel
+
+
+def exhaustive(bqm: dimod.BinaryQuadraticModel, labels):
+    """All assignments int8 (2^n, n) in ``labels`` order and their energies, by dimod.ExactSolver."""
+    ss = dimod.ExactSolver().sample(bqm)
+    X = ss.record.sample[:, [ss.variables.index(v) for v in labels]].astype(np.int8)
+    return X, ss.record.energy.astype(np.float64)
+
+
+def random_bqm(seed: int, n: int = 10) -> dimod.BinaryQuadraticModel:
+    """Small integer BINARY QUBO with coefficients in {-1, 0, 1}: many ties, so many optima."""
+    rng = np.random.default_rng(seed)
+    lin = {i: float(rng.integers(-1, 2)) for i in range(n)}
+    quad = {(i, j): float(rng.integers(-1, 2)) for i in range(n) for j in range(i + 1, n)
+            if rng.random() < 0.4}
+    return dimod.BinaryQuadraticModel(lin, quad, 0.0, dimod.BINARY)
+
+
+def expected_fewest(X, E, center, *, upper, ok, price=0.0, radius=None):
+    """Brute force: the smallest distance from ``center`` among rows of X meeting ``ok``, with
+    E + price * distance <= upper (and distance <= radius); None when there is none."""
+    dist = (X != center[None, :]).sum(axis=1)
+    keep = ok & (E + price * dist <= upper + 1e-9)
+    if radius is not None:
+        keep &= dist <= radius
+    return int(dist[keep].min()) if keep.any() else None
+
+
+CASES = [
+    # (seed, hard, price, radius_mode, upper_above_best)
+    (0, False, 0.0, None, 0.0),
+    (1, False, 0.0, None, 0.0),
+    (2, True, 0.0, None, 0.0),
+    (3, True, 0.0, "exact", 0.0),
+    (4, False, 0.0, "tight", 0.0),
+    (5, True, 0.0, "tight", 0.0),
+    (6, False, 1.0, None, 0.0),
+    (7, True, 2.0, "exact", 0.0),
+    (8, False, 0.0, None, 1.0),
+    (9, True, 0.0, None, 1.0),
+]
+
+
+@pytest.mark.parametrize("seed,hard,price,radius_mode,above", CASES)
+def test_fewest_flips_matches_brute_force(seed, hard, price, radius_mode, above):
+    n = 10
+    bqm = random_bqm(seed, n)
+    p = Problem.from_bqm(bqm)
+    labels = list(p.labels)
+    cons = []
+    X, E = exhaustive(bqm, labels)
+    ok = np.ones(X.shape[0], dtype=bool)
+    if hard:
+        # two fixings and a hard row; checked on the enumerated assignments directly
+        cons += [FixVariables({labels[0]: 1, labels[3]: 0}),
+                 LinearConstraint({labels[i]: 1.0 for i in range(4, 9)}, "<=", 2.0)]
+        ok &= (X[:, 0] == 1) & (X[:, 3] == 0) & (X[:, 4:9].sum(axis=1) <= 2)
+    rng = np.random.default_rng(100 + seed)
+    center = rng.integers(0, 2, n).astype(np.int8)
+    dist = (X != center[None, :]).sum(axis=1)
+    obj = E + price * dist
+    best = float(obj[ok].min())
+    upper = best + above
+    # the hint: the costliest-in-flips assignment at the best objective (the worst start)
+    at_best = np.flatnonzero(ok & (obj <= best + 1e-9))
+    hint = X[at_best[np.argmax(dist[at_best])]]
+    want = expected_fewest(X, E, center, upper=upper, ok=ok, price=price)
+    assert want is not None
+    radius = None
+    if radius_mode == "exact":  # a radius that leaves the answer inside
+        radius = want
+    elif radius_mode == "tight":  # a radius one short of it: nothing fits
+        radius = want - 1 if want > 0 else None
+    comp = compile_constraints(p, cons)
+    model = LateModel(comp)
+    r = model.fewest_flips(center=center, upper=upper, hint=hint, radius=radius,
+                           flip_price=price, time_limit=1.0, workers=1, seed=seed)
+    want_r = expected_fewest(X, E, center, upper=upper, ok=ok, price=price, radius=radius)
+    if want_r is None:
+        assert r.status == "infeasible" and r.x is None  # CP-SAT's proof of no assignment
+        return
+    assert r.status == "optimal"
+    assert int((r.x != center).sum()) == want_r == r.objective == r.bound
+    # the answer itself meets the bound and the hard constraints (ExactSolver energy)
+    row = int(np.flatnonzero((X == r.x[None, :]).all(axis=1))[0])
+    assert ok[row] and E[row] + price * want_r <= upper + 1e-9
+    assert r.scaling_error == 0.0  # whole-number coefficients and prices: exact scaling
+
+
+def test_fewest_flips_keeps_a_hint_at_a_rounded_bound_feasible():
+    """Float coefficients (not decimals): the bound is widened to the hint's scaled cost."""
+    rng = np.random.default_rng(11)
+    n = 8
+    lin = {i: float(rng.normal()) / 3.0 for i in range(n)}
+    quad = {(i, i + 1): float(rng.normal()) / 7.0 for i in range(n - 1)}
+    bqm = dimod.BinaryQuadraticModel(lin, quad, 0.0, dimod.BINARY)
+    p = Problem.from_bqm(bqm)
+    X, E = exhaustive(bqm, list(p.labels))
+    b = int(np.argmin(E))
+    model = LateModel(compile_constraints(p, []))
+    center = 1 - X[b]
+    # a bound a hair below the optimum (dimod.ExactSolver's value) with no slack: only the
+    # widening to the hint's own scaled cost keeps the optimum feasible
+    r = model.fewest_flips(center=center, upper=float(E[b]) - 1e-12, hint=X[b], slack=0.0,
+                           time_limit=1.0, workers=1)
+    assert r.status == "optimal" and r.x is not None
+    assert model.scale_error > 0.0 and r.scaling_error == model.scale_error
+    want = expected_fewest(X, E, center, upper=float(E[b]), ok=np.ones(len(E), bool))
+    assert int((r.x != center).sum()) == want  # random normals: the optimum is unique
+
+
+# ---------------------------------------------------------------- through repair()
+def switch_model(groups: int = 2):
+    """Per group (a, b, c, d1, d2, d3), stated for the complements u' = 1 - u and repaired from
+    the all-one candidate (u = 0; construction of our own): a (bias -5) clashes with b and c
+    (+10 each); b and c (bias -4 each) cost -8 together, 2 flips; a then d1..d3 (bias +1,
+    -2 with a) also cost -8, 4 flips. Steepest descent takes a first (-5 beats -4), then the
+    d's, and no single flip leaves that optimum. (Complemented, so that CP-SAT's habit of
+    trying 0 first does not land on the 2-flip optimum by chance.)"""
+    lin, quad = {}, {}
+    for g in range(groups):
+        a, b, c = f"a{g}", f"b{g}", f"c{g}"
+        lin.update({a: -5.0, b: -4.0, c: -4.0})
+        quad.update({(a, b): 10.0, (a, c): 10.0})
+        for i in range(3):
+            lin[f"d{g}_{i}"] = 1.0
+            quad[(a, f"d{g}_{i}")] = -2.0
+    bqm = dimod.BinaryQuadraticModel(lin, quad, 0.0, dimod.BINARY)
+    for v in list(bqm.variables):
+        bqm.flip_variable(v)  # u' = 1 - u
+    return bqm
+
+
+@pytest.mark.parametrize("hard", [False, True])
+def test_repair_reports_the_fewest_flips_at_the_best_cost(hard):
+    bqm = switch_model(2)
+    p = Problem.from_bqm(bqm)
+    labels = list(p.labels)
+    X, E = exhaustive(bqm, labels)
+    ok = np.ones(X.shape[0], dtype=bool)
+    cons = []
+    if hard:
+        # late: d1_0 is fixed on (u' = 0: group 1 then has one optimum), and a0 + b0 <= 1
+        # (-a0' - b0' <= -1: a hard row that both optima of group 0 meet, so the tie stays)
+        col = {v: i for i, v in enumerate(labels)}
+        cons = [FixVariables({"d1_0": 0}), LinearConstraint({"a0": -1.0, "b0": -1.0}, "<=", -1.0)]
+        ok &= (X[:, col["d1_0"]] == 0) & (X[:, col["a0"]] + X[:, col["b0"]] >= 1)
+    cand = np.ones((1, p.n), dtype=np.int8)
+    best = float(E[ok].min())
+    want = expected_fewest(X, E, cand[0], upper=best, ok=ok)
+    res = repair(p, CandidateSet.from_array(p, cand), cons, method="portfolio",
+                 time_limit=0.6, workers=1, seed=0)
+    assert res.best.feasible and res.best.cost == pytest.approx(best)  # ExactSolver optimum
+    assert res.best.flips == want  # brute force: fewest flips among the optima
+    assert res.stats["fewest_flips_status"] == "optimal"  # CP-SAT proved no fewer flips
+
+
+def test_greedy_plan_does_not_run_the_cpsat_step():
+    bqm = switch_model(1)
+    p = Problem.from_bqm(bqm)
+    cand = np.ones((1, p.n), dtype=np.int8)
+    res = repair(p, CandidateSet.from_array(p, cand), [], method="greedy", time_limit=0.5)
+    assert "fewest_flips_status" not in res.stats
+    # steepest descent ends in the 4-flip optimum and polish cannot leave it (see switch_model)
+    assert res.best.flips == 4 and res.best.cost == -8.0
