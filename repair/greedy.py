@@ -30,6 +30,8 @@ import numba as nb
 import numpy as np
 
 from .compiled import FEAS_TOL, Compiled
+from .borrow import borrow_all
+from .heaps import heap_remove, heap_set
 
 __all__ = ["GreedyOutput", "greedy_repair", "descend_qubo", "objective_tol", "warm_up"]
 
@@ -123,13 +125,22 @@ def _descend_heap(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
     pushes those that improve, so a step costs O(degree * log heap); near a local minimum
     the heap is small, so start-up is the O(n + nnz) field computation alone.
     """
-    K, n = X.shape
+    n = X.shape[1]
     cap = 4 * n + 64
-    hv = np.empty(cap)
-    hi = np.empty(cap, dtype=np.int64)
-    hs = np.empty(cap, dtype=np.int64)
-    field = np.empty(n)
-    stamp = np.zeros(n, dtype=np.int64)
+    scratch = (np.empty(cap), np.empty(cap, dtype=np.int64), np.empty(cap, dtype=np.int64),
+               np.empty(n), np.zeros(n, dtype=np.int64))
+    _heap_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, steps_out,
+               scratch)
+
+
+@nb.njit(cache=True)
+def _heap_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, steps_out,
+               scratch):
+    X, origin, h, indptr, indices, data, fixed, steps_out = borrow_all(
+        (X, origin, h, indptr, indices, data, fixed, steps_out))
+    hv, hi, hs, field, stamp = borrow_all(scratch)
+    K, n = X.shape
+    cap = hv.size
     for k in range(K):
         x = X[k]
         o = origin[k]
@@ -271,30 +282,85 @@ def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max
                      cp_ptr, cp_table, cp_const, term_pen, term_coef, term_arity, lit_ptr,
                      lit_var, lit_val, vt_ptr, vt_term, vt_lit,
                      a_ptr, a_col, a_val, col_ptr, col_row, col_val, lo, hi, rtol,
-                     pair_width, steps_out):
+                     pair_width, use_heaps, par, gbase, glb, caps, gs_ptr, gs_kind, gs_id, gs_val,
+                     nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row, ncol_val,
+                     vs_ptr, vs_struct, sm_ptr, sm_var, steps_out):
+    """Restore feasibility, then descend (see the module docstring), in place on X (K, n).
+
+    With ``use_heaps`` the single flips of phase 2 come from the grouped heaps: ``gbase``
+    int64 (n, 2) is the group of variable i when it holds bit b, ``par`` 2 when a radius
+    splits each group by whether a flip moves away from the candidate (else 1), ``caps``
+    int64 (groups,) each heap's capacity, ``gs_*`` each base group's signature (kind 0: a
+    wide row and the activity change, 1: a wide count penalty and the change of d),
+    ``nvt_*`` / ``ncol_*`` the variable-to-term and variable-to-row maps of the narrow
+    structures only, ``vs_*`` / ``sm_*`` variable -> narrow structures -> members.
+    """
+    n = X.shape[1]
+    base = np.zeros(caps.size, dtype=np.int64)
+    for g in range(1, caps.size):
+        base[g] = base[g - 1] + caps[g - 1]
+    slots = base[-1] + caps[-1] if caps.size else 0
+    most = 0  # the longest re-key list of one flip
+    for i in range(n):
+        c = 1 + indptr[i + 1] - indptr[i]
+        for q in range(vs_ptr[i], vs_ptr[i + 1]):
+            c += sm_ptr[vs_struct[q] + 1] - sm_ptr[vs_struct[q]]
+        most = max(most, c)
+    scratch = (np.empty(n), np.empty(cp_const.size, dtype=np.int64),
+               np.empty(term_pen.size, dtype=np.int64), np.empty(lo.size),
+               np.zeros(cp_const.size, dtype=np.int64), np.empty(n, dtype=np.int64),
+               np.empty(pair_width, dtype=np.int64), np.empty(pair_width),
+               np.empty(pair_width, dtype=np.int64), np.empty(pair_width),
+               np.empty(slots), np.empty(slots, dtype=np.int64), np.full(n, -1, dtype=np.int64),
+               np.zeros(n, dtype=np.int64), base, np.zeros(caps.size, dtype=np.int64),
+               np.empty(most, dtype=np.int64))
+    _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, radius,
+                  cp_ptr, cp_table, cp_const, term_pen, term_coef, term_arity, lit_ptr,
+                  lit_var, lit_val, vt_ptr, vt_term, vt_lit,
+                  a_ptr, a_col, a_val, col_ptr, col_row, col_val, lo, hi, rtol,
+                  pair_width, use_heaps, par, gbase, glb, caps, gs_ptr, gs_kind, gs_id, gs_val,
+                  nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row, ncol_val,
+                  vs_ptr, vs_struct, sm_ptr, sm_var, steps_out, scratch)
+
+
+@nb.njit(cache=True)
+def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, radius,
+                  cp_ptr, cp_table, cp_const, term_pen, term_coef, term_arity, lit_ptr,
+                  lit_var, lit_val, vt_ptr, vt_term, vt_lit,
+                  a_ptr, a_col, a_val, col_ptr, col_row, col_val, lo, hi, rtol,
+                  pair_width, use_heaps, par, gbase, glb, caps, gs_ptr, gs_kind, gs_id, gs_val,
+                  nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row, ncol_val,
+                  vs_ptr, vs_struct, sm_ptr, sm_var, steps_out, scratch):
+    (X, origin, h, indptr, indices, data, fixed, cp_ptr, cp_table, cp_const, term_pen,
+     term_coef, term_arity, lit_ptr, lit_var, lit_val, vt_ptr, vt_term, vt_lit) = borrow_all((
+         X, origin, h, indptr, indices, data, fixed, cp_ptr, cp_table, cp_const, term_pen,
+         term_coef, term_arity, lit_ptr, lit_var, lit_val, vt_ptr, vt_term, vt_lit))
+    (a_ptr, a_col, a_val, col_ptr, col_row, col_val, lo, hi, rtol, gbase, glb, gs_ptr, gs_kind,
+     gs_id, gs_val, nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row, ncol_val, vs_ptr, vs_struct,
+     sm_ptr, sm_var, steps_out) = borrow_all((
+         a_ptr, a_col, a_val, col_ptr, col_row, col_val, lo, hi, rtol, gbase, glb, gs_ptr,
+         gs_kind, gs_id, gs_val, nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row, ncol_val,
+         vs_ptr, vs_struct, sm_ptr, sm_var, steps_out))
+    (field, dcount, sat, act, dd, free, up_i, up_v, dn_i, dn_v, hkey, hitem, slot, hheap, base,
+     size, todo) = borrow_all(scratch)
     K, n = X.shape
     P = cp_const.size
     T = term_pen.size
     m = lo.size
-    field = np.empty(n)
-    dcount = np.empty(P, dtype=np.int64)
-    sat = np.empty(T, dtype=np.int64)
-    act = np.empty(m)
-    dd = np.zeros(P, dtype=np.int64)
-    free = np.empty(n, dtype=np.int64)
     nfree = 0
     for i in range(n):
         if fixed[i] < 0:
             free[nfree] = i
             nfree += 1
-    up_i = np.empty(pair_width, dtype=np.int64)
-    up_v = np.empty(pair_width)
-    dn_i = np.empty(pair_width, dtype=np.int64)
-    dn_v = np.empty(pair_width)
     vtol = 1e-12
     Q = (indptr, indices, data)
     C = (cp_ptr, cp_table, term_pen, term_coef, term_arity, lit_val, vt_ptr, vt_term, vt_lit)
     R = (col_ptr, col_row, col_val, lo, hi, rtol)
+    Cn = (cp_ptr, cp_table, term_pen, term_coef, term_arity, lit_val, nvt_ptr, nvt_term, nvt_lit)
+    Rn = (ncol_ptr, ncol_row, ncol_val, lo, hi, rtol)
+    G = (gs_ptr, gs_kind, gs_id, gs_val)
+    N = (vs_ptr, vs_struct, sm_ptr, sm_var)
+    H = (hkey, hitem, slot, hheap, base, size)
     for k in range(K):
         x = X[k]
         o = origin[k]
@@ -379,70 +445,209 @@ def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max
             steps_out[k] = steps
             continue
         # ---- phase 2: feasible steepest descent, single flips then pair moves
-        while steps < max_steps:
-            best = -tol
-            bi = -1
+        if use_heaps:
+            for g in range(size.size):
+                size[g] = 0
             for f in range(nfree):
-                i = free[f]
-                dobj, dviol, nd = _eval_flip(i, S, dist, C, R, price)
-                if dobj < best and dviol <= vtol and (nd <= radius or nd < dist):
-                    best = dobj
-                    bi = i
-            if bi >= 0:
-                dist = _apply_flip(bi, S, dist, Q, C, R)
-                steps += 1
-                continue
-            if m == 0:
-                break
-            # pair moves inside each row: the best few "up" and "down" variables
-            bj = -1
-            for r in range(m):
-                nu = 0
-                ndn = 0
-                for q in range(a_ptr[r], a_ptr[r + 1]):
-                    i = a_col[q]
-                    if fixed[i] >= 0:
-                        continue
+                slot[free[f]] = -1
+            _rekey_list(free, nfree, S, Cn, Rn, price, tol, fixed, gbase, glb, par, H)
+        while steps < max_steps:
+            if use_heaps:
+                best, bi = _best_group_top(S, dist, H, G, C, R, radius, par, tol)
+            else:
+                best = -tol
+                bi = -1
+                for f in range(nfree):
+                    i = free[f]
                     dobj, dviol, nd = _eval_flip(i, S, dist, C, R, price)
-                    if x[i] == 0:
-                        ids, vals, cnt = up_i, up_v, nu
-                    else:
-                        ids, vals, cnt = dn_i, dn_v, ndn
-                    # keep the pair_width lowest dobj (insertion into a short sorted list)
-                    if cnt < pair_width or dobj < vals[cnt - 1]:
-                        pos = cnt if cnt < pair_width else pair_width - 1
-                        while pos > 0 and vals[pos - 1] > dobj:
-                            vals[pos] = vals[pos - 1]
-                            ids[pos] = ids[pos - 1]
-                            pos -= 1
-                        vals[pos] = dobj
-                        ids[pos] = i
-                        if cnt < pair_width:
-                            cnt += 1
-                    if x[i] == 0:
-                        nu = cnt
-                    else:
-                        ndn = cnt
-                for a in range(nu):
-                    i = up_i[a]
-                    dobj_i, dv_i, nd_i = _eval_flip(i, S, dist, C, R, price)
-                    d1 = _apply_flip(i, S, dist, Q, C, R)
-                    for b in range(ndn):
-                        j = dn_i[b]
-                        dobj_j, dv_j, nd_j = _eval_flip(j, S, d1, C, R, price)
-                        tot = dobj_i + dobj_j
-                        if (tot < best and dv_i + dv_j <= vtol
-                                and (nd_j <= radius or nd_j < dist)):
-                            best = tot
-                            bi = i
-                            bj = j
-                    _apply_flip(i, S, d1, Q, C, R)
-            if bi < 0:
-                break
-            for v in (bi, bj):
-                dist = _apply_flip(v, S, dist, Q, C, R)
+                    if dobj < best and dviol <= vtol and (nd <= radius or nd < dist):
+                        best = dobj
+                        bi = i
+            bj = -1
+            if bi < 0:  # no single flip improves: pair moves inside rows
+                if m == 0:
+                    break
+                bi, bj = _best_pair(S, dist, Q, C, R, a_ptr, a_col, a_val, fixed, price, radius,
+                                    -tol, up_i, up_v, dn_i, dn_v)
+                if bi < 0:
+                    break
+            for v in range(2):  # one call site: _flip is inlined
+                w = bi if v == 0 else bj
+                if w < 0:
+                    break
+                dist = _flip(w, S, dist, Q, C, R, use_heaps, Cn, Rn, price, tol, fixed, gbase,
+                             glb, par, H, N, todo)
             steps += 1
         steps_out[k] = steps
+
+
+@nb.njit(cache=True)
+def _best_pair(S, dist, Q, C, R, a_ptr, a_col, a_vals, fixed, price, radius, best, up_i, up_v,
+               dn_i, dn_v):
+    """The best feasible pair move (one variable up, one down, in the same row) below
+    ``best``: (i, j), or (-1, -1). Each row tries its best ``up_i.size`` of each side."""
+    x = S[0]
+    pair_width = up_i.size
+    vtol = 1e-12
+    bi = -1
+    bj = -1
+    act, lo, hi, rtol = S[5], R[3], R[4], R[5]
+    for r in range(a_ptr.size - 1):
+        # only rows that block some single flip of theirs: elsewhere a pair is just two
+        # single flips, which phase 2 has already found not to improve
+        blocked = False
+        for q in range(a_ptr[r], a_ptr[r + 1]):
+            i = a_col[q]
+            if fixed[i] < 0:
+                a1 = act[r] + (1.0 - 2.0 * x[i]) * a_vals[q]
+                if _row_viol(a1, lo[r], hi[r], rtol[r]) > 0.0:
+                    blocked = True
+                    break
+        if not blocked:
+            continue
+        nu = 0
+        ndn = 0
+        for q in range(a_ptr[r], a_ptr[r + 1]):
+            i = a_col[q]
+            if fixed[i] >= 0:
+                continue
+            dobj, dviol, nd = _eval_flip(i, S, dist, C, R, price)
+            if x[i] == 0:
+                ids, vals, cnt = up_i, up_v, nu
+            else:
+                ids, vals, cnt = dn_i, dn_v, ndn
+            # keep the pair_width lowest dobj (insertion into a short sorted list)
+            if cnt < pair_width or dobj < vals[cnt - 1]:
+                pos = cnt if cnt < pair_width else pair_width - 1
+                while pos > 0 and vals[pos - 1] > dobj:
+                    vals[pos] = vals[pos - 1]
+                    ids[pos] = ids[pos - 1]
+                    pos -= 1
+                vals[pos] = dobj
+                ids[pos] = i
+                if cnt < pair_width:
+                    cnt += 1
+            if x[i] == 0:
+                nu = cnt
+            else:
+                ndn = cnt
+        for a in range(nu):
+            i = up_i[a]
+            dobj_i, dv_i, nd_i = _eval_flip(i, S, dist, C, R, price)
+            d1 = _apply_flip(i, S, dist, Q, C, R)
+            for b in range(ndn):
+                j = dn_i[b]
+                dobj_j, dv_j, nd_j = _eval_flip(j, S, d1, C, R, price)
+                tot = dobj_i + dobj_j
+                if tot < best and dv_i + dv_j <= vtol and (nd_j <= radius or nd_j < dist):
+                    best = tot
+                    bi = i
+                    bj = j
+            _apply_flip(i, S, d1, Q, C, R)
+    return bi, bj
+
+
+# ----------------------------------------------------- grouped single flips
+# With late rows or count penalties, the change of a flip has a local part (QUBO field,
+# flip price, the narrow structures the variable is in) and a part from the wide
+# structures (long rows, long count penalties of single-literal terms) that depends only
+# on which way the flip moves each of them. Variables with the same such signature form a
+# group; each group keeps its variables in an indexed heap by local part, so a step looks
+# at one top per group and a flip re-keys only the variables that share a structure with it.
+@nb.njit(cache=True, inline="always")
+def _rekey(j, S, Cn, Rn, price, tol, fixed, gbase, glb, par, H):
+    """Recompute variable j's local change and keep it in its group's heap only while it
+    could be taken: local change + the group's least possible offset below -tol."""
+    if fixed[j] >= 0:
+        return
+    x, o = S[0], S[1]
+    key, item, slot, heap, base, size = H
+    dobj, dviol, nd = _eval_flip(j, S, 0, Cn, Rn, price)
+    gb = gbase[j, x[j]]
+    if dviol <= 1e-12 and dobj + glb[gb] < -tol:
+        g = gb * par + (1 if par == 2 and x[j] == o[j] else 0)
+        heap_set(key, item, slot, heap, base, size, j, g, dobj)
+    else:
+        heap_remove(key, item, slot, heap, base, size, j)
+
+
+@nb.njit(cache=True, inline="always")
+def _best_group_top(S, dist, H, G, C, R, radius, par, tol):
+    """(change, variable) of the best feasible single flip below -tol, or (-tol, -1)."""
+    act, dcount = S[5], S[3]
+    key, item, slot, heap, base, size = H
+    gs_ptr, gs_kind, gs_id, gs_val = G
+    cp_table, cp_ptr = C[1], C[0]
+    lo, hi, rtol = R[3], R[4], R[5]
+    best = -tol
+    bi = -1
+    for g in range(size.size):
+        if size[g] == 0:
+            continue
+        s0 = base[g]
+        top = key[s0]
+        if top == _INF:
+            continue
+        if par == 2:
+            nd = dist + 1 if g % 2 == 1 else dist - 1
+            if not (nd <= radius or nd < dist):
+                continue
+        gb = g // par
+        off = 0.0
+        ok = True
+        for q in range(gs_ptr[gb], gs_ptr[gb + 1]):
+            sid = gs_id[q]
+            v = gs_val[q]
+            if gs_kind[q] == 0:
+                a0 = act[sid]
+                if (_row_viol(a0 + v, lo[sid], hi[sid], rtol[sid])
+                        - _row_viol(a0, lo[sid], hi[sid], rtol[sid])) > 1e-12:
+                    ok = False
+                    break
+            else:
+                b = cp_ptr[sid]
+                d0 = dcount[sid]
+                off += cp_table[b + d0 + int(v)] - cp_table[b + d0]
+        if not ok:
+            continue
+        val = top + off
+        if val < best or (val == best and item[s0] < bi):
+            best = val
+            bi = item[s0]
+    return best, bi
+
+
+@nb.njit(cache=True, inline="always")
+def _flip(i, S, dist, Q, C, R, use_heaps, Cn, Rn, price, tol, fixed, gbase, glb, par, H, N,
+          todo):
+    """Flip variable i (all state) and, with heaps, re-key every variable whose local
+    change it alters: i, its QUBO neighbours, the members of its narrow structures.
+    ``todo`` int64 (>= n + degree + co-members,) is scratch."""
+    dist = _apply_flip(i, S, dist, Q, C, R)
+    if not use_heaps:
+        return dist
+    indptr, indices = Q[0], Q[1]
+    vs_ptr, vs_struct, sm_ptr, sm_var = N
+    cnt = 0
+    todo[cnt] = i
+    cnt += 1
+    for p in range(indptr[i], indptr[i + 1]):
+        todo[cnt] = indices[p]
+        cnt += 1
+    for q in range(vs_ptr[i], vs_ptr[i + 1]):
+        s = vs_struct[q]
+        for e in range(sm_ptr[s], sm_ptr[s + 1]):
+            todo[cnt] = sm_var[e]
+            cnt += 1
+    for t in range(cnt):
+        _rekey(todo[t], S, Cn, Rn, price, tol, fixed, gbase, glb, par, H)
+    return dist
+
+
+@nb.njit(cache=True)
+def _rekey_list(vars_, cnt, S, Cn, Rn, price, tol, fixed, gbase, glb, par, H):
+    for t in range(cnt):
+        _rekey(vars_[t], S, Cn, Rn, price, tol, fixed, gbase, glb, par, H)
 
 
 # ------------------------------------------------------------------ driver
@@ -486,6 +691,121 @@ def _row_arrays(compiled: Compiled, n: int):
     rtol = np.asarray([FEAS_TOL * (1.0 + np.abs(r.coef).sum()) for r in compiled.rows],
                       dtype=np.float64)
     return a_ptr, a_col, a_val, col_ptr, rows[order], a_val[order], rtol
+
+
+#: A row or count penalty over more than this many variables is "wide": its share of a
+#: flip's change is taken per group (see the grouped heaps), not re-keyed per member.
+#: Common practice for such a split; the figure is ours, set by bench/kernel.py.
+WIDE = 64
+#: Grouped heaps pay only while there are few groups; past this share of the free
+#: variables the plain scan over free variables is used instead.
+MAX_GROUP_SHARE = 0.25
+
+
+def _csr(keys: np.ndarray, values: np.ndarray, n: int):
+    """(ptr int64 (n+1,), values sorted by key, stable)."""
+    order = np.argsort(keys, kind="stable")
+    ptr = np.zeros(n + 1, dtype=np.int64)
+    np.add.at(ptr, keys + 1, 1)
+    return np.cumsum(ptr), values[order]
+
+
+def _group_layout(compiled: Compiled, cnt, rows):
+    """Groups of variables by their wide-structure signature, and the narrow maps.
+
+    Returns a dict of kernel arrays (see _descend_general) plus ``members`` int64 (groups,)
+    (how many free variables can be in each base group) and ``groups``.
+    """
+    n = compiled.n
+    (cp_ptr, cp_table, cp_const, t_pen, t_coef, t_ar, l_ptr, l_var, l_val, vt_ptr,
+     vt_term, vt_lit) = cnt
+    a_ptr, a_col, a_val, col_ptr, col_row, col_val, rtol = rows
+    m, P = a_ptr.size - 1, cp_const.size
+    row_len = np.diff(a_ptr)
+    pen_len = np.bincount(t_pen, minlength=P) if P else np.zeros(0, dtype=np.int64)
+    single = np.ones(P, dtype=bool)
+    if t_pen.size:
+        np.logical_and.at(single, t_pen, t_ar == 1)
+    wide_row = row_len > WIDE
+    wide_pen = (pen_len > WIDE) & single
+    # signature matrix: for (i, b) the change of each wide structure when i flips from b
+    wr, wp = np.flatnonzero(wide_row), np.flatnonzero(wide_pen)
+    W = wr.size + wp.size
+    M = np.zeros((2, n, W))
+    for c, r in enumerate(wr):
+        cols = a_col[a_ptr[r]:a_ptr[r + 1]]
+        vals = a_val[a_ptr[r]:a_ptr[r + 1]]
+        np.add.at(M[0], (cols, c), vals)     # 0 -> 1 adds a
+        np.add.at(M[1], (cols, c), -vals)    # 1 -> 0 removes it
+    lit_term = np.repeat(np.arange(t_pen.size, dtype=np.int64), np.diff(l_ptr))
+    for c, p in enumerate(wp, start=wr.size):
+        sel = t_pen[lit_term] == p
+        v, lit, coef = l_var[sel], l_val[sel], t_coef[lit_term[sel]]
+        for b in (0, 1):  # the literal (v, lit) is satisfied now iff b == lit
+            np.add.at(M[b], (v, c), np.where(lit == b, -coef, coef).astype(np.float64))
+    uniq, inv = np.unique(M.reshape(2 * n, W), axis=0, return_inverse=True)
+    gbase = np.ascontiguousarray(inv.reshape(2, n).T, dtype=np.int64)
+    free = compiled.fixed < 0
+    groups = uniq.shape[0]
+    members = np.zeros(groups, dtype=np.int64)
+    g0, g1 = gbase[free, 0], gbase[free, 1]
+    np.add.at(members, g0, 1)
+    np.add.at(members, g1[g1 != g0], 1)
+    nz_g, nz_c = np.nonzero(uniq)
+    kinds = np.concatenate([np.zeros(wr.size, np.int64), np.ones(wp.size, np.int64)])
+    ids = np.concatenate([wr, wp]).astype(np.int64)
+    gs_ptr = np.zeros(groups + 1, dtype=np.int64)
+    np.add.at(gs_ptr, nz_g + 1, 1)
+    # narrow maps: variable -> terms of narrow penalties, variable -> narrow rows
+    keep_t = ~wide_pen[t_pen[vt_term]] if vt_term.size else np.zeros(0, dtype=bool)
+    keep_r = ~wide_row[col_row] if col_row.size else np.zeros(0, dtype=bool)
+    # members of each narrow structure (rows 0..m-1, then penalties m..m+P-1)
+    s_of, v_of = [], []
+    for r in np.flatnonzero(~wide_row):
+        cols = a_col[a_ptr[r]:a_ptr[r + 1]]
+        s_of.append(np.full(cols.size, r, dtype=np.int64))
+        v_of.append(cols.astype(np.int64))
+    for p in np.flatnonzero(~wide_pen):
+        vs = np.unique(l_var[t_pen[lit_term] == p])
+        s_of.append(np.full(vs.size, m + p, dtype=np.int64))
+        v_of.append(vs.astype(np.int64))
+    s_all = np.concatenate(s_of) if s_of else np.zeros(0, np.int64)
+    v_all = np.concatenate(v_of) if v_of else np.zeros(0, np.int64)
+    sm_ptr, sm_var = _csr(s_all, v_all, m + P)
+    vs_ptr, vs_struct = _csr(v_all, s_all, n)
+    nvt_ptr = np.concatenate([[0], np.cumsum(np.bincount(
+        np.repeat(np.arange(n), np.diff(vt_ptr))[keep_t], minlength=n))]).astype(np.int64)
+    ncol_ptr = np.concatenate([[0], np.cumsum(np.bincount(
+        np.repeat(np.arange(n), np.diff(col_ptr))[keep_r], minlength=n))]).astype(np.int64)
+    # least offset each group can ever get: rows add none, a count penalty its table's
+    # smallest step of that size
+    glb = np.zeros(groups)
+    for g, c in zip(nz_g, nz_c):
+        if c >= wr.size:
+            t = compiled.counts[int(ids[c])].table
+            step = int(round(uniq[g, c]))
+            lo_d, hi_d = max(0, -step), min(t.size, t.size - step)
+            if hi_d > lo_d:
+                glb[g] += min(0.0, float((t[lo_d + step:hi_d + step] - t[lo_d:hi_d]).min()))
+    return {
+        "gbase": gbase, "members": members, "groups": groups, "glb": glb,
+        "gs_ptr": np.cumsum(gs_ptr), "gs_kind": kinds[nz_c], "gs_id": ids[nz_c],
+        "gs_val": uniq[nz_g, nz_c].astype(np.float64),
+        "nvt_ptr": nvt_ptr, "nvt_term": vt_term[keep_t], "nvt_lit": vt_lit[keep_t],
+        "ncol_ptr": ncol_ptr, "ncol_row": col_row[keep_r], "ncol_val": col_val[keep_r],
+        "vs_ptr": vs_ptr, "vs_struct": vs_struct, "sm_ptr": sm_ptr, "sm_var": sm_var,
+    }
+
+
+def _general_arrays(compiled: Compiled):
+    """Every array the general kernel needs, built once per compiled problem."""
+    cached = getattr(compiled, "_greedy_arrays", None)
+    if cached is None:
+        cnt = _count_arrays(compiled, compiled.n)
+        rows = _row_arrays(compiled, compiled.n)
+        cached = (cnt, rows, _group_layout(compiled, cnt, rows))
+        compiled._greedy_arrays = cached
+    return cached
 
 
 def objective_tol(compiled: Compiled) -> float:
@@ -539,8 +859,11 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
         longest = int(np.diff(compiled.a_indptr).max(initial=1))
         pair_width = max(1, min(32, longest))
     if not fast:
-        cnt = _count_arrays(compiled, n)
-        rows = _row_arrays(compiled, n)
+        cnt, rows, lay = _general_arrays(compiled)
+        par = 2 if radius < n else 1
+        nfree = int((compiled.fixed < 0).sum())
+        use_heaps = lay["groups"] * par <= max(4, MAX_GROUP_SHARE * nfree)
+        caps = np.repeat(lay["members"], par) if use_heaps else np.zeros(0, dtype=np.int64)
     start = 0
     size = 1 if deadline is not None else chunk  # with a deadline: measure one, then fit
     per_cand = 0.0  # measured seconds per candidate
@@ -570,7 +893,11 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
                              radius, cp_ptr, cp_table, cp_const, t_pen, t_coef, t_ar, l_ptr,
                              l_var, l_val, vt_ptr, vt_term, vt_lit, a_ptr, a_col, a_val,
                              col_ptr, col_row, col_val, compiled.lo, compiled.hi, rtol,
-                             int(pair_width), st)
+                             int(pair_width), use_heaps, par, lay["gbase"], lay["glb"], caps,
+                             lay["gs_ptr"], lay["gs_kind"], lay["gs_id"], lay["gs_val"],
+                             lay["nvt_ptr"], lay["nvt_term"], lay["nvt_lit"], lay["ncol_ptr"],
+                             lay["ncol_row"], lay["ncol_val"], lay["vs_ptr"], lay["vs_struct"],
+                             lay["sm_ptr"], lay["sm_var"], st)
         per_cand = (time.perf_counter() - t0) / Xc.shape[0]
         X[sl] = Xc
         steps[sl] = st
