@@ -7,18 +7,25 @@ For every candidate, independently and deterministically:
    the flip (or, when no single flip helps, the pair of flips) with the lowest
    objective change per unit of violation removed;
 3. descend: take the feasible single flip with the most negative objective
-   change; when none improves and hard rows exist, try pair moves (one variable
-   up, one down, both in the same row) so equality rows can still move; stop at
-   a local minimum.
+   change; when none improves, try pair moves (one variable up, one down, both in
+   a row that blocks some single flip) so tight and equality rows can still move;
+   stop at a local minimum.
 
 The objective is the compiled QUBO plus the non-linear count penalties plus
 ``flip_price`` times the Hamming distance from the candidate. ``max_flips``
 caps that distance (a hard radius).
 
-Cost per flip update is O(degree): local fields, count-penalty term states and
-row activities are updated only where the flipped variable appears. With no
-hard rows, count penalties or radius, the improving flips are kept in a binary
-heap, so a step costs O(degree * log heap) instead of an O(n) scan.
+Cost per flip is O(degree log n) at worst, independent of n in practice: local fields,
+count-penalty term states and row activities are updated only where the flipped
+variable appears, and the best flip comes from tournament trees (repair.tournament)
+rather than a scan. On a pure QUBO one tree holds the improving flips (a small heap
+when a start has few). With late rows and count penalties, variables are grouped by
+how a flip moves the long ("wide") structures, one tree per group keyed by the rest of
+the change, and a step compares one top per group (see "grouped single flips"); with
+too many groups the kernel scans the free variables instead.
+
+The kernels take reference-count-free views of their arrays (repair.borrow): numba's
+atomic reference counting otherwise cost more than the arithmetic.
 """
 
 from __future__ import annotations
@@ -31,11 +38,14 @@ import numpy as np
 
 from .compiled import FEAS_TOL, Compiled
 from .borrow import borrow_all
-from .heaps import heap_remove, heap_set
+from .tournament import tree_clear, tree_set
 
 __all__ = ["GreedyOutput", "greedy_repair", "descend_qubo", "objective_tol", "warm_up"]
 
 _INF = np.inf
+#: Starts with at most this many improving flips descend with a small heap, others with
+#: the tournament tree (bench/kernel.py: near-optimal vs random starts).
+SMALL_START = 64
 
 
 @dataclass
@@ -64,7 +74,7 @@ def _swap(hv, hi, hs, a, b):
     hs[a], hs[b] = hs[b], hs[a]
 
 
-@nb.njit(cache=True)
+@nb.njit(cache=True, inline="always")
 def _sift_down(hv, hi, hs, size, p):
     while True:
         c = 2 * p + 1
@@ -78,7 +88,7 @@ def _sift_down(hv, hi, hs, size, p):
         p = c
 
 
-@nb.njit(cache=True)
+@nb.njit(cache=True, inline="always")
 def _push(hv, hi, hs, size, value, var, stamp):
     hv[size] = value
     hi[size] = var
@@ -93,102 +103,195 @@ def _push(hv, hi, hs, size, value, var, stamp):
     return size + 1
 
 
+@nb.njit(cache=True)
+def _row_sums(h, indptr, data):
+    """h + J 1: every variable's field when all bits are 1. float64 (n,)."""
+    full = h.copy()
+    for i in range(h.size):
+        for p in range(indptr[i], indptr[i + 1]):
+            full[i] += data[p]
+    return full
+
+
+@nb.njit(cache=True)
+def _anchor_field(anchor, h, indptr, indices, data):
+    """h + J anchor, float64 (n,)."""
+    field = h.copy()
+    for i in range(h.size):
+        for p in range(indptr[i], indptr[i + 1]):
+            field[i] += data[p] * anchor[indices[p]]
+    return field
+
+
 @nb.njit(cache=True, inline="always")
 def _delta(x, o, field, price, i):
     d = (1.0 - 2.0 * x[i]) * field[i]
     return d + price if x[i] == o[i] else d - price
 
 
+@nb.njit(cache=True, inline="always")
+def _init_field(x, anchor, afield, full, h, indptr, indices, data, field):
+    """field = h + J x (J symmetric CSR), by the cheapest of three routes: from the
+    anchor's field by the bits that differ from it, from h by the set bits, or from
+    ``full`` (h + J 1) by the clear bits. The route depends on x and the anchor alone."""
+    n = x.size
+    ones = 0
+    apart = 0
+    for i in range(n):
+        ones += x[i]
+        apart += x[i] != anchor[i]
+    if apart <= ones and apart <= n - ones:
+        for i in range(n):
+            field[i] = afield[i]
+        for j in range(n):
+            if x[j] != anchor[j]:
+                s = 1.0 if x[j] == 1 else -1.0
+                for p in range(indptr[j], indptr[j + 1]):
+                    field[indices[p]] += s * data[p]
+    elif 2 * ones <= n:
+        for i in range(n):
+            field[i] = h[i]
+        for j in range(n):
+            if x[j] == 1:
+                for p in range(indptr[j], indptr[j + 1]):
+                    field[indices[p]] += data[p]
+    else:
+        for i in range(n):
+            field[i] = full[i]
+        for j in range(n):
+            if x[j] == 0:
+                for p in range(indptr[j], indptr[j + 1]):
+                    field[indices[p]] -= data[p]
+
+
 @nb.njit(cache=True)
-def _refill(x, o, field, fixed, price, tol, stamp, hv, hi, hs):
-    """Heap of every improving free variable (current stamps), built in O(n)."""
+def _heap_descent(x, o, field, fixed, price, tol, max_steps, indptr, indices, data, found, cnt,
+                  hv, hi, hs, stamp):
+    """The same descent for a start with few improving flips (``found[:cnt]``): they sit in
+    a small binary heap with lazy deletion (an entry is current while its stamp matches),
+    cheaper than tree walks while the heap stays small. Returns the steps taken."""
+    cap = hv.size
     size = 0
-    for i in range(x.size):
-        if fixed[i] < 0:
-            d = _delta(x, o, field, price, i)
-            if d < -tol:
-                hv[size] = d
-                hi[size] = i
-                hs[size] = stamp[i]
-                size += 1
-    for p in range(size // 2 - 1, -1, -1):
-        _sift_down(hv, hi, hs, size, p)
-    return size
+    for c in range(cnt):
+        i = found[c]
+        size = _push(hv, hi, hs, size, _delta(x, o, field, price, i), i, stamp[i])
+    steps = 0
+    while steps < max_steps and size > 0:
+        i = hi[0]
+        if hs[0] != stamp[i] or hv[0] >= -tol:  # stale entry (or no improvement): drop it
+            size -= 1
+            _swap(hv, hi, hs, 0, size)
+            _sift_down(hv, hi, hs, size, 0)
+            continue
+        size -= 1
+        _swap(hv, hi, hs, 0, size)
+        _sift_down(hv, hi, hs, size, 0)
+        s = 1.0 - 2.0 * x[i]  # +1 for 0 -> 1
+        x[i] = 1 - x[i]
+        stamp[i] += 1
+        for p in range(indptr[i], indptr[i + 1]):
+            j = indices[p]
+            field[j] += s * data[p]
+            if fixed[j] < 0:
+                stamp[j] += 1
+                dj = _delta(x, o, field, price, j)
+                if dj < -tol:
+                    if size == cap:  # full of stale entries: keep the current ones
+                        size = _compact(x, o, field, price, tol, stamp, hv, hi, hs, size)
+                    size = _push(hv, hi, hs, size, dj, j, stamp[j])
+        steps += 1
+    return steps
 
 
 @nb.njit(cache=True)
-def _descend_heap(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, steps_out):
+def _compact(x, o, field, price, tol, stamp, hv, hi, hs, size):
+    """Drop the stale entries of a full heap and re-heapify; returns the new size."""
+    keep = 0
+    for e in range(size):
+        i = hi[e]
+        if hs[e] == stamp[i]:
+            hv[keep] = hv[e]
+            hi[keep] = i
+            hs[keep] = hs[e]
+            keep += 1
+    for p in range(keep // 2 - 1, -1, -1):
+        _sift_down(hv, hi, hs, keep, p)
+    return keep
+
+
+@nb.njit(cache=True)
+def _descend_tree(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, anchor,
+                  steps_out):
     """Steepest descent on a pure QUBO (+ fixings, + flip price), in place on X (K, n).
 
-    The improving flips sit in a binary heap with lazy deletion: a variable's entry is
-    current while its stamp matches. A flip re-stamps the variable and its neighbours and
-    pushes those that improve, so a step costs O(degree * log heap); near a local minimum
-    the heap is small, so start-up is the O(n + nnz) field computation alone.
+    The improving flips are the finite leaves of a tournament tree (repair.tournament); a
+    flip re-keys the variable and its neighbours, each O(log n) at worst and mostly a
+    level or two. A descent ends with no improving flip, so the tree is empty again and
+    the next candidate's start-up is its field computation and one pass over n.
     """
     n = X.shape[1]
-    cap = 4 * n + 64
-    scratch = (np.empty(cap), np.empty(cap, dtype=np.int64), np.empty(cap, dtype=np.int64),
-               np.empty(n), np.zeros(n, dtype=np.int64))
-    _heap_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, steps_out,
+    N = 1
+    while N < n:
+        N *= 2
+    scratch = (np.empty(2 * N), np.empty(2 * N, dtype=np.int64), np.empty(n),
+               _row_sums(h, indptr, data), anchor, _anchor_field(anchor, h, indptr, indices, data),
+               np.empty(n, dtype=np.int64), np.empty(4 * n + 64), np.empty(4 * n + 64, dtype=np.int64),
+               np.empty(4 * n + 64, dtype=np.int64), np.zeros(n, dtype=np.int64))
+    _tree_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, steps_out,
                scratch)
 
 
 @nb.njit(cache=True)
-def _heap_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, steps_out,
+def _tree_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, steps_out,
                scratch):
     X, origin, h, indptr, indices, data, fixed, steps_out = borrow_all(
         (X, origin, h, indptr, indices, data, fixed, steps_out))
-    hv, hi, hs, field, stamp = borrow_all(scratch)
+    tkey, titem, field, full, anchor, afield, found, hv, hi, hs, stamp = borrow_all(scratch)
     K, n = X.shape
-    cap = hv.size
+    N = tkey.size // 2
+    for p in range(N):
+        titem[N + p] = p
+    tree_clear(tkey, titem, 0, N)
+    pinned = 0
+    for i in range(n):
+        pinned += fixed[i] >= 0
     for k in range(K):
         x = X[k]
         o = origin[k]
-        for i in range(n):
-            if fixed[i] >= 0 and x[i] != fixed[i]:
-                x[i] = fixed[i]
-        for i in range(n):
-            f = h[i]
-            for p in range(indptr[i], indptr[i + 1]):
-                f += data[p] * x[indices[p]]
-            field[i] = f
-        size = _refill(x, o, field, fixed, price, tol, stamp, hv, hi, hs)
+        if pinned:
+            for i in range(n):
+                if fixed[i] >= 0 and x[i] != fixed[i]:
+                    x[i] = fixed[i]
+        _init_field(x, anchor, afield, full, h, indptr, indices, data, field)
+        cnt = 0
+        for i in range(n):  # a plain pass first: the improving flips are few near a minimum
+            if _delta(x, o, field, price, i) < -tol and fixed[i] < 0:
+                found[cnt] = i
+                cnt += 1
+        if cnt <= SMALL_START:
+            steps = _heap_descent(x, o, field, fixed, price, tol, max_steps, indptr, indices,
+                                  data, found, cnt, hv, hi, hs, stamp)
+            steps_out[k] = steps
+            continue
+        for c in range(cnt):
+            i = found[c]
+            tree_set(tkey, titem, 0, N, i, _delta(x, o, field, price, i))
         steps = 0
-        while steps < max_steps and size > 0:
-            i = hi[0]
-            if hs[0] != stamp[i]:  # stale entry: drop it
-                size -= 1
-                _swap(hv, hi, hs, 0, size)
-                _sift_down(hv, hi, hs, size, 0)
-                continue
-            if hv[0] >= -tol:
-                break
-            size -= 1
-            _swap(hv, hi, hs, 0, size)
-            _sift_down(hv, hi, hs, size, 0)
+        while steps < max_steps and tkey[1] < -tol:
+            i = titem[1]
             s = 1.0 - 2.0 * x[i]  # +1 for 0 -> 1
             x[i] = 1 - x[i]
-            stamp[i] += 1
-            if size + indptr[i + 1] - indptr[i] + 1 > cap:
-                for p in range(indptr[i], indptr[i + 1]):
-                    field[indices[p]] += s * data[p]
-                    stamp[indices[p]] += 1
-                size = _refill(x, o, field, fixed, price, tol, stamp, hv, hi, hs)
-                steps += 1
-                continue
-            d = _delta(x, o, field, price, i)
-            if d < -tol:
-                size = _push(hv, hi, hs, size, d, i, stamp[i])
+            tree_set(tkey, titem, 0, N, i, _INF)  # flipping back undoes an improvement
             for p in range(indptr[i], indptr[i + 1]):
                 j = indices[p]
                 field[j] += s * data[p]
                 if fixed[j] < 0:
-                    stamp[j] += 1
                     dj = _delta(x, o, field, price, j)
-                    if dj < -tol:
-                        size = _push(hv, hi, hs, size, dj, j, stamp[j])
+                    tree_set(tkey, titem, 0, N, j, dj if dj < -tol else _INF)
             steps += 1
         steps_out[k] = steps
+        if tkey[1] < _INF:  # stopped by max_steps: empty the tree
+            tree_clear(tkey, titem, 0, N)
 
 
 # -------------------------------------------------------------- general path
@@ -282,24 +385,27 @@ def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max
                      cp_ptr, cp_table, cp_const, term_pen, term_coef, term_arity, lit_ptr,
                      lit_var, lit_val, vt_ptr, vt_term, vt_lit,
                      a_ptr, a_col, a_val, col_ptr, col_row, col_val, lo, hi, rtol,
-                     pair_width, use_heaps, par, gbase, glb, caps, gs_ptr, gs_kind, gs_id, gs_val,
+                     pair_width, use_groups, par, gbase, glb, tn, lp, gmem_ptr, gmem, gs_ptr, gs_kind,
+                  gs_id, gs_val,
                      nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row, ncol_val,
-                     vs_ptr, vs_struct, sm_ptr, sm_var, steps_out):
+                     vs_ptr, vs_struct, sm_ptr, sm_var, anchor, steps_out):
     """Restore feasibility, then descend (see the module docstring), in place on X (K, n).
 
-    With ``use_heaps`` the single flips of phase 2 come from the grouped heaps: ``gbase``
-    int64 (n, 2) is the group of variable i when it holds bit b, ``par`` 2 when a radius
-    splits each group by whether a flip moves away from the candidate (else 1), ``caps``
-    int64 (groups,) each heap's capacity, ``gs_*`` each base group's signature (kind 0: a
+    With ``use_groups`` the single flips of phase 2 come from the grouped trees: ``gbase``
+    int64 (n, 2) is the group of variable i when it holds bit b and ``lp`` its leaf there,
+    ``par`` 2 when a radius splits each group by whether a flip moves away from the
+    candidate (else 1), ``tn`` int64 (groups * par,) each tree's leaf count (a power of
+    two), ``gmem_ptr`` / ``gmem`` each base group's members (ascending), ``gs_*`` each
+    base group's signature (kind 0: a
     wide row and the activity change, 1: a wide count penalty and the change of d),
     ``nvt_*`` / ``ncol_*`` the variable-to-term and variable-to-row maps of the narrow
     structures only, ``vs_*`` / ``sm_*`` variable -> narrow structures -> members.
     """
     n = X.shape[1]
-    base = np.zeros(caps.size, dtype=np.int64)
-    for g in range(1, caps.size):
-        base[g] = base[g - 1] + caps[g - 1]
-    slots = base[-1] + caps[-1] if caps.size else 0
+    tb = np.zeros(tn.size, dtype=np.int64)  # each tree's offset in the flat arrays
+    for g in range(1, tn.size):
+        tb[g] = tb[g - 1] + 2 * tn[g - 1]
+    slots = tb[-1] + 2 * tn[-1] if tn.size else 0
     most = 0  # the longest re-key list of one flip
     for i in range(n):
         c = 1 + indptr[i + 1] - indptr[i]
@@ -311,14 +417,15 @@ def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max
                np.zeros(cp_const.size, dtype=np.int64), np.empty(n, dtype=np.int64),
                np.empty(pair_width, dtype=np.int64), np.empty(pair_width),
                np.empty(pair_width, dtype=np.int64), np.empty(pair_width),
-               np.empty(slots), np.empty(slots, dtype=np.int64), np.full(n, -1, dtype=np.int64),
-               np.zeros(n, dtype=np.int64), base, np.zeros(caps.size, dtype=np.int64),
-               np.empty(most, dtype=np.int64))
+               np.empty(slots), np.empty(slots, dtype=np.int64), tb,
+               np.empty(most, dtype=np.int64), _row_sums(h, indptr, data), anchor,
+               _anchor_field(anchor, h, indptr, indices, data), np.empty(n, dtype=np.int64))
     _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, radius,
                   cp_ptr, cp_table, cp_const, term_pen, term_coef, term_arity, lit_ptr,
                   lit_var, lit_val, vt_ptr, vt_term, vt_lit,
                   a_ptr, a_col, a_val, col_ptr, col_row, col_val, lo, hi, rtol,
-                  pair_width, use_heaps, par, gbase, glb, caps, gs_ptr, gs_kind, gs_id, gs_val,
+                  pair_width, use_groups, par, gbase, glb, tn, lp, gmem_ptr, gmem, gs_ptr, gs_kind,
+                  gs_id, gs_val,
                   nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row, ncol_val,
                   vs_ptr, vs_struct, sm_ptr, sm_var, steps_out, scratch)
 
@@ -328,21 +435,22 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
                   cp_ptr, cp_table, cp_const, term_pen, term_coef, term_arity, lit_ptr,
                   lit_var, lit_val, vt_ptr, vt_term, vt_lit,
                   a_ptr, a_col, a_val, col_ptr, col_row, col_val, lo, hi, rtol,
-                  pair_width, use_heaps, par, gbase, glb, caps, gs_ptr, gs_kind, gs_id, gs_val,
+                  pair_width, use_groups, par, gbase, glb, tn, lp, gmem_ptr, gmem, gs_ptr, gs_kind,
+                  gs_id, gs_val,
                   nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row, ncol_val,
                   vs_ptr, vs_struct, sm_ptr, sm_var, steps_out, scratch):
     (X, origin, h, indptr, indices, data, fixed, cp_ptr, cp_table, cp_const, term_pen,
      term_coef, term_arity, lit_ptr, lit_var, lit_val, vt_ptr, vt_term, vt_lit) = borrow_all((
          X, origin, h, indptr, indices, data, fixed, cp_ptr, cp_table, cp_const, term_pen,
          term_coef, term_arity, lit_ptr, lit_var, lit_val, vt_ptr, vt_term, vt_lit))
-    (a_ptr, a_col, a_val, col_ptr, col_row, col_val, lo, hi, rtol, gbase, glb, gs_ptr, gs_kind,
-     gs_id, gs_val, nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row, ncol_val, vs_ptr, vs_struct,
-     sm_ptr, sm_var, steps_out) = borrow_all((
-         a_ptr, a_col, a_val, col_ptr, col_row, col_val, lo, hi, rtol, gbase, glb, gs_ptr,
-         gs_kind, gs_id, gs_val, nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row, ncol_val,
-         vs_ptr, vs_struct, sm_ptr, sm_var, steps_out))
-    (field, dcount, sat, act, dd, free, up_i, up_v, dn_i, dn_v, hkey, hitem, slot, hheap, base,
-     size, todo) = borrow_all(scratch)
+    (a_ptr, a_col, a_val, col_ptr, col_row, col_val, lo, hi, rtol, gbase, glb, tn, lp, gmem_ptr,
+     gmem, gs_ptr, gs_kind, gs_id, gs_val, nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row,
+     ncol_val, vs_ptr, vs_struct, sm_ptr, sm_var, steps_out) = borrow_all((
+         a_ptr, a_col, a_val, col_ptr, col_row, col_val, lo, hi, rtol, gbase, glb, tn, lp,
+         gmem_ptr, gmem, gs_ptr, gs_kind, gs_id, gs_val, nvt_ptr, nvt_term, nvt_lit, ncol_ptr,
+         ncol_row, ncol_val, vs_ptr, vs_struct, sm_ptr, sm_var, steps_out))
+    (field, dcount, sat, act, dd, free, up_i, up_v, dn_i, dn_v, tkey, titem, tb, todo, full,
+     anchor, afield, found) = borrow_all(scratch)
     K, n = X.shape
     P = cp_const.size
     T = term_pen.size
@@ -360,7 +468,12 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
     Rn = (ncol_ptr, ncol_row, ncol_val, lo, hi, rtol)
     G = (gs_ptr, gs_kind, gs_id, gs_val)
     N = (vs_ptr, vs_struct, sm_ptr, sm_var)
-    H = (hkey, hitem, slot, hheap, base, size)
+    H = (tkey, titem, tb, tn, lp)
+    for g in range(tn.size):  # leaf items never change
+        gb = g // par
+        cnt = gmem_ptr[gb + 1] - gmem_ptr[gb]
+        for p in range(tn[g]):
+            titem[tb[g] + tn[g] + p] = gmem[gmem_ptr[gb] + p] if p < cnt else -1
     for k in range(K):
         x = X[k]
         o = origin[k]
@@ -372,11 +485,7 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
         for i in range(n):
             if x[i] != o[i]:
                 dist += 1
-        for i in range(n):
-            f = h[i]
-            for p in range(indptr[i], indptr[i + 1]):
-                f += data[p] * x[indices[p]]
-            field[i] = f
+        _init_field(x, anchor, afield, full, h, indptr, indices, data, field)
         for p in range(P):
             dcount[p] = cp_const[p]
         for t in range(T):
@@ -445,14 +554,12 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
             steps_out[k] = steps
             continue
         # ---- phase 2: feasible steepest descent, single flips then pair moves
-        if use_heaps:
-            for g in range(size.size):
-                size[g] = 0
-            for f in range(nfree):
-                slot[free[f]] = -1
+        if use_groups:
+            for g in range(tn.size):
+                tree_clear(tkey, titem, tb[g], tn[g])
             _rekey_list(free, nfree, S, Cn, Rn, price, tol, fixed, gbase, glb, par, H)
         while steps < max_steps:
-            if use_heaps:
+            if use_groups:
                 best, bi = _best_group_top(S, dist, H, G, C, R, radius, par, tol)
             else:
                 best = -tol
@@ -475,7 +582,7 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
                 w = bi if v == 0 else bj
                 if w < 0:
                     break
-                dist = _flip(w, S, dist, Q, C, R, use_heaps, Cn, Rn, price, tol, fixed, gbase,
+                dist = _flip(w, S, dist, Q, C, R, use_groups, Cn, Rn, price, tol, fixed, gbase,
                              glb, par, H, N, todo)
             steps += 1
         steps_out[k] = steps
@@ -552,39 +659,36 @@ def _best_pair(S, dist, Q, C, R, a_ptr, a_col, a_vals, fixed, price, radius, bes
 # flip price, the narrow structures the variable is in) and a part from the wide
 # structures (long rows, long count penalties of single-literal terms) that depends only
 # on which way the flip moves each of them. Variables with the same such signature form a
-# group; each group keeps its variables in an indexed heap by local part, so a step looks
+# group; each group keeps its variables in a tournament tree by local part, so a step looks
 # at one top per group and a flip re-keys only the variables that share a structure with it.
 @nb.njit(cache=True, inline="always")
 def _rekey(j, S, Cn, Rn, price, tol, fixed, gbase, glb, par, H):
-    """Recompute variable j's local change and keep it in its group's heap only while it
-    could be taken: local change + the group's least possible offset below -tol."""
+    """Recompute variable j's local change; its leaf in its group's tree holds it only
+    while it could be taken (local change + the group's least possible offset below -tol)."""
     if fixed[j] >= 0:
         return
     x, o = S[0], S[1]
-    key, item, slot, heap, base, size = H
+    tkey, titem, tb, tn, lp = H
     dobj, dviol, nd = _eval_flip(j, S, 0, Cn, Rn, price)
-    gb = gbase[j, x[j]]
-    if dviol <= 1e-12 and dobj + glb[gb] < -tol:
-        g = gb * par + (1 if par == 2 and x[j] == o[j] else 0)
-        heap_set(key, item, slot, heap, base, size, j, g, dobj)
-    else:
-        heap_remove(key, item, slot, heap, base, size, j)
+    b = x[j]
+    gb = gbase[j, b]
+    g = gb * par + (1 if par == 2 and b == o[j] else 0)
+    ok = dviol <= 1e-12 and dobj + glb[gb] < -tol
+    tree_set(tkey, titem, tb[g], tn[g], lp[j, b], dobj if ok else _INF)
 
 
 @nb.njit(cache=True, inline="always")
 def _best_group_top(S, dist, H, G, C, R, radius, par, tol):
     """(change, variable) of the best feasible single flip below -tol, or (-tol, -1)."""
     act, dcount = S[5], S[3]
-    key, item, slot, heap, base, size = H
+    key, item, tb, tn, lp = H
     gs_ptr, gs_kind, gs_id, gs_val = G
     cp_table, cp_ptr = C[1], C[0]
     lo, hi, rtol = R[3], R[4], R[5]
     best = -tol
     bi = -1
-    for g in range(size.size):
-        if size[g] == 0:
-            continue
-        s0 = base[g]
+    for g in range(tn.size):
+        s0 = tb[g] + 1  # the root
         top = key[s0]
         if top == _INF:
             continue
@@ -618,13 +722,19 @@ def _best_group_top(S, dist, H, G, C, R, radius, par, tol):
 
 
 @nb.njit(cache=True, inline="always")
-def _flip(i, S, dist, Q, C, R, use_heaps, Cn, Rn, price, tol, fixed, gbase, glb, par, H, N,
+def _flip(i, S, dist, Q, C, R, use_groups, Cn, Rn, price, tol, fixed, gbase, glb, par, H, N,
           todo):
-    """Flip variable i (all state) and, with heaps, re-key every variable whose local
+    """Flip variable i (all state) and, with groups, re-key every variable whose local
     change it alters: i, its QUBO neighbours, the members of its narrow structures.
     ``todo`` int64 (>= n + degree + co-members,) is scratch."""
+    if use_groups:  # i leaves its group's tree: flipped, it belongs to another
+        tkey, titem, tb, tn, lp = H
+        x, o = S[0], S[1]
+        b = x[i]
+        g = gbase[i, b] * par + (1 if par == 2 and b == o[i] else 0)
+        tree_set(tkey, titem, tb[g], tn[g], lp[i, b], _INF)
     dist = _apply_flip(i, S, dist, Q, C, R)
-    if not use_heaps:
+    if not use_groups:
         return dist
     indptr, indices = Q[0], Q[1]
     vs_ptr, vs_struct, sm_ptr, sm_var = N
@@ -697,9 +807,11 @@ def _row_arrays(compiled: Compiled, n: int):
 #: flip's change is taken per group (see the grouped heaps), not re-keyed per member.
 #: Common practice for such a split; the figure is ours, set by bench/kernel.py.
 WIDE = 64
-#: Grouped heaps pay only while there are few groups; past this share of the free
+#: Grouped trees pay only while there are few groups; past this share of the free
 #: variables the plain scan over free variables is used instead.
 MAX_GROUP_SHARE = 0.25
+#: ... but up to this many groups always use them.
+MIN_GROUPS = 4
 
 
 def _csr(keys: np.ndarray, values: np.ndarray, n: int):
@@ -751,6 +863,18 @@ def _group_layout(compiled: Compiled, cnt, rows):
     g0, g1 = gbase[free, 0], gbase[free, 1]
     np.add.at(members, g0, 1)
     np.add.at(members, g1[g1 != g0], 1)
+    # each base group's members, ascending, and every (variable, bit)'s leaf in its group
+    fidx = np.flatnonzero(free)
+    pairs = np.concatenate([np.stack([g0, fidx], 1), np.stack([g1, fidx], 1)[g1 != g0]])
+    pairs = pairs[np.lexsort((pairs[:, 1], pairs[:, 0]))]
+    gmem_ptr = np.concatenate([[0], np.cumsum(members)]).astype(np.int64)
+    gmem = np.ascontiguousarray(pairs[:, 1], dtype=np.int64)
+    rank = np.arange(gmem.size, dtype=np.int64) - gmem_ptr[pairs[:, 0]]
+    codes = pairs[:, 0] * n + pairs[:, 1]
+    lp = np.zeros((n, 2), dtype=np.int64)
+    for b in (0, 1):
+        pos = np.searchsorted(codes, gbase[fidx, b] * n + fidx)
+        lp[fidx, b] = rank[pos]
     nz_g, nz_c = np.nonzero(uniq)
     kinds = np.concatenate([np.zeros(wr.size, np.int64), np.ones(wp.size, np.int64)])
     ids = np.concatenate([wr, wp]).astype(np.int64)
@@ -788,7 +912,8 @@ def _group_layout(compiled: Compiled, cnt, rows):
             if hi_d > lo_d:
                 glb[g] += min(0.0, float((t[lo_d + step:hi_d + step] - t[lo_d:hi_d]).min()))
     return {
-        "gbase": gbase, "members": members, "groups": groups, "glb": glb,
+        "gbase": gbase, "members": members, "groups": groups, "glb": glb, "lp": lp,
+        "gmem_ptr": gmem_ptr, "gmem": gmem,
         "gs_ptr": np.cumsum(gs_ptr), "gs_kind": kinds[nz_c], "gs_id": ids[nz_c],
         "gs_val": uniq[nz_g, nz_c].astype(np.float64),
         "nvt_ptr": nvt_ptr, "nvt_term": vt_term[keep_t], "nvt_lit": vt_lit[keep_t],
@@ -814,6 +939,17 @@ def objective_tol(compiled: Compiled) -> float:
     return 1e-9 * scale
 
 
+def consensus(X: np.ndarray, fixed: np.ndarray) -> np.ndarray:
+    """Bitwise majority of the rows of X (int8 (K, n)) with the fixings applied: int8 (n,).
+
+    The kernels start each candidate's fields from this anchor's when it is the nearer
+    route (candidates of one library tend to agree on most bits)."""
+    a = (2 * X.sum(axis=0, dtype=np.int64) >= X.shape[0]).astype(np.int8)
+    pinned = fixed >= 0
+    a[pinned] = fixed[pinned]
+    return a
+
+
 def descend_qubo(h, indptr, indices, data, X0, *, fixed=None, flip_price: float = 0.0,
                  tol: float = 1e-9, max_steps: int | None = None):
     """Steepest single-flip descent on a QUBO (CSR couplings) from every row of X0 (int8 (K, n)).
@@ -824,9 +960,10 @@ def descend_qubo(h, indptr, indices, data, X0, *, fixed=None, flip_price: float 
     n = X.shape[1]
     fixed = np.full(n, -1, dtype=np.int8) if fixed is None else np.asarray(fixed, dtype=np.int8)
     steps = np.zeros(X.shape[0], dtype=np.int64)
-    _descend_heap(X, X0.astype(np.int8), np.asarray(h, np.float64), np.asarray(indptr, np.int64),
+    _descend_tree(X, X0.astype(np.int8), np.asarray(h, np.float64), np.asarray(indptr, np.int64),
                   np.asarray(indices, np.int32), np.asarray(data, np.float64), fixed,
-                  float(flip_price), float(tol), int(max_steps or 100 * n + 1000), steps)
+                  float(flip_price), float(tol), int(max_steps or 100 * n + 1000),
+                  consensus(X, fixed), steps)
     return X, steps
 
 
@@ -862,8 +999,10 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
         cnt, rows, lay = _general_arrays(compiled)
         par = 2 if radius < n else 1
         nfree = int((compiled.fixed < 0).sum())
-        use_heaps = lay["groups"] * par <= max(4, MAX_GROUP_SHARE * nfree)
-        caps = np.repeat(lay["members"], par) if use_heaps else np.zeros(0, dtype=np.int64)
+        use_groups = lay["groups"] * par <= max(MIN_GROUPS, MAX_GROUP_SHARE * nfree)
+        leaves = 1 << np.ceil(np.log2(np.maximum(lay["members"], 1))).astype(np.int64)
+        tn = np.repeat(leaves, par) if use_groups else np.zeros(0, dtype=np.int64)
+    anchor = consensus(X0, compiled.fixed)
     start = 0
     size = 1 if deadline is not None else chunk  # with a deadline: measure one, then fit
     per_cand = 0.0  # measured seconds per candidate
@@ -882,8 +1021,9 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
         Xc = X[sl].copy()
         st = np.zeros(Xc.shape[0], dtype=np.int64)
         if fast:
-            _descend_heap(Xc, O[sl], compiled.h, compiled.indptr, compiled.indices,
-                          compiled.data, compiled.fixed, float(flip_price), tol, max_steps, st)
+            _descend_tree(Xc, O[sl], compiled.h, compiled.indptr, compiled.indices,
+                          compiled.data, compiled.fixed, float(flip_price), tol, max_steps,
+                          anchor, st)
         else:
             (cp_ptr, cp_table, cp_const, t_pen, t_coef, t_ar, l_ptr, l_var, l_val, vt_ptr,
              vt_term, vt_lit) = cnt
@@ -893,11 +1033,12 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
                              radius, cp_ptr, cp_table, cp_const, t_pen, t_coef, t_ar, l_ptr,
                              l_var, l_val, vt_ptr, vt_term, vt_lit, a_ptr, a_col, a_val,
                              col_ptr, col_row, col_val, compiled.lo, compiled.hi, rtol,
-                             int(pair_width), use_heaps, par, lay["gbase"], lay["glb"], caps,
+                             int(pair_width), use_groups, par, lay["gbase"], lay["glb"], tn, lay["lp"],
+                             lay["gmem_ptr"], lay["gmem"],
                              lay["gs_ptr"], lay["gs_kind"], lay["gs_id"], lay["gs_val"],
                              lay["nvt_ptr"], lay["nvt_term"], lay["nvt_lit"], lay["ncol_ptr"],
                              lay["ncol_row"], lay["ncol_val"], lay["vs_ptr"], lay["vs_struct"],
-                             lay["sm_ptr"], lay["sm_var"], st)
+                             lay["sm_ptr"], lay["sm_var"], anchor, st)
         per_cand = (time.perf_counter() - t0) / Xc.shape[0]
         X[sl] = Xc
         steps[sl] = st

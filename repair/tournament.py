@@ -1,0 +1,44 @@
+"""Tournament trees for the greedy kernels' best-flip selection.
+
+A tournament tree over N (a power of two) leaves lives in flat arrays from offset b0:
+``tkey`` float64 and ``titem`` int64, node r at b0 + r (r = 1 .. 2N-1; the root is r = 1;
+leaf p at b0 + N + p). A leaf holds its item's key (+inf when the item is not a
+candidate), each inner node the smaller child's key and item, the left one on ties, so
+the lowest leaf wins ties (deterministic). Many trees can share the flat arrays at
+different offsets. Setting a key repairs the path to the root and stops at the first
+node that does not change: O(log N) at worst, a level or two when little changes.
+"""
+
+from __future__ import annotations
+
+import numba as nb
+import numpy as np
+
+__all__ = ["tree_clear", "tree_set"]
+
+
+@nb.njit(cache=True, inline="always")
+def tree_clear(tkey, titem, b0, N):
+    """Every leaf +inf. The leaves' items (``titem[b0 + N + p]``) are the caller's to set,
+    once: they never change."""
+    for r in range(1, 2 * N):
+        tkey[b0 + r] = np.inf
+    for r in range(N - 1, 0, -1):
+        titem[b0 + r] = titem[b0 + 2 * r]
+
+
+@nb.njit(cache=True, inline="always")
+def tree_set(tkey, titem, b0, N, p, value):
+    """Set leaf p's key and repair the path to the root, stopping where nothing changes."""
+    r = N + p
+    tkey[b0 + r] = value
+    r >>= 1
+    while r >= 1:
+        l = b0 + 2 * r
+        c = l + 1 if tkey[l + 1] < tkey[l] else l
+        v = b0 + r
+        if tkey[v] == tkey[c] and titem[v] == titem[c]:
+            return
+        tkey[v] = tkey[c]
+        titem[v] = titem[c]
+        r >>= 1
