@@ -24,8 +24,7 @@ how a flip moves the long ("wide") structures, one tree per group keyed by the r
 the change, and a step compares one top per group (see "grouped single flips"); with
 too many groups the kernel scans the free variables instead.
 
-The kernels take reference-count-free views of their arrays (repair.borrow): numba's
-atomic reference counting otherwise cost more than the arithmetic.
+The inner kernels run without numba's reference counting (see ``_kernel``).
 """
 
 from __future__ import annotations
@@ -37,12 +36,16 @@ import numba as nb
 import numpy as np
 
 from .compiled import FEAS_TOL, Compiled
-from .borrow import borrow_all
-from .tournament import tree_clear, tree_set
+from .tournament import tree_clear, tree_drain, tree_set
 
 __all__ = ["GreedyOutput", "greedy_repair", "descend_qubo", "objective_tol", "warm_up"]
 
 _INF = np.inf
+
+#: Inner kernels are compiled without numba's reference counting: they allocate nothing
+#: (their callers pass every array in and keep it alive), and the counting's calls cost
+#: more than the arithmetic in loops over small helpers (bench/kernel.py).
+_kernel = nb.njit(cache=True, _nrt=False)
 #: Starts with at most this many improving flips descend with a small heap, others with
 #: the tournament tree (bench/kernel.py: near-optimal vs random starts).
 SMALL_START = 64
@@ -164,7 +167,7 @@ def _init_field(x, anchor, afield, full, h, indptr, indices, data, field):
                     field[indices[p]] -= data[p]
 
 
-@nb.njit(cache=True)
+@_kernel
 def _heap_descent(x, o, field, fixed, price, tol, max_steps, indptr, indices, data, found, cnt,
                   hv, hi, hs, stamp):
     """The same descent for a start with few improving flips (``found[:cnt]``): they sit in
@@ -203,7 +206,7 @@ def _heap_descent(x, o, field, fixed, price, tol, max_steps, indptr, indices, da
     return steps
 
 
-@nb.njit(cache=True)
+@_kernel
 def _compact(x, o, field, price, tol, stamp, hv, hi, hs, size):
     """Drop the stale entries of a full heap and re-heapify; returns the new size."""
     keep = 0
@@ -241,12 +244,10 @@ def _descend_tree(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
                scratch)
 
 
-@nb.njit(cache=True)
+@_kernel
 def _tree_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, steps_out,
                scratch):
-    X, origin, h, indptr, indices, data, fixed, steps_out = borrow_all(
-        (X, origin, h, indptr, indices, data, fixed, steps_out))
-    tkey, titem, field, full, anchor, afield, found, hv, hi, hs, stamp = borrow_all(scratch)
+    tkey, titem, field, full, anchor, afield, found, hv, hi, hs, stamp = scratch
     K, n = X.shape
     N = tkey.size // 2
     for p in range(N):
@@ -290,8 +291,7 @@ def _tree_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps
                     tree_set(tkey, titem, 0, N, j, dj if dj < -tol else _INF)
             steps += 1
         steps_out[k] = steps
-        if tkey[1] < _INF:  # stopped by max_steps: empty the tree
-            tree_clear(tkey, titem, 0, N)
+        tree_drain(tkey, 0, N, found)  # empty unless max_steps stopped the descent
 
 
 # -------------------------------------------------------------- general path
@@ -346,7 +346,7 @@ def _eval_flip(i, S, dist, C, R, price):
     return dobj, dviol, nd
 
 
-@nb.njit(cache=True)
+@_kernel
 def _apply_flip(i, S, dist, Q, C, R):
     """Flip variable i, updating fields, term states, counts and row activities in O(degree)."""
     x, o, field, dcount, sat, act, dd = S
@@ -372,7 +372,7 @@ def _apply_flip(i, S, dist, Q, C, R):
     return dist + 1 if xi == o[i] else dist - 1
 
 
-@nb.njit(cache=True)
+@_kernel
 def _total_viol(act, lo, hi, rtol):
     v = 0.0
     for r in range(act.size):
@@ -430,7 +430,7 @@ def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max
                   vs_ptr, vs_struct, sm_ptr, sm_var, steps_out, scratch)
 
 
-@nb.njit(cache=True)
+@_kernel
 def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, radius,
                   cp_ptr, cp_table, cp_const, term_pen, term_coef, term_arity, lit_ptr,
                   lit_var, lit_val, vt_ptr, vt_term, vt_lit,
@@ -439,18 +439,8 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
                   gs_id, gs_val,
                   nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row, ncol_val,
                   vs_ptr, vs_struct, sm_ptr, sm_var, steps_out, scratch):
-    (X, origin, h, indptr, indices, data, fixed, cp_ptr, cp_table, cp_const, term_pen,
-     term_coef, term_arity, lit_ptr, lit_var, lit_val, vt_ptr, vt_term, vt_lit) = borrow_all((
-         X, origin, h, indptr, indices, data, fixed, cp_ptr, cp_table, cp_const, term_pen,
-         term_coef, term_arity, lit_ptr, lit_var, lit_val, vt_ptr, vt_term, vt_lit))
-    (a_ptr, a_col, a_val, col_ptr, col_row, col_val, lo, hi, rtol, gbase, glb, tn, lp, gmem_ptr,
-     gmem, gs_ptr, gs_kind, gs_id, gs_val, nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row,
-     ncol_val, vs_ptr, vs_struct, sm_ptr, sm_var, steps_out) = borrow_all((
-         a_ptr, a_col, a_val, col_ptr, col_row, col_val, lo, hi, rtol, gbase, glb, tn, lp,
-         gmem_ptr, gmem, gs_ptr, gs_kind, gs_id, gs_val, nvt_ptr, nvt_term, nvt_lit, ncol_ptr,
-         ncol_row, ncol_val, vs_ptr, vs_struct, sm_ptr, sm_var, steps_out))
     (field, dcount, sat, act, dd, free, up_i, up_v, dn_i, dn_v, tkey, titem, tb, todo, full,
-     anchor, afield, found) = borrow_all(scratch)
+     anchor, afield, found) = scratch
     K, n = X.shape
     P = cp_const.size
     T = term_pen.size
@@ -474,6 +464,7 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
         cnt = gmem_ptr[gb + 1] - gmem_ptr[gb]
         for p in range(tn[g]):
             titem[tb[g] + tn[g] + p] = gmem[gmem_ptr[gb] + p] if p < cnt else -1
+        tree_clear(tkey, titem, tb[g], tn[g])
     for k in range(K):
         x = X[k]
         o = origin[k]
@@ -556,7 +547,7 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
         # ---- phase 2: feasible steepest descent, single flips then pair moves
         if use_groups:
             for g in range(tn.size):
-                tree_clear(tkey, titem, tb[g], tn[g])
+                tree_drain(tkey, tb[g], tn[g], found)
             _rekey_list(free, nfree, S, Cn, Rn, price, tol, fixed, gbase, glb, par, H)
         while steps < max_steps:
             if use_groups:
@@ -588,7 +579,7 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
         steps_out[k] = steps
 
 
-@nb.njit(cache=True)
+@_kernel
 def _best_pair(S, dist, Q, C, R, a_ptr, a_col, a_vals, fixed, price, radius, best, up_i, up_v,
                dn_i, dn_v):
     """The best feasible pair move (one variable up, one down, in the same row) below
@@ -754,7 +745,7 @@ def _flip(i, S, dist, Q, C, R, use_groups, Cn, Rn, price, tol, fixed, gbase, glb
     return dist
 
 
-@nb.njit(cache=True)
+@_kernel
 def _rekey_list(vars_, cnt, S, Cn, Rn, price, tol, fixed, gbase, glb, par, H):
     for t in range(cnt):
         _rekey(vars_[t], S, Cn, Rn, price, tol, fixed, gbase, glb, par, H)
@@ -990,7 +981,7 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
     seconds = np.zeros(K)
     radius = n if max_flips is None else int(max_flips)
     tol = objective_tol(compiled)
-    max_steps = 100 * n + 1000
+    max_steps = _MAX_STEPS if _MAX_STEPS is not None else 100 * n + 1000
     fast = not compiled.counts and not compiled.rows and radius >= n
     if pair_width is None:
         longest = int(np.diff(compiled.a_indptr).max(initial=1))
@@ -1050,6 +1041,7 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
 
 
 _WARM = False
+_MAX_STEPS = None  # (bench/debug) cap on moves per candidate
 
 
 def warm_up() -> None:

@@ -14,7 +14,7 @@ from __future__ import annotations
 import numba as nb
 import numpy as np
 
-__all__ = ["tree_clear", "tree_set"]
+__all__ = ["tree_clear", "tree_drain", "tree_set"]
 
 
 @nb.njit(cache=True, inline="always")
@@ -31,6 +31,8 @@ def tree_clear(tkey, titem, b0, N):
 def tree_set(tkey, titem, b0, N, p, value):
     """Set leaf p's key and repair the path to the root, stopping where nothing changes."""
     r = N + p
+    if tkey[b0 + r] == value:
+        return
     tkey[b0 + r] = value
     r >>= 1
     while r >= 1:
@@ -42,3 +44,24 @@ def tree_set(tkey, titem, b0, N, p, value):
         tkey[v] = tkey[c]
         titem[v] = titem[c]
         r >>= 1
+
+
+@nb.njit(cache=True, inline="always")
+def tree_drain(tkey, b0, N, stack):
+    """Every leaf +inf again, visiting only the nodes that hold a finite key: cheap when
+    few leaves are set. ``stack`` int64 (>= log2(N) + 2,) is scratch. Inner nodes whose
+    key becomes +inf may keep a stale item; nothing reads the item of a +inf node."""
+    if tkey[b0 + 1] == np.inf:
+        return
+    top = 0
+    stack[top] = 1
+    top += 1
+    while top > 0:
+        top -= 1
+        r = stack[top]
+        tkey[b0 + r] = np.inf
+        if r < N:
+            for c in (2 * r + 1, 2 * r):
+                if tkey[b0 + c] != np.inf:
+                    stack[top] = c
+                    top += 1
