@@ -981,7 +981,7 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
     seconds = np.zeros(K)
     radius = n if max_flips is None else int(max_flips)
     tol = objective_tol(compiled)
-    max_steps = _MAX_STEPS if _MAX_STEPS is not None else 100 * n + 1000
+    max_steps = 100 * n + 1000
     fast = not compiled.counts and not compiled.rows and radius >= n
     if pair_width is None:
         longest = int(np.diff(compiled.a_indptr).max(initial=1))
@@ -1041,7 +1041,6 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
 
 
 _WARM = False
-_MAX_STEPS = None  # (bench/debug) cap on moves per candidate
 
 
 def warm_up() -> None:
