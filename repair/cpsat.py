@@ -86,6 +86,19 @@ def integer_scale(values: np.ndarray) -> tuple[float, float]:
     return s, float(np.max(np.abs(np.round(v * s) / s - v)))
 
 
+def _price_multiplier(scaled_price: float, largest: int) -> int:
+    """Smallest power of ten m (up to 1e6) making ``scaled_price * m`` whole, provided the
+    largest scaled coefficient times m stays below 2**40; else 1 (the price is rounded and
+    the rounding is reported as scaling error)."""
+    m = 1
+    while m <= 10**6 and largest * m < 2**40:
+        v = scaled_price * m
+        if abs(v - round(v)) <= 1e-9 * max(1.0, abs(v)):
+            return m
+        m *= 10
+    return 1
+
+
 def _int(v: float, s: float) -> int:
     return int(round(v * s))
 
@@ -179,16 +192,15 @@ class LateModel:
               cancel: threading.Event | None = None) -> CpsatOutput:
         """One search on a clone of the model; see :func:`solve_cpsat` for the options."""
         t0 = time.perf_counter()
-        s = self.scale
         m = self.model.clone()
         proto = m.proto
         self._add_radius(proto, center, radius)
-        idx, coef, const_units, err = self._objective_terms(center, flip_price)
+        idx, coef, const_units, err, s = self._objective_terms(center, flip_price)
         proto.objective.vars.extend(idx.tolist())
         proto.objective.coeffs.extend(coef.tolist())
         proto.objective.offset = float(const_units)
         if upper is not None:
-            self._add_cut(proto, idx, coef, self._units(upper, const_units))
+            self._add_cut(proto, idx, coef, self._units(upper, const_units, s))
         if hint is not None:
             self._hint(proto, np.asarray(hint, dtype=np.int64))
         solver, code = self._run(m, t0=t0, time_limit=time_limit, workers=workers, seed=seed,
@@ -226,8 +238,8 @@ class LateModel:
         proto = m.proto
         c = np.asarray(center, dtype=np.int64)
         self._add_radius(proto, c, radius)
-        idx, coef, const_units, err = self._objective_terms(c, flip_price)
-        top = self._units(upper + slack * max(1.0, abs(upper)), const_units)
+        idx, coef, const_units, err, s = self._objective_terms(c, flip_price)
+        top = self._units(upper + slack * max(1.0, abs(upper)), const_units, s)
         if hint is not None:
             hv = np.asarray(hint, dtype=np.int64)
             vars_, vals = self._hint_values(hv)
@@ -253,7 +265,7 @@ class LateModel:
             value = float(solver.objective_value)
             bound = float(solver.best_objective_bound)
         return CpsatOutput(x=xs, status=status, objective=value, bound=bound,
-                           seconds=time.perf_counter() - t0, scaling_error=err, scale=self.scale)
+                           seconds=time.perf_counter() - t0, scaling_error=err, scale=s)
 
     # ------------------------------------------------------------------ parts of a search
     def _add_radius(self, proto, center, radius) -> None:
@@ -270,28 +282,34 @@ class LateModel:
         """The scaled late objective, with ``flip_price`` per flip from ``center`` if both given.
 
         Returns (vars int64, coefs int64 (nonzero), constant in scaled units, largest
-        coefficient scaling error). The objective in caller units is
-        ``(sum coef * value + constant) / scale + self.const``.
+        coefficient scaling error, scale). The objective in caller units is
+        ``(sum coef * value + constant) / scale + self.const``. A price the model's scale
+        cannot hold exactly (0.5 on a whole-number model) multiplies every objective
+        coefficient by the smallest power of ten that can, while the coefficients stay small.
         """
         s = self.scale
         lin = self.lin.copy()
+        obj = self.obj_coef
         const_units = 0
         err = self.scale_error
         if center is not None and flip_price:
             c = np.asarray(center, dtype=np.int64)
+            mult = _price_multiplier(flip_price * s, max(np.abs(lin).max(initial=0),
+                                                        np.abs(obj).max(initial=0), 1))
+            lin, obj, s = lin * mult, obj * mult, s * mult
             ps = _int(flip_price, s)
             err = max(err, abs(ps / s - flip_price))
             lin = lin + ps * (1 - 2 * c)
             const_units += ps * int(c.sum())
         x_idx = np.asarray([v.index for v in self.x], dtype=np.int64)
         idx = np.concatenate([x_idx, self.obj_idx])
-        coef = np.concatenate([lin, self.obj_coef])
+        coef = np.concatenate([lin, obj])
         keep = coef != 0
-        return idx[keep], coef[keep], const_units, err
+        return idx[keep], coef[keep], const_units, err, s
 
-    def _units(self, upper: float, const_units: int) -> int:
+    def _units(self, upper: float, const_units: int, scale: float) -> int:
         """Largest scaled objective (without the constant) whose value is <= ``upper``."""
-        return int(math.floor((upper - self.const) * self.scale + 1e-6) - const_units)
+        return int(math.floor((upper - self.const) * scale + 1e-6) - const_units)
 
     @staticmethod
     def _add_cut(proto, idx, coef, top: int) -> None:

@@ -179,3 +179,21 @@ def test_greedy_plan_does_not_run_the_cpsat_step():
     assert "fewest_flips_status" not in res.stats
     # steepest descent ends in the 4-flip optimum and polish cannot leave it (see switch_model)
     assert res.best.flips == 4 and res.best.cost == -8.0
+
+
+@pytest.mark.parametrize("price", [0.5, 0.25, 1.3])
+def test_a_fractional_flip_price_on_a_whole_number_model_is_scaled_exactly(price):
+    """The model's scale is 1 (whole numbers); the price rescales the objective instead of
+    being rounded (0.5 used to round to 0 or 1). Expected optimum: brute force over
+    dimod.ExactSolver energies of cost + price * flips from the centre."""
+    bqm = random_bqm(21, n=10)
+    p = Problem.from_bqm(bqm)
+    X, E = exhaustive(bqm, list(p.labels))
+    center = X[int(np.argmax(E))]  # a poor centre, so the price matters
+    model = LateModel(compile_constraints(p, []))
+    r = model.solve(center=center, flip_price=price, time_limit=2.0, workers=1)
+    dist = (X != center[None, :]).sum(axis=1)
+    want = float((E + price * dist).min())
+    assert r.status == "optimal" and r.scaling_error == 0.0
+    got = float(bqm.energy(dict(zip(p.labels, r.x)))) + price * int((r.x != center).sum())
+    assert abs(got - want) < 1e-9 and abs(r.objective - want) < 1e-9
