@@ -203,13 +203,10 @@ class LateModel:
             self._add_cut(proto, idx, coef, self._units(upper, const_units, s))
         if hint is not None:
             self._hint(proto, np.asarray(hint, dtype=np.int64))
-        solver, code = self._run(m, t0=t0, time_limit=time_limit, workers=workers, seed=seed,
-                                 cancel=cancel)
-        status = _STATUS.get(code, "unknown")
-        xs = None
+        solver, status, xs = self._run(m, t0=t0, time_limit=time_limit, workers=workers,
+                                       seed=seed, cancel=cancel)
         value = bound = float("nan")
-        if code in (cp_model.OPTIMAL, cp_model.FEASIBLE):
-            xs = np.asarray([solver.value(v) for v in self.x], dtype=np.int8)
+        if xs is not None:
             value = solver.objective_value / s + self.const
             bound = solver.best_objective_bound / s + self.const
         return CpsatOutput(x=xs, status=status, objective=value, bound=bound,
@@ -255,13 +252,10 @@ class LateModel:
         proto.objective.vars.extend(x_idx)
         proto.objective.coeffs.extend(sign.tolist())
         proto.objective.offset = float(c.sum())
-        solver, code = self._run(m, t0=t0, time_limit=time_limit, workers=workers, seed=seed,
-                                 cancel=cancel)
-        status = _STATUS.get(code, "unknown")
-        xs = None
+        solver, status, xs = self._run(m, t0=t0, time_limit=time_limit, workers=workers,
+                                       seed=seed, cancel=cancel)
         value = bound = float("nan")
-        if code in (cp_model.OPTIMAL, cp_model.FEASIBLE):
-            xs = np.asarray([solver.value(v) for v in self.x], dtype=np.int8)
+        if xs is not None:
             value = float(solver.objective_value)
             bound = float(solver.best_objective_bound)
         return CpsatOutput(x=xs, status=status, objective=value, bound=bound,
@@ -318,9 +312,10 @@ class LateModel:
         ct.linear.coeffs.extend(coef.tolist())
         ct.linear.domain.extend([-(2**62), int(top)])
 
-    @staticmethod
-    def _run(m, *, t0, time_limit, workers, seed, cancel):
-        """Solve ``m`` within what is left of ``time_limit`` since ``t0``; stop on ``cancel``."""
+    def _run(self, m, *, t0, time_limit, workers, seed, cancel):
+        """Solve ``m`` within what is left of ``time_limit`` since ``t0``; stop on ``cancel``.
+
+        Returns (solver, status name, the bits int8 (n,) of the solution found or None)."""
         solver = cp_model.CpSolver()
         solver.parameters.max_time_in_seconds = max(0.01, float(time_limit) - (time.perf_counter() - t0))
         solver.parameters.num_workers = max(1, int(workers))
@@ -340,7 +335,10 @@ class LateModel:
         finished.set()
         if watcher is not None:
             watcher.join()
-        return solver, code
+        xs = None
+        if code in (cp_model.OPTIMAL, cp_model.FEASIBLE):
+            xs = np.asarray([solver.value(v) for v in self.x], dtype=np.int8)
+        return solver, _STATUS.get(code, "unknown"), xs
 
     def _hint(self, proto, hv: np.ndarray) -> None:
         """A complete hint: the bits and every auxiliary value they imply."""

@@ -236,10 +236,11 @@ def _descend_tree(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
     N = 1
     while N < n:
         N *= 2
+    cap = 4 * n + 64  # the small heap's capacity (it compacts when full)
     scratch = (np.empty(2 * N), np.empty(2 * N, dtype=np.int64), np.empty(n),
                _row_sums(h, indptr, data), anchor, _anchor_field(anchor, h, indptr, indices, data),
-               np.empty(n, dtype=np.int64), np.empty(4 * n + 64), np.empty(4 * n + 64, dtype=np.int64),
-               np.empty(4 * n + 64, dtype=np.int64), np.zeros(n, dtype=np.int64))
+               np.empty(n, dtype=np.int64), np.empty(cap), np.empty(cap, dtype=np.int64),
+               np.empty(cap, dtype=np.int64), np.zeros(n, dtype=np.int64))
     _tree_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, steps_out,
                scratch)
 
@@ -381,14 +382,23 @@ def _total_viol(act, lo, hi, rtol):
 
 
 @nb.njit(cache=True)
+def _row_reach(a_ptr, a_val):
+    """Each row's largest |coefficient|: float64 (m,)."""
+    out = np.zeros(a_ptr.size - 1)
+    for r in range(a_ptr.size - 1):
+        for q in range(a_ptr[r], a_ptr[r + 1]):
+            out[r] = max(out[r], abs(a_val[q]))
+    return out
+
+
+@nb.njit(cache=True)
 def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, radius,
                      cp_ptr, cp_table, cp_const, term_pen, term_coef, term_arity, lit_ptr,
                      lit_var, lit_val, vt_ptr, vt_term, vt_lit,
                      a_ptr, a_col, a_val, col_ptr, col_row, col_val, lo, hi, rtol,
-                     pair_width, use_groups, par, gbase, glb, tn, lp, gmem_ptr, gmem, gs_ptr, gs_kind,
-                  gs_id, gs_val,
-                     nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row, ncol_val,
-                     vs_ptr, vs_struct, sm_ptr, sm_var, anchor, steps_out):
+                     pair_width, use_groups, par, gbase, glb, tn, lp, gmem_ptr, gmem, gs_ptr,
+                     gs_kind, gs_id, gs_val, nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row,
+                     ncol_val, vs_ptr, vs_struct, sm_ptr, sm_var, anchor, steps_out):
     """Restore feasibility, then descend (see the module docstring), in place on X (K, n).
 
     With ``use_groups`` the single flips of phase 2 come from the grouped trees: ``gbase``
@@ -419,14 +429,14 @@ def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max
                np.empty(pair_width, dtype=np.int64), np.empty(pair_width),
                np.empty(slots), np.empty(slots, dtype=np.int64), tb,
                np.empty(most, dtype=np.int64), _row_sums(h, indptr, data), anchor,
-               _anchor_field(anchor, h, indptr, indices, data), np.empty(n, dtype=np.int64))
+               _anchor_field(anchor, h, indptr, indices, data), np.empty(n, dtype=np.int64),
+               _row_reach(a_ptr, a_val))
     _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, radius,
                   cp_ptr, cp_table, cp_const, term_pen, term_coef, term_arity, lit_ptr,
                   lit_var, lit_val, vt_ptr, vt_term, vt_lit,
                   a_ptr, a_col, a_val, col_ptr, col_row, col_val, lo, hi, rtol,
                   pair_width, use_groups, par, gbase, glb, tn, lp, gmem_ptr, gmem, gs_ptr, gs_kind,
-                  gs_id, gs_val,
-                  nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row, ncol_val,
+                  gs_id, gs_val, nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row, ncol_val,
                   vs_ptr, vs_struct, sm_ptr, sm_var, steps_out, scratch)
 
 
@@ -436,11 +446,10 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
                   lit_var, lit_val, vt_ptr, vt_term, vt_lit,
                   a_ptr, a_col, a_val, col_ptr, col_row, col_val, lo, hi, rtol,
                   pair_width, use_groups, par, gbase, glb, tn, lp, gmem_ptr, gmem, gs_ptr, gs_kind,
-                  gs_id, gs_val,
-                  nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row, ncol_val,
+                  gs_id, gs_val, nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row, ncol_val,
                   vs_ptr, vs_struct, sm_ptr, sm_var, steps_out, scratch):
     (field, dcount, sat, act, dd, free, up_i, up_v, dn_i, dn_v, tkey, titem, tb, todo, full,
-     anchor, afield, found) = scratch
+     anchor, afield, found, amax) = scratch
     K, n = X.shape
     P = cp_const.size
     T = term_pen.size
@@ -565,8 +574,8 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
             if bi < 0:  # no single flip improves: pair moves inside rows
                 if m == 0:
                     break
-                bi, bj = _best_pair(S, dist, Q, C, R, a_ptr, a_col, a_val, fixed, price, radius,
-                                    -tol, up_i, up_v, dn_i, dn_v)
+                bi, bj = _best_pair(S, dist, Q, C, R, a_ptr, a_col, a_val, amax, fixed, price,
+                                    radius, -tol, up_i, up_v, dn_i, dn_v)
                 if bi < 0:
                     break
             for v in range(2):  # one call site: _flip is inlined
@@ -580,10 +589,11 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
 
 
 @_kernel
-def _best_pair(S, dist, Q, C, R, a_ptr, a_col, a_vals, fixed, price, radius, best, up_i, up_v,
-               dn_i, dn_v):
+def _best_pair(S, dist, Q, C, R, a_ptr, a_col, a_vals, amax, fixed, price, radius, best, up_i,
+               up_v, dn_i, dn_v):
     """The best feasible pair move (one variable up, one down, in the same row) below
-    ``best``: (i, j), or (-1, -1). Each row tries its best ``up_i.size`` of each side."""
+    ``best``: (i, j), or (-1, -1). Each row tries its best ``up_i.size`` of each side.
+    ``amax`` float64 (m,) is each row's largest |coefficient|."""
     x = S[0]
     pair_width = up_i.size
     vtol = 1e-12
@@ -593,6 +603,9 @@ def _best_pair(S, dist, Q, C, R, a_ptr, a_col, a_vals, fixed, price, radius, bes
     for r in range(a_ptr.size - 1):
         # only rows that block some single flip of theirs: elsewhere a pair is just two
         # single flips, which phase 2 has already found not to improve
+        if (_row_viol(act[r] + amax[r], lo[r], hi[r], rtol[r]) == 0.0
+                and _row_viol(act[r] - amax[r], lo[r], hi[r], rtol[r]) == 0.0):
+            continue  # slack both ways for every member
         blocked = False
         for q in range(a_ptr[r], a_ptr[r + 1]):
             i = a_col[q]
@@ -747,8 +760,19 @@ def _flip(i, S, dist, Q, C, R, use_groups, Cn, Rn, price, tol, fixed, gbase, glb
 
 @_kernel
 def _rekey_list(vars_, cnt, S, Cn, Rn, price, tol, fixed, gbase, glb, par, H):
+    """Re-key ``vars_[:cnt]`` into empty trees. A variable in no narrow count penalty can
+    only lose from its narrow rows, so its QUBO-and-price change (with the group's least
+    offset) already tells when it cannot qualify: those skip the full evaluation."""
+    x, o, field = S[0], S[1], S[2]
+    nvt_ptr = Cn[6]
     for t in range(cnt):
-        _rekey(vars_[t], S, Cn, Rn, price, tol, fixed, gbase, glb, par, H)
+        j = vars_[t]
+        if nvt_ptr[j] == nvt_ptr[j + 1]:
+            b = x[j]
+            d = (1.0 - 2.0 * b) * field[j] + (price if b == o[j] else -price)
+            if d + glb[gbase[j, b]] >= -tol:
+                continue
+        _rekey(j, S, Cn, Rn, price, tol, fixed, gbase, glb, par, H)
 
 
 # ------------------------------------------------------------------ driver
@@ -1024,8 +1048,8 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
                              radius, cp_ptr, cp_table, cp_const, t_pen, t_coef, t_ar, l_ptr,
                              l_var, l_val, vt_ptr, vt_term, vt_lit, a_ptr, a_col, a_val,
                              col_ptr, col_row, col_val, compiled.lo, compiled.hi, rtol,
-                             int(pair_width), use_groups, par, lay["gbase"], lay["glb"], tn, lay["lp"],
-                             lay["gmem_ptr"], lay["gmem"],
+                             int(pair_width), use_groups, par, lay["gbase"], lay["glb"], tn,
+                             lay["lp"], lay["gmem_ptr"], lay["gmem"],
                              lay["gs_ptr"], lay["gs_kind"], lay["gs_id"], lay["gs_val"],
                              lay["nvt_ptr"], lay["nvt_term"], lay["nvt_lit"], lay["ncol_ptr"],
                              lay["ncol_row"], lay["ncol_val"], lay["vs_ptr"], lay["vs_struct"],

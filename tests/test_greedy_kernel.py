@@ -43,7 +43,8 @@ def _constraints(n: int, seed: int, kind: str):
         for r in range(5):
             idx = rng.choice(n, 6, replace=False)
             cs.append(LinearConstraint({int(i): 1.0 for i in idx}, "<=", 2.0, name=f"r{r}"))
-        cs.append(FixVariables({int(i): int(rng.integers(2)) for i in rng.choice(n, 4, replace=False)}))
+        pinned = rng.choice(n, 4, replace=False)
+        cs.append(FixVariables({int(i): int(rng.integers(2)) for i in pinned}))
     return cs
 
 
