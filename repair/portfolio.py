@@ -419,7 +419,7 @@ def _kicks(compiled, X0, cur, obj, feasible, done, out, *, deadline, max_flips, 
             idx = rng.choice(free, size=min(r, free.size), replace=False)
             row[idx] ^= 1
         g = greedy_repair(compiled, starts, origin=X0[order], max_flips=max_flips,
-                          flip_price=flip_price, deadline=deadline, cancel=cancel, chunk=4)
+                          flip_price=flip_price, deadline=deadline, cancel=cancel, chunk=len(order))
         ev, new_obj, new_flips = _objective(compiled, g.X, X0[order], flip_price)
         inside = np.ones(len(order), dtype=bool) if max_flips is None else new_flips <= max_flips
         for pos, k in enumerate(order):
