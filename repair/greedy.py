@@ -383,7 +383,7 @@ def _total_viol(act, lo, hi, rtol):
 
 @nb.njit(cache=True)
 def _row_reach(a_ptr, a_val):
-    """Each row's largest |coefficient|: float64 (m,)."""
+    """Each row's largest |coefficient| of a CSR matrix: float64 (rows,)."""
     out = np.zeros(a_ptr.size - 1)
     for r in range(a_ptr.size - 1):
         for q in range(a_ptr[r], a_ptr[r + 1]):
@@ -430,7 +430,7 @@ def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max
                np.empty(slots), np.empty(slots, dtype=np.int64), tb,
                np.empty(most, dtype=np.int64), _row_sums(h, indptr, data), anchor,
                _anchor_field(anchor, h, indptr, indices, data), np.empty(n, dtype=np.int64),
-               _row_reach(a_ptr, a_val))
+               _row_reach(a_ptr, a_val), _row_reach(indptr, data) * (1.0 + 1e-9) + tol)
     _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, radius,
                   cp_ptr, cp_table, cp_const, term_pen, term_coef, term_arity, lit_ptr,
                   lit_var, lit_val, vt_ptr, vt_term, vt_lit,
@@ -449,7 +449,7 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
                   gs_id, gs_val, nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row, ncol_val,
                   vs_ptr, vs_struct, sm_ptr, sm_var, steps_out, scratch):
     (field, dcount, sat, act, dd, free, up_i, up_v, dn_i, dn_v, tkey, titem, tb, todo, full,
-     anchor, afield, found, amax) = scratch
+     anchor, afield, found, amax, jmax) = scratch
     K, n = X.shape
     P = cp_const.size
     T = term_pen.size
@@ -574,8 +574,8 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
             if bi < 0:  # no single flip improves: pair moves inside rows
                 if m == 0:
                     break
-                bi, bj = _best_pair(S, dist, Q, C, R, a_ptr, a_col, a_val, amax, fixed, price,
-                                    radius, -tol, up_i, up_v, dn_i, dn_v)
+                bi, bj = _best_pair(S, dist, Q, C, R, a_ptr, a_col, a_val, amax, jmax, fixed,
+                                    price, radius, -tol, up_i, up_v, dn_i, dn_v)
                 if bi < 0:
                     break
             for v in range(2):  # one call site: _flip is inlined
@@ -589,11 +589,12 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
 
 
 @_kernel
-def _best_pair(S, dist, Q, C, R, a_ptr, a_col, a_vals, amax, fixed, price, radius, best, up_i,
-               up_v, dn_i, dn_v):
+def _best_pair(S, dist, Q, C, R, a_ptr, a_col, a_vals, amax, jmax, fixed, price, radius, best,
+               up_i, up_v, dn_i, dn_v):
     """The best feasible pair move (one variable up, one down, in the same row) below
     ``best``: (i, j), or (-1, -1). Each row tries its best ``up_i.size`` of each side.
-    ``amax`` float64 (m,) is each row's largest |coefficient|."""
+    ``amax`` float64 (m,) is each row's largest |coefficient|, ``jmax`` float64 (n,) each
+    variable's largest |coupling| (a margin for a small tolerance is added by the caller)."""
     x = S[0]
     pair_width = up_i.size
     vtol = 1e-12
@@ -642,11 +643,19 @@ def _best_pair(S, dist, Q, C, R, a_ptr, a_col, a_vals, amax, fixed, price, radiu
                 nu = cnt
             else:
                 ndn = cnt
+        # without count penalties, j's change after i's flip differs from its change now
+        # by at most i's largest coupling: pairs that cannot beat ``best`` are skipped
+        # (both lists are sorted by change, ascending)
+        prune = C[0].size == 1
         for a in range(nu):
             i = up_i[a]
+            if prune and ndn > 0 and up_v[a] + dn_v[0] - jmax[i] >= best:
+                continue
             dobj_i, dv_i, nd_i = _eval_flip(i, S, dist, C, R, price)
             d1 = _apply_flip(i, S, dist, Q, C, R)
             for b in range(ndn):
+                if prune and up_v[a] + dn_v[b] - jmax[i] >= best:
+                    break
                 j = dn_i[b]
                 dobj_j, dv_j, nd_j = _eval_flip(j, S, d1, C, R, price)
                 tot = dobj_i + dobj_j
