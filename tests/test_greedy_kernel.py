@@ -118,3 +118,30 @@ def test_fast_path_matches_a_plain_steepest_descent():
             taken += 1
         np.testing.assert_array_equal(X[k], x)
         assert steps[k] == taken
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_answers_under_a_tight_weighted_row_admit_no_improving_swap(seed):
+    # independent check (numpy evaluation of every swap): with the capacity row tight, no
+    # feasible single flip and no feasible "one in, one out" swap lowers the cost; rows of
+    # <= 32 variables try every swap, so a wrongly pruned pair would show up here
+    n = 24
+    rng = np.random.default_rng(seed)
+    lin = {i: float(rng.integers(-40, -5)) for i in range(n)}
+    quad = [(i, j, float(rng.integers(-6, 7))) for i in range(n) for j in range(i + 1, n)
+            if rng.random() < 0.3]
+    p = Problem.from_terms(lin, quad)
+    w = {i: float(rng.integers(1, 20)) for i in range(n)}
+    comp = compile_constraints(p, [LinearConstraint(w, "<=", float(sum(w.values()) * 0.35))])
+    X0 = rng.integers(0, 2, (5, n)).astype(np.int8)
+    g = greedy_repair(comp, X0)
+    ev = comp.evaluate(g.X)
+    assert ev.feasible.all()
+    for k in range(X0.shape[0]):
+        x = g.X[k]
+        ones, zeros = np.flatnonzero(x == 1), np.flatnonzero(x == 0)
+        moves = [x ^ np.eye(n, dtype=np.int8)[i] for i in range(n)]
+        moves += [x ^ np.eye(n, dtype=np.int8)[i] ^ np.eye(n, dtype=np.int8)[j]
+                  for i in zeros for j in ones]
+        evm = comp.evaluate(np.vstack(moves))
+        assert (evm.cost[evm.feasible] >= ev.cost[k] - 1e-9).all()
