@@ -828,9 +828,11 @@ def _row_arrays(compiled: Compiled, n: int):
 
 
 #: A row or count penalty over more than this many variables is "wide": its share of a
-#: flip's change is taken per group (see the grouped heaps), not re-keyed per member.
+#: flip's change is taken per group (see "grouped single flips"), not re-keyed per member.
 #: Common practice for such a split; the figure is ours, set by bench/kernel.py.
 WIDE = 64
+#: More wide structures than this: no groups (their signature matrix is (2, n, wide)).
+MAX_WIDE = 16
 #: Grouped trees pay only while there are few groups; past this share of the free
 #: variables the plain scan over free variables is used instead.
 MAX_GROUP_SHARE = 0.25
@@ -867,6 +869,13 @@ def _group_layout(compiled: Compiled, cnt, rows):
     # signature matrix: for (i, b) the change of each wide structure when i flips from b
     wr, wp = np.flatnonzero(wide_row), np.flatnonzero(wide_pen)
     W = wr.size + wp.size
+    if W > MAX_WIDE:  # the signatures would be many and their matrix large: scan instead
+        wr, wp, W = wr[:0], wp[:0], 0
+        wide_row[:] = False
+        wide_pen[:] = False
+        too_many = True
+    else:
+        too_many = False
     M = np.zeros((2, n, W))
     for c, r in enumerate(wr):
         cols = a_col[a_ptr[r]:a_ptr[r + 1]]
@@ -882,7 +891,7 @@ def _group_layout(compiled: Compiled, cnt, rows):
     uniq, inv = np.unique(M.reshape(2 * n, W), axis=0, return_inverse=True)
     gbase = np.ascontiguousarray(inv.reshape(2, n).T, dtype=np.int64)
     free = compiled.fixed < 0
-    groups = uniq.shape[0]
+    groups = n + 1 if too_many else uniq.shape[0]  # n + 1: never worth the trees
     members = np.zeros(groups, dtype=np.int64)
     g0, g1 = gbase[free, 0], gbase[free, 1]
     np.add.at(members, g0, 1)

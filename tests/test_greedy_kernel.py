@@ -39,6 +39,10 @@ def _constraints(n: int, seed: int, kind: str):
     if kind in ("penalty", "mixed"):  # a wide threshold Hamming penalty
         ref = {i: int(b) for i, b in enumerate(rng.integers(0, 2, n))}
         cs.append(HammingPenalty(ref, weight=7.0, shape="threshold", threshold=n // 4))
+    if kind == "many":  # more wide rows than repair.greedy.MAX_WIDE: the kernel scans
+        for r in range(20):
+            idx = rng.choice(n, 70, replace=False)
+            cs.append(LinearConstraint({int(i): 1.0 for i in idx}, "<=", 30.0, name=f"w{r}"))
     if kind == "mixed":  # narrow rows and fixings too
         for r in range(5):
             idx = rng.choice(n, 6, replace=False)
@@ -53,7 +57,7 @@ def _objective(comp, X, X0, price):
     return ev, ev.cost + price * (X != X0).sum(axis=1)
 
 
-@pytest.mark.parametrize("kind", ["row", "penalty", "mixed"])
+@pytest.mark.parametrize("kind", ["row", "penalty", "mixed", "many"])
 @pytest.mark.parametrize("max_flips,price", [(None, 0.0), (40, 0.0), (None, 1.5)])
 def test_grouped_answers_are_feasible_single_flip_local_minima(kind, max_flips, price):
     n, seed = 160, 3
