@@ -100,15 +100,20 @@ def encode_plans(problem: Problem, plans) -> np.ndarray:
     return X
 
 
+def every_string(problem: Problem):
+    """Every bit string int8 (2^n, n) in the problem's label order and its energy float64
+    (2^n,), by dimod.ExactSolver (dimod's exhaustive reference solver)."""
+    ss = dimod.ExactSolver().sample(problem.to_bqm())
+    X = np.asarray(ss.record.sample)[:, [ss.variables.index(v) for v in problem.labels]]
+    return X.astype(np.int8), np.asarray(ss.record.energy, dtype=np.float64)
+
+
 def brute_force(problem: Problem, extra_cost, allowed):
     """Every bit string via dimod.ExactSolver; returns (best cost, best plans, table of valid rows).
 
     ``extra_cost(plan)`` is the integer-level late penalty, ``allowed(plan)`` the hard part.
     """
-    ss = dimod.ExactSolver().sample(problem.to_bqm())
-    cols = [ss.variables.index(lab) for lab in problem.labels]
-    X = np.asarray(ss.record.sample)[:, cols]
-    E = np.asarray(ss.record.energy, dtype=np.float64)
+    X, E = every_string(problem)
     best, plans = np.inf, []
     for x, e in zip(X, E):
         plan = tuple(ref_index(d.encoding, x[[problem.index[v] for v in d.variables]])
@@ -199,10 +204,9 @@ def test_unary_and_pair_terms_exact_on_valid_strings(encoding):
     # dimod.ExactSolver brute force: the bit model equals the integer model on every valid string
     U, G = integer_model(3, 4, seed=11)
     p = encoded_problem(encoding, U, G)
-    ss = dimod.ExactSolver().sample(p.to_bqm())
-    X = np.asarray(ss.record.sample)[:, [ss.variables.index(v) for v in p.labels]]
+    X, energy = every_string(p)
     seen = 0
-    for x, e in zip(X, ss.record.energy):
+    for x, e in zip(X, energy):
         plan = plan_of(p, x)
         if None not in plan:
             assert e == pytest.approx(integer_energy(U, G, plan), abs=1e-9)
@@ -234,8 +238,7 @@ def test_lowering_matches_definitions_on_every_string(encoding, shape, distance,
     cons = [enc.ForbidValues("d1", [2]), enc.AllowValues("d2", [0, 3, 7]),
             enc.DecisionChangePenalty(ref, weight=w, shape=shape, distance=distance, **extra)]
     comp = compile_constraints(p, cons)
-    ss = dimod.ExactSolver().sample(p.to_bqm())
-    X = np.asarray(ss.record.sample)[:, [ss.variables.index(v) for v in p.labels]].astype(np.int8)
+    X, energy = every_string(p)
     ev = comp.evaluate(X)
     for r, x in enumerate(X):
         plan = plan_of(p, x)
@@ -249,7 +252,7 @@ def test_lowering_matches_definitions_on_every_string(encoding, shape, distance,
             dist = sum(vals[name] != v for name, v in ref.items())
         else:
             dist = sum(abs(vals[name] - v) for name, v in ref.items())
-        want = ss.record.energy[r] + ref_shape(shape, w, dist, **extra)
+        want = energy[r] + ref_shape(shape, w, dist, **extra)
         assert ev.cost[r] == pytest.approx(want, abs=1e-9)
 
 
@@ -263,15 +266,14 @@ def test_absolute_distance_with_unordered_values(encoding, values):
     ref = {"d0": values[1], "d1": values[3]}
     comp = compile_constraints(p, [enc.DecisionChangePenalty(ref, weight=0.5, shape="quadratic",
                                                              distance="absolute")])
-    ss = dimod.ExactSolver().sample(p.to_bqm())
-    X = np.asarray(ss.record.sample)[:, [ss.variables.index(v) for v in p.labels]].astype(np.int8)
+    X, energy = every_string(p)
     ev = comp.evaluate(X)
     for r, x in enumerate(X):
         plan = plan_of(p, x)
         if None in plan:
             continue
         dist = abs(values[plan[0]] - ref["d0"]) + abs(values[plan[1]] - ref["d1"])
-        assert ev.cost[r] == pytest.approx(ss.record.energy[r] + 0.5 * dist ** 2, abs=1e-9)
+        assert ev.cost[r] == pytest.approx(energy[r] + 0.5 * dist ** 2, abs=1e-9)
 
 
 def test_spin_problem_with_decisions():
