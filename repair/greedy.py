@@ -133,10 +133,9 @@ def _delta(x, o, field, price, i):
 
 
 @nb.njit(cache=True, inline="always")
-def _init_field(x, anchor, afield, full, h, indptr, indices, data, field):
-    """field = h + J x (J symmetric CSR), by the cheapest of three routes: from the
-    anchor's field by the bits that differ from it, from h by the set bits, or from
-    ``full`` (h + J 1) by the clear bits. The route depends on x and the anchor alone."""
+def _route(x, anchor):
+    """Which way to x's state is cheapest: 0 from the anchor's, by the bits that differ
+    from it; 1 from all-zeros, by the set bits; 2 from all-ones, by the clear bits."""
     n = x.size
     ones = 0
     apart = 0
@@ -144,6 +143,29 @@ def _init_field(x, anchor, afield, full, h, indptr, indices, data, field):
         ones += x[i]
         apart += x[i] != anchor[i]
     if apart <= ones and apart <= n - ones:
+        return 0
+    return 1 if 2 * ones <= n else 2
+
+
+@nb.njit(cache=True, inline="always")
+def _differing(x, anchor, out):
+    """The positions where x and anchor differ, into out[:count] (int64, >= n); returns
+    count."""
+    c = 0
+    for j in range(x.size):
+        if x[j] != anchor[j]:
+            out[c] = j
+            c += 1
+    return c
+
+
+@nb.njit(cache=True, inline="always")
+def _init_field(x, anchor, afield, full, h, indptr, indices, data, field):
+    """field = h + J x (J symmetric CSR) by the route :func:`_route` picks: from the
+    anchor's field ``afield``, from h, or from ``full`` (h + J 1)."""
+    n = x.size
+    route = _route(x, anchor)
+    if route == 0:
         for i in range(n):
             field[i] = afield[i]
         for j in range(n):
@@ -151,7 +173,7 @@ def _init_field(x, anchor, afield, full, h, indptr, indices, data, field):
                 s = 1.0 if x[j] == 1 else -1.0
                 for p in range(indptr[j], indptr[j + 1]):
                     field[indices[p]] += s * data[p]
-    elif 2 * ones <= n:
+    elif route == 1:
         for i in range(n):
             field[i] = h[i]
         for j in range(n):
@@ -350,6 +372,13 @@ def _eval_flip(i, S, dist, C, R, price):
 @_kernel
 def _apply_flip(i, S, dist, Q, C, R):
     """Flip variable i, updating fields, term states, counts and row activities in O(degree)."""
+    return _flip_state(i, S, dist, Q, C, R)
+
+
+@nb.njit(cache=True, inline="always")
+def _flip_state(i, S, dist, Q, C, R):
+    """:func:`_apply_flip` inlined, for loops where the call's argument copying (some 25
+    arrays) would cost more than the flip."""
     x, o, field, dcount, sat, act, dd = S
     indptr, indices, data = Q
     cp_ptr, cp_table, term_pen, term_coef, term_arity, lit_val, vt_ptr, vt_term, vt_lit = C
@@ -371,6 +400,27 @@ def _apply_flip(i, S, dist, Q, C, R):
         act[col_row[q]] += sgn * col_val[q]
     x[i] = 1 - xi
     return dist + 1 if xi == o[i] else dist - 1
+
+
+@nb.njit(cache=True, inline="always")
+def _fresh_counts(x, cp_const, term_pen, term_coef, term_arity, lit_ptr, lit_var, lit_val,
+                  a_ptr, a_col, a_val, dcount, sat, act):
+    """x's count-penalty counts ``dcount``, term states ``sat`` and row activities ``act``,
+    computed anew."""
+    for p in range(cp_const.size):
+        dcount[p] = cp_const[p]
+    for t in range(term_pen.size):
+        s = 0
+        for q in range(lit_ptr[t], lit_ptr[t + 1]):
+            s += x[lit_var[q]] == lit_val[q]
+        sat[t] = s
+        if s == term_arity[t]:
+            dcount[term_pen[t]] += term_coef[t]
+    for r in range(act.size):
+        a = 0.0
+        for q in range(a_ptr[r], a_ptr[r + 1]):
+            a += a_val[q] * x[a_col[q]]
+        act[r] = a
 
 
 @_kernel
@@ -430,7 +480,9 @@ def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max
                np.empty(slots), np.empty(slots, dtype=np.int64), tb,
                np.empty(most, dtype=np.int64), _row_sums(h, indptr, data), anchor,
                _anchor_field(anchor, h, indptr, indices, data), np.empty(n, dtype=np.int64),
-               _row_reach(a_ptr, a_val), _row_reach(indptr, data) * (1.0 + 1e-9) + tol)
+               _row_reach(a_ptr, a_val), _row_reach(indptr, data) * (1.0 + 1e-9) + tol,
+               np.empty(cp_const.size, dtype=np.int64), np.empty(term_pen.size, dtype=np.int64),
+               np.empty(lo.size))
     _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, radius,
                   cp_ptr, cp_table, cp_const, term_pen, term_coef, term_arity, lit_ptr,
                   lit_var, lit_val, vt_ptr, vt_term, vt_lit,
@@ -449,7 +501,7 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
                   gs_id, gs_val, nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row, ncol_val,
                   vs_ptr, vs_struct, sm_ptr, sm_var, steps_out, scratch):
     (field, dcount, sat, act, dd, free, up_i, up_v, dn_i, dn_v, tkey, titem, tb, todo, full,
-     anchor, afield, found, amax, jmax) = scratch
+     anchor, afield, found, amax, jmax, adcount, asat, aact) = scratch
     K, n = X.shape
     P = cp_const.size
     T = term_pen.size
@@ -468,6 +520,8 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
     G = (gs_ptr, gs_kind, gs_id, gs_val)
     N = (vs_ptr, vs_struct, sm_ptr, sm_var)
     H = (tkey, titem, tb, tn, lp)
+    _fresh_counts(anchor, cp_const, term_pen, term_coef, term_arity, lit_ptr, lit_var, lit_val,
+                  a_ptr, a_col, a_val, adcount, asat, aact)
     for g in range(tn.size):  # leaf items never change
         gb = g // par
         cnt = gmem_ptr[gb + 1] - gmem_ptr[gb]
@@ -483,24 +537,26 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
                 x[i] = fixed[i]
         dist = 0
         for i in range(n):
-            if x[i] != o[i]:
-                dist += 1
-        _init_field(x, anchor, afield, full, h, indptr, indices, data, field)
-        for p in range(P):
-            dcount[p] = cp_const[p]
-        for t in range(T):
-            s = 0
-            for q in range(lit_ptr[t], lit_ptr[t + 1]):
-                if x[lit_var[q]] == lit_val[q]:
-                    s += 1
-            sat[t] = s
-            if s == term_arity[t]:
-                dcount[term_pen[t]] += term_coef[t]
-        for r in range(m):
-            a = 0.0
-            for q in range(a_ptr[r], a_ptr[r + 1]):
-                a += a_val[q] * x[a_col[q]]
-            act[r] = a
+            dist += x[i] != o[i]
+        if _route(x, anchor) == 0:
+            # from the anchor's state: each differing bit is set back to the anchor's
+            # value and flipped, which updates fields, term states and activities alike
+            for i in range(n):
+                field[i] = afield[i]
+            for p in range(P):
+                dcount[p] = adcount[p]
+            for t in range(T):
+                sat[t] = asat[t]
+            for r in range(m):
+                act[r] = aact[r]
+            for q in range(_differing(x, anchor, found)):
+                j = found[q]
+                x[j] = anchor[j]
+                _flip_state(j, S, 0, Q, C, R)
+        else:
+            _init_field(x, anchor, afield, full, h, indptr, indices, data, field)
+            _fresh_counts(x, cp_const, term_pen, term_coef, term_arity, lit_ptr, lit_var,
+                          lit_val, a_ptr, a_col, a_val, dcount, sat, act)
         steps = 0
         # ---- phase 1: restore feasibility at least cost per unit of violation
         viol = _total_viol(act, lo, hi, rtol)
@@ -652,7 +708,7 @@ def _best_pair(S, dist, Q, C, R, a_ptr, a_col, a_vals, amax, jmax, fixed, price,
             if prune and ndn > 0 and up_v[a] + dn_v[0] - jmax[i] >= best:
                 continue
             dobj_i, dv_i, nd_i = _eval_flip(i, S, dist, C, R, price)
-            d1 = _apply_flip(i, S, dist, Q, C, R)
+            d1 = _flip_state(i, S, dist, Q, C, R)
             for b in range(ndn):
                 if prune and up_v[a] + dn_v[b] - jmax[i] >= best:
                     break
@@ -663,7 +719,7 @@ def _best_pair(S, dist, Q, C, R, a_ptr, a_col, a_vals, amax, jmax, fixed, price,
                     best = tot
                     bi = i
                     bj = j
-            _apply_flip(i, S, d1, Q, C, R)
+            _flip_state(i, S, d1, Q, C, R)
     return bi, bj
 
 
@@ -746,7 +802,7 @@ def _flip(i, S, dist, Q, C, R, use_groups, Cn, Rn, price, tol, fixed, gbase, glb
         b = x[i]
         g = gbase[i, b] * par + (1 if par == 2 and b == o[i] else 0)
         tree_set(tkey, titem, tb[g], tn[g], lp[i, b], _INF)
-    dist = _apply_flip(i, S, dist, Q, C, R)
+    dist = _flip_state(i, S, dist, Q, C, R)
     if not use_groups:
         return dist
     indptr, indices = Q[0], Q[1]

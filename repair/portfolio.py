@@ -35,7 +35,7 @@ from .compiled import Compiled
 from .errors import InputError
 from .greedy import objective_tol, greedy_repair
 
-__all__ = ["Attempt", "PlanOutcome", "run_plan"]
+__all__ = ["Attempt", "PlanOutcome", "kick_masks", "run_plan"]
 
 KICK_BATCH = 32
 #: share of the budget kept at the end for moving the best answers back toward their candidates
@@ -394,6 +394,16 @@ def _fewest_flips(cp, compiled, X0, out, *, deadline, max_flips, flip_price, see
         stats["fewest_flips"] = int(flips2[0])
 
 
+def kick_masks(rng: np.random.Generator, rows: int, width: int, top: int) -> np.ndarray:
+    """bool (rows, width): in each row, r distinct True positions, r uniform in
+    min(2, top) .. top (top <= width), the r smallest of a row of random keys."""
+    size = rng.integers(min(2, top), top + 1, size=rows)
+    keys = rng.random((rows, width))
+    low = np.partition(keys, top - 1, axis=1)[:, :top]
+    low.sort(axis=1)
+    return keys <= low[np.arange(rows), size - 1][:, None]
+
+
 def _kicks(compiled, X0, cur, obj, feasible, done, out, *, deadline, max_flips, flip_price,
            seed, cancel):
     """Iterated local search on the best repaired solutions, in place on ``cur`` / ``obj``.
@@ -408,18 +418,22 @@ def _kicks(compiled, X0, cur, obj, feasible, done, out, *, deadline, max_flips, 
     if free.size == 0:
         return 0, 0
     rounds = kept = 0
-    top_kick = max(2, min(free.size, n // 10))
+    top_kick = min(free.size, max(2, n // 10))
+    last = None  # seconds the last round's descents took
     while time.perf_counter() < deadline and not (cancel is not None and cancel.is_set()):
         order = [int(k) for k in _ranked(feasible, obj) if done[k]][:KICK_BATCH]
         if not order:
             break
         starts = cur[order].copy()
-        for row in starts:
-            r = int(rng.integers(2, top_kick + 1))
-            idx = rng.choice(free, size=min(r, free.size), replace=False)
-            row[idx] ^= 1
+        starts[:, free] ^= kick_masks(rng, len(order), free.size, top_kick).astype(np.int8)
+        # one kernel call per round while a round fits easily in what is left; near the
+        # deadline the kernel fits the batch to it (measuring one candidate first)
+        t = time.perf_counter()
+        near_end = last is None or t + 2.0 * last >= deadline
         g = greedy_repair(compiled, starts, origin=X0[order], max_flips=max_flips,
-                          flip_price=flip_price, deadline=deadline, cancel=cancel, chunk=len(order))
+                          flip_price=flip_price, deadline=deadline if near_end else None,
+                          cancel=cancel, chunk=len(order))
+        last = time.perf_counter() - t
         ev, new_obj, new_flips = _objective(compiled, g.X, X0[order], flip_price)
         inside = np.ones(len(order), dtype=bool) if max_flips is None else new_flips <= max_flips
         for pos, k in enumerate(order):

@@ -327,3 +327,21 @@ def test_a_flip_cap_that_the_fixings_break_leaves_no_feasible_answer(method):
     assert all(not row.feasible for row in res.audit)
     ok = repair(p, cands, [FixVariables({0: 1})], method=method, max_flips=1, time_limit=0.5)
     assert ok.best.feasible and ok.best.flips <= 1 and ok.best.violations["max_flips"] == 0
+
+
+@pytest.mark.parametrize("width,top", [(1, 1), (2, 2), (7, 3), (90, 10), (500, 50)])
+def test_kicks_flip_a_uniform_number_of_distinct_variables(width, top):
+    # each kick flips r distinct variables, r drawn from min(2, top) .. top; over many rows
+    # every size and every position turns up
+    from repair.portfolio import kick_masks
+
+    rows = 4000
+    M = kick_masks(np.random.default_rng(5), rows, width, top)
+    assert M.shape == (rows, width) and M.dtype == bool
+    sizes = M.sum(axis=1)
+    lo = min(2, top)
+    assert sizes.min() == lo and sizes.max() == top
+    assert set(np.unique(sizes)) == set(range(lo, top + 1))
+    assert M.any(axis=0).all()
+    # same seed, same kicks
+    assert np.array_equal(M, kick_masks(np.random.default_rng(5), rows, width, top))

@@ -149,3 +149,28 @@ def test_answers_under_a_tight_weighted_row_admit_no_improving_swap(seed):
                   for i in zeros for j in ones]
         evm = comp.evaluate(np.vstack(moves))
         assert (evm.cost[evm.feasible] >= ev.cost[k] - 1e-9).all()
+
+
+@pytest.mark.parametrize("kind", ["row", "penalty", "mixed", "many", "none"])
+def test_a_candidate_descends_the_same_alone_and_in_any_batch(kind):
+    # A candidate's start-up state (fields, term states, row activities) comes from the
+    # batch's bitwise-majority anchor by the differing bits when it is near it, else anew;
+    # both must give the state computed for the candidate alone (where it is the anchor),
+    # so the steps and the answer cannot depend on the batch.
+    n, seed = 160, 9
+    p = _model(n, seed)
+    comp = compile_constraints(p, [] if kind == "none" else _constraints(n, seed, kind))
+    rng = np.random.default_rng(seed)
+    base = rng.integers(0, 2, n).astype(np.int8)
+    near = np.repeat(base[None], 6, axis=0)
+    for row in near[1:]:  # a few bits from the majority: the anchor route
+        row[rng.choice(n, 12, replace=False)] ^= 1
+    far = (1 - base)[None].copy()  # far from the majority: computed anew
+    far[0, rng.choice(n, 10, replace=False)] ^= 1
+    X0 = np.concatenate([near, far, rng.integers(0, 2, (2, n)).astype(np.int8)])
+    for max_flips, price in [(None, 0.0), (30, 1.5)]:
+        batch = greedy_repair(comp, X0, max_flips=max_flips, flip_price=price)
+        for k in range(X0.shape[0]):
+            alone = greedy_repair(comp, X0[k:k + 1], max_flips=max_flips, flip_price=price)
+            np.testing.assert_array_equal(batch.X[k], alone.X[0])
+            assert batch.steps[k] == alone.steps[0]
