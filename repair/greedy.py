@@ -442,6 +442,16 @@ def _row_reach(a_ptr, a_val):
 
 
 @nb.njit(cache=True)
+def _largest_positive(indptr, data):
+    """Each row's largest positive coefficient of a CSR matrix, 0 if none: float64 (rows,)."""
+    out = np.zeros(indptr.size - 1)
+    for r in range(indptr.size - 1):
+        for p in range(indptr[r], indptr[r + 1]):
+            out[r] = max(out[r], data[p])
+    return out
+
+
+@nb.njit(cache=True)
 def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, radius,
                      cp_ptr, cp_table, cp_const, term_pen, term_coef, term_arity, lit_ptr,
                      lit_var, lit_val, vt_ptr, vt_term, vt_lit,
@@ -480,7 +490,7 @@ def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max
                np.empty(slots), np.empty(slots, dtype=np.int64), tb,
                np.empty(most, dtype=np.int64), _row_sums(h, indptr, data), anchor,
                _anchor_field(anchor, h, indptr, indices, data), np.empty(n, dtype=np.int64),
-               _row_reach(a_ptr, a_val), _row_reach(indptr, data) * (1.0 + 1e-9) + tol,
+               _row_reach(a_ptr, a_val), _largest_positive(indptr, data) * (1.0 + 1e-9) + tol,
                np.empty(cp_const.size, dtype=np.int64), np.empty(term_pen.size, dtype=np.int64),
                np.empty(lo.size))
     _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, radius,
@@ -501,7 +511,7 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
                   gs_id, gs_val, nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row, ncol_val,
                   vs_ptr, vs_struct, sm_ptr, sm_var, steps_out, scratch):
     (field, dcount, sat, act, dd, free, up_i, up_v, dn_i, dn_v, tkey, titem, tb, todo, full,
-     anchor, afield, found, amax, jmax, adcount, asat, aact) = scratch
+     anchor, afield, found, amax, jpos, adcount, asat, aact) = scratch
     K, n = X.shape
     P = cp_const.size
     T = term_pen.size
@@ -630,7 +640,7 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
             if bi < 0:  # no single flip improves: pair moves inside rows
                 if m == 0:
                     break
-                bi, bj = _best_pair(S, dist, Q, C, R, a_ptr, a_col, a_val, amax, jmax, fixed,
+                bi, bj = _best_pair(S, dist, Q, C, R, a_ptr, a_col, a_val, amax, jpos, fixed,
                                     price, radius, -tol, up_i, up_v, dn_i, dn_v)
                 if bi < 0:
                     break
@@ -645,12 +655,13 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
 
 
 @_kernel
-def _best_pair(S, dist, Q, C, R, a_ptr, a_col, a_vals, amax, jmax, fixed, price, radius, best,
+def _best_pair(S, dist, Q, C, R, a_ptr, a_col, a_vals, amax, jpos, fixed, price, radius, best,
                up_i, up_v, dn_i, dn_v):
     """The best feasible pair move (one variable up, one down, in the same row) below
     ``best``: (i, j), or (-1, -1). Each row tries its best ``up_i.size`` of each side.
-    ``amax`` float64 (m,) is each row's largest |coefficient|, ``jmax`` float64 (n,) each
-    variable's largest |coupling| (a margin for a small tolerance is added by the caller)."""
+    ``amax`` float64 (m,) is each row's largest |coefficient|, ``jpos`` float64 (n,) each
+    variable's largest positive coupling, 0 if none (a margin for a small tolerance is added
+    by the caller)."""
     x = S[0]
     pair_width = up_i.size
     vtol = 1e-12
@@ -699,18 +710,19 @@ def _best_pair(S, dist, Q, C, R, a_ptr, a_col, a_vals, amax, jmax, fixed, price,
                 nu = cnt
             else:
                 ndn = cnt
-        # without count penalties, j's change after i's flip differs from its change now
-        # by at most i's largest coupling: pairs that cannot beat ``best`` are skipped
+        # without count penalties, moving i up and j down changes the objective by
+        # change_i + change_j - J_ij (the QUBO's pair term), so by no less than
+        # change_i + change_j - jpos[i]: pairs that cannot beat ``best`` are skipped
         # (both lists are sorted by change, ascending)
         prune = C[0].size == 1
         for a in range(nu):
             i = up_i[a]
-            if prune and ndn > 0 and up_v[a] + dn_v[0] - jmax[i] >= best:
+            if prune and ndn > 0 and up_v[a] + dn_v[0] - jpos[i] >= best:
                 continue
             dobj_i, dv_i, nd_i = _eval_flip(i, S, dist, C, R, price)
             d1 = _flip_state(i, S, dist, Q, C, R)
             for b in range(ndn):
-                if prune and up_v[a] + dn_v[b] - jmax[i] >= best:
+                if prune and up_v[a] + dn_v[b] - jpos[i] >= best:
                     break
                 j = dn_i[b]
                 dobj_j, dv_j, nd_j = _eval_flip(j, S, d1, C, R, price)
