@@ -60,6 +60,9 @@ def repair(
     Never raises for infeasibility or an exhausted budget: see ``RepairResult.status``.
     ``compiled`` may pass a precompiled ``compile_constraints(problem, constraints)``;
     ``mix`` sets how the portfolio shares its budget (see :class:`repair.portfolio.Mix`).
+    ``workers`` is the number of search threads: CP-SAT's workers, and the threads greedy
+    descends its batches with (greedy answers do not depend on it; only what fits in the
+    budget does).
     """
     # one-time costs per process, kept out of the budget: the compiled kernels (loaded
     # from the cache, or compiled on a machine's first run) and OR-Tools

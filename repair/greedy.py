@@ -30,6 +30,7 @@ The inner kernels run without numba's reference counting (see ``_kernel``).
 from __future__ import annotations
 
 import time
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numba as nb
@@ -244,7 +245,7 @@ def _compact(x, o, field, price, tol, stamp, hv, hi, hs, size):
     return keep
 
 
-@nb.njit(cache=True)
+@nb.njit(cache=True, nogil=True)
 def _descend_tree(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, anchor,
                   steps_out):
     """Steepest descent on a pure QUBO (+ fixings, + flip price), in place on X (K, n).
@@ -451,7 +452,7 @@ def _largest_positive(indptr, data):
     return out
 
 
-@nb.njit(cache=True)
+@nb.njit(cache=True, nogil=True)
 def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, radius,
                      cp_ptr, cp_table, cp_const, term_pen, term_coef, term_arity, lit_ptr,
                      lit_var, lit_val, vt_ptr, vt_term, vt_lit,
@@ -1068,10 +1069,38 @@ def descend_qubo(h, indptr, indices, data, X0, *, fixed=None, flip_price: float 
     return X, steps
 
 
+_POOLS: dict = {}
+
+
+def _threads(workers: int) -> ThreadPoolExecutor:
+    """A process-wide pool of ``workers`` threads (the kernels release the GIL)."""
+    pool = _POOLS.get(workers)
+    if pool is None:
+        pool = _POOLS[workers] = ThreadPoolExecutor(max_workers=workers,
+                                                     thread_name_prefix="flipfix-greedy")
+    return pool
+
+
+def _in_parts(run, X: np.ndarray, O: np.ndarray, steps: np.ndarray, workers: int) -> None:
+    """run(X, O, steps) on ``workers`` contiguous row blocks at once (in place). Each
+    candidate's descent depends on that candidate alone, so the answers do not depend on
+    the split."""
+    parts = min(workers, X.shape[0])
+    if parts <= 1:
+        run(X, O, steps)
+        return
+    cuts = np.linspace(0, X.shape[0], parts + 1).astype(int)
+    jobs = [_threads(parts).submit(run, X[a:b], O[a:b], steps[a:b])
+            for a, b in zip(cuts[:-1], cuts[1:])]
+    for j in jobs:
+        j.result()
+
+
 def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | None = None,
                   max_flips: int | None = None, flip_price: float = 0.0,
                   deadline: float | None = None, cancel=None, chunk: int = 64,
-                  pair_width: int | None = None, progress=None) -> GreedyOutput:
+                  pair_width: int | None = None, progress=None,
+                  workers: int = 1) -> GreedyOutput:
     """Repair every row of X0 (int8 (K, n), 0/1) greedily on the compiled late problem.
 
     ``origin`` (int8 (K, n), default X0) is what flips are counted from (radius, price).
@@ -1081,6 +1110,8 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
     ``pair_width``: pair moves inside a row try the best ``pair_width`` "up" and "down"
     variables of that row; by default every pair of rows up to 32 variables long,
     the best 32 of each side in longer rows.
+    ``workers``: threads that descend parts of each chunk at once; the answers do not
+    depend on it.
     """
     X0 = np.ascontiguousarray(X0, dtype=np.int8)
     K, n = X0.shape
@@ -1104,6 +1135,28 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
         leaves = 1 << np.ceil(np.log2(np.maximum(lay["members"], 1))).astype(np.int64)
         tn = np.repeat(leaves, par) if use_groups else np.zeros(0, dtype=np.int64)
     anchor = consensus(X0, compiled.fixed)
+
+    def run(Xc, Oc, st):  # one kernel call, in place on Xc (rows, n) and st (rows,)
+        if fast:
+            _descend_tree(Xc, Oc, compiled.h, compiled.indptr, compiled.indices,
+                          compiled.data, compiled.fixed, float(flip_price), tol, max_steps,
+                          anchor, st)
+            return
+        (cp_ptr, cp_table, cp_const, t_pen, t_coef, t_ar, l_ptr, l_var, l_val, vt_ptr,
+         vt_term, vt_lit) = cnt
+        a_ptr, a_col, a_val, col_ptr, col_row, col_val, rtol = rows
+        _descend_general(Xc, Oc, compiled.h, compiled.indptr, compiled.indices,
+                         compiled.data, compiled.fixed, float(flip_price), tol, max_steps,
+                         radius, cp_ptr, cp_table, cp_const, t_pen, t_coef, t_ar, l_ptr,
+                         l_var, l_val, vt_ptr, vt_term, vt_lit, a_ptr, a_col, a_val,
+                         col_ptr, col_row, col_val, compiled.lo, compiled.hi, rtol,
+                         int(pair_width), use_groups, par, lay["gbase"], lay["glb"], tn,
+                         lay["lp"], lay["gmem_ptr"], lay["gmem"],
+                         lay["gs_ptr"], lay["gs_kind"], lay["gs_id"], lay["gs_val"],
+                         lay["nvt_ptr"], lay["nvt_term"], lay["nvt_lit"], lay["ncol_ptr"],
+                         lay["ncol_row"], lay["ncol_val"], lay["vs_ptr"], lay["vs_struct"],
+                         lay["sm_ptr"], lay["sm_var"], anchor, st)
+
     start = 0
     size = 1 if deadline is not None else chunk  # with a deadline: measure one, then fit
     per_cand = 0.0  # measured seconds per candidate
@@ -1121,25 +1174,7 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
         start = sl.stop
         Xc = X[sl].copy()
         st = np.zeros(Xc.shape[0], dtype=np.int64)
-        if fast:
-            _descend_tree(Xc, O[sl], compiled.h, compiled.indptr, compiled.indices,
-                          compiled.data, compiled.fixed, float(flip_price), tol, max_steps,
-                          anchor, st)
-        else:
-            (cp_ptr, cp_table, cp_const, t_pen, t_coef, t_ar, l_ptr, l_var, l_val, vt_ptr,
-             vt_term, vt_lit) = cnt
-            a_ptr, a_col, a_val, col_ptr, col_row, col_val, rtol = rows
-            _descend_general(Xc, O[sl], compiled.h, compiled.indptr, compiled.indices,
-                             compiled.data, compiled.fixed, float(flip_price), tol, max_steps,
-                             radius, cp_ptr, cp_table, cp_const, t_pen, t_coef, t_ar, l_ptr,
-                             l_var, l_val, vt_ptr, vt_term, vt_lit, a_ptr, a_col, a_val,
-                             col_ptr, col_row, col_val, compiled.lo, compiled.hi, rtol,
-                             int(pair_width), use_groups, par, lay["gbase"], lay["glb"], tn,
-                             lay["lp"], lay["gmem_ptr"], lay["gmem"],
-                             lay["gs_ptr"], lay["gs_kind"], lay["gs_id"], lay["gs_val"],
-                             lay["nvt_ptr"], lay["nvt_term"], lay["nvt_lit"], lay["ncol_ptr"],
-                             lay["ncol_row"], lay["ncol_val"], lay["vs_ptr"], lay["vs_struct"],
-                             lay["sm_ptr"], lay["sm_var"], anchor, st)
+        _in_parts(run, Xc, np.ascontiguousarray(O[sl]), st, workers)
         per_cand = (time.perf_counter() - t0) / Xc.shape[0]
         X[sl] = Xc
         steps[sl] = st

@@ -180,7 +180,7 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: flo
     exact = method == "portfolio" and (cp.model is not None or _cpsat_affordable(compiled, left))
     polish_deadline = time.perf_counter() + POLISH_GREEDY * left if exact else deadline
     _polish(compiled, X0, out, deadline=polish_deadline, max_flips=max_flips,
-            flip_price=flip_price)
+            flip_price=flip_price, workers=workers)
     if method == "portfolio" and not cancelled():
         _fewest_flips(cp, compiled, X0, out, deadline=deadline, max_flips=max_flips,
                       flip_price=flip_price, seed=seed, workers=workers, cancel=cancel)
@@ -212,7 +212,7 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
     ev0, obj0, _ = _objective(compiled, X0, X0, 0.0)
     first = _ranked(ev0.feasible, obj0)
     g = greedy_repair(compiled, X0[first], max_flips=max_flips, flip_price=flip_price,
-                      deadline=g_deadline, cancel=cancel,
+                      deadline=g_deadline, cancel=cancel, workers=workers,
                       progress=lambda d, tot: report(done=d, total=tot, phase="greedy"))
     back = np.argsort(first)
     g.X, g.steps, g.done, g.seconds = g.X[back], g.steps[back], g.done[back], g.seconds[back]
@@ -233,7 +233,7 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
     kick_deadline = time.perf_counter() + kick_share * left
     rounds, kept = _kicks(compiled, X0, cur, obj, ev.feasible, g.done, out,
                           deadline=kick_deadline, max_flips=max_flips, flip_price=flip_price,
-                          seed=seed, cancel=cancel)
+                          seed=seed, cancel=cancel, workers=workers)
     out.stats["kick_rounds"] = rounds
     out.stats["kick_improvements"] = kept
     report(done=K, total=K, phase="kicks")
@@ -300,7 +300,7 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
     return out
 
 
-def _polish(compiled, X0, out, *, deadline, max_flips, flip_price):
+def _polish(compiled, X0, out, *, deadline, max_flips, flip_price, workers=1):
     """Move the best answers back toward their candidates where the cost does not rise.
 
     Greedy descent from each of the ``POLISH_TOP`` best answers with a tiny extra price
@@ -325,7 +325,7 @@ def _polish(compiled, X0, out, *, deadline, max_flips, flip_price):
         return
     eps = 1e3 * objective_tol(compiled)
     g = greedy_repair(compiled, A[picked], origin=X0[ks[picked]], max_flips=max_flips,
-                      flip_price=flip_price + eps, deadline=deadline, chunk=4)
+                      flip_price=flip_price + eps, deadline=deadline, chunk=4, workers=workers)
     ev2, obj2, flips2 = _objective(compiled, g.X, X0[ks[picked]], flip_price)
     for pos, i in enumerate(picked):
         slack = COST_SLACK * max(1.0, abs(obj[i]))
@@ -405,12 +405,14 @@ def kick_masks(rng: np.random.Generator, rows: int, width: int, top: int) -> np.
 
 
 def _kicks(compiled, X0, cur, obj, feasible, done, out, *, deadline, max_flips, flip_price,
-           seed, cancel):
+           seed, cancel, workers=1):
     """Iterated local search on the best repaired solutions, in place on ``cur`` / ``obj``.
 
     Each round takes the best ``KICK_BATCH`` candidates' current solutions, flips a
-    random handful of free variables in each (seeded), descends greedily and keeps
-    a result when it is feasible and better for its candidate. Returns (rounds, kept).
+    random handful of free variables in ``workers`` copies of each (seeded, one copy per
+    greedy thread, so a round costs about the same on more threads), descends greedily and
+    keeps the best result for a candidate when it is feasible and better than its current
+    one. Returns (rounds, kept).
     """
     rng = np.random.default_rng(seed)
     free = np.flatnonzero(compiled.fixed < 0)
@@ -421,9 +423,10 @@ def _kicks(compiled, X0, cur, obj, feasible, done, out, *, deadline, max_flips, 
     top_kick = min(free.size, max(2, n // 10))
     last = None  # seconds the last round's descents took
     while time.perf_counter() < deadline and not (cancel is not None and cancel.is_set()):
-        order = [int(k) for k in _ranked(feasible, obj) if done[k]][:KICK_BATCH]
-        if not order:
+        best = [int(k) for k in _ranked(feasible, obj) if done[k]][:KICK_BATCH]
+        if not best:
             break
+        order = np.repeat(best, max(1, workers)).tolist()
         starts = cur[order].copy()
         starts[:, free] ^= kick_masks(rng, len(order), free.size, top_kick).astype(np.int8)
         # one kernel call per round while a round fits easily in what is left; near the
@@ -432,7 +435,7 @@ def _kicks(compiled, X0, cur, obj, feasible, done, out, *, deadline, max_flips, 
         near_end = last is None or t + 2.0 * last >= deadline
         g = greedy_repair(compiled, starts, origin=X0[order], max_flips=max_flips,
                           flip_price=flip_price, deadline=deadline if near_end else None,
-                          cancel=cancel, chunk=len(order))
+                          cancel=cancel, chunk=len(order), workers=workers)
         last = time.perf_counter() - t
         ev, new_obj, new_flips = _objective(compiled, g.X, X0[order], flip_price)
         inside = np.ones(len(order), dtype=bool) if max_flips is None else new_flips <= max_flips

@@ -221,7 +221,7 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--max-flips", type=int, default=None, metavar="N")
     r.add_argument("--flip-price", type=float, default=0.0, metavar="P")
     r.add_argument("--seed", type=int, default=0)
-    r.add_argument("--workers", type=int, default=1, help="CP-SAT search workers")
+    r.add_argument("--workers", type=int, default=1, help="search threads: CP-SAT workers and greedy batches")
     r.add_argument("--pareto", action="store_true", help="also report the (cost, flips) front")
     r.add_argument("--server", metavar="HOST:PORT", help="repair through a running service")
     r.add_argument("--quiet", action="store_true", help="no progress on stderr")

@@ -174,3 +174,19 @@ def test_a_candidate_descends_the_same_alone_and_in_any_batch(kind):
             alone = greedy_repair(comp, X0[k:k + 1], max_flips=max_flips, flip_price=price)
             np.testing.assert_array_equal(batch.X[k], alone.X[0])
             assert batch.steps[k] == alone.steps[0]
+
+
+@pytest.mark.parametrize("kind", ["row", "mixed", "none"])
+def test_greedy_answers_do_not_depend_on_the_thread_count(kind):
+    # the kernels release the GIL and greedy splits each chunk over `workers` threads; every
+    # candidate's descent depends on that candidate alone, so the split must not show
+    n, seed = 160, 11
+    p = _model(n, seed)
+    comp = compile_constraints(p, [] if kind == "none" else _constraints(n, seed, kind))
+    X0 = np.random.default_rng(seed).integers(0, 2, (37, n)).astype(np.int8)
+    one = greedy_repair(comp, X0, chunk=16)
+    for workers in (2, 3):
+        many = greedy_repair(comp, X0, chunk=16, workers=workers)
+        np.testing.assert_array_equal(one.X, many.X)
+        np.testing.assert_array_equal(one.steps, many.steps)
+        assert many.done.all()
