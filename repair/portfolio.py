@@ -409,10 +409,9 @@ def _kicks(compiled, X0, cur, obj, feasible, done, out, *, deadline, max_flips, 
     """Iterated local search on the best repaired solutions, in place on ``cur`` / ``obj``.
 
     Each round takes the best ``KICK_BATCH`` candidates' current solutions, flips a
-    random handful of free variables in ``workers`` copies of each (seeded, one copy per
-    greedy thread, so a round costs about the same on more threads), descends greedily and
-    keeps the best result for a candidate when it is feasible and better than its current
-    one. Returns (rounds, kept).
+    random handful of free variables in each (seeded), descends greedily (on ``workers``
+    threads: the same answers, sooner) and keeps a result when it is feasible and better
+    for its candidate. Returns (rounds, kept).
     """
     rng = np.random.default_rng(seed)
     free = np.flatnonzero(compiled.fixed < 0)
@@ -423,10 +422,9 @@ def _kicks(compiled, X0, cur, obj, feasible, done, out, *, deadline, max_flips, 
     top_kick = min(free.size, max(2, n // 10))
     last = None  # seconds the last round's descents took
     while time.perf_counter() < deadline and not (cancel is not None and cancel.is_set()):
-        best = [int(k) for k in _ranked(feasible, obj) if done[k]][:KICK_BATCH]
-        if not best:
+        order = [int(k) for k in _ranked(feasible, obj) if done[k]][:KICK_BATCH]
+        if not order:
             break
-        order = np.repeat(best, max(1, workers)).tolist()
         starts = cur[order].copy()
         starts[:, free] ^= kick_masks(rng, len(order), free.size, top_kick).astype(np.int8)
         # one kernel call per round while a round fits easily in what is left; near the
