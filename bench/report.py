@@ -24,7 +24,8 @@ def merge(docs: list) -> dict:
     out = dict(docs[0])
     out["sections"] = dict(docs[0]["sections"])
     out["runs"] = [{"command": d["command"], "started": d["started"],
-                    "seconds": d.get("seconds", 0.0), "sections": list(d["sections"])}
+                    "seconds": d.get("seconds", 0.0), "sections": list(d["sections"]),
+                    "commit": d.get("machine", {}).get("commit")}
                    for d in docs]
     for d in docs[1:]:
         out["sections"].update(d["sections"])
@@ -40,16 +41,18 @@ def render_markdown(doc: dict, *, notes: str = "") -> str:
                                 "sections": list(doc["sections"])}]
     head = ["# flipfix benchmark results", ""]
     for r in runs:
+        at = f", commit {r['commit']} plus the working tree" if r.get("commit") else ""
         head.append(f"- `{r['command']}` (sections: {', '.join(r['sections'])}), started "
-                    f"{r['started']}, {r['seconds']:.0f} s")
+                    f"{r['started']}, {r['seconds']:.0f} s{at}")
     head += [
         "",
         f"Run from the repository root with `.venv/bin/python` (`make bench` runs the first "
         f"command); seed {doc['seed']}.",
         "",
         f"Machine: {m['nproc']} cores, {m['cpu']}; {m['platform']}; python {m['python']}, "
-        f"numpy {m['numpy']}, ortools {m['ortools']}, numba {m['numba']}, grpcio {m['grpcio']}; "
-        f"commit {m['commit']}" + (f" plus the working tree at {doc['started']}" if m["commit"] else ""),
+        f"numpy {m['numpy']}, ortools {m['ortools']}, numba {m['numba']}, grpcio {m['grpcio']}"
+        + ("" if len(runs) > 1 or not m["commit"]
+           else f"; commit {m['commit']} plus the working tree at {doc['started']}"),
         "",
     ]
     body = [runner.SECTIONS[name].render(doc["sections"][name])
