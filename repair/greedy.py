@@ -433,16 +433,6 @@ def _total_viol(act, lo, hi, rtol):
 
 
 @nb.njit(cache=True)
-def _row_reach(a_ptr, a_val):
-    """Each row's largest |coefficient| of a CSR matrix: float64 (rows,)."""
-    out = np.zeros(a_ptr.size - 1)
-    for r in range(a_ptr.size - 1):
-        for q in range(a_ptr[r], a_ptr[r + 1]):
-            out[r] = max(out[r], abs(a_val[q]))
-    return out
-
-
-@nb.njit(cache=True)
 def _largest_positive(indptr, data):
     """Each row's largest positive coefficient of a CSR matrix, 0 if none: float64 (rows,)."""
     out = np.zeros(indptr.size - 1)
@@ -491,7 +481,8 @@ def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max
                np.empty(slots), np.empty(slots, dtype=np.int64), tb,
                np.empty(most, dtype=np.int64), _row_sums(h, indptr, data), anchor,
                _anchor_field(anchor, h, indptr, indices, data), np.empty(n, dtype=np.int64),
-               _row_reach(a_ptr, a_val), _largest_positive(indptr, data) * (1.0 + 1e-9) + tol,
+               _largest_positive(a_ptr, np.abs(a_val)),
+               _largest_positive(indptr, data) * (1.0 + 1e-9) + tol,
                np.empty(cp_const.size, dtype=np.int64), np.empty(term_pen.size, dtype=np.int64),
                np.empty(lo.size))
     _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, radius,
