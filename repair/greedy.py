@@ -161,11 +161,10 @@ def _differing(x, anchor, out):
 
 
 @nb.njit(cache=True, inline="always")
-def _init_field(x, anchor, afield, full, h, indptr, indices, data, field):
-    """field = h + J x (J symmetric CSR) by the route :func:`_route` picks: from the
-    anchor's field ``afield``, from h, or from ``full`` (h + J 1)."""
+def _init_field(route, x, anchor, afield, full, h, indptr, indices, data, field):
+    """field = h + J x (J symmetric CSR) by ``route`` (:func:`_route`): from the anchor's
+    field ``afield``, from h, or from ``full`` (h + J 1)."""
     n = x.size
-    route = _route(x, anchor)
     if route == 0:
         for i in range(n):
             field[i] = afield[i]
@@ -287,7 +286,7 @@ def _tree_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps
             for i in range(n):
                 if fixed[i] >= 0 and x[i] != fixed[i]:
                     x[i] = fixed[i]
-        _init_field(x, anchor, afield, full, h, indptr, indices, data, field)
+        _init_field(_route(x, anchor), x, anchor, afield, full, h, indptr, indices, data, field)
         cnt = 0
         for i in range(n):  # a plain pass first: the improving flips are few near a minimum
             if _delta(x, o, field, price, i) < -tol and fixed[i] < 0:
@@ -540,7 +539,8 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
         dist = 0
         for i in range(n):
             dist += x[i] != o[i]
-        if _route(x, anchor) == 0:
+        route = _route(x, anchor)
+        if route == 0:
             # from the anchor's state: each differing bit is set back to the anchor's
             # value and flipped, which updates fields, term states and activities alike
             for i in range(n):
@@ -556,7 +556,7 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
                 x[j] = anchor[j]
                 _flip_state(j, S, 0, Q, C, R)
         else:
-            _init_field(x, anchor, afield, full, h, indptr, indices, data, field)
+            _init_field(route, x, anchor, afield, full, h, indptr, indices, data, field)
             _fresh_counts(x, cp_const, term_pen, term_coef, term_arity, lit_ptr, lit_var,
                           lit_val, a_ptr, a_col, a_val, dcount, sat, act)
         steps = 0
@@ -1165,7 +1165,7 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
         start = sl.stop
         Xc = X[sl].copy()
         st = np.zeros(Xc.shape[0], dtype=np.int64)
-        _in_parts(run, Xc, np.ascontiguousarray(O[sl]), st, workers)
+        _in_parts(run, Xc, O[sl], st, workers)
         per_cand = (time.perf_counter() - t0) / Xc.shape[0]
         X[sl] = Xc
         steps[sl] = st
