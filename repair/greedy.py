@@ -127,6 +127,15 @@ def _anchor_field(anchor, h, indptr, indices, data):
     return field
 
 
+@nb.njit(cache=True)
+def _start_refs(anchor, h, indptr, indices, data):
+    """What every chunk of one call starts its candidates from (:func:`_init_field`):
+    (h + J 1, h + J anchor, -data, zeros int8 (n,), ones int8 (n,)). Built once per call."""
+    n = h.size
+    return (_row_sums(h, indptr, data), _anchor_field(anchor, h, indptr, indices, data), -data,
+            np.zeros(n, dtype=np.int8), np.ones(n, dtype=np.int8))
+
+
 @nb.njit(cache=True, inline="always")
 def _delta(x, o, field, price, i):
     d = (1.0 - 2.0 * x[i]) * field[i]
@@ -149,44 +158,37 @@ def _route(x, anchor):
 
 
 @nb.njit(cache=True, inline="always")
-def _differing(x, anchor, out):
-    """The positions where x and anchor differ, into out[:count] (int64, >= n); returns
-    count."""
+def _differing(x, ref, out):
+    """The positions where x and ref differ, ascending, into out[:count] (int64, size >=
+    n); returns count. Branch-free: a differing bit is a coin toss for the branch
+    predictor, and a mispredicted branch per bit cost more than the store."""
     c = 0
     for j in range(x.size):
-        if x[j] != anchor[j]:
-            out[c] = j
-            c += 1
+        out[c] = j
+        c += x[j] != ref[j]
     return c
 
 
 @nb.njit(cache=True, inline="always")
-def _init_field(route, x, anchor, afield, full, h, indptr, indices, data, field):
-    """field = h + J x (J symmetric CSR) by ``route`` (:func:`_route`): from the anchor's
-    field ``afield``, from h, or from ``full`` (h + J 1)."""
-    n = x.size
+def _init_field(route, x, anchor, afield, zeros, h, ones, full, indptr, indices, data, ndata,
+                field, found):
+    """field = h + J x (J symmetric CSR) by ``route`` (:func:`_route`): the reference state
+    (the anchor, all-zeros or all-ones) and its field (``afield``, h or ``full`` = h + J 1),
+    then a scatter of the bits where x differs from it (their positions left in
+    ``found``). ``ndata`` is -data (no multiply by the flip's sign in the scatter)."""
     if route == 0:
-        for i in range(n):
-            field[i] = afield[i]
-        for j in range(n):
-            if x[j] != anchor[j]:
-                s = 1.0 if x[j] == 1 else -1.0
-                for p in range(indptr[j], indptr[j + 1]):
-                    field[indices[p]] += s * data[p]
+        ref, base = anchor, afield
     elif route == 1:
-        for i in range(n):
-            field[i] = h[i]
-        for j in range(n):
-            if x[j] == 1:
-                for p in range(indptr[j], indptr[j + 1]):
-                    field[indices[p]] += data[p]
+        ref, base = zeros, h
     else:
-        for i in range(n):
-            field[i] = full[i]
-        for j in range(n):
-            if x[j] == 0:
-                for p in range(indptr[j], indptr[j + 1]):
-                    field[indices[p]] -= data[p]
+        ref, base = ones, full
+    for i in range(x.size):
+        field[i] = base[i]
+    for q in range(_differing(x, ref, found)):
+        j = found[q]
+        d = data if x[j] == 1 else ndata
+        for p in range(indptr[j], indptr[j + 1]):
+            field[indices[p]] += d[p]
 
 
 @_kernel
@@ -246,23 +248,24 @@ def _compact(x, o, field, price, tol, stamp, hv, hi, hs, size):
 
 @nb.njit(cache=True, nogil=True)
 def _descend_tree(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, anchor,
-                  steps_out):
+                  refs, steps_out):
     """Steepest descent on a pure QUBO (+ fixings, + flip price), in place on X (K, n).
 
     The improving flips are the finite leaves of a tournament tree (repair.tournament); a
     flip re-keys the variable and its neighbours, each O(log n) at worst and mostly a
     level or two. A descent ends with no improving flip, so the tree is empty again and
     the next candidate's start-up is its field computation and one pass over n.
+    ``refs`` is :func:`_start_refs` of ``anchor``.
     """
     n = X.shape[1]
     N = 1
     while N < n:
         N *= 2
     cap = 4 * n + 64  # the small heap's capacity (it compacts when full)
-    scratch = (np.empty(2 * N), np.empty(2 * N, dtype=np.int64), np.empty(n),
-               _row_sums(h, indptr, data), anchor, _anchor_field(anchor, h, indptr, indices, data),
-               np.empty(n, dtype=np.int64), np.empty(cap), np.empty(cap, dtype=np.int64),
-               np.empty(cap, dtype=np.int64), np.zeros(n, dtype=np.int64))
+    full, afield, ndata, zeros, ones = refs
+    scratch = (np.empty(2 * N), np.empty(2 * N, dtype=np.int64), np.empty(n), full, anchor,
+               afield, np.empty(n, dtype=np.int64), np.empty(cap), np.empty(cap, dtype=np.int64),
+               np.empty(cap, dtype=np.int64), np.zeros(n, dtype=np.int64), zeros, ones, ndata)
     _tree_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, steps_out,
                scratch)
 
@@ -270,7 +273,8 @@ def _descend_tree(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
 @_kernel
 def _tree_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, steps_out,
                scratch):
-    tkey, titem, field, full, anchor, afield, found, hv, hi, hs, stamp = scratch
+    (tkey, titem, field, full, anchor, afield, found, hv, hi, hs, stamp, zeros, ones,
+     ndata) = scratch
     K, n = X.shape
     N = tkey.size // 2
     for p in range(N):
@@ -286,7 +290,8 @@ def _tree_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps
             for i in range(n):
                 if fixed[i] >= 0 and x[i] != fixed[i]:
                     x[i] = fixed[i]
-        _init_field(_route(x, anchor), x, anchor, afield, full, h, indptr, indices, data, field)
+        _init_field(_route(x, anchor), x, anchor, afield, zeros, h, ones, full, indptr, indices,
+                    data, ndata, field, found)
         cnt = 0
         for i in range(n):  # a plain pass first: the improving flips are few near a minimum
             if _delta(x, o, field, price, i) < -tol and fixed[i] < 0:
@@ -448,7 +453,8 @@ def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max
                      a_ptr, a_col, a_val, col_ptr, col_row, col_val, lo, hi, rtol,
                      pair_width, use_groups, par, gbase, glb, tn, lp, gmem_ptr, gmem, gs_ptr,
                      gs_kind, gs_id, gs_val, nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row,
-                     ncol_val, vs_ptr, vs_struct, sm_ptr, sm_var, anchor, steps_out):
+                     ncol_val, vs_ptr, vs_struct, sm_ptr, sm_var, anchor, refs, amax, jpos,
+                     steps_out):
     """Restore feasibility, then descend (see the module docstring), in place on X (K, n).
 
     With ``use_groups`` the single flips of phase 2 come from the grouped trees: ``gbase``
@@ -460,12 +466,16 @@ def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max
     wide row and the activity change, 1: a wide count penalty and the change of d),
     ``nvt_*`` / ``ncol_*`` the variable-to-term and variable-to-row maps of the narrow
     structures only, ``vs_*`` / ``sm_*`` variable -> narrow structures -> members.
+    ``refs`` is :func:`_start_refs` of ``anchor``; ``amax`` float64 (m,) each row's largest
+    |coefficient|, ``jpos`` float64 (n,) each variable's largest positive coupling plus a
+    margin (see :func:`_best_pair`).
     """
     n = X.shape[1]
     tb = np.zeros(tn.size, dtype=np.int64)  # each tree's offset in the flat arrays
     for g in range(1, tn.size):
         tb[g] = tb[g - 1] + 2 * tn[g - 1]
     slots = tb[-1] + 2 * tn[-1] if tn.size else 0
+    full, afield, ndata, zeros, ones = refs
     most = 0  # the longest re-key list of one flip
     for i in range(n):
         c = 1 + indptr[i + 1] - indptr[i]
@@ -478,12 +488,10 @@ def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max
                np.empty(pair_width, dtype=np.int64), np.empty(pair_width),
                np.empty(pair_width, dtype=np.int64), np.empty(pair_width),
                np.empty(slots), np.empty(slots, dtype=np.int64), tb,
-               np.empty(most, dtype=np.int64), _row_sums(h, indptr, data), anchor,
-               _anchor_field(anchor, h, indptr, indices, data), np.empty(n, dtype=np.int64),
-               _largest_positive(a_ptr, np.abs(a_val)),
-               _largest_positive(indptr, data) * (1.0 + 1e-9) + tol,
+               np.empty(most, dtype=np.int64), full, anchor, afield, np.empty(n, dtype=np.int64),
+               amax, jpos,
                np.empty(cp_const.size, dtype=np.int64), np.empty(term_pen.size, dtype=np.int64),
-               np.empty(lo.size))
+               np.empty(lo.size), zeros, ones, ndata)
     _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_steps, radius,
                   cp_ptr, cp_table, cp_const, term_pen, term_coef, term_arity, lit_ptr,
                   lit_var, lit_val, vt_ptr, vt_term, vt_lit,
@@ -502,7 +510,7 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
                   gs_id, gs_val, nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row, ncol_val,
                   vs_ptr, vs_struct, sm_ptr, sm_var, steps_out, scratch):
     (field, dcount, sat, act, dd, free, up_i, up_v, dn_i, dn_v, tkey, titem, tb, todo, full,
-     anchor, afield, found, amax, jpos, adcount, asat, aact) = scratch
+     anchor, afield, found, amax, jpos, adcount, asat, aact, zeros, ones, ndata) = scratch
     K, n = X.shape
     P = cp_const.size
     T = term_pen.size
@@ -556,7 +564,8 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
                 x[j] = anchor[j]
                 _flip_state(j, S, 0, Q, C, R)
         else:
-            _init_field(route, x, anchor, afield, full, h, indptr, indices, data, field)
+            _init_field(route, x, anchor, afield, zeros, h, ones, full, indptr, indices, data,
+                        ndata, field, found)
             _fresh_counts(x, cp_const, term_pen, term_coef, term_arity, lit_ptr, lit_var,
                           lit_val, a_ptr, a_col, a_val, dcount, sat, act)
         steps = 0
@@ -1032,15 +1041,33 @@ def objective_tol(compiled: Compiled) -> float:
     return 1e-9 * scale
 
 
+@nb.njit(cache=True, nogil=True)
+def _column_ones(X):
+    """The number of ones in each column of X (int8 (K, n), 0/1): int64 (n,). A compiled
+    loop: numpy's ``X.sum(axis=0)`` widens every int8 on the way and took ~0.4 us a row."""
+    K, n = X.shape
+    c = np.zeros(n, dtype=np.int32)
+    for k in range(K):
+        for i in range(n):
+            c[i] += X[k, i]
+    return c.astype(np.int64)
+
+
 def consensus(X: np.ndarray, fixed: np.ndarray) -> np.ndarray:
     """Bitwise majority of the rows of X (int8 (K, n)) with the fixings applied: int8 (n,).
 
     The kernels start each candidate's fields from this anchor's when it is the nearer
     route (candidates of one library tend to agree on most bits)."""
-    a = (2 * X.sum(axis=0, dtype=np.int64) >= X.shape[0]).astype(np.int8)
+    a = (2 * _column_ones(X) >= X.shape[0]).astype(np.int8)
     pinned = fixed >= 0
     a[pinned] = fixed[pinned]
     return a
+
+
+def _unsigned(indices) -> np.ndarray:
+    """CSR column indices as a uint32 view of their int32 values (no copy): numba then
+    indexes without its negative-index wraparound, ~10 % of the start-up scatter."""
+    return np.ascontiguousarray(indices, dtype=np.int32).view(np.uint32)
 
 
 def descend_qubo(h, indptr, indices, data, X0, *, fixed=None, flip_price: float = 0.0,
@@ -1053,10 +1080,15 @@ def descend_qubo(h, indptr, indices, data, X0, *, fixed=None, flip_price: float 
     n = X.shape[1]
     fixed = np.full(n, -1, dtype=np.int8) if fixed is None else np.asarray(fixed, dtype=np.int8)
     steps = np.zeros(X.shape[0], dtype=np.int64)
-    _descend_tree(X, X0.astype(np.int8), np.asarray(h, np.float64), np.asarray(indptr, np.int64),
-                  np.asarray(indices, np.int32), np.asarray(data, np.float64), fixed,
-                  float(flip_price), float(tol), int(max_steps or 100 * n + 1000),
-                  consensus(X, fixed), steps)
+    origin = np.ascontiguousarray(X0, dtype=np.int8)  # read only: no copy when already so
+    h = np.asarray(h, np.float64)
+    indptr = np.asarray(indptr, np.int64)
+    cols = _unsigned(indices)
+    data = np.asarray(data, np.float64)
+    anchor = consensus(X, fixed)
+    _descend_tree(X, origin, h, indptr, cols, data, fixed, float(flip_price), float(tol),
+                  int(max_steps or 100 * n + 1000), anchor,
+                  _start_refs(anchor, h, indptr, cols, data), steps)
     return X, steps
 
 
@@ -1126,17 +1158,22 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
         leaves = 1 << np.ceil(np.log2(np.maximum(lay["members"], 1))).astype(np.int64)
         tn = np.repeat(leaves, par) if use_groups else np.zeros(0, dtype=np.int64)
     anchor = consensus(X0, compiled.fixed)
+    cols = _unsigned(compiled.indices)
+    refs = _start_refs(anchor, compiled.h, compiled.indptr, cols, compiled.data)
+    if not fast:
+        amax = _largest_positive(rows[0], np.abs(rows[2]))
+        jpos = _largest_positive(compiled.indptr, compiled.data) * (1.0 + 1e-9) + tol
 
     def run(Xc, Oc, st):  # one kernel call, in place on Xc (rows, n) and st (rows,)
         if fast:
-            _descend_tree(Xc, Oc, compiled.h, compiled.indptr, compiled.indices,
+            _descend_tree(Xc, Oc, compiled.h, compiled.indptr, cols,
                           compiled.data, compiled.fixed, float(flip_price), tol, max_steps,
-                          anchor, st)
+                          anchor, refs, st)
             return
         (cp_ptr, cp_table, cp_const, t_pen, t_coef, t_ar, l_ptr, l_var, l_val, vt_ptr,
          vt_term, vt_lit) = cnt
         a_ptr, a_col, a_val, col_ptr, col_row, col_val, rtol = rows
-        _descend_general(Xc, Oc, compiled.h, compiled.indptr, compiled.indices,
+        _descend_general(Xc, Oc, compiled.h, compiled.indptr, cols,
                          compiled.data, compiled.fixed, float(flip_price), tol, max_steps,
                          radius, cp_ptr, cp_table, cp_const, t_pen, t_coef, t_ar, l_ptr,
                          l_var, l_val, vt_ptr, vt_term, vt_lit, a_ptr, a_col, a_val,
@@ -1146,7 +1183,7 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
                          lay["gs_ptr"], lay["gs_kind"], lay["gs_id"], lay["gs_val"],
                          lay["nvt_ptr"], lay["nvt_term"], lay["nvt_lit"], lay["ncol_ptr"],
                          lay["ncol_row"], lay["ncol_val"], lay["vs_ptr"], lay["vs_struct"],
-                         lay["sm_ptr"], lay["sm_var"], anchor, st)
+                         lay["sm_ptr"], lay["sm_var"], anchor, refs, amax, jpos, st)
 
     start = 0
     size = 1 if deadline is not None else chunk  # with a deadline: measure one, then fit
