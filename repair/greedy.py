@@ -174,8 +174,9 @@ def _init_field(route, x, anchor, afield, zeros, h, ones, full, indptr, indices,
                 field, found):
     """field = h + J x (J symmetric CSR) by ``route`` (:func:`_route`): the reference state
     (the anchor, all-zeros or all-ones) and its field (``afield``, h or ``full`` = h + J 1),
-    then a scatter of the bits where x differs from it (their positions left in
-    ``found``). ``ndata`` is -data (no multiply by the flip's sign in the scatter)."""
+    then a scatter of the bits where x differs from it. Returns how many differ; their
+    positions are left in ``found[:count]``. ``ndata`` is -data (no multiply by the flip's
+    sign in the scatter)."""
     if route == 0:
         ref, base = anchor, afield
     elif route == 1:
@@ -184,11 +185,13 @@ def _init_field(route, x, anchor, afield, zeros, h, ones, full, indptr, indices,
         ref, base = ones, full
     for i in range(x.size):
         field[i] = base[i]
-    for q in range(_differing(x, ref, found)):
+    count = _differing(x, ref, found)
+    for q in range(count):
         j = found[q]
         d = data if x[j] == 1 else ndata
         for p in range(indptr[j], indptr[j + 1]):
             field[indices[p]] += d[p]
+    return count
 
 
 @_kernel
@@ -386,9 +389,22 @@ def _flip_state(i, S, dist, Q, C, R):
     arrays) would cost more than the flip."""
     x, o, field, dcount, sat, act, dd = S
     indptr, indices, data = Q
-    cp_ptr, cp_table, term_pen, term_coef, term_arity, lit_val, vt_ptr, vt_term, vt_lit = C
-    col_ptr, col_row, col_val, lo, hi, rtol = R
     xi = x[i]
+    sgn = 1.0 - 2.0 * xi
+    _leave(i, xi, dcount, sat, act, C, R)
+    for p in range(indptr[i], indptr[i + 1]):
+        field[indices[p]] += sgn * data[p]
+    x[i] = 1 - xi
+    return dist + 1 if xi == o[i] else dist - 1
+
+
+@nb.njit(cache=True, inline="always")
+def _leave(i, xi, dcount, sat, act, C, R):
+    """Variable i leaves value xi: its terms' states, the count penalties' counts and the
+    row activities follow (fields and x are the caller's). Order-free: applying several
+    variables' moves in any order gives the same state."""
+    cp_ptr, cp_table, term_pen, term_coef, term_arity, lit_val, vt_ptr, vt_term, vt_lit = C
+    col_ptr, col_row, col_val = R[0], R[1], R[2]
     sgn = 1.0 - 2.0 * xi
     for q in range(vt_ptr[i], vt_ptr[i + 1]):
         t = vt_term[q]
@@ -399,12 +415,8 @@ def _flip_state(i, S, dist, Q, C, R):
         sat[t] = s2
         after = 1 if s2 == a else 0
         dcount[term_pen[t]] += term_coef[t] * (after - before)
-    for p in range(indptr[i], indptr[i + 1]):
-        field[indices[p]] += sgn * data[p]
     for q in range(col_ptr[i], col_ptr[i + 1]):
         act[col_row[q]] += sgn * col_val[q]
-    x[i] = 1 - xi
-    return dist + 1 if xi == o[i] else dist - 1
 
 
 @nb.njit(cache=True, inline="always")
@@ -454,7 +466,7 @@ def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max
                      pair_width, use_groups, par, gbase, glb, tn, lp, gmem_ptr, gmem, gs_ptr,
                      gs_kind, gs_id, gs_val, nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row,
                      ncol_val, vs_ptr, vs_struct, sm_ptr, sm_var, anchor, refs, amax, jpos,
-                     steps_out):
+                     qualify, steps_out):
     """Restore feasibility, then descend (see the module docstring), in place on X (K, n).
 
     With ``use_groups`` the single flips of phase 2 come from the grouped trees: ``gbase``
@@ -468,7 +480,7 @@ def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max
     structures only, ``vs_*`` / ``sm_*`` variable -> narrow structures -> members.
     ``refs`` is :func:`_start_refs` of ``anchor``; ``amax`` float64 (m,) each row's largest
     |coefficient|, ``jpos`` float64 (n,) each variable's largest positive coupling plus a
-    margin (see :func:`_best_pair`).
+    margin (see :func:`_best_pair`); ``qualify`` float64 (2, n) see :func:`_rekey_all`.
     """
     n = X.shape[1]
     tb = np.zeros(tn.size, dtype=np.int64)  # each tree's offset in the flat arrays
@@ -498,7 +510,7 @@ def _descend_general(X, origin, h, indptr, indices, data, fixed, price, tol, max
                   a_ptr, a_col, a_val, col_ptr, col_row, col_val, lo, hi, rtol,
                   pair_width, use_groups, par, gbase, glb, tn, lp, gmem_ptr, gmem, gs_ptr, gs_kind,
                   gs_id, gs_val, nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row, ncol_val,
-                  vs_ptr, vs_struct, sm_ptr, sm_var, steps_out, scratch)
+                  vs_ptr, vs_struct, sm_ptr, sm_var, qualify, steps_out, scratch)
 
 
 @_kernel
@@ -508,7 +520,7 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
                   a_ptr, a_col, a_val, col_ptr, col_row, col_val, lo, hi, rtol,
                   pair_width, use_groups, par, gbase, glb, tn, lp, gmem_ptr, gmem, gs_ptr, gs_kind,
                   gs_id, gs_val, nvt_ptr, nvt_term, nvt_lit, ncol_ptr, ncol_row, ncol_val,
-                  vs_ptr, vs_struct, sm_ptr, sm_var, steps_out, scratch):
+                  vs_ptr, vs_struct, sm_ptr, sm_var, qualify, steps_out, scratch):
     (field, dcount, sat, act, dd, free, up_i, up_v, dn_i, dn_v, tkey, titem, tb, todo, full,
      anchor, afield, found, amax, jpos, adcount, asat, aact, zeros, ones, ndata) = scratch
     K, n = X.shape
@@ -520,6 +532,7 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
         if fixed[i] < 0:
             free[nfree] = i
             nfree += 1
+    pinned = nfree < n
     vtol = 1e-12
     Q = (indptr, indices, data)
     C = (cp_ptr, cp_table, term_pen, term_coef, term_arity, lit_val, vt_ptr, vt_term, vt_lit)
@@ -541,28 +554,28 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
         x = X[k]
         o = origin[k]
         S = (x, o, field, dcount, sat, act, dd)
-        for i in range(n):
-            if fixed[i] >= 0 and x[i] != fixed[i]:
-                x[i] = fixed[i]
+        if pinned:
+            for i in range(n):
+                if fixed[i] >= 0 and x[i] != fixed[i]:
+                    x[i] = fixed[i]
         dist = 0
         for i in range(n):
             dist += x[i] != o[i]
         route = _route(x, anchor)
         if route == 0:
-            # from the anchor's state: each differing bit is set back to the anchor's
-            # value and flipped, which updates fields, term states and activities alike
-            for i in range(n):
-                field[i] = afield[i]
+            # from the anchor's whole state: the fields by the scatter, then each differing
+            # bit's move for term states, counts and activities
+            cnt_diff = _init_field(0, x, anchor, afield, zeros, h, ones, full, indptr, indices,
+                                   data, ndata, field, found)
             for p in range(P):
                 dcount[p] = adcount[p]
             for t in range(T):
                 sat[t] = asat[t]
             for r in range(m):
                 act[r] = aact[r]
-            for q in range(_differing(x, anchor, found)):
+            for q in range(cnt_diff):
                 j = found[q]
-                x[j] = anchor[j]
-                _flip_state(j, S, 0, Q, C, R)
+                _leave(j, anchor[j], dcount, sat, act, C, R)
         else:
             _init_field(route, x, anchor, afield, zeros, h, ones, full, indptr, indices, data,
                         ndata, field, found)
@@ -624,7 +637,7 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
         if use_groups:
             for g in range(tn.size):
                 tree_drain(tkey, tb[g], tn[g], found)
-            _rekey_list(free, nfree, S, Cn, Rn, price, tol, fixed, gbase, glb, par, H)
+            _rekey_all(S, Cn, Rn, price, tol, fixed, gbase, glb, par, H, qualify, found)
         while steps < max_steps:
             if use_groups:
                 best, bi = _best_group_top(S, dist, H, G, C, R, radius, par, tol)
@@ -837,20 +850,23 @@ def _flip(i, S, dist, Q, C, R, use_groups, Cn, Rn, price, tol, fixed, gbase, glb
 
 
 @_kernel
-def _rekey_list(vars_, cnt, S, Cn, Rn, price, tol, fixed, gbase, glb, par, H):
-    """Re-key ``vars_[:cnt]`` into empty trees. A variable in no narrow count penalty can
-    only lose from its narrow rows, so its QUBO-and-price change (with the group's least
-    offset) already tells when it cannot qualify: those skip the full evaluation."""
+def _rekey_all(S, Cn, Rn, price, tol, fixed, gbase, glb, par, H, qualify, out):
+    """Re-key every free variable into empty trees. A variable in no narrow count penalty
+    can only lose from its narrow rows, so its QUBO-and-price change already tells when it
+    cannot qualify: below ``qualify[b, j]`` (float64 (2, n): -tol minus the least offset of
+    j's group when j holds bit b; -inf for a pinned j; +inf for a j in a narrow count
+    penalty, which always takes the full evaluation). The variables that pass are listed
+    branch-free into ``out`` (int64, >= n) and re-keyed: near a minimum they are few, and
+    this contiguous pass costs a fraction of one through the free list and the groups."""
     x, o, field = S[0], S[1], S[2]
-    nvt_ptr = Cn[6]
-    for t in range(cnt):
-        j = vars_[t]
-        if nvt_ptr[j] == nvt_ptr[j + 1]:
-            b = x[j]
-            d = (1.0 - 2.0 * b) * field[j] + (price if b == o[j] else -price)
-            if d + glb[gbase[j, b]] >= -tol:
-                continue
-        _rekey(j, S, Cn, Rn, price, tol, fixed, gbase, glb, par, H)
+    c = 0
+    for j in range(x.size):
+        b = x[j]
+        d = (1.0 - 2.0 * b) * field[j] + (price if b == o[j] else -price)
+        out[c] = j
+        c += d < qualify[b, j]
+    for t in range(c):
+        _rekey(out[t], S, Cn, Rn, price, tol, fixed, gbase, glb, par, H)
 
 
 # ------------------------------------------------------------------ driver
@@ -1024,6 +1040,15 @@ def _group_layout(compiled: Compiled, cnt, rows):
     }
 
 
+def _qualify(lay: dict, fixed: np.ndarray, tol: float) -> np.ndarray:
+    """float64 (2, n): the QUBO-and-price change below which variable j holding bit b may
+    enter its group's tree (see :func:`_rekey_all`)."""
+    q = np.ascontiguousarray((-tol - lay["glb"][lay["gbase"]]).T)
+    q[:, np.diff(lay["nvt_ptr"]) > 0] = np.inf
+    q[:, fixed >= 0] = -np.inf
+    return q
+
+
 def _general_arrays(compiled: Compiled):
     """Every array the general kernel needs, built once per compiled problem."""
     cached = getattr(compiled, "_greedy_arrays", None)
@@ -1163,6 +1188,7 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
     if not fast:
         amax = _largest_positive(rows[0], np.abs(rows[2]))
         jpos = _largest_positive(compiled.indptr, compiled.data) * (1.0 + 1e-9) + tol
+        qualify = _qualify(lay, compiled.fixed, tol)
 
     def run(Xc, Oc, st):  # one kernel call, in place on Xc (rows, n) and st (rows,)
         if fast:
@@ -1183,7 +1209,7 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
                          lay["gs_ptr"], lay["gs_kind"], lay["gs_id"], lay["gs_val"],
                          lay["nvt_ptr"], lay["nvt_term"], lay["nvt_lit"], lay["ncol_ptr"],
                          lay["ncol_row"], lay["ncol_val"], lay["vs_ptr"], lay["vs_struct"],
-                         lay["sm_ptr"], lay["sm_var"], anchor, refs, amax, jpos, st)
+                         lay["sm_ptr"], lay["sm_var"], anchor, refs, amax, jpos, qualify, st)
 
     start = 0
     size = 1 if deadline is not None else chunk  # with a deadline: measure one, then fit

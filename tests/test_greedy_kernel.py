@@ -43,10 +43,13 @@ def _constraints(n: int, seed: int, kind: str):
         for r in range(20):
             idx = rng.choice(n, 70, replace=False)
             cs.append(LinearConstraint({int(i): 1.0 for i in idx}, "<=", 30.0, name=f"w{r}"))
-    if kind == "mixed":  # narrow rows and fixings too
+    if kind == "mixed":  # narrow rows, a narrow count penalty and fixings too
         for r in range(5):
             idx = rng.choice(n, 6, replace=False)
             cs.append(LinearConstraint({int(i): 1.0 for i in idx}, "<=", 2.0, name=f"r{r}"))
+        idx = rng.choice(n, 10, replace=False)
+        cs.append(HammingPenalty({int(i): int(rng.integers(2)) for i in idx}, weight=60.0,
+                                 shape="quadratic", name="narrow"))
         pinned = rng.choice(n, 4, replace=False)
         cs.append(FixVariables({int(i): int(rng.integers(2)) for i in pinned}))
     return cs
@@ -99,6 +102,35 @@ def test_grouped_trees_take_the_same_steps_as_the_plain_scan(kind, max_flips, mo
     scan = greedy_repair(comp, X0, max_flips=max_flips)
     np.testing.assert_array_equal(grouped.X, scan.X)
     np.testing.assert_array_equal(grouped.steps, scan.steps)
+
+
+def test_a_narrow_penalty_moves_variables_their_qubo_change_alone_would_not():
+    # Worked out by hand: variable i costs h_i when set (h = 10, 11, 12 for 0, 1, 2 and
+    # 10 for the rest, no couplings); a threshold Hamming penalty on 0, 1, 2 towards 1
+    # ("narrow": three variables) costs 100 x max(0, d - 1) for d of them not at 1. So
+    # the optimum sets exactly 0 and 1 (cost 21, penalty 0); from all-zeros steepest
+    # descent sets 0 (-90), then 1 (-89). A wide row with slack (sum x <= n) puts the
+    # kernel on its grouped trees, where a narrow member must enter its tree on its full
+    # change (penalty included), not on its QUBO change, which alone never improves.
+    n = 100
+    h = {i: 10.0 for i in range(n)}
+    h.update({1: 11.0, 2: 12.0})
+    p = Problem.from_terms(h, [(0, 1, 0.0)])
+    comp = compile_constraints(p, [
+        LinearConstraint({i: 1.0 for i in range(n)}, "<=", float(n), name="slack"),
+        HammingPenalty({0: 1, 1: 1, 2: 1}, weight=100.0, shape="threshold", threshold=1,
+                       name="narrow")])
+    assert len(comp.counts) == 1  # a count penalty, not folded into the QUBO
+    lay = greedy._general_arrays(comp)[2]
+    assert 2 <= lay["groups"] <= greedy.MAX_GROUP_SHARE * n  # the grouped path runs
+    X0 = np.zeros((3, n), dtype=np.int8)
+    X0[1, 50:] = 1
+    X0[2, 1] = 1
+    g = greedy_repair(comp, X0)
+    optimum = np.zeros(n, dtype=np.int8)
+    optimum[:2] = 1
+    np.testing.assert_array_equal(g.X, np.repeat(optimum[None], 3, axis=0))
+    assert g.steps.tolist() == [2, 52, 1]
 
 
 def test_fast_path_matches_a_plain_steepest_descent():
