@@ -637,7 +637,7 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
         if use_groups:
             for g in range(tn.size):
                 tree_drain(tkey, tb[g], tn[g], found)
-            _rekey_all(S, Cn, Rn, price, tol, fixed, gbase, glb, par, H, qualify, found)
+            _rekey_all(S, Cn, Rn, price, tol, fixed, gbase, glb, par, H, qualify)
         while steps < max_steps:
             if use_groups:
                 best, bi = _best_group_top(S, dist, H, G, C, R, radius, par, tol)
@@ -663,7 +663,7 @@ def _general_core(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
                 if w < 0:
                     break
                 dist = _flip(w, S, dist, Q, C, R, use_groups, Cn, Rn, price, tol, fixed, gbase,
-                             glb, par, H, N, todo)
+                             glb, par, H, N, todo, qualify)
             steps += 1
         steps_out[k] = steps
 
@@ -818,10 +818,11 @@ def _best_group_top(S, dist, H, G, C, R, radius, par, tol):
 
 @nb.njit(cache=True, inline="always")
 def _flip(i, S, dist, Q, C, R, use_groups, Cn, Rn, price, tol, fixed, gbase, glb, par, H, N,
-          todo):
+          todo, qualify):
     """Flip variable i (all state) and, with groups, re-key every variable whose local
     change it alters: i, its QUBO neighbours, the members of its narrow structures.
-    ``todo`` int64 (>= n + degree + co-members,) is scratch."""
+    ``todo`` int64 (>= n + degree + co-members,) is scratch; ``qualify`` see
+    :func:`_rekey_all`."""
     if use_groups:  # i leaves its group's tree: flipped, it belongs to another
         tkey, titem, tb, tn, lp = H
         x, o = S[0], S[1]
@@ -844,29 +845,34 @@ def _flip(i, S, dist, Q, C, R, use_groups, Cn, Rn, price, tol, fixed, gbase, glb
         for e in range(sm_ptr[s], sm_ptr[s + 1]):
             todo[cnt] = sm_var[e]
             cnt += 1
+    x, o, field = S[0], S[1], S[2]
+    tkey, titem, tb, tn, lp = H
     for t in range(cnt):
-        _rekey(todo[t], S, Cn, Rn, price, tol, fixed, gbase, glb, par, H)
+        j = todo[t]
+        b = x[j]
+        d = (1.0 - 2.0 * b) * field[j] + (price if b == o[j] else -price)
+        if d < qualify[b, j]:
+            _rekey(j, S, Cn, Rn, price, tol, fixed, gbase, glb, par, H)
+        elif fixed[j] < 0:  # what _rekey would conclude (narrow rows only add violation)
+            g = gbase[j, b] * par + (1 if par == 2 and b == o[j] else 0)
+            tree_set(tkey, titem, tb[g], tn[g], lp[j, b], _INF)
     return dist
 
 
 @_kernel
-def _rekey_all(S, Cn, Rn, price, tol, fixed, gbase, glb, par, H, qualify, out):
+def _rekey_all(S, Cn, Rn, price, tol, fixed, gbase, glb, par, H, qualify):
     """Re-key every free variable into empty trees. A variable in no narrow count penalty
     can only lose from its narrow rows, so its QUBO-and-price change already tells when it
     cannot qualify: below ``qualify[b, j]`` (float64 (2, n): -tol minus the least offset of
     j's group when j holds bit b; -inf for a pinned j; +inf for a j in a narrow count
-    penalty, which always takes the full evaluation). The variables that pass are listed
-    branch-free into ``out`` (int64, >= n) and re-keyed: near a minimum they are few, and
-    this contiguous pass costs a fraction of one through the free list and the groups."""
+    penalty, which always takes the full evaluation). One contiguous pass; near a minimum
+    the branch is rarely taken, so a plain ``if`` beats a branch-free list here."""
     x, o, field = S[0], S[1], S[2]
-    c = 0
     for j in range(x.size):
         b = x[j]
         d = (1.0 - 2.0 * b) * field[j] + (price if b == o[j] else -price)
-        out[c] = j
-        c += d < qualify[b, j]
-    for t in range(c):
-        _rekey(out[t], S, Cn, Rn, price, tol, fixed, gbase, glb, par, H)
+        if d < qualify[b, j]:
+            _rekey(j, S, Cn, Rn, price, tol, fixed, gbase, glb, par, H)
 
 
 # ------------------------------------------------------------------ driver
