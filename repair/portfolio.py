@@ -58,7 +58,7 @@ class Mix:
     The defaults follow bench/mix.py (bench/RESULTS.md): over 5 instances x 4 scenarios x
     3 budgets, giving the kicks everything after greedy found the best cost in 18-20 of 20
     rows per budget, the CP-SAT stages alone in at most 9 (mostly ties); these defaults in
-    16-20 rows (latest run: 20, 16 and 16 at 0.1, 1 and 5 s). CP-SAT keeps a small share
+    16-20 rows (latest run: 17, 20 and 19 at 0.1, 1 and 5 s). CP-SAT keeps a small share
     because only it proves optimality or infeasibility.
 
     greedy: most of the budget greedy repair may take; kicks: share of the rest for
