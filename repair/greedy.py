@@ -850,8 +850,7 @@ def _flip(i, S, dist, Q, C, R, use_groups, Cn, Rn, price, tol, fixed, gbase, glb
     for t in range(cnt):
         j = todo[t]
         b = x[j]
-        d = (1.0 - 2.0 * b) * field[j] + (price if b == o[j] else -price)
-        if d < qualify[b, j]:
+        if _delta(x, o, field, price, j) < qualify[b, j]:
             _rekey(j, S, Cn, Rn, price, tol, fixed, gbase, glb, par, H)
         elif fixed[j] < 0:  # what _rekey would conclude (narrow rows only add violation)
             g = gbase[j, b] * par + (1 if par == 2 and b == o[j] else 0)
@@ -869,9 +868,7 @@ def _rekey_all(S, Cn, Rn, price, tol, fixed, gbase, glb, par, H, qualify):
     the branch is rarely taken, so a plain ``if`` beats a branch-free list here."""
     x, o, field = S[0], S[1], S[2]
     for j in range(x.size):
-        b = x[j]
-        d = (1.0 - 2.0 * b) * field[j] + (price if b == o[j] else -price)
-        if d < qualify[b, j]:
+        if _delta(x, o, field, price, j) < qualify[x[j], j]:
             _rekey(j, S, Cn, Rn, price, tol, fixed, gbase, glb, par, H)
 
 
