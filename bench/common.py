@@ -17,11 +17,11 @@ from pathlib import Path
 
 import numpy as np
 
-from repair import CandidateSet, Problem
-from repair.compiled import compile_constraints
-from repair.constraints import FixVariables, HammingPenalty, LinearConstraint
-from repair.greedy import descend_qubo, greedy_repair
-from repair.instances import read_bqp, read_qkp
+from flipfix.repair import CandidateSet, Problem
+from flipfix.repair.lowering.compiled import compile_constraints
+from flipfix.repair.model.constraints import FixVariables, HammingPenalty, LinearConstraint
+from flipfix.repair.solvers.greedy import descend_qubo, greedy_repair
+from flipfix.repair.documents.instances import read_bqp, read_qkp
 
 __all__ = [
     "ROOT", "BENCHMARKS", "RESULTS_DIR", "Instance", "random_sparse", "load_instance",

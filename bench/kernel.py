@@ -15,11 +15,11 @@ import time
 
 import numpy as np
 
-from repair.compiled import compile_constraints
-from repair.constraints import HammingPenalty, LinearConstraint
-from repair.greedy import descend_qubo, greedy_repair
+from flipfix.repair.lowering.compiled import compile_constraints
+from flipfix.repair.model.constraints import HammingPenalty, LinearConstraint
+from flipfix.repair.solvers.greedy import descend_qubo, greedy_repair
 
-from .common import random_sparse, table
+from flipfix.bench.common import random_sparse, table
 
 __all__ = ["run", "render"]
 

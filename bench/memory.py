@@ -14,7 +14,7 @@ import subprocess
 import sys
 import time
 
-from .common import table
+from flipfix.bench.common import table
 
 __all__ = ["run", "render"]
 
@@ -41,14 +41,14 @@ def _child(K: int, n: int, T: float, seed: int) -> None:
     def maxrss():
         return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 
-    from repair import CandidateSet
-    from repair.api import repair as run_repair
-    from repair.constraints import FixVariables
-    from repair.greedy import descend_qubo
+    from flipfix.repair import CandidateSet
+    from flipfix.repair.api import repair as run_repair
+    from flipfix.repair.model.constraints import FixVariables
+    from flipfix.repair.solvers.greedy import descend_qubo
 
-    from .common import random_sparse
+    from flipfix.bench.common import random_sparse
 
-    from repair.cpsat import solve_cpsat  # noqa: F401  (imports counted in the baseline)
+    from flipfix.repair.solvers.cpsat import solve_cpsat  # noqa: F401  (imports counted in the baseline)
     stages = [{"stage": "imports", "rss": rss(), "maxrss": maxrss(), "traced": 0.0,
                "seconds": 0.0}]
     tracemalloc.start()
@@ -68,7 +68,7 @@ def _child(K: int, n: int, T: float, seed: int) -> None:
     cands = CandidateSet.from_array(p, X)
     mark("library in memory")
     try:
-        from service.store import Store
+        from flipfix.service.store import Store
 
         with tempfile.TemporaryDirectory() as tmp:
             st = Store(Path(tmp) / "mem.sqlite3")

@@ -1,7 +1,7 @@
 """Which portfolio mix wins at each budget.
 
 For a few instances and late scenarios (bench/common.py), the same library is repaired
-with several budget mixes (repair.portfolio.Mix) at budgets 0.1, 1 and 5 s:
+with several budget mixes (flipfix.repair.solvers.portfolio.Mix) at budgets 0.1, 1 and 5 s:
 
 * greedy        greedy repair only
 * kicks         greedy + iterated local search (kicks), no CP-SAT
@@ -18,10 +18,10 @@ import math
 
 import numpy as np
 
-from repair import CandidateSet, repair
-from repair.portfolio import Mix
+from flipfix.repair import CandidateSet, repair
+from flipfix.repair.solvers.portfolio import Mix
 
-from .common import build_library, load_instance, scenarios, table
+from flipfix.bench.common import build_library, load_instance, scenarios, table
 
 __all__ = ["run", "render", "MIXES"]
 

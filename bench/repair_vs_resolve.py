@@ -21,7 +21,7 @@ fewest-flips step searches for one).
 no more than the from-scratch answer at 10T, the one with the fewest flips; ``front<=70%``
 compares it, like the target, with the from-scratch answer's distance from that point's own
 candidate. It is what a planner who accepts the re-solve's quality can take instead of the
-cheapest answer (``repair.pareto.fewest_flips_within`` and friends).
+cheapest answer (``flipfix.repair.audit.pareto.fewest_flips_within`` and friends).
 """
 
 from __future__ import annotations
@@ -32,11 +32,11 @@ import time
 
 import numpy as np
 
-from repair import CandidateSet, repair
-from repair.compiled import compile_constraints
-from repair.cpsat import solve_cpsat
+from flipfix.repair import CandidateSet, repair
+from flipfix.repair.lowering.compiled import compile_constraints
+from flipfix.repair.solvers.cpsat import solve_cpsat
 
-from .common import build_library, hamming, load_instance, scenarios, table
+from flipfix.bench.common import build_library, hamming, load_instance, scenarios, table
 
 __all__ = ["run", "CONFIG"]
 

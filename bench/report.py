@@ -11,8 +11,8 @@ import json
 import sys
 from pathlib import Path
 
-from . import SECTIONS_ORDER
-from .common import RESULTS_DIR
+from flipfix.bench import SECTIONS_ORDER
+from flipfix.bench.common import RESULTS_DIR
 
 __all__ = ["render_markdown", "main"]
 
@@ -33,7 +33,7 @@ def merge(docs: list) -> dict:
 
 
 def render_markdown(doc: dict, *, notes: str = "") -> str:
-    from . import run as runner
+    from flipfix.bench import run as runner
 
     m = doc["machine"]
     runs = doc.get("runs") or [{"command": doc["command"], "started": doc["started"],

@@ -2,7 +2,7 @@
 
 K=1000 candidates of the n=1000 sparse model, scenario (a) (10 variables forced).
 Two methods: ``greedy`` (little compute, so the overhead shows) and ``portfolio`` at 1 s.
-The in-process baseline calls ``repair.repair`` with the same options the server uses
+The in-process baseline calls ``flipfix.repair.repair`` with the same options the server uses
 (CP-SAT workers=1). Serialisation share: client-side request building (domain -> proto) and
 encoding, server-side decoding and conversion (proto -> domain), reply building, timed
 separately with the service's own converters. Target (issue 6): service/in-process < 1.5x.
@@ -19,10 +19,10 @@ from pathlib import Path
 
 import numpy as np
 
-from repair import CandidateSet, repair
-from repair.constraints import FixVariables
+from flipfix.repair import CandidateSet, repair
+from flipfix.repair.model.constraints import FixVariables
 
-from .common import build_library, load_instance, table
+from flipfix.bench.common import build_library, load_instance, table
 
 __all__ = ["run", "render", "available"]
 
@@ -51,10 +51,10 @@ def run(*, quick: bool = False, seed: int = 0, log=print) -> dict:
     if not available():
         return {"rows": [], "columns": COLUMNS,
                 "note": "service/server.py or service/client.py missing: not measured"}
-    from service import convert
-    from service.client import FlipfixClient
-    from service.generated import flipfix_pb2 as pb
-    from service.server import ServerConfig, create_server
+    from flipfix.service import convert
+    from flipfix.service.client import FlipfixClient
+    from flipfix.service.generated import flipfix_pb2 as pb
+    from flipfix.service.server import ServerConfig, create_server
 
     inst = load_instance("rand1000", seed=seed)
     p = inst.problem

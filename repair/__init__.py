@@ -3,15 +3,15 @@
 Pure numerics (numpy, ortools, dimod, numba); this package never imports grpc or protobuf.
 """
 
-from .candidates import CandidateSet
-from .errors import InputError, LimitError
-from .model import Decision, Problem
+from flipfix.repair.model.candidates import CandidateSet
+from flipfix.repair.errors import InputError, LimitError
+from flipfix.repair.model.problem import Decision, Problem
 
 __all__ = ["Problem", "Decision", "CandidateSet", "InputError", "LimitError", "repair"]
 
 
 def repair(*args, **kwargs):
-    """See :func:`repair.api.repair` (imported lazily to keep start-up light)."""
-    from .api import repair as _repair
+    """See :func:`flipfix.repair.api.repair` (imported lazily to keep start-up light)."""
+    from flipfix.repair.api import repair as _repair
 
     return _repair(*args, **kwargs)

@@ -9,12 +9,12 @@ from typing import Any, Callable, Sequence
 
 import numpy as np
 
-from .candidates import CandidateSet
-from .compiled import Compiled, compile_constraints
-from .errors import InputError
-from .model import Problem
-from .portfolio import DEFAULT_MIX, Mix, run_plan
-from .result import METHODS, AuditRow, ParetoPoint, RepairResult, Solution
+from flipfix.repair.model.candidates import CandidateSet
+from flipfix.repair.lowering.compiled import Compiled, compile_constraints
+from flipfix.repair.errors import InputError
+from flipfix.repair.model.problem import Problem
+from flipfix.repair.solvers.portfolio import DEFAULT_MIX, Mix, run_plan
+from flipfix.repair.result import METHODS, AuditRow, ParetoPoint, RepairResult, Solution
 
 __all__ = ["repair", "check_options"]
 
@@ -42,7 +42,7 @@ def check_options(*, method: Any, time_limit: Any, max_flips: Any, flip_price: A
 def _changes(problem: Problem, before: np.ndarray, after: np.ndarray) -> list:
     if not problem.decisions:
         return []
-    from .encodings import integer_changes
+    from flipfix.repair.model.encodings import integer_changes
 
     return list(integer_changes(problem, before, after))
 
@@ -59,18 +59,18 @@ def repair(
 
     Never raises for infeasibility or an exhausted budget: see ``RepairResult.status``.
     ``compiled`` may pass a precompiled ``compile_constraints(problem, constraints)``;
-    ``mix`` sets how the portfolio shares its budget (see :class:`repair.portfolio.Mix`).
+    ``mix`` sets how the portfolio shares its budget (see :class:`flipfix.repair.solvers.portfolio.Mix`).
     ``workers`` is the number of search threads: CP-SAT's workers, and the threads greedy
     descends its batches with (greedy answers do not depend on it; only what fits in the
     budget does).
     """
     # one-time costs per process, kept out of the budget: the compiled kernels (loaded
     # from the cache, or compiled on a machine's first run) and OR-Tools
-    from .greedy import warm_up
+    from flipfix.repair.solvers.greedy import warm_up
 
     warm_up()
     if method in ("portfolio", "cpsat"):
-        from . import cpsat  # noqa: F401
+        from flipfix.repair.solvers import cpsat  # noqa: F401
     t0 = time.perf_counter()
     if not isinstance(problem, Problem):
         raise InputError("problem", f"expected a Problem, got {type(problem).__name__}")
@@ -79,7 +79,7 @@ def repair(
     if candidates.X.ndim != 2 or candidates.X.shape[1] != problem.n:
         raise InputError("candidates", f"must have {problem.n} columns, got {candidates.X.shape}")
     if not isinstance(mix, Mix):
-        raise InputError("mix", f"expected a repair.portfolio.Mix, got {type(mix).__name__}")
+        raise InputError("mix", f"expected a flipfix.repair.solvers.portfolio.Mix, got {type(mix).__name__}")
     check_options(method=method, time_limit=time_limit, max_flips=max_flips,
                   flip_price=flip_price, seed=seed, workers=workers)
     if compiled is None:
@@ -114,7 +114,7 @@ def _build(problem, candidates, compiled, attempts, price, method, seed, t0, *, 
     K = X0.shape[0]
     ev0 = compiled.evaluate(X0)
     if not attempts:  # nothing ran: report the candidates as they are
-        from .portfolio import Attempt
+        from flipfix.repair.solvers.portfolio import Attempt
 
         attempts = [Attempt(k, X0[k].copy(), "unrepaired", 0.0) for k in range(K)]
     A = np.vstack([a.x for a in attempts]).astype(np.int8)
@@ -145,7 +145,7 @@ def _build(problem, candidates, compiled, attempts, price, method, seed, t0, *, 
         chosen.setdefault(int(ks[a_idx]), int(a_idx))
     issues: dict = {}
     if problem.decisions:  # broken encodings are repair input; the audit names them
-        from .encodings import check_candidates
+        from flipfix.repair.model.encodings import check_candidates
 
         for i in check_candidates(problem, X0):
             issues.setdefault(i.candidate, []).append((i.decision, i.how))
@@ -182,7 +182,7 @@ def _build(problem, candidates, compiled, attempts, price, method, seed, t0, *, 
                        "least-violating one")
     points = []
     if pareto:
-        from .pareto import pareto_front
+        from flipfix.repair.audit.pareto import pareto_front
 
         points = pareto_front(
             ParetoPoint(cost=float(ev.cost[i]), flips=int(flips[i]),

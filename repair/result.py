@@ -78,7 +78,7 @@ class ParetoPoint:
 
 @dataclass
 class RepairResult:
-    """Outcome of :func:`repair.repair`; never raised, always returned.
+    """Outcome of :func:`flipfix.repair.repair`; never raised, always returned.
 
     ``best`` is the cheapest feasible solution (ties: fewer flips), or, when
     none is feasible, the least-violating assignment found. ``audit`` has one

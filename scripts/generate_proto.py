@@ -8,7 +8,7 @@ Runs ``grpc_tools.protoc`` (grpcio-tools, a test extra) and then makes the
 output package-relative and deterministic:
 
 * ``import flipfix_pb2`` style imports become ``from . import flipfix_pb2``, so
-  the modules live inside ``service.generated`` without touching ``sys.path``;
+  the modules live inside ``flipfix.service.generated`` without touching ``sys.path``;
 * a fixed header replaces protoc's, and line endings are ``\\n``.
 
 The generated files are committed; nobody edits them by hand.

@@ -1,9 +1,9 @@
 """``flipfix audit``: robustness, stress test, Pareto front and curation of a candidate library.
 
-The ``flipfix`` CLI (:mod:`service.cli`) calls :func:`register` when it builds its
+The ``flipfix`` CLI (:mod:`flipfix.service.cli`) calls :func:`register` when it builds its
 parser and :func:`run` when the subcommand is ``audit``. Everything numerical is
-in the core (:mod:`repair.robustness`, :mod:`repair.stress`, :mod:`repair.pareto`,
-:mod:`repair.curation`); this module reads the documents, prints a table and draws
+in the core (:mod:`flipfix.repair.audit.robustness`, :mod:`flipfix.repair.audit.stress`, :mod:`flipfix.repair.audit.pareto`,
+:mod:`flipfix.repair.audit.curation`); this module reads the documents, prints a table and draws
 the figure (matplotlib, Agg backend, no display needed).
 
 With ``--server HOST:PORT`` the first argument names a problem stored in a running
@@ -26,7 +26,7 @@ import textwrap
 from pathlib import Path
 from typing import Any, TextIO
 
-from repair.errors import InputError
+from flipfix.repair.errors import InputError
 
 __all__ = ["register", "run", "audit", "audit_remote", "draw_figure", "format_table"]
 
@@ -93,10 +93,10 @@ def audit(problem, candidates, family, *, scenarios: int, seed: int, method: str
           pareto_methods=("greedy", "cpsat"), pareto_time: float = 2.0, cancel=None,
           progress=None) -> dict:
     """Run the four parts of the audit and return their plain-data reports."""
-    from repair.curation import curate
-    from repair.pareto import cheapest_within, cost_flip_front, fewest_flips_within
-    from repair.robustness import robustness_profile
-    from repair.stress import draw_scenarios, stress_test
+    from flipfix.repair.audit.curation import curate
+    from flipfix.repair.audit.pareto import cheapest_within, cost_flip_front, fewest_flips_within
+    from flipfix.repair.audit.robustness import robustness_profile
+    from flipfix.repair.audit.stress import draw_scenarios, stress_test
 
     prof = robustness_profile(problem, candidates, epsilon=epsilon)
     stress = stress_test(problem, candidates, family, scenarios=scenarios, seed=seed, method=method,
@@ -123,9 +123,9 @@ def audit_remote(client, name: str, family, *, scenarios: int, seed: int, method
                  time_limit: float, epsilon: float, keep: int | None, commit: bool = False,
                  pareto_constraints=None, pareto_methods=("greedy", "cpsat"),
                  pareto_time: float = 2.0, progress=None) -> dict:
-    """:func:`audit` through a running service (``client``: :class:`service.client.FlipfixClient`);
+    """:func:`audit` through a running service (``client``: :class:`flipfix.service.client.FlipfixClient`);
     the library is the stored problem ``name`` (candidates of its current revision)."""
-    from repair.stress import draw_scenarios
+    from flipfix.repair.audit.stress import draw_scenarios
 
     prof = client.robustness(name, epsilon=epsilon)
     opts = dict(scenarios=scenarios, seed=seed, method=method, time_limit=time_limit,
@@ -300,7 +300,7 @@ def run(args: argparse.Namespace, *, out: TextIO | None = None, err: TextIO | No
     """Run ``flipfix audit``; 0 on success, 2 on bad input (the message names the field)."""
     out = sys.stdout if out is None else out
     err = sys.stderr if err is None else err
-    from repair.documents import parse_candidates, parse_problem
+    from flipfix.repair.documents.forms import parse_candidates, parse_problem
 
     if getattr(args, "server", None):
         return _run_remote(args, out, err)
@@ -331,7 +331,7 @@ def run(args: argparse.Namespace, *, out: TextIO | None = None, err: TextIO | No
 
 def _pareto_constraints(args, problem):
     """The --constraints document (a list, or {"constraints": [...]}) parsed, or None."""
-    from repair.documents import parse_constraints
+    from flipfix.repair.documents.forms import parse_constraints
 
     if not args.constraints:
         return None
@@ -346,7 +346,7 @@ def _pareto_methods(args) -> tuple:
 
 
 def _family_of(args):
-    from repair.stress import ScenarioFamily
+    from flipfix.repair.audit.stress import ScenarioFamily
 
     return ScenarioFamily(
         hamming_weight=args.weight, hamming_shape=args.shape, hamming_threshold=args.threshold,
@@ -357,7 +357,7 @@ def _family_of(args):
 def _run_remote(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     import grpc
 
-    from .client import FlipfixClient
+    from flipfix.service.client import FlipfixClient
 
     if args.candidates is not None:
         print("flipfix audit: error: candidates: with --server the stored candidates are "
@@ -409,7 +409,7 @@ def _emit(args: argparse.Namespace, report: dict, out: TextIO) -> None:
 
 
 def main(argv: list[str] | None = None) -> int:
-    """Stand-alone entry (``python -m service.audit_cli ...``) until service.cli dispatches."""
+    """Stand-alone entry (``python -m flipfix.service.audit_cli ...``) until flipfix.service.cli dispatches."""
     parser = argparse.ArgumentParser(prog="flipfix")
     register(parser.add_subparsers(dest="command", required=True))
     return run(parser.parse_args(argv))

@@ -2,7 +2,7 @@
 
 Each function is module level (the pool pickles it by reference), takes domain
 objects only, accepts the ``cancel`` (``threading.Event``) and ``progress``
-keywords every pool job gets (:meth:`service.worker.RepairPool.submit_call`), and
+keywords every pool job gets (:meth:`flipfix.service.worker.RepairPool.submit_call`), and
 returns the core's plain result objects; the servicer converts them to replies.
 Nothing here knows about gRPC.
 """
@@ -11,16 +11,16 @@ from __future__ import annotations
 
 from typing import Any, Sequence
 
-from repair.candidates import CandidateSet
-from repair.model import Problem
+from flipfix.repair.model.candidates import CandidateSet
+from flipfix.repair.model.problem import Problem
 
 __all__ = ["robustness", "stress", "pareto", "curation"]
 
 
 def robustness(problem: Problem, candidates: CandidateSet, *, epsilon: float, spectrum: bool,
                cancel=None, progress=None):
-    """:func:`repair.robustness.robustness_profile` (vectorised; not interruptible)."""
-    from repair.robustness import robustness_profile
+    """:func:`flipfix.repair.audit.robustness.robustness_profile` (vectorised; not interruptible)."""
+    from flipfix.repair.audit.robustness import robustness_profile
 
     if progress is not None:
         progress({"done": 0, "total": len(candidates.ids), "best_cost": None,
@@ -31,8 +31,8 @@ def robustness(problem: Problem, candidates: CandidateSet, *, epsilon: float, sp
 def stress(problem: Problem, candidates: CandidateSet, family, *, scenarios: int, seed: int,
            method: str, time_limit: float, epsilon: float, repair_options: dict,
            cancel=None, progress=None):
-    """:func:`repair.stress.stress_test`; ``time_limit`` covers the whole run."""
-    from repair.stress import stress_test
+    """:func:`flipfix.repair.audit.stress.stress_test`; ``time_limit`` covers the whole run."""
+    from flipfix.repair.audit.stress import stress_test
 
     return stress_test(problem, candidates, family, scenarios=scenarios, seed=seed,
                        method=method, time_limit=time_limit, epsilon=epsilon, cancel=cancel,
@@ -42,8 +42,8 @@ def stress(problem: Problem, candidates: CandidateSet, family, *, scenarios: int
 def pareto(problem: Problem, candidates: CandidateSet, constraints: Sequence[Any], *,
            methods: Sequence[str], time_limit: float, seed: int, include_unchanged: bool,
            cancel=None, progress=None):
-    """:func:`repair.pareto.cost_flip_front`: one repair of the library per method."""
-    from repair.pareto import cost_flip_front
+    """:func:`flipfix.repair.audit.pareto.cost_flip_front`: one repair of the library per method."""
+    from flipfix.repair.audit.pareto import cost_flip_front
 
     return cost_flip_front(problem, candidates, constraints, methods=tuple(methods),
                            time_limit=time_limit, seed=seed, cancel=cancel, progress=progress,
@@ -52,11 +52,11 @@ def pareto(problem: Problem, candidates: CandidateSet, constraints: Sequence[Any
 
 def curation(problem: Problem, candidates: CandidateSet, family, *, m: int, selection: str,
              stress_options: dict, cancel=None, progress=None):
-    """The stress test, then :func:`repair.curation.curate` on its cost matrix.
+    """The stress test, then :func:`flipfix.repair.audit.curation.curate` on its cost matrix.
 
     Returns ``(StressReport, CurationResult | None)``; None when no scenario ran.
     """
-    from repair.curation import curate
+    from flipfix.repair.audit.curation import curate
 
     report = stress(problem, candidates, family, cancel=cancel, progress=progress,
                     **stress_options)

@@ -4,7 +4,7 @@
     flipfix repair PROBLEM.json CANDIDATES.json CONSTRAINTS.json [--method M] [--time-limit S]
                    [--max-flips N] [--flip-price P] [--seed S] [--server HOST:PORT]
     flipfix demo
-    flipfix audit ...   (when service.audit_cli is installed)
+    flipfix audit ...   (when flipfix.service.audit_cli is installed)
 
 ``repair`` runs in-process by default and prints the result JSON on stdout
 (progress on stderr); ``--server`` sends the same files through the service. A
@@ -22,7 +22,7 @@ import threading
 import time
 from pathlib import Path
 
-from repair.errors import InputError
+from flipfix.repair.errors import InputError
 
 __all__ = ["main", "build_parser"]
 
@@ -107,7 +107,8 @@ def cmd_repair(args) -> int:
 
 
 def _repair_local(args, docs: dict, show: _Progress) -> dict:
-    from repair import documents, repair
+    from flipfix.repair.documents import forms as documents
+    from flipfix.repair import repair
 
     problem = documents.parse_problem(docs["problem"])
     candidates = documents.parse_candidates(docs["candidates"], problem)
@@ -121,9 +122,9 @@ def _repair_local(args, docs: dict, show: _Progress) -> dict:
 def _repair_remote(args, docs: dict, show: _Progress) -> dict:
     import grpc
 
-    from repair import documents
+    from flipfix.repair.documents import forms as documents
 
-    from .client import FlipfixClient
+    from flipfix.service.client import FlipfixClient
 
     problem = documents.parse_problem(docs["problem"])  # check locally: names the file
     documents.parse_candidates(docs["candidates"], problem)
@@ -148,7 +149,7 @@ def _repair_remote(args, docs: dict, show: _Progress) -> dict:
 def cmd_serve(args) -> int:
     import logging
 
-    from .server import ServerConfig, create_server
+    from flipfix.service.server import ServerConfig, create_server
 
     logging.basicConfig(level=logging.INFO, format="%(asctime)s %(name)s %(message)s")
     config = ServerConfig(
@@ -177,7 +178,7 @@ def cmd_serve(args) -> int:
 
 
 def cmd_demo(args) -> int:
-    from .demo import run_demo
+    from flipfix.service.demo import run_demo
 
     return run_demo(seed=args.seed, time_limit=args.time_limit)
 
@@ -233,7 +234,7 @@ def build_parser() -> argparse.ArgumentParser:
     d.set_defaults(func=cmd_demo)
 
     try:  # the audit commands live in their own module (optional)
-        from . import audit_cli
+        from flipfix.service import audit_cli
     except ImportError:
         audit_cli = None
     if audit_cli is not None:

@@ -10,10 +10,10 @@
 Candidates travel packed (``PackedAssignments``: one bit per variable in the problem's
 label order), converted with numpy on both sides; the client fetches the problem's labels
 (``get_problem``) to pack candidates for a stored problem and to read the answer.
-Replies of ``repair`` are dicts in the layout of :meth:`repair.result.RepairResult.to_dict`.
+Replies of ``repair`` are dicts in the layout of :meth:`flipfix.repair.result.RepairResult.to_dict`.
 The audit methods (``robustness``, ``stress_test``, ``pareto_front``, ``curate``) return
-the core's own report objects (:mod:`repair.robustness`, :mod:`repair.stress`,
-:mod:`repair.pareto`, :mod:`repair.curation`), each with a ``to_dict()``:
+the core's own report objects (:mod:`flipfix.repair.audit.robustness`, :mod:`flipfix.repair.audit.stress`,
+:mod:`flipfix.repair.audit.pareto`, :mod:`flipfix.repair.audit.curation`), each with a ``to_dict()``:
 
         prof = fx.robustness("roster", epsilon=0.5)
         rep = fx.stress_test("roster", ScenarioFamily(hamming_weight=3.0), scenarios=30)
@@ -30,13 +30,13 @@ from typing import Any, Callable, Iterable, Mapping, Sequence
 import grpc
 import numpy as np
 
-from repair import documents
-from repair.candidates import CandidateSet
-from repair.model import Problem
+from flipfix.repair.documents import forms as documents
+from flipfix.repair.model.candidates import CandidateSet
+from flipfix.repair.model.problem import Problem
 
-from . import convert
-from .generated import flipfix_pb2 as pb
-from .generated import flipfix_pb2_grpc as pb_grpc
+from flipfix.service import convert
+from flipfix.service.generated import flipfix_pb2 as pb
+from flipfix.service.generated import flipfix_pb2_grpc as pb_grpc
 
 __all__ = ["FlipfixClient", "StoredCandidates"]
 
@@ -136,7 +136,7 @@ class FlipfixClient:
             if isinstance(c, pb.Constraint):
                 out.append(c)
             elif not isinstance(c, Mapping) and convert.constraint_to_proto(c) is not None:
-                out.append(convert.constraint_to_proto(c))  # a repair.constraints object
+                out.append(convert.constraint_to_proto(c))  # a flipfix.repair.model.constraints object
             else:
                 out.append(convert.doc_to_constraint(c, problem, field=f"constraints[{k}]"))
         return out
@@ -264,14 +264,14 @@ class FlipfixClient:
     @staticmethod
     def _family(family: Any) -> tuple[pb.ScenarioFamily, dict]:
         """ScenarioFamily (core), a dict of its fields, or the proto -> (proto, dict)."""
-        from repair.stress import ScenarioFamily
+        from flipfix.repair.audit.stress import ScenarioFamily
 
         if isinstance(family, pb.ScenarioFamily):
             return family, {}
         if isinstance(family, Mapping):
             family = ScenarioFamily(**family)
         if not isinstance(family, ScenarioFamily):
-            raise TypeError(f"family: expected a repair.stress.ScenarioFamily, got "
+            raise TypeError(f"family: expected a flipfix.repair.audit.stress.ScenarioFamily, got "
                             f"{type(family).__name__}")
         return convert.family_to_proto(family), family.to_dict()
 
@@ -284,7 +284,7 @@ class FlipfixClient:
     def robustness(self, name: str, *, epsilon: float = 0.0, spectrum: bool = False,
                    candidate_ids: Sequence[str] = (), all_revisions: bool = False,
                    timeout: float | None = None):
-        """The robustness profile of a stored library: :class:`repair.robustness.RobustnessReport`."""
+        """The robustness profile of a stored library: :class:`flipfix.repair.audit.robustness.RobustnessReport`."""
         r = self.stub.ProfileRobustness(pb.RobustnessRequest(
             problem=name, candidate_ids=list(candidate_ids), all_revisions=all_revisions,
             epsilon=epsilon, spectrum=spectrum), timeout=timeout or self.timeout)
@@ -306,7 +306,7 @@ class FlipfixClient:
 
     def stress_test(self, name: str, family: Any, *, timeout: float | None = None,
                     on_progress: Callable[[pb.RepairProgress], None] | None = None, **options):
-        """The what-if stress test of a stored library: :class:`repair.stress.StressReport`.
+        """The what-if stress test of a stored library: :class:`flipfix.repair.audit.stress.StressReport`.
 
         ``options`` as :meth:`stress_request`; ``on_progress`` switches to the streaming
         RPC (one progress message per scenario, phase ``"stress"``).

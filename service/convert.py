@@ -2,7 +2,7 @@
 
 Field names in errors follow the proto (``model.quadratic[3]``,
 ``constraints[1].hamming.weight``) so a caller can find the offending field.
-JSON documents (the CLI formats) are converted through :mod:`repair.documents`
+JSON documents (the CLI formats) are converted through :mod:`flipfix.repair.documents.forms`
 first, so the int/str label rule is the same on every path.
 """
 
@@ -15,18 +15,18 @@ from typing import Any, Hashable, Iterable, Mapping, Sequence
 
 import numpy as np
 
-from repair import documents
-from repair.candidates import CandidateSet
-from repair.constraints import (
+from flipfix.repair.documents import forms as documents
+from flipfix.repair.model.candidates import CandidateSet
+from flipfix.repair.model.constraints import (
     ExtraTerms, FixVariables, ForbidAssignment, HammingPenalty, LinearConstraint,
 )
-from repair.encodings import AllowValues, DecisionChangePenalty, ForbidValues, ForceValue
-from repair.errors import InputError, LimitError
-from repair.model import Decision, Problem
-from repair.result import RepairResult
+from flipfix.repair.model.encodings import AllowValues, DecisionChangePenalty, ForbidValues, ForceValue
+from flipfix.repair.errors import InputError, LimitError
+from flipfix.repair.model.problem import Decision, Problem
+from flipfix.repair.result import RepairResult
 
-from . import packing
-from .generated import flipfix_pb2 as pb
+from flipfix.service import packing
+from flipfix.service.generated import flipfix_pb2 as pb
 
 __all__ = [
     "label_to_py", "py_to_label", "decision_to_domain", "decision_to_proto", "model_to_problem",
@@ -141,8 +141,8 @@ _ENCODING_ENUM = {v: k for k, v in _ENCODING_NAMES.items()}
 
 
 def decision_to_domain(d: pb.Decision, field: str) -> Decision:
-    """A Decision proto -> :class:`repair.model.Decision` (sizes and bit ownership are
-    checked with the problem, by :func:`repair.encodings.validate_decisions`)."""
+    """A Decision proto -> :class:`flipfix.repair.model.problem.Decision` (sizes and bit ownership are
+    checked with the problem, by :func:`flipfix.repair.model.encodings.validate_decisions`)."""
     if d.encoding not in _ENCODING_NAMES:
         raise InputError(field + ".encoding", "must be ONE_HOT or DOMAIN_WALL")
     variables = tuple(label_to_py(v, f"{field}.variables[{j}]") for j, v in enumerate(d.variables))
@@ -312,7 +312,7 @@ def arrays_to_batch(ids: Sequence[str], X: np.ndarray, provenance: Sequence[Mapp
 
 
 def records_to_batches(recs: Sequence) -> list[pb.CandidateBatch]:
-    """Stored :class:`service.store.CandidateRecord` s -> one batch per run of one revision."""
+    """Stored :class:`flipfix.service.store.CandidateRecord` s -> one batch per run of one revision."""
     out: list[pb.CandidateBatch] = []
     start = 0
     for k in range(1, len(recs) + 1):
@@ -455,7 +455,7 @@ def constraints_to_domain(constraints: Sequence[pb.Constraint], problem: Problem
     limits.constraints(len(constraints), field)
     out = [constraint_to_domain(c, problem, field=f"{field}[{k}]") for k, c in enumerate(constraints)]
     # validate now (names the field in proto terms); the worker compiles again
-    from repair.compiled import compile_constraints
+    from flipfix.repair.lowering.compiled import compile_constraints
 
     try:
         compile_constraints(problem, out, field_name=field)
@@ -531,7 +531,7 @@ def docs_to_constraints(doc: Any, problem: Problem, *, field: str = "constraints
 # ------------------------------------------------------------------ options
 def options_to_kwargs(o: pb.RepairOptions, *, default_time_limit: float = 5.0,
                       field: str = "options") -> dict:
-    """RepairOptions -> keyword arguments of :func:`repair.repair` (time limit uncapped)."""
+    """RepairOptions -> keyword arguments of :func:`flipfix.repair.repair` (time limit uncapped)."""
     if o.method not in METHOD_NAMES:
         raise InputError(field + ".method", f"unknown method {o.method}")
     if not math.isfinite(o.time_limit) or o.time_limit < 0:
@@ -671,8 +671,8 @@ def _get_opt(msg, name: str) -> float:
 
 
 def family_to_domain(f: pb.ScenarioFamily, problem: Problem, *, field: str = "family"):
-    """ScenarioFamily proto -> validated :class:`repair.stress.ScenarioFamily`."""
-    from repair.stress import ScenarioFamily
+    """ScenarioFamily proto -> validated :class:`flipfix.repair.audit.stress.ScenarioFamily`."""
+    from flipfix.repair.audit.stress import ScenarioFamily
 
     if f.reference not in _REFERENCE_NAMES:
         raise InputError(field + ".reference", "must be UNIFORM or PERTURBED")
@@ -700,7 +700,7 @@ def family_to_domain(f: pb.ScenarioFamily, problem: Problem, *, field: str = "fa
 
 
 def family_to_proto(fam) -> pb.ScenarioFamily:
-    """:class:`repair.stress.ScenarioFamily` -> proto (the client's side)."""
+    """:class:`flipfix.repair.audit.stress.ScenarioFamily` -> proto (the client's side)."""
     msg = pb.ScenarioFamily(
         hamming_weight=fam.hamming_weight, hamming_shape=_SHAPE_ENUM[fam.hamming_shape],
         hamming_threshold=fam.hamming_threshold, hamming_fraction=fam.hamming_fraction,
@@ -713,7 +713,7 @@ def family_to_proto(fam) -> pb.ScenarioFamily:
 
 def stress_to_kwargs(r: pb.StressRequest, problem: Problem, *, default_time_limit: float,
                      max_scenarios: int | None = None, field: str = "") -> tuple[Any, dict]:
-    """StressRequest -> (ScenarioFamily, keyword arguments of :func:`service.audit_jobs.stress`).
+    """StressRequest -> (ScenarioFamily, keyword arguments of :func:`flipfix.service.audit_jobs.stress`).
 
     ``time_limit`` is the requested whole-run budget (the server caps it); ``field``
     prefixes the error fields (``"stress."`` inside a CurateRequest).
@@ -736,7 +736,7 @@ def stress_to_kwargs(r: pb.StressRequest, problem: Problem, *, default_time_limi
 
 
 def pareto_to_kwargs(r: pb.ParetoRequest, *, default_time_limit: float) -> dict:
-    """ParetoRequest options -> keyword arguments of :func:`service.audit_jobs.pareto`."""
+    """ParetoRequest options -> keyword arguments of :func:`flipfix.service.audit_jobs.pareto`."""
     methods = []
     for k, m in enumerate(r.methods):
         if m not in METHOD_NAMES:
@@ -754,7 +754,7 @@ def pareto_to_kwargs(r: pb.ParetoRequest, *, default_time_limit: float) -> dict:
 
 # replies (server side) ------------------------------------------------------
 def robustness_to_reply(rep, *, revision: int = 0) -> pb.RobustnessReply:
-    """:class:`repair.robustness.RobustnessReport` -> RobustnessReply."""
+    """:class:`flipfix.repair.audit.robustness.RobustnessReport` -> RobustnessReply."""
     return pb.RobustnessReply(
         epsilon=rep.epsilon, best_id=rep.best_id, num_variables=rep.n_variables,
         num_decisions=rep.n_decisions, revision=revision,
@@ -769,7 +769,7 @@ def robustness_to_reply(rep, *, revision: int = 0) -> pb.RobustnessReply:
 
 def stress_to_reply(rep, *, matrices: bool = False, time_limit: float = 0.0,
                     revision: int = 0) -> pb.StressReply:
-    """:class:`repair.stress.StressReport` -> StressReply (NaN figures left unset)."""
+    """:class:`flipfix.repair.audit.stress.StressReport` -> StressReply (NaN figures left unset)."""
     out = pb.StressReply(
         method=rep.method, seed=rep.seed, epsilon=rep.epsilon,
         scenarios_requested=rep.scenarios_requested, scenarios_done=rep.scenarios_done,
@@ -816,7 +816,7 @@ def pareto_to_reply(front, *, cheapest=None, fewest=None, seconds: float = 0.0,
 def curation_to_reply(stress: pb.StressReply, cur, *, kept: bool = False,
                       removed: Sequence[str] = (), message: str = "",
                       revision: int = 0) -> pb.CurateReply:
-    """A StressReply plus :class:`repair.curation.CurationResult` (or None) -> CurateReply."""
+    """A StressReply plus :class:`flipfix.repair.audit.curation.CurationResult` (or None) -> CurateReply."""
     out = pb.CurateReply(stress=stress, kept=kept, removed_ids=list(removed), message=message,
                          revision=revision)
     if cur is not None:
@@ -831,8 +831,8 @@ def curation_to_reply(stress: pb.StressReply, cur, *, kept: bool = False,
 
 # replies -> domain objects (client side) -----------------------------------
 def reply_to_robustness(r: pb.RobustnessReply):
-    """RobustnessReply -> :class:`repair.robustness.RobustnessReport`."""
-    from repair.robustness import CandidateProfile, RobustnessReport
+    """RobustnessReply -> :class:`flipfix.repair.audit.robustness.RobustnessReport`."""
+    from flipfix.repair.audit.robustness import CandidateProfile, RobustnessReport
 
     return RobustnessReport(
         epsilon=r.epsilon, best_id=r.best_id, n_variables=r.num_variables,
@@ -846,8 +846,8 @@ def reply_to_robustness(r: pb.RobustnessReply):
 
 
 def reply_to_stress(r: pb.StressReply, *, family: dict | None = None):
-    """StressReply -> :class:`repair.stress.StressReport` (matrices empty unless requested)."""
-    from repair.stress import CandidateStress, StressReport
+    """StressReply -> :class:`flipfix.repair.audit.stress.StressReport` (matrices empty unless requested)."""
+    from flipfix.repair.audit.stress import CandidateStress, StressReport
 
     return StressReport(
         family=dict(family or {}), method=r.method, seed=int(r.seed), epsilon=r.epsilon,
@@ -871,17 +871,17 @@ def reply_to_stress(r: pb.StressReply, *, family: dict | None = None):
 
 
 def reply_to_point(p: pb.ParetoPoint):
-    from repair.result import ParetoPoint
+    from flipfix.repair.result import ParetoPoint
 
     return ParetoPoint(cost=p.cost, flips=int(p.flips), candidate_id=p.candidate_id, method=p.method)
 
 
 def reply_to_curation(r: pb.CurateReply, m: int, selection: str = "greedy"):
-    """CurateReply -> :class:`repair.curation.CurationResult` (None when nothing was chosen).
+    """CurateReply -> :class:`flipfix.repair.audit.curation.CurationResult` (None when nothing was chosen).
 
     ``kept_indices`` are positions in the audited library (the stress report's order).
     """
-    from repair.curation import CurationResult
+    from flipfix.repair.audit.curation import CurationResult
 
     if not r.kept_ids:
         return None

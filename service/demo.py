@@ -5,7 +5,7 @@
 3. send a late constraint and stream the repair's progress;
 4. print the answer readably.
 
-The scenario comes from :mod:`service.demo_scenario` when it is present (the
+The scenario comes from :mod:`flipfix.service.demo_scenario` when it is present (the
 workshop timetable); otherwise a small invented shift-cover scenario of this
 module is used. All data is invented for the demo.
 """
@@ -83,9 +83,9 @@ def fallback_scenario(seed: int = 0) -> dict[str, Any]:
 
 
 def load_scenario(seed: int = 0) -> dict[str, Any]:
-    """The workshop scenario when :mod:`service.demo_scenario` exists, else the fallback."""
+    """The workshop scenario when :mod:`flipfix.service.demo_scenario` exists, else the fallback."""
     try:
-        from .demo_scenario import workshop_scenario
+        from flipfix.service.demo_scenario import workshop_scenario
     except ImportError:
         return fallback_scenario(seed)
     sc = dict(workshop_scenario(seed=seed))
@@ -99,8 +99,8 @@ def _say(msg: str) -> None:
 
 def run_demo(*, seed: int = 0, time_limit: float = 3.0, out: Callable[[str], None] = print) -> int:
     """Run the demo; returns the exit code (0 when the repair found a feasible plan)."""
-    from .client import FlipfixClient
-    from .server import create_server
+    from flipfix.service.client import FlipfixClient
+    from flipfix.service.server import create_server
 
     sc = load_scenario(seed)
     name = sc.get("name", "demo")

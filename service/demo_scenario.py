@@ -5,7 +5,7 @@ afternoon). Each job runs on its own machine (4 jobs each on the lathe, the mill
 and the welder); the decision per job is its slot, encoded domain wall (5 bits
 for 6 slots: bit ``J05>2`` is 1 when job J05 runs after slot 2).
 
-Objective (all quadratic in the bits, see :func:`repair.encodings.pair_terms`):
+Objective (all quadratic in the bits, see :func:`flipfix.repair.model.encodings.pair_terms`):
 two jobs on one machine in one slot (20), a job before the job it depends on
 (12), two jobs needing the same fitter in one slot (8), each slot past a job's
 due slot (3), plus small seeded slot preferences that break ties.
@@ -25,8 +25,8 @@ from typing import Any
 
 import numpy as np
 
-from repair.encodings import decode, pair_terms, unary_terms
-from repair.model import Decision, Problem
+from flipfix.repair.model.encodings import decode, pair_terms, unary_terms
+from flipfix.repair.model.problem import Decision, Problem
 
 __all__ = ["workshop_scenario", "SLOTS", "MACHINES", "JOBS"]
 
@@ -112,7 +112,7 @@ def _descend(plan: dict, unary: dict, pairs: dict, rng: np.random.Generator) -> 
 def workshop_scenario(seed: int = 0, *, library_size: int = 8) -> dict[str, Any]:
     """The demo as documents: ``problem``, ``candidates``, ``constraints`` (JSON-ready), and
     ``render(result_dict) -> str``, a before/after timetable of a repair result
-    (:meth:`repair.result.RepairResult.to_dict`). Deterministic for a given ``seed``.
+    (:meth:`flipfix.repair.result.RepairResult.to_dict`). Deterministic for a given ``seed``.
     """
     unary, pairs = _integer_model(seed)
     decisions = [Decision(j, "domain_wall", tuple(f"{j}>{s}" for s in range(1, 6)),

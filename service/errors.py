@@ -3,8 +3,8 @@
 =====================================  ===================
 error                                  status code
 =====================================  ===================
-:class:`repair.errors.LimitError`      RESOURCE_EXHAUSTED (a configured limit; the queue is full)
-:class:`repair.errors.InputError`      INVALID_ARGUMENT, message ``"<field>: <what is wrong>"``
+:class:`flipfix.repair.errors.LimitError`      RESOURCE_EXHAUSTED (a configured limit; the queue is full)
+:class:`flipfix.repair.errors.InputError`      INVALID_ARGUMENT, message ``"<field>: <what is wrong>"``
 :class:`NotFoundError`                 NOT_FOUND (unknown problem, revision or candidate)
 :class:`AlreadyExistsError`            ALREADY_EXISTS (problem name or candidate id taken)
 :class:`ConflictError`                 FAILED_PRECONDITION (expected revision differs)
@@ -25,7 +25,7 @@ from concurrent.futures.process import BrokenProcessPool
 
 import grpc
 
-from repair.errors import InputError, LimitError
+from flipfix.repair.errors import InputError, LimitError
 
 __all__ = ["NotFoundError", "AlreadyExistsError", "ConflictError", "TransientError",
            "QueueFullError", "status_for", "translate_errors"]

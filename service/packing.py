@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from repair.errors import InputError
+from flipfix.repair.errors import InputError
 
 __all__ = ["row_bytes", "pack_rows", "unpack_rows"]
 

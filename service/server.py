@@ -1,9 +1,9 @@
 """The flipfix gRPC server: thin servicer over the store and the repair pool.
 
-Each RPC converts the request (:mod:`service.convert`), calls the store or the
-core, and converts back; errors become status codes in :mod:`service.errors`.
+Each RPC converts the request (:mod:`flipfix.service.convert`), calls the store or the
+core, and converts back; errors become status codes in :mod:`flipfix.service.errors`.
 
-* Repairs run in a process pool (:mod:`service.worker`) so CPU work never holds
+* Repairs run in a process pool (:mod:`flipfix.service.worker`) so CPU work never holds
   the gRPC threads; a full queue is RESOURCE_EXHAUSTED.
 * Deadline: the solver budget is ``min(requested, remaining deadline - margin)``,
   so a short deadline still gets the best found so far.
@@ -14,7 +14,7 @@ core, and converts back; errors become status codes in :mod:`service.errors`.
 * :meth:`RunningServer.shutdown`: health NOT_SERVING, no new calls, in-flight
   calls get ``grace`` seconds, then are cancelled (their solvers stop).
 * The audit RPCs (robustness, stress test, Pareto front, curation; issue 5) take
-  the same path: validate and convert here, run :mod:`service.audit_jobs` in the
+  the same path: validate and convert here, run :mod:`flipfix.service.audit_jobs` in the
   pool with the same slots, budget, deadline and cancellation, convert back.
 """
 
@@ -33,16 +33,17 @@ import grpc
 from grpc_health.v1 import health, health_pb2, health_pb2_grpc
 from grpc_reflection.v1alpha import reflection
 
-from repair.candidates import CandidateSet
+from flipfix.repair.model.candidates import CandidateSet
 
-from repair.errors import InputError
+from flipfix.repair.errors import InputError
 
-from . import audit_jobs, convert
-from .errors import ConflictError, NotFoundError, TransientError, translate_errors
-from .generated import flipfix_pb2 as pb
-from .generated import flipfix_pb2_grpc as pb_grpc
-from .store import Store
-from .worker import RepairPool
+from flipfix.service import audit_jobs
+from flipfix.service import convert
+from flipfix.service.errors import ConflictError, NotFoundError, TransientError, translate_errors
+from flipfix.service.generated import flipfix_pb2 as pb
+from flipfix.service.generated import flipfix_pb2_grpc as pb_grpc
+from flipfix.service.store import Store
+from flipfix.service.worker import RepairPool
 
 __all__ = ["create_server", "RunningServer", "ServerConfig", "SERVICE_NAME"]
 
@@ -169,7 +170,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
             ids = [cid or f"c{k}" for k, cid in enumerate(ids)]
             return 0, problem, CandidateSet(CandidateSet._check_ids(ids, len(ids),
                                                                     "inline.candidates.ids"), X)
-        from repair.errors import InputError
+        from flipfix.repair.errors import InputError
         raise InputError("library", "set problem (a stored problem) or inline")
 
     def _start(self, request, context):
@@ -348,7 +349,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
 
     @translate_errors
     def ParetoFront(self, request, context):
-        from repair.pareto import cheapest_within, fewest_flips_within
+        from flipfix.repair.audit.pareto import cheapest_within, fewest_flips_within
 
         rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
                                                   request.all_revisions)

@@ -9,7 +9,7 @@
 Models are stored exactly, in 0/1 form (labels in order, linear biases, upper
 couplings, offset) with the caller's vartype; candidates as packed bits, one BLOB
 per candidate in the label order of the revision they were made for, in the
-layout of the proto's ``PackedAssignments`` row (:mod:`service.packing`): the
+layout of the proto's ``PackedAssignments`` row (:mod:`flipfix.service.packing`): the
 server answers ListCandidates by joining the stored blobs.
 """
 
@@ -26,12 +26,12 @@ from typing import Sequence
 
 import numpy as np
 
-from repair.candidates import CandidateSet
-from repair.errors import InputError
-from repair.model import Decision, Problem
+from flipfix.repair.model.candidates import CandidateSet
+from flipfix.repair.errors import InputError
+from flipfix.repair.model.problem import Decision, Problem
 
-from . import packing
-from .errors import AlreadyExistsError, ConflictError, NotFoundError
+from flipfix.service import packing
+from flipfix.service.errors import AlreadyExistsError, ConflictError, NotFoundError
 
 __all__ = ["Store", "ProblemRecord", "CandidateRecord", "SCHEMA_VERSION", "SCHEMA_HISTORY"]
 
@@ -106,7 +106,7 @@ class ProblemRecord:
 
 @dataclass(frozen=True)
 class CandidateRecord:
-    """A stored candidate: ``bits`` packed (:mod:`service.packing`) in ``labels`` order
+    """A stored candidate: ``bits`` packed (:mod:`flipfix.service.packing`) in ``labels`` order
     (its revision's); ``x`` is the same as int8 (n,) 0/1."""
 
     id: str
@@ -480,7 +480,7 @@ class Store:
         if not recs:
             raise InputError("problem", f"problem {name!r} has no candidates for revision {rev}")
         if max_candidates is not None and len(recs) > max_candidates:
-            from repair.errors import LimitError
+            from flipfix.repair.errors import LimitError
             raise LimitError("candidates", f"{len(recs)} candidates exceed the limit of {max_candidates}")
         same = [k for k, rec in enumerate(recs) if rec.labels == problem.labels]
         X = np.empty((len(recs), problem.n), dtype=np.int8)

@@ -2,7 +2,7 @@
 
 The server owns a :class:`RepairPool`: a ``ProcessPoolExecutor`` (spawn context)
 plus a fixed number of *slots* (workers + queue length). A job takes a slot or is
-refused (:class:`service.errors.QueueFullError` -> RESOURCE_EXHAUSTED). Each slot
+refused (:class:`flipfix.service.errors.QueueFullError` -> RESOURCE_EXHAUSTED). Each slot
 is a row of a shared ``float64`` array, ``SLOT_WIDTH`` wide:
 
     [0] cancel flag (set by the server; the worker turns it into a threading.Event)
@@ -15,9 +15,9 @@ name (``greedy``, ``kicks``, ``neighbourhood``, ``full``, ``cpsat``, ``stress``,
 so a cancelled gRPC call stops its solver, and a streaming call can report progress,
 without a manager process or pipes per job.
 
-A job is :func:`repair.repair` (:meth:`RepairPool.submit`) or any module-level
+A job is :func:`flipfix.repair.repair` (:meth:`RepairPool.submit`) or any module-level
 function taking ``cancel=`` and ``progress=`` keywords (:meth:`RepairPool.submit_call`,
-used by the audit RPCs, see :mod:`service.audit_jobs`).
+used by the audit RPCs, see :mod:`flipfix.service.audit_jobs`).
 """
 
 from __future__ import annotations
@@ -30,9 +30,9 @@ from concurrent.futures import Future, ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass
 
-from repair.errors import InputError, LimitError
+from flipfix.repair.errors import InputError, LimitError
 
-from .errors import QueueFullError, TransientError
+from flipfix.service.errors import QueueFullError, TransientError
 
 __all__ = ["RepairPool", "Job", "Progress", "SLOT_WIDTH", "PHASE_BYTES", "WorkerInputError"]
 
@@ -77,9 +77,9 @@ def _warm() -> int:
     """Import the core (and compile its kernels) before the first real job."""
     import numpy as np
 
-    from repair import CandidateSet, Problem, repair
+    from flipfix.repair import CandidateSet, Problem, repair
 
-    from repair.constraints import FixVariables, HammingPenalty, LinearConstraint
+    from flipfix.repair.model.constraints import FixVariables, HammingPenalty, LinearConstraint
 
     p = Problem.from_terms({0: 1.0, 1: -1.0, 2: 0.5}, [(0, 1, 0.5), (1, 2, -1.0)])
     cands = CandidateSet.from_array(p, np.array([[1, 0, 1], [0, 1, 1]]))
@@ -94,8 +94,8 @@ def _warm() -> int:
 
 
 def _run(slot: int, problem, candidates, constraints, kwargs: dict):
-    """Run :func:`repair.repair` for one job; honours the slot's cancel flag."""
-    from repair import repair
+    """Run :func:`flipfix.repair.repair` for one job; honours the slot's cancel flag."""
+    from flipfix.repair import repair
 
     return _run_call(slot, repair, (problem, candidates, constraints), kwargs)
 
@@ -114,7 +114,7 @@ def _run_call(slot: int, fn, args: tuple, kwargs: dict):
 
     # the compiled kernels load (or, on a machine's first run, compile) before the job's
     # budget clock starts: compilation is set-up, not search time
-    from repair.greedy import warm_up
+    from flipfix.repair.solvers.greedy import warm_up
 
     warm_up()
     _FLAGS[base + 5] = 1.0
@@ -234,7 +234,7 @@ class RepairPool:
             return self.slots - len(self._free)
 
     def submit(self, problem, candidates, constraints, kwargs: dict) -> Job:
-        """A :func:`repair.repair` job (``kwargs`` are its options)."""
+        """A :func:`flipfix.repair.repair` job (``kwargs`` are its options)."""
         return self._submit(_run, (problem, candidates, constraints, kwargs))
 
     def submit_call(self, fn, args: tuple = (), kwargs: dict | None = None) -> Job:

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from repair import Problem
+from flipfix.repair import Problem
 
 R, ALPHA, P = 10.0, 0.5, 20.0
 

@@ -18,7 +18,7 @@ import grpc
 import pytest
 from grpc_health.v1 import health_pb2, health_pb2_grpc
 
-from service.cli import main
+from flipfix.service.cli import main
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -67,7 +67,7 @@ def test_in_process_repair_prints_the_result_json(files, capsys):
 
 
 def test_server_and_in_process_give_the_same_best_cost(files, capsys, tmp_path):
-    from service.server import create_server
+    from flipfix.service.server import create_server
 
     assert main(_args(files)) == 0
     local = json.loads(capsys.readouterr().out)
@@ -98,7 +98,7 @@ def test_malformed_file_exit_2_names_file_and_field(files, capsys, which, conten
 
 def test_invalid_json_and_console_script_exit_code(files):
     files["candidates"].write_text('[{"id": "p1", "assignment": {')
-    proc = subprocess.run([sys.executable, "-m", "service.cli", *_args(files)], cwd=ROOT,
+    proc = subprocess.run([sys.executable, "-m", "flipfix.service.cli", *_args(files)], cwd=ROOT,
                           capture_output=True, text=True, timeout=120)
     assert proc.returncode == 2 and proc.stdout == ""
     assert str(files["candidates"]) in proc.stderr and "line 1" in proc.stderr
@@ -106,7 +106,7 @@ def test_invalid_json_and_console_script_exit_code(files):
 
 
 def test_serve_answers_health_and_stops_on_sigterm(tmp_path):
-    proc = subprocess.Popen([sys.executable, "-m", "service.cli", "serve", "--port", "0",
+    proc = subprocess.Popen([sys.executable, "-m", "flipfix.service.cli", "serve", "--port", "0",
                              "--db", str(tmp_path / "s.sqlite3")], cwd=ROOT,
                             stderr=subprocess.PIPE, text=True)
     try:
@@ -127,7 +127,7 @@ def test_serve_answers_health_and_stops_on_sigterm(tmp_path):
 
 
 def test_demo_runs_end_to_end():
-    from service.demo import run_demo
+    from flipfix.service.demo import run_demo
 
     lines: list[str] = []
     assert run_demo(time_limit=1.0, out=lines.append) == 0  # 0: the repaired plan is feasible

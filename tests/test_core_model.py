@@ -8,17 +8,17 @@ import dimod
 import numpy as np
 import pytest
 
-from repair import CandidateSet, InputError, Problem
-from repair.compiled import compile_constraints
-from repair.constraints import (
+from flipfix.repair import CandidateSet, InputError, Problem
+from flipfix.repair.lowering.compiled import compile_constraints
+from flipfix.repair.model.constraints import (
     ExtraTerms, FixVariables, ForbidAssignment, HammingPenalty, LinearConstraint,
 )
 
 
 def test_importing_the_core_loads_neither_grpc_nor_protobuf():
     code = (
-        "import sys, numpy as np, repair, repair.api, repair.greedy, repair.compiled\n"
-        "from repair import Problem, CandidateSet, repair as run\n"
+        "import sys, numpy as np, flipfix.repair, flipfix.repair.api, flipfix.repair.solvers.greedy, flipfix.repair.lowering.compiled\n"
+        "from flipfix.repair import Problem, CandidateSet, repair as run\n"
         "p = Problem.from_terms({'a': 1.0, 'b': -1.0}, [('a', 'b', 2.0)])\n"
         "c = CandidateSet.from_array(p, [[1, 1]])\n"
         "r = run(p, c, [], method='greedy', time_limit=1)\n"

@@ -18,12 +18,12 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from repair import CandidateSet, Problem, repair
-from repair.compiled import compile_constraints
-from repair.constraints import (
+from flipfix.repair import CandidateSet, Problem, repair
+from flipfix.repair.lowering.compiled import compile_constraints
+from flipfix.repair.model.constraints import (
     ExtraTerms, FixVariables, ForbidAssignment, HammingPenalty, LinearConstraint,
 )
-from repair.instances import read_bqp, read_qkp
+from flipfix.repair.documents.instances import read_bqp, read_qkp
 
 BQP_BEST = {  # shared/benchmarks/README.md (Beasley OR-Library, as tabulated with BiqMac)
     "bqp50-1": -2098, "bqp50-2": -3702, "bqp50-3": -4626, "bqp50-4": -3544, "bqp50-5": -4012,
@@ -254,7 +254,7 @@ def test_pareto_front_is_non_dominated_over_audit():
 def test_bad_options_name_the_option():
     p = Problem.from_terms({0: 1.0}, [])
     c = CandidateSet.from_array(p, [[0]])
-    from repair import InputError
+    from flipfix.repair import InputError
 
     for kw, field in [({"method": "anneal"}, "method"), ({"time_limit": 0}, "time_limit"),
                       ({"max_flips": -1}, "max_flips"), ({"flip_price": float("nan")}, "flip_price"),
@@ -333,7 +333,7 @@ def test_a_flip_cap_that_the_fixings_break_leaves_no_feasible_answer(method):
 def test_kicks_flip_a_uniform_number_of_distinct_variables(width, top):
     # each kick flips r distinct variables, r drawn from min(2, top) .. top; over many rows
     # every size and every position turns up
-    from repair.portfolio import kick_masks
+    from flipfix.repair.solvers.portfolio import kick_masks
 
     rows = 4000
     M = kick_masks(np.random.default_rng(5), rows, width, top)

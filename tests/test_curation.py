@@ -8,9 +8,9 @@ import math
 import numpy as np
 import pytest
 
-from repair import CandidateSet, InputError
-from repair.curation import curate
-from repair.stress import ScenarioFamily, stress_test
+from flipfix.repair import CandidateSet, InputError
+from flipfix.repair.audit.curation import curate
+from flipfix.repair.audit.stress import ScenarioFamily, stress_test
 
 from test_stress import ALPHA, BUDGET, W, planted, state
 

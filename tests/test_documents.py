@@ -12,9 +12,9 @@ import dimod
 import numpy as np
 import pytest
 
-from repair import documents
-from repair.constraints import FixVariables, HammingPenalty, LinearConstraint
-from repair.errors import InputError
+from flipfix.repair.documents import forms as documents
+from flipfix.repair.model.constraints import FixVariables, HammingPenalty, LinearConstraint
+from flipfix.repair.errors import InputError
 
 
 def _all_assignments(labels, vartype):
@@ -121,7 +121,7 @@ def test_parsers_are_a_registry_with_every_bit_level_kind():
     merged = documents.constraint_parsers()
     assert set(documents.CONSTRAINT_PARSERS) <= set(merged)
     try:
-        from repair import encodings
+        from flipfix.repair.model import encodings
     except ImportError:
         return
     assert set(getattr(encodings, "CONSTRAINT_PARSERS", {})) <= set(merged)
@@ -139,7 +139,7 @@ def test_problem_document_round_trip_keeps_labels_and_energies(vartype):
 
 def test_a_constraint_type_that_is_not_a_string_names_the_field():
     # found by randomised mutation of documents: {"type": {...}} used to raise TypeError
-    from repair.documents import parse_constraints, parse_problem
+    from flipfix.repair.documents.forms import parse_constraints, parse_problem
 
     p = parse_problem({"vartype": "BINARY", "linear": {"a": 1.0}, "quadratic": []})
     with pytest.raises(InputError) as err:

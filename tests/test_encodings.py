@@ -1,4 +1,4 @@
-"""Integer decisions (repair.encodings): encodings, lowering, repair, reports, JSON.
+"""Integer decisions (flipfix.repair.model.encodings): encodings, lowering, repair, reports, JSON.
 
 Outside references used (named again next to each check):
 * Chancellor, "Domain wall encoding of discrete variables for quantum annealing
@@ -16,15 +16,15 @@ import dimod
 import numpy as np
 import pytest
 
-from repair import CandidateSet, Decision, InputError, Problem, repair
-from repair import documents
-from repair import encodings as enc
-from repair.compiled import compile_constraints
+from flipfix.repair import CandidateSet, Decision, InputError, Problem, repair
+from flipfix.repair.documents import forms as documents
+from flipfix.repair.model import encodings as enc
+from flipfix.repair.lowering.compiled import compile_constraints
 
 
 # ----------------------------------------------------------------- helpers
 def ref_index(encoding: str, bits) -> int | None:
-    """Value index of a bit string, written independently of repair.encodings."""
+    """Value index of a bit string, written independently of flipfix.repair.model.encodings."""
     bits = [int(b) for b in bits]
     if encoding == "one_hot":
         return bits.index(1) if sum(bits) == 1 else None
@@ -536,7 +536,7 @@ def test_problem_document_errors_name_the_field(mutate, field):
 
 # ------------------------------------------------------------------- demo
 def test_workshop_scenario_repairs_to_a_valid_timetable():
-    from service.demo_scenario import JOBS, workshop_scenario
+    from flipfix.service.demo_scenario import JOBS, workshop_scenario
 
     s = workshop_scenario(seed=0)
     p = documents.parse_problem(s["problem"])
@@ -556,8 +556,8 @@ def test_workshop_scenario_repairs_to_a_valid_timetable():
 
 
 def test_proto_carries_integer_constraints_and_encoding_issues():
-    # proto round trip (service.convert): typed messages for the four integer kinds
-    from service import convert
+    # proto round trip (flipfix.service.convert): typed messages for the four integer kinds
+    from flipfix.service import convert
 
     s_doc = _doc()
     p = documents.parse_problem(s_doc)

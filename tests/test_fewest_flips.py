@@ -10,10 +10,10 @@ import dimod
 import numpy as np
 import pytest
 
-from repair import CandidateSet, Problem, repair
-from repair.compiled import compile_constraints
-from repair.constraints import FixVariables, LinearConstraint
-from repair.cpsat import LateModel
+from flipfix.repair import CandidateSet, Problem, repair
+from flipfix.repair.lowering.compiled import compile_constraints
+from flipfix.repair.model.constraints import FixVariables, LinearConstraint
+from flipfix.repair.solvers.cpsat import LateModel
 
 
 def exhaustive(bqm: dimod.BinaryQuadraticModel, labels):

@@ -1,6 +1,6 @@
 """The greedy kernels on models large enough for their fast structures to matter.
 
-Under late rows and count penalties longer than ``repair.greedy.WIDE`` the kernel picks
+Under late rows and count penalties longer than ``flipfix.repair.solvers.greedy.WIDE`` the kernel picks
 flips from per-group tournament trees; these tests check its answers against an
 independent evaluation (``Compiled.evaluate``, plain numpy) and against the plain scan
 over free variables that the kernel falls back to, on integer-coefficient models so
@@ -12,11 +12,11 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from repair import greedy
-from repair.compiled import compile_constraints
-from repair.constraints import FixVariables, HammingPenalty, LinearConstraint
-from repair.greedy import descend_qubo, greedy_repair
-from repair.model import Problem
+from flipfix.repair.solvers import greedy
+from flipfix.repair.lowering.compiled import compile_constraints
+from flipfix.repair.model.constraints import FixVariables, HammingPenalty, LinearConstraint
+from flipfix.repair.solvers.greedy import descend_qubo, greedy_repair
+from flipfix.repair.model.problem import Problem
 
 
 def _model(n: int, seed: int) -> Problem:
@@ -39,7 +39,7 @@ def _constraints(n: int, seed: int, kind: str):
     if kind in ("penalty", "mixed"):  # a wide threshold Hamming penalty
         ref = {i: int(b) for i, b in enumerate(rng.integers(0, 2, n))}
         cs.append(HammingPenalty(ref, weight=7.0, shape="threshold", threshold=n // 4))
-    if kind == "many":  # more wide rows than repair.greedy.MAX_WIDE: the kernel scans
+    if kind == "many":  # more wide rows than flipfix.repair.solvers.greedy.MAX_WIDE: the kernel scans
         for r in range(20):
             idx = rng.choice(n, 70, replace=False)
             cs.append(LinearConstraint({int(i): 1.0 for i in idx}, "<=", 30.0, name=f"w{r}"))

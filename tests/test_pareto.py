@@ -7,12 +7,12 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from repair import CandidateSet, InputError, Problem
-from repair.constraints import FixVariables, HammingPenalty
-from repair.pareto import (
+from flipfix.repair import CandidateSet, InputError, Problem
+from flipfix.repair.model.constraints import FixVariables, HammingPenalty
+from flipfix.repair.audit.pareto import (
     cheapest_within, cost_flip_front, fewest_flips_within, pareto_front, result_points,
 )
-from repair.result import AuditRow, ParetoPoint
+from flipfix.repair.result import AuditRow, ParetoPoint
 
 
 def _dominates(p, q):
@@ -96,7 +96,7 @@ def test_front_over_methods_of_a_real_repair():
     cs = CandidateSet.from_array(p, rng.integers(0, 2, size=(8, n)))
     ref = {i: int(v) for i, v in enumerate(rng.integers(0, 2, size=n))}
     cons = [HammingPenalty(ref, weight=1.5), FixVariables({0: 1, 1: 0})]
-    from repair import repair
+    from flipfix.repair import repair
 
     # greedy is deterministic: the front equals the exhaustive dominance comparison over
     # every repaired candidate plus the candidates already feasible (0 flips)

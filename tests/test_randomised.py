@@ -14,12 +14,12 @@ import dimod
 import numpy as np
 import pytest
 
-from repair import CandidateSet, InputError, Problem, repair
-from repair.compiled import compile_constraints
-from repair.constraints import (
+from flipfix.repair import CandidateSet, InputError, Problem, repair
+from flipfix.repair.lowering.compiled import compile_constraints
+from flipfix.repair.model.constraints import (
     ExtraTerms, FixVariables, ForbidAssignment, HammingPenalty, LinearConstraint,
 )
-from repair.documents import parse_candidates, parse_constraints, parse_problem
+from flipfix.repair.documents.forms import parse_candidates, parse_constraints, parse_problem
 
 
 def random_constraints(rng, p: Problem):

@@ -8,8 +8,8 @@ import dimod
 import numpy as np
 import pytest
 
-from repair import CandidateSet, Decision, InputError, Problem
-from repair.robustness import (
+from flipfix.repair import CandidateSet, Decision, InputError, Problem
+from flipfix.repair.audit.robustness import (
     decision_move_costs, free_decision_counts, free_variable_counts, nearest_other,
     robustness_profile,
 )
@@ -43,7 +43,7 @@ def _enumerated_deltas(bqm, samples, labels):
 @pytest.mark.parametrize("dense_max_n", [2048, 0])  # dense product / blocked CSR path
 def test_free_variables_match_exhaustive_single_flip_enumeration(vartype, epsilon, dense_max_n,
                                                                   monkeypatch):
-    import repair.robustness as rob
+    import flipfix.repair.audit.robustness as rob
 
     monkeypatch.setattr(rob, "DENSE_MAX_N", dense_max_n)
     rng = np.random.default_rng(7)

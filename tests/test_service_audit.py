@@ -1,8 +1,8 @@
 """The audit RPCs (issue 5) and typed integer decisions (issue 4) over a real server on port 0.
 
 References: the stress, Pareto and curation figures are compared with the same core
-functions called in-process with the same seed (repair.stress.stress_test,
-repair.pareto.cost_flip_front, repair.curation.curate); free-variable counts and
+functions called in-process with the same seed (flipfix.repair.audit.stress.stress_test,
+flipfix.repair.audit.pareto.cost_flip_front, flipfix.repair.audit.curation.curate); free-variable counts and
 single-flip spectra with brute-force enumeration of every single flip through
 dimod's BinaryQuadraticModel.energies; Pareto fronts with an exhaustive pairwise
 dominance check; long runs use OR-Library bqp100-1 (../shared/benchmarks/bqp,
@@ -20,16 +20,17 @@ import grpc
 import numpy as np
 import pytest
 
-from repair import CandidateSet, Problem, documents
-from repair.curation import curate
-from repair.instances import read_bqp
-from repair.pareto import cost_flip_front
-from repair.stress import ScenarioFamily, stress_test
-from service import convert
-from service.client import FlipfixClient
-from service.generated import flipfix_pb2 as pb
-from service.generated import flipfix_pb2_grpc as pb_grpc
-from service.server import create_server
+from flipfix.repair.documents import forms as documents
+from flipfix.repair import CandidateSet, Problem
+from flipfix.repair.audit.curation import curate
+from flipfix.repair.documents.instances import read_bqp
+from flipfix.repair.audit.pareto import cost_flip_front
+from flipfix.repair.audit.stress import ScenarioFamily, stress_test
+from flipfix.service import convert
+from flipfix.service.client import FlipfixClient
+from flipfix.service.generated import flipfix_pb2 as pb
+from flipfix.service.generated import flipfix_pb2_grpc as pb_grpc
+from flipfix.service.server import create_server
 
 # ----------------------------------------------------------------- planted model
 # Block b has a switch z_b and a group y_b of g_b variables:
@@ -410,7 +411,7 @@ def test_decisions_free_moves_over_the_service(fx):
 
 # ------------------------------------------------------------------ the CLI
 def test_audit_cli_through_the_server(fx, planted_lib, server, tmp_path, capsys):
-    from service.cli import main
+    from flipfix.service.cli import main
 
     out_json = tmp_path / "audit.json"
     rc = main(["audit", "planted", "--server", server.address, "--scenarios", "6", "--weight",
@@ -428,9 +429,9 @@ def test_input_errors_from_a_worker_keep_their_field():
     # pool's wrappers do, so an error raised in a worker still names its field
     import pickle
 
-    from repair.errors import InputError, LimitError
-    from service.errors import status_for
-    from service.worker import WorkerInputError, WorkerLimitError
+    from flipfix.repair.errors import InputError, LimitError
+    from flipfix.service.errors import status_for
+    from flipfix.service.worker import WorkerInputError, WorkerLimitError
 
     for cls, base, code in ((WorkerInputError, InputError, grpc.StatusCode.INVALID_ARGUMENT),
                             (WorkerLimitError, LimitError, grpc.StatusCode.RESOURCE_EXHAUSTED)):

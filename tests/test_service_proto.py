@@ -51,7 +51,7 @@ def test_generated_imports_are_package_relative():
 
 
 def test_core_never_imports_grpc_or_protobuf():
-    code = ("import sys, repair, repair.api, repair.documents, repair.compiled\n"
+    code = ("import sys, repair, flipfix.repair.api, flipfix.repair.documents.forms, flipfix.repair.lowering.compiled\n"
             "bad = [m for m in sys.modules if m.split('.')[0] in ('grpc', 'grpc_tools')]\n"
             "assert not bad, bad\n")
     subprocess.run([sys.executable, "-c", code], check=True, cwd=ROOT)
@@ -59,8 +59,8 @@ def test_core_never_imports_grpc_or_protobuf():
 
 @pytest.mark.parametrize("vartype", ["BINARY", "SPIN"])
 def test_model_round_trip_keeps_every_energy(vartype):
-    from repair import documents
-    from service import convert
+    from flipfix.repair.documents import forms as documents
+    from flipfix.service import convert
 
     doc = {"vartype": vartype, "linear": {"0": 0.5, "b": -1.0, "c": 2.0},
            "quadratic": [[0, "b", 1.5], ["b", "c", -0.75], [0, 9, 2.0]], "offset": -0.25}
@@ -73,8 +73,8 @@ def test_model_round_trip_keeps_every_energy(vartype):
 
 
 def test_constraint_documents_convert_to_the_same_domain_objects():
-    from repair import documents
-    from service import convert
+    from flipfix.repair.documents import forms as documents
+    from flipfix.service import convert
 
     p = documents.parse_problem({"vartype": "SPIN", "quadratic": [[0, 1, 1.0], [1, "z", 1.0]]})
     docs = [
@@ -98,10 +98,10 @@ def test_constraint_documents_convert_to_the_same_domain_objects():
 
 
 def test_constraint_errors_use_proto_field_names():
-    from repair import documents
-    from repair.errors import InputError
-    from service import convert
-    from service.generated import flipfix_pb2 as pb
+    from flipfix.repair.documents import forms as documents
+    from flipfix.repair.errors import InputError
+    from flipfix.service import convert
+    from flipfix.service.generated import flipfix_pb2 as pb
 
     p = documents.parse_problem({"vartype": "BINARY", "quadratic": [["a", "b", 1.0]]})
     good = pb.Constraint(fix=pb.FixVariables(values=convert.dict_to_assignment({"a": 1})))
@@ -120,7 +120,7 @@ def test_constraint_errors_use_proto_field_names():
 def test_packed_layout_is_numpy_packbits_msb_first(n):
     """The proto's PackedAssignments layout, checked bit by bit against its written rule
     (bit 7 - j % 8 of byte j // 8 of the row) and against numpy.packbits."""
-    from service import packing
+    from flipfix.service import packing
 
     rng = np.random.default_rng(n)
     X = rng.integers(0, 2, size=(5, n), dtype=np.int8)
@@ -139,8 +139,8 @@ def test_packed_values_mean_the_vartype_values(vartype):
     unpacked candidates equal dimod's energies of the same samples (label-keyed)."""
     import dimod
 
-    from repair import documents
-    from service import convert
+    from flipfix.repair.documents import forms as documents
+    from flipfix.service import convert
 
     doc = {"vartype": vartype, "linear": {"a": 0.5, "b": -1.0, "c": 0.25},
            "quadratic": [["a", "b", 1.5], ["b", "c", -0.75]], "offset": 0.5}
@@ -158,9 +158,9 @@ def test_packed_values_mean_the_vartype_values(vartype):
 
 
 def test_indexed_model_errors_name_the_field():
-    from repair.errors import InputError
-    from service import convert
-    from service.generated import flipfix_pb2 as pb
+    from flipfix.repair.errors import InputError
+    from flipfix.service import convert
+    from flipfix.service.generated import flipfix_pb2 as pb
 
     def model(**kw):
         m = pb.ProblemModel(vartype=pb.BINARY, labels=[convert.py_to_label(x) for x in "abc"])

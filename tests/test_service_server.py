@@ -19,12 +19,12 @@ import pytest
 from grpc_health.v1 import health_pb2, health_pb2_grpc
 from grpc_reflection.v1alpha import reflection_pb2, reflection_pb2_grpc
 
-from repair import documents
-from repair.instances import read_bqp
-from service import convert
-from service.generated import flipfix_pb2 as pb
-from service.generated import flipfix_pb2_grpc as pb_grpc
-from service.server import SERVICE_NAME, create_server, deadline_budget
+from flipfix.repair.documents import forms as documents
+from flipfix.repair.documents.instances import read_bqp
+from flipfix.service import convert
+from flipfix.service.generated import flipfix_pb2 as pb
+from flipfix.service.generated import flipfix_pb2_grpc as pb_grpc
+from flipfix.service.server import SERVICE_NAME, create_server, deadline_budget
 
 SMALL = {"vartype": "BINARY",
          "linear": {"a": -1.0, "b": -1.0, "c": -1.0, "d": 0.5, "e": -0.5},
@@ -221,7 +221,7 @@ def test_inline_packed_errors_name_the_field(stub, small):
 def test_packed_candidates_round_trip(server, vartype):
     """AddCandidates -> ListCandidates gives back the same ids, values and provenance, and
     an inline repair reads the same values as the stored one (n = 13: padded rows)."""
-    from service.client import FlipfixClient
+    from flipfix.service.client import FlipfixClient
 
     labels = ["s", 7, "t", 0, "u", 3, "v", 11, "w", 2, "x", 5, "y"]
     doc = {"vartype": vartype, "labels": labels,
@@ -405,7 +405,7 @@ def test_graceful_shutdown(tmp_path, big_request):
 def test_reply_carries_the_core_solution_both_ways(vartype):
     """result_to_reply -> bytes -> reply_to_dict gives RepairResult.to_dict()'s best (packed
     answer, candidate_id, repaired_from) exactly."""
-    from repair import CandidateSet, repair
+    from flipfix.repair import CandidateSet, repair
 
     doc = {**SMALL, "vartype": vartype}
     p = documents.parse_problem(doc)
@@ -425,8 +425,8 @@ def test_reply_carries_the_core_solution_both_ways(vartype):
 def test_client_sends_sample_sets_and_arrays_packed(server):
     """A dimod SampleSet goes in packed with its energies as provenance; a short array row
     is refused by the client's own check, naming the field."""
-    from repair.errors import InputError
-    from service.client import FlipfixClient
+    from flipfix.repair.errors import InputError
+    from flipfix.service.client import FlipfixClient
 
     bqm = dimod.BinaryQuadraticModel({"a": 1.0, "b": -1.0}, {("a", "b"): 2.0, ("b", "c"): -1.0},
                                      0.0, "SPIN")

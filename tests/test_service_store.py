@@ -7,9 +7,9 @@ import sqlite3
 import numpy as np
 import pytest
 
-from repair import documents
-from service.errors import AlreadyExistsError, ConflictError, NotFoundError
-from service.store import SCHEMA_VERSION, Store
+from flipfix.repair.documents import forms as documents
+from flipfix.service.errors import AlreadyExistsError, ConflictError, NotFoundError
+from flipfix.service.store import SCHEMA_VERSION, Store
 
 DOC = {"vartype": "SPIN", "linear": {"a": 1.0, "0": -0.5}, "quadratic": [["a", 0, 0.25], [0, 1, -1.0]]}
 

@@ -8,10 +8,10 @@ import threading
 import numpy as np
 import pytest
 
-from repair import CandidateSet, InputError, Problem
-from repair.compiled import compile_constraints
-from repair.constraints import FixVariables, HammingPenalty, LinearConstraint
-from repair.stress import ScenarioFamily, draw_scenarios, pearson, spearman, stress_test
+from flipfix.repair import CandidateSet, InputError, Problem
+from flipfix.repair.lowering.compiled import compile_constraints
+from flipfix.repair.model.constraints import FixVariables, HammingPenalty, LinearConstraint
+from flipfix.repair.audit.stress import ScenarioFamily, draw_scenarios, pearson, spearman, stress_test
 
 # ----------------------------------------------------------------- planted model
 # construction in tests/planted.py
@@ -205,8 +205,8 @@ def test_bad_family_names_the_field(kw, field):
 def test_audit_cli_end_to_end(tmp_path):
     import json
 
-    from repair.documents import problem_document
-    from service.audit_cli import main
+    from flipfix.repair.documents.forms import problem_document
+    from flipfix.service.audit_cli import main
 
     groups = [6, 10]
     p = planted(groups)
@@ -234,8 +234,8 @@ def test_audit_cli_end_to_end(tmp_path):
 def test_audit_cli_bad_option_names_it(tmp_path, capsys, extra, field):
     import json
 
-    from repair.documents import problem_document
-    from service.audit_cli import main
+    from flipfix.repair.documents.forms import problem_document
+    from flipfix.service.audit_cli import main
 
     p = planted([3])
     (tmp_path / "p.json").write_text(json.dumps(problem_document(p)))

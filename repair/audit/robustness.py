@@ -7,7 +7,7 @@ This module measures that, vectorised over the whole library:
 * free variables: variables (outside declared decisions) whose single-flip
   energy change is ``<= epsilon`` (default 0; negative changes count too);
 * free decisions: integer decisions (one-hot, domain wall; see
-  :mod:`repair.encodings`) that can move to another value at a cost ``<= epsilon``
+  :mod:`flipfix.repair.model.encodings`) that can move to another value at a cost ``<= epsilon``
   (one-hot: the swap of the "on" bit with another bit, a pair flip; domain wall:
   moving the wall one step, a single flip of a wall-edge bit);
 * flip-cost spectrum: the sorted single-flip costs, with the number of flips
@@ -25,9 +25,9 @@ from typing import Any
 
 import numpy as np
 
-from .candidates import CandidateSet
-from .errors import InputError
-from .model import Decision, Problem
+from flipfix.repair.model.candidates import CandidateSet
+from flipfix.repair.errors import InputError
+from flipfix.repair.model.problem import Decision, Problem
 
 __all__ = [
     "CandidateProfile", "RobustnessReport", "robustness_profile", "free_variable_counts",
@@ -190,8 +190,8 @@ def _plain_bits(problem: Problem) -> np.ndarray:
 
 def codewords(decision: Decision) -> np.ndarray:
     """Bit patterns of a decision's values: int8 (k, m), row v encodes ``values[v]``
-    (the encoder's convention: :func:`repair.encodings.codewords`)."""
-    from .encodings import codewords as encoder_codewords  # local: encodings imports model
+    (the encoder's convention: :func:`flipfix.repair.model.encodings.codewords`)."""
+    from flipfix.repair.model.encodings import codewords as encoder_codewords  # local: encodings imports model
 
     return np.asarray(encoder_codewords(decision), dtype=np.int8)
 

@@ -17,7 +17,7 @@ caps that distance (a hard radius).
 
 Cost per flip is O(degree log n) at worst, independent of n in practice: local fields,
 count-penalty term states and row activities are updated only where the flipped
-variable appears, and the best flip comes from tournament trees (repair.tournament)
+variable appears, and the best flip comes from tournament trees (flipfix.repair.kernels.tournament)
 rather than a scan. On a pure QUBO one tree holds the improving flips (a small heap
 when a start has few). With late rows and count penalties, variables are grouped by
 how a flip moves the long ("wide") structures, one tree per group keyed by the rest of
@@ -36,8 +36,8 @@ from dataclasses import dataclass
 import numba as nb
 import numpy as np
 
-from .compiled import FEAS_TOL, Compiled
-from .tournament import tree_clear, tree_drain, tree_set
+from flipfix.repair.lowering.compiled import FEAS_TOL, Compiled
+from flipfix.repair.kernels.tournament import tree_clear, tree_drain, tree_set
 
 __all__ = ["GreedyOutput", "greedy_repair", "descend_qubo", "objective_tol", "warm_up"]
 
@@ -254,7 +254,7 @@ def _descend_tree(X, origin, h, indptr, indices, data, fixed, price, tol, max_st
                   refs, steps_out):
     """Steepest descent on a pure QUBO (+ fixings, + flip price), in place on X (K, n).
 
-    The improving flips are the finite leaves of a tournament tree (repair.tournament); a
+    The improving flips are the finite leaves of a tournament tree (flipfix.repair.kernels.tournament); a
     flip re-keys the variable and its neighbours, each O(log n) at worst and mostly a
     level or two. A descent ends with no improving flip, so the tree is empty again and
     the next candidate's start-up is its field computation and one pass over n.
@@ -1251,9 +1251,9 @@ def warm_up() -> None:
     global _WARM
     if _WARM:
         return
-    from .compiled import compile_constraints
-    from .constraints import HammingPenalty, LinearConstraint
-    from .model import Problem
+    from flipfix.repair.lowering.compiled import compile_constraints
+    from flipfix.repair.model.constraints import HammingPenalty, LinearConstraint
+    from flipfix.repair.model.problem import Problem
 
     p = Problem.from_terms({0: -1.0, 1: 1.0, 2: 0.5}, [(0, 1, 2.0), (1, 2, -1.0)])
     X0 = np.zeros((1, 3), dtype=np.int8)

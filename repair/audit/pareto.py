@@ -14,8 +14,8 @@ from __future__ import annotations
 import math
 from typing import Any, Iterable, Sequence
 
-from .errors import InputError
-from .result import ParetoPoint
+from flipfix.repair.errors import InputError
+from flipfix.repair.result import ParetoPoint
 
 __all__ = ["pareto_front", "as_points", "cheapest_within", "fewest_flips_within",
            "result_points", "cost_flip_front"]
@@ -126,7 +126,7 @@ def fewest_flips_within(points: Sequence[Any], percent: float) -> ParetoPoint | 
 
 
 def result_points(result: Any, *, include_unchanged: bool = True) -> list[ParetoPoint]:
-    """The (cost, flips) points of a :class:`repair.result.RepairResult`: every feasible
+    """The (cost, flips) points of a :class:`flipfix.repair.result.RepairResult`: every feasible
     audit row, plus (``include_unchanged``) each candidate that was already feasible,
     at its cost before repair and 0 flips (method ``"unchanged"``)."""
     pts = as_points(result.audit)
@@ -141,8 +141,8 @@ def cost_flip_front(problem, candidates, constraints, *, methods: Sequence[str] 
                     include_unchanged: bool = True, **options) -> list[ParetoPoint]:
     """Repair the library once per method and return the front over every candidate and
     method. ``time_limit`` (seconds) is shared evenly by the methods; extra keyword
-    options go to :func:`repair.repair`."""
-    from .api import repair
+    options go to :func:`flipfix.repair.repair`."""
+    from flipfix.repair.api import repair
 
     if not methods:
         raise InputError("methods", "must name at least one method")

@@ -23,7 +23,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from .errors import InputError
+from flipfix.repair.errors import InputError
 
 __all__ = ["CurationResult", "curate", "subset_objective", "select_greedy", "select_exhaustive"]
 

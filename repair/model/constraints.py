@@ -8,8 +8,8 @@ Hard (must hold in the reply):
     :class:`LinearConstraint` sum a_i x_i (<=, ==, >=) rhs, in the caller's vartype
     :class:`ForbidAssignment` these variables may not all take these values at once
 
-Integer-level constraints over declared decisions live in :mod:`repair.encodings`;
-they lower to the same compiled pieces (see :mod:`repair.compiled`).
+Integer-level constraints over declared decisions live in :mod:`flipfix.repair.model.encodings`;
+they lower to the same compiled pieces (see :mod:`flipfix.repair.lowering.compiled`).
 """
 
 from __future__ import annotations
@@ -20,8 +20,8 @@ from typing import Any, Hashable, Mapping, Sequence
 
 import numpy as np
 
-from .errors import InputError
-from .model import finite as _number
+from flipfix.repair.errors import InputError
+from flipfix.repair.model.problem import finite as _number
 
 __all__ = [
     "HammingPenalty", "ExtraTerms", "FixVariables", "LinearConstraint", "ForbidAssignment",

@@ -36,7 +36,7 @@ from dataclasses import dataclass
 import numpy as np
 from ortools.sat.python import cp_model
 
-from .compiled import Compiled
+from flipfix.repair.lowering.compiled import Compiled
 
 __all__ = ["CpsatOutput", "LateModel", "solve_cpsat", "integer_scale"]
 
@@ -411,7 +411,7 @@ class _Decisions:
             self.p[(d1, d2)] = P
 
     def hint(self, problem, hv, vars_, vals):
-        from .encodings import decode_indices
+        from flipfix.repair.model.encodings import decode_indices
 
         M = decode_indices(problem, hv.astype(np.int8)[None, :])[0]
         for di, e in enumerate(self.e):
@@ -431,7 +431,7 @@ def _decision_terms(compiled, h, pi, pj, pv):
 
     Returns (h float64 (n,), pi, pj, pv of the couplings left at bit level, _Decisions).
     """
-    from .encodings import codewords, decision_bits
+    from flipfix.repair.model.encodings import codewords, decision_bits
 
     problem = compiled.problem
     n = problem.n

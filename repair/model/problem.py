@@ -20,8 +20,8 @@ from typing import Any, Hashable, Iterable, Mapping, Sequence
 
 import numpy as np
 
-from .energy import csr_energies, csr_local_fields
-from .errors import InputError
+from flipfix.repair.kernels.energy import csr_energies, csr_local_fields
+from flipfix.repair.errors import InputError
 
 __all__ = ["Problem", "Decision", "BINARY", "SPIN", "check_label", "finite"]
 
@@ -52,7 +52,7 @@ def finite(value: Any, field_name: str) -> float:
 
 @dataclass(frozen=True)
 class Decision:
-    """An integer decision encoded in bits (see :mod:`repair.encodings`).
+    """An integer decision encoded in bits (see :mod:`flipfix.repair.model.encodings`).
 
     ``encoding`` is ``"one_hot"`` (k bits for k values) or ``"domain_wall"``
     (k-1 bits for k values); ``variables`` are bit labels in order and
@@ -255,7 +255,7 @@ class Problem:
             index={lab: i for i, lab in enumerate(order)},
         )
         if decisions:
-            from .encodings import validate_decisions  # local: encodings imports model
+            from flipfix.repair.model.encodings import validate_decisions  # local: encodings imports model
 
             validate_decisions(prob, field_prefix=p + "decisions")
         return prob

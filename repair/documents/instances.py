@@ -16,9 +16,9 @@ from pathlib import Path
 
 import numpy as np
 
-from .constraints import LinearConstraint
-from .errors import InputError
-from .model import Problem
+from flipfix.repair.model.constraints import LinearConstraint
+from flipfix.repair.errors import InputError
+from flipfix.repair.model.problem import Problem
 
 __all__ = ["read_bqp", "read_qkp", "read_gset", "Knapsack"]
 

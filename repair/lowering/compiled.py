@@ -19,13 +19,13 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from .constraints import (
+from flipfix.repair.model.constraints import (
     ExtraTerms, FixVariables, ForbidAssignment, HammingPenalty, LinearConstraint, _number,
     shape_table,
 )
-from .batching import row_slices
-from .errors import InputError
-from .model import Problem
+from flipfix.repair.kernels.batching import row_slices
+from flipfix.repair.errors import InputError
+from flipfix.repair.model.problem import Problem
 
 __all__ = ["CountSpec", "RowSpec", "Pieces", "Compiled", "compile_constraints", "lower",
            "FEAS_TOL"]
@@ -367,7 +367,7 @@ def compile_constraints(problem: Problem, constraints: Sequence[Any], *,
     used: set = set()
     pieces: list = []
     if problem.decisions:
-        from .encodings import encoding_pieces
+        from flipfix.repair.model.encodings import encoding_pieces
 
         pieces.extend(encoding_pieces(problem))
         used.update(p.name for p in pieces)

@@ -27,12 +27,12 @@ so a key is matched as follows:
 A problem that uses both the integer 3 and the string "3" cannot be written with
 object keys and is rejected (``problem.quadratic[k]``).
 
-Errors are :class:`repair.errors.InputError` naming the field as a dotted path,
+Errors are :class:`flipfix.repair.errors.InputError` naming the field as a dotted path,
 e.g. ``constraints[2].weight`` or ``candidates[0].assignment['x3']``.
 
 Extending: :data:`CONSTRAINT_PARSERS` maps a ``"type"`` to a parser
 ``parser(obj: dict, problem: Problem, field: str) -> constraint``. Integer-decision
-kinds come from :mod:`repair.encodings` (its ``CONSTRAINT_PARSERS`` are merged in
+kinds come from :mod:`flipfix.repair.model.encodings` (its ``CONSTRAINT_PARSERS`` are merged in
 when that module exists), and so does ``parse_decisions(obj, field)`` for a
 problem's ``"decisions"``.
 """
@@ -43,13 +43,13 @@ import math
 import re
 from typing import Any, Callable, Hashable, Mapping
 
-from .candidates import CandidateSet
-from .constraints import (
+from flipfix.repair.model.candidates import CandidateSet
+from flipfix.repair.model.constraints import (
     SENSES, SHAPES, ExtraTerms, FixVariables, ForbidAssignment, HammingPenalty,
     LinearConstraint,
 )
-from .errors import InputError
-from .model import VARTYPES, Problem
+from flipfix.repair.errors import InputError
+from flipfix.repair.model.problem import VARTYPES, Problem
 
 __all__ = [
     "parse_problem", "parse_candidates", "parse_candidate_records", "parse_constraints",
@@ -185,11 +185,8 @@ def parse_problem(obj: Any, *, field: str = "problem") -> Problem:
 
     decisions = ()
     if obj.get("decisions") not in (None, []):
-        try:
-            from . import encodings  # written by the encodings work; optional
-        except ImportError:
-            raise InputError(f + ".decisions",
-                             "integer decisions need repair.encodings, which is not available") from None
+        from flipfix.repair.model import encodings
+
         decisions = tuple(encodings.parse_decisions(obj["decisions"], f + ".decisions"))
     return Problem.from_terms(lin, quad, offset=offset, vartype=vartype, labels=labels,
                               decisions=decisions, field_prefix=f + ".")
@@ -358,10 +355,10 @@ CONSTRAINT_PARSERS: dict[str, Parser] = {
 
 
 def constraint_parsers() -> dict[str, Parser]:
-    """Every known parser: :data:`CONSTRAINT_PARSERS` plus those of :mod:`repair.encodings`."""
+    """Every known parser: :data:`CONSTRAINT_PARSERS` plus those of :mod:`flipfix.repair.model.encodings`."""
     parsers = dict(CONSTRAINT_PARSERS)
     try:
-        from . import encodings
+        from flipfix.repair.model import encodings
     except ImportError:
         return parsers
     for name, fn in getattr(encodings, "CONSTRAINT_PARSERS", {}).items():

@@ -1,7 +1,7 @@
 """Search plans: greedy only, CP-SAT per candidate, and the portfolio of both.
 
 A plan returns :class:`Attempt` records (one repaired assignment each, tied to the
-candidate it started from); :mod:`repair.api` scores them and builds the result.
+candidate it started from); :mod:`flipfix.repair.api` scores them and builds the result.
 
 Portfolio, within a budget of T seconds:
 
@@ -31,9 +31,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .compiled import Compiled
-from .errors import InputError
-from .greedy import objective_tol, greedy_repair
+from flipfix.repair.lowering.compiled import Compiled
+from flipfix.repair.errors import InputError
+from flipfix.repair.solvers.greedy import objective_tol, greedy_repair
 
 __all__ = ["Attempt", "PlanOutcome", "kick_masks", "run_plan"]
 
@@ -139,7 +139,7 @@ class _LazyCpsat:
 
     def ready(self, deadline: float) -> bool:
         if self.model is None:
-            from .cpsat import LateModel
+            from flipfix.repair.solvers.cpsat import LateModel
 
             if time.perf_counter() + build_cost(self.compiled) >= deadline:
                 self.stats["cpsat_skipped"] = "budget too short to build the CP-SAT model"
@@ -339,9 +339,9 @@ def _polish(compiled, X0, out, *, deadline, max_flips, flip_price, workers=1):
 
 def _fewest_flips(cp, compiled, X0, out, *, deadline, max_flips, flip_price, seed, workers,
                   cancel):
-    """CP-SAT: the fewest flips at the best cost (:meth:`repair.cpsat.LateModel.fewest_flips`).
+    """CP-SAT: the fewest flips at the best cost (:meth:`flipfix.repair.solvers.cpsat.LateModel.fewest_flips`).
 
-    The best answer is the one :func:`repair.api.repair` reports (feasible, then objective,
+    The best answer is the one :func:`flipfix.repair.api.repair` reports (feasible, then objective,
     then flips from its candidate); the step is centred on the candidate the report counts
     flips from (the nearest one, its own candidate on ties), hinted with the answer and
     bounded by its objective measured from that candidate. A result is kept (as an attempt
@@ -366,7 +366,7 @@ def _fewest_flips(cp, compiled, X0, out, *, deadline, max_flips, flip_price, see
     if not feas.any():
         stats["fewest_flips_status"] = "skipped: no feasible answer"
         return
-    b = int(np.lexsort((flips, obj, ~feas))[0])  # as repair.api._build picks the best
+    b = int(np.lexsort((flips, obj, ~feas))[0])  # as flipfix.repair.api._build picks the best
     dist = (X0 != A[b][None, :]).sum(axis=1)
     origin = int(ks[b])
     k = origin if dist[origin] == dist.min() else int(np.argmin(dist))

@@ -7,8 +7,8 @@ from typing import Any, Iterable, Mapping, Sequence
 
 import numpy as np
 
-from .errors import InputError
-from .model import Problem
+from flipfix.repair.errors import InputError
+from flipfix.repair.model.problem import Problem
 
 __all__ = ["CandidateSet"]
 

@@ -1,6 +1,6 @@
 """Integer decisions encoded in bits: validation, decoding, lowering, integer constraints.
 
-A :class:`repair.model.Decision` chooses one of k ``values``; its ``variables``
+A :class:`flipfix.repair.model.problem.Decision` chooses one of k ``values``; its ``variables``
 are bit labels of the problem. Two encodings:
 
 * ``one_hot``: k bits, bit m set means value m; valid iff exactly one bit is set.
@@ -14,7 +14,7 @@ is the row ``sum x == 1``, domain wall the chain ``x_{i+1} - x_i <= 0``.
 
 Integer-level late constraints (:class:`ForbidValues`, :class:`ForceValue`,
 :class:`AllowValues`, :class:`DecisionChangePenalty`) lower to
-:class:`repair.compiled.Pieces`, so the solvers need no change. Every count they
+:class:`flipfix.repair.lowering.compiled.Pieces`, so the solvers need no change. Every count they
 build stays in range for *every* bit string, valid or not.
 
 Candidates that break an encoding are accepted as repair input (a broken
@@ -35,10 +35,10 @@ from typing import Any, Hashable, Mapping, NamedTuple, Sequence
 
 import numpy as np
 
-from .compiled import CountSpec, Pieces, RowSpec, count_pieces
-from .constraints import SHAPES, _number, shape_table
-from .errors import InputError
-from .model import Decision, Problem, check_label
+from flipfix.repair.lowering.compiled import CountSpec, Pieces, RowSpec, count_pieces
+from flipfix.repair.model.constraints import SHAPES, _number, shape_table
+from flipfix.repair.errors import InputError
+from flipfix.repair.model.problem import Decision, Problem, check_label
 
 __all__ = [
     "ONE_HOT", "DOMAIN_WALL", "ENCODINGS", "DISTANCES",
@@ -263,7 +263,7 @@ class DecisionChangePenalty:
     ``reference`` maps decision names to values (only those decisions count).
     ``distance``: ``"changed"`` = number of decisions whose value differs;
     ``"absolute"`` = sum of ``|value - reference value|`` (integer values only).
-    ``shape`` as for :class:`repair.constraints.HammingPenalty`: linear,
+    ``shape`` as for :class:`flipfix.repair.model.constraints.HammingPenalty`: linear,
     quadratic, threshold (``threshold`` d0) or table (``table[d]``).
 
     Lowered as a count ``d = const + sum coef * AND(literals)`` that equals the

@@ -13,7 +13,7 @@ A :class:`ScenarioFamily` describes the random late constraints, alone or combin
 a longer run starts with the same scenarios); :func:`stress_test` repairs the
 library under each and reports per candidate how often it produced the best
 repair, its mean and worst repair cost and flips, and the correlation between
-its free-variable count (:mod:`repair.robustness`) and its mean repair cost.
+its free-variable count (:mod:`flipfix.repair.audit.robustness`) and its mean repair cost.
 """
 
 from __future__ import annotations
@@ -25,11 +25,11 @@ from typing import Any, Callable, Mapping, Sequence
 
 import numpy as np
 
-from .candidates import CandidateSet
-from .constraints import SHAPES, FixVariables, HammingPenalty, LinearConstraint
-from .errors import InputError
-from .model import SPIN, Problem
-from .robustness import robustness_profile
+from flipfix.repair.model.candidates import CandidateSet
+from flipfix.repair.model.constraints import SHAPES, FixVariables, HammingPenalty, LinearConstraint
+from flipfix.repair.errors import InputError
+from flipfix.repair.model.problem import SPIN, Problem
+from flipfix.repair.audit.robustness import robustness_profile
 
 __all__ = ["ScenarioFamily", "Scenario", "CandidateStress", "StressReport", "draw_scenarios",
            "stress_test", "summarise", "pearson", "spearman", "REFERENCES"]
@@ -43,7 +43,7 @@ class ScenarioFamily:
 
     hamming_weight: weight of the Hamming penalty (0 disables it), in energy
         units per flip (linear shape) or per shape unit.
-    hamming_shape, hamming_threshold: as in :class:`repair.constraints.HammingPenalty`.
+    hamming_shape, hamming_threshold: as in :class:`flipfix.repair.model.constraints.HammingPenalty`.
     hamming_fraction: share (0, 1] of the variables the reference covers.
     reference: "uniform" (random bits) or "perturbed" (a random library
         candidate with each bit flipped with probability ``perturb_rate``).
@@ -232,7 +232,7 @@ class CandidateStress:
     candidate's repair was feasible (``failures`` counts the others) and are
     NaN when there is none. ``free_variables`` counts free moves: free
     variables outside declared decisions plus free decisions
-    (:mod:`repair.robustness`); it is the robustness side of the correlation.
+    (:mod:`flipfix.repair.audit.robustness`); it is the robustness side of the correlation.
     """
 
     candidate_id: str
@@ -361,7 +361,7 @@ def stress_test(problem: Problem, candidates: CandidateSet,
     each scenario from the calling thread. ``epsilon`` is the free-variable
     threshold of the robustness profile.
     """
-    from .api import repair
+    from flipfix.repair.api import repair
 
     t0 = time.perf_counter()
     if not isinstance(candidates, CandidateSet):

@@ -1,0 +1,1 @@
+"""What a library is worth: robustness, stress scenarios, cost-flips fronts, curation."""

@@ -1,0 +1,1 @@
+"""Files: the JSON documents (problem, candidates, constraints) and the public benchmark formats."""

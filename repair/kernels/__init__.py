@@ -1,0 +1,1 @@
+"""Compiled numerical kernels shared by the solvers: energies, batching, tournament trees."""
