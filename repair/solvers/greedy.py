@@ -37,6 +37,7 @@ import numba as nb
 import numpy as np
 
 from flipfix.repair.lowering.compiled import FEAS_TOL, Compiled
+from flipfix.repair.kernels.bundles import late_arrays, objective_tol, unsigned
 from flipfix.repair.kernels.tournament import tree_clear, tree_drain, tree_set
 
 __all__ = ["GreedyOutput", "greedy_repair", "descend_qubo", "objective_tol", "warm_up"]
@@ -873,46 +874,10 @@ def _rekey_all(S, Cn, Rn, price, tol, fixed, gbase, glb, par, H, qualify):
 
 
 # ------------------------------------------------------------------ driver
-def _count_arrays(compiled: Compiled, n: int):
-    """Flatten the count penalties into the kernel's arrays."""
-    tables, consts, t_pen, t_coef, t_ar, l_ptr, l_var, l_val = [], [], [], [], [], [0], [], []
-    for p, spec in enumerate(compiled.counts):
-        tables.append(np.asarray(spec.table, dtype=np.float64))
-        consts.append(spec.const)
-        for coef, lits in spec.terms:
-            t_pen.append(p)
-            t_coef.append(coef)
-            t_ar.append(len(lits))
-            for i, b in lits:
-                l_var.append(i)
-                l_val.append(b)
-            l_ptr.append(len(l_var))
-    cp_ptr = np.zeros(len(tables) + 1, dtype=np.int64)
-    cp_ptr[1:] = np.cumsum([t.size for t in tables]) if tables else []
-    cp_table = np.concatenate(tables) if tables else np.zeros(0)
-    l_var_a = np.asarray(l_var, dtype=np.int64)
-    lit_term = np.repeat(np.arange(len(t_pen), dtype=np.int64), np.diff(np.asarray(l_ptr)))
-    order = np.argsort(l_var_a, kind="stable")
-    vt_ptr = np.zeros(n + 1, dtype=np.int64)
-    np.add.at(vt_ptr, l_var_a + 1, 1)
-    vt_ptr = np.cumsum(vt_ptr)
-    return (cp_ptr, cp_table, np.asarray(consts, dtype=np.int64),
-            np.asarray(t_pen, dtype=np.int64), np.asarray(t_coef, dtype=np.int64),
-            np.asarray(t_ar, dtype=np.int64), np.asarray(l_ptr, dtype=np.int64), l_var_a,
-            np.asarray(l_val, dtype=np.int8), vt_ptr, lit_term[order], order.astype(np.int64))
-
-
-def _row_arrays(compiled: Compiled, n: int):
-    """Rows as CSR and CSC plus a per-row tolerance."""
-    a_ptr, a_col, a_val = compiled.a_indptr, compiled.a_indices.astype(np.int64), compiled.a_data
-    rows = np.repeat(np.arange(a_ptr.size - 1, dtype=np.int64), np.diff(a_ptr))
-    order = np.argsort(a_col, kind="stable")
-    col_ptr = np.zeros(n + 1, dtype=np.int64)
-    np.add.at(col_ptr, a_col + 1, 1)
-    col_ptr = np.cumsum(col_ptr)
-    rtol = np.asarray([FEAS_TOL * (1.0 + np.abs(r.coef).sum()) for r in compiled.rows],
-                      dtype=np.float64)
-    return a_ptr, a_col, a_val, col_ptr, rows[order], a_val[order], rtol
+def _row_tuple(rows):
+    """The row arrays in the order the general kernel takes them (lo, hi passed apart)."""
+    return (rows.a_ptr, rows.a_col, rows.a_val, rows.col_ptr, rows.col_row, rows.col_val,
+            rows.rtol)
 
 
 #: A row or count penalty over more than this many variables is "wide": its share of a
@@ -1056,17 +1021,11 @@ def _general_arrays(compiled: Compiled):
     """Every array the general kernel needs, built once per compiled problem."""
     cached = getattr(compiled, "_greedy_arrays", None)
     if cached is None:
-        cnt = _count_arrays(compiled, compiled.n)
-        rows = _row_arrays(compiled, compiled.n)
+        late = late_arrays(compiled)
+        cnt, rows = late.counts, _row_tuple(late.rows)
         cached = (cnt, rows, _group_layout(compiled, cnt, rows))
         compiled._greedy_arrays = cached
     return cached
-
-
-def objective_tol(compiled: Compiled) -> float:
-    """Smallest objective change counted as an improvement (1e-9 of the largest coefficient)."""
-    scale = max(np.abs(compiled.h).max(initial=0.0), np.abs(compiled.data).max(initial=0.0), 1.0)
-    return 1e-9 * scale
 
 
 @nb.njit(cache=True, nogil=True)
@@ -1092,12 +1051,6 @@ def consensus(X: np.ndarray, fixed: np.ndarray) -> np.ndarray:
     return a
 
 
-def _unsigned(indices) -> np.ndarray:
-    """CSR column indices as a uint32 view of their int32 values (no copy): numba then
-    indexes without its negative-index wraparound, ~10 % of the start-up scatter."""
-    return np.ascontiguousarray(indices, dtype=np.int32).view(np.uint32)
-
-
 def descend_qubo(h, indptr, indices, data, X0, *, fixed=None, flip_price: float = 0.0,
                  tol: float = 1e-9, max_steps: int | None = None):
     """Steepest single-flip descent on a QUBO (CSR couplings) from every row of X0 (int8 (K, n)).
@@ -1111,7 +1064,7 @@ def descend_qubo(h, indptr, indices, data, X0, *, fixed=None, flip_price: float 
     origin = np.ascontiguousarray(X0, dtype=np.int8)  # read only: no copy when already so
     h = np.asarray(h, np.float64)
     indptr = np.asarray(indptr, np.int64)
-    cols = _unsigned(indices)
+    cols = unsigned(indices)
     data = np.asarray(data, np.float64)
     anchor = consensus(X, fixed)
     _descend_tree(X, origin, h, indptr, cols, data, fixed, float(flip_price), float(tol),
@@ -1186,7 +1139,7 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
         leaves = 1 << np.ceil(np.log2(np.maximum(lay["members"], 1))).astype(np.int64)
         tn = np.repeat(leaves, par) if use_groups else np.zeros(0, dtype=np.int64)
     anchor = consensus(X0, compiled.fixed)
-    cols = _unsigned(compiled.indices)
+    cols = unsigned(compiled.indices)
     refs = _start_refs(anchor, compiled.h, compiled.indptr, cols, compiled.data)
     if not fast:
         amax = _largest_positive(rows[0], np.abs(rows[2]))
