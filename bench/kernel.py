@@ -19,7 +19,7 @@ from flipfix.repair.lowering.compiled import compile_constraints
 from flipfix.repair.model.constraints import HammingPenalty, LinearConstraint
 from flipfix.repair.solvers.greedy import descend_qubo, greedy_repair
 
-from flipfix.bench.common import random_sparse, table
+from bench.common import random_sparse, table
 
 __all__ = ["run", "render"]
 

@@ -14,7 +14,7 @@ import subprocess
 import sys
 import time
 
-from flipfix.bench.common import table
+from bench.common import table
 
 __all__ = ["run", "render"]
 
@@ -46,7 +46,7 @@ def _child(K: int, n: int, T: float, seed: int) -> None:
     from flipfix.repair.model.constraints import FixVariables
     from flipfix.repair.solvers.greedy import descend_qubo
 
-    from flipfix.bench.common import random_sparse
+    from bench.common import random_sparse
 
     from flipfix.repair.solvers.cpsat import solve_cpsat  # noqa: F401  (imports counted in the baseline)
     stages = [{"stage": "imports", "rss": rss(), "maxrss": maxrss(), "traced": 0.0,

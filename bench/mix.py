@@ -21,7 +21,7 @@ import numpy as np
 from flipfix.repair import CandidateSet, repair
 from flipfix.repair.solvers.portfolio import Mix
 
-from flipfix.bench.common import build_library, load_instance, scenarios, table
+from bench.common import build_library, load_instance, scenarios, table
 
 __all__ = ["run", "render", "MIXES"]
 

@@ -36,7 +36,7 @@ from flipfix.repair import CandidateSet, repair
 from flipfix.repair.lowering.compiled import compile_constraints
 from flipfix.repair.solvers.cpsat import solve_cpsat
 
-from flipfix.bench.common import build_library, hamming, load_instance, scenarios, table
+from bench.common import build_library, hamming, load_instance, scenarios, table
 
 __all__ = ["run", "CONFIG"]
 

@@ -11,8 +11,8 @@ import json
 import sys
 from pathlib import Path
 
-from flipfix.bench import SECTIONS_ORDER
-from flipfix.bench.common import RESULTS_DIR
+from bench import SECTIONS_ORDER
+from bench.common import RESULTS_DIR
 
 __all__ = ["render_markdown", "main"]
 
@@ -33,7 +33,7 @@ def merge(docs: list) -> dict:
 
 
 def render_markdown(doc: dict, *, notes: str = "") -> str:
-    from flipfix.bench import run as runner
+    from bench import run as runner
 
     m = doc["machine"]
     runs = doc.get("runs") or [{"command": doc["command"], "started": doc["started"],

@@ -11,8 +11,8 @@ import argparse
 import sys
 import time
 
-from flipfix.bench import kernel, memory, mix, repair_vs_resolve, service_overhead
-from flipfix.bench.common import machine, write_results
+from bench import kernel, memory, mix, repair_vs_resolve, service_overhead
+from bench.common import machine, write_results
 
 __all__ = ["main", "SECTIONS"]
 

@@ -22,7 +22,7 @@ import numpy as np
 from flipfix.repair import CandidateSet, repair
 from flipfix.repair.model.constraints import FixVariables
 
-from flipfix.bench.common import build_library, load_instance, table
+from bench.common import build_library, load_instance, table
 
 __all__ = ["run", "render", "available"]
 
