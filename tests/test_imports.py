@@ -127,3 +127,16 @@ def test_the_core_never_imports_grpc_or_protobuf():
             "       or m.startswith('google.protobuf')]\n"
             "assert not bad, bad\n")
     subprocess.run([sys.executable, "-c", code], check=True, cwd=ROOT / "tests")
+
+
+def test_every_package_folder_is_installed():
+    """pyproject.toml lists every package folder of repair/ and service/ (else a non-editable
+    install leaves it out)."""
+    import tomllib
+
+    listed = set(tomllib.loads((ROOT / "pyproject.toml").read_text())["tool"]["setuptools"]["packages"])
+    found = set()
+    for top, name in (("repair", "flipfix.repair"), ("service", "flipfix.service")):
+        for init in (ROOT / top).rglob("__init__.py"):
+            found.add(".".join([name, *init.parent.relative_to(ROOT / top).parts]))
+    assert found == listed
