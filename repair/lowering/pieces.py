@@ -64,9 +64,9 @@ class Pieces:
 
 
 def label_bits(problem: Problem, mapping, field_name: str) -> tuple[np.ndarray, np.ndarray]:
-    """A ``{label: caller value}`` mapping -> (positions int64 (p,), bits int8 (p,)).
+    """A non-empty ``{label: caller value}`` mapping -> (positions int64 (p,), bits int8 (p,)).
 
-    Errors name ``field_name[label]``.
+    Errors name ``field_name`` or ``field_name[label]``.
     """
     if not hasattr(mapping, "items"):
         raise InputError(field_name, "must map variable labels to values")
@@ -75,6 +75,8 @@ def label_bits(problem: Problem, mapping, field_name: str) -> tuple[np.ndarray, 
         f = f"{field_name}[{lab!r}]"
         idx.append(problem.lookup(lab, f))
         bits.append(problem.value_to_bit(val, f))
+    if not idx:
+        raise InputError(field_name, "is empty")
     return np.asarray(idx, dtype=np.int64), np.asarray(bits, dtype=np.int8)
 
 

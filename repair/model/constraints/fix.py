@@ -11,7 +11,7 @@ from flipfix.repair.lowering.pieces import Pieces, label_bits
 from flipfix.repair.model.constraints.kind import ConstraintKind
 from flipfix.repair.model.problem import Problem
 
-__all__ = ["FixVariables", "KIND", "read_assignment"]
+__all__ = ["FixVariables", "KIND", "read_assignment", "assignment_json", "assignment_form"]
 
 
 @dataclass(frozen=True)
@@ -31,18 +31,28 @@ def read_assignment(obj: Mapping, problem: Problem, field: str, key: str) -> dic
     return out
 
 
-def read_json(obj: Mapping, problem: Problem, field: str) -> dict:
-    return {"values": read_assignment(obj, problem, field, "values")}
+def assignment_json(mapping: Mapping) -> dict:
+    """``{label: value}`` -> a JSON object (keys written as strings, read back by the label rule)."""
+    return {str(lab): int(v) for lab, v in mapping.items()}
 
 
-def write_json(c: FixVariables) -> dict:
-    return {"values": {str(lab): int(v) for lab, v in c.values.items()}}
+def assignment_form(key: str) -> tuple:
+    """``(read_json, write_json)`` of a kind whose one field ``key`` is an assignment."""
+
+    def read_json(obj: Mapping, problem: Problem, field: str) -> dict:
+        return {key: read_assignment(obj, problem, field, key)}
+
+    def write_json(c) -> dict:
+        return {key: assignment_json(getattr(c, key))}
+
+    return read_json, write_json
+
+
+read_json, write_json = assignment_form("values")
 
 
 def lower(problem: Problem, c: FixVariables, name: str, field: str) -> Pieces:
     idx, bits = label_bits(problem, c.values, field + ".values")
-    if idx.size == 0:
-        raise InputError(field + ".values", "is empty")
     return Pieces(name, fixed=list(zip(idx.tolist(), bits.tolist())), hard=True)
 
 

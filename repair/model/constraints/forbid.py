@@ -7,9 +7,8 @@ from typing import Hashable, Mapping
 
 import numpy as np
 
-from flipfix.repair.errors import InputError
 from flipfix.repair.lowering.pieces import Pieces, RowSpec, label_bits
-from flipfix.repair.model.constraints.fix import read_assignment
+from flipfix.repair.model.constraints.fix import assignment_form
 from flipfix.repair.model.constraints.kind import ConstraintKind
 from flipfix.repair.model.problem import Problem
 
@@ -24,18 +23,11 @@ class ForbidAssignment:
     name: str = "forbid"
 
 
-def read_json(obj: Mapping, problem: Problem, field: str) -> dict:
-    return {"assignment": read_assignment(obj, problem, field, "assignment")}
-
-
-def write_json(c: ForbidAssignment) -> dict:
-    return {"assignment": {str(lab): int(v) for lab, v in c.assignment.items()}}
+read_json, write_json = assignment_form("assignment")
 
 
 def lower(problem: Problem, c: ForbidAssignment, name: str, field: str) -> Pieces:
     idx, bits = label_bits(problem, c.assignment, field + ".assignment")
-    if idx.size == 0:
-        raise InputError(field + ".assignment", "is empty")
     # matches = sum_{b=1} x_i + sum_{b=0} (1 - x_i) <= |P| - 1
     coef = np.where(bits == 1, 1.0, -1.0)
     hi = float(idx.size - 1) - float((bits == 0).sum())

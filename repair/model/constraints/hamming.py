@@ -10,6 +10,7 @@ import numpy as np
 from flipfix.repair.documents.fields import as_list, number, require, resolve_label, resolve_mapping
 from flipfix.repair.errors import InputError
 from flipfix.repair.lowering.pieces import CountSpec, Pieces, count_pieces, label_bits
+from flipfix.repair.model.constraints.fix import assignment_json
 from flipfix.repair.model.constraints.kind import ConstraintKind
 from flipfix.repair.model.constraints.shapes import check_penalty, shape_table
 from flipfix.repair.model.problem import Problem
@@ -58,7 +59,7 @@ def read_json(obj: Mapping, problem: Problem, field: str) -> dict:
 
 
 def write_json(c: HammingPenalty) -> dict:
-    out = {"reference": {str(lab): int(v) for lab, v in c.reference.items()},
+    out = {"reference": assignment_json(c.reference),
            "weight": float(c.weight), "shape": c.shape, "threshold": float(c.threshold)}
     if c.table is not None:
         out["table"] = [float(v) for v in c.table]
@@ -69,8 +70,6 @@ def write_json(c: HammingPenalty) -> dict:
 
 def lower(problem: Problem, c: HammingPenalty, name: str, field: str) -> Pieces:
     idx, ref = label_bits(problem, c.reference, field + ".reference")
-    if idx.size == 0:
-        raise InputError(field + ".reference", "is empty")
     if c.variables is not None:
         chosen = [problem.lookup(lab, f"{field}.variables[{k}]") for k, lab in enumerate(c.variables)]
         pos = {int(i): int(b) for i, b in zip(idx, ref)}
