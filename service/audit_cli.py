@@ -94,7 +94,8 @@ def audit(problem, candidates, family, *, scenarios: int, seed: int, method: str
           progress=None) -> dict:
     """Run the four parts of the audit and return their plain-data reports."""
     from flipfix.repair.audit.curation import curate
-    from flipfix.repair.audit.pareto import cheapest_within, cost_flip_front, fewest_flips_within
+    from flipfix.repair.audit.front import cost_flip_front
+    from flipfix.repair.audit.pareto import cheapest_within, fewest_flips_within
     from flipfix.repair.audit.robustness import robustness_profile
     from flipfix.repair.audit.stress import draw_scenarios, stress_test
 

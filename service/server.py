@@ -42,6 +42,7 @@ from flipfix.service import convert
 from flipfix.service.errors import ConflictError, NotFoundError, TransientError, translate_errors
 from flipfix.service.generated import flipfix_pb2 as pb
 from flipfix.service.generated import flipfix_pb2_grpc as pb_grpc
+from flipfix.service.limits import Limits
 from flipfix.service.store import Store
 from flipfix.service.worker import RepairPool
 
@@ -70,10 +71,9 @@ class ServerConfig:
     warm: bool = True
 
     @property
-    def limits(self) -> convert.Limits:
-        return convert.Limits(max_variables=self.max_variables,
-                              max_candidates=self.max_candidates,
-                              max_constraints=self.max_constraints)
+    def limits(self) -> Limits:
+        return Limits(max_variables=self.max_variables, max_candidates=self.max_candidates,
+                      max_constraints=self.max_constraints)
 
 
 def deadline_budget(requested: float, remaining: float | None) -> float:
@@ -103,14 +103,18 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
                               num_candidates=rec.num_candidates, created_at=rec.created_at,
                               updated_at=rec.updated_at)
 
+    def _problem(self, model: pb.ProblemModel, field: str):
+        self.limits.model(model, field)
+        return convert.model_to_problem(model, field=field)
+
     @translate_errors
     def CreateProblem(self, request, context):
-        problem = convert.model_to_problem(request.model, limits=self.limits)
+        problem = self._problem(request.model, "model")
         return self._info(self.store.create_problem(request.name, problem))
 
     @translate_errors
     def ReplaceProblem(self, request, context):
-        problem = convert.model_to_problem(request.model, limits=self.limits)
+        problem = self._problem(request.model, "model")
         return self._info(self.store.replace_problem(
             request.name, problem, expected_revision=request.expected_revision))
 
@@ -137,7 +141,8 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         if request.revision and request.revision != rev:
             raise ConflictError("revision", f"problem {request.problem!r} is at revision {rev}, "
                                             f"not {request.revision}")
-        ids, X, provs = convert.batch_to_arrays(problem, request.candidates, limits=self.limits)
+        self.limits.candidates(request.candidates, "candidates")
+        ids, X, provs = convert.batch_to_arrays(problem, request.candidates)
         out = self.store.add_candidates(request.problem, rev, ids, X, provs)
         return pb.AddCandidatesReply(ids=out, revision=rev)
 
@@ -163,31 +168,37 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
                 all_revisions=request.all_revisions, max_candidates=self.config.max_candidates)
             return rev, problem, cands
         if which == "inline":
-            problem = convert.model_to_problem(request.inline.model, field="inline.model",
-                                               limits=self.limits)
+            problem = self._problem(request.inline.model, "inline.model")
+            self.limits.candidates(request.inline.candidates, "inline.candidates")
             ids, X, _ = convert.batch_to_arrays(problem, request.inline.candidates,
-                                                field="inline.candidates", limits=self.limits)
+                                                field="inline.candidates")
             ids = [cid or f"c{k}" for k, cid in enumerate(ids)]
             return 0, problem, CandidateSet(CandidateSet._check_ids(ids, len(ids),
                                                                     "inline.candidates.ids"), X)
-        from flipfix.repair.errors import InputError
         raise InputError("library", "set problem (a stored problem) or inline")
 
     def _start(self, request, context):
-        """Validate, pick the budget, submit; returns (job, budget, audit_limit, revision)."""
+        """Validate, pick the budget, submit; returns (job, budget, audit_limit, revision).
+
+        The constraints are read, checked and lowered once, here; the worker gets the
+        result (``compiled``, picklable) and does not compile again.
+        """
         rev, problem, cands = self._library(request)
-        constraints = convert.constraints_to_domain(request.constraints, problem,
-                                                    limits=self.limits)
+        compiled = self._compiled(request.constraints, problem)
         kwargs = convert.options_to_kwargs(request.options,
                                            default_time_limit=self.config.default_time_limit)
         budget = deadline_budget(min(kwargs["time_limit"], self.config.max_time_limit),
                                  context.time_remaining())
         kwargs["time_limit"] = budget
-        job = self.pool.submit(problem, cands, constraints, kwargs)
+        job = self.pool.submit(problem, cands, (), {**kwargs, "compiled": compiled})
         context.add_callback(job.cancel)  # runs when the call ends: cancelled, timed out or done
         audit_limit = (request.options.audit_limit if request.options.HasField("audit_limit")
                        else None)
         return job, budget, audit_limit, rev
+
+    def _compiled(self, constraints, problem):
+        self.limits.constraints(constraints, "constraints")
+        return convert.constraints_to_compiled(constraints, problem)
 
     def _wait(self, job, context, budget: float, tick=None):
         """Wait for the job and return its result.
@@ -314,7 +325,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
     def ProfileRobustness(self, request, context):
         rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
                                                   request.all_revisions)
-        eps = convert._nonneg(request.epsilon, "epsilon")
+        eps = convert.nonneg(request.epsilon, "epsilon")
         job = self._submit_call(audit_jobs.robustness, (problem, cands),
                                 {"epsilon": eps, "spectrum": bool(request.spectrum)}, context)
         rep = self._wait(job, context, math.inf)  # vectorised, not interruptible
@@ -353,13 +364,12 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
 
         rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
                                                   request.all_revisions)
-        constraints = convert.constraints_to_domain(request.constraints, problem,
-                                                    limits=self.limits)
+        compiled = self._compiled(request.constraints, problem)
         kwargs = convert.pareto_to_kwargs(request,
                                           default_time_limit=self.config.default_time_limit)
         kwargs["time_limit"] = budget = self._budget(kwargs["time_limit"], context)
         t0 = time.perf_counter()
-        job = self._submit_call(audit_jobs.pareto, (problem, cands, constraints), kwargs, context)
+        job = self._submit_call(audit_jobs.pareto, (problem, cands, compiled), kwargs, context)
         front = self._wait(job, context, budget)
         cheapest = fewest = None
         if request.HasField("cheapest_within_flips"):
@@ -377,9 +387,9 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         K = len(cands.ids)
         if not 1 <= request.m <= K:
             raise InputError("m", f"must be in [1, {K}] (the audited library), got {request.m}")
-        if request.selection not in convert._SELECTION_NAMES:
+        if request.selection not in convert.SELECTION_NAMES:
             raise InputError("selection", f"unknown selection {request.selection}")
-        selection = convert._SELECTION_NAMES[request.selection]
+        selection = convert.SELECTION_NAMES[request.selection]
         # checked here, before the stress test runs (curate's default max_subsets)
         if selection == "exhaustive" and math.comb(K, request.m) > 200_000:
             raise InputError("selection", f"EXHAUSTIVE over C({K}, {request.m}) subsets is too "

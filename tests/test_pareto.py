@@ -9,8 +9,9 @@ from hypothesis import strategies as st
 
 from flipfix.repair import CandidateSet, InputError, Problem
 from flipfix.repair.model.constraints import FixVariables, HammingPenalty
+from flipfix.repair.audit.front import cost_flip_front
 from flipfix.repair.audit.pareto import (
-    cheapest_within, cost_flip_front, fewest_flips_within, pareto_front, result_points,
+    cheapest_within, fewest_flips_within, pareto_front, result_points,
 )
 from flipfix.repair.result import AuditRow, ParetoPoint
 

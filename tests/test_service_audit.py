@@ -2,7 +2,7 @@
 
 References: the stress, Pareto and curation figures are compared with the same core
 functions called in-process with the same seed (flipfix.repair.audit.stress.stress_test,
-flipfix.repair.audit.pareto.cost_flip_front, flipfix.repair.audit.curation.curate); free-variable counts and
+flipfix.repair.audit.front.cost_flip_front, flipfix.repair.audit.curation.curate); free-variable counts and
 single-flip spectra with brute-force enumeration of every single flip through
 dimod's BinaryQuadraticModel.energies; Pareto fronts with an exhaustive pairwise
 dominance check; long runs use OR-Library bqp100-1 (../shared/benchmarks/bqp,
@@ -24,7 +24,7 @@ from flipfix.repair.documents import forms as documents
 from flipfix.repair import CandidateSet, Problem
 from flipfix.repair.audit.curation import curate
 from flipfix.repair.documents.instances import read_bqp
-from flipfix.repair.audit.pareto import cost_flip_front
+from flipfix.repair.audit.front import cost_flip_front
 from flipfix.repair.audit.stress import ScenarioFamily, stress_test
 from flipfix.service import convert
 from flipfix.service.client import FlipfixClient

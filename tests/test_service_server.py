@@ -140,6 +140,36 @@ def test_invalid_argument_names_the_field(stub, small):
     assert e.code() == grpc.StatusCode.INVALID_ARGUMENT and "constraints[0].fix.values" in e.details()
 
 
+def test_constraints_are_read_and_compiled_once_on_the_server(server, stub, small, monkeypatch):
+    """The servicer compiles a request's constraints once and hands the result to the worker
+    (which then does not compile: flipfix.repair.repair skips compiling when given ``compiled``)."""
+    from flipfix.repair.lowering.compiled import Compiled
+    from flipfix.service.convert import constraints as proto_constraints
+
+    compiles, submitted = [], []
+    real_compile, real_submit = proto_constraints.compile_constraints, server.pool.submit
+
+    def counting_compile(*args, **kwargs):
+        compiles.append(args)
+        return real_compile(*args, **kwargs)
+
+    def recording_submit(problem, candidates, constraints, kwargs):
+        submitted.append((constraints, kwargs))
+        return real_submit(problem, candidates, constraints, kwargs)
+
+    monkeypatch.setattr(proto_constraints, "compile_constraints", counting_compile)
+    monkeypatch.setattr(server.pool, "submit", recording_submit)
+    cons = convert.docs_to_constraints([{"type": "fix", "values": {"a": 0}},
+                                        {"type": "forbid", "assignment": {"b": 1, "c": 1}}], small)
+    r = stub.Repair(pb.RepairRequest(problem="small", constraints=cons,
+                                     options=pb.RepairOptions(time_limit=1.0, method=pb.GREEDY)))
+    assert r.best.feasible and "fix" in {v.name for v in r.best.violations}
+    assert len(compiles) == 1 and len(submitted) == 1
+    constraints, kwargs = submitted[0]
+    assert constraints == () and isinstance(kwargs["compiled"], Compiled)
+    assert [p.name for p in kwargs["compiled"].pieces] == ["fix", "forbid"]
+
+
 def test_not_found(stub, small):
     assert _code(lambda: stub.Repair(pb.RepairRequest(problem="nope"))).code() == \
         grpc.StatusCode.NOT_FOUND

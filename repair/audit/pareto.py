@@ -6,7 +6,8 @@ listed by increasing flips (hence decreasing cost). Comparisons are exact (no
 tolerance): a repair that is 1e-12 cheaper with more flips is a real trade-off.
 
 Helpers answer a planner's two questions: "the cheapest repair within F flips"
-and "the fewest flips within p % of the best cost".
+and "the fewest flips within p % of the best cost". The front of a whole library
+under late constraints is :func:`flipfix.repair.audit.front.cost_flip_front`.
 """
 
 from __future__ import annotations
@@ -18,7 +19,7 @@ from flipfix.repair.errors import InputError
 from flipfix.repair.result import ParetoPoint
 
 __all__ = ["pareto_front", "as_points", "cheapest_within", "fewest_flips_within",
-           "result_points", "cost_flip_front"]
+           "result_points"]
 
 
 def _point(item: Any, pos: int) -> ParetoPoint | None:
@@ -134,24 +135,3 @@ def result_points(result: Any, *, include_unchanged: bool = True) -> list[Pareto
         pts += [ParetoPoint(float(r.cost_before), 0, r.candidate_id, "unchanged")
                 for r in result.audit if r.feasible_before]
     return pts
-
-
-def cost_flip_front(problem, candidates, constraints, *, methods: Sequence[str] = ("greedy", "cpsat"),
-                    time_limit: float = 5.0, seed: int = 0, cancel=None, progress=None,
-                    include_unchanged: bool = True, **options) -> list[ParetoPoint]:
-    """Repair the library once per method and return the front over every candidate and
-    method. ``time_limit`` (seconds) is shared evenly by the methods; extra keyword
-    options go to :func:`flipfix.repair.repair`."""
-    from flipfix.repair.api import repair
-
-    if not methods:
-        raise InputError("methods", "must name at least one method")
-    pts: list[ParetoPoint] = []
-    for m, method in enumerate(methods):
-        if cancel is not None and cancel.is_set():
-            break
-        res = repair(problem, candidates, constraints, method=method,
-                     time_limit=time_limit / len(methods), seed=seed, cancel=cancel,
-                     progress=progress, **options)
-        pts += result_points(res, include_unchanged=include_unchanged and m == 0)
-    return pareto_front(pts)

@@ -28,7 +28,8 @@ import numpy as np
 from flipfix.repair.model.candidates import CandidateSet
 from flipfix.repair.model.constraints import SHAPES, FixVariables, HammingPenalty, LinearConstraint
 from flipfix.repair.errors import InputError
-from flipfix.repair.model.problem import SPIN, Problem
+from flipfix.repair.model.problem import Problem
+from flipfix.repair.model.vartypes import BINARY, change_vartype
 from flipfix.repair.audit.robustness import robustness_profile
 
 __all__ = ["ScenarioFamily", "Scenario", "CandidateStress", "StressReport", "draw_scenarios",
@@ -138,13 +139,11 @@ def draw_scenarios(problem: Problem, candidates: CandidateSet, family: ScenarioF
                 a[problem.index[lab]] = float(w)
         rhs = (1.0 - family.capacity_cut_percent / 100.0) * float((X.astype(np.float64) @ a).max())
         cols = np.flatnonzero(a)
-        if problem.vartype == SPIN:  # sum a x = sum (a/2) s + sum a / 2, exactly
-            terms = {labels[i]: a[i] / 2.0 for i in cols}
-            cap_rhs = rhs - float(a[cols].sum()) / 2.0
-        else:
-            terms = {labels[i]: a[i] for i in cols}
-            cap_rhs = rhs
-        cap_row = (terms, cap_rhs, rhs)
+        none = np.zeros(0)  # sum a x in the caller's vartype (SPIN: sum (a/2) s + sum a / 2)
+        idx, coef, _, offset = change_vartype(cols, a[cols], none, none, none, 0.0,
+                                              source=BINARY, target=problem.vartype)
+        terms = {labels[i]: c for i, c in zip(idx.tolist(), coef.tolist())}
+        cap_row = (terms, rhs - offset, rhs)
     out = []
     for i, child in enumerate(np.random.SeedSequence(int(seed)).spawn(int(count))):
         s_seed = int(child.generate_state(1, dtype=np.uint32)[0]) >> 1  # < 2**31
