@@ -6,8 +6,8 @@ core, and converts back; errors become status codes in :mod:`flipfix.service.err
 * Repairs run in a process pool (:mod:`flipfix.service.worker`) so CPU work never holds
   the gRPC threads; a full queue is RESOURCE_EXHAUSTED.
 * Deadline: the solver budget is ``min(requested, remaining - margin)``, the margin a
-  fifth of the time left plus 20 ms (:func:`deadline_budget`), so a short deadline still
-  gets the best found so far.
+  fifth of the time left plus 20 ms, at most 3 s (:func:`deadline_budget`), so a short
+  deadline still gets the best found so far.
 * Cancellation: ``context.add_callback`` cancels the job; the worker sets the
   :class:`flipfix.repair.cancel.CancelToken` the core watches (CP-SAT stops at once).
 * Waits are events: the RPC blocks on the job's queue (worker start, progress, end)
@@ -87,8 +87,6 @@ MARGIN_MAX = 3.0  # s
 MIN_BUDGET = 0.01  # s
 #: The server stops a job still running this share of the margin before the deadline.
 STOP_SHARE = 0.5
-
-
 #: gRPC reports a call without a deadline as one in the far future: beyond this many
 #: seconds a call counts as having none.
 NO_DEADLINE = 1e6

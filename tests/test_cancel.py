@@ -160,6 +160,28 @@ def test_an_early_cancel_is_not_lost_before_cpsat_sets_its_search_up(hard):
     assert out[0].status in ("unknown", "feasible")
 
 
+def test_a_cancel_between_cpsat_making_its_search_and_running_it_stops_it(hard):
+    # CpSolver.solve makes its search (SolveWrapper), copies the parameters into it, then
+    # runs it; a cancel after the copy can only reach it through stop_search
+    _p, compiled, x0 = hard
+    token = CancelToken()
+    original = cp_model.cmh.SolveWrapper
+
+    class SetAfterTheCopy(original):
+        def set_parameters(self, params):
+            super().set_parameters(params)
+            token.set()
+
+    cp_model.cmh.SolveWrapper = SetAfterTheCopy
+    try:
+        t, out = _solve_in_thread(LateModel(compiled), x0, token)
+        t.join(WAIT)
+    finally:
+        cp_model.cmh.SolveWrapper = original
+    assert not t.is_alive(), "a cancel set before the search ran was lost"
+    assert out[0].status in ("unknown", "feasible")
+
+
 def test_cpsat_set_before_the_call_returns_at_once(hard):
     _p, compiled, x0 = hard
     token = CancelToken()

@@ -317,11 +317,8 @@ class LateModel:
         """Solve ``m`` within what is left of ``time_limit`` since ``t0``; stop on ``cancel``.
 
         ``cancel`` (None, a ``threading.Event`` or a :class:`CancelToken`) stops the search
-        at once through the solver's ``stop_search``, registered while the search runs.
-        CP-SAT ignores a ``stop_search`` that comes before ``solve`` has set its search up,
-        so every line of the search log (sent to a callback, never printed; the first comes
-        as the search starts) checks the token too: a cancel set at any moment before or
-        during the search stops it.
+        at once: the token calls :func:`_stopper` of the solver while the search runs, so
+        a cancel set at any moment before or during the search stops it.
 
         Returns (solver, status name, the bits int8 (n,) of the solution found or None)."""
         token = as_token(cancel)
@@ -330,15 +327,8 @@ class LateModel:
         solver.parameters.max_time_in_seconds = limit
         solver.parameters.num_workers = max(1, int(workers))
         solver.parameters.random_seed = int(seed)
-        solver.parameters.log_search_progress = True
-        solver.parameters.log_to_stdout = False
-
-        def on_log(_line: str) -> None:
-            if token.is_set():
-                solver.stop_search()
-
-        solver.log_callback = on_log
-        with token.subscribed(solver.stop_search, timeout=limit + 1.0):
+        solver.parameters.log_search_progress = False
+        with token.subscribed(_stopper(solver), timeout=limit + 1.0):
             code = solver.solve(m)
         xs = None
         if code in (cp_model.OPTIMAL, cp_model.FEASIBLE):
@@ -470,6 +460,20 @@ def _decision_terms(compiled, h, pi, pj, pv):
         G = pair_cost.setdefault((int(da), int(db)), np.zeros((codes[da].shape[0], codes[db].shape[0])))
         G += w * np.outer(ca, cb)
     return h, pi[keep], pj[keep], pv[keep], _Decisions(problem, codes, bits, unary, pair_cost)
+
+
+def _stopper(solver: cp_model.CpSolver):
+    """A callback that stops ``solver``'s search, whenever it comes.
+
+    ``solve`` makes the search, then copies ``solver.parameters`` into it, then runs it;
+    ``stop_search`` only reaches a search that exists. So the callback first sets the time
+    limit to 0 (a search not yet made starts stopped), then calls ``stop_search`` (a search
+    made stops now, and stays stopped if it has not started running).
+    """
+    def stop() -> None:
+        solver.parameters.max_time_in_seconds = 0.0
+        solver.stop_search()
+    return stop
 
 
 def solve_cpsat(
