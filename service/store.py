@@ -3,10 +3,10 @@
 * WAL journal, ``synchronous=FULL``: a write is on disk before it is acknowledged.
 * Every public write is one transaction (``BEGIN IMMEDIATE`` ... ``COMMIT``) on the one
   write connection: a request that fails validation half-way stores nothing.
-* Every public read is one read-only transaction (``BEGIN`` ... ``COMMIT``: one snapshot,
-  no write lock) on a connection of its own from a small pool (``query_only``), so reads
-  run beside each other and beside a write, as WAL allows (an in-memory database is one
-  connection: there reads share the write connection).
+* Every public read is one read-only transaction (``BEGIN`` ... ``ROLLBACK``: one
+  snapshot, no write lock) on a ``query_only`` connection of its own from a small pool,
+  so reads run beside each other and beside a write, as WAL allows (an in-memory
+  database is one connection: there reads share the write connection).
 * ``schema_version`` holds the schema number; opening a newer database fails,
   an older one is migrated in one transaction (see :data:`SCHEMA_HISTORY`).
 
@@ -255,7 +255,8 @@ class Store:
             try:
                 yield db
             finally:
-                db.execute("COMMIT")
+                if db.in_transaction:  # nothing was written: ending the snapshot is all
+                    db.execute("ROLLBACK")
         finally:
             self._idle_readers.put(db)
 

@@ -7,6 +7,9 @@ module-level functions of this file, run in the worker process.
 
 from __future__ import annotations
 
+import os
+from concurrent.futures.process import BrokenProcessPool
+
 import pytest
 
 from flipfix.service.worker import RepairPool
@@ -17,6 +20,12 @@ WAIT = 120.0  # bound on waits for an event that must come (never reached when i
 def saw_cancel(*, cancel, progress, within: float) -> bool:
     """True when the job's cancel token is set within ``within`` seconds."""
     return cancel.wait(within)
+
+
+def die(*, cancel, progress) -> None:
+    """The worker process exits in the middle of the job (as if killed)."""
+    progress({"done": 0, "total": 1, "phase": "greedy"})
+    os._exit(3)
 
 
 def report_then_wait(*, cancel, progress, steps: int) -> int:
@@ -91,3 +100,17 @@ def test_progress_and_start_arrive_as_events(pool):
     while kinds[-1] != "done":
         kinds.append(job.next_event(WAIT))
     assert job.future.result(WAIT) == 3
+
+
+def test_a_worker_that_dies_leaves_the_pool_working(pool):
+    job = pool.submit_call(die)
+    until_done(job)
+    with pytest.raises(BrokenProcessPool):
+        job.future.result()
+    assert pool.busy == 0
+    pool.restart_if_broken()
+    again = pool.submit_call(saw_cancel, kwargs={"within": WAIT})
+    assert again.next_event(WAIT) == "started"
+    again.cancel()
+    until_done(again)
+    assert again.future.result() is True
