@@ -112,9 +112,19 @@ def _solve_in_thread(model, x0, cancel):
     return t, out
 
 
-def test_cpsat_stops_when_the_token_is_set_during_the_search(hard):
+def _stopped(hard, token, *, after=None):
+    """Solve bqp100-1 with a 600 s limit and ``token``; ``after()`` (if given) runs once the
+    solve has started. Returns the output, failing if the search did not stop."""
     _p, compiled, x0 = hard
-    model = LateModel(compiled)
+    t, out = _solve_in_thread(LateModel(compiled), x0, token)
+    if after is not None:
+        after()
+    t.join(WAIT)
+    assert not t.is_alive(), "the search did not stop on cancel"
+    return out[0]
+
+
+def test_cpsat_stops_when_the_token_is_set_during_the_search(hard, monkeypatch):
     token = CancelToken()
     searching = threading.Event()
     # the search is running once CP-SAT reports its first solution
@@ -126,23 +136,19 @@ def test_cpsat_stops_when_the_token_is_set_during_the_search(hard):
                 searching.set()
         return orig(self, m, Seen())
 
-    cp_model.CpSolver.solve = solve
-    try:
-        t, out = _solve_in_thread(model, x0, token)
+    monkeypatch.setattr(cp_model.CpSolver, "solve", solve)
+
+    def cancel_once_searching():
         assert searching.wait(WAIT)
         token.set()
-        t.join(WAIT)
-    finally:
-        cp_model.CpSolver.solve = orig
-    assert not t.is_alive(), "the search did not stop on cancel"
-    assert out[0].status == "feasible" and out[0].x is not None
+
+    out = _stopped(hard, token, after=cancel_once_searching)
+    assert out.status == "feasible" and out.x is not None
 
 
-def test_an_early_cancel_is_not_lost_before_cpsat_sets_its_search_up(hard):
+def test_an_early_cancel_is_not_lost_before_cpsat_makes_its_search(hard, monkeypatch):
     # the token is set after the stop callback is registered but before CP-SAT's solve
-    # has created its search: a bare stop_search() is ignored then
-    _p, compiled, x0 = hard
-    model = LateModel(compiled)
+    # has made its search: a bare stop_search() is ignored then
     token = CancelToken()
     orig = cp_model.CpSolver.solve
 
@@ -150,45 +156,28 @@ def test_an_early_cancel_is_not_lost_before_cpsat_sets_its_search_up(hard):
         token.set()
         return orig(self, m, solution_callback)
 
-    cp_model.CpSolver.solve = solve
-    try:
-        t, out = _solve_in_thread(model, x0, token)
-        t.join(WAIT)
-    finally:
-        cp_model.CpSolver.solve = orig
-    assert not t.is_alive(), "a cancel set just before the search was lost"
-    assert out[0].status in ("unknown", "feasible")
+    monkeypatch.setattr(cp_model.CpSolver, "solve", solve)
+    assert _stopped(hard, token).status in ("unknown", "feasible")
 
 
-def test_a_cancel_between_cpsat_making_its_search_and_running_it_stops_it(hard):
+def test_a_cancel_between_cpsat_making_its_search_and_running_it_stops_it(hard, monkeypatch):
     # CpSolver.solve makes its search (SolveWrapper), copies the parameters into it, then
     # runs it; a cancel after the copy can only reach it through stop_search
-    _p, compiled, x0 = hard
     token = CancelToken()
-    original = cp_model.cmh.SolveWrapper
 
-    class SetAfterTheCopy(original):
+    class SetAfterTheCopy(cp_model.cmh.SolveWrapper):
         def set_parameters(self, params):
             super().set_parameters(params)
             token.set()
 
-    cp_model.cmh.SolveWrapper = SetAfterTheCopy
-    try:
-        t, out = _solve_in_thread(LateModel(compiled), x0, token)
-        t.join(WAIT)
-    finally:
-        cp_model.cmh.SolveWrapper = original
-    assert not t.is_alive(), "a cancel set before the search ran was lost"
-    assert out[0].status in ("unknown", "feasible")
+    monkeypatch.setattr(cp_model.cmh, "SolveWrapper", SetAfterTheCopy)
+    assert _stopped(hard, token).status in ("unknown", "feasible")
 
 
 def test_cpsat_set_before_the_call_returns_at_once(hard):
-    _p, compiled, x0 = hard
     token = CancelToken()
     token.set()
-    t, out = _solve_in_thread(LateModel(compiled), x0, token)
-    t.join(WAIT)
-    assert not t.is_alive() and out[0].status in ("unknown", "feasible")
+    assert _stopped(hard, token).status in ("unknown", "feasible")
 
 
 def test_repair_takes_a_plain_event_and_stops_cpsat_when_it_is_set(hard):
