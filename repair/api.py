@@ -14,7 +14,7 @@ from flipfix.repair.lowering.compiled import Compiled, compile_constraints
 from flipfix.repair.errors import InputError
 from flipfix.repair.model.problem import Problem
 from flipfix.repair.solvers.portfolio import DEFAULT_MIX, Mix, run_plan
-from flipfix.repair.result import METHODS, AuditRow, ParetoPoint, RepairResult, Solution
+from flipfix.repair.result import METHODS, AuditRow, RepairResult, Solution
 
 __all__ = ["repair", "check_options"]
 
@@ -182,12 +182,10 @@ def _build(problem, candidates, compiled, attempts, price, method, seed, t0, *, 
                        "least-violating one")
     points = []
     if pareto:
-        from flipfix.repair.audit.pareto import pareto_front
+        from flipfix.repair.audit.pareto import pareto_front, run_points
 
-        points = pareto_front(
-            ParetoPoint(cost=float(ev.cost[i]), flips=int(flips[i]),
-                        candidate_id=candidates.ids[int(ks[i])], method=attempts[i].method)
-            for i in np.flatnonzero(feas))
+        points = pareto_front(run_points(X0, candidates.ids, ev0.cost, ev0.feasible, A, ks,
+                                         ev.cost, feas, [a.method for a in attempts]))
     return RepairResult(
         status=status, best=best, audit=audit, seed=seed, method=method,
         seconds=time.perf_counter() - t0, message=message, pareto=points,

@@ -15,11 +15,13 @@ from __future__ import annotations
 import math
 from typing import Any, Iterable, Sequence
 
+import numpy as np
+
 from flipfix.repair.errors import InputError
 from flipfix.repair.result import ParetoPoint
 
 __all__ = ["pareto_front", "as_points", "cheapest_within", "fewest_flips_within",
-           "result_points"]
+           "result_points", "run_points"]
 
 
 def _point(item: Any, pos: int) -> ParetoPoint | None:
@@ -135,3 +137,32 @@ def result_points(result: Any, *, include_unchanged: bool = True) -> list[Pareto
         pts += [ParetoPoint(float(r.cost_before), 0, r.candidate_id, "unchanged")
                 for r in result.audit if r.feasible_before]
     return pts
+
+
+def run_points(X0: np.ndarray, ids: Sequence[str], cost0: np.ndarray, feasible0: np.ndarray,
+               A: np.ndarray, origin: np.ndarray, cost: np.ndarray, feasible: np.ndarray,
+               methods: Sequence[str]) -> list[ParetoPoint]:
+    """Every feasible (cost, flips) point a repair run knows, for :func:`pareto_front`.
+
+    First each library candidate that is feasible as it is (``X0`` int8 (K, n), its
+    ``cost0`` float64 (K,), ``feasible0`` bool (K,)) at 0 flips, method ``"unchanged"``;
+    then each feasible attempt (``A`` int8 (N, n) repaired from candidates ``origin``
+    int64 (N,) by ``methods[i]``, ``cost`` float64 (N,), ``feasible`` bool (N,)). An
+    attempt's flips are counted from the library candidate nearest to it (its origin on
+    ties), the rule the reported best answer follows: the fewest changes that reach it
+    from any plan the user keeps.
+    """
+    from flipfix.repair.audit.robustness import hamming_to_rows
+
+    pts = [ParetoPoint(float(cost0[k]), 0, str(ids[k]), "unchanged")
+           for k in np.flatnonzero(feasible0)]
+    keep = np.flatnonzero(feasible)
+    if keep.size:
+        D = hamming_to_rows(A[keep], X0)  # (N', K)
+        near = D.min(axis=1)
+        own = D[np.arange(keep.size), origin[keep]]
+        cand = np.where(own == near, origin[keep], np.argmin(D, axis=1))
+        pts += [ParetoPoint(float(cost[i]), int(f), str(ids[k]), methods[i])
+                for i, f, k in zip(keep, near, cand)]
+    return pts
+
