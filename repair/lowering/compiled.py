@@ -78,12 +78,56 @@ def _positions(problem: Problem, mapping, field_name: str) -> tuple[np.ndarray, 
     """Label -> caller value mapping to (positions int64, bits int8)."""
     if not hasattr(mapping, "items"):
         raise InputError(field_name, "must map variable labels to values")
+    fast = _positions_at_once(problem, mapping)
+    if fast is not None:
+        return fast
     idx, bits = [], []
     for lab, val in mapping.items():
         f = f"{field_name}[{lab!r}]"
         idx.append(problem.lookup(lab, f))
         bits.append(problem.value_to_bit(val, f))
     return np.asarray(idx, dtype=np.int64), np.asarray(bits, dtype=np.int8)
+
+
+def _positions_at_once(problem: Problem, mapping):
+    """:func:`_positions` without a Python call per entry, when every label is a known
+    str / int and every value a number of the vartype; None otherwise (the entry by entry
+    path then names the bad one)."""
+    keys, values = mapping.keys(), mapping.values()
+    if not _label_keys(keys):
+        return None
+    if not all(issubclass(t, (int, np.integer, float)) for t in set(map(type, values))):
+        return None
+    try:
+        idx = np.fromiter(map(problem.index.__getitem__, keys), np.int64, len(mapping))
+    except KeyError:
+        return None
+    v = np.fromiter(values, np.float64, len(mapping))
+    lo = -1.0 if problem.vartype == "SPIN" else 0.0
+    if not np.all((v == lo) | (v == 1.0)):
+        return None
+    return idx, (v == 1.0).astype(np.int8)
+
+
+def _terms_at_once(problem: Problem, terms):
+    """(positions int64, coefficients float64) of a label -> coefficient mapping without a
+    Python call per entry, when every label is a known str / int and every coefficient a
+    finite number; None otherwise (the entry by entry path then names the bad one)."""
+    if not _label_keys(terms.keys()) or not all(
+            issubclass(t, (int, float, np.integer, np.floating)) and t is not bool
+            for t in set(map(type, terms.values()))):
+        return None
+    try:
+        idx = np.fromiter(map(problem.index.__getitem__, terms.keys()), np.int64, len(terms))
+    except KeyError:
+        return None
+    coef = np.fromiter(terms.values(), np.float64, len(terms))
+    return (idx, coef) if np.all(np.isfinite(coef)) else None
+
+
+def _label_keys(keys) -> bool:
+    """Whether every key is a str or an int (not a bool): a label :meth:`Problem.lookup` takes."""
+    return all(issubclass(t, (str, int, np.integer)) and t is not bool for t in set(map(type, keys)))
 
 
 def lower_hamming(problem: Problem, c: HammingPenalty, name: str, prefix: str) -> Pieces:
@@ -102,18 +146,30 @@ def lower_hamming(problem: Problem, c: HammingPenalty, name: str, prefix: str) -
             raise InputError(prefix + "variables", "lists a variable twice")
     table = shape_table(c.shape, c.weight, int(idx.size), threshold=c.threshold, table=c.table,
                         field_name=prefix + "shape")
+    slope = _linear_slope(table)
+    if slope is not None:  # as count_pieces merges it: [x_i != r_i] = r_i + (1 - 2 r_i) x_i
+        r = ref.astype(np.float64)
+        return Pieces(name, linear=list(zip(idx.tolist(), (slope * (1.0 - 2.0 * r)).tolist())),
+                      offset=float(table[0] + slope * r.sum()))
     # d = number of i with x_i != ref_i: one single-literal term per variable
-    terms = [(1, [(int(i), 1 - int(b))]) for i, b in zip(idx, ref)]
+    terms = [(1, [(i, 1 - b)]) for i, b in zip(idx.tolist(), ref.tolist())]
     return count_pieces(name, CountSpec(name, table, 0, terms))
+
+
+def _linear_slope(t: np.ndarray) -> float | None:
+    """The slope of a penalty table that is linear in d (t[d] = t[0] + slope * d), else None."""
+    d = np.arange(t.size, dtype=np.float64)
+    slope = (t[-1] - t[0]) / max(t.size - 1, 1)
+    if np.allclose(t, t[0] + slope * d, rtol=0, atol=1e-12 * (1 + np.abs(t).max())):
+        return float(slope)
+    return None
 
 
 def count_pieces(name: str, spec: CountSpec) -> Pieces:
     """A count penalty; merged into QUBO terms when its table is linear in d and terms are small."""
     t = spec.table
-    d = np.arange(t.size, dtype=np.float64)
-    slope = (t[-1] - t[0]) / max(t.size - 1, 1)
-    linear_shape = np.allclose(t, t[0] + slope * d, rtol=0, atol=1e-12 * (1 + np.abs(t).max()))
-    if not (linear_shape and all(len(lits) <= 2 for _, lits in spec.terms)):
+    slope = _linear_slope(t)
+    if slope is None or not all(len(lits) <= 2 for _, lits in spec.terms):
         return Pieces(name, counts=[spec])
     p = Pieces(name, offset=float(t[0] + slope * spec.const))
     for coef, lits in spec.terms:
@@ -178,14 +234,17 @@ def lower_fix(problem: Problem, c: FixVariables, name: str, prefix: str) -> Piec
 def lower_linear(problem: Problem, c: LinearConstraint, name: str, prefix: str) -> Pieces:
     if not hasattr(c.terms, "items") or len(c.terms) == 0:
         raise InputError(prefix + "terms", "must be a non-empty map of label -> coefficient")
-    acc: dict = {}
-    for lab, coef in c.terms.items():
-        f = f"{prefix}terms[{lab!r}]"
-        i = problem.lookup(lab, f)
-        acc[i] = acc.get(i, 0.0) + _number(coef, f)
+    fast = _terms_at_once(problem, c.terms)
+    if fast is None:
+        acc: dict = {}
+        for lab, coef in c.terms.items():
+            f = f"{prefix}terms[{lab!r}]"
+            i = problem.lookup(lab, f)
+            acc[i] = acc.get(i, 0.0) + _number(coef, f)
+        fast = (np.asarray(list(acc), dtype=np.int64),
+                np.asarray(list(acc.values()), dtype=np.float64))
+    idx, coef = fast
     rhs = _number(c.rhs, prefix + "rhs")
-    idx = np.asarray(list(acc), dtype=np.int64)
-    coef = np.asarray(list(acc.values()), dtype=np.float64)
     if problem.vartype == "SPIN":  # a*s = 2a*x - a
         rhs += float(coef.sum())
         coef = 2.0 * coef
@@ -377,15 +436,15 @@ def compile_constraints(problem: Problem, constraints: Sequence[Any], *,
     n = problem.n
     h = problem.linear.copy()
     offset = problem.offset
-    qi, qj, qv = list(problem.pairs())
     extra_i, extra_j, extra_v = [], [], []
     counts: list = []
     rows: list = []
     fixed = np.full(n, -1, dtype=np.int8)
     conflicts: list = []
     for p in pieces:
-        for i, c in p.linear:
-            h[i] += c
+        if p.linear:  # in order, as a loop of h[i] += c would
+            li, lc = zip(*p.linear)
+            np.add.at(h, np.asarray(li, dtype=np.int64), np.asarray(lc, dtype=np.float64))
         offset += p.offset
         for i, j, c in p.quadratic:
             extra_i.append(i)
@@ -397,12 +456,17 @@ def compile_constraints(problem: Problem, constraints: Sequence[Any], *,
             if fixed[i] >= 0 and fixed[i] != b:
                 conflicts.append((problem.labels[i], p.name))
             fixed[i] = b
-    merged = Problem._assemble(
-        list(problem.labels), h,
-        np.concatenate([qi, np.asarray(extra_i, dtype=np.int64)]),
-        np.concatenate([qj, np.asarray(extra_j, dtype=np.int64)]),
-        np.concatenate([qv, np.asarray(extra_v, dtype=np.float64)]), offset, "BINARY", (),
-    )
+    if extra_i:
+        qi, qj, qv = problem.pairs()
+        merged = Problem._assemble(
+            list(problem.labels), h,
+            np.concatenate([qi, np.asarray(extra_i, dtype=np.int64)]),
+            np.concatenate([qj, np.asarray(extra_j, dtype=np.int64)]),
+            np.concatenate([qv, np.asarray(extra_v, dtype=np.float64)]), offset, "BINARY", (),
+        )
+    else:  # no new couplings: the problem's own (assembled) CSR, the new biases and offset
+        merged = Problem(problem.labels, h, problem.indptr, problem.indices, problem.data,
+                         float(offset), "BINARY", (), problem.index)
     a_indptr = np.zeros(len(rows) + 1, dtype=np.int64)
     a_indptr[1:] = np.cumsum([r.idx.size for r in rows]) if rows else []
     a_indices = (np.concatenate([r.idx for r in rows]) if rows else np.zeros(0)).astype(np.int32)
