@@ -74,26 +74,33 @@ def test_search_deadline_keeps_the_reserve_and_never_precedes_the_entry():
 
 
 def test_cpsat_costs_follow_measurements():
-    costs = pf.CpsatCosts(build=1e-5, setup=1e-5)
-    p = sparse_problem(50, 0)
-    comp = compile_constraints(p, [])
+    costs = pf.CpsatCosts(build=1e-5, setup=1e-5, latency=(0.01, 0.2))
+    comp = compile_constraints(sparse_problem(50, 0), [])
     items = pf._items(comp)
-    costs.measured("build", comp, 4e-5 * items)  # slower than thought: follow at once
+    costs.built(comp, 4e-5 * items)  # slower than thought: followed at once
     assert costs.build == pytest.approx(4e-5)
-    costs.measured("build", comp, 0.0)  # faster: at most halve
+    costs.built(comp, 0.0)  # quicker: at most halved
     assert costs.build == pytest.approx(2e-5)
     assert costs.build_seconds(comp) == pytest.approx(2e-5 * items)
-    assert costs.setup_seconds(comp) > costs.setup * items
+    # latency: the largest overrun of the last LATENCY_WINDOW searches, per worker class
+    assert costs.setup_seconds(comp, 2) == pytest.approx(0.2 + 1e-5 * items)
+    for _ in range(pf.CpsatCosts.LATENCY_WINDOW - 1):
+        costs.overran(comp, 2, 0.003 + 1e-5 * items)
+    assert costs.latency(2) == pytest.approx(0.2)  # the prior is still in the window
+    costs.overran(comp, 4, 0.05 + 1e-5 * items)
+    assert costs.latency(2) == pytest.approx(0.05)  # the prior left it; 4 workers count too
+    assert costs.latency(1) == pytest.approx(0.01)
 
 
 def test_affordable_counts_build_setup_and_a_minimal_search():
     comp = compile_constraints(sparse_problem(50, 0), [])
-    need = pf.CPSAT_COSTS.setup_seconds(comp) + pf.CPSAT_MIN_SECONDS
-    build = pf.build_cost(comp)
-    assert pf._cpsat_affordable(comp, need + build + 1e-3)
-    assert not pf._cpsat_affordable(comp, need + build - 1e-3)
-    assert pf._cpsat_affordable(comp, need + 1e-3, built=True)
-    assert not pf._cpsat_affordable(comp, need - 1e-3, built=True)
+    for workers in (1, 2):
+        need = pf.CPSAT_COSTS.setup_seconds(comp, workers) + pf.CPSAT_MIN_SECONDS
+        build = pf.build_cost(comp)
+        assert pf._cpsat_affordable(comp, need + build + 1e-3, workers=workers)
+        assert not pf._cpsat_affordable(comp, need + build - 1e-3, workers=workers)
+        assert pf._cpsat_affordable(comp, need + 1e-3, built=True, workers=workers)
+        assert not pf._cpsat_affordable(comp, need - 1e-3, built=True, workers=workers)
 
 
 # ------------------------------------------------------------------ a passed deadline

@@ -26,7 +26,8 @@ The last ``POLISH_SHARE`` of the budget (greedy and portfolio) moves the best an
 toward their candidates: greedy descent with a tiny price per flip (:func:`_polish`), then,
 in the portfolio when CP-SAT is affordable, its exact counterpart (:func:`_fewest_flips`):
 CP-SAT's fewest flips from the reported candidate among assignments no costlier than the
-best answer.
+best answer. When that CP-SAT step cannot be afforded in the tail, the tail is only
+``POLISH_ALONE`` of the budget (the greedy polish) and the search keeps the rest.
 
 Every stage works to one ``deadline`` (a ``time.perf_counter()`` value) that the caller sets
 so that the reply fits its budget (:func:`flipfix.repair.api.repair` keeps back what building
@@ -41,6 +42,7 @@ scores (:class:`Attempt`).
 from __future__ import annotations
 
 import time
+from collections import deque
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -60,6 +62,8 @@ POLISH_SHARE = 0.05
 #: (it gets the rest). Measured on the quick repair benchmark: the polish takes 1-19 ms; the
 #: CP-SAT step needs 20-200 ms there to return its hint and did not find fewer flips in 3 s.
 POLISH_GREEDY = 0.5
+#: the tail when only the greedy polish can run in it
+POLISH_ALONE = 0.02
 POLISH_TOP = 8
 #: shortest time worth a fewest-flips CP-SAT search (a clone and a hinted solve)
 FEWEST_MIN_SECONDS = 0.01
@@ -159,29 +163,47 @@ def _items(compiled: Compiled) -> int:
 
 
 class CpsatCosts:
-    """Seconds per model item of CP-SAT's fixed costs, as last measured in this process.
+    """CP-SAT's fixed costs, as measured in this process.
 
-    ``build``: building the model (:class:`flipfix.repair.solvers.cpsat.LateModel`);
-    ``setup``: what one search spends beyond its time limit (clone, hint, presolve, reading
-    the answer). Both start from measurements on the 2-vCPU development machine under load
-    (bench/budget.py: 55-70 us and 20-30 us per item at 1,000 to 10,000 variables) and
-    follow each real build and search (the larger of the last measurement and half the
-    previous estimate, so one lucky run does not halve the margin).
+    ``build``: seconds per model item to build the model
+    (:class:`flipfix.repair.solvers.cpsat.LateModel`); it follows each real build (the
+    larger of the measurement and half the previous estimate, so one quick build does not
+    halve the margin). Prior: 55-70 us measured at 1,000 to 10,000 variables on the 2-vCPU
+    development machine under load (15 us when it was quiet).
+    ``setup``: seconds per model item one search spends on our side beyond CP-SAT's time
+    limit (cloning, hinting, reading the answer back): 20-30 us measured there.
+    ``latency``: how far CP-SAT itself may run past its time limit, by worker count (one,
+    or more): the largest of the last ``LATENCY_WINDOW`` searches that ran to their limit.
+    With two workers about one search in four overran by 0.04-0.14 s whatever the model's
+    size (bqp100-1; one worker: at most 0.01 s), so the prior is 0.15 s.
     """
 
-    def __init__(self, build: float = 70e-6, setup: float = 30e-6):
+    LATENCY_WINDOW = 8
+
+    def __init__(self, build: float = 70e-6, setup: float = 30e-6,
+                 latency: tuple = (0.01, 0.15)):
         self.build = build
         self.setup = setup
+        self.latencies = {one: deque([v], maxlen=self.LATENCY_WINDOW)
+                          for one, v in zip((True, False), latency)}
+
+    def latency(self, workers: int) -> float:
+        return max(self.latencies[workers <= 1])
 
     def build_seconds(self, compiled: Compiled) -> float:
         return self.build * _items(compiled)
 
-    def setup_seconds(self, compiled: Compiled) -> float:
-        return 0.005 + self.setup * _items(compiled)
+    def setup_seconds(self, compiled: Compiled, workers: int = 1) -> float:
+        """Predicted seconds a search runs beyond the time limit CP-SAT is given."""
+        return self.latency(workers) + self.setup * _items(compiled)
 
-    def measured(self, kind: str, compiled: Compiled, seconds: float) -> None:
-        per_item = max(0.0, seconds) / max(1, _items(compiled))
-        setattr(self, kind, max(per_item, 0.5 * getattr(self, kind)))
+    def built(self, compiled: Compiled, seconds: float) -> None:
+        """A build of ``compiled`` took ``seconds``."""
+        self.build = max(seconds / max(1, _items(compiled)), 0.5 * self.build)
+
+    def overran(self, compiled: Compiled, workers: int, seconds: float) -> None:
+        """A search that ran to its limit took ``seconds`` more than the limit CP-SAT had."""
+        self.latencies[workers <= 1].append(max(0.0, seconds - self.setup * _items(compiled)))
 
 
 #: the process-wide estimates (:class:`CpsatCosts`)
@@ -193,44 +215,52 @@ def build_cost(compiled: Compiled) -> float:
     return CPSAT_COSTS.build_seconds(compiled)
 
 
-def _cpsat_affordable(compiled: Compiled, seconds: float, built: bool = False) -> bool:
-    """Whether a CP-SAT search (built first unless ``built``) fits in ``seconds``."""
-    need = CPSAT_COSTS.setup_seconds(compiled) + CPSAT_MIN_SECONDS
+def _cpsat_affordable(compiled: Compiled, seconds: float, built: bool = False,
+                      workers: int = 1) -> bool:
+    """Whether a CP-SAT search on ``workers`` (built first unless ``built``) fits in ``seconds``."""
+    need = CPSAT_COSTS.setup_seconds(compiled, workers) + CPSAT_MIN_SECONDS
     return need + (0.0 if built else build_cost(compiled)) < seconds
 
 
 class _LazyCpsat:
-    """The CP-SAT model, built on first use and only when the budget can pay for it.
+    """The CP-SAT model, built on first use and only when the budget can pay for it;
+    every search on ``workers`` threads.
 
     (Imported late: ortools brings protobuf, which plain greedy runs avoid.)
     """
 
-    def __init__(self, compiled: Compiled, stats: dict):
+    def __init__(self, compiled: Compiled, stats: dict, workers: int = 1):
         self.compiled = compiled
         self.model = None
         self.stats = stats
+        self.workers = workers
+
+    def affordable(self, seconds: float) -> bool:
+        """Whether a search (and the build, if not done yet) fits in ``seconds``."""
+        return _cpsat_affordable(self.compiled, seconds, built=self.model is not None,
+                                 workers=self.workers)
 
     def ready(self, deadline: float) -> bool:
         """Built (or now built), and a search still fits before ``deadline``."""
         if self.model is None:
             from flipfix.repair.solvers.cpsat import LateModel
 
-            if not _cpsat_affordable(self.compiled, deadline - time.perf_counter()):
+            if not self.affordable(deadline - time.perf_counter()):
                 self.stats["cpsat_skipped"] = "budget too short to build the CP-SAT model"
                 return False
             self.model = LateModel(self.compiled)
-            CPSAT_COSTS.measured("build", self.compiled, self.model.build_seconds)
+            CPSAT_COSTS.built(self.compiled, self.model.build_seconds)
             self.stats["cpsat_build_seconds"] = round(self.model.build_seconds, 4)
-        return _cpsat_affordable(self.compiled, deadline - time.perf_counter(), built=True)
+        return self.affordable(deadline - time.perf_counter())
 
     def limit(self, seconds: float) -> float:
         """The time limit to give CP-SAT so that a search with its set-up takes ``seconds``."""
-        return max(0.01, seconds - CPSAT_COSTS.setup_seconds(self.compiled))
+        return max(0.01, seconds - CPSAT_COSTS.setup_seconds(self.compiled, self.workers))
 
     def _timed(self, run, time_limit: float, **kwargs):
         r = run(time_limit=time_limit, **kwargs)
         if r.status in ("feasible", "unknown"):  # it ran to its limit: the rest is set-up
-            CPSAT_COSTS.measured("setup", self.compiled, r.seconds - time_limit)
+            CPSAT_COSTS.overran(self.compiled, kwargs.get("workers", 1), r.seconds - time_limit)
         return r
 
     def solve(self, *, time_limit: float, **kwargs):
@@ -248,17 +278,21 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, deadline: float
     """Run one plan on the candidates X0 (int8 (K, n)) until ``deadline`` (a
     ``time.perf_counter()`` value); see the module docstring.
 
-    greedy and portfolio keep the last ``POLISH_SHARE`` of the time to move the best
-    answers back toward their candidates where that costs nothing (:func:`_polish`, then
-    in the portfolio :func:`_fewest_flips`). ``scorer`` (default: built here) scores the
-    library and every attempt.
+    greedy and portfolio keep the last ``POLISH_SHARE`` of the time (``POLISH_ALONE``
+    when CP-SAT cannot run in it) to move the best answers back toward their candidates
+    where that costs nothing (:func:`_polish`, then in the portfolio :func:`_fewest_flips`).
+    ``scorer`` (default: built here) scores the library and every attempt.
     """
     out = PlanOutcome(attempts=[])
     if scorer is None:
         scorer = Scorer(compiled, X0, workers=workers)
     time_limit = max(0.0, deadline - time.perf_counter())
-    share = 1.0 if method == "cpsat" else 1.0 - POLISH_SHARE
-    cp = _LazyCpsat(compiled, out.stats)
+    tail = POLISH_SHARE
+    cp = _LazyCpsat(compiled, out.stats, workers)
+    if method == "greedy" or (method == "portfolio" and not cp.affordable(
+            (1.0 - POLISH_GREEDY) * POLISH_SHARE * time_limit)):
+        tail = POLISH_ALONE  # no CP-SAT step in the tail: only the greedy polish
+    share = 1.0 if method == "cpsat" else 1.0 - tail
     _search(compiled, X0, out, cp, scorer, method=method,
             deadline=deadline - (1.0 - share) * time_limit, max_flips=max_flips,
             flip_price=flip_price, seed=seed, workers=workers, cancel=cancel,
@@ -271,8 +305,7 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, deadline: float
         return out
     left = deadline - time.perf_counter()
     # the CP-SAT step shares the tail only when it can run in it (model built or affordable)
-    exact = method == "portfolio" and _cpsat_affordable(compiled, (1.0 - POLISH_GREEDY) * left,
-                                                        built=cp.model is not None)
+    exact = method == "portfolio" and cp.affordable((1.0 - POLISH_GREEDY) * left)
     polish_deadline = time.perf_counter() + POLISH_GREEDY * left if exact else deadline
     _polish(compiled, X0, out, scorer, deadline=polish_deadline, max_flips=max_flips,
             flip_price=flip_price, workers=workers)
@@ -336,8 +369,7 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
     cur = g.X.copy()
     left = deadline - time.perf_counter()
     kick_share = mix.kicks
-    if mix.kicks > 0 and not _cpsat_affordable(compiled, (1.0 - mix.kicks) * left,
-                                               built=cp.model is not None):
+    if mix.kicks > 0 and not cp.affordable((1.0 - mix.kicks) * left):
         kick_share = 1.0  # CP-SAT could not even be built in its share: kicks take it all
     kick_deadline = time.perf_counter() + kick_share * left
     rounds, kept = _kicks(compiled, X0, cur, obj, feasible, flips, g.done, out, scorer,
@@ -428,7 +460,7 @@ def _early_proof(cp, compiled, X0, out, scorer, *, feasible, obj, deadline, max_
     if max_flips is not None or flip_price:
         return False
     left = deadline - time.perf_counter()
-    setup = CPSAT_COSTS.setup_seconds(compiled)
+    setup = CPSAT_COSTS.setup_seconds(compiled, cp.workers)
     if cp.model is None:
         setup += build_cost(compiled)
     if setup > PROOF_SETUP * left or not cp.ready(deadline):
@@ -509,7 +541,7 @@ def _fewest_flips(cp, compiled, X0, out, scorer, *, deadline, max_flips, flip_pr
     if not out.attempts:
         return
     left = deadline - time.perf_counter()
-    if cp.model is None and not _cpsat_affordable(compiled, left):
+    if cp.model is None and not cp.affordable(left):
         stats["fewest_flips_status"] = "skipped: budget too short to build the CP-SAT model"
         return
     if left < FEWEST_MIN_SECONDS or not cp.ready(deadline):
