@@ -50,16 +50,18 @@ def _changes(problem: Problem, before: np.ndarray, after: np.ndarray) -> list:
     return list(integer_changes(problem, before, after))
 
 
-#: seconds building a result takes (:func:`result_seconds`), measured with bench/budget.py on
-#: the 2-vCPU development machine under load, with a 2x margin: a fixed part (the best
-#: answer's breakdown, lists and dicts), per candidate (its audit row), per candidate
-#: and variable (the distances to the best answer), per variable (the answer's assignment
-#: and breakdown) and per attempt on the cost-flips front (pareto=True)
+#: seconds building a result takes (:func:`result_seconds`): a fixed part (the best answer's
+#: breakdown, lists and dicts), per candidate (its audit row), per candidate and variable
+#: (the distances to the best answer), per variable (the answer's assignment and breakdown)
+#: and per attempt on the cost-flips front (pareto=True). Measured with bench/budget.py on
+#: the 2-vCPU development machine under load, plus half: 0.002-0.006 s at 1,000 variables
+#: x 100 candidates, 0.05 s at 1,000 x 10,000, 0.015-0.02 s at 20,000 x 1,000, 0.1-0.12 s
+#: at 20,000 x 10,000, 0.06-0.08 s at 100,000 x 1,000.
 RESULT_FIXED = 0.004
-RESULT_PER_CANDIDATE = 8e-6
-RESULT_PER_CELL = 1e-9
-RESULT_PER_VARIABLE = 1e-6
-RESULT_PER_ATTEMPT = 2e-6
+RESULT_PER_CANDIDATE = 7.5e-6
+RESULT_PER_CELL = 4e-10
+RESULT_PER_VARIABLE = 6e-7
+RESULT_PER_ATTEMPT = 1e-6
 
 
 def result_seconds(candidates: int, variables: int, *, attempts: int = 0,

@@ -32,8 +32,10 @@ from flipfix.repair.lowering.compiled import Compiled
 
 __all__ = ["Scorer", "distances", "warm_up"]
 
-#: how many candidates before each one a library's scoring looks at for a near reference
+#: how many candidates before each one a library's scoring looks at for a near reference,
+#: comparing about SAMPLE evenly spaced bits
 WINDOW = 8
+SAMPLE = 256
 #: most row activities (candidates x hard rows) a Scorer keeps; past it, assignments are
 #: scored from scratch
 KEEP_ACTIVITIES = 20_000_000
@@ -154,8 +156,8 @@ def _count_differing(x, a):
 @nb.njit(cache=True, nogil=True)
 def _library(X, first, stop, window, far, q, c, r, offset, e0, mis0, d0, act0, cost, viol):
     """Rows first..stop-1 of X: each from the nearest of the ``window`` rows before it (in
-    the range) when at most ``far`` bits differ, else from scratch; fills each row's state
-    (e0, mis0, d0 and, when kept, act0) and totals (cost, viol)."""
+    the range; nearest on a sample of ``SAMPLE`` bits) when at most ``far`` bits differ, else
+    from scratch; fills each row's state (e0, mis0, d0 and, when kept, act0) and totals."""
     n = X.shape[1]
     m = r[6].size
     keep = act0.shape[1] == m
@@ -163,19 +165,20 @@ def _library(X, first, stop, window, far, q, c, r, offset, e0, mis0, d0, act0, c
     diff = np.empty(n, dtype=np.int64)
     stamp = np.zeros(c[3].size, dtype=np.int64)
     touched = np.empty(c[3].size, dtype=np.int64)
+    stride = max(1, n // SAMPLE)
     for k in range(first, stop):
         x = X[k]
         a_act = act0[k] if keep else act
-        near, fewest = -1, far + 1
-        if keep:
+        near, fewest = -1, n + 1
+        if keep:  # the nearest by a sample of the bits, then the whole distance to it
             for b in range(max(first, k - window), k):
-                cnt = _count_differing(x, X[b])
+                cnt = _count_differing(x[::stride], X[b, ::stride])
                 if cnt < fewest:
                     near, fewest = b, cnt
-        if near < 0:
+        nd = far + 1 if near < 0 else _differing(x, X[near], diff)
+        if nd > far:
             e0[k], mis0[k] = _scratch(x, q, c, r, offset, d0[k], a_act)
         else:
-            nd = _differing(x, X[near], diff)
             d0[k, :] = d0[near]
             a_act[:] = act0[near]
             e0[k], mis0[k] = _delta(x, X[near], diff, nd, e0[near], mis0[near], d0[k], a_act,

@@ -339,22 +339,28 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
     g_deadline = deadline if method == "greedy" else t0 + mix.greedy * time_limit
     # most promising candidates first, so a short budget is spent where it pays most
     first = _ranked(scorer.violation == 0.0, scorer.cost)
-    g = greedy_repair(compiled, X0[first], max_flips=max_flips, flip_price=flip_price,
-                      deadline=g_deadline, cancel=cancel, workers=workers,
-                      progress=lambda d, tot: report(done=d, total=tot, phase="greedy"))
-    back = np.argsort(first)
-    g.X, g.steps, g.done, g.seconds = g.X[back], g.steps[back], g.done[back], g.seconds[back]
-    # each repaired candidate is scored from its own state; the others are as they were
     cost, viol = scorer.cost.copy(), scorer.violation.copy()
     flips = np.zeros(K, dtype=np.int64)
-    done = np.flatnonzero(g.done)
-    cost[done], viol[done], flips[done] = scorer.near(g.X[done], done)
+    if stopped():  # nothing starts after the deadline: the candidates as they are
+        out.attempts.extend(Attempt(k, X0[k], "unrepaired", 0.0, cost[k], viol[k], 0)
+                            for k in range(K))
+        out.stats["greedy_done"] = out.stats["greedy_moves"] = 0
+        return out
+    rows, seconds, steps = _greedy_stage(compiled, X0, first, deadline=g_deadline,
+                                         max_flips=max_flips, flip_price=flip_price,
+                                         cancel=cancel, workers=workers, report=report)
+    fin = np.fromiter(rows, np.int64, len(rows))  # the candidates greedy repaired
+    done = np.zeros(K, dtype=bool)
+    done[fin] = True
+    # each repaired candidate is scored from its own state; the others are as they were
+    if fin.size:
+        cost[fin], viol[fin], flips[fin] = scorer.near(np.vstack(list(rows.values())), fin)
     for k in range(K):
-        out.attempts.append(Attempt(k, g.X[k], "greedy" if g.done[k] else "unrepaired",
-                                    float(g.seconds[k]), float(cost[k]), float(viol[k]),
+        out.attempts.append(Attempt(k, rows.get(k, X0[k]), "greedy" if done[k] else "unrepaired",
+                                    float(seconds[k]), float(cost[k]), float(viol[k]),
                                     int(flips[k])))
-    out.stats["greedy_done"] = int(g.done.sum())
-    out.stats["greedy_moves"] = int(g.steps.sum())
+    out.stats["greedy_done"] = int(done.sum())
+    out.stats["greedy_moves"] = int(steps)
     if method == "greedy" or stopped():
         return out
 
@@ -366,13 +372,16 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
                     cancel=cancel, t0=t0):
         return out
 
-    cur = g.X.copy()
+    # each repaired candidate's current answer (the kicks change it; only those are read)
+    cur = np.empty_like(X0)
+    if fin.size:
+        cur[fin] = np.vstack([rows[k] for k in fin.tolist()])
     left = deadline - time.perf_counter()
     kick_share = mix.kicks
     if mix.kicks > 0 and not cp.affordable((1.0 - mix.kicks) * left):
         kick_share = 1.0  # CP-SAT could not even be built in its share: kicks take it all
     kick_deadline = time.perf_counter() + kick_share * left
-    rounds, kept = _kicks(compiled, X0, cur, obj, feasible, flips, g.done, out, scorer,
+    rounds, kept = _kicks(compiled, X0, cur, obj, feasible, flips, done, out, scorer,
                           deadline=kick_deadline, max_flips=max_flips, flip_price=flip_price,
                           seed=seed, cancel=cancel, workers=workers)
     out.stats["kick_rounds"] = rounds
@@ -380,12 +389,11 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
     report(done=K, total=K, phase="kicks")
     if stopped():
         return out
-    g.X = cur
-    order = [int(k) for k in _ranked(feasible, obj) if g.done[k]]
+    order = [int(k) for k in _ranked(feasible, obj) if done[k]]
     seen: set = set()
     tops = []
     for k in order:
-        key = g.X[k].tobytes()
+        key = cur[k].tobytes()
         if key not in seen:
             seen.add(key)
             tops.append(k)
@@ -402,7 +410,7 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
             break
         radius = max_flips if max_flips is not None else min(n, int(flips[k]) + margin)
         budget = min(share, deadline - time.perf_counter())
-        r = cp.solve(hint=g.X[k], center=X0[k], radius=radius, flip_price=flip_price,
+        r = cp.solve(hint=cur[k], center=X0[k], radius=radius, flip_price=flip_price,
                      time_limit=budget, workers=workers, seed=seed + rank, cancel=cancel)
         out.scaling_error = max(out.scaling_error, r.scaling_error)
         out.cpsat_status = r.status
@@ -421,6 +429,36 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
                  cancel=cancel)
     report(done=K, total=K, phase="full", best_cost=best_obj)
     return out
+
+
+#: candidates in the first greedy batch; each next batch is twice the last
+GREEDY_FIRST_BATCH = 16
+
+
+def _greedy_stage(compiled, X0, order, *, deadline, max_flips, flip_price, cancel, workers,
+                  report):
+    """Greedy repair of the candidates X0[order] in that order, in batches of doubling size
+    (from ``GREEDY_FIRST_BATCH``) until ``deadline``: each batch's set-up (its copies, its
+    consensus) is paid only for candidates the time reaches. Returns ({candidate: repaired
+    x int8 (n,)} of those repaired, seconds float64 (K,) spent on each, total steps)."""
+    K = X0.shape[0]
+    rows: dict = {}
+    seconds = np.zeros(K)
+    steps = 0
+    pos, size = 0, GREEDY_FIRST_BATCH
+    while pos < K and time.perf_counter() < deadline:
+        batch = order[pos:pos + size]
+        g = greedy_repair(compiled, X0[batch], max_flips=max_flips, flip_price=flip_price,
+                          deadline=deadline, cancel=cancel, workers=workers,
+                          progress=lambda d, tot, at=pos: report(done=at + d, total=K,
+                                                                 phase="greedy"))
+        seconds[batch] = g.seconds
+        steps += int(g.steps.sum())
+        rows.update((int(k), g.X[j]) for j, k in enumerate(batch.tolist()) if g.done[j])
+        if not g.done.all() or (cancel is not None and cancel.is_set()):
+            break
+        pos, size = pos + size, 2 * size
+    return rows, seconds, steps
 
 
 def _full_search(cp, X0, out, *, anchor, best_obj, time_limit, max_flips, flip_price, seed,
