@@ -95,7 +95,7 @@ def plan_reference(problem: Problem, constraints: Sequence[Any]):
         if isinstance(c, HammingPenalty):
             ref = c.reference
             idx = np.fromiter(map(problem.index.__getitem__, ref.keys()), np.int64, len(ref))
-            values = np.fromiter((float(v) for v in ref.values()), np.float64, len(ref))
+            values = np.fromiter(ref.values(), np.float64, len(ref))
             return idx, problem.from_caller(values, "reference")
         if type(c).__name__ == "DecisionChangePenalty":
             from flipfix.repair.model.encodings import _find, _index_of, decision_bits, encode
@@ -270,20 +270,21 @@ def _build(problem, candidates, compiled, scorer, attempts, price, method, seed,
         after = np.vstack([attempts[a].x if a >= 0 else X0[k] for k, a in enumerate(first)])
         M0, M1 = decode_indices(problem, X0), decode_indices(problem, after)
         changed = ((M0 != M1) | (M0 < 0)).sum(axis=1)  # as integer_changes counts them
-    audit = []
     ids = candidates.ids
     c0, v0 = scorer.cost.tolist(), scorer.violation.tolist()
+    # per candidate, as Python numbers (a row each, no numpy scalars)
+    pick = np.where(first >= 0, first, 0)
+    c1, o1, f1, v1 = (cost[pick].tolist(), obj[pick].tolist(), flips[pick].tolist(),
+                      viol[pick].tolist())
+    secs, chg = seconds.tolist(), changed.tolist()
+    audit = []
     for k, a in enumerate(first.tolist()):
         if a < 0:  # never attempted (a cancelled plan): as it was
             audit.append(AuditRow(ids[k], c0[k], v0[k] == 0.0, c0[k], c0[k], 0, v0[k] == 0.0,
                                   v0[k], "unrepaired", 0.0, 0, issues.get(k, [])))
             continue
-        audit.append(AuditRow(
-            candidate_id=ids[k], cost_before=c0[k], feasible_before=v0[k] == 0.0,
-            cost_after=float(cost[a]), objective_after=float(obj[a]), flips=int(flips[a]),
-            feasible=bool(feas[a]), violation=float(viol[a]), method=attempts[a].method,
-            seconds=float(seconds[k]), decisions_changed=int(changed[k]),
-            encoding_issues=issues.get(k, [])))
+        audit.append(AuditRow(ids[k], c0[k], v0[k] == 0.0, c1[k], o1[k], f1[k], v1[k] == 0.0,
+                              v1[k], attempts[a].method, secs[k], chg[k], issues.get(k, [])))
     ev = compiled.evaluate(xb[None, :])
     violations = {name: float(v[0]) for name, v in ev.violations.items()}
     if max_flips is not None:
