@@ -347,6 +347,7 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
         out.stats["greedy_done"] = out.stats["greedy_moves"] = 0
         return out
     rows, seconds, steps = _greedy_stage(compiled, X0, first, deadline=g_deadline,
+                                         first_deadline=deadline,
                                          max_flips=max_flips, flip_price=flip_price,
                                          cancel=cancel, workers=workers, report=report)
     fin = np.fromiter(rows, np.int64, len(rows))  # the candidates greedy repaired
@@ -435,21 +436,24 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
 GREEDY_FIRST_BATCH = 16
 
 
-def _greedy_stage(compiled, X0, order, *, deadline, max_flips, flip_price, cancel, workers,
-                  report):
-    """Greedy repair of the candidates X0[order] in that order, in batches of doubling size
-    (from ``GREEDY_FIRST_BATCH``) until ``deadline``: each batch's set-up (its copies, its
-    consensus) is paid only for candidates the time reaches. Returns ({candidate: repaired
-    x int8 (n,)} of those repaired, seconds float64 (K,) spent on each, total steps)."""
+def _greedy_stage(compiled, X0, order, *, deadline, first_deadline, max_flips, flip_price,
+                  cancel, workers, report):
+    """Greedy repair of the candidates X0[order] in that order: the first alone until
+    ``first_deadline`` (the whole search's: with no repaired answer nothing else can start
+    from one), then the others in batches of doubling size (from ``GREEDY_FIRST_BATCH``)
+    until ``deadline``: each batch's set-up (its copies, its consensus) is paid only for
+    candidates the time reaches. Returns ({candidate: repaired x int8 (n,)} of those
+    repaired, seconds float64 (K,) spent on each, total steps)."""
     K = X0.shape[0]
     rows: dict = {}
     seconds = np.zeros(K)
     steps = 0
-    pos, size = 0, GREEDY_FIRST_BATCH
-    while pos < K and time.perf_counter() < deadline:
+    pos, size = 0, 1
+    while pos < K and time.perf_counter() < (first_deadline if pos == 0 else deadline):
         batch = order[pos:pos + size]
         g = greedy_repair(compiled, X0[batch], max_flips=max_flips, flip_price=flip_price,
-                          deadline=deadline, cancel=cancel, workers=workers,
+                          deadline=first_deadline if pos == 0 else deadline, cancel=cancel,
+                          workers=workers,
                           progress=lambda d, tot, at=pos: report(done=at + d, total=K,
                                                                  phase="greedy"))
         seconds[batch] = g.seconds
@@ -457,7 +461,7 @@ def _greedy_stage(compiled, X0, order, *, deadline, max_flips, flip_price, cance
         rows.update((int(k), g.X[j]) for j, k in enumerate(batch.tolist()) if g.done[j])
         if not g.done.all() or (cancel is not None and cancel.is_set()):
             break
-        pos, size = pos + size, 2 * size
+        pos, size = pos + size, GREEDY_FIRST_BATCH if pos == 0 else 2 * size
     return rows, seconds, steps
 
 
