@@ -22,11 +22,10 @@ rounding; feasibility (violation == 0) is the same test.
 
 from __future__ import annotations
 
-from concurrent.futures import ThreadPoolExecutor
-
 import numba as nb
 import numpy as np
 
+from flipfix.repair.kernels.batching import thread_pool
 from flipfix.repair.kernels.bundles import late_arrays
 from flipfix.repair.lowering.compiled import Compiled
 
@@ -244,7 +243,7 @@ class Scorer:
         if parts == 1:
             run(0, K)
         else:
-            jobs = [_pool(parts).submit(run, int(a), int(b)) for a, b in zip(cuts[:-1], cuts[1:])]
+            jobs = [thread_pool(parts).submit(run, int(a), int(b)) for a, b in zip(cuts[:-1], cuts[1:])]
             for j in jobs:
                 j.result()
 
@@ -260,18 +259,6 @@ class Scorer:
         _near(X, self.X0, ks, self.e0, self.mis0, self.d0, self.act0, q, c, r,
               float(self.compiled.offset), X.shape[1] // 4, *out)
         return out
-
-
-_POOLS: dict = {}
-
-
-def _pool(workers: int) -> ThreadPoolExecutor:
-    """A process-wide pool of ``workers`` threads (the kernels release the GIL)."""
-    pool = _POOLS.get(workers)
-    if pool is None:
-        pool = _POOLS[workers] = ThreadPoolExecutor(max_workers=workers,
-                                                     thread_name_prefix="flipfix-scores")
-    return pool
 
 
 @nb.njit(cache=True, nogil=True)

@@ -30,13 +30,13 @@ The inner kernels run without numba's reference counting (see ``_kernel``).
 from __future__ import annotations
 
 import time
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numba as nb
 import numpy as np
 
 from flipfix.repair.lowering.compiled import FEAS_TOL, Compiled
+from flipfix.repair.kernels.batching import thread_pool
 from flipfix.repair.kernels.bundles import late_arrays, objective_tol, unsigned
 from flipfix.repair.kernels.tournament import tree_clear, tree_drain, tree_set
 
@@ -1073,16 +1073,7 @@ def descend_qubo(h, indptr, indices, data, X0, *, fixed=None, flip_price: float 
     return X, steps
 
 
-_POOLS: dict = {}
-
-
-def _threads(workers: int) -> ThreadPoolExecutor:
-    """A process-wide pool of ``workers`` threads (the kernels release the GIL)."""
-    pool = _POOLS.get(workers)
-    if pool is None:
-        pool = _POOLS[workers] = ThreadPoolExecutor(max_workers=workers,
-                                                     thread_name_prefix="flipfix-greedy")
-    return pool
+_threads = thread_pool  # one process-wide pool per worker count
 
 
 def _in_parts(run, X: np.ndarray, O: np.ndarray, steps: np.ndarray, workers: int) -> None:
