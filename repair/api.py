@@ -188,8 +188,11 @@ def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, 
     K = X0.shape[0]
     price = float(flip_price)
     plan_ref = plan_reference(problem, constraints)
+    t_lowered = time.perf_counter()
     scorer = Scorer(compiled, X0, workers=workers)
-    common = dict(max_flips=max_flips, pareto=pareto, plan_ref=plan_ref)
+    # where the time went (stats): lowering, scoring the library, search, the result
+    stages = {"lowering": t_lowered - t0, "scoring": time.perf_counter() - t_lowered}
+    common = dict(max_flips=max_flips, pareto=pareto, plan_ref=plan_ref, stages=stages)
 
     def report(**kw):
         if progress is not None:
@@ -231,9 +234,12 @@ def _front(attempts, ks, cost, flips, feasible, ids) -> list:
 
 
 def _build(problem, candidates, compiled, scorer, attempts, price, method, seed, t0, *, pareto,
-           max_flips=None, status=None, message="", plan=None, plan_ref=None) -> RepairResult:
+           max_flips=None, status=None, message="", plan=None, plan_ref=None,
+           stages=None) -> RepairResult:
     """The result from every attempt's scores (see :func:`flipfix.repair.solvers.portfolio.attempt_scores`):
-    the best, one audit row per candidate, the front; only the best is evaluated by part."""
+    the best, one audit row per candidate, the front; only the best is evaluated by part.
+    ``stages``: seconds of the stages before, completed here and kept in ``stats["seconds"]``."""
+    t_build = time.perf_counter()
     X0 = scorer.X0
     K = X0.shape[0]
     if not attempts:  # nothing ran: report the candidates as they are
@@ -311,9 +317,13 @@ def _build(problem, candidates, compiled, scorer, attempts, price, method, seed,
             message = ("no feasible assignment found within the budget; best is the "
                        "least-violating one")
     points = _front(attempts, ks, cost, flips, feas, ids) if pareto else []
+    stats = plan.stats if plan is not None else {}
+    if stages is not None:
+        done = time.perf_counter()
+        stats["seconds"] = {**stages, "search": t_build - t0 - sum(stages.values()),
+                            "result": done - t_build}
     return RepairResult(
         status=status, best=best, audit=audit, seed=seed, method=method,
         seconds=time.perf_counter() - t0, message=message, pareto=points,
         scaling_error=plan.scaling_error if plan is not None else 0.0,
-        cpsat_status=plan.cpsat_status if plan is not None else "",
-        stats=plan.stats if plan is not None else {})
+        cpsat_status=plan.cpsat_status if plan is not None else "", stats=stats)

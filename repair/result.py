@@ -86,7 +86,8 @@ class RepairResult:
     """Outcome of :func:`flipfix.repair.repair`; never raised, always returned.
 
     ``seconds`` is the whole call, from its entry (after the one-time kernel warm-up) to
-    its return: lowering, scoring, search and building this result.
+    its return: lowering, scoring, search and building this result; ``stats["seconds"]``
+    splits it by those stages ("lowering", "scoring", "search", "result").
 
     ``best`` is the cheapest feasible solution (ties: fewer flips), or, when
     none is feasible, the least-violating assignment found. ``audit`` has one
