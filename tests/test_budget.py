@@ -82,14 +82,18 @@ def test_cpsat_costs_follow_measurements():
     costs.built(comp, 0.0)  # quicker: at most halved
     assert costs.build == pytest.approx(2e-5)
     assert costs.build_seconds(comp) == pytest.approx(2e-5 * items)
-    # latency: the largest overrun of the last LATENCY_WINDOW searches, per worker class
+    # latency: the largest overrun of the last LATENCY_WINDOW searches, per worker class,
+    # never below the floor
     assert costs.setup_seconds(comp, 2) == pytest.approx(0.2 + 1e-5 * items)
+    costs.overran(comp, 2, 0.5 + 1e-5 * items)
+    assert costs.latency(2) == pytest.approx(0.5)
     for _ in range(pf.CpsatCosts.LATENCY_WINDOW - 1):
-        costs.overran(comp, 2, 0.003 + 1e-5 * items)
-    assert costs.latency(2) == pytest.approx(0.2)  # the prior is still in the window
-    costs.overran(comp, 4, 0.05 + 1e-5 * items)
-    assert costs.latency(2) == pytest.approx(0.05)  # the prior left it; 4 workers count too
-    assert costs.latency(1) == pytest.approx(0.01)
+        costs.overran(comp, 4, 0.003 + 1e-5 * items)  # 4 workers count as several too
+    assert costs.latency(2) == pytest.approx(0.5)  # still in the window
+    costs.overran(comp, 2, 0.003 + 1e-5 * items)
+    assert costs.latency(2) == pytest.approx(0.2)  # it left the window: the floor
+    costs.overran(comp, 1, 0.03 + 1e-5 * items)
+    assert costs.latency(1) == pytest.approx(0.03)
 
 
 def test_affordable_counts_build_setup_and_a_minimal_search():

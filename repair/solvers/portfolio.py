@@ -173,9 +173,11 @@ class CpsatCosts:
     ``setup``: seconds per model item one search spends on our side beyond CP-SAT's time
     limit (cloning, hinting, reading the answer back): 20-30 us measured there.
     ``latency``: how far CP-SAT itself may run past its time limit, by worker count (one,
-    or more): the largest of the last ``LATENCY_WINDOW`` searches that ran to their limit.
-    With two workers about one search in four overran by 0.04-0.14 s whatever the model's
-    size (bqp100-1; one worker: at most 0.01 s), so the prior is 0.15 s.
+    or more): the largest of the last ``LATENCY_WINDOW`` searches that ran to their limit,
+    and never less than the floor. With two workers about one unhinted search in four
+    overran by 0.04-0.23 s whatever the model's size (bqp100-1), while many short hinted
+    searches in a row did not (so a window alone forgets it); one worker: at most 0.01 s.
+    Floors: 0.01 s (one worker) and 0.15 s (more).
     """
 
     LATENCY_WINDOW = 8
@@ -184,11 +186,12 @@ class CpsatCosts:
                  latency: tuple = (0.01, 0.15)):
         self.build = build
         self.setup = setup
-        self.latencies = {one: deque([v], maxlen=self.LATENCY_WINDOW)
-                          for one, v in zip((True, False), latency)}
+        self.floor = {True: latency[0], False: latency[1]}
+        self.latencies = {one: deque(maxlen=self.LATENCY_WINDOW) for one in (True, False)}
 
     def latency(self, workers: int) -> float:
-        return max(self.latencies[workers <= 1])
+        one = workers <= 1
+        return max([self.floor[one], *self.latencies[one]])
 
     def build_seconds(self, compiled: Compiled) -> float:
         return self.build * _items(compiled)
