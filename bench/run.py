@@ -11,7 +11,7 @@ import argparse
 import sys
 import time
 
-from bench import kernel, memory, mix, repair_vs_resolve, service_overhead
+from bench import budget, kernel, memory, mix, repair_vs_resolve, service_overhead
 from bench.common import machine, write_results
 
 __all__ = ["main", "SECTIONS"]
@@ -22,6 +22,7 @@ SECTIONS = {
     "service": service_overhead,
     "memory": memory,
     "mix": mix,
+    "budget": budget,
 }
 
 

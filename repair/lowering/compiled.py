@@ -190,15 +190,15 @@ def compile_constraints(problem: Problem, constraints: Sequence[Any], *,
     n = problem.n
     h = problem.linear.copy()
     offset = problem.offset
-    qi, qj, qv = list(problem.pairs())
     extra_i, extra_j, extra_v = [], [], []
     counts: list = []
     rows: list = []
     fixed = np.full(n, -1, dtype=np.int8)
     conflicts: list = []
     for p in pieces:
-        for i, c in p.linear:
-            h[i] += c
+        if p.linear:  # in order, as a loop of h[i] += c would
+            li, lc = zip(*p.linear)
+            np.add.at(h, np.asarray(li, dtype=np.int64), np.asarray(lc, dtype=np.float64))
         offset += p.offset
         for i, j, c in p.quadratic:
             extra_i.append(i)
@@ -210,12 +210,17 @@ def compile_constraints(problem: Problem, constraints: Sequence[Any], *,
             if fixed[i] >= 0 and fixed[i] != b:
                 conflicts.append((problem.labels[i], p.name))
             fixed[i] = b
-    merged = Problem._assemble(
-        list(problem.labels), h,
-        np.concatenate([qi, np.asarray(extra_i, dtype=np.int64)]),
-        np.concatenate([qj, np.asarray(extra_j, dtype=np.int64)]),
-        np.concatenate([qv, np.asarray(extra_v, dtype=np.float64)]), offset, "BINARY", (),
-    )
+    if extra_i:
+        qi, qj, qv = problem.pairs()
+        merged = Problem._assemble(
+            list(problem.labels), h,
+            np.concatenate([qi, np.asarray(extra_i, dtype=np.int64)]),
+            np.concatenate([qj, np.asarray(extra_j, dtype=np.int64)]),
+            np.concatenate([qv, np.asarray(extra_v, dtype=np.float64)]), offset, "BINARY", (),
+        )
+    else:  # no new couplings: the problem's own (assembled) CSR, the new biases and offset
+        merged = Problem(problem.labels, h, problem.indptr, problem.indices, problem.data,
+                         float(offset), "BINARY", (), problem.index)
     a_indptr = np.zeros(len(rows) + 1, dtype=np.int64)
     a_indptr[1:] = np.cumsum([r.idx.size for r in rows]) if rows else []
     a_indices = (np.concatenate([r.idx for r in rows]) if rows else np.zeros(0)).astype(np.int32)
