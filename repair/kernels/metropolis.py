@@ -131,7 +131,7 @@ def _uniform(rng):
     """Next number of the splitmix64 stream in rng[0], as a float64 in [0, 1)."""
     z = rng[0] + _GOLDEN
     rng[0] = z
-    return (_mix(z) >> _S11) * (1.0 / 9007199254740992.0)
+    return nb.int64(_mix(z) >> _S11) * (1.0 / 9007199254740992.0)
 
 
 @nb.njit(cache=True, inline="always")
@@ -256,7 +256,7 @@ def _partner(i, r, x, fixed, R, rng):
 
 
 # ----------------------------------------------------------------- sweeps
-@nb.njit(cache=True)
+@nb.njit(cache=True, _nrt=False)
 def _sweep(Q, C, R, M, plan, o, ch, beta):
     """One Metropolis pass over the free variables at inverse temperature beta."""
     x, field, dcount, sat, dd, act, w, rng = (ch.x, ch.field, ch.dcount, ch.sat, ch.dd,
