@@ -243,6 +243,8 @@ def anneal(compiled: Compiled, starts: np.ndarray, *, depth: float, sweeps: int,
                        workers)
     R, n = starts.shape
     X = starts.copy()
+    pinned = compiled.fixed >= 0
+    X[:, pinned] = compiled.fixed[pinned]
     done = np.zeros(R, dtype=np.int64)
     late = late_arrays(compiled)
     moves = _moves(compiled)
