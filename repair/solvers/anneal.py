@@ -158,7 +158,7 @@ def _states(compiled: Compiled, X, name: str) -> np.ndarray:
     X = np.asarray(X)
     if X.ndim != 2 or X.shape[1] != compiled.n:
         raise InputError(name, f"must have shape (R, {compiled.n}), got {X.shape}")
-    if X.size and not np.isin(X, (0, 1)).all():
+    if X.size and (X.min() < 0 or X.max() > 1):
         raise InputError(name, "must hold 0/1 values")
     return np.ascontiguousarray(X, dtype=np.int8)
 
@@ -174,7 +174,7 @@ def _check(compiled, starts, origin, depth, sweeps, flip_price, max_flips, scale
         origin = _states(compiled, origin, "origin")
         if origin.shape != starts.shape:
             raise InputError("origin", f"must have the shape of starts {starts.shape}")
-    if not (isinstance(depth, (int, float)) and 0.0 < float(depth) <= 1.0):
+    if not (isinstance(depth, (int, float, np.floating)) and 0.0 < float(depth) <= 1.0):
         raise InputError("depth", f"must be in (0, 1], got {depth!r}")
     if int(sweeps) != sweeps or sweeps < 0:
         raise InputError("sweeps", f"must be an integer >= 0, got {sweeps!r}")
