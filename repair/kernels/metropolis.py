@@ -257,8 +257,39 @@ def _partner(i, r, x, fixed, R, rng):
 
 # ----------------------------------------------------------------- sweeps
 @nb.njit(cache=True, _nrt=False)
+def _sweep_plain(Q, M, plan, o, ch, beta):
+    """:func:`_sweep` for a problem without count penalties nor rows: the QUBO, the flip
+    price and the radius only (the same moves and random draws, less bookkeeping)."""
+    x, field, rng = ch.x, ch.field, ch.rng
+    indptr, indices, data = Q.indptr, Q.indices, Q.data
+    E = ch.num[0]
+    dist = ch.dist[0]
+    price, radius = plan.price, plan.radius
+    free = M.free
+    for f in range(free.size):
+        i = free[f]
+        xi = x[i]
+        away = xi == o[i]
+        if away and dist >= radius:
+            continue
+        d = (1.0 - 2.0 * xi) * field[i] + (price if away else -price)
+        if _accept(d, beta, rng):
+            sgn = 1.0 - 2.0 * xi
+            for p in range(indptr[i], indptr[i + 1]):
+                field[indices[p]] += sgn * data[p]
+            x[i] = 1 - xi
+            E += d
+            dist += 1 if away else -1
+    ch.num[0] = E
+    ch.dist[0] = dist
+
+
+@nb.njit(cache=True, _nrt=False)
 def _sweep(Q, C, R, M, plan, o, ch, beta):
     """One Metropolis pass over the free variables at inverse temperature beta."""
+    if C.cp_const.size == 0 and R.lo.size == 0:
+        _sweep_plain(Q, M, plan, o, ch, beta)
+        return
     x, field, dcount, sat, dd, act, w, rng = (ch.x, ch.field, ch.dcount, ch.sat, ch.dd,
                                                 ch.act, ch.w, ch.rng)
     E, V = ch.num[0], ch.num[1]
