@@ -15,7 +15,9 @@ penalty to that plan, weak = 0.05 x or strong = 1 x the median |coupling|) and b
 All single-threaded (the re-run has no threads). Costs are Compiled.evaluate of the late
 problem; "vs re-run %" is (cost - re-run) / |re-run| (negative: flipfix cheaper).
 
-    .venv/bin/python -m bench.anneal_depths [--quick]   (needs pip install dwave-samplers)
+    .venv/bin/python -m bench.anneal_depths [bqp250-1 G14 G67] [--seed S]
+
+(needs ``pip install dwave-samplers``)
 """
 
 from __future__ import annotations
@@ -38,12 +40,11 @@ READS = (1, 4, 16)
 STARTS = 8
 
 
-def _instances(quick: bool):
-    out = [("bqp250-1", read_bqp(BENCHMARKS / "bqp" / "bqp250-1.sparse")),
-           ("G14", read_gset(BENCHMARKS / "gset" / "G14.txt"))]
-    if not quick:
-        out.append(("G67", read_gset(BENCHMARKS / "gset" / "G67.txt")))
-    return out
+def _instances(names):
+    read = {"bqp250-1": lambda: read_bqp(BENCHMARKS / "bqp" / "bqp250-1.sparse"),
+            "G14": lambda: read_gset(BENCHMARKS / "gset" / "G14.txt"),
+            "G67": lambda: read_gset(BENCHMARKS / "gset" / "G67.txt")}
+    return [(name, read[name]()) for name in names]
 
 
 def _event(p, best, strength: float, seed: int):
@@ -110,11 +111,11 @@ def _ours(comp, lib, T: float, depth: float, seed: int):
     return _fit(once, T, 20)
 
 
-def run(quick: bool = False, seed: int = 0, log=print):
+def run(names=("bqp250-1", "G14", "G67"), seed: int = 0, log=print):
     warm_up()
     rows = []
     budgets = (0.1, 1.0)
-    for name, p in _instances(quick):
+    for name, p in _instances(names):
         lib = build_library(Instance(name, p), size=100, seed=seed)
         plan = lib[np.argmin(p.energies(lib))]
         for ev_name, strength in (("weak", 0.05), ("strong", 1.0)):
@@ -146,5 +147,7 @@ def run(quick: bool = False, seed: int = 0, log=print):
 
 
 if __name__ == "__main__":
-    run(quick="--quick" in sys.argv, seed=int(sys.argv[sys.argv.index("--seed") + 1])
-        if "--seed" in sys.argv else 0)
+    args = sys.argv[1:]
+    seed = int(args[args.index("--seed") + 1]) if "--seed" in args else 0
+    names = [a for a in args if not a.startswith("--") and not a.isdigit()]
+    run(names or ("bqp250-1", "G14", "G67"), seed=seed)

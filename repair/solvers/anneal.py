@@ -15,24 +15,29 @@ objective at the starts), so multiplying the model (and its soft penalties and f
 by 10 multiplies every temperature by 10 and leaves every Metropolis decision, hence the
 answers, unchanged. With ``depth`` in (0, 1]::
 
-    T_quench = T_QUENCH * scale                                   (0.01 scale)
-    T_turn   = T_quench * (T_FULL / T_QUENCH) ** depth            (0.01 .. 3 scale)
+    T_quench = T_QUENCH * scale                                   (0.03 scale)
+    T_turn   = T_quench * (T_FULL / T_QUENCH) ** depth            (0.03 .. 3 scale)
 
-* The quench, 0.01 scale, accepts a median-cost uphill move with probability e^-100 and
-  one of a twentieth of it with e^-5: below it Metropolis is a descent, which greedy then
-  finishes exactly.
+* The quench, 0.03 scale, accepts a median-cost uphill move with probability e^-33 and
+  one of a tenth of it with e^-3.3 (4 %): Metropolis is a descent there, which greedy then
+  finishes exactly. Measured (bench/anneal_depths.py, equal sweeps): 0.01 spent the last
+  third of a long anneal frozen on the Gset graphs (integer changes of 2 and 4) and found
+  0.3-0.4 % less cut on G67; 0.1 left the random sparse models with continuous-looking
+  changes too warm for the greedy pass to recover (0.15 % worse); 0.03 was the best or
+  within noise of it on all three.
 * The turning temperature is geometric in depth because what matters is its ratio to the
-  flip costs: depth 0 would be the quench itself (no move away from the start), depth 0.3
-  turns at 0.055 scale (a few cheap flips, the start's basin), depth 0.5 at 0.17, depth 0.7
-  at 0.54 (a median uphill move accepted one time in six: neighbouring basins), depth 1.0
-  at 3 scale, where a median uphill move is accepted with probability e^-1/3 = 0.72 and the
-  state is close to uniformly random, so depth 1.0 also starts from uniformly random free
-  bits (within ``max_flips`` of the origin it starts from the given state instead and the
-  hot sweeps randomise it) and skips the heating: a full anneal, for late optima far from
-  every start.
+  flip costs: depth -> 0 is the quench itself (no move away from the start), depth 0.3
+  turns at 0.12 scale (a few cheap flips: the start's basin), depth 0.5 at 0.3, depth 0.7
+  at 0.75 (a median uphill move accepted one time in four: neighbouring basins), depth
+  1.0 at 3 scale, where a median uphill move is accepted with probability e^-1/3 = 0.72
+  and the state is close to uniformly random, so depth 1.0 also starts from uniformly
+  random free bits (within ``max_flips`` of the origin it starts from the given state
+  instead and the hot sweeps randomise it) and skips the heating: a full anneal, for late
+  optima far from every start.
 * Schedule over ``sweeps`` sweeps: the first ``round(HEAT * sweeps)`` heat geometrically
-  from T_quench to T_turn (a gradual heating leaves the start's good structure in place
-  longer than a jump would); the rest cool geometrically from T_turn to T_quench.
+  from T_quench to T_turn, the rest cool geometrically from T_turn to T_quench. (Measured
+  on G14 at equal sweeps: heating over 0 or 10 % of the sweeps gave the same costs within
+  noise, 30 % slightly worse; 10 % is kept, the gentler of the two.)
 
 Hard rows: equality rows with equal coefficients (one-hot, "exactly k of") are kept by
 swap moves; every other row is an exact penalty whose weight starts at
@@ -68,7 +73,7 @@ __all__ = ["AnnealOutput", "anneal", "flip_scale", "temperatures", "warm_up",
            "T_QUENCH", "T_FULL", "HEAT"]
 
 #: Quench temperature, in units of scale (see the module docstring).
-T_QUENCH = 0.01
+T_QUENCH = 0.03
 #: Turning temperature at depth 1.0, in units of scale.
 T_FULL = 3.0
 #: Share of the sweeps spent heating from the quench to the turning temperature.
