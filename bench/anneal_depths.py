@@ -18,6 +18,7 @@ Compiled.evaluate of the late problem; "vs re-run %" is (cost - re-run) / |re-ru
 (negative: flipfix cheaper).
 
     .venv/bin/python -m bench.anneal_depths [bqp250-1 G14 G67 rand5000] [--seed S] [--weak]
+        [--sa-library SWEEPS]
 
 (needs ``pip install dwave-samplers``)
 """
@@ -41,7 +42,7 @@ from bench.common import BENCHMARKS, Instance, build_library, random_sparse, tab
 #: shared machine it is far steadier than the wall clock (which other processes stretch).
 _clock = time.thread_time
 
-DEPTHS = (0.3, 0.5, 0.7, 0.85, 1.0)
+DEPTHS = (0.15, 0.3, 0.5, 0.7, 0.85, 1.0)
 READS = (1, 4, 16)
 STARTS = (1, 8)
 
@@ -117,14 +118,28 @@ def _ours(comp, lib, T: float, depth: float, seed: int, starts: int):
     return _fit(once, T, 20)
 
 
+def _sa_library(p, size: int, sweeps: int, seed: int) -> np.ndarray:
+    """``size`` samples of dwave-samplers' SA on the base model (a library as a good
+    annealer would publish it): int8 (size, n) in p's label order."""
+    from dwave.samplers import SimulatedAnnealingSampler
+
+    ss = SimulatedAnnealingSampler().sample(p.to_bqm(), num_reads=size, num_sweeps=sweeps,
+                                            seed=seed)
+    return np.asarray(ss.record.sample)[:, [ss.variables.index(v) for v in p.labels]].astype(
+        np.int8)
+
+
 def run(names=("bqp250-1", "G14", "G67"), seed: int = 0, weak_only: bool = False,
-        log=print):
+        sa_library: int = 0, log=print):
+    """``sa_library`` > 0: the library is 16 SA samples of that many sweeps each instead of
+    100 greedy local minima of random starts."""
     warm_up()
     rows = []
     budgets = (0.1, 1.0)
     events = (("weak", 0.05),) if weak_only else (("weak", 0.05), ("strong", 1.0))
     for name, p in _instances(names):
-        lib = build_library(Instance(name, p), size=100, seed=seed)
+        lib = (_sa_library(p, 16, sa_library, seed) if sa_library
+               else build_library(Instance(name, p), size=100, seed=seed))
         plan = lib[np.argmin(p.energies(lib))]
         for ev_name, strength in events:
             comp = compile_constraints(p, _event(p, plan, strength, seed))
@@ -163,4 +178,6 @@ if __name__ == "__main__":
     args = sys.argv[1:]
     seed = int(args[args.index("--seed") + 1]) if "--seed" in args else 0
     names = [a for a in args if not a.startswith("--") and not a.isdigit()]
-    run(names or ("bqp250-1", "G14", "G67"), seed=seed, weak_only="--weak" in args)
+    sa = int(args[args.index("--sa-library") + 1]) if "--sa-library" in args else 0
+    run(names or ("bqp250-1", "G14", "G67"), seed=seed, weak_only="--weak" in args,
+        sa_library=sa)
