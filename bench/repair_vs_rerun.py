@@ -87,7 +87,7 @@ CONFIG = {
 }
 
 COLUMNS = ["model", "n", "event", "T s", "flipfix", "d", "wall/T", "SA", "d SA", "SA wall/T",
-           "sweeps", "CP@T", "d CP@T", "CP@10T", "d CP@10T", "10T s", "vs SA %",
+           "sweeps", "SA rows", "CP@T", "d CP@T", "CP@10T", "d CP@10T", "10T s", "vs SA %",
            "<=SA", "<=CP@10T", "wall", "d at tie"]
 
 
@@ -269,6 +269,8 @@ class SaRerun:
                                                                              spin.quadratic))
         self.prepare_seconds = time.perf_counter() - t
         self.size, self.couplings = F, len(J)
+        # float rounding of the annealer's energies: about 1e-9 of the coefficients' total
+        self.tolerance = 1e-9 * (float(np.abs(h).sum() + np.abs(J).sum()) + abs(self.offset)) + 1e-9
         self.slack = sum(1 for lab in labels if isinstance(lab, str))
         # columns of X (n) filled from the annealer's variables; the rest are slack
         self.fixed_idx = np.flatnonzero(comp.fixed >= 0)
@@ -312,7 +314,9 @@ class SaRerun:
 
     def calibrate(self, *, probe: float = 0.25) -> None:
         """Overhead (best of two 1-sweep calls) and seconds per sweep (doubling the sweeps
-        until a call lasts ``probe`` seconds), measured on this model with these threads."""
+        until a call lasts ``probe`` seconds, then the best of two calls at that count),
+        measured on this model with these threads. Best-of filters out the moments another
+        process held a core, which would otherwise shorten the re-run's anneal."""
         self.overhead = min(self.sample(1, self.seed)[2] for _ in range(2))
         s = 8
         while True:
@@ -320,6 +324,7 @@ class SaRerun:
             if t >= probe or s >= 2**22:
                 break
             s *= 2
+        t = min(t, self.sample(s, self.seed)[2])
         self.per_sweep = max((t - self.overhead) / (s - 1), 1e-9)
 
     def sweeps_for(self, T: float) -> int:
@@ -334,7 +339,7 @@ class SaRerun:
         sweeps = self.sweeps_for(T)
         X, E, wall = self.sample(sweeps, self.seed + 1)
         ev = self.comp.evaluate(X)
-        tol = 1e-6 * max(1.0, float(np.abs(ev.cost).max()))
+        tol = self.tolerance + 1e-9 * max(1.0, float(np.abs(ev.cost).max()))
         gap = (E - ev.cost)[ev.feasible]
         if gap.size and (gap.min() < -tol or (not self.slack and gap.max() > tol)):
             raise AssertionError(f"annealer energy and flipfix cost disagree by {gap.min():g}"
@@ -450,7 +455,8 @@ def run(*, quick: bool = False, seed: int = 0, log=print) -> dict:
                 row = {"model": name, "n": p.n, "event": ename, "T s": T,
                        "flipfix": ff["cost"], "d": ff["d"], "wall/T": wall / T,
                        "SA": sa["cost"], "d SA": sa["d"], "SA wall/T": sa["wall"] / T,
-                       "sweeps": sa["sweeps"], "CP@T": cp["T"]["cost"],
+                       "sweeps": sa["sweeps"], "SA rows": len(comp.rows) or "-",
+                       "CP@T": cp["T"]["cost"],
                        "d CP@T": "-" if cp["T"]["d"] is None else cp["T"]["d"],
                        "CP@10T": cp["10T"]["cost"],
                        "d CP@10T": "-" if cp["10T"]["d"] is None else cp["10T"]["d"],
@@ -467,8 +473,11 @@ def run(*, quick: bool = False, seed: int = 0, log=print) -> dict:
                             "cp_10T_status": cp["10T"]["status"],
                             "cp_10T_wall": cp["10T"]["wall"],
                             "published_original": mdl.inst.published})
+    from importlib.metadata import version
+
     return {"rows": raw, "columns": COLUMNS, "table_rows": rows, "workers": WORKERS,
-            "sa_reads": SA_READS, "quick": quick, "estimate_seconds": est,
+            "sa_reads": SA_READS, "dwave_samplers": version("dwave-samplers"),
+            "quick": quick, "estimate_seconds": est,
             "summary": summarize(rows),
             "config": {k: v for k, v in cfg.items()}}
 
@@ -478,8 +487,11 @@ def summarize(rows: list) -> dict:
     le_sa = sum(r["<=SA"] == "PASS" for r in rows)
     far = sum(r["<=SA"] == "MISS" for r in rows)
     ties = [r for r in rows if r["d at tie"] != "-"]
+    soft = [r for r in rows if r["SA rows"] == "-"]
     return {
         "rows": n, "le_sa": le_sa, "worse_than_005": far,
+        "soft_rows": len(soft), "soft_le_sa": sum(r["<=SA"] == "PASS" for r in soft),
+        "soft_worse_than_005": sum(r["<=SA"] == "MISS" for r in soft),
         "sa_target": "PASS" if n and le_sa >= 0.95 * n and far == 0 else "MISS",
         "le_cp10": sum(r["<=CP@10T"] == "PASS" for r in rows),
         "wall_ok": sum(r["wall"] == "PASS" for r in rows),
@@ -499,7 +511,10 @@ def render(section: dict) -> str:
             f"x {section['sa_reads']} read(s), sweeps calibrated to T)")
     lines = [
         f"- flipfix <= SA re-run in {s['le_sa']}/{n} rows (target >= 95 %), worse by more "
-        f"than 0.05 % in {s['worse_than_005']} (target 0): {s['sa_target']}",
+        f"than 0.05 % in {s['worse_than_005']} (target 0): {s['sa_target']}; in the "
+        f"{s['soft_rows']} rows where the re-run's model carries no row penalty (no hard "
+        f"row besides fixings): <= in {s['soft_le_sa']}, worse by more than 0.05 % in "
+        f"{s['soft_worse_than_005']}",
         f"- flipfix <= CP-SAT@10T in {s['le_cp10']}/{n} rows (target all): "
         f"{_verdict(s['le_cp10'] == n)}" + (f" (10T capped at {capped:g} s: quick mode)"
                                             if capped else ""),
@@ -508,9 +523,12 @@ def render(section: dict) -> str:
         f"tied rows: {_verdict(s['ties_ok'] == s['ties'])}",
         "",
         "Costs are the late objective by `Compiled.evaluate` (lower is better); inf: no "
-        "feasible answer (an SA read that breaks a hard row, penalised with slack variables "
-        "in its model, counts as inf). d: Hamming distance from the published plan. "
-        "`<=SA` within: worse than the re-run by at most 0.05 %. Timings on a shared "
-        "2-core machine are noisy.",
+        "feasible answer. SA rows: hard rows (knapsack capacity, encodings, the cardinality "
+        "window) the re-run carries as quadratic penalties with slack variables, multiplier "
+        "= the largest change one flip makes to the objective; an SA answer that breaks one "
+        "counts as inf. d: Hamming distance from the published plan. vs SA %: how much "
+        "flipfix's cost exceeds the re-run's, in % of |re-run| (negative: cheaper). "
+        "`<=SA` within: worse than the re-run by at most 0.05 %. Timings on a shared 2-core "
+        "machine are noisy (SA wall/T shows how well its calibration held).",
     ]
     return table(section["table_rows"], COLUMNS, title=head) + "\n\n" + "\n".join(lines)
