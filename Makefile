@@ -11,8 +11,8 @@ $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
 	$(BIN)/pip install --quiet --upgrade pip
 	$(BIN)/pip install --quiet -e '.[test]'
-	@echo "compiling the greedy kernels (once per machine; cached beside the kernel modules)"
-	$(BIN)/python -c "from flipfix.repair.solvers.greedy import warm_up; warm_up()"
+	@echo "compiling the search kernels (once per machine; cached beside the kernel modules)"
+	$(BIN)/python -c "from flipfix.repair.api import warm_up; warm_up()"
 	touch $(STAMP)
 
 demo: $(STAMP)

@@ -403,7 +403,7 @@ def _estimate(cfg: dict) -> float:
 
 
 def run(*, quick: bool = False, seed: int = 0, log=print) -> dict:
-    from flipfix.repair.solvers.greedy import warm_up
+    from flipfix.repair.api import warm_up
 
     try:
         import dwave.samplers  # noqa: F401

@@ -19,7 +19,19 @@ from flipfix.repair.kernels.scores import Scorer, distances
 from flipfix.repair.solvers.portfolio import DEFAULT_MIX, Attempt, Mix, attempt_scores, run_plan
 from flipfix.repair.result import METHODS, AuditRow, RepairResult, Solution
 
-__all__ = ["repair", "check_options", "result_seconds", "search_deadline", "plan_reference"]
+__all__ = ["repair", "warm_up", "check_options", "result_seconds", "search_deadline",
+           "plan_reference"]
+
+
+def warm_up() -> None:
+    """Load (or, on a machine's first run, compile) every search kernel once per process:
+    greedy, the scorer and annealing. Set-up, never counted against a budget."""
+    from flipfix.repair.kernels import scores
+    from flipfix.repair.solvers import anneal, greedy
+
+    greedy.warm_up()
+    scores.warm_up()
+    anneal.warm_up()
 
 
 def check_options(*, method: Any, time_limit: Any, max_flips: Any, flip_price: Any, seed: Any,
@@ -89,7 +101,7 @@ def plan_reference(problem: Problem, constraints: Sequence[Any]):
     ``DecisionChangePenalty``: the bits of every decision in its reference, at that value's
     code), as (positions int64, bits int8); None when there is none. The constraints are
     already validated (lowered) here."""
-    from flipfix.repair.model.constraints import HammingPenalty
+    from flipfix.repair.model.constraints import DecisionChangePenalty, HammingPenalty
 
     for c in constraints:
         if isinstance(c, HammingPenalty):
@@ -97,14 +109,15 @@ def plan_reference(problem: Problem, constraints: Sequence[Any]):
             idx = np.fromiter(map(problem.index.__getitem__, ref.keys()), np.int64, len(ref))
             values = np.fromiter(ref.values(), np.float64, len(ref))
             return idx, problem.from_caller(values, "reference")
-        if type(c).__name__ == "DecisionChangePenalty":
-            from flipfix.repair.model.encodings import _find, _index_of, decision_bits, encode
+        if isinstance(c, DecisionChangePenalty):
+            from flipfix.repair.model.encodings import (decision_bits, encode, find_decision,
+                                                        value_index)
 
             idx, bits = [], []
             for name, value in c.reference.items():
-                d = _find(problem, name, "reference")
+                d = find_decision(problem, name, "reference")
                 idx.append(decision_bits(problem, d))
-                bits.append(encode(d, _index_of(d, value, "reference")))
+                bits.append(encode(d, value_index(d, value, "reference")))
             return np.concatenate(idx), np.concatenate(bits).astype(np.int8)
     return None
 
@@ -156,11 +169,7 @@ def repair(
     """
     # one-time costs per process, kept out of the budget: the compiled kernels (loaded
     # from the cache, or compiled on a machine's first run) and OR-Tools
-    from flipfix.repair.kernels import scores
-    from flipfix.repair.solvers.greedy import warm_up
-
     warm_up()
-    scores.warm_up()
     if method in ("portfolio", "cpsat"):
         from flipfix.repair.solvers import cpsat  # noqa: F401
     with _collector_paused():

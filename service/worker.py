@@ -19,7 +19,7 @@ the next job in its slot. Each slot has:
     [4] phase sequence number (odd while the worker writes the phase name)
 
   and a row of a shared byte array, ``PHASE_BYTES`` wide, holding the core's phase name
-  (``greedy``, ``kicks``, ``neighbourhood``, ``full``, ``cpsat``, ``stress``, ...). The worker
+  (``greedy``, ``anneal``, ``neighbourhood``, ``full``, ``cpsat``, ``stress``, ...). The worker
   writes the row before it sends the "progress" message, so the row read after any message
   (or after the job's result) is at least as new as that message.
 
@@ -153,7 +153,7 @@ def _run_call(slot: int, gen: int, fn, args: tuple, kwargs: dict):
     try:
         # the compiled kernels load (or, on a machine's first run, compile) before the job's
         # budget clock starts: compilation is set-up, not search time
-        from flipfix.repair.solvers.greedy import warm_up
+        from flipfix.repair.api import warm_up
 
         warm_up()
         tell("started")

@@ -24,7 +24,7 @@ from flipfix.repair import CandidateSet, Decision, InputError, Problem, repair
 from flipfix.repair.api import plan_reference, result_seconds, search_deadline
 from flipfix.repair.kernels.scores import Scorer, distances
 from flipfix.repair.lowering.compiled import compile_constraints
-from flipfix.repair.model import encodings as enc
+from flipfix.repair.model import constraints as enc
 from flipfix.repair.model.constraints import FixVariables, HammingPenalty, LinearConstraint
 from flipfix.repair.solvers import portfolio as pf
 from flipfix.repair.solvers.greedy import greedy_repair
@@ -130,7 +130,7 @@ def test_plan_starts_nothing_after_its_deadline(model):
                       max_flips=None, flip_price=0.0, seed=0, workers=1)
     assert {a.method for a in out.attempts} == {"unrepaired"}
     assert out.stats["greedy_done"] == 0
-    assert "cpsat_build_seconds" not in out.stats and "kick_rounds" not in out.stats
+    assert "cpsat_build_seconds" not in out.stats and "local_rounds" not in out.stats
     assert out.stats["fewest_flips_status"].startswith("skipped")
 
 
@@ -227,25 +227,6 @@ def test_scores_with_decisions_equal_the_evaluation():
     assert np.allclose(viol, evA.violation, rtol=0, atol=1e-9)
 
 
-def test_front_built_from_arrays_equals_pareto_front():
-    from flipfix.repair.api import _front
-    from flipfix.repair.audit.pareto import pareto_front
-    from flipfix.repair.result import ParetoPoint
-
-    rng = np.random.default_rng(12)
-    A = 200
-    ks = rng.integers(0, 10, size=A)
-    cost = rng.integers(-20, 0, size=A).astype(float)  # many ties
-    flips = rng.integers(0, 15, size=A)
-    feas = rng.random(A) < 0.8
-    attempts = [pf.Attempt(int(k), np.zeros(1, np.int8), f"m{i}", 0.0) for i, k in enumerate(ks)]
-    ids = [f"c{k}" for k in range(10)]
-    want = pareto_front(ParetoPoint(float(cost[i]), int(flips[i]), ids[ks[i]], f"m{i}")
-                        for i in range(A) if feas[i])
-    assert _front(attempts, ks, cost, flips, feas, ids) == want
-
-
-# ------------------------------------------------------------------ early stop
 def _optimum(p: Problem, constraints) -> tuple[float, np.ndarray]:
     """Cheapest feasible late cost by dimod.ExactSolver over every assignment."""
     ss = dimod.ExactSolver().sample(p.to_bqm())
@@ -266,7 +247,7 @@ def test_a_proof_of_optimality_stops_the_search():
     res = repair(p, CandidateSet.from_array(p, X0), cs, time_limit=30.0, workers=1)
     assert res.status == "optimal"
     assert "optimal" in res.stats["stopped_early"]
-    assert "kick_rounds" not in res.stats  # nothing after the proof but the closing steps
+    assert "local_rounds" not in res.stats  # nothing after the proof but the closing steps
     assert res.best.feasible and res.best.cost == pytest.approx(best, abs=1e-9)
 
 

@@ -43,7 +43,7 @@ from planted import ALPHA, planted as _planted, state as _state  # noqa: E402  (
 RIGID, W = 3, 3.0
 GROUPS = [4, 8]
 BUDGET = 120.0  # whole-run budget: greedy needs milliseconds; figures must not depend on load
-CORE_PHASES = {"greedy", "kicks", "neighbourhood", "full", "cpsat"}
+CORE_PHASES = {"greedy", "anneal", "neighbourhood", "full", "cpsat"}
 
 
 def planted(groups=GROUPS) -> Problem:

@@ -71,11 +71,6 @@ def _random_library(n: int, k: int, *, seed: int):
     return problem, dimod.BinaryQuadraticModel(h, J, 0.0, "BINARY"), X
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "the core overruns its budget here: repair() spends about 0.3 s of CPU after a 0.15 s "
-    "budget on 2,000 x 500 (13 passes of csr_energies in the portfolio's _objective and "
-    "api._build), more than the whole 0.3 s deadline; strict: remove this mark when repair "
-    "keeps its budget"), raises=grpc.RpcError)
 def test_a_0_3_s_deadline_on_a_2000_by_500_library_gets_an_answer(tmp_path):
     problem, bqm, X = _random_library(2000, 500, seed=5)
     fixed = {v: 1 for v in range(20)}

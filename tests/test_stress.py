@@ -272,7 +272,7 @@ def _roster_library(k=8):
 @pytest.mark.parametrize("kw", [dict(unavailable_values=2), dict(must_change=2),
                                 dict(unavailable_values=1, must_change=3)])
 def test_decision_families_keep_decisions_valid_and_change_what_they_say(kw):
-    from flipfix.repair.model.encodings import ForbidValues
+    from flipfix.repair.model.constraints import ForbidValues
 
     p, pref, plans, cs = _roster_library()
     fam = ScenarioFamily(hamming_weight=0.0, **kw)

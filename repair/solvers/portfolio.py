@@ -6,9 +6,11 @@ candidate it started from); :mod:`flipfix.repair.api` scores them and builds the
 Portfolio, within a budget of T seconds:
 
 1. greedy repair of every candidate, best-ranked first (it may use up to 60% of T);
-2. iterated local search: random kicks of a few free variables applied to the best
-   repaired solutions, each followed by greedy descent, improvements kept — a share
-   ``Mix.kicks`` of what is left;
+2. local search from the best repaired answers — a share ``Mix.kicks`` of what is left:
+   rounds of annealing that starts at an answer, heats to a turning depth and cools back
+   (classical reverse annealing, :mod:`flipfix.repair.solvers.anneal`), or of random kicks
+   followed by greedy descent; a bandit (:func:`_local_search`) gives each round to the
+   arm (a depth, or the kicks) that has lowered the best objective most often;
 3. local branching: CP-SAT around the candidate(s) whose repaired results rank best,
    each hinted with its result, within ``flips + margin`` of the candidate (or within
    ``max_flips``) — ``Mix.neighbourhood_share`` of what is left;
@@ -381,16 +383,13 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
     if fin.size:
         cur[fin] = np.vstack([rows[k] for k in fin.tolist()])
     left = deadline - time.perf_counter()
-    kick_share = mix.kicks
+    local_share = mix.kicks
     if mix.kicks > 0 and not cp.affordable((1.0 - mix.kicks) * left):
-        kick_share = 1.0  # CP-SAT could not even be built in its share: kicks take it all
-    kick_deadline = time.perf_counter() + kick_share * left
-    rounds, kept = _kicks(compiled, X0, cur, obj, feasible, flips, done, out, scorer,
-                          deadline=kick_deadline, max_flips=max_flips, flip_price=flip_price,
-                          seed=seed, cancel=cancel, workers=workers)
-    out.stats["kick_rounds"] = rounds
-    out.stats["kick_improvements"] = kept
-    report(done=K, total=K, phase="kicks")
+        local_share = 1.0  # CP-SAT could not even be built in its share: this stage takes it all
+    local_deadline = time.perf_counter() + local_share * left
+    _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer,
+                  deadline=local_deadline, max_flips=max_flips, flip_price=flip_price,
+                  seed=seed, cancel=cancel, workers=workers, report=report)
     if stopped():
         return out
     order = [int(k) for k in _ranked(feasible, obj) if done[k]]
@@ -637,6 +636,106 @@ def kick_masks(rng: np.random.Generator, rows: int, width: int, top: int) -> np.
     low = np.partition(keys, top - 1, axis=1)[:, :top]
     low.sort(axis=1)
     return keys <= low[np.arange(rows), size - 1][:, None]
+
+
+#: The local-search stage's arms: annealing from the best answers at these turning depths
+#: (bench/anneal_depths.py: 0.15-0.5 paid near good candidates, 0.5-0.7 far from them), and
+#: random kicks each followed by greedy descent. The first rounds try each arm in this order.
+ARMS = (("anneal", 0.3), ("anneal", 0.5), ("anneal", 0.7), ("anneal", 0.15), ("kicks", None))
+#: Sweeps of an arm's first annealing round (it measures the sweep time).
+FIRST_SWEEPS = 16
+#: A round aims at this share of the stage's time left (but at least ``MIN_ROUND`` s), so
+#: the bandit sees several rounds and a good arm gets longer chains as it keeps paying.
+ROUND_SHARE = 0.2
+MIN_ROUND = 0.005
+
+
+def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *, deadline,
+                  max_flips, flip_price, seed, cancel, workers, report):
+    """Rounds of annealing from the best answers (classical reverse annealing,
+    :func:`flipfix.repair.solvers.anneal.anneal`) or of kicks (:func:`_kicks`) until
+    ``deadline``, in place on each candidate's current answer ``cur`` and its scores.
+
+    Which arm runs is a bandit's choice (UCB1 over ``ARMS``): a round's reward is 1 when it
+    lowered the best feasible objective, else 0, so the budget moves to what improves.
+    An annealing round runs one chain per worker thread from the best distinct current
+    answers (on large models one long chain beat several short ones at equal time), each
+    chain attributed to the candidate its start belongs to (flips and price from it). The
+    temperature unit is the model's own (:func:`flipfix.repair.solvers.anneal.flip_scale`
+    of the starts), measured once. Records rounds and wins per arm in ``out.stats``.
+    """
+    from flipfix.repair.solvers.anneal import anneal, flip_scale
+
+    stopped = lambda: (cancel is not None and cancel.is_set()) or time.perf_counter() >= deadline
+    pulls = np.zeros(len(ARMS))
+    wins = np.zeros(len(ARMS))
+    per_sweep = {}  # arm -> measured seconds per sweep of one chain
+    scale = None
+    chains = max(1, workers)
+    rnd = 0
+    while not stopped():
+        ranked = [int(k) for k in _ranked(feasible, obj) if done[k]]
+        if not ranked:
+            break
+        best_before = min((obj[k] for k in ranked if feasible[k]), default=np.inf)
+        if rnd < len(ARMS):
+            a = rnd
+        else:
+            mean = wins / np.maximum(pulls, 1)
+            a = int(np.argmax(mean + np.sqrt(2.0 * np.log(rnd) / np.maximum(pulls, 1))))
+        kind, depth = ARMS[a]
+        left = deadline - time.perf_counter()
+        round_end = time.perf_counter() + max(MIN_ROUND, ROUND_SHARE * left)
+        if kind == "kicks":
+            _kicks(compiled, X0, cur, obj, feasible, flips, done, out, scorer,
+                   deadline=min(round_end, deadline), max_flips=max_flips,
+                   flip_price=flip_price, seed=seed + rnd, cancel=cancel, workers=workers)
+        else:
+            seen, order = set(), []
+            for k in ranked:
+                key = cur[k].tobytes()
+                if key not in seen:
+                    seen.add(key)
+                    order.append(k)
+                if len(order) == chains:
+                    break
+            if scale is None:
+                scale = flip_scale(compiled, cur[order])
+            if a in per_sweep:
+                sweeps = int(np.clip((round_end - time.perf_counter()) / per_sweep[a], 4, 10**7))
+            else:
+                sweeps = FIRST_SWEEPS
+            t = time.perf_counter()
+            res = anneal(compiled, cur[order], depth=depth, sweeps=sweeps, seed=seed + rnd,
+                         origin=X0[order], flip_price=flip_price, max_flips=max_flips,
+                         scale=scale, workers=workers, deadline=deadline, cancel=cancel)
+            ran = int(res.sweeps.max(initial=0))
+            if ran > 0:
+                per_sweep[a] = max(1e-7, (time.perf_counter() - t) / ran)
+            new_cost, new_viol, new_flips = scorer.near(res.X, order)
+            new_obj = new_cost + flip_price * new_flips
+            inside = np.ones(len(order), bool) if max_flips is None else new_flips <= max_flips
+            each = res.seconds / max(1, len(order))
+            for pos, k in enumerate(order):
+                if new_viol[pos] == 0.0 and inside[pos] and (
+                        not feasible[k] or new_obj[pos] < obj[k] - 1e-9):
+                    cur[k] = res.X[pos]
+                    obj[k], feasible[k], flips[k] = new_obj[pos], True, new_flips[pos]
+                    out.attempts.append(Attempt(k, res.X[pos].copy(), "anneal", each,
+                                                float(new_cost[pos]), 0.0, int(new_flips[pos])))
+        best_after = min((obj[k] for k in ranked if feasible[k]), default=np.inf)
+        pulls[a] += 1
+        wins[a] += best_after < best_before
+        rnd += 1
+        report(done=len(ranked), total=X0.shape[0], phase="anneal",
+               best_cost=None if not np.isfinite(best_after) else float(best_after))
+    out.stats["local_rounds"] = {_arm_name(arm): int(n) for arm, n in zip(ARMS, pulls) if n}
+    out.stats["local_wins"] = {_arm_name(arm): int(w) for arm, w in zip(ARMS, wins) if w}
+
+
+def _arm_name(arm) -> str:
+    kind, depth = arm
+    return kind if depth is None else f"{kind}@{depth:g}"
 
 
 def _kicks(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *, deadline, max_flips,

@@ -50,7 +50,7 @@ def result_to_reply(res: RepairResult, *, audit_limit: int | None = None,
         penalties=_named(b.penalties), flips=int(b.flips), feasible=bool(b.feasible),
         violation=float(b.violation), violations=_named(b.violations), method=b.method,
         changes=[_change(d, o, n) for d, o, n in b.changes],
-        decisions_changed=int(b.decisions_changed))
+        decisions_changed=int(b.decisions_changed), plan_distance=b.plan_distance)
     rows = res.audit if audit_limit is None else res.audit[:audit_limit]
     return pb.RepairReply(
         status=res.status, message=res.message, method=res.method, seed=int(res.seed),
@@ -100,7 +100,8 @@ def reply_to_result(r: pb.RepairReply, problem: Problem | None = None) -> Repair
         feasible=bool(b.feasible), violation=b.violation,
         violations={p.name: p.value for p in b.violations}, method=b.method,
         changes=[(c.decision, _value(c, "old_value"), _value(c, "new_value")) for c in b.changes],
-        decisions_changed=int(b.decisions_changed), repaired_from=b.repaired_from)
+        decisions_changed=int(b.decisions_changed), repaired_from=b.repaired_from,
+        plan_distance=b.plan_distance if b.HasField("plan_distance") else None)
     audit = [AuditRow(candidate_id=a.candidate_id, cost_before=a.cost_before,
                       feasible_before=bool(a.feasible_before), cost_after=a.cost,
                       objective_after=a.objective, flips=int(a.flips), feasible=bool(a.feasible),

@@ -529,7 +529,7 @@ class DecisionChange(_message.Message):
     def __init__(self, decision: _Optional[str] = ..., old_value: _Optional[_Union[DecisionValue, _Mapping]] = ..., new_value: _Optional[_Union[DecisionValue, _Mapping]] = ...) -> None: ...
 
 class Solution(_message.Message):
-    __slots__ = ("candidate_id", "values", "repaired_from", "cost", "objective", "base_energy", "penalties", "flips", "feasible", "violation", "violations", "method", "changes", "decisions_changed")
+    __slots__ = ("candidate_id", "values", "repaired_from", "cost", "objective", "base_energy", "penalties", "flips", "feasible", "violation", "violations", "method", "changes", "decisions_changed", "plan_distance")
     CANDIDATE_ID_FIELD_NUMBER: _ClassVar[int]
     VALUES_FIELD_NUMBER: _ClassVar[int]
     REPAIRED_FROM_FIELD_NUMBER: _ClassVar[int]
@@ -544,6 +544,7 @@ class Solution(_message.Message):
     METHOD_FIELD_NUMBER: _ClassVar[int]
     CHANGES_FIELD_NUMBER: _ClassVar[int]
     DECISIONS_CHANGED_FIELD_NUMBER: _ClassVar[int]
+    PLAN_DISTANCE_FIELD_NUMBER: _ClassVar[int]
     candidate_id: str
     values: PackedAssignments
     repaired_from: str
@@ -558,7 +559,8 @@ class Solution(_message.Message):
     method: str
     changes: _containers.RepeatedCompositeFieldContainer[DecisionChange]
     decisions_changed: int
-    def __init__(self, candidate_id: _Optional[str] = ..., values: _Optional[_Union[PackedAssignments, _Mapping]] = ..., repaired_from: _Optional[str] = ..., cost: _Optional[float] = ..., objective: _Optional[float] = ..., base_energy: _Optional[float] = ..., penalties: _Optional[_Iterable[_Union[NamedValue, _Mapping]]] = ..., flips: _Optional[int] = ..., feasible: _Optional[bool] = ..., violation: _Optional[float] = ..., violations: _Optional[_Iterable[_Union[NamedValue, _Mapping]]] = ..., method: _Optional[str] = ..., changes: _Optional[_Iterable[_Union[DecisionChange, _Mapping]]] = ..., decisions_changed: _Optional[int] = ...) -> None: ...
+    plan_distance: int
+    def __init__(self, candidate_id: _Optional[str] = ..., values: _Optional[_Union[PackedAssignments, _Mapping]] = ..., repaired_from: _Optional[str] = ..., cost: _Optional[float] = ..., objective: _Optional[float] = ..., base_energy: _Optional[float] = ..., penalties: _Optional[_Iterable[_Union[NamedValue, _Mapping]]] = ..., flips: _Optional[int] = ..., feasible: _Optional[bool] = ..., violation: _Optional[float] = ..., violations: _Optional[_Iterable[_Union[NamedValue, _Mapping]]] = ..., method: _Optional[str] = ..., changes: _Optional[_Iterable[_Union[DecisionChange, _Mapping]]] = ..., decisions_changed: _Optional[int] = ..., plan_distance: _Optional[int] = ...) -> None: ...
 
 class AuditRow(_message.Message):
     __slots__ = ("candidate_id", "cost_before", "feasible_before", "cost", "objective", "flips", "feasible", "violation", "method", "seconds", "decisions_changed", "encoding_issues")
