@@ -5,7 +5,7 @@ per flip at worst) and the general path that ``greedy_repair`` takes once a late
 constraint brings a hard row or a count penalty (grouped tournament trees, see
 repair/greedy.py). Every figure counts accepted flips (``steps``) and divides by the
 kernel's wall time, set-up included; each figure is the best of ``REPEAT`` runs (this
-machine's timings vary by up to ~40 % from run to run). Target (issue 6): >= 1e6 flips/s
+machine's timings vary by up to ~40 % from run to run). Target: >= 1e6 flips/s
 for K=1000 candidates on the n=1000 sparse model, from random and near-optimal starts.
 """
 

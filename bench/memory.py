@@ -4,7 +4,7 @@ The child builds the n=5000 sparse model, makes K local minima (``descend_qubo``
 random starts), holds them as a ``CandidateSet``, stores them in the service's SQLite store
 and loads them back, then runs the portfolio repair of scenario (a). It reports peak RSS
 (``resource.getrusage(RUSAGE_SELF).ru_maxrss``) after each stage and the tracemalloc peak of
-Python-level allocations (numpy arrays included). Target (issue 6): well under 2 GiB.
+Python-level allocations (numpy arrays included). Target: well under 2 GiB.
 """
 
 from __future__ import annotations

@@ -5,7 +5,7 @@ late scenario: flipfix portfolio repair at budget T against CP-SAT on the new pr
 no hint (same worker count) at T and at 10T. Costs are the late problem's objective
 (``Compiled.evaluate``), energy for the knapsacks being minus the profit.
 
-Targets (issue 6), per row:
+Targets, per row:
 * cost: the repaired cost at T is no worse than the from-scratch cost at 10T
   (an infeasible or missing answer counts as +inf);
 * flips: the repaired answer's flips (from the candidate it came from) are at least 30 %

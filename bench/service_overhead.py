@@ -5,7 +5,7 @@ Two methods: ``greedy`` (little compute, so the overhead shows) and ``portfolio`
 The in-process baseline calls ``flipfix.repair.repair`` with the same options the server uses
 (CP-SAT workers=1). Serialisation share: client-side request building (domain -> proto) and
 encoding, server-side decoding and conversion (proto -> domain), reply building, timed
-separately with the service's own converters. Target (issue 6): service/in-process < 1.5x.
+separately with the service's own converters. Target: service/in-process < 1.5x.
 Candidates travel packed (``CandidateBatch``: one bit per variable, ids, no per-bit messages).
 The largest accepted request under the default ``ServerConfig`` limits is computed from the
 measured bytes per candidate and, in the full run, checked by sending it and one candidate more.

@@ -230,15 +230,12 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--time-limit", type=_positive_float, default=3.0)
     d.set_defaults(func=cmd_demo)
 
-    try:  # the audit commands live in their own module (optional)
-        from flipfix.service import audit_cli
-    except ImportError:
-        audit_cli = None
-    if audit_cli is not None:
-        audit_cli.register(sub)
-        for name, p in sub.choices.items():
-            if p.get_default("func") is None and name not in ("serve", "repair", "demo"):
-                p.set_defaults(func=audit_cli.run)
+    from flipfix.service import audit_cli  # the audit commands live in their own module
+
+    audit_cli.register(sub)
+    for name, p in sub.choices.items():
+        if p.get_default("func") is None and name not in ("serve", "repair", "demo"):
+            p.set_defaults(func=audit_cli.run)
     return ap
 
 

@@ -16,7 +16,7 @@ core, and converts back; errors become status codes in :mod:`flipfix.service.err
   reflection are registered; health answers while repairs run.
 * :meth:`RunningServer.shutdown`: health NOT_SERVING, no new calls, in-flight
   calls get ``grace`` seconds, then are cancelled (their solvers stop).
-* The audit RPCs (robustness, stress test, Pareto front, curation; issue 5) take
+* The audit RPCs (robustness, stress test, Pareto front, curation) take
   the same path: validate and convert here, run :mod:`flipfix.service.audit_jobs` in the
   pool with the same slots, budget, deadline and cancellation, convert back.
 """

@@ -1,4 +1,4 @@
-"""The audit RPCs (issue 5) and typed integer decisions (issue 4) over a real server on port 0.
+"""The audit RPCs and typed integer decisions over a real server on port 0.
 
 References: the stress, Pareto and curation figures are compared with the same core
 functions called in-process with the same seed (flipfix.repair.audit.stress.stress_test,
