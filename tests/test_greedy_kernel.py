@@ -93,9 +93,9 @@ def test_grouped_trees_take_the_same_steps_as_the_plain_scan(kind, max_flips, mo
     p = _model(n, seed)
     comp = compile_constraints(p, _constraints(n, seed, kind))
     X0 = np.random.default_rng(seed).integers(0, 2, (5, n)).astype(np.int8)
-    lay = greedy._general_arrays(comp)[2]
+    lay = greedy.general_arrays(comp).layout
     par = 1 if max_flips is None else 2
-    assert 2 <= lay["groups"] * par <= greedy.MAX_GROUP_SHARE * n  # the grouped path runs
+    assert 2 <= lay.groups * par <= greedy.MAX_GROUP_SHARE * n  # the grouped path runs
     grouped = greedy_repair(comp, X0, max_flips=max_flips)
     monkeypatch.setattr(greedy, "MAX_GROUP_SHARE", -1.0)  # force the scan
     monkeypatch.setattr(greedy, "MIN_GROUPS", -1)
@@ -121,8 +121,8 @@ def test_a_narrow_penalty_moves_variables_their_qubo_change_alone_would_not():
         HammingPenalty({0: 1, 1: 1, 2: 1}, weight=100.0, shape="threshold", threshold=1,
                        name="narrow")])
     assert len(comp.counts) == 1  # a count penalty, not folded into the QUBO
-    lay = greedy._general_arrays(comp)[2]
-    assert 2 <= lay["groups"] <= greedy.MAX_GROUP_SHARE * n  # the grouped path runs
+    lay = greedy.general_arrays(comp).layout
+    assert 2 <= lay.groups <= greedy.MAX_GROUP_SHARE * n  # the grouped path runs
     X0 = np.zeros((3, n), dtype=np.int8)
     X0[1, 50:] = 1
     X0[2, 1] = 1

@@ -1,0 +1,188 @@
+"""The greedy driver: chunks of candidates through the compiled kernels, within a budget.
+
+Builds the kernels' bundles once per call (the problem's arrays are cached on the
+compiled problem), picks the pure-QUBO path (:mod:`~flipfix.repair.solvers.greedy.qubo`)
+or the general one (:mod:`~flipfix.repair.solvers.greedy.general`), and runs chunks of
+candidates, split over threads, until done, the deadline or a cancel.
+"""
+
+from __future__ import annotations
+
+import time
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
+
+import numpy as np
+
+from flipfix.repair.kernels.bundles import late_arrays, objective_tol
+from flipfix.repair.lowering.compiled import Compiled
+from flipfix.repair.solvers.greedy.general import descend_general, general_work
+from flipfix.repair.solvers.greedy.groups import Trees, trees_for
+from flipfix.repair.solvers.greedy.layout import general_arrays
+from flipfix.repair.solvers.greedy.pairs import pair_lists
+from flipfix.repair.solvers.greedy.qubo import Params, descend_tree, tree_work
+from flipfix.repair.solvers.greedy.start import consensus, start_refs
+
+__all__ = ["GreedyOutput", "greedy_repair", "warm_up"]
+
+
+@dataclass
+class GreedyOutput:
+    """X: int8 (K, n) repaired assignments; steps: int64 (K,) moves taken;
+    done: bool (K,) whether the candidate was processed within the budget;
+    seconds: float64 (K,) time spent on each candidate (its chunk's share)."""
+
+    X: np.ndarray
+    steps: np.ndarray
+    done: np.ndarray
+    seconds: np.ndarray
+
+
+def _groups_pay(trees: int, nfree: int) -> bool:
+    """Whether ``trees`` grouped trees beat the plain scan over ``nfree`` free variables.
+    The thresholds are the package's ``MAX_GROUP_SHARE`` and ``MIN_GROUPS``, read at each
+    call (so that setting them there takes effect)."""
+    from flipfix.repair.solvers import greedy
+
+    return trees <= max(greedy.MIN_GROUPS, greedy.MAX_GROUP_SHARE * nfree)
+
+
+_POOLS: dict = {}
+
+
+def _threads(workers: int) -> ThreadPoolExecutor:
+    """A process-wide pool of ``workers`` threads (the kernels release the GIL)."""
+    pool = _POOLS.get(workers)
+    if pool is None:
+        pool = _POOLS[workers] = ThreadPoolExecutor(max_workers=workers,
+                                                     thread_name_prefix="flipfix-greedy")
+    return pool
+
+
+def _in_parts(run, X: np.ndarray, O: np.ndarray, steps: np.ndarray, workers: int) -> None:
+    """run(X, O, steps) on ``workers`` contiguous row blocks at once (in place). Each
+    candidate's descent depends on that candidate alone, so the answers do not depend on
+    the split."""
+    parts = min(workers, X.shape[0])
+    if parts <= 1:
+        run(X, O, steps)
+        return
+    cuts = np.linspace(0, X.shape[0], parts + 1).astype(int)
+    jobs = [_threads(parts).submit(run, X[a:b], O[a:b], steps[a:b])
+            for a, b in zip(cuts[:-1], cuts[1:])]
+    for j in jobs:
+        j.result()
+
+
+def _kernel_call(compiled: Compiled, anchor: np.ndarray, *, radius: int, flip_price: float,
+                 pair_width: int):
+    """run(X, O, steps): one kernel call, in place on X int8 (rows, n) and steps int64
+    (rows,), with every bundle that is the same for all chunks built here, once."""
+    n = compiled.n
+    qubo = late_arrays(compiled).qubo
+    refs = start_refs(anchor, qubo)
+    tol = float(objective_tol(compiled))
+    max_steps = 100 * n + 1000
+    if not compiled.counts and not compiled.rows and radius >= n:
+        params = Params(float(flip_price), tol, max_steps, radius, False, 1)
+
+        def run(Xc, Oc, st):
+            descend_tree(Xc, Oc, qubo, refs, params, tree_work(n), st)
+        return run
+    arrays = general_arrays(compiled)
+    lay = arrays.layout
+    par = 2 if radius < n else 1
+    use_groups = _groups_pay(lay.groups * par, int((compiled.fixed < 0).sum()))
+    base, size = trees_for(lay.members, par, use_groups)
+    slots = int(2 * size.sum())
+    params = Params(float(flip_price), tol, max_steps, radius, use_groups, par)
+    counts, rows = arrays.counts, arrays.rows
+    sizes = (n, counts.cp_const.size, counts.term_pen.size, rows.lo.size, lay.most)
+
+    def run(Xc, Oc, st):
+        trees = Trees(np.empty(slots), np.empty(slots, dtype=np.int64), base, size)
+        descend_general(Xc, Oc, qubo, counts, rows, lay.narrow, lay.trees, trees, refs,
+                        arrays.bounds, pair_lists(pair_width), params, general_work(*sizes), st)
+    return run
+
+
+def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | None = None,
+                  max_flips: int | None = None, flip_price: float = 0.0,
+                  deadline: float | None = None, cancel=None, chunk: int = 64,
+                  pair_width: int | None = None, progress=None,
+                  workers: int = 1) -> GreedyOutput:
+    """Repair every row of X0 (int8 (K, n), 0/1) greedily on the compiled late problem.
+
+    ``origin`` (int8 (K, n), default X0) is what flips are counted from (radius, price).
+    ``deadline`` is a ``time.perf_counter()`` value; candidates not reached by then
+    (or after ``cancel`` is set) are returned unchanged with ``done`` False.
+    ``progress(done, total)`` is called after each chunk.
+    ``pair_width``: pair moves inside a row try the best ``pair_width`` "up" and "down"
+    variables of that row; by default every pair of rows up to 32 variables long,
+    the best 32 of each side in longer rows.
+    ``workers``: threads that descend parts of each chunk at once; the answers do not
+    depend on it.
+    """
+    X0 = np.ascontiguousarray(X0, dtype=np.int8)
+    K, n = X0.shape
+    O = X0 if origin is None else np.ascontiguousarray(origin, dtype=np.int8)
+    X = X0.copy()
+    steps = np.zeros(K, dtype=np.int64)
+    done = np.zeros(K, dtype=bool)
+    seconds = np.zeros(K)
+    radius = n if max_flips is None else int(max_flips)
+    if pair_width is None:
+        longest = int(np.diff(compiled.a_indptr).max(initial=1))
+        pair_width = max(1, min(32, longest))
+    run = _kernel_call(compiled, consensus(X0, compiled.fixed), radius=radius,
+                       flip_price=flip_price, pair_width=int(pair_width))
+    start = 0
+    size = 1 if deadline is not None else chunk  # with a deadline: measure one, then fit
+    per_cand = 0.0  # measured seconds per candidate
+    while start < K:
+        if cancel is not None and cancel.is_set():
+            break
+        if deadline is not None:
+            left = deadline - time.perf_counter()
+            if start > 0 and left <= 0.0:
+                break
+            if per_cand > 0.0:  # a chunk should fit in what is left
+                size = int(max(1, min(chunk, left / per_cand)))
+        t0 = time.perf_counter()
+        sl = slice(start, min(K, start + size))
+        start = sl.stop
+        Xc = X[sl].copy()
+        st = np.zeros(Xc.shape[0], dtype=np.int64)
+        _in_parts(run, Xc, O[sl], st, workers)
+        per_cand = (time.perf_counter() - t0) / Xc.shape[0]
+        X[sl] = Xc
+        steps[sl] = st
+        done[sl] = True
+        seconds[sl] = per_cand
+        if progress is not None:
+            progress(int(done.sum()), K)
+    return GreedyOutput(X=X, steps=steps, done=done, seconds=seconds)
+
+
+_WARM = False
+
+
+def warm_up() -> None:
+    """Compile (or load from the on-disk cache) every kernel on a tiny model, once per
+    process, so that no request pays the compilation inside its time budget."""
+    global _WARM
+    if _WARM:
+        return
+    from flipfix.repair.lowering.compiled import compile_constraints
+    from flipfix.repair.model.constraints import HammingPenalty, LinearConstraint
+    from flipfix.repair.model.problem import Problem
+
+    p = Problem.from_terms({0: -1.0, 1: 1.0, 2: 0.5}, [(0, 1, 2.0), (1, 2, -1.0)])
+    X0 = np.zeros((1, 3), dtype=np.int8)
+    greedy_repair(compile_constraints(p, []), X0)
+    greedy_repair(compile_constraints(p, [
+        HammingPenalty({0: 1, 1: 1, 2: 1}, shape="quadratic"),
+        LinearConstraint({0: 1, 1: 1}, "==", 1)]), X0)
+    p.energies(X0)
+    p.local_fields(X0)
+    _WARM = True
