@@ -20,7 +20,7 @@ from typing import NamedTuple
 
 import numpy as np
 
-from flipfix.repair.solvers.greedy.jit import kernel
+from flipfix.repair.solvers.greedy.jit import inline, kernel
 from flipfix.repair.solvers.greedy.state import delta, eval_flip, flip_state, row_viol
 from flipfix.repair.solvers.greedy.tournament import tree_clear, tree_drain, tree_set
 
@@ -185,7 +185,7 @@ def best_group_top(S, dist, T, groups, C, R, P):
     return best, bi
 
 
-@kernel
+@inline
 def flip(i, S, dist, Q, C, R, narrow, groups, T, P, todo):
     """Flip variable i (all state) and, with groups, re-key every variable whose local
     change it alters: i, its QUBO neighbours, the members of its narrow structures.
