@@ -222,3 +222,25 @@ def test_greedy_answers_do_not_depend_on_the_thread_count(kind):
         np.testing.assert_array_equal(one.X, many.X)
         np.testing.assert_array_equal(one.steps, many.steps)
         assert many.done.all()
+
+
+def test_every_input_layout_runs_the_one_compiled_kernel():
+    # a read-only or Fortran-order batch, int32 CSR pointers or a read-only fixings array
+    # is another array type to numba: each would compile the kernel again (seconds, inside
+    # a request's budget) unless the driver normalises its inputs first
+    n, seed = 60, 13
+    p = _model(n, seed)
+    rng = np.random.default_rng(seed)
+    X0 = rng.integers(0, 2, (4, n)).astype(np.int8)
+    frozen = X0.copy()
+    frozen.flags.writeable = False
+    fixed = np.full(n, -1, dtype=np.int8)
+    fixed.flags.writeable = False
+    comp = compile_constraints(p, _constraints(n, seed, "mixed"))
+    plain = compile_constraints(p, [])
+    for X in (X0, frozen, np.asfortranarray(X0)):
+        greedy_repair(comp, X, origin=frozen, max_flips=20)
+        greedy_repair(plain, X)
+        descend_qubo(p.linear, p.indptr.astype(np.int32), p.indices, p.data, X, fixed=fixed)
+    for kernel in (greedy.general.descend_general, greedy.qubo.descend_tree):
+        assert len(kernel.signatures) == 1, kernel.signatures

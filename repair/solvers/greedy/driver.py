@@ -123,9 +123,11 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
     ``workers``: threads that descend parts of each chunk at once; the answers do not
     depend on it.
     """
-    X0 = np.ascontiguousarray(X0, dtype=np.int8)
+    # C order and writeable (a read-only input is copied): the kernels are compiled for
+    # one array type each, and a read-only array is another type to numba
+    X0 = np.require(X0, dtype=np.int8, requirements=["C", "W"])
     K, n = X0.shape
-    O = X0 if origin is None else np.ascontiguousarray(origin, dtype=np.int8)
+    O = X0 if origin is None else np.require(origin, dtype=np.int8, requirements=["C", "W"])
     X = X0.copy()
     steps = np.zeros(K, dtype=np.int64)
     done = np.zeros(K, dtype=bool)

@@ -172,10 +172,11 @@ def descend_qubo(h, indptr, indices, data, X0, *, fixed=None, flip_price: float 
     """
     X = np.array(X0, dtype=np.int8, copy=True, order="C")
     n = X.shape[1]
+    # C order and writeable (copied only when not so): one compiled kernel for every input
     fixed = (np.full(n, -1, dtype=np.int8) if fixed is None
-             else np.ascontiguousarray(fixed, dtype=np.int8))
+             else np.require(fixed, dtype=np.int8, requirements=["C", "W"]))
     steps = np.zeros(X.shape[0], dtype=np.int64)
-    origin = np.ascontiguousarray(X0, dtype=np.int8)  # read only: no copy when already so
+    origin = np.require(X0, dtype=np.int8, requirements=["C", "W"])
     qubo = Qubo(np.ascontiguousarray(h, np.float64), np.ascontiguousarray(indptr, np.int64),
                 unsigned(indices), np.ascontiguousarray(data, np.float64), fixed)
     anchor = consensus(X, fixed)
