@@ -15,7 +15,7 @@ from typing import NamedTuple
 import numpy as np
 
 from flipfix.repair.solvers.greedy.groups import (best_group_top, drain_trees, flip,
-                                                  init_trees, rekey_all)
+                                                  init_trees, narrow_view, rekey_all)
 from flipfix.repair.solvers.greedy.jit import entry
 from flipfix.repair.solvers.greedy.pairs import best_pair
 from flipfix.repair.solvers.greedy.restore import restore
@@ -57,13 +57,13 @@ def general_work(n: int, P: int, T: int, m: int, most: int) -> Work:
 
 
 @entry
-def descend_general(X, origin, Q, C, R, narrow, groups, T, refs, bounds, lists, P, work,
+def descend_general(X, origin, Q, C, R, maps, groups, T, refs, bounds, lists, P, work,
                     steps_out):
     """Restore feasibility, then descend (see the module docstring), in place on X int8
     (K, n); origin int8 (K, n) the candidates (radius, price).
 
-    Q, C, R: the problem's :mod:`~flipfix.repair.kernels.bundles`; narrow, groups: its
-    :class:`~flipfix.repair.solvers.greedy.layout.Narrow` maps and
+    Q, C, R: the problem's :mod:`~flipfix.repair.kernels.bundles`; maps, groups: its
+    :class:`~flipfix.repair.solvers.greedy.layout.NarrowMaps` and
     :class:`~flipfix.repair.solvers.greedy.groups.Groups`; T the call's
     :class:`~flipfix.repair.solvers.greedy.groups.Trees`; refs
     :class:`~flipfix.repair.solvers.greedy.start.StartRefs`; bounds, lists
@@ -86,6 +86,7 @@ def descend_general(X, origin, Q, C, R, narrow, groups, T, refs, bounds, lists, 
     pinned = nfree < n
     vtol = 1e-12
     m = act.size
+    narrow = narrow_view(C, R, maps)
     fresh_counts(anchor, C, R, adcount, asat, aact)
     init_trees(T, groups, P.par)
     for k in range(K):

@@ -20,11 +20,12 @@ from typing import NamedTuple
 
 import numpy as np
 
+from flipfix.repair.kernels.bundles import Counts, Rows
 from flipfix.repair.solvers.greedy.jit import inline, kernel
 from flipfix.repair.solvers.greedy.state import delta, eval_flip, flip_state, row_viol
 from flipfix.repair.solvers.greedy.tournament import tree_clear, tree_drain, tree_set
 
-__all__ = ["Groups", "Trees", "trees_for", "init_trees", "drain_trees", "rekey_all",
+__all__ = ["Groups", "Narrow", "narrow_view", "Trees", "trees_for", "init_trees", "drain_trees", "rekey_all",
            "best_group_top", "flip"]
 
 _INF = np.inf
@@ -53,6 +54,33 @@ class Groups(NamedTuple):
     gs_id: np.ndarray
     gs_val: np.ndarray
     qualify: np.ndarray
+
+
+class Narrow(NamedTuple):
+    """The narrow structures as the kernels read them: counts, rows: the problem's
+    :class:`~flipfix.repair.kernels.bundles.Counts` and
+    :class:`~flipfix.repair.kernels.bundles.Rows` with their by-variable maps restricted
+    to narrow structures (what a flip's local change depends on); vs_ptr, vs_struct,
+    sm_ptr, sm_var: variable -> narrow structures -> members (see
+    :class:`~flipfix.repair.solvers.greedy.layout.NarrowMaps`)."""
+
+    counts: Counts
+    rows: Rows
+    vs_ptr: np.ndarray
+    vs_struct: np.ndarray
+    sm_ptr: np.ndarray
+    sm_var: np.ndarray
+
+
+@inline
+def narrow_view(C, R, maps):
+    """The :class:`Narrow` of the problem's bundles C, R and its
+    :class:`~flipfix.repair.solvers.greedy.layout.NarrowMaps` (no copies)."""
+    counts = Counts(C.cp_ptr, C.cp_table, C.cp_const, C.term_pen, C.term_coef, C.term_arity,
+                    C.lit_ptr, C.lit_var, C.lit_val, maps.vt_ptr, maps.vt_term, maps.vt_lit)
+    rows = Rows(R.a_ptr, R.a_col, R.a_val, maps.col_ptr, maps.col_row, maps.col_val, R.lo,
+                R.hi, R.rtol)
+    return Narrow(counts, rows, maps.vs_ptr, maps.vs_struct, maps.sm_ptr, maps.sm_var)
 
 
 class Trees(NamedTuple):

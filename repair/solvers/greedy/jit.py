@@ -8,8 +8,12 @@ Two decorators:
   Python or C wrappers (nothing calls them from Python; a wrapper that unboxes a dozen
   bundles is a large function of its own to optimise and emit).
 * :data:`entry` for the kernels Python calls: no reference counting either (the driver
-  allocates their scratch arrays with numpy), and the GIL released so that the driver's
-  threads descend parts of a chunk at once.
+  allocates their scratch arrays with numpy), the GIL released so that the driver's
+  threads descend parts of a chunk at once, and only the Python wrapper (no C-callable
+  one). A wrapper unboxes every array of every bundle: its code grows faster than the
+  array count (a kernel of 90 arrays in bundles took ~2 s to compile with its wrappers,
+  one of 10 arrays ~0.5 s), so the Python-facing kernels take no more arrays than they
+  need.
 
 Both cache their machine code beside the module (``__pycache__``). What numba compiles
 is what it links: every kernel is compiled once on its own, then its code is linked
@@ -42,4 +46,4 @@ kernel = nb.njit(cache=True, _nrt=False, no_cpython_wrapper=True, no_cfunc_wrapp
 #: Inner kernels with one call site in a hot loop: inlined there by numba.
 inline = nb.njit(cache=True, _nrt=False, inline="always")
 #: Kernels called from Python: no reference counting, the GIL released.
-entry = nb.njit(cache=True, _nrt=False, nogil=True)
+entry = nb.njit(cache=True, _nrt=False, nogil=True, no_cfunc_wrapper=True)

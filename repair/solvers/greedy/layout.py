@@ -19,7 +19,7 @@ from flipfix.repair.lowering.compiled import Compiled
 from flipfix.repair.solvers.greedy.groups import Groups
 from flipfix.repair.solvers.greedy.pairs import PairBounds, pair_bounds
 
-__all__ = ["WIDE", "MAX_WIDE", "Narrow", "Layout", "GeneralArrays", "general_arrays"]
+__all__ = ["WIDE", "MAX_WIDE", "NarrowMaps", "Layout", "GeneralArrays", "general_arrays"]
 
 #: A row or count penalty over more than this many variables is "wide": its share of a
 #: flip's change is taken per group (see "grouped single flips"), not re-keyed per member.
@@ -29,19 +29,25 @@ WIDE = 64
 MAX_WIDE = 16
 
 
-class Narrow(NamedTuple):
+class NarrowMaps(NamedTuple):
     """The narrow structures' maps, n variables, m rows, P count penalties.
 
-    counts: the problem's :class:`~flipfix.repair.kernels.bundles.Counts` with the
-    variable-to-literal map (``vt_*``) restricted to narrow penalties; rows: its
-    :class:`~flipfix.repair.kernels.bundles.Rows` with the by-variable map (``col_*``)
-    restricted to narrow rows; vs_ptr int64 (n+1,), vs_struct int64: each variable's
-    narrow structures (rows 0..m-1, then penalties m..m+P-1); sm_ptr int64 (m+P+1,),
-    sm_var int64: each narrow structure's members.
+    vt_ptr int64 (n+1,), vt_term int64, vt_lit int64: each variable's literals in narrow
+    count penalties (the :class:`~flipfix.repair.kernels.bundles.Counts` map restricted);
+    col_ptr int64 (n+1,), col_row int64, col_val float64: each variable's narrow rows
+    (the :class:`~flipfix.repair.kernels.bundles.Rows` map restricted); vs_ptr int64
+    (n+1,), vs_struct int64: each variable's narrow structures (rows 0..m-1, then
+    penalties m..m+P-1); sm_ptr int64 (m+P+1,), sm_var int64: each narrow structure's
+    members. The kernel joins them to the problem's bundles
+    (:func:`~flipfix.repair.solvers.greedy.groups.narrow_view`).
     """
 
-    counts: Counts
-    rows: Rows
+    vt_ptr: np.ndarray
+    vt_term: np.ndarray
+    vt_lit: np.ndarray
+    col_ptr: np.ndarray
+    col_row: np.ndarray
+    col_val: np.ndarray
     vs_ptr: np.ndarray
     vs_struct: np.ndarray
     sm_ptr: np.ndarray
@@ -51,13 +57,13 @@ class Narrow(NamedTuple):
 class Layout(NamedTuple):
     """groups int: base groups (n + 1 when the wide structures are too many: never worth
     trees); members int64 (groups,): how many free variables can be in each; trees:
-    :class:`~flipfix.repair.solvers.greedy.groups.Groups`; narrow: :class:`Narrow`;
+    :class:`~flipfix.repair.solvers.greedy.groups.Groups`; narrow: :class:`NarrowMaps`;
     most int: the longest re-key list of one flip (the size of its scratch)."""
 
     groups: int
     members: np.ndarray
     trees: Groups
-    narrow: Narrow
+    narrow: NarrowMaps
     most: int
 
 
@@ -182,10 +188,8 @@ def _layout(compiled: Compiled, cnt: Counts, rows: Rows, qubo_indptr: np.ndarray
     qualify[:, compiled.fixed >= 0] = -np.inf
     trees = Groups(gbase, lp, glb, gmem_ptr, gmem, np.cumsum(gs_ptr), kinds[nz_c], ids[nz_c],
                    uniq[nz_g, nz_c].astype(np.float64), qualify)
-    narrow = Narrow(cnt._replace(vt_ptr=nvt_ptr, vt_term=vt_term[keep_t], vt_lit=vt_lit[keep_t]),
-                    rows._replace(col_ptr=ncol_ptr, col_row=col_row[keep_r],
-                                  col_val=col_val[keep_r]),
-                    vs_ptr, vs_struct, sm_ptr, sm_var)
+    narrow = NarrowMaps(nvt_ptr, vt_term[keep_t], vt_lit[keep_t], ncol_ptr, col_row[keep_r],
+                        col_val[keep_r], vs_ptr, vs_struct, sm_ptr, sm_var)
     # a flip re-keys itself, its QUBO neighbours and its narrow structures' members
     shared = np.zeros(n, dtype=np.int64)
     np.add.at(shared, np.repeat(np.arange(n), np.diff(vs_ptr)), np.diff(sm_ptr)[vs_struct])

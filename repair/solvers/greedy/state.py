@@ -74,7 +74,7 @@ def eval_flip(i, S, dist, C, R, price):
     S :class:`State`; dist int64 its distance from the candidate; C
     :class:`~flipfix.repair.kernels.bundles.Counts` and R
     :class:`~flipfix.repair.kernels.bundles.Rows` (the full maps, or the narrow ones of
-    :class:`~flipfix.repair.solvers.greedy.layout.Narrow`); price float64.
+    :class:`~flipfix.repair.solvers.greedy.groups.Narrow`); price float64.
     """
     x, o, field, dcount, sat, act, dd = S
     cp_ptr, cp_table, term_pen, term_coef, term_arity = (C.cp_ptr, C.cp_table, C.term_pen,
