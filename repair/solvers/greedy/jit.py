@@ -42,7 +42,7 @@ import numba as nb
 __all__ = ["kernel", "entry", "inline"]
 
 #: Inner kernels: no reference counting, no Python/C entry wrappers.
-kernel = nb.njit(cache=True, _nrt=False, no_cpython_wrapper=True, no_cfunc_wrapper=True)
+kernel = nb.njit(_nrt=False, no_cpython_wrapper=True, no_cfunc_wrapper=True)
 #: Inner kernels with one call site in a hot loop: inlined there by numba.
 inline = nb.njit(cache=True, _nrt=False, inline="always")
 #: Kernels called from Python: no reference counting, the GIL released.
