@@ -99,18 +99,6 @@ def route(x, anchor):
 
 
 @kernel
-def _differing(x, ref, out):
-    """The positions where x and ref differ, ascending, into out[:count] (int64, size >=
-    n); returns count. Branch-free: a differing bit is a coin toss for the branch
-    predictor, and a mispredicted branch per bit cost more than the store."""
-    c = 0
-    for j in range(x.size):
-        out[c] = j
-        c += x[j] != ref[j]
-    return c
-
-
-@kernel
 def init_field(way, x, refs, Q, field, found):
     """field float64 (n,) = h + J x (Q :class:`~flipfix.repair.kernels.bundles.Qubo`, J
     symmetric) by ``way`` (:func:`route`): the reference state and its fields from
@@ -126,7 +114,13 @@ def init_field(way, x, refs, Q, field, found):
         ref, base = refs.ones, refs.full
     for i in range(x.size):
         field[i] = base[i]
-    count = _differing(x, ref, found)
+    # the positions where x and ref differ, ascending, branch-free: a differing bit is a
+    # coin toss for the branch predictor, and a mispredicted branch per bit cost more
+    # than the store
+    count = 0
+    for j in range(x.size):
+        found[count] = j
+        count += x[j] != ref[j]
     for q in range(count):
         j = found[q]
         d = data if x[j] == 1 else ndata
