@@ -25,8 +25,8 @@ from flipfix.repair.solvers.greedy.jit import inline, kernel
 from flipfix.repair.solvers.greedy.state import delta, eval_flip, flip_state, row_viol
 from flipfix.repair.solvers.greedy.tournament import tree_clear, tree_drain, tree_set
 
-__all__ = ["Groups", "Narrow", "narrow_view", "Trees", "trees_for", "init_trees", "drain_trees", "rekey_all",
-           "best_group_top", "flip"]
+__all__ = ["Groups", "Narrow", "narrow_view", "Trees", "trees_for", "init_trees", "drain_trees",
+           "rekey_all", "best_group_top", "flip"]
 
 _INF = np.inf
 
@@ -229,7 +229,8 @@ def flip(i, S, dist, Q, C, R, narrow, groups, T, P, todo):
     if not P.use_groups:
         return dist
     indptr, indices = Q.indptr, Q.indices
-    vs_ptr, vs_struct, sm_ptr, sm_var = narrow.vs_ptr, narrow.vs_struct, narrow.sm_ptr, narrow.sm_var
+    vs_ptr, vs_struct = narrow.vs_ptr, narrow.vs_struct
+    sm_ptr, sm_var = narrow.sm_ptr, narrow.sm_var
     cnt = 0
     todo[cnt] = i
     cnt += 1

@@ -91,7 +91,8 @@ def _layout(compiled: Compiled, cnt: Counts, rows: Rows, qubo_indptr: np.ndarray
     """Groups of variables by their wide-structure signature, and the narrow maps."""
     n = compiled.n
     t_pen, t_coef, t_ar, l_ptr = cnt.term_pen, cnt.term_coef, cnt.term_arity, cnt.lit_ptr
-    l_var, l_val, vt_ptr, vt_term, vt_lit = cnt.lit_var, cnt.lit_val, cnt.vt_ptr, cnt.vt_term, cnt.vt_lit
+    l_var, l_val = cnt.lit_var, cnt.lit_val
+    vt_ptr, vt_term, vt_lit = cnt.vt_ptr, cnt.vt_term, cnt.vt_lit
     a_ptr, a_col, a_val = rows.a_ptr, rows.a_col, rows.a_val
     col_ptr, col_row, col_val = rows.col_ptr, rows.col_row, rows.col_val
     m, P = a_ptr.size - 1, cnt.cp_const.size
