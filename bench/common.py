@@ -21,11 +21,12 @@ from flipfix.repair import CandidateSet, Problem
 from flipfix.repair.lowering.compiled import compile_constraints
 from flipfix.repair.model.constraints import FixVariables, HammingPenalty, LinearConstraint
 from flipfix.repair.solvers.greedy import descend_qubo, greedy_repair
-from flipfix.repair.documents.instances import read_bqp, read_qkp
+from flipfix.repair.documents.instances import read_bqp, read_gset, read_qkp
 
 __all__ = [
     "ROOT", "BENCHMARKS", "RESULTS_DIR", "Instance", "random_sparse", "load_instance",
     "build_library", "scenarios", "Scenario", "table", "machine", "write_results", "hamming",
+    "median_coupling",
 ]
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -77,12 +78,15 @@ class Instance:
 
 
 # best-known values, from ../shared/benchmarks/README.md (BiqMac table; Billionnet-Soutif table)
-_BQP_BEST = {"bqp100-1": -7970, "bqp100-2": -11036, "bqp50-1": -2098}
+_BQP_BEST = {"bqp100-1": -7970, "bqp100-2": -11036, "bqp50-1": -2098, "bqp250-1": -45607}
 _QKP_BEST = {"jeu_100_25_1": 18558, "jeu_100_50_1": 83742, "jeu_100_25_2": 56525}
+# best-known cuts, from ../shared/benchmarks/README.md (public Gset best-known lists)
+_GSET_BEST = {"G11": 564, "G14": 3064, "G67": 6950}
 
 
 def load_instance(name: str, *, seed: int = 0) -> Instance:
-    """bqp100-k, jeu_100_*_k (files in ../shared/benchmarks) or rand<n> (seeded random sparse)."""
+    """bqp*-k, jeu_100_*_k, Gset G<k> (files in ../shared/benchmarks) or rand<n> (seeded
+    random sparse). A Gset graph is read as the QUBO whose energy is minus the cut."""
     if name.startswith("bqp"):
         p = read_bqp(_find_file("bqp", name))
         return Instance(name, p, published=_BQP_BEST.get(name))
@@ -93,6 +97,10 @@ def load_instance(name: str, *, seed: int = 0) -> Instance:
                         capacity=float(k.capacity), published=None if best is None else -best)
     if name.startswith("rand"):
         return Instance(name, random_sparse(int(name[4:]), seed=seed))
+    if name.startswith("G") and name[1:].isdigit():
+        best = _GSET_BEST.get(name)
+        return Instance(name, read_gset(_find_file("gset", name)),
+                        published=None if best is None else -best)
     raise ValueError(f"unknown instance {name!r}")
 
 
@@ -128,6 +136,11 @@ def build_library(inst: Instance, *, size: int = 100, seed: int = 0,
             if len(seen) == size:
                 return np.vstack(list(seen.values())).astype(np.int8)
     return np.vstack(list(seen.values())).astype(np.int8)
+
+
+def median_coupling(p: Problem) -> float:
+    """Median |J_ij| over the model's couplings (1.0 for a model without any)."""
+    return float(np.median(np.abs(p.data))) if p.data.size else 1.0
 
 
 def hamming(X: np.ndarray, x: np.ndarray) -> np.ndarray:

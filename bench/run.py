@@ -1,7 +1,8 @@
 """Run the benchmarks: ``python -m bench.run [--quick] [--only NAME ...]``.
 
 Sections: repair (repair vs re-solve), kernel (greedy throughput), service (gRPC overhead),
-memory (peak RSS), mix (which portfolio budget mix wins at each budget). Prints a table per section and writes bench/results/latest.json
+memory (peak RSS), mix (which portfolio budget mix wins at each budget), rerun (repair vs a
+simulated annealer re-run from scratch; needs the ``bench`` extra). Prints a table per section and writes bench/results/latest.json
 (the figures, the machine, the command). Never part of the test suite.
 """
 
@@ -11,7 +12,8 @@ import argparse
 import sys
 import time
 
-from bench import kernel, memory, mix, repair_vs_resolve, service_overhead
+from bench import (budget, kernel, memory, mix, repair_vs_rerun, repair_vs_resolve,
+                   service_overhead)
 from bench.common import machine, write_results
 
 __all__ = ["main", "SECTIONS"]
@@ -22,6 +24,8 @@ SECTIONS = {
     "service": service_overhead,
     "memory": memory,
     "mix": mix,
+    "budget": budget,
+    "rerun": repair_vs_rerun,
 }
 
 

@@ -146,13 +146,17 @@ def _request_size(client, p, doc, cands, k):
 
 
 def _server_decode(convert, pb, blob, cfg):
-    """What the server does before calling the core: parse and convert to domain objects."""
+    """What the server does before calling the core: parse, check the limits, convert to
+    domain objects and compile the constraints (once; the worker gets the result)."""
     t = time.perf_counter()
     req = pb.RepairRequest.FromString(blob)
     lim = cfg.limits
-    prob = convert.model_to_problem(req.inline.model, limits=lim)
-    convert.batch_to_arrays(prob, req.inline.candidates, limits=lim)
-    convert.constraints_to_domain(req.constraints, prob)
+    lim.model(req.inline.model, "inline.model")
+    prob = convert.model_to_problem(req.inline.model, field="inline.model")
+    lim.candidates(req.inline.candidates, "inline.candidates")
+    convert.batch_to_arrays(prob, req.inline.candidates, field="inline.candidates")
+    lim.constraints(req.constraints, "constraints")
+    convert.constraints_to_compiled(req.constraints, prob)
     return time.perf_counter() - t
 
 

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import contextlib
+import gc
 import math
 import threading
 import time
@@ -13,10 +15,11 @@ from flipfix.repair.model.candidates import CandidateSet
 from flipfix.repair.lowering.compiled import Compiled, compile_constraints
 from flipfix.repair.errors import InputError
 from flipfix.repair.model.problem import Problem
-from flipfix.repair.solvers.portfolio import DEFAULT_MIX, Mix, run_plan
-from flipfix.repair.result import METHODS, AuditRow, ParetoPoint, RepairResult, Solution
+from flipfix.repair.kernels.scores import Scorer, distances
+from flipfix.repair.solvers.portfolio import DEFAULT_MIX, Attempt, Mix, attempt_scores, run_plan
+from flipfix.repair.result import METHODS, AuditRow, RepairResult, Solution
 
-__all__ = ["repair", "check_options"]
+__all__ = ["repair", "check_options", "result_seconds", "search_deadline", "plan_reference"]
 
 
 def check_options(*, method: Any, time_limit: Any, max_flips: Any, flip_price: Any, seed: Any,
@@ -47,6 +50,89 @@ def _changes(problem: Problem, before: np.ndarray, after: np.ndarray) -> list:
     return list(integer_changes(problem, before, after))
 
 
+#: seconds building a result takes (:func:`result_seconds`): a fixed part (the best answer's
+#: breakdown, lists and dicts), per candidate (its audit row), per candidate and variable
+#: (the distances to the best answer), per variable (the answer's assignment and breakdown)
+#: and per attempt on the cost-flips front (pareto=True). Measured with bench/budget.py on
+#: the 2-vCPU development machine under load, plus half: 0.002-0.006 s at 1,000 variables
+#: x 100 candidates, 0.05 s at 1,000 x 10,000, 0.015-0.02 s at 20,000 x 1,000, 0.1-0.12 s
+#: at 20,000 x 10,000, 0.06-0.08 s at 100,000 x 1,000.
+RESULT_FIXED = 0.004
+RESULT_PER_CANDIDATE = 7.5e-6
+RESULT_PER_CELL = 4e-10
+RESULT_PER_VARIABLE = 6e-7
+RESULT_PER_ATTEMPT = 1e-6
+
+
+def result_seconds(candidates: int, variables: int, *, attempts: int = 0,
+                   decisions: int = 0) -> float:
+    """Predicted seconds to build the result of ``candidates`` x ``variables`` (the reply
+    keeps them back from the search): ``attempts`` repaired assignments go on the
+    cost-flips front, ``decisions`` integer decisions are decoded for every candidate."""
+    per_candidate = RESULT_PER_CANDIDATE * (1 + decisions)
+    return (RESULT_FIXED + per_candidate * candidates
+            + RESULT_PER_CELL * candidates * variables + RESULT_PER_VARIABLE * variables
+            + RESULT_PER_ATTEMPT * attempts)
+
+
+def search_deadline(t0: float, time_limit: float, reserve: float) -> float:
+    """The deadline of the search (a ``time.perf_counter()`` value): the budget measured
+    from the call's entry ``t0``, less ``reserve`` seconds kept for building the result,
+    but never before ``t0`` (a budget that cannot pay for the result still searches for
+    nothing and replies)."""
+    return t0 + max(0.0, time_limit - reserve)
+
+
+def plan_reference(problem: Problem, constraints: Sequence[Any]):
+    """The published plan the late constraints measure distance from: the reference of
+    the first Hamming-type penalty (``HammingPenalty``: every label in its reference;
+    ``DecisionChangePenalty``: the bits of every decision in its reference, at that value's
+    code), as (positions int64, bits int8); None when there is none. The constraints are
+    already validated (lowered) here."""
+    from flipfix.repair.model.constraints import HammingPenalty
+
+    for c in constraints:
+        if isinstance(c, HammingPenalty):
+            ref = c.reference
+            idx = np.fromiter(map(problem.index.__getitem__, ref.keys()), np.int64, len(ref))
+            values = np.fromiter(ref.values(), np.float64, len(ref))
+            return idx, problem.from_caller(values, "reference")
+        if type(c).__name__ == "DecisionChangePenalty":
+            from flipfix.repair.model.encodings import _find, _index_of, decision_bits, encode
+
+            idx, bits = [], []
+            for name, value in c.reference.items():
+                d = _find(problem, name, "reference")
+                idx.append(decision_bits(problem, d))
+                bits.append(encode(d, _index_of(d, value, "reference")))
+            return np.concatenate(idx), np.concatenate(bits).astype(np.int8)
+    return None
+
+
+_GC_LOCK = threading.Lock()
+_GC_HELD = [0, False]  # calls inside, and whether the collector was on before the first
+
+
+@contextlib.contextmanager
+def _collector_paused():
+    """Python's cyclic garbage collector off while any repair call runs (on again when
+    the last one returns, if it was on): a full collection walks every object of the
+    process and paused calls for 0.1-0.15 s in bench/budget.py, half a 0.2 s budget.
+    Reference counting still frees everything that is not in a cycle."""
+    with _GC_LOCK:
+        if _GC_HELD[0] == 0:
+            _GC_HELD[1] = gc.isenabled()
+            gc.disable()
+        _GC_HELD[0] += 1
+    try:
+        yield
+    finally:
+        with _GC_LOCK:
+            _GC_HELD[0] -= 1
+            if _GC_HELD[0] == 0 and _GC_HELD[1]:
+                gc.enable()
+
+
 def repair(
     problem: Problem, candidates: CandidateSet, constraints: Sequence[Any] = (), *,
     method: str = "portfolio", time_limit: float = 5.0, max_flips: int | None = None,
@@ -63,15 +149,29 @@ def repair(
     ``workers`` is the number of search threads: CP-SAT's workers, and the threads greedy
     descends its batches with (greedy answers do not depend on it; only what fits in the
     budget does).
+
+    The budget covers the whole call from its entry (after the one-time kernel warm-up):
+    lowering the constraints, scoring the library, the search and building the result;
+    ``RepairResult.seconds`` is that time.
     """
     # one-time costs per process, kept out of the budget: the compiled kernels (loaded
     # from the cache, or compiled on a machine's first run) and OR-Tools
+    from flipfix.repair.kernels import scores
     from flipfix.repair.solvers.greedy import warm_up
 
     warm_up()
+    scores.warm_up()
     if method in ("portfolio", "cpsat"):
         from flipfix.repair.solvers import cpsat  # noqa: F401
-    t0 = time.perf_counter()
+    with _collector_paused():
+        return _repair(problem, candidates, constraints, method=method, time_limit=time_limit,
+                       max_flips=max_flips, flip_price=flip_price, seed=seed, workers=workers,
+                       pareto=pareto, cancel=cancel, progress=progress, compiled=compiled,
+                       mix=mix, t0=time.perf_counter())
+
+
+def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, flip_price,
+            seed, workers, pareto, cancel, progress, compiled, mix, t0) -> RepairResult:
     if not isinstance(problem, Problem):
         raise InputError("problem", f"expected a Problem, got {type(problem).__name__}")
     if not isinstance(candidates, CandidateSet):
@@ -87,6 +187,12 @@ def repair(
     X0 = np.ascontiguousarray(candidates.X, dtype=np.int8)
     K = X0.shape[0]
     price = float(flip_price)
+    plan_ref = plan_reference(problem, constraints)
+    t_lowered = time.perf_counter()
+    scorer = Scorer(compiled, X0, workers=workers)
+    # where the time went (stats): lowering, scoring the library, search, the result
+    stages = {"lowering": t_lowered - t0, "scoring": time.perf_counter() - t_lowered}
+    common = dict(max_flips=max_flips, pareto=pareto, plan_ref=plan_ref, stages=stages)
 
     def report(**kw):
         if progress is not None:
@@ -95,81 +201,93 @@ def repair(
 
     if compiled.fix_conflicts:
         label, name = compiled.fix_conflicts[0]
-        return _build(problem, candidates, compiled, [], price, method, seed, t0,
-                      max_flips=max_flips,
-                      status="infeasible", pareto=pareto,
+        return _build(problem, candidates, compiled, scorer, [], price, method, seed, t0,
+                      status="infeasible", **common,
                       message=f"variable {label!r} is fixed to both values ({name})")
-    plan = run_plan(compiled, X0, method=method, time_limit=float(time_limit),
+    # the front's attempts are not known yet: those of greedy plus a round of kicks
+    reserve = result_seconds(K, problem.n, attempts=2 * K if pareto else 0,
+                             decisions=len(problem.decisions))
+    plan = run_plan(compiled, X0, method=method,
+                    deadline=search_deadline(t0, float(time_limit), reserve),
                     max_flips=max_flips, flip_price=price, seed=seed, workers=workers,
-                    cancel=cancel, progress=report, mix=mix)
-    return _build(problem, candidates, compiled, plan.attempts, price, method, seed, t0,
-                  max_flips=max_flips,
-                  pareto=pareto, plan=plan)
+                    cancel=cancel, progress=report, mix=mix, scorer=scorer)
+    return _build(problem, candidates, compiled, scorer, plan.attempts, price, method, seed, t0,
+                  plan=plan, **common)
 
 
-def _build(problem, candidates, compiled, attempts, price, method, seed, t0, *, pareto,
-           max_flips=None,
-           status=None, message="", plan=None) -> RepairResult:
-    X0 = candidates.X
+def _build(problem, candidates, compiled, scorer, attempts, price, method, seed, t0, *, pareto,
+           max_flips=None, status=None, message="", plan=None, plan_ref=None,
+           stages=None) -> RepairResult:
+    """The result from every attempt's scores (see :func:`flipfix.repair.solvers.portfolio.attempt_scores`):
+    the best, one audit row per candidate, the front; only the best is evaluated by part.
+    ``stages``: seconds of the stages before, completed here and kept in ``stats["seconds"]``."""
+    t_build = time.perf_counter()
+    X0 = scorer.X0
     K = X0.shape[0]
-    ev0 = compiled.evaluate(X0)
     if not attempts:  # nothing ran: report the candidates as they are
-        from flipfix.repair.solvers.portfolio import Attempt
-
-        attempts = [Attempt(k, X0[k].copy(), "unrepaired", 0.0) for k in range(K)]
-    A = np.vstack([a.x for a in attempts]).astype(np.int8)
-    ks = np.asarray([a.k for a in attempts])
-    ev = compiled.evaluate(A)
-    flips = (A != X0[ks]).sum(axis=1)
+        attempts = [Attempt(k, X0[k], "unrepaired", 0.0, float(scorer.cost[k]),
+                            float(scorer.violation[k]), 0) for k in range(K)]
+    ks, cost, viol, flips = attempt_scores(scorer, attempts)
     if max_flips is not None:  # the cap is hard: flips past it count as violation
-        over = np.maximum(0, flips - max_flips).astype(np.float64)
-        ev.violations["max_flips"] = over
-        ev.violation = ev.violation + over
+        viol = viol + np.maximum(0, flips - max_flips)
+    feas = viol == 0.0
+    obj = cost + price * flips
     # feasible first, then objective, then violation, then flips
-    b = int(np.lexsort((flips, ev.cost + price * flips, ev.violation, ~ev.feasible))[0])
+    order = np.lexsort((flips, obj, viol, ~feas))
+    b = int(order[0])
+    xb = attempts[b].x
     origin = int(ks[b])
     # the answer is reported against the library candidate nearest to it (the one it was
     # repaired from on ties): the smallest change from any plan the user keeps. Audit
     # rows stay per origin: each row is what that candidate's own repair reached.
-    dist = (X0 != A[b][None, :]).sum(axis=1)
+    dist = distances(X0, xb)
     bk = origin if dist[origin] == dist.min() else int(np.argmin(dist))
-    obj = ev.cost + price * flips
-    feas = ev.feasible
-    # best per candidate: feasible first, then objective, then flips
-    order = np.lexsort((flips, obj, ev.violation, ~feas))
-    chosen: dict = {}
-    seconds = np.zeros(K)
-    for a_idx, a in enumerate(attempts):
-        seconds[a.k] += a.seconds
-    for a_idx in order:
-        chosen.setdefault(int(ks[a_idx]), int(a_idx))
+    # best per candidate (feasible first, then objective, then flips): its first in order
+    first = np.full(K, -1, dtype=np.int64)
+    ks_sorted = ks[order]
+    seen, at = np.unique(ks_sorted, return_index=True)
+    first[seen] = order[at]
+    seconds = np.bincount(ks, weights=[a.seconds for a in attempts], minlength=K)
     issues: dict = {}
+    changed = np.zeros(K, dtype=np.int64)
     if problem.decisions:  # broken encodings are repair input; the audit names them
-        from flipfix.repair.model.encodings import check_candidates
+        from flipfix.repair.model.encodings import check_candidates, decode_indices
 
         for i in check_candidates(problem, X0):
             issues.setdefault(i.candidate, []).append((i.decision, i.how))
+        after = np.vstack([attempts[a].x if a >= 0 else X0[k] for k, a in enumerate(first)])
+        M0, M1 = decode_indices(problem, X0), decode_indices(problem, after)
+        changed = ((M0 != M1) | (M0 < 0)).sum(axis=1)  # as integer_changes counts them
+    ids = candidates.ids
+    c0, v0 = scorer.cost.tolist(), scorer.violation.tolist()
+    # per candidate, as Python numbers (a row each, no numpy scalars)
+    pick = np.where(first >= 0, first, 0)
+    c1, o1, f1, v1 = (cost[pick].tolist(), obj[pick].tolist(), flips[pick].tolist(),
+                      viol[pick].tolist())
+    secs, chg = seconds.tolist(), changed.tolist()
     audit = []
-    for k in range(K):
-        a_idx = chosen[k]
-        changed = len(_changes(problem, X0[k], A[a_idx])) if problem.decisions else 0
-        audit.append(AuditRow(
-            candidate_id=candidates.ids[k], cost_before=float(ev0.cost[k]),
-            feasible_before=bool(ev0.feasible[k]), cost_after=float(ev.cost[a_idx]),
-            objective_after=float(obj[a_idx]), flips=int(flips[a_idx]),
-            feasible=bool(feas[a_idx]), violation=float(ev.violation[a_idx]),
-            method=attempts[a_idx].method, seconds=float(seconds[k]),
-            decisions_changed=changed, encoding_issues=issues.get(k, [])))
-    changes = _changes(problem, X0[bk], A[b])
+    for k, a in enumerate(first.tolist()):
+        if a < 0:  # never attempted (a cancelled plan): as it was
+            audit.append(AuditRow(ids[k], c0[k], v0[k] == 0.0, c0[k], c0[k], 0, v0[k] == 0.0,
+                                  v0[k], "unrepaired", 0.0, 0, issues.get(k, [])))
+            continue
+        audit.append(AuditRow(ids[k], c0[k], v0[k] == 0.0, c1[k], o1[k], f1[k], v1[k] == 0.0,
+                              v1[k], attempts[a].method, secs[k], chg[k], issues.get(k, [])))
+    ev = compiled.evaluate(xb[None, :])
+    violations = {name: float(v[0]) for name, v in ev.violations.items()}
+    if max_flips is not None:
+        violations["max_flips"] = float(max(0, int(flips[b]) - max_flips))
+    changes = _changes(problem, X0[bk], xb)
     best = Solution(
-        candidate_id=candidates.ids[bk], x=A[b].copy(),
-        assignment=dict(zip(problem.labels, map(int, problem.to_caller(A[b])))),
-        cost=float(ev.cost[b]), objective=float(ev.cost[b] + price * dist[bk]),
-        base_energy=float(ev.base[b]), repaired_from=candidates.ids[origin],
-        penalties={k: float(v[b]) for k, v in ev.penalties.items()}, flips=int(dist[bk]),
-        feasible=bool(feas[b]), violation=float(ev.violation[b]),
-        violations={k: float(v[b]) for k, v in ev.violations.items()},
-        method=attempts[b].method, changes=changes, decisions_changed=len(changes))
+        candidate_id=ids[bk], x=xb.copy(),
+        assignment=dict(zip(problem.labels, problem.to_caller(xb).tolist())),
+        cost=float(ev.cost[0]), objective=float(ev.cost[0] + price * dist[bk]),
+        base_energy=float(ev.base[0]), repaired_from=ids[origin],
+        penalties={name: float(v[0]) for name, v in ev.penalties.items()}, flips=int(dist[bk]),
+        feasible=bool(feas[b]), violation=float(sum(violations.values())),
+        violations=violations, method=attempts[b].method, changes=changes,
+        decisions_changed=len(changes),
+        plan_distance=None if plan_ref is None else int((xb[plan_ref[0]] != plan_ref[1]).sum()))
     if status is None:
         if best.feasible:
             status = "optimal" if plan is not None and plan.proven_optimal else "feasible"
@@ -182,15 +300,18 @@ def _build(problem, candidates, compiled, attempts, price, method, seed, t0, *, 
                        "least-violating one")
     points = []
     if pareto:
-        from flipfix.repair.audit.pareto import pareto_front
+        from flipfix.repair.audit.pareto import pareto_front, run_points
 
-        points = pareto_front(
-            ParetoPoint(cost=float(ev.cost[i]), flips=int(flips[i]),
-                        candidate_id=candidates.ids[int(ks[i])], method=attempts[i].method)
-            for i in np.flatnonzero(feas))
+        A = np.vstack([a.x for a in attempts])
+        points = pareto_front(run_points(X0, ids, scorer.cost, scorer.violation == 0.0, A, ks,
+                                         cost, feas, [a.method for a in attempts]))
+    stats = plan.stats if plan is not None else {}
+    if stages is not None:
+        done = time.perf_counter()
+        stats["seconds"] = {**stages, "search": t_build - t0 - sum(stages.values()),
+                            "result": done - t_build}
     return RepairResult(
         status=status, best=best, audit=audit, seed=seed, method=method,
         seconds=time.perf_counter() - t0, message=message, pareto=points,
         scaling_error=plan.scaling_error if plan is not None else 0.0,
-        cpsat_status=plan.cpsat_status if plan is not None else "",
-        stats=plan.stats if plan is not None else {})
+        cpsat_status=plan.cpsat_status if plan is not None else "", stats=stats)

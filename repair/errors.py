@@ -7,7 +7,7 @@ offending field so that a caller (the service, the CLI) can report it as is.
 
 from __future__ import annotations
 
-__all__ = ["InputError", "LimitError"]
+__all__ = ["InputError", "LimitError", "under"]
 
 
 class InputError(ValueError):
@@ -21,3 +21,11 @@ class InputError(ValueError):
 
 class LimitError(InputError):
     """The input is well formed but larger than a configured limit."""
+
+
+def under(err: InputError, field: str) -> InputError:
+    """``err`` with its field path placed under ``field`` (``weight`` -> ``field.weight``);
+    returned as is when its path already starts there."""
+    if err.field == field or err.field.startswith((field + ".", field + "[")):
+        return err
+    return type(err)(f"{field}.{err.field}" if err.field else field, err.message)

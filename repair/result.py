@@ -28,6 +28,10 @@ class Solution:
     the answer (the same one unless another candidate is closer).
     ``changes`` lists integer-level changes ``(decision, old, new)`` when the
     problem declares decisions; ``decisions_changed`` counts them.
+    ``plan_distance`` is the Hamming distance of ``x`` from the published plan the late
+    constraints name: the reference of the first Hamming-type penalty (``HammingPenalty``:
+    the bits of every label in its reference; ``DecisionChangePenalty``: the bits of every
+    decision in its reference, against that value's code); None when there is none.
     """
 
     candidate_id: str
@@ -45,6 +49,7 @@ class Solution:
     changes: list = field(default_factory=list)
     decisions_changed: int = 0
     repaired_from: str = ""
+    plan_distance: int | None = None
 
 
 @dataclass
@@ -79,6 +84,10 @@ class ParetoPoint:
 @dataclass
 class RepairResult:
     """Outcome of :func:`flipfix.repair.repair`; never raised, always returned.
+
+    ``seconds`` is the whole call, from its entry (after the one-time kernel warm-up) to
+    its return: lowering, scoring, search and building this result; ``stats["seconds"]``
+    splits it by those stages ("lowering", "scoring", "search", "result").
 
     ``best`` is the cheapest feasible solution (ties: fewer flips), or, when
     none is feasible, the least-violating assignment found. ``audit`` has one
@@ -123,6 +132,7 @@ class RepairResult:
                 "base_energy": num(b.base_energy),
                 "penalties": {k: num(v) for k, v in b.penalties.items()},
                 "flips": int(b.flips),
+                "plan_distance": None if b.plan_distance is None else int(b.plan_distance),
                 "feasible": bool(b.feasible),
                 "violation": num(b.violation),
                 "violations": {k: num(v) for k, v in b.violations.items()},

@@ -26,6 +26,8 @@ import textwrap
 from pathlib import Path
 from typing import Any, TextIO
 
+import numpy as np
+
 from flipfix.repair.errors import InputError
 
 __all__ = ["register", "run", "audit", "audit_remote", "draw_figure", "format_table"]
@@ -35,27 +37,42 @@ def register(subparsers) -> argparse.ArgumentParser:
     """Add the ``audit`` subcommand to ``subparsers`` (from ``add_subparsers``)."""
     p = subparsers.add_parser(
         "audit", help="audit a candidate library: robustness, stress test, Pareto, curation",
-        description="Profile every candidate (free variables, flip costs), repair the whole "
-                    "library under N seeded random late constraints, and report which candidates "
-                    "absorb late changes cheaply.")
+        description="Profile every candidate (free variables and decisions, flip costs), repair "
+                    "the whole library under N seeded random late constraints, and report which "
+                    "candidates absorb late changes cheaply.")
     p.add_argument("problem", help="problem JSON document (with --server: a stored problem's name)")
     p.add_argument("candidates", nargs="?", default=None,
                    help="candidates JSON document (not with --server: the stored ones are used)")
     p.add_argument("--scenarios", type=int, default=20, help="number of seeded scenarios (20)")
-    p.add_argument("--shape", default="linear", choices=("linear", "quadratic", "threshold"),
-                   help="shape of the Hamming penalty to a random reference (linear)")
-    p.add_argument("--weight", type=float, default=1.0,
-                   help="weight of the Hamming penalty, energy units per flip; 0 disables (1.0)")
-    p.add_argument("--threshold", type=float, default=0.0, help="threshold of the threshold shape")
-    p.add_argument("--fraction", type=float, default=1.0,
-                   help="share of the variables the reference covers, in (0, 1] (1.0)")
-    p.add_argument("--reference", default="uniform", choices=("uniform", "perturbed"),
-                   help="random reference: uniform bits or a perturbed library candidate")
-    p.add_argument("--fix-k", type=int, default=0, help="random variables fixed per scenario (0)")
-    p.add_argument("--cut", type=float, default=0.0,
-                   help="capacity cut in percent: sum x <= (1 - p/100) * library max (0: off)")
+    fam = p.add_argument_group(
+        "scenario family",
+        "Each scenario combines every part set here. With none of --weight, --fix-k, --cut, "
+        "--unavailable, --must-change: --unavailable 1 on a problem with declared decisions "
+        "(a uniform random bit reference would break every one-hot decision), else --weight 1. "
+        "An unset --weight is 1 on problems without decisions and 0 on problems with them.")
+    fam.add_argument("--shape", default="linear", choices=("linear", "quadratic", "threshold"),
+                     help="shape of the Hamming penalty to a random reference (linear)")
+    fam.add_argument("--weight", type=float, default=None,
+                     help="weight of the Hamming penalty, energy units per flip; 0 disables "
+                          "(unset: see above)")
+    fam.add_argument("--threshold", type=float, default=0.0, help="threshold of the threshold shape")
+    fam.add_argument("--fraction", type=float, default=1.0,
+                     help="share of the variables the reference covers, in (0, 1] (1.0)")
+    fam.add_argument("--reference", default="uniform", choices=("uniform", "perturbed"),
+                     help="random reference: uniform bits or a perturbed library candidate")
+    fam.add_argument("--fix-k", type=int, default=None,
+                     help="random variables fixed to random values per scenario (0: off)")
+    fam.add_argument("--cut", type=float, default=None,
+                     help="capacity cut in percent: sum x <= (1 - p/100) * library max (0: off)")
+    fam.add_argument("--unavailable", type=int, default=None, metavar="N",
+                     help="decision level: N random decisions each lose one value held in the "
+                          "library (0: off)")
+    fam.add_argument("--must-change", type=int, default=None, metavar="K",
+                     help="decision level: K decisions of a random library plan must change; "
+                          "each loses that plan's value (0: off)")
     p.add_argument("--epsilon", type=float, default=0.0,
-                   help="a variable is free when its single flip costs <= epsilon (0)")
+                   help="a variable is free when its single flip costs <= epsilon, a decision "
+                        "when a one-step move does (0)")
     p.add_argument("--method", default="greedy", choices=("greedy", "cpsat", "portfolio"),
                    help="repair method of the stress test (greedy: fast, deterministic)")
     p.add_argument("--time-limit", type=float, default=30.0,
@@ -88,16 +105,22 @@ def _load(path: str, field: str) -> Any:
         raise InputError(field, f"{path} is not valid JSON: {exc.msg} at line {exc.lineno}") from None
 
 
-def audit(problem, candidates, family, *, scenarios: int, seed: int, method: str,
+def audit(problem, candidates, family=None, *, scenarios: int, seed: int, method: str,
           time_limit: float, epsilon: float, keep: int | None, pareto_constraints=None,
           pareto_methods=("greedy", "cpsat"), pareto_time: float = 2.0, cancel=None,
           progress=None) -> dict:
-    """Run the four parts of the audit and return their plain-data reports."""
-    from flipfix.repair.audit.curation import curate
-    from flipfix.repair.audit.pareto import cheapest_within, cost_flip_front, fewest_flips_within
-    from flipfix.repair.audit.robustness import robustness_profile
-    from flipfix.repair.audit.stress import draw_scenarios, stress_test
+    """Run the four parts of the audit and return their plain-data reports.
 
+    ``family`` None is :func:`flipfix.repair.audit.stress.default_family` of the problem.
+    """
+    from flipfix.repair.audit.curation import curate
+    from flipfix.repair.audit.front import cost_flip_front
+    from flipfix.repair.audit.pareto import cheapest_within, fewest_flips_within
+    from flipfix.repair.audit.robustness import robustness_profile
+    from flipfix.repair.audit.stress import default_family, draw_scenarios, stress_test
+
+    if family is None:
+        family = default_family(problem)
     prof = robustness_profile(problem, candidates, epsilon=epsilon)
     stress = stress_test(problem, candidates, family, scenarios=scenarios, seed=seed, method=method,
                          time_limit=time_limit, epsilon=epsilon, cancel=cancel, progress=progress)
@@ -124,9 +147,19 @@ def audit_remote(client, name: str, family, *, scenarios: int, seed: int, method
                  pareto_constraints=None, pareto_methods=("greedy", "cpsat"),
                  pareto_time: float = 2.0, progress=None) -> dict:
     """:func:`audit` through a running service (``client``: :class:`flipfix.service.client.FlipfixClient`);
-    the library is the stored problem ``name`` (candidates of its current revision)."""
+    the library is the stored problem ``name`` (candidates of its current revision).
+
+    The service's ``ScenarioFamily`` message has no decision-level parts yet: a family
+    with ``unavailable_values`` or ``must_change`` is refused here (InputError naming the
+    part) instead of being sent without them.
+    """
     from flipfix.repair.audit.stress import draw_scenarios
 
+    for part in ("unavailable_values", "must_change"):
+        if getattr(family, part):
+            raise InputError(f"family.{part}", "decision-level scenarios are not in the "
+                                               "service's StressTest yet; audit in-process "
+                                               "(without --server)")
     prof = client.robustness(name, epsilon=epsilon)
     opts = dict(scenarios=scenarios, seed=seed, method=method, time_limit=time_limit,
                 epsilon=epsilon)
@@ -138,6 +171,12 @@ def audit_remote(client, name: str, family, *, scenarios: int, seed: int, method
                                       if out["removed_ids"] else "")
     else:
         stress = client.stress_test(name, family, on_progress=progress, **opts)
+    # the service's CandidateStress has no free_decisions yet; the profile (same epsilon) has both
+    counts = {q.candidate_id: q for q in prof.profiles}
+    for c in stress.candidates:
+        if c.candidate_id in counts:
+            c.free_variables = counts[c.candidate_id].free_variables
+            c.free_decisions = counts[c.candidate_id].free_decisions
     if pareto_constraints is None:  # scenario 0, drawn exactly as the server draws it
         info, problem = client.get_problem(name)
         [lib] = client.list_candidates(name, revision=info.revision)  # one revision: one run
@@ -162,28 +201,42 @@ def _f(v: float | None, width: int = 10) -> str:
     return f"{v:{width}.4g}"
 
 
+def _free_axis(report: dict) -> tuple[str, list]:
+    """What the robustness side counts, as a label, and its value per candidate.
+
+    Without declared decisions: free variables. With them: free moves, the free
+    variables (outside decisions) plus the free decisions.
+    """
+    st = report["stress"]
+    if report["robustness"].n_decisions > 0:
+        return (f"free moves (free variables + free decisions, cost <= {st.epsilon:g})",
+                [c.free_moves for c in st.candidates])
+    return (f"free variables (single flip cost <= {st.epsilon:g})",
+            [c.free_variables for c in st.candidates])
+
+
 def format_table(report: dict) -> str:
     """The per-candidate table and the summary lines, as text."""
-    prof = {p.candidate_id: p for p in report["robustness"].profiles}
     st = report["stress"]
     dec = report["robustness"].n_decisions > 0
     wid = max([len("candidate")] + [len(c.candidate_id) for c in st.candidates])
-    head = (f"{'candidate':<{wid}} {'energy':>10} {'free':>5}" + (f" {'fdec':>5}" if dec else "")
+    head = (f"{'candidate':<{wid}} {'energy':>10} {'free var':>8}"
+            + (f" {'free dec':>8}" if dec else "")
             + f" {'mean cost':>10} {'worst cost':>10} {'mean flips':>10} {'max flips':>9}"
             f" {'wins':>5} {'fail':>5}")
     lines = [f"stress test: {st.scenarios_done}/{st.scenarios_requested} scenarios, method "
              f"{st.method}, seed {st.seed}, {st.seconds:.2f} s"
-             + (f" ({st.message})" if st.message else ""), head, "-" * len(head)]
+             + (f" ({st.message})" if st.message else ""),
+             "scenarios: " + _family_text(st.family), head, "-" * len(head)]
     for c in st.candidates:
-        p = prof[c.candidate_id]
         lines.append(
-            f"{c.candidate_id:<{wid}} {_f(c.energy)} {c.free_variables:>5d}"
-            + (f" {p.free_decisions:>5d}" if dec else "")
+            f"{c.candidate_id:<{wid}} {_f(c.energy)} {c.free_variables:>8d}"
+            + (f" {c.free_decisions:>8d}" if dec else "")
             + f" {_f(c.mean_cost)} {_f(c.worst_cost)} {_f(c.mean_flips)}"
             f" {(str(c.worst_flips) if c.worst_flips >= 0 else '-'):>9} {c.wins:>5d} {c.failures:>5d}")
     corr = ("n/a" if st.spearman is None else
             f"Spearman {st.spearman:+.3f}, Pearson {st.pearson:+.3f} over {st.correlated} candidates")
-    lines.append(f"free variables (flip cost <= {st.epsilon:g}) vs mean repair cost: {corr}"
+    lines.append(f"{_free_axis(report)[0]} vs mean repair cost: {corr}"
                  + ("  (negative: broad minima repair more cheaply)" if st.spearman is not None
                     and st.spearman < 0 else ""))
     front = report["pareto"]
@@ -206,67 +259,200 @@ def format_table(report: dict) -> str:
     return "\n".join(lines)
 
 
+def _family_text(family: dict) -> str:
+    """The enabled parts of a family document (:meth:`ScenarioFamily.to_dict`), in words."""
+    if not family or "hamming_weight" not in family:
+        return "given scenarios"
+    parts = []
+    if family["hamming_weight"]:
+        parts.append(f"{family['hamming_shape']} Hamming penalty w={family['hamming_weight']:g} to a "
+                     f"{family['reference']} reference")
+    if family.get("fix_k"):
+        parts.append(f"{family['fix_k']} variables fixed")
+    if family.get("capacity_cut_percent"):
+        parts.append(f"capacity cut {family['capacity_cut_percent']:g}%")
+    if family.get("unavailable_values"):
+        parts.append(f"{family['unavailable_values']} decision value(s) unavailable")
+    if family.get("must_change"):
+        parts.append(f"{family['must_change']} decision(s) of a library plan must change")
+    return "; ".join(parts)
 
-def _integer_axis(ax, locator) -> None:
-    """Whole-number ticks on a count axis; a narrow range gets half a unit of room each side."""
-    lo, hi = ax.get_xlim()
-    if hi - lo < 4.0:
-        ax.set_xlim(round(lo) - 0.5, round(hi) + 0.5)
-    ax.xaxis.set_major_locator(locator(integer=True, min_n_ticks=1))
+
+#: at most this many candidate names on the left panel (the lowest mean repair costs)
+NAMED_CANDIDATES = 10
+#: at most this many named points on the Pareto front (both ends always)
+NAMED_FRONT = 12
 
 
-def draw_figure(report: dict, path: str) -> None:
-    """PNG: mean (and worst) repair cost against free variables; the Pareto front."""
+def _count_axis(ax, values) -> None:
+    """A count axis from 0 with whole-number ticks and room after the largest value."""
+    from matplotlib.ticker import MaxNLocator
+
+    hi = max([0] + [v for v in values if math.isfinite(v)])
+    ax.set_xlim(0, hi + max(0.5, 0.08 * hi))
+    ax.xaxis.set_major_locator(MaxNLocator(integer=True, min_n_ticks=1))
+
+
+def _spread(n: int, most: int) -> list[int]:
+    """Indices of at most ``most`` of n items, evenly spread, first and last included."""
+    if n <= most:
+        return list(range(n))
+    return sorted({round(i * (n - 1) / (most - 1)) for i in range(most)})
+
+
+#: where a label goes around its point, in order of preference: (dx, dy) on a square ring
+#: (max(|dx|, |dy|) = 1); the label's box lies on the side the offset points to
+_DIRECTIONS = ((1, 1), (1, -1), (-1, 1), (-1, -1), (1, 0), (-1, 0), (0, 1), (0, -1),
+               (1, .5), (1, -.5), (-1, .5), (-1, -.5), (.5, 1), (-.5, 1), (.5, -1), (-.5, -1))
+#: distances (points) from a marker's edge to its label, tried in order
+_STEPS = (1.5, 6.0, 12.0, 20.0, 30.0, 44.0, 60.0)
+
+
+def _overlap(a, b) -> float:
+    """Area shared by two boxes (x0, y0, x1, y1)."""
+    w = min(a[2], b[2]) - max(a[0], b[0])
+    h = min(a[3], b[3]) - max(a[1], b[1])
+    return w * h if w > 0 and h > 0 else 0.0
+
+
+def place_labels(ax, xy, texts, *, half: Any = 4.0, obstacles=(), fontsize: float = 7.0) -> list:
+    """Annotate each point ``xy[i]`` (data coordinates) with ``texts[i]`` without overlaps.
+
+    Labels are placed in input order (put the most important first). Each takes the
+    first offset (:data:`_STEPS` from its marker's edge, in the :data:`_DIRECTIONS`)
+    whose box stays inside the axes and overlaps neither a label placed before, nor a
+    marker of ``xy`` (a square of half side ``half`` points: one number or one per
+    point), nor ``obstacles`` ((x, y, half side in points): other markers), nor the
+    legend; when none is free, the offset with the least overlap. A label away from
+    its point gets a thin leader line. Call it once the axis limits and the layout are
+    final (boxes are computed in display pixels). Returns the
+    :class:`matplotlib.text.Annotation` objects in input order.
+    """
+    fig = ax.figure
+    renderer = fig.canvas.get_renderer()
+    px = fig.dpi / 72.0  # pixels per point
+    pts = np.asarray(xy, dtype=float).reshape(-1, 2)
+    halves = np.broadcast_to(np.asarray(half, dtype=float), (len(pts),))
+
+    def square(x, y, h):
+        dx, dy = ax.transData.transform((x, y))
+        return (dx - h * px, dy - h * px, dx + h * px, dy + h * px)
+
+    taken = [square(x, y, h) for (x, y), h in zip(pts, halves)]
+    taken += [square(x, y, h) for x, y, h in obstacles]
+    if ax.get_legend() is not None:
+        taken.append(tuple(ax.get_legend().get_window_extent(renderer).extents))
+    fx0, fy0, fx1, fy1 = ax.bbox.extents
+    out = []
+    for (x, y), h, text in zip(pts, halves, texts):
+        ann = ax.annotate(text, (x, y), xytext=(0, 0), textcoords="offset points",
+                          fontsize=fontsize, annotation_clip=False)
+        ext = ann.get_window_extent(renderer)
+        w, t = ext.width + 2.0, ext.height + 2.0  # a pixel of padding each side
+        cx, cy = ax.transData.transform((x, y))
+        best = None
+        for step in _STEPS:
+            rad = h + step
+            for ux, uy in _DIRECTIONS:
+                ox, oy = cx + ux * rad * px, cy + uy * rad * px
+                x0 = ox if ux == 1 else ox - w if ux == -1 else ox - w / 2
+                y0 = oy if uy == 1 else oy - t if uy == -1 else oy - t / 2
+                box = (x0, y0, x0 + w, y0 + t)
+                outside = (max(0.0, fx0 - box[0]) + max(0.0, box[2] - fx1)) * t \
+                    + (max(0.0, fy0 - box[1]) + max(0.0, box[3] - fy1)) * w
+                bad = outside + sum(_overlap(box, o) for o in taken)
+                if best is None or bad < best[0]:
+                    best = (bad, step, ux, uy, rad, box)
+                if bad == 0.0:
+                    break
+            if best[0] == 0.0:
+                break
+        _, step, ux, uy, rad, box = best
+        ann.remove()
+        ann = ax.annotate(
+            text, (x, y), xytext=(ux * rad, uy * rad), textcoords="offset points",
+            fontsize=fontsize, annotation_clip=False,
+            ha="left" if ux == 1 else "right" if ux == -1 else "center",
+            va="bottom" if uy == 1 else "top" if uy == -1 else "center",
+            arrowprops=(dict(arrowstyle="-", lw=0.5, color="0.45", shrinkA=0, shrinkB=h)
+                        if step > _STEPS[0] else None))
+        taken.append(box)
+        out.append(ann)
+    return out
+
+
+def draw_figure(report: dict, path: str) -> Any:
+    """PNG: mean (and worst) repair cost against free variables, or free moves when the
+    problem declares decisions, named by candidate; the Pareto front of cost and flips,
+    each point named. Returns the closed figure (for tests that inspect its artists)."""
     import matplotlib
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
-    from matplotlib.ticker import MaxNLocator
 
     st = report["stress"]
-    fig, (ax1, ax2) = plt.subplots(1, 2, figsize=(11, 4.6), constrained_layout=True)
-    xs = [c.free_variables for c in st.candidates]
+    fig, (ax1, ax2) = plt.subplots(1, 2, figsize=(12, 5.2), dpi=120, constrained_layout=True)
+    what, xs = _free_axis(report)
     mean = [c.mean_cost for c in st.candidates]
     worst = [c.worst_cost for c in st.candidates]
     wins = [c.wins for c in st.candidates]
     sizes = [30 + 170 * w / max(1, st.scenarios_done) for w in wins]
-    ax1.scatter(xs, worst, marker="v", color="tab:red", alpha=0.6, label="worst repair cost")
+    ax1.scatter(xs, worst, marker="v", color="tab:red", alpha=0.6, label="worst repair cost",
+                clip_on=False)
     ax1.scatter(xs, mean, s=sizes, color="tab:blue", alpha=0.75,
-                label="mean repair cost (size: wins)")
-    if len(xs) <= 25:
-        for c in st.candidates:
-            if math.isfinite(c.mean_cost):
-                ax1.annotate(c.candidate_id, (c.free_variables, c.mean_cost), fontsize=7,
-                             xytext=(4, 3), textcoords="offset points")
+                label="mean repair cost (size: wins)", clip_on=False)
+    named = sorted((k for k, c in enumerate(st.candidates) if math.isfinite(c.mean_cost)),
+                   key=lambda k: (st.candidates[k].mean_cost, k))
+    rule = "names: every candidate"
+    if len(named) > NAMED_CANDIDATES:
+        named = named[:NAMED_CANDIDATES]
+        rule = f"names: the {NAMED_CANDIDATES} lowest mean costs"
+    ax1.plot([], [], " ", label=rule)
     corr = "" if st.spearman is None else f" (Spearman {st.spearman:+.2f})"
-    ax1.set_title(f"Repair cost vs free variables, {st.scenarios_done} scenarios{corr}", fontsize=10)
-    ax1.set_xlabel(f"free variables (single flip cost <= {st.epsilon:g}), count")
-    _integer_axis(ax1, MaxNLocator)
+    short = what.split(" (")[0]
+    ax1.set_title(f"Repair cost vs {short}, {st.scenarios_done} scenarios{corr}", fontsize=10)
+    ax1.set_xlabel(f"{what}, count")
     ax1.set_ylabel("repair cost (energy units of the problem)")
-    ax1.margins(x=0.12, y=0.08)
+    _count_axis(ax1, xs)
+    ax1.margins(y=0.12)
     ax1.grid(alpha=0.3)
     ax1.legend(fontsize=8, loc="best")
     front = report["pareto"]
+    shown = []
     if front:
         fx = [p.flips for p in front]
         fy = [p.cost for p in front]
         ax2.step(fx, fy, where="post", color="tab:green", alpha=0.6)
-        ax2.scatter(fx, fy, color="tab:green", zorder=3, label="non-dominated repairs")
-        for p in front:
-            ax2.annotate(f"{p.candidate_id} ({p.method})", (p.flips, p.cost), fontsize=7,
-                         xytext=(4, 3), textcoords="offset points")
+        ax2.scatter(fx, fy, color="tab:green", zorder=3, label="non-dominated repairs",
+                    clip_on=False)
+        shown = _spread(len(front), NAMED_FRONT)
+        if len(shown) < len(front):
+            ax2.plot([], [], " ", label=f"names: {len(shown)} of {len(front)} points, spread")
         ax2.legend(fontsize=8, loc="best")
+        _count_axis(ax2, fx)
     else:
         ax2.text(0.5, 0.5, "no feasible repair", ha="center", va="center", transform=ax2.transAxes)
-    what = textwrap.shorten(report["pareto_for"], width=110, placeholder=" ...")
-    ax2.set_title("Pareto front of cost and flips\n" + textwrap.fill(what, 62), fontsize=9)
-    ax2.margins(x=0.15, y=0.08)
+        ax2.set_xlim(0, 1)
+    what2 = textwrap.shorten(report["pareto_for"], width=110, placeholder=" ...")
+    ax2.set_title("Pareto front of cost and flips\n" + textwrap.fill(what2, 62), fontsize=9)
+    ax2.margins(y=0.12)
     ax2.set_xlabel("flips (variables changed), count")
-    _integer_axis(ax2, MaxNLocator)
     ax2.set_ylabel("repair cost (energy units of the problem)")
     ax2.grid(alpha=0.3)
-    fig.savefig(path, dpi=120)
+    # fix the layout, then place the names in display space (they must not move afterwards)
+    fig.canvas.draw()
+    fig.set_layout_engine("none")
+    place_labels(ax1, [(xs[k], mean[k]) for k in named],
+                 [st.candidates[k].candidate_id for k in named],
+                 half=[math.sqrt(sizes[k]) / 2 for k in named],
+                 obstacles=[(x, w, 3.0) for x, w in zip(xs, worst) if math.isfinite(w)]
+                 + [(x, m, math.sqrt(a) / 2) for x, m, a in zip(xs, mean, sizes)
+                    if math.isfinite(m)])
+    place_labels(ax2, [(front[k].flips, front[k].cost) for k in shown],
+                 [f"{front[k].candidate_id} ({front[k].method})" for k in shown])
+    fig.savefig(path)  # at the figure's dpi, the one the names were placed at
     plt.close(fig)
+    return fig
 
 
 def _json_ready(report: dict) -> dict:
@@ -290,7 +476,9 @@ _OPTION_OF = {
     "family.hamming_weight": "--weight", "family.hamming_shape": "--shape",
     "family.hamming_threshold": "--threshold", "family.hamming_fraction": "--fraction",
     "family.reference": "--reference", "family.fix_k": "--fix-k",
-    "family.capacity_cut_percent": "--cut", "family": "--weight/--fix-k/--cut",
+    "family.capacity_cut_percent": "--cut", "family.unavailable_values": "--unavailable",
+    "family.must_change": "--must-change",
+    "family": "--weight/--fix-k/--cut/--unavailable/--must-change",
     "scenarios": "--scenarios", "seed": "--seed", "time_limit": "--time-limit",
     "epsilon": "--epsilon", "m": "--keep", "methods": "--pareto-methods", "method": "--method",
 }
@@ -315,7 +503,7 @@ def run(args: argparse.Namespace, *, out: TextIO | None = None, err: TextIO | No
             doc = doc["candidates"]
         candidates = parse_candidates(doc, problem)
         cons = _pareto_constraints(args, problem)
-        family = _family_of(args)
+        family = _family_of(args, problem)
         methods = _pareto_methods(args)
         report = audit(problem, candidates, family, scenarios=args.scenarios, seed=args.seed,
                        method=args.method, time_limit=args.time_limit, epsilon=args.epsilon,
@@ -345,13 +533,26 @@ def _pareto_methods(args) -> tuple:
     return tuple(m.strip() for m in args.pareto_methods.split(",") if m.strip())
 
 
-def _family_of(args):
-    from flipfix.repair.audit.stress import ScenarioFamily
+#: family part -> the option that sets it
+_PART_OPTIONS = {"hamming_weight": "weight", "fix_k": "fix_k", "capacity_cut_percent": "cut",
+                 "unavailable_values": "unavailable", "must_change": "must_change"}
 
-    return ScenarioFamily(
-        hamming_weight=args.weight, hamming_shape=args.shape, hamming_threshold=args.threshold,
-        hamming_fraction=args.fraction, reference=args.reference, fix_k=args.fix_k,
-        capacity_cut_percent=args.cut)
+
+def _family_of(args, problem):
+    """The scenario family of the options: the parts given, or, with none given,
+    :func:`flipfix.repair.audit.stress.default_family` (an unset ``--weight`` is that
+    family's Hamming weight: 1 without declared decisions, 0 with them)."""
+    from dataclasses import replace
+
+    from flipfix.repair.audit.stress import default_family
+
+    given = {part: getattr(args, opt) for part, opt in _PART_OPTIONS.items()
+             if getattr(args, opt) is not None}
+    fam = default_family(problem)
+    if given:
+        fam = replace(fam, unavailable_values=0, must_change=0)
+    return replace(fam, hamming_shape=args.shape, hamming_threshold=args.threshold,
+                   hamming_fraction=args.fraction, reference=args.reference, **given)
 
 
 def _run_remote(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
@@ -369,11 +570,15 @@ def _run_remote(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     budget = args.time_limit + args.pareto_time
     with FlipfixClient(args.server, timeout=2 * budget + 60.0) as fx:
         try:
-            cons = None
-            if args.constraints:
-                _info, problem = fx.get_problem(args.problem)
-                cons = _pareto_constraints(args, problem)
-            family = _family_of(args)
+            _info, problem = fx.get_problem(args.problem)
+            if problem.decisions and all(getattr(args, o) is None for o in _PART_OPTIONS.values()):
+                print("flipfix audit: error: --server: the problem declares decisions, whose "
+                      "default scenarios (--unavailable 1) the service cannot run yet; give "
+                      "--weight, --fix-k or --cut for bit-level scenarios, or audit in-process",
+                      file=err)
+                return 2
+            cons = _pareto_constraints(args, problem)
+            family = _family_of(args, problem)
             methods = _pareto_methods(args)
             report = audit_remote(
                 fx, args.problem, family, scenarios=args.scenarios, seed=args.seed,
@@ -388,7 +593,7 @@ def _run_remote(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
             if exc.code() in (grpc.StatusCode.INVALID_ARGUMENT, grpc.StatusCode.NOT_FOUND):
                 field, _, msg = (exc.details() or "").partition(": ")
                 bare = field.removeprefix("stress.")  # CurateLibrary nests the stress request
-                field = {"problem": "PROBLEM"}.get(bare) or _OPTION_OF.get(bare, field)
+                field = {"problem": "PROBLEM", "name": "PROBLEM"}.get(bare) or _OPTION_OF.get(bare, field)
                 print(f"flipfix audit: error: {field}: {msg}", file=err)
                 return 2
             print(f"flipfix audit: error: server {args.server}: {exc.code().name}: "

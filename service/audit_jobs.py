@@ -1,4 +1,4 @@
-"""The audit RPCs' work, as it runs in a repair worker process (issue 5).
+"""The audit RPCs' work, as it runs in a repair worker process.
 
 Each function is module level (the pool pickles it by reference), takes domain
 objects only, accepts the ``cancel`` (``threading.Event``) and ``progress``
@@ -9,8 +9,9 @@ Nothing here knows about gRPC.
 
 from __future__ import annotations
 
-from typing import Any, Sequence
+from typing import Sequence
 
+from flipfix.repair.lowering.compiled import Compiled
 from flipfix.repair.model.candidates import CandidateSet
 from flipfix.repair.model.problem import Problem
 
@@ -39,13 +40,14 @@ def stress(problem: Problem, candidates: CandidateSet, family, *, scenarios: int
                        progress=progress, repair_options=repair_options)
 
 
-def pareto(problem: Problem, candidates: CandidateSet, constraints: Sequence[Any], *,
+def pareto(problem: Problem, candidates: CandidateSet, compiled: Compiled, *,
            methods: Sequence[str], time_limit: float, seed: int, include_unchanged: bool,
            cancel=None, progress=None):
-    """:func:`flipfix.repair.audit.pareto.cost_flip_front`: one repair of the library per method."""
-    from flipfix.repair.audit.pareto import cost_flip_front
+    """:func:`flipfix.repair.audit.front.cost_flip_front`: one repair of the library per method,
+    under the constraints the server compiled once (``compiled``)."""
+    from flipfix.repair.audit.front import cost_flip_front
 
-    return cost_flip_front(problem, candidates, constraints, methods=tuple(methods),
+    return cost_flip_front(problem, candidates, compiled=compiled, methods=tuple(methods),
                            time_limit=time_limit, seed=seed, cancel=cancel, progress=progress,
                            include_unchanged=include_unchanged)
 

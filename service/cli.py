@@ -122,13 +122,10 @@ def _repair_local(args, docs: dict, show: _Progress) -> dict:
 def _repair_remote(args, docs: dict, show: _Progress) -> dict:
     import grpc
 
-    from flipfix.repair.documents import forms as documents
-
     from flipfix.service.client import FlipfixClient
 
-    problem = documents.parse_problem(docs["problem"])  # check locally: names the file
-    documents.parse_candidates(docs["candidates"], problem)
-    documents.parse_constraints(docs["constraints"], problem)
+    # the client reads each document once, before any call; its errors name the field
+    # (problem..., candidates..., constraints...), which _blame maps to the file
     budget = args.time_limit
     timeout = None if budget is None else budget * 2 + 30.0
     with FlipfixClient(args.server, timeout=timeout) as fx:

@@ -114,8 +114,9 @@ class FlipfixClient:
     # ------------------------------------------------------------ conversion
     @staticmethod
     def _model(model: Any) -> tuple[pb.ProblemModel, Problem]:
-        if isinstance(model, Mapping):  # keep the document's own terms (exact)
-            return convert.doc_to_model(model), documents.parse_problem(model)
+        if isinstance(model, Mapping):  # keep the document's own terms (exact); parsed once
+            problem = documents.parse_problem(model)
+            return convert.doc_to_model(model, problem=problem), problem
         problem = as_problem(model)
         return convert.problem_to_model(problem), problem
 
@@ -131,14 +132,16 @@ class FlipfixClient:
 
     @staticmethod
     def _constraints(problem: Problem, constraints: Iterable[Any]) -> list[pb.Constraint]:
+        """Constraint protos, domain objects (:mod:`flipfix.repair.model.constraints`) or JSON
+        objects -> Constraint protos (each JSON object read once)."""
         out = []
         for k, c in enumerate(constraints or []):
             if isinstance(c, pb.Constraint):
                 out.append(c)
-            elif not isinstance(c, Mapping) and convert.constraint_to_proto(c) is not None:
-                out.append(convert.constraint_to_proto(c))  # a flipfix.repair.model.constraints object
-            else:
+            elif isinstance(c, Mapping):
                 out.append(convert.doc_to_constraint(c, problem, field=f"constraints[{k}]"))
+            else:
+                out.append(convert.constraint_to_proto(c, field=f"constraints[{k}]"))
         return out
 
     # -------------------------------------------------------------- problems
@@ -277,9 +280,9 @@ class FlipfixClient:
 
     @staticmethod
     def _method(method: str) -> int:
-        if method not in convert._METHOD_ENUM:
-            raise ValueError(f"method must be one of {sorted(convert._METHOD_ENUM)}, got {method!r}")
-        return convert._METHOD_ENUM[method]
+        if method not in convert.METHOD_ENUM:
+            raise ValueError(f"method must be one of {sorted(convert.METHOD_ENUM)}, got {method!r}")
+        return convert.METHOD_ENUM[method]
 
     def robustness(self, name: str, *, epsilon: float = 0.0, spectrum: bool = False,
                    candidate_ids: Sequence[str] = (), all_revisions: bool = False,

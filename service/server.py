@@ -5,10 +5,13 @@ core, and converts back; errors become status codes in :mod:`flipfix.service.err
 
 * Repairs run in a process pool (:mod:`flipfix.service.worker`) so CPU work never holds
   the gRPC threads; a full queue is RESOURCE_EXHAUSTED.
-* Deadline: the solver budget is ``min(requested, remaining deadline - margin)``,
-  so a short deadline still gets the best found so far.
-* Cancellation: ``context.add_callback`` sets the job's cancel flag; the worker
-  turns it into the ``threading.Event`` the core watches.
+* Deadline: the solver budget is ``min(requested, remaining - margin)``, the margin a
+  fifth of the time left plus 20 ms, at most 3 s (:func:`deadline_budget`), so a short
+  deadline still gets the best found so far.
+* Cancellation: ``context.add_callback`` cancels the job; the worker sets the
+  :class:`flipfix.repair.cancel.CancelToken` the core watches (CP-SAT stops at once).
+* Waits are events: the RPC blocks on the job's queue (worker start, progress, end)
+  for at most the time left to its next stop; nothing polls.
 * The standard health service (``""`` and ``flipfix.v1.Flipfix``) and server
   reflection are registered; health answers while repairs run.
 * :meth:`RunningServer.shutdown`: health NOT_SERVING, no new calls, in-flight
@@ -42,6 +45,7 @@ from flipfix.service import convert
 from flipfix.service.errors import ConflictError, NotFoundError, TransientError, translate_errors
 from flipfix.service.generated import flipfix_pb2 as pb
 from flipfix.service.generated import flipfix_pb2_grpc as pb_grpc
+from flipfix.service.limits import Limits
 from flipfix.service.store import Store
 from flipfix.service.worker import RepairPool
 
@@ -70,22 +74,47 @@ class ServerConfig:
     warm: bool = True
 
     @property
-    def limits(self) -> convert.Limits:
-        return convert.Limits(max_variables=self.max_variables,
-                              max_candidates=self.max_candidates,
-                              max_constraints=self.max_constraints)
+    def limits(self) -> Limits:
+        return Limits(max_variables=self.max_variables, max_candidates=self.max_candidates,
+                      max_constraints=self.max_constraints)
+
+
+#: Held back from a call's deadline for what is not search: the hand-over to a worker,
+#: the solver's stop and its result, the reply (see :func:`deadline_budget`).
+MARGIN_SHARE = 0.2
+MARGIN_FIXED = 0.02  # s
+MARGIN_MAX = 3.0  # s
+MIN_BUDGET = 0.01  # s
+#: The server stops a job still running this share of the margin before the deadline.
+STOP_SHARE = 0.5
+#: gRPC reports a call without a deadline as one in the far future: beyond this many
+#: seconds a call counts as having none.
+NO_DEADLINE = 1e6
+
+
+def time_left(context) -> float | None:
+    """Seconds to the call's deadline; None when it has none."""
+    remaining = context.time_remaining()
+    return None if remaining is None or remaining > NO_DEADLINE else remaining
+
+
+def deadline_margin(remaining: float) -> float:
+    """Seconds held back from ``remaining`` seconds to the deadline:
+    ``min(MARGIN_MAX, MARGIN_FIXED + MARGIN_SHARE * remaining)``."""
+    return min(MARGIN_MAX, MARGIN_FIXED + MARGIN_SHARE * max(0.0, remaining))
 
 
 def deadline_budget(requested: float, remaining: float | None) -> float:
     """Solver budget (s) for a call with ``remaining`` seconds to its deadline (None: none).
 
-    The margin (30 % of what remains, 1 s to 3 s) covers conversion, process
-    hand-over, the solver's stop after cancellation and the reply.
+    ``min(requested, remaining - deadline_margin(remaining))``, at least ``MIN_BUDGET``: the
+    margin is proportional (a fifth of what remains plus 20 ms, at most 3 s), so a 1 s
+    deadline leaves 0.78 s of search, 0.3 s leaves 0.22 s, 5 s leaves 3.98 s and 60 s
+    leaves 57 s.
     """
     if remaining is None:
         return requested
-    margin = min(3.0, max(1.0, 0.3 * remaining))
-    return max(0.05, min(requested, remaining - margin))
+    return max(MIN_BUDGET, min(requested, remaining - deadline_margin(remaining)))
 
 
 class FlipfixServicer(pb_grpc.FlipfixServicer):
@@ -103,14 +132,18 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
                               num_candidates=rec.num_candidates, created_at=rec.created_at,
                               updated_at=rec.updated_at)
 
+    def _problem(self, model: pb.ProblemModel, field: str):
+        self.limits.model(model, field)
+        return convert.model_to_problem(model, field=field)
+
     @translate_errors
     def CreateProblem(self, request, context):
-        problem = convert.model_to_problem(request.model, limits=self.limits)
+        problem = self._problem(request.model, "model")
         return self._info(self.store.create_problem(request.name, problem))
 
     @translate_errors
     def ReplaceProblem(self, request, context):
-        problem = convert.model_to_problem(request.model, limits=self.limits)
+        problem = self._problem(request.model, "model")
         return self._info(self.store.replace_problem(
             request.name, problem, expected_revision=request.expected_revision))
 
@@ -137,7 +170,8 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         if request.revision and request.revision != rev:
             raise ConflictError("revision", f"problem {request.problem!r} is at revision {rev}, "
                                             f"not {request.revision}")
-        ids, X, provs = convert.batch_to_arrays(problem, request.candidates, limits=self.limits)
+        self.limits.candidates(request.candidates, "candidates")
+        ids, X, provs = convert.batch_to_arrays(problem, request.candidates)
         out = self.store.add_candidates(request.problem, rev, ids, X, provs)
         return pb.AddCandidatesReply(ids=out, revision=rev)
 
@@ -163,66 +197,89 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
                 all_revisions=request.all_revisions, max_candidates=self.config.max_candidates)
             return rev, problem, cands
         if which == "inline":
-            problem = convert.model_to_problem(request.inline.model, field="inline.model",
-                                               limits=self.limits)
+            problem = self._problem(request.inline.model, "inline.model")
+            self.limits.candidates(request.inline.candidates, "inline.candidates")
             ids, X, _ = convert.batch_to_arrays(problem, request.inline.candidates,
-                                                field="inline.candidates", limits=self.limits)
+                                                field="inline.candidates")
             ids = [cid or f"c{k}" for k, cid in enumerate(ids)]
             return 0, problem, CandidateSet(CandidateSet._check_ids(ids, len(ids),
                                                                     "inline.candidates.ids"), X)
-        from flipfix.repair.errors import InputError
         raise InputError("library", "set problem (a stored problem) or inline")
 
     def _start(self, request, context):
-        """Validate, pick the budget, submit; returns (job, budget, audit_limit, revision)."""
+        """Validate, pick the budget, submit; returns (job, budget, audit_limit, revision).
+
+        The constraints are read, checked and lowered once, here; the worker gets the
+        result (``compiled``, picklable) and does not compile again.
+        """
         rev, problem, cands = self._library(request)
-        constraints = convert.constraints_to_domain(request.constraints, problem,
-                                                    limits=self.limits)
+        compiled = self._compiled(request.constraints, problem)
         kwargs = convert.options_to_kwargs(request.options,
                                            default_time_limit=self.config.default_time_limit)
-        budget = deadline_budget(min(kwargs["time_limit"], self.config.max_time_limit),
-                                 context.time_remaining())
-        kwargs["time_limit"] = budget
-        job = self.pool.submit(problem, cands, constraints, kwargs)
-        context.add_callback(job.cancel)  # runs when the call ends: cancelled, timed out or done
+        budget = kwargs["time_limit"] = self._budget(kwargs["time_limit"], context)
+        job = self._watched(self.pool.submit(problem, cands, (), {**kwargs, "compiled": compiled}),
+                            context)
         audit_limit = (request.options.audit_limit if request.options.HasField("audit_limit")
                        else None)
         return job, budget, audit_limit, rev
 
-    def _wait(self, job, context, budget: float, tick=None):
-        """Wait for the job and return its result.
+    def _compiled(self, constraints, problem):
+        self.limits.constraints(constraints, "constraints")
+        return convert.constraints_to_compiled(constraints, problem)
 
-        The solver is asked to stop (and return its best so far) when its budget,
-        counted from the moment a worker starts it, is spent (plus some slack when
-        the call has no deadline: the core may overrun a little to finish a phase),
-        when the deadline is near, or when the call ends.
+    @staticmethod
+    def _watched(job, context):
+        """``job``, cancelled when the call ends (cancelled, timed out or done)."""
+        if not context.add_callback(job.cancel):  # the call has ended already
+            job.cancel()
+        return job
+
+    def _follow(self, job, context, budget: float):
+        """Yield at each progress report of the job; return when it has ended.
+
+        Blocks on the job's events (:meth:`flipfix.service.worker.Job.next_event`), each wait
+        as long as the time left to the next stop. The job is asked to stop (and return its
+        best so far) when its budget, counted from the moment a worker starts it, is spent
+        (plus some slack when the call has no deadline: the core may overrun a little to
+        finish a phase), or ``STOP_SHARE`` of the deadline margin before the deadline; a
+        call that ends cancels it through :meth:`_watched`. While a stream's reader holds a
+        progress message back, the stops wait for it (the core still keeps its own budget).
         """
-        remaining0 = context.time_remaining()
-        slack = 0.0 if remaining0 is not None else max(1.0, 0.25 * budget)
-        # stop this long before the deadline: 60 % of the margin deadline_budget kept
-        near = None if remaining0 is None else 0.6 * max(0.0, remaining0 - budget)
-        started_at = None
+        remaining = time_left(context)
+        if remaining is None:
+            slack, stop_at = max(1.0, 0.25 * budget), math.inf
+        else:
+            slack = 0.0
+            stop_at = time.monotonic() + remaining - STOP_SHARE * deadline_margin(remaining)
+        asked = False
         while True:
-            try:
-                return job.future.result(timeout=0.05)
-            except futures.TimeoutError:
-                pass
-            except futures.CancelledError:
-                raise TransientError("repair", "the repair was cancelled before it started") from None
-            except BrokenProcessPool:
-                self.pool.restart_if_broken()
-                raise
-            now = time.monotonic()
-            if started_at is None and job.started:
-                started_at = now
-            if not job.cancel_requested:
-                spent = started_at is not None and now > started_at + budget + slack
-                remaining = context.time_remaining()
-                close = near is not None and remaining is not None and remaining < near
-                if spent or close or not context.is_active():
-                    job.cancel()
-            if tick is not None:
-                tick()
+            waiting = asked or job.cancel_requested or stop_at == math.inf
+            kind = job.next_event(None if waiting else max(0.0, stop_at - time.monotonic()))
+            if kind == "done":
+                return
+            if kind == "started":
+                stop_at = min(stop_at, job.started_at + budget + slack)
+            elif kind == "progress":
+                yield
+            elif kind is None:  # a stop time has come
+                job.cancel()
+                asked = True
+
+    def _result(self, job):
+        """The ended job's result (its exception re-raised)."""
+        try:
+            return job.future.result()
+        except futures.CancelledError:
+            raise TransientError("repair", "the repair was cancelled before it started") from None
+        except BrokenProcessPool:
+            self.pool.restart_if_broken()
+            raise
+
+    def _wait(self, job, context, budget: float):
+        """Wait for the job (see :meth:`_follow`) and return its result."""
+        for _ in self._follow(job, context, budget):
+            pass
+        return self._result(job)
 
     @translate_errors
     def Repair(self, request, context):
@@ -240,48 +297,30 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
                 res, audit_limit=audit_limit, time_limit=budget, revision=rev)))
 
     def _stream(self, job, context, budget: float, progress_event, result_event):
-        """Progress messages while the job runs (the core's phase names), then the result.
+        """Progress messages as the worker reports (the core's phase names), then the result.
 
         ``progress_event(RepairProgress) -> event``, ``result_event(result) -> event``.
         """
         last = [0]
-        out: list = []
 
-        def tick():
+        def report():
             p = job.progress()
-            if p.updates != last[0]:
-                last[0] = p.updates
-                msg = pb.RepairProgress(done=p.done, total=p.total, phase=p.phase or "running")
-                if p.best_cost is not None and math.isfinite(p.best_cost):
-                    msg.best_cost = p.best_cost
-                out.append(progress_event(msg))
+            if p.updates == last[0]:
+                return None
+            last[0] = p.updates
+            msg = pb.RepairProgress(done=p.done, total=p.total, phase=p.phase or "running")
+            if p.best_cost is not None and math.isfinite(p.best_cost):
+                msg.best_cost = p.best_cost
+            return progress_event(msg)
 
-        result_box: list = []
-        done = threading.Event()
-
-        def waiter():
-            try:
-                res = self._wait(job, context, budget, tick)
-                tick()  # the last progress report, even when the job beat the first poll
-                result_box.append(res)
-            except BaseException as exc:  # noqa: BLE001 - re-raised in the stream thread
-                result_box.append(exc)
-            finally:
-                done.set()
-
-        threading.Thread(target=waiter, daemon=True, name="flipfix-stream-wait").start()
-        sent = 0
-        while not done.wait(0.05):
-            while sent < len(out):
-                yield out[sent]
-                sent += 1
-        while sent < len(out):
-            yield out[sent]
-            sent += 1
-        res = result_box[0]
-        if isinstance(res, BaseException):
-            raise res
-        yield result_event(res)
+        for _ in self._follow(job, context, budget):
+            event = report()
+            if event is not None:
+                yield event
+        event = report()  # the last report, when its message came after the job ended
+        if event is not None:
+            yield event
+        yield result_event(self._result(job))
 
     # ---------------------------------------------------------------- audit
     def _audit_library(self, name: str, ids, all_revisions: bool, *, field: str = ""):
@@ -303,18 +342,16 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
             raise NotFoundError(field + err.field, err.message) from None
 
     def _budget(self, requested: float, context) -> float:
-        return deadline_budget(min(requested, self.config.max_time_limit), context.time_remaining())
+        return deadline_budget(min(requested, self.config.max_time_limit), time_left(context))
 
     def _submit_call(self, fn, args: tuple, kwargs: dict, context):
-        job = self.pool.submit_call(fn, args, kwargs)
-        context.add_callback(job.cancel)  # runs when the call ends: cancelled, timed out or done
-        return job
+        return self._watched(self.pool.submit_call(fn, args, kwargs), context)
 
     @translate_errors
     def ProfileRobustness(self, request, context):
         rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
                                                   request.all_revisions)
-        eps = convert._nonneg(request.epsilon, "epsilon")
+        eps = convert.nonneg(request.epsilon, "epsilon")
         job = self._submit_call(audit_jobs.robustness, (problem, cands),
                                 {"epsilon": eps, "spectrum": bool(request.spectrum)}, context)
         rep = self._wait(job, context, math.inf)  # vectorised, not interruptible
@@ -353,13 +390,12 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
 
         rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
                                                   request.all_revisions)
-        constraints = convert.constraints_to_domain(request.constraints, problem,
-                                                    limits=self.limits)
+        compiled = self._compiled(request.constraints, problem)
         kwargs = convert.pareto_to_kwargs(request,
                                           default_time_limit=self.config.default_time_limit)
         kwargs["time_limit"] = budget = self._budget(kwargs["time_limit"], context)
         t0 = time.perf_counter()
-        job = self._submit_call(audit_jobs.pareto, (problem, cands, constraints), kwargs, context)
+        job = self._submit_call(audit_jobs.pareto, (problem, cands, compiled), kwargs, context)
         front = self._wait(job, context, budget)
         cheapest = fewest = None
         if request.HasField("cheapest_within_flips"):
@@ -377,9 +413,9 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         K = len(cands.ids)
         if not 1 <= request.m <= K:
             raise InputError("m", f"must be in [1, {K}] (the audited library), got {request.m}")
-        if request.selection not in convert._SELECTION_NAMES:
+        if request.selection not in convert.SELECTION_NAMES:
             raise InputError("selection", f"unknown selection {request.selection}")
-        selection = convert._SELECTION_NAMES[request.selection]
+        selection = convert.SELECTION_NAMES[request.selection]
         # checked here, before the stress test runs (curate's default max_subsets)
         if selection == "exhaustive" and math.comb(K, request.m) > 200_000:
             raise InputError("selection", f"EXHAUSTIVE over C({K}, {request.m}) subsets is too "

@@ -1,8 +1,12 @@
 """Durable store of problems (with revisions) and candidate libraries: SQLite.
 
 * WAL journal, ``synchronous=FULL``: a write is on disk before it is acknowledged.
-* Every public write is one transaction (``BEGIN IMMEDIATE`` ... ``COMMIT``):
-  a request that fails validation half-way stores nothing.
+* Every public write is one transaction (``BEGIN IMMEDIATE`` ... ``COMMIT``) on the one
+  write connection: a request that fails validation half-way stores nothing.
+* Every public read is one read-only transaction (``BEGIN`` ... ``ROLLBACK``: one
+  snapshot, no write lock) on a ``query_only`` connection of its own from a small pool,
+  so reads run beside each other and beside a write, as WAL allows (an in-memory
+  database is one connection: there reads share the write connection).
 * ``schema_version`` holds the schema number; opening a newer database fails,
   an older one is migrated in one transaction (see :data:`SCHEMA_HISTORY`).
 
@@ -17,8 +21,10 @@ from __future__ import annotations
 
 import dataclasses
 import json
+import queue
 import sqlite3
 import threading
+from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
@@ -151,16 +157,20 @@ def decode_model(text: str) -> Problem:
 class Store:
     """Problems and candidates in one SQLite file (``":memory:"`` for tests only).
 
-    Thread-safe: one connection, one lock; each public method is one transaction.
+    Thread-safe: writes go through one connection under one lock; reads take a pooled
+    read-only connection each. Each public method is one transaction.
     """
 
     def __init__(self, path: str | Path):
         self.path = str(path)
-        if self.path != ":memory:":
+        self._memory = self.path == ":memory:"
+        if not self._memory:
             Path(self.path).parent.mkdir(parents=True, exist_ok=True)
         self._lock = threading.Lock()
-        self._db = sqlite3.connect(self.path, isolation_level=None, check_same_thread=False,
-                                   timeout=10.0)
+        self._idle_readers: queue.SimpleQueue[sqlite3.Connection] = queue.SimpleQueue()
+        self._readers: list[sqlite3.Connection] = []  # every read connection opened
+        self._readers_lock = threading.Lock()  # not the write lock: a write may be open
+        self._db = self._connect()
         self._db.execute("PRAGMA journal_mode=WAL")
         self._db.execute("PRAGMA synchronous=FULL")
         self._db.execute("PRAGMA foreign_keys=ON")
@@ -222,8 +232,38 @@ class Store:
     def _tx(self) -> "Store._Tx":
         return Store._Tx(self)
 
+    def _connect(self) -> sqlite3.Connection:
+        return sqlite3.connect(self.path, isolation_level=None, check_same_thread=False,
+                               timeout=10.0)
+
+    @contextmanager
+    def _read(self):
+        """A read-only transaction on an idle read connection (a new one if none is idle)."""
+        if self._memory:
+            with self._tx() as db:
+                yield db
+            return
+        try:
+            db = self._idle_readers.get_nowait()
+        except queue.Empty:
+            db = self._connect()
+            db.execute("PRAGMA query_only=ON")
+            with self._readers_lock:
+                self._readers.append(db)
+        try:
+            db.execute("BEGIN")  # deferred: a snapshot from the first read, no write lock
+            try:
+                yield db
+            finally:
+                if db.in_transaction:  # nothing was written: ending the snapshot is all
+                    db.execute("ROLLBACK")
+        finally:
+            self._idle_readers.put(db)
+
     def close(self) -> None:
-        with self._lock:
+        with self._lock, self._readers_lock:
+            for db in self._readers:
+                db.close()
             self._db.close()
 
     @property
@@ -238,8 +278,8 @@ class Store:
 
     @property
     def schema_version(self) -> int:
-        with self._lock:
-            return int(self._db.execute("SELECT version FROM schema_version").fetchone()[0])
+        with self._read() as db:
+            return int(db.execute("SELECT version FROM schema_version").fetchone()[0])
 
     @staticmethod
     def _info(db: sqlite3.Connection, name: str) -> ProblemRecord:
@@ -292,7 +332,7 @@ class Store:
 
     def get_problem(self, name: str, revision: int = 0) -> tuple[ProblemRecord, int, Problem]:
         """(info, revision of the model, model); revision 0 is the current one."""
-        with self._tx() as db:
+        with self._read() as db:
             info = self._info(db, name)
             rev = revision or info.revision
             row = db.execute("SELECT model FROM revisions WHERE problem = ? AND revision = ?",
@@ -304,7 +344,7 @@ class Store:
     def list_problems(self, *, page_size: int = 100, page_token: str = ""
                       ) -> tuple[list[ProblemRecord], str]:
         page_size = max(1, min(int(page_size or 100), 1000))
-        with self._tx() as db:
+        with self._read() as db:
             names = [r[0] for r in db.execute(
                 "SELECT name FROM problems WHERE name > ? ORDER BY name LIMIT ?",
                 (page_token, page_size + 1))]
@@ -388,7 +428,7 @@ class Store:
             after = int(page_token) if page_token else 0
         except ValueError:
             raise InputError("page_token", f"{page_token!r} is not a token from this server") from None
-        with self._tx() as db:
+        with self._read() as db:
             if not db.execute("SELECT 1 FROM problems WHERE name = ?", (name,)).fetchone():
                 raise NotFoundError("problem", f"no problem named {name!r}")
             q = ("SELECT seq, id, revision, bits, source, energy, tags FROM candidates "
@@ -454,14 +494,14 @@ class Store:
         candidates by id (any revision); ``all_revisions`` takes every candidate.
         Candidates of an older revision must assign exactly the current labels.
         """
-        with self._tx() as db:
+        with self._read() as db:
             row = db.execute("SELECT revision FROM problems WHERE name = ?", (name,)).fetchone()
             if row is None:
                 raise NotFoundError("problem", f"no problem named {name!r}")
             rev = row[0]
             model = db.execute("SELECT model FROM revisions WHERE problem = ? AND revision = ?",
                                (name, rev)).fetchone()[0]
-            q = "SELECT seq, id, revision, bits, source, energy, tags FROM candidates WHERE problem = ?"
+            q = "SELECT id, revision, bits FROM candidates WHERE problem = ?"
             if ids:
                 rows = []
                 for k, cid in enumerate(ids):
@@ -474,26 +514,29 @@ class Store:
                 rows = db.execute(q + " ORDER BY seq", (name,)).fetchall()
             else:
                 rows = db.execute(q + " AND revision = ? ORDER BY seq", (name, rev)).fetchall()
+            revisions = list(dict.fromkeys(r[1] for r in rows))  # in order of first use
             cache: dict = {}
-            recs = [self._record(db, name, r, cache) for r in rows]
+            labels_of = {v: self._labels_of(db, name, v, cache)[0] for v in revisions if v != rev}
         problem = decode_model(model)
-        if not recs:
+        labels_of[rev] = problem.labels
+        if not rows:
             raise InputError("problem", f"problem {name!r} has no candidates for revision {rev}")
-        if max_candidates is not None and len(recs) > max_candidates:
+        if max_candidates is not None and len(rows) > max_candidates:
             from flipfix.repair.errors import LimitError
-            raise LimitError("candidates", f"{len(recs)} candidates exceed the limit of {max_candidates}")
-        same = [k for k, rec in enumerate(recs) if rec.labels == problem.labels]
-        X = np.empty((len(recs), problem.n), dtype=np.int8)
-        if same:  # one unpack for every candidate in the current label order
-            X[same] = packing.unpack_rows(b"".join(recs[k].bits for k in same), len(same),
-                                          problem.n, field="bits")
-        for k, rec in enumerate(recs):
-            if rec.labels == problem.labels:
-                continue
-            if set(rec.labels) != set(problem.labels):
+            raise LimitError("candidates", f"{len(rows)} candidates exceed the limit of {max_candidates}")
+        X = np.empty((len(rows), problem.n), dtype=np.int8)
+        for v in revisions:  # one unpack per revision, in the current label order
+            ks = [k for k, r in enumerate(rows) if r[1] == v]
+            labels = labels_of[v]
+            if labels != problem.labels and set(labels) != set(problem.labels):
+                k = ks[0]
                 raise InputError(f"candidate_ids[{k}]" if ids else "all_revisions",
-                                 f"candidate {rec.id!r} (revision {rec.revision}) does not assign "
+                                 f"candidate {rows[k][0]!r} (revision {v}) does not assign "
                                  f"the variables of revision {rev}")
-            pos = {lab: i for i, lab in enumerate(rec.labels)}
-            X[k] = rec.x[[pos[lab] for lab in problem.labels]]
-        return rev, problem, CandidateSet(tuple(r.id for r in recs), X)
+            block = packing.unpack_rows(b"".join(rows[k][2] for k in ks), len(ks), len(labels),
+                                        field="bits")
+            if labels != problem.labels:
+                pos = {lab: i for i, lab in enumerate(labels)}
+                block = block[:, [pos[lab] for lab in problem.labels]]
+            X[ks] = block
+        return rev, problem, CandidateSet(tuple(r[0] for r in rows), X)

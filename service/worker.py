@@ -1,19 +1,30 @@
-"""Repair jobs in a process pool, with cancellation and progress through shared memory.
+"""Repair jobs in a process pool, with cancellation and progress as events across processes.
 
-The server owns a :class:`RepairPool`: a ``ProcessPoolExecutor`` (spawn context)
-plus a fixed number of *slots* (workers + queue length). A job takes a slot or is
-refused (:class:`flipfix.service.errors.QueueFullError` -> RESOURCE_EXHAUSTED). Each slot
-is a row of a shared ``float64`` array, ``SLOT_WIDTH`` wide:
+The server owns a :class:`RepairPool`: a ``ProcessPoolExecutor`` (spawn context) plus a
+fixed number of *slots* (workers + queue length). A job takes a slot or is refused
+(:class:`flipfix.service.errors.QueueFullError` -> RESOURCE_EXHAUSTED). Each job gets a
+generation number, new for every job, so a message meant for one job is never taken by
+the next job in its slot. Each slot has:
 
-    [0] cancel flag (set by the server; the worker turns it into a threading.Event)
-    [1] candidates done   [2] total   [3] best cost so far (NaN: none)   [4] update count
-    [5] 1 once the worker has started the job (the budget clock starts then)
-    [6] phase sequence number (odd while the worker writes the phase name)
+* a duplex pipe between the server and whichever worker runs the slot's job. The server
+  sends the job's generation to cancel it; in the worker one thread blocks on the pipe
+  and sets the job's :class:`flipfix.repair.cancel.CancelToken` (CP-SAT then stops at
+  once). The worker sends ``(generation, "started")`` when the job's budget clock starts
+  and ``(generation, "progress")`` after each progress report; a server thread blocks on
+  every slot's pipe and hands these to the job's :class:`queue.Queue`, which the RPC
+  blocks on (:meth:`Job.next_event`). Pipes hold no lock a crashed worker could keep.
+* a row of a shared ``float64`` array, ``SLOT_WIDTH`` wide, with the latest progress::
 
-and a row of a shared byte array, ``PHASE_BYTES`` wide, holding the core's phase
-name (``greedy``, ``kicks``, ``neighbourhood``, ``full``, ``cpsat``, ``stress``, ...),
-so a cancelled gRPC call stops its solver, and a streaming call can report progress,
-without a manager process or pipes per job.
+    [0] candidates done   [1] total   [2] best cost so far (NaN: none)   [3] update count
+    [4] phase sequence number (odd while the worker writes the phase name)
+
+  and a row of a shared byte array, ``PHASE_BYTES`` wide, holding the core's phase name
+  (``greedy``, ``kicks``, ``neighbourhood``, ``full``, ``cpsat``, ``stress``, ...). The worker
+  writes the row before it sends the "progress" message, so the row read after any message
+  (or after the job's result) is at least as new as that message.
+
+A cancel is checked and sent under the pool's lock, against the job the slot holds now:
+a cancel that comes after its job ended (and the slot took a new job) does nothing.
 
 A job is :func:`flipfix.repair.repair` (:meth:`RepairPool.submit`) or any module-level
 function taking ``cancel=`` and ``progress=`` keywords (:meth:`RepairPool.submit_call`,
@@ -22,24 +33,31 @@ used by the audit RPCs, see :mod:`flipfix.service.audit_jobs`).
 
 from __future__ import annotations
 
+import itertools
 import math
 import multiprocessing as mp
 import os
+import queue
 import threading
+import time
 from concurrent.futures import Future, ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass
+from multiprocessing.connection import wait as wait_ready
 
+from flipfix.repair.cancel import CancelToken
 from flipfix.repair.errors import InputError, LimitError
 
 from flipfix.service.errors import QueueFullError, TransientError
 
 __all__ = ["RepairPool", "Job", "Progress", "SLOT_WIDTH", "PHASE_BYTES", "WorkerInputError"]
 
-SLOT_WIDTH = 7
+SLOT_WIDTH = 5
 PHASE_BYTES = 32
-_FLAGS = None  # the shared arrays, in a worker process
+_SEQ = 4  # the phase sequence number's place in a slot row
+_FLAGS = None  # the shared arrays and the workers' ends of the slot pipes, in a worker process
 _PHASES = None
+_PIPES = None
 
 
 class WorkerInputError(InputError):
@@ -56,21 +74,18 @@ class WorkerLimitError(LimitError):
 
 
 # ------------------------------------------------------------ worker side
-def _init(flags, phases=None) -> None:
-    global _FLAGS, _PHASES
-    _FLAGS = flags
-    _PHASES = phases
+def _init(flags, phases, pipes) -> None:
+    global _FLAGS, _PHASES, _PIPES
+    _FLAGS, _PHASES, _PIPES = flags, phases, pipes
 
 
 def _write_phase(slot: int, phase: str) -> None:
-    if _PHASES is None:
-        return
     raw = phase.encode("utf-8", "replace")[:PHASE_BYTES]
-    base = slot * SLOT_WIDTH + 6
-    _FLAGS[base] += 1.0  # odd: writing
+    seq = slot * SLOT_WIDTH + _SEQ
+    _FLAGS[seq] += 1.0  # odd: writing
     start = slot * PHASE_BYTES
     _PHASES[start:start + PHASE_BYTES] = raw.ljust(PHASE_BYTES, b"\0")
-    _FLAGS[base] += 1.0  # even: done
+    _FLAGS[seq] += 1.0  # even: done
 
 
 def _warm() -> int:
@@ -93,56 +108,82 @@ def _warm() -> int:
     return os.getpid()
 
 
-def _run(slot: int, problem, candidates, constraints, kwargs: dict):
-    """Run :func:`flipfix.repair.repair` for one job; honours the slot's cancel flag."""
+def _run(slot: int, gen: int, problem, candidates, constraints, kwargs: dict):
+    """Run :func:`flipfix.repair.repair` for one job; honours the slot's cancel."""
     from flipfix.repair import repair
 
-    return _run_call(slot, repair, (problem, candidates, constraints), kwargs)
+    return _run_call(slot, gen, repair, (problem, candidates, constraints), kwargs)
 
 
-def _run_call(slot: int, fn, args: tuple, kwargs: dict):
-    """Run ``fn(*args, cancel=event, progress=callback, **kwargs)`` in the slot."""
+def _watch_cancel(pipe, ended, gen: int, token: CancelToken) -> None:
+    """Block until the server cancels job ``gen`` (set ``token``) or the job ends.
+
+    Messages for an earlier job of the slot (a cancel that came as it ended) are skipped."""
+    while True:
+        ready = wait_ready([pipe, ended])
+        if ended in ready:
+            return
+        try:
+            target = pipe.recv()
+        except (EOFError, OSError):  # the server is gone
+            return
+        if target == gen:
+            token.set()
+            return
+
+
+def _run_call(slot: int, gen: int, fn, args: tuple, kwargs: dict):
+    """Run ``fn(*args, cancel=token, progress=callback, **kwargs)`` as job ``gen`` of ``slot``."""
+    pipe = _PIPES[slot]
     base = slot * SLOT_WIDTH
-    cancel = threading.Event()
-    finished = threading.Event()
+    token = CancelToken()
+    ended_r, ended_w = mp.Pipe(duplex=False)
+    watcher = threading.Thread(target=_watch_cancel, args=(pipe, ended_r, gen, token),
+                               daemon=True, name="flipfix-cancel-watch")
+    watcher.start()
+    send_lock = threading.Lock()
 
-    def watch() -> None:
-        while not finished.wait(0.02):
-            if _FLAGS[base] != 0.0:
-                cancel.set()
-                return
-
-    # the compiled kernels load (or, on a machine's first run, compile) before the job's
-    # budget clock starts: compilation is set-up, not search time
-    from flipfix.repair.solvers.greedy import warm_up
-
-    warm_up()
-    _FLAGS[base + 5] = 1.0
-    if _FLAGS[base] != 0.0:
-        cancel.set()
-    threading.Thread(target=watch, daemon=True, name="flipfix-cancel-watch").start()
-
-    last_phase = [None]
-
-    def progress(info: dict) -> None:
-        phase = str(info.get("phase") or "")
-        if phase != last_phase[0]:
-            _write_phase(slot, phase)
-            last_phase[0] = phase
-        _FLAGS[base + 1] = float(info.get("done", 0) or 0)
-        _FLAGS[base + 2] = float(info.get("total", 0) or 0)
-        best = info.get("best_cost")
-        _FLAGS[base + 3] = math.nan if best is None else float(best)
-        _FLAGS[base + 4] += 1.0
+    def tell(kind: str) -> None:
+        with send_lock:
+            try:
+                pipe.send((gen, kind))
+            except OSError:  # the server is gone; the job's result has nowhere to go either
+                pass
 
     try:
-        return fn(*args, cancel=cancel, progress=progress, **kwargs)
-    except LimitError as err:  # rebuilt as the same kind in the server
-        raise WorkerLimitError(err.field, err.message) from None
-    except InputError as err:
-        raise WorkerInputError(err.field, err.message) from None
+        # the compiled kernels load (or, on a machine's first run, compile) before the job's
+        # budget clock starts: compilation is set-up, not search time
+        from flipfix.repair.solvers.greedy import warm_up
+
+        warm_up()
+        tell("started")
+        last_phase = [None]
+
+        def progress(info: dict) -> None:
+            phase = str(info.get("phase") or "")
+            if phase != last_phase[0]:
+                _write_phase(slot, phase)
+                last_phase[0] = phase
+            _FLAGS[base] = float(info.get("done", 0) or 0)
+            _FLAGS[base + 1] = float(info.get("total", 0) or 0)
+            best = info.get("best_cost")
+            _FLAGS[base + 2] = math.nan if best is None else float(best)
+            _FLAGS[base + 3] += 1.0
+            tell("progress")
+
+        try:
+            return fn(*args, cancel=token, progress=progress, **kwargs)
+        except LimitError as err:  # rebuilt as the same kind in the server
+            raise WorkerLimitError(err.field, err.message) from None
+        except InputError as err:
+            raise WorkerInputError(err.field, err.message) from None
     finally:
-        finished.set()
+        # the watcher stops reading the slot's pipe before the job ends: the slot's next
+        # job (maybe in another worker) is then the pipe's only reader
+        ended_w.send(None)
+        watcher.join()
+        ended_r.close()
+        ended_w.close()
 
 
 # ------------------------------------------------------------ server side
@@ -156,50 +197,66 @@ class Progress:
 
 
 class Job:
-    """A submitted repair: its slot, its future, and the shared flags."""
+    """A submitted job: its slot, generation and future, and the events the worker sends.
 
-    def __init__(self, slot: int, future: Future, flags, phases=None):
+    :meth:`next_event` gives, in order, "started" (the worker began the job: its budget
+    clock runs), "progress" (the slot's progress row changed; read it with
+    :meth:`progress`) and last "done" (the future is done and the slot is free).
+    """
+
+    def __init__(self, pool: "RepairPool", slot: int, gen: int, future: Future):
         self.slot = slot
+        self.gen = gen
         self.future = future
-        self._flags = flags
-        self._phases = phases
+        self.started_at: float | None = None  # time.monotonic() when the worker started it
+        self.cancel_requested = False
+        self._pool = pool
+        self._events: queue.Queue[str] = queue.Queue()
         self._phase = ""
 
     def cancel(self) -> None:
-        """Ask the worker to stop (it returns its best so far); drop it if still queued."""
-        if not self.future.done():
-            self._flags[self.slot * SLOT_WIDTH] = 1.0
-            self.future.cancel()
+        """Ask the worker to stop (it returns its best so far); drop it if still queued.
+
+        Does nothing once the job has ended, even if its slot runs another job by then."""
+        self._pool._cancel(self)
 
     @property
     def started(self) -> bool:
-        return self._flags[self.slot * SLOT_WIDTH + 5] != 0.0
+        return self.started_at is not None
 
-    @property
-    def cancel_requested(self) -> bool:
-        return self._flags[self.slot * SLOT_WIDTH] != 0.0
+    def next_event(self, timeout: float | None = None) -> str | None:
+        """The next of "started", "progress", "done"; None when ``timeout`` s pass first."""
+        try:
+            return self._events.get(timeout=timeout)
+        except queue.Empty:
+            return None
+
+    def _deliver(self, kind: str) -> None:
+        if kind == "started":
+            self.started_at = time.monotonic()
+        self._events.put(kind)
 
     def phase(self) -> str:
         """The last phase name the worker wrote (read under its sequence number)."""
-        if self._phases is None:
-            return self._phase
-        seq_at = self.slot * SLOT_WIDTH + 6
+        flags, phases = self._pool._flags, self._pool._phases
+        seq_at = self.slot * SLOT_WIDTH + _SEQ
         start = self.slot * PHASE_BYTES
         for _ in range(8):
-            before = self._flags[seq_at]
+            before = flags[seq_at]
             if int(before) % 2:
                 continue
-            raw = bytes(self._phases[start:start + PHASE_BYTES])
-            if self._flags[seq_at] == before:
+            raw = bytes(phases[start:start + PHASE_BYTES])
+            if flags[seq_at] == before:
                 self._phase = raw.rstrip(b"\0").decode("utf-8", "replace")
                 break
         return self._phase
 
     def progress(self) -> Progress:
+        flags = self._pool._flags
         b = self.slot * SLOT_WIDTH
-        best = self._flags[b + 3]
-        return Progress(int(self._flags[b + 1]), int(self._flags[b + 2]),
-                        None if math.isnan(best) else float(best), int(self._flags[b + 4]),
+        best = flags[b + 2]
+        return Progress(int(flags[b]), int(flags[b + 1]),
+                        None if math.isnan(best) else float(best), int(flags[b + 3]),
                         self.phase())
 
 
@@ -214,10 +271,18 @@ class RepairPool:
         self._ctx = mp.get_context("spawn")
         self._flags = self._ctx.RawArray("d", self.slots * SLOT_WIDTH)
         self._phases = self._ctx.RawArray("c", self.slots * PHASE_BYTES)
+        pipes = [self._ctx.Pipe(duplex=True) for _ in range(self.slots)]
+        self._pipes = [server_end for server_end, _ in pipes]
+        self._worker_pipes = [worker_end for _, worker_end in pipes]
         self._lock = threading.Lock()
         self._free = list(range(self.slots))
         self._jobs: dict[int, Job] = {}
+        self._generations = itertools.count(1)
         self._closed = False
+        self._stop_r, self._stop_w = self._ctx.Pipe(duplex=False)
+        self._listener = threading.Thread(target=self._listen, daemon=True,
+                                          name="flipfix-pool-events")
+        self._listener.start()
         self._executor = self._new_executor()
         if warm:
             for _ in range(workers):
@@ -225,7 +290,24 @@ class RepairPool:
 
     def _new_executor(self) -> ProcessPoolExecutor:
         return ProcessPoolExecutor(max_workers=self.workers, mp_context=self._ctx,
-                                   initializer=_init, initargs=(self._flags, self._phases))
+                                   initializer=_init,
+                                   initargs=(self._flags, self._phases, self._worker_pipes))
+
+    def _listen(self) -> None:
+        """Hand each worker message to the job it is for (blocks on every slot's pipe)."""
+        slot_of = {id(p): s for s, p in enumerate(self._pipes)}
+        while True:
+            for ready in wait_ready(self._pipes + [self._stop_r]):
+                if ready is self._stop_r:
+                    return
+                try:
+                    gen, kind = ready.recv()
+                except (EOFError, OSError):
+                    return
+                with self._lock:
+                    job = self._jobs.get(slot_of[id(ready)])
+                if job is not None and job.gen == gen:
+                    job._deliver(kind)
 
     @property
     def busy(self) -> int:
@@ -249,11 +331,12 @@ class RepairPool:
             if not self._free:
                 raise QueueFullError("repair", f"all {self.slots} repair slots are busy; retry later")
             slot = self._free.pop()
+            gen = next(self._generations)
             b = slot * SLOT_WIDTH
-            self._flags[b:b + SLOT_WIDTH] = [0.0, 0.0, 0.0, math.nan, 0.0, 0.0, 0.0]
+            self._flags[b:b + SLOT_WIDTH] = [0.0, 0.0, math.nan, 0.0, 0.0]
             self._phases[slot * PHASE_BYTES:(slot + 1) * PHASE_BYTES] = b"\0" * PHASE_BYTES
             try:
-                fut = self._executor.submit(target, slot, *args)
+                fut = self._executor.submit(target, slot, gen, *args)
             except BrokenProcessPool:
                 self._free.append(slot)
                 self._executor = self._new_executor()
@@ -261,15 +344,29 @@ class RepairPool:
             except RuntimeError:  # executor shut down
                 self._free.append(slot)
                 raise TransientError("server", "shutting down") from None
-            job = Job(slot, fut, self._flags, self._phases)
+            job = Job(self, slot, gen, fut)
             self._jobs[slot] = job
-        fut.add_done_callback(lambda _f, s=slot: self._release(s))
+        fut.add_done_callback(lambda _f, j=job: self._release(j))
         return job
 
-    def _release(self, slot: int) -> None:
+    def _cancel(self, job: Job) -> None:
+        # checked and sent under the lock: the slot cannot change hands in between
         with self._lock:
-            self._jobs.pop(slot, None)
-            self._free.append(slot)
+            if self._jobs.get(job.slot) is not job or job.cancel_requested:
+                return
+            job.cancel_requested = True
+            try:
+                self._pipes[job.slot].send(job.gen)
+            except OSError:  # the pool is closed
+                pass
+        job.future.cancel()  # outside the lock: a cancelled future releases its slot at once
+
+    def _release(self, job: Job) -> None:
+        with self._lock:
+            if self._jobs.get(job.slot) is job:
+                del self._jobs[job.slot]
+                self._free.append(job.slot)
+        job._deliver("done")
 
     def restart_if_broken(self) -> None:
         with self._lock:
@@ -287,3 +384,8 @@ class RepairPool:
             self._closed = True
         self.cancel_all()
         self._executor.shutdown(wait=wait, cancel_futures=True)
+        if self._listener.is_alive():
+            self._stop_w.send(None)
+            self._listener.join()
+            for end in self._pipes + self._worker_pipes + [self._stop_r, self._stop_w]:
+                end.close()

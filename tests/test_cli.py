@@ -80,6 +80,32 @@ def test_server_and_in_process_give_the_same_best_cost(files, capsys, tmp_path):
     assert set(remote["best"]["assignment"]) == set(local["best"]["assignment"])
 
 
+def test_server_path_reads_each_document_once(files, capsys, tmp_path, monkeypatch):
+    """--server: the problem, the candidates and each constraint are parsed once (the client
+    converts what it parsed), and a bad file is still blamed by name."""
+    from flipfix.repair.documents import forms
+    from flipfix.service.server import create_server
+
+    calls = {"parse_problem": 0, "parse_candidate_records": 0, "parse_constraint": 0}
+    for name in calls:
+        real = getattr(forms, name)
+
+        def counted(*args, _real=real, _name=name, **kwargs):
+            calls[_name] += 1
+            return _real(*args, **kwargs)
+
+        monkeypatch.setattr(forms, name, counted)
+    with create_server("127.0.0.1:0", db_path=str(tmp_path / "once.sqlite3")) as srv:
+        assert main(_args(files, "--server", srv.address)) == 0
+        assert json.loads(capsys.readouterr().out)["best"]["feasible"]
+        assert calls == {"parse_problem": 1, "parse_candidate_records": 1,
+                         "parse_constraint": len(CONSTRAINTS)}
+        files["constraints"].write_text(json.dumps([{"type": "fix", "values": {"q": 1}}]))
+        assert main(_args(files, "--server", srv.address)) == 2
+        err = capsys.readouterr().err
+        assert f"{files['constraints']}: constraints[0].values['q']" in err
+
+
 @pytest.mark.parametrize("which, content, field", [
     ("constraints", [{"type": "fix", "values": {"1": -1}},
                      {"type": "hamming", "reference": {"x": 1}, "weight": -3}], "constraints[1].weight"),

@@ -116,17 +116,6 @@ def test_constraint_errors_name_the_field(cons, field):
     assert e.value.field == field
 
 
-def test_parsers_are_a_registry_with_every_bit_level_kind():
-    assert set(documents.CONSTRAINT_PARSERS) == {"hamming", "extra", "fix", "linear", "forbid"}
-    merged = documents.constraint_parsers()
-    assert set(documents.CONSTRAINT_PARSERS) <= set(merged)
-    try:
-        from flipfix.repair.model import encodings
-    except ImportError:
-        return
-    assert set(getattr(encodings, "CONSTRAINT_PARSERS", {})) <= set(merged)
-
-
 @pytest.mark.parametrize("vartype", ["BINARY", "SPIN"])
 def test_problem_document_round_trip_keeps_labels_and_energies(vartype):
     p = documents.parse_problem({"vartype": vartype, "linear": {"0": 1.0, "a": -0.5},

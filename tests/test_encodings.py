@@ -20,6 +20,7 @@ from flipfix.repair import CandidateSet, Decision, InputError, Problem, repair
 from flipfix.repair.documents import forms as documents
 from flipfix.repair.model import encodings as enc
 from flipfix.repair.lowering.compiled import compile_constraints
+from flipfix.repair.model.constraints import AllowValues, DecisionChangePenalty, ForbidValues, ForceValue
 
 
 # ----------------------------------------------------------------- helpers
@@ -235,8 +236,8 @@ def test_lowering_matches_definitions_on_every_string(encoding, shape, distance,
     p = encoded_problem(encoding, U, G, values=values)
     ref = {"d0": 3, "d2": 0}
     w = 1.25
-    cons = [enc.ForbidValues("d1", [2]), enc.AllowValues("d2", [0, 3, 7]),
-            enc.DecisionChangePenalty(ref, weight=w, shape=shape, distance=distance, **extra)]
+    cons = [ForbidValues("d1", [2]), AllowValues("d2", [0, 3, 7]),
+            DecisionChangePenalty(ref, weight=w, shape=shape, distance=distance, **extra)]
     comp = compile_constraints(p, cons)
     X, energy = every_string(p)
     ev = comp.evaluate(X)
@@ -264,7 +265,7 @@ def test_absolute_distance_with_unordered_values(encoding, values):
     U, G = integer_model(2, 4, seed=9)
     p = encoded_problem(encoding, U, G, values=values)
     ref = {"d0": values[1], "d1": values[3]}
-    comp = compile_constraints(p, [enc.DecisionChangePenalty(ref, weight=0.5, shape="quadratic",
+    comp = compile_constraints(p, [DecisionChangePenalty(ref, weight=0.5, shape="quadratic",
                                                              distance="absolute")])
     X, energy = every_string(p)
     ev = comp.evaluate(X)
@@ -284,7 +285,7 @@ def test_spin_problem_with_decisions():
     cands = CandidateSet.from_array(p, [[1, 1, -1], [-1, -1, -1]])
     issues = enc.check_candidates(p, cands.X, ids=list(cands.ids))
     assert [(i.candidate, i.decision) for i in issues] == [("c0", "c"), ("c1", "c")]
-    res = repair(p, cands, [enc.ForceValue("c", "B")], method="cpsat", time_limit=0.5, seed=0)
+    res = repair(p, cands, [ForceValue("c", "B")], method="cpsat", time_limit=0.5, seed=0)
     assert res.best.assignment == {"a": -1, "b": 1, "c": -1}
     assert res.best.changes == [("c", None, "B")]
 
@@ -293,7 +294,7 @@ def test_force_value_pins_every_bit():
     U, G = integer_model(2, 5, seed=2)
     for encoding in ("one_hot", "domain_wall"):
         p = encoded_problem(encoding, U, G)
-        comp = compile_constraints(p, [enc.ForceValue("d1", 4)])
+        comp = compile_constraints(p, [ForceValue("d1", 4)])
         d = p.decisions[1]
         want = ref_bits(encoding, 5, 3)
         assert [int(comp.fixed[p.index[v]]) for v in d.variables] == want
@@ -302,19 +303,19 @@ def test_force_value_pins_every_bit():
 def test_linear_change_penalty_merges_into_the_qubo():
     U, G = integer_model(3, 4, seed=1)
     p = encoded_problem("domain_wall", U, G)
-    comp = compile_constraints(p, [enc.DecisionChangePenalty({"d0": 2, "d1": 1}, weight=2.0)])
+    comp = compile_constraints(p, [DecisionChangePenalty({"d0": 2, "d1": 1}, weight=2.0)])
     assert comp.counts == []            # linear shape: no count penalty left for the solvers
     # one decision: d is 0 or 1, so even a quadratic shape is linear in d and merges
-    comp = compile_constraints(p, [enc.DecisionChangePenalty({"d0": 2}, shape="quadratic")])
+    comp = compile_constraints(p, [DecisionChangePenalty({"d0": 2}, shape="quadratic")])
     assert comp.counts == []
-    comp = compile_constraints(p, [enc.DecisionChangePenalty({"d0": 2, "d1": 1}, shape="quadratic")])
+    comp = compile_constraints(p, [DecisionChangePenalty({"d0": 2, "d1": 1}, shape="quadratic")])
     assert len(comp.counts) == 1
 
 
 # ------------------------------------------------------------------ repair
 def _constraints_small():
-    return [enc.ForbidValues("d0", [1, 2]),
-            enc.DecisionChangePenalty({"d0": 1, "d1": 3, "d2": 2}, weight=1.5,
+    return [ForbidValues("d0", [1, 2]),
+            DecisionChangePenalty({"d0": 1, "d1": 3, "d2": 2}, weight=1.5,
                                       shape="quadratic", distance="absolute")]
 
 
@@ -378,7 +379,7 @@ def test_every_repaired_answer_decodes_validly(method, encoding):
             assert ((f"r{k}", d.name) in broken) == (ref_index(encoding, bits) is None)
     assert issues and all(i.how.startswith(encoding) for i in issues)
     cands = CandidateSet.from_array(p, X, ids=[f"r{k}" for k in range(6)])
-    cons = [enc.ForbidValues("d3", [4]), enc.DecisionChangePenalty({"d0": 2, "d1": 2})]
+    cons = [ForbidValues("d3", [4]), DecisionChangePenalty({"d0": 2, "d1": 2})]
     res = repair(p, cands, cons, method=method, time_limit=1.0, seed=0)
     assert res.best.feasible
     got = enc.decode(p, res.best.x[None, :])[0]
@@ -410,7 +411,7 @@ def test_equivalence_one_hot_and_domain_wall():
     # always 2, so the domain-wall repair flips no more bits.
     D, k = 4, 3
     U, G = integer_model(D, k, seed=13)
-    cons = [enc.ForbidValues("d1", [2]), enc.DecisionChangePenalty(
+    cons = [ForbidValues("d1", [2]), DecisionChangePenalty(
         {"d0": 1, "d1": 2, "d2": 3, "d3": 1}, weight=0.75, distance="changed")]
 
     def extra(plan):
@@ -571,12 +572,12 @@ def test_proto_carries_integer_constraints_and_encoding_issues():
     msgs = [convert.doc_to_constraint(o, p, field=f"constraints[{k}]") for k, o in enumerate(objs)]
     assert [m.WhichOneof("kind") for m in msgs] == ["forbid_values", "force_value", "allow_values",
                                                     "decision_change"]
-    back = convert.constraints_to_domain(msgs, p)
+    back = convert.constraints_to_domain(msgs)
     assert back == documents.parse_constraints(objs, p)
     bad = convert.doc_to_constraint({"type": "forbid_values", "decision": "a", "values": [9]}, p,
                                     field="constraints[0]")
     with pytest.raises(InputError) as e:
-        convert.constraints_to_domain([bad], p)
+        convert.constraints_to_compiled([bad], p)
     assert e.value.field == "constraints[0].forbid_values.values[0]"   # proto field path
     X = np.asarray([[0, 1, 1, 1, 1], [1, 0, 0, 1, 0]], dtype=np.int8)   # row 0 breaks a and b
     res = repair(p, CandidateSet.from_array(p, X), back, method="cpsat", time_limit=0.5, seed=0)
@@ -585,3 +586,5 @@ def test_proto_carries_integer_constraints_and_encoding_issues():
     assert [i.decision for i in reply.audit[0].encoding_issues] == ["a", "b"]
     assert convert.reply_to_dict(reply)["audit"] == [
         {**row, "seconds": round(row["seconds"], 6)} for row in res.to_dict()["audit"]]
+    # decision values travel typed (DecisionValue; unset where the bits broke the encoding)
+    assert convert.reply_to_dict(reply)["best"]["changes"] == res.to_dict()["best"]["changes"]

@@ -97,8 +97,9 @@ def test_grouped_trees_take_the_same_steps_as_the_plain_scan(kind, max_flips, mo
     par = 1 if max_flips is None else 2
     assert 2 <= lay.groups * par <= greedy.MAX_GROUP_SHARE * n  # the grouped path runs
     grouped = greedy_repair(comp, X0, max_flips=max_flips)
-    monkeypatch.setattr(greedy, "MAX_GROUP_SHARE", -1.0)  # force the scan
-    monkeypatch.setattr(greedy, "MIN_GROUPS", -1)
+    monkeypatch.setattr(greedy.layout, "MAX_GROUP_SHARE", -1.0)  # force the scan
+    monkeypatch.setattr(greedy.layout, "MIN_GROUPS", -1)
+    assert not greedy.layout.groups_pay(lay.groups * par, n)
     scan = greedy_repair(comp, X0, max_flips=max_flips)
     np.testing.assert_array_equal(grouped.X, scan.X)
     np.testing.assert_array_equal(grouped.steps, scan.steps)

@@ -2,7 +2,7 @@
 
 References: the stress, Pareto and curation figures are compared with the same core
 functions called in-process with the same seed (flipfix.repair.audit.stress.stress_test,
-flipfix.repair.audit.pareto.cost_flip_front, flipfix.repair.audit.curation.curate); free-variable counts and
+flipfix.repair.audit.front.cost_flip_front, flipfix.repair.audit.curation.curate); free-variable counts and
 single-flip spectra with brute-force enumeration of every single flip through
 dimod's BinaryQuadraticModel.energies; Pareto fronts with an exhaustive pairwise
 dominance check; long runs use OR-Library bqp100-1 (../shared/benchmarks/bqp,
@@ -24,7 +24,7 @@ from flipfix.repair.documents import forms as documents
 from flipfix.repair import CandidateSet, Problem
 from flipfix.repair.audit.curation import curate
 from flipfix.repair.documents.instances import read_bqp
-from flipfix.repair.audit.pareto import cost_flip_front
+from flipfix.repair.audit.front import cost_flip_front
 from flipfix.repair.audit.stress import ScenarioFamily, stress_test
 from flipfix.service import convert
 from flipfix.service.client import FlipfixClient
@@ -438,3 +438,34 @@ def test_input_errors_from_a_worker_keep_their_field():
         e = pickle.loads(pickle.dumps(cls("family.fix_k", "too many")))
         assert isinstance(e, base) and (e.field, e.message) == ("family.fix_k", "too many")
         assert status_for(e) == (code, "family.fix_k: too many" if base is InputError else str(e))
+
+
+def test_audit_cli_through_the_server_on_decisions(fx, server, tmp_path, capsys):
+    """A one-hot roster (tests/roster.py) stored in the service: the default decision-level
+    scenarios and the decision options are refused by name (the service's ScenarioFamily
+    cannot carry them yet); bit-level scenarios run, and the JSON reports free variables and
+    free decisions as counted by enumeration of one-step decision moves."""
+    import json
+
+    from roster import cheapest_plans, free_decisions, plan_bits, roster
+
+    from flipfix.service.cli import main
+
+    p, pref = roster()
+    plans = cheapest_plans(pref, 6)
+    fx.create_problem("roster", p)
+    fx.add_candidates("roster", CandidateSet.from_array(
+        p, np.vstack([plan_bits(q) for q in plans]), ids=[f"r{k}" for k in range(6)]))
+    base = ["audit", "roster", "--server", server.address, "--scenarios", "2",
+            "--pareto-methods", "greedy"]
+    assert main(base) == 2
+    assert "error: --server: the problem declares decisions" in capsys.readouterr().err
+    assert main(base + ["--weight", "1", "--unavailable", "1"]) == 2
+    assert "error: --unavailable: decision-level scenarios" in capsys.readouterr().err
+    js = tmp_path / "roster.json"
+    assert main(base + ["--weight", "1", "--json", str(js)]) == 0
+    want = [free_decisions(q, pref) for q in plans]
+    cands = json.loads(js.read_text())["stress"]["candidates"]
+    assert max(want) > 0
+    assert [c["free_decisions"] for c in cands] == want
+    assert [c["free_variables"] for c in cands] == [0] * len(plans)

@@ -86,7 +86,7 @@ def test_constraint_documents_convert_to_the_same_domain_objects():
         {"type": "forbid", "assignment": {"0": 1, "1": 1}},
     ]
     direct = documents.parse_constraints(docs, p)
-    via_proto = convert.constraints_to_domain(convert.docs_to_constraints(docs, p), p)
+    via_proto = convert.constraints_to_domain(convert.docs_to_constraints(docs, p))
     assert [type(c) for c in via_proto] == [type(c) for c in direct]
     for a, b in zip(direct, via_proto):
         for attr in ("reference", "weight", "shape", "table", "values", "terms", "sense", "rhs",
@@ -108,11 +108,11 @@ def test_constraint_errors_use_proto_field_names():
     bad = pb.Constraint(hamming=pb.HammingPenalty(reference=convert.dict_to_assignment({"a": 1}),
                                                   weight=-2.0))
     with pytest.raises(InputError) as e:
-        convert.constraints_to_domain([good, bad], p)
+        convert.constraints_to_domain([good, bad])
     assert e.value.field == "constraints[1].hamming.weight"
     unknown = pb.Constraint(forbid=pb.ForbidAssignment(assignment=convert.dict_to_assignment({"q": 1})))
     with pytest.raises(InputError) as e:
-        convert.constraints_to_domain([unknown], p)
+        convert.constraints_to_compiled([unknown], p)
     assert e.value.field.startswith("constraints[0].")
 
 

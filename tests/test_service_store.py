@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import sqlite3
+import threading
 
 import numpy as np
 import pytest
@@ -160,3 +161,105 @@ def test_schema_1_database_is_migrated(tmp_path):
     _rev, _p, cands = s.library("p")
     assert cands.X.tolist() == X.tolist() + X[:1].tolist()
     s.close()
+
+
+# ------------------------------------------------------------------ reads beside writes
+WAIT = 60.0  # bound on a join that must succeed at once (never reached when it does)
+
+
+def _in_thread(fn):
+    """Run ``fn()`` in a thread; returns (thread, box) with box[0] its result or exception."""
+    box: list = []
+
+    def run():
+        try:
+            box.append(fn())
+        except BaseException as exc:  # noqa: BLE001 - handed to the test
+            box.append(exc)
+
+    t = threading.Thread(target=run, daemon=True)
+    t.start()
+    return t, box
+
+
+def _every_read(store):
+    return (store.get_problem("p")[1], [i.name for i in store.list_problems()[0]],
+            [r.id for r in store.list_candidates("p")[0]], store.library("p")[2].ids,
+            store.schema_version)
+
+
+def test_reads_proceed_while_another_connection_holds_the_write_lock(store):
+    store.create_problem("p", documents.parse_problem(DOC))
+    store.add_candidates("p", 1, ["a", "b"], np.array([[1, 0, 1], [0, 1, 1]], np.int8),
+                         [{}, {}])
+    other = sqlite3.connect(store.path, isolation_level=None, timeout=0.1)
+    other.execute("BEGIN IMMEDIATE")  # SQLite's write lock, held until COMMIT
+    other.execute("DELETE FROM candidates WHERE id = 'b'")
+    try:
+        t, box = _in_thread(lambda: _every_read(store))
+        t.join(WAIT)
+        assert not t.is_alive(), "a read waited for the write lock"
+        # the reads see the last committed state, not the open transaction's delete
+        assert box[0] == (1, ["p"], ["a", "b"], ("a", "b"), SCHEMA_VERSION)
+    finally:
+        other.execute("ROLLBACK")
+        other.close()
+
+
+def test_reads_proceed_while_the_store_itself_writes(store):
+    store.create_problem("p", documents.parse_problem(DOC))
+    store.add_candidates("p", 1, ["a"], np.array([[1, 0, 1]], np.int8), [{}])
+    inside, release = threading.Event(), threading.Event()
+
+    def long_write():  # a write transaction of the store, held open until released
+        with store._tx() as db:
+            db.execute("UPDATE problems SET updated_at = 'now' WHERE name = 'p'")
+            inside.set()
+            release.wait(WAIT)
+
+    writer, wbox = _in_thread(long_write)
+    try:
+        assert inside.wait(WAIT)
+        t, box = _in_thread(lambda: _every_read(store))
+        t.join(WAIT)
+        assert not t.is_alive(), "a read waited for the store's write"
+        assert box[0] == (1, ["p"], ["a"], ("a",), SCHEMA_VERSION)
+    finally:
+        release.set()
+        writer.join(WAIT)
+    assert wbox == [None] and store.list_problems()[0][0].updated_at == "now"
+
+
+def test_read_connections_cannot_write(store):
+    store.create_problem("p", documents.parse_problem(DOC))
+    with store._read() as db:
+        with pytest.raises(sqlite3.OperationalError, match="readonly"):
+            db.execute("DELETE FROM problems")
+    assert [i.name for i in store.list_problems()[0]] == ["p"]
+
+
+def test_in_memory_store_reads_its_own_writes():
+    s = Store(":memory:")
+    s.create_problem("p", documents.parse_problem(DOC))
+    s.add_candidates("p", 1, ["a"], np.array([[1, 0, 1]], np.int8), [{}])
+    assert s.library("p")[2].ids == ("a",) and s.get_problem("p")[1] == 1
+    s.close()
+
+
+def test_library_mixes_revisions_in_the_current_label_order(store):
+    p1 = documents.parse_problem(DOC)
+    store.create_problem("p", p1)
+    store.add_candidates("p", 1, ["old"], np.array([[1, 0, 1]], np.int8), [{}])
+    # revision 2 has the same variables in another order
+    p2 = documents.parse_problem({"vartype": "SPIN", "linear": {0: -0.5, 1: 0.0, "a": 1.0},
+                                  "quadratic": [["a", 0, 0.25], [0, 1, -1.0]]})
+    assert p2.labels != p1.labels and set(p2.labels) == set(p1.labels)
+    store.replace_problem("p", p2)
+    store.add_candidates("p", 2, ["new"], np.array([[0, 1, 1]], np.int8), [{}])
+    rev, problem, cands = store.library("p", all_revisions=True)
+    assert rev == 2 and cands.ids == ("old", "new")
+    old = dict(zip(p1.labels, [1, 0, 1]))
+    assert cands.X[0].tolist() == [old[lab] for lab in problem.labels]
+    assert cands.X[1].tolist() == [0, 1, 1]
+    _rev, _p, picked = store.library("p", ids=["new", "old"])
+    assert picked.ids == ("new", "old") and picked.X.tolist() == cands.X[::-1].tolist()

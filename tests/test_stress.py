@@ -193,6 +193,9 @@ def test_budget_cancel_and_progress():
     (dict(capacity_cut_percent=100.0), "family.capacity_cut_percent"),
     (dict(capacity_weights={"nope": 1.0}), "family.capacity_weights['nope']"),
     (dict(hamming_weight=0.0), "family"),
+    # decision-level parts on a problem that declares no decisions
+    (dict(unavailable_values=1), "family.unavailable_values"),
+    (dict(must_change=1), "family.must_change"),
 ])
 def test_bad_family_names_the_field(kw, field):
     p = planted([3])
@@ -246,3 +249,232 @@ def test_audit_cli_bad_option_names_it(tmp_path, capsys, extra, field):
                "greedy", "--scenarios", "2"] + extra)
     assert rc == 2
     assert f"error: {field}:" in capsys.readouterr().err
+
+
+# ------------------------------------------- decision-level families on a one-hot roster
+# construction in tests/roster.py; the library is the 8 cheapest valid plans plus one row
+# whose nurse 0 has no shift set (a broken one-hot decision)
+from roster import (  # noqa: E402
+    SHIFTS, cheapest_plans, free_decisions, plan_bits, roster, roster_energy,
+)
+
+
+def _roster_library(k=8):
+    p, pref = roster()
+    plans = cheapest_plans(pref, k)
+    broken = plan_bits(plans[0])
+    broken[:len(SHIFTS)] = 0
+    X = np.vstack([plan_bits(q) for q in plans] + [broken])
+    ids = ["".join(SHIFTS[s][0] for s in q) for q in plans] + ["broken"]
+    return p, pref, plans, CandidateSet.from_array(p, X, ids=ids)
+
+
+@pytest.mark.parametrize("kw", [dict(unavailable_values=2), dict(must_change=2),
+                                dict(unavailable_values=1, must_change=3)])
+def test_decision_families_keep_decisions_valid_and_change_what_they_say(kw):
+    from flipfix.repair.model.encodings import ForbidValues
+
+    p, pref, plans, cs = _roster_library()
+    fam = ScenarioFamily(hamming_weight=0.0, **kw)
+    want_u, want_m = kw.get("unavailable_values", 0), kw.get("must_change", 0)
+    every = list(itertools.product(range(len(SHIFTS)), repeat=pref.shape[0]))  # all valid plans
+    E = np.vstack([plan_bits(q) for q in every])
+    broken = np.vstack([np.zeros(p.n, np.int8), np.ones(p.n, np.int8)])  # no shift / all shifts
+    drawn = draw_scenarios(p, cs, fam, count=12, seed=5)
+    first = draw_scenarios(p, cs, fam, count=4, seed=5)
+    assert [s.description for s in first] == [s.description for s in drawn[:4]]
+    for sc in drawn:
+        lost = {}  # decision -> (value index, part), read from the constraints themselves
+        for c in sc.constraints:
+            assert isinstance(c, ForbidValues) and len(c.values) == 1
+            assert c.decision not in lost  # the two parts use distinct decisions
+            lost[c.decision] = (SHIFTS.index(c.values[0]), c.name)
+        assert sum(n == "stress_unavailable" for _, n in lost.values()) == want_u
+        assert sum(n == "stress_must_change" for _, n in lost.values()) == want_m
+        for d, (v, n) in lost.items():
+            if n == "stress_unavailable":  # a value some valid library plan holds
+                assert any(q[int(d[1:])] == v for q in plans)
+        # the core's verdict on every valid plan equals the test's own: a plan is feasible
+        # iff it avoids every lost value; strings that break an encoding never are
+        comp = compile_constraints(p, sc.constraints)
+        mine = np.array([all(q[int(d[1:])] != v for d, (v, _) in lost.items()) for q in every])
+        assert (comp.evaluate(E).feasible == mine).all() and mine.any()
+        assert not comp.evaluate(broken).feasible.any()
+        if want_m:
+            # the plan in force is a valid library plan holding each value it must give up,
+            # and the nearest feasible plan changes exactly the decisions the scenario names
+            assert sc.plan in cs.ids and sc.plan != "broken"
+            r = plans[cs.ids.index(sc.plan)]
+            assert all(r[int(d[1:])] == v for d, (v, n) in lost.items() if n == "stress_must_change")
+            changed = min(sum(a != b for a, b in zip(q, r)) for q, ok in zip(every, mine) if ok)
+            assert want_m <= changed <= want_m + want_u
+            if want_u == 0:
+                assert changed == want_m
+        else:
+            assert sc.plan == ""
+
+
+def test_default_family_is_decision_level_on_decisions():
+    from flipfix.repair.audit.stress import default_family
+
+    p, pref, plans, cs = _roster_library()
+    fam = default_family(p)
+    assert (fam.hamming_weight, fam.unavailable_values, fam.must_change) == (0.0, 1, 0)
+    assert default_family(planted([3])) == ScenarioFamily()
+    rep = stress_test(p, cs, scenarios=3, seed=1, time_limit=BUDGET)  # family=None: the default
+    assert rep.scenarios_done == 3 and rep.family["unavailable_values"] == 1
+    assert all(d.startswith("unavailable: n") for d in rep.scenario_descriptions)
+    # every repair is a valid plan avoiding the lost value: never below the cheapest such plan
+    # (enumerated with roster_energy), and a valid candidate that does not hold the value
+    # costs at most its own energy (descent never worsens it)
+    every = list(itertools.product(range(len(SHIFTS)), repeat=pref.shape[0]))
+    for s, sc in enumerate(draw_scenarios(p, cs, default_family(p), count=3, seed=1)):
+        [lost] = sc.constraints
+        i, v = int(lost.decision[1:]), SHIFTS.index(lost.values[0])
+        opt = min(roster_energy(q, pref) for q in every if q[i] != v)
+        assert all(rep.feasible[s]) and min(rep.cost[s]) >= opt - 1e-9
+        for k, q in enumerate(plans):
+            if q[i] != v:
+                assert rep.cost[s][k] <= roster_energy(q, pref) + 1e-9
+
+
+@pytest.mark.parametrize("kw, field", [
+    (dict(unavailable_values=6), "family.unavailable_values"),
+    (dict(must_change=-1), "family.must_change"),
+    (dict(must_change=2.0), "family.must_change"),
+    (dict(unavailable_values=3, must_change=3), "family.unavailable_values"),
+])
+def test_bad_decision_parts_name_the_field(kw, field):
+    p, _, _, cs = _roster_library()
+    with pytest.raises(InputError) as err:
+        draw_scenarios(p, cs, ScenarioFamily(hamming_weight=0.0, **kw), count=2)
+    assert err.value.field == field
+
+
+def test_must_change_needs_a_valid_plan():
+    p, pref = roster()
+    X = np.zeros((2, p.n), np.int8)  # every decision broken
+    cs = CandidateSet.from_array(p, X)
+    with pytest.raises(InputError) as err:
+        draw_scenarios(p, cs, ScenarioFamily(hamming_weight=0.0, must_change=1), count=1)
+    assert err.value.field == "family.must_change"
+
+
+def _write_library(tmp_path, p, X, ids):
+    import json
+
+    from flipfix.repair.documents.forms import problem_document
+
+    (tmp_path / "p.json").write_text(json.dumps(problem_document(p)))
+    (tmp_path / "c.json").write_text(json.dumps(
+        [{"id": i, "assignment": {str(lab): int(v) for lab, v in zip(p.labels, row)}}
+         for i, row in zip(ids, X)]))
+    return str(tmp_path / "p.json"), str(tmp_path / "c.json")
+
+
+@pytest.mark.parametrize("eps", [0.0, 1.0])
+def test_audit_names_free_variables_and_free_decisions_on_a_one_hot_model(tmp_path, capsys, eps):
+    import json
+
+    from flipfix.service.audit_cli import main
+
+    p, pref, plans, cs = _roster_library()
+    pj, cj = _write_library(tmp_path, p, cs.X[:-1], cs.ids[:-1])
+    js = tmp_path / "a.json"
+    rc = main(["audit", pj, cj, "--scenarios", "3", "--epsilon", str(eps), "--time-limit",
+               str(BUDGET), "--pareto-methods", "greedy", "--json", str(js)])
+    text = capsys.readouterr().out
+    assert rc == 0
+    doc = json.loads(js.read_text())
+    want = [free_decisions(q, pref, eps) for q in plans]
+    assert max(want) > 0  # the roster has free moves at this epsilon, so the check can fail
+    cands = doc["stress"]["candidates"]
+    assert [c["free_decisions"] for c in cands] == want
+    assert [c["free_variables"] for c in cands] == [0] * len(plans)  # every bit is a decision's
+    assert [q["free_decisions"] for q in doc["robustness"]["profiles"]] == want
+    assert [q["free_variables"] for q in doc["robustness"]["profiles"]] == [0] * len(plans)
+    # the default scenarios on a problem with decisions are decision level
+    assert doc["stress"]["family"]["unavailable_values"] == 1
+    assert doc["stress"]["family"]["hamming_weight"] == 0
+    head = next(line for line in text.splitlines() if line.startswith("candidate"))
+    assert "free var" in head and "free dec" in head
+    assert f"free moves (free variables + free decisions, cost <= {eps:g}) vs mean repair cost" \
+        in text
+    row = next(line for line in text.splitlines() if line.startswith(cands[0]["candidate_id"]))
+    assert row.split()[2:4] == ["0", str(want[0])]
+
+
+def test_audit_cli_decision_options(tmp_path, capsys):
+    import json
+
+    from flipfix.service.audit_cli import main
+
+    p, pref, plans, cs = _roster_library()
+    pj, cj = _write_library(tmp_path, p, cs.X[:-1], cs.ids[:-1])
+    js = tmp_path / "a.json"
+    rc = main(["audit", pj, cj, "--scenarios", "3", "--must-change", "2", "--pareto-methods",
+               "greedy", "--time-limit", str(BUDGET), "--json", str(js)])
+    assert rc == 0, capsys.readouterr().err
+    fam = json.loads(js.read_text())["stress"]["family"]
+    assert (fam["must_change"], fam["unavailable_values"], fam["hamming_weight"]) == (2, 0, 0)
+    assert all("must change" in s["description"] for s in json.loads(js.read_text())["stress"]["scenarios"])
+    rc = main(["audit", pj, cj, "--scenarios", "2", "--unavailable", "9", "--pareto-methods", "greedy"])
+    assert rc == 2 and "error: --unavailable:" in capsys.readouterr().err
+    # on a problem without decisions the decision options name themselves
+    q = planted([3])
+    pj, cj = _write_library(tmp_path, q, state(q, [3], [1])[None, :], ["a"])
+    rc = main(["audit", pj, cj, "--scenarios", "2", "--must-change", "1", "--pareto-methods", "greedy"])
+    assert rc == 2 and "error: --must-change:" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("case", ["planted", "roster"])
+def test_audit_figure_names_points_without_overlap_and_counts_from_zero(tmp_path, case):
+    """The PNG's artists (matplotlib objects, not pixels): both count axes start at 0,
+    every named point carries an Annotation at its own coordinates, the names follow the
+    legend's rule, and no two name boxes overlap."""
+    from matplotlib.text import Annotation
+
+    from flipfix.service.audit_cli import NAMED_CANDIDATES, audit, draw_figure
+
+    if case == "planted":  # 8 candidates, every one named; a front of several points
+        groups = [4, 8, 12]
+        p = planted(groups)
+        X = np.vstack([state(p, groups, b) for b in itertools.product([0, 1], repeat=3)])
+        cs = CandidateSet.from_array(p, X, ids=[f"k{k}" for k in range(8)])
+        fam = ScenarioFamily(hamming_weight=W)
+    else:  # 14 one-hot plans: only the NAMED_CANDIDATES cheapest are named
+        p, pref = roster(nurses=6, seed=1)
+        plans = cheapest_plans(pref, 14)
+        cs = CandidateSet.from_array(p, np.vstack([plan_bits(q) for q in plans]),
+                                     ids=[f"plan{k}" for k in range(14)])
+        fam = None
+    rep = audit(p, cs, fam, scenarios=5, seed=0, method="greedy", time_limit=BUDGET,
+                epsilon=ALPHA, keep=None, pareto_methods=("greedy",), pareto_time=BUDGET)
+    fig = draw_figure(rep, str(tmp_path / "a.png"))
+    assert (tmp_path / "a.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    ax1, ax2 = fig.axes
+    st, front = rep["stress"], rep["pareto"]
+    assert ax1.get_xlim()[0] == 0 and ax2.get_xlim()[0] == 0
+    assert ax2.get_xlim()[1] > max(q.flips for q in front)
+    free = [c.free_moves for c in st.candidates]
+    assert ax1.get_xlim()[1] > max(free)
+    names1 = [a for a in ax1.texts if isinstance(a, Annotation)]
+    names2 = [a for a in ax2.texts if isinstance(a, Annotation)]
+    order = sorted(range(len(st.candidates)), key=lambda k: (st.candidates[k].mean_cost, k))
+    named = order[:NAMED_CANDIDATES]
+    assert [a.get_text() for a in names1] == [st.candidates[k].candidate_id for k in named]
+    for a, k in zip(names1, named):
+        assert a.xy == pytest.approx((free[k], st.candidates[k].mean_cost))
+    legend = [t.get_text() for t in ax1.get_legend().get_texts()]
+    assert ("names: every candidate" if len(cs) <= NAMED_CANDIDATES
+            else f"names: the {NAMED_CANDIDATES} lowest mean costs") in legend
+    assert [a.get_text() for a in names2] == [f"{q.candidate_id} ({q.method})" for q in front]
+    for a, q in zip(names2, front):
+        assert a.xy == pytest.approx((q.flips, q.cost))
+    if case == "planted":
+        assert len(front) >= 3  # several names on the right panel, so overlaps could occur
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    r = FigureCanvasAgg(fig).get_renderer()  # the closed figure, measured as it was saved
+    boxes = [a.get_window_extent(r) for a in names1 + names2]
+    assert not any(b.overlaps(c) for i, b in enumerate(boxes) for c in boxes[i + 1:])

@@ -6,7 +6,8 @@ listed by increasing flips (hence decreasing cost). Comparisons are exact (no
 tolerance): a repair that is 1e-12 cheaper with more flips is a real trade-off.
 
 Helpers answer a planner's two questions: "the cheapest repair within F flips"
-and "the fewest flips within p % of the best cost".
+and "the fewest flips within p % of the best cost". The front of a whole library
+under late constraints is :func:`flipfix.repair.audit.front.cost_flip_front`.
 """
 
 from __future__ import annotations
@@ -14,11 +15,13 @@ from __future__ import annotations
 import math
 from typing import Any, Iterable, Sequence
 
+import numpy as np
+
 from flipfix.repair.errors import InputError
 from flipfix.repair.result import ParetoPoint
 
 __all__ = ["pareto_front", "as_points", "cheapest_within", "fewest_flips_within",
-           "result_points", "cost_flip_front"]
+           "result_points", "run_points"]
 
 
 def _point(item: Any, pos: int) -> ParetoPoint | None:
@@ -136,22 +139,30 @@ def result_points(result: Any, *, include_unchanged: bool = True) -> list[Pareto
     return pts
 
 
-def cost_flip_front(problem, candidates, constraints, *, methods: Sequence[str] = ("greedy", "cpsat"),
-                    time_limit: float = 5.0, seed: int = 0, cancel=None, progress=None,
-                    include_unchanged: bool = True, **options) -> list[ParetoPoint]:
-    """Repair the library once per method and return the front over every candidate and
-    method. ``time_limit`` (seconds) is shared evenly by the methods; extra keyword
-    options go to :func:`flipfix.repair.repair`."""
-    from flipfix.repair.api import repair
+def run_points(X0: np.ndarray, ids: Sequence[str], cost0: np.ndarray, feasible0: np.ndarray,
+               A: np.ndarray, origin: np.ndarray, cost: np.ndarray, feasible: np.ndarray,
+               methods: Sequence[str]) -> list[ParetoPoint]:
+    """Every feasible (cost, flips) point a repair run knows, for :func:`pareto_front`.
 
-    if not methods:
-        raise InputError("methods", "must name at least one method")
-    pts: list[ParetoPoint] = []
-    for m, method in enumerate(methods):
-        if cancel is not None and cancel.is_set():
-            break
-        res = repair(problem, candidates, constraints, method=method,
-                     time_limit=time_limit / len(methods), seed=seed, cancel=cancel,
-                     progress=progress, **options)
-        pts += result_points(res, include_unchanged=include_unchanged and m == 0)
-    return pareto_front(pts)
+    First each library candidate that is feasible as it is (``X0`` int8 (K, n), its
+    ``cost0`` float64 (K,), ``feasible0`` bool (K,)) at 0 flips, method ``"unchanged"``;
+    then each feasible attempt (``A`` int8 (N, n) repaired from candidates ``origin``
+    int64 (N,) by ``methods[i]``, ``cost`` float64 (N,), ``feasible`` bool (N,)). An
+    attempt's flips are counted from the library candidate nearest to it (its origin on
+    ties), the rule the reported best answer follows: the fewest changes that reach it
+    from any plan the user keeps.
+    """
+    from flipfix.repair.audit.robustness import hamming_to_rows
+
+    pts = [ParetoPoint(float(cost0[k]), 0, str(ids[k]), "unchanged")
+           for k in np.flatnonzero(feasible0)]
+    keep = np.flatnonzero(feasible)
+    if keep.size:
+        D = hamming_to_rows(A[keep], X0)  # (N', K)
+        near = D.min(axis=1)
+        own = D[np.arange(keep.size), origin[keep]]
+        cand = np.where(own == near, origin[keep], np.argmin(D, axis=1))
+        pts += [ParetoPoint(float(cost[i]), int(f), str(ids[k]), methods[i])
+                for i, f, k in zip(keep, near, cand)]
+    return pts
+

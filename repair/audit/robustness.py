@@ -27,6 +27,7 @@ import numpy as np
 
 from flipfix.repair.model.candidates import CandidateSet
 from flipfix.repair.errors import InputError
+from flipfix.repair.model.encodings import codewords as encoder_codewords
 from flipfix.repair.model.problem import Decision, Problem
 
 __all__ = [
@@ -191,8 +192,6 @@ def _plain_bits(problem: Problem) -> np.ndarray:
 def codewords(decision: Decision) -> np.ndarray:
     """Bit patterns of a decision's values: int8 (k, m), row v encodes ``values[v]``
     (the encoder's convention: :func:`flipfix.repair.model.encodings.codewords`)."""
-    from flipfix.repair.model.encodings import codewords as encoder_codewords  # local: encodings imports model
-
     return np.asarray(encoder_codewords(decision), dtype=np.int8)
 
 

@@ -1,6 +1,7 @@
 """What-if stress test: repair the whole library under N seeded random late constraints.
 
-A :class:`ScenarioFamily` describes the random late constraints, alone or combined:
+A :class:`ScenarioFamily` describes the random late constraints, alone or combined.
+Bit level:
 
 * a Hamming penalty to a random reference (uniform random bits, or a random
   library candidate with a share of its bits flipped), with a chosen shape and
@@ -9,11 +10,25 @@ A :class:`ScenarioFamily` describes the random late constraints, alone or combin
 * a capacity cut: ``sum_i a_i x_i <= (1 - p/100) * max over the library`` (0/1
   form; ``a`` = 1 for every variable by default, a cardinality cut).
 
+Decision level (problems with declared decisions, :mod:`flipfix.repair.model.encodings`;
+every scenario keeps each encoding valid and leaves every decision a value):
+
+* ``unavailable_values``: that many random decisions each lose one value (drawn
+  among the values some library candidate holds, so the loss touches the library);
+* ``must_change``: a random library candidate (valid in every decision) is the plan
+  in force and k random decisions of it must change: each loses the value that
+  plan holds. That plan needs exactly k decision changes, no more.
+
+A uniform random bit reference breaks every one-hot decision, so its repair costs
+measure re-encoding rather than the late change; :func:`default_family` therefore
+picks a decision-level family for a problem with declared decisions.
+
 :func:`draw_scenarios` draws them (scenario i depends only on ``seed`` and i, so
 a longer run starts with the same scenarios); :func:`stress_test` repairs the
 library under each and reports per candidate how often it produced the best
-repair, its mean and worst repair cost and flips, and the correlation between
-its free-variable count (:mod:`flipfix.repair.audit.robustness`) and its mean repair cost.
+repair, its mean and worst repair cost and flips, its free variables and free
+decisions (:mod:`flipfix.repair.audit.robustness`), and the correlation between its
+free moves (free variables plus free decisions) and its mean repair cost.
 """
 
 from __future__ import annotations
@@ -28,11 +43,15 @@ import numpy as np
 from flipfix.repair.model.candidates import CandidateSet
 from flipfix.repair.model.constraints import SHAPES, FixVariables, HammingPenalty, LinearConstraint
 from flipfix.repair.errors import InputError
-from flipfix.repair.model.problem import SPIN, Problem
+from flipfix.repair.model.constraints import ForbidValues
+from flipfix.repair.model.encodings import decode_indices
+from flipfix.repair.model.problem import Problem
+from flipfix.repair.model.vartypes import BINARY, SPIN, change_vartype
 from flipfix.repair.audit.robustness import robustness_profile
 
 __all__ = ["ScenarioFamily", "Scenario", "CandidateStress", "StressReport", "draw_scenarios",
-           "stress_test", "summarise", "pearson", "spearman", "REFERENCES"]
+           "default_family", "stress_test", "summarise", "pearson", "spearman", "REFERENCES",
+           "PARTS"]
 
 REFERENCES = ("uniform", "perturbed")
 
@@ -50,6 +69,14 @@ class ScenarioFamily:
     fix_k: number of random variables fixed to random values (0 disables).
     capacity_cut_percent: p in [0, 100); 0 disables the capacity cut.
     capacity_weights: label -> weight >= 0 of the capacity row (default 1 each).
+    unavailable_values: number of random decisions that each lose one value (0
+        disables; decision level).
+    must_change: number k of decisions of a random library plan that must change
+        (0 disables; decision level). The decisions of the two decision-level parts
+        are distinct, so together they need at most the problem's decision count.
+
+    The Hamming weight defaults to 1: ``ScenarioFamily(hamming_weight=0,
+    unavailable_values=1)`` is a purely decision-level family (:func:`default_family`).
     """
 
     hamming_weight: float = 1.0
@@ -61,6 +88,8 @@ class ScenarioFamily:
     fix_k: int = 0
     capacity_cut_percent: float = 0.0
     capacity_weights: Mapping | None = None
+    unavailable_values: int = 0
+    must_change: int = 0
 
     def validate(self, problem: Problem, *, field_name: str = "family") -> None:
         f = field_name + "."
@@ -94,9 +123,20 @@ class ScenarioFamily:
                 if isinstance(w, bool) or not isinstance(w, (int, float)) or not math.isfinite(w) \
                         or w < 0:
                     raise InputError(f"{f}capacity_weights[{lab!r}]", f"must be a number >= 0, got {w!r}")
-        if self.hamming_weight == 0 and self.fix_k == 0 and self.capacity_cut_percent == 0:
-            raise InputError(field_name, "enables no late constraint (set a Hamming weight, "
-                                         "fix_k or a capacity cut)")
+        n_dec = len(problem.decisions)
+        for name in ("unavailable_values", "must_change"):
+            v = getattr(self, name)
+            if isinstance(v, bool) or not isinstance(v, (int, np.integer)) or not 0 <= v <= n_dec:
+                raise InputError(f + name, f"must be an integer in [0, {n_dec}] (the problem "
+                                           f"declares {n_dec} decisions), got {v!r}")
+        if self.unavailable_values + self.must_change > n_dec:
+            raise InputError(f + "unavailable_values",
+                             f"{self.unavailable_values} unavailable + {self.must_change} must change "
+                             f"exceed the problem's {n_dec} decisions (the two parts use distinct "
+                             f"decisions)")
+        if not any(getattr(self, name) for name in PARTS):
+            raise InputError(field_name, "enables no late constraint (set one of "
+                                         + ", ".join(PARTS) + ")")
 
     def to_dict(self) -> dict[str, Any]:
         d = asdict(self)
@@ -105,14 +145,36 @@ class ScenarioFamily:
         return d
 
 
+#: the parts of a :class:`ScenarioFamily`, each enabled by a non-zero value
+PARTS = ("hamming_weight", "fix_k", "capacity_cut_percent", "unavailable_values", "must_change")
+
+
+def default_family(problem: Problem) -> ScenarioFamily:
+    """The family used when none is given.
+
+    With declared decisions: one random decision value becomes unavailable per scenario
+    (``hamming_weight=0, unavailable_values=1``); a uniform random bit reference would
+    break every one-hot decision. Otherwise a linear Hamming penalty of weight 1 to
+    uniform random bits (``ScenarioFamily()``).
+    """
+    if problem.decisions:
+        return ScenarioFamily(hamming_weight=0.0, unavailable_values=1)
+    return ScenarioFamily()
+
+
 @dataclass
 class Scenario:
-    """One drawn what-if: its late constraints and the seed they (and the repair) use."""
+    """One drawn what-if: its late constraints and the seed they (and the repair) use.
+
+    ``plan`` names the library candidate a ``must_change`` scenario is built around
+    (empty otherwise).
+    """
 
     index: int
     seed: int
     constraints: list
     description: str
+    plan: str = ""
 
 
 def _caller_values(problem: Problem, bits: np.ndarray) -> list[int]:
@@ -130,6 +192,14 @@ def draw_scenarios(problem: Problem, candidates: CandidateSet, family: ScenarioF
     n = problem.n
     labels = problem.labels
     X = candidates.X
+    values = None  # (K, D) value index per decision, -1 where a candidate breaks it
+    plans = None  # rows valid in every decision: the plans a must_change scenario may use
+    if family.unavailable_values or family.must_change:
+        values = decode_indices(problem, X)
+        plans = np.flatnonzero((values >= 0).all(axis=1))
+        if family.must_change and plans.size == 0:
+            raise InputError("family.must_change", "needs a library candidate whose every "
+                                                   "decision is validly encoded; none is")
     cap_row = None
     if family.capacity_cut_percent > 0:
         a = np.ones(n) if family.capacity_weights is None else np.zeros(n)
@@ -138,13 +208,11 @@ def draw_scenarios(problem: Problem, candidates: CandidateSet, family: ScenarioF
                 a[problem.index[lab]] = float(w)
         rhs = (1.0 - family.capacity_cut_percent / 100.0) * float((X.astype(np.float64) @ a).max())
         cols = np.flatnonzero(a)
-        if problem.vartype == SPIN:  # sum a x = sum (a/2) s + sum a / 2, exactly
-            terms = {labels[i]: a[i] / 2.0 for i in cols}
-            cap_rhs = rhs - float(a[cols].sum()) / 2.0
-        else:
-            terms = {labels[i]: a[i] for i in cols}
-            cap_rhs = rhs
-        cap_row = (terms, cap_rhs, rhs)
+        none = np.zeros(0)  # sum a x in the caller's vartype (SPIN: sum (a/2) s + sum a / 2)
+        idx, coef, _, offset = change_vartype(cols, a[cols], none, none, none, 0.0,
+                                              source=BINARY, target=problem.vartype)
+        terms = {labels[i]: c for i, c in zip(idx.tolist(), coef.tolist())}
+        cap_row = (terms, rhs - offset, rhs)
     out = []
     for i, child in enumerate(np.random.SeedSequence(int(seed)).spawn(int(count))):
         s_seed = int(child.generate_state(1, dtype=np.uint32)[0]) >> 1  # < 2**31
@@ -176,8 +244,48 @@ def draw_scenarios(problem: Problem, candidates: CandidateSet, family: ScenarioF
             terms, cap_rhs, rhs = cap_row
             cons.append(LinearConstraint(dict(terms), "<=", cap_rhs, name="stress_capacity"))
             parts.append(f"capacity cut {family.capacity_cut_percent:g}% (<= {rhs:g})")
-        out.append(Scenario(index=i, seed=s_seed, constraints=cons, description="; ".join(parts)))
+        plan = ""
+        if values is not None:
+            plan = _decision_parts(problem, candidates.ids, values, plans, family, rng, cons, parts)
+        out.append(Scenario(index=i, seed=s_seed, constraints=cons, description="; ".join(parts),
+                            plan=plan))
     return out
+
+
+def _decision_parts(problem: Problem, ids, values: np.ndarray, plans: np.ndarray,
+                    family: ScenarioFamily, rng: np.random.Generator, cons: list,
+                    parts: list) -> str:
+    """Append one scenario's decision-level constraints and descriptions; return the plan id.
+
+    ``values`` int64 (K, D) is the library's value index per decision (-1: broken),
+    ``plans`` the rows valid in every decision. Each part forbids one value of each
+    chosen decision; the decisions of the two parts are distinct.
+    """
+    decisions = problem.decisions
+    order = rng.permutation(len(decisions))
+    plan = ""
+    if family.must_change:
+        r = int(rng.choice(plans))
+        plan = str(ids[r])
+        chosen = order[:family.must_change]
+        names = []
+        for c in chosen:
+            d = decisions[c]
+            v = d.values[values[r, c]]
+            cons.append(ForbidValues(d.name, [v], name="stress_must_change"))
+            names.append(f"{d.name}!={v!r}")
+        parts.append(f"{family.must_change} decisions of {plan} must change ({', '.join(names)})")
+    if family.unavailable_values:
+        chosen = order[family.must_change:family.must_change + family.unavailable_values]
+        names = []
+        for c in chosen:
+            d = decisions[c]
+            held = np.unique(values[:, c][values[:, c] >= 0])
+            m = int(rng.choice(held)) if held.size else int(rng.integers(len(d.values)))
+            cons.append(ForbidValues(d.name, [d.values[m]], name="stress_unavailable"))
+            names.append(f"{d.name}={d.values[m]!r}")
+        parts.append(f"unavailable: {', '.join(names)}")
+    return plan
 
 
 # ----------------------------------------------------------- statistics
@@ -230,9 +338,11 @@ class CandidateStress:
     assignment, in energy units; ``mean_regret`` is the mean excess over the
     scenario's best repair. Means and worsts cover the scenarios where this
     candidate's repair was feasible (``failures`` counts the others) and are
-    NaN when there is none. ``free_variables`` counts free moves: free
-    variables outside declared decisions plus free decisions
-    (:mod:`flipfix.repair.audit.robustness`); it is the robustness side of the correlation.
+    NaN when there is none. ``free_variables`` counts the variables outside
+    declared decisions whose single flip costs ``<= epsilon``, ``free_decisions``
+    the decisions with a one-step move costing ``<= epsilon``
+    (:mod:`flipfix.repair.audit.robustness`); their sum, :attr:`free_moves`, is the
+    robustness side of the correlation.
     """
 
     candidate_id: str
@@ -246,6 +356,12 @@ class CandidateStress:
     mean_flips: float
     worst_flips: int
     failures: int
+    free_decisions: int = 0
+
+    @property
+    def free_moves(self) -> int:
+        """Free variables plus free decisions."""
+        return self.free_variables + self.free_decisions
 
 
 def _num(v: float) -> float | None:
@@ -294,6 +410,7 @@ class StressReport:
             "scenarios_done": self.scenarios_done, "stopped": self.stopped,
             "seconds": round(self.seconds, 6), "message": self.message,
             "pearson": self.pearson, "spearman": self.spearman, "correlated": self.correlated,
+            "correlation_of": "free_variables + free_decisions with mean_cost",
             "candidates": [{k: (_num(v) if isinstance(v, float) else v)
                             for k, v in asdict(c).items()} for c in self.candidates],
             "scenarios": [
@@ -308,8 +425,12 @@ class StressReport:
 
 def summarise(ids: Sequence[str], energy: Sequence[float], free: Sequence[int],
               cost: np.ndarray, flips: np.ndarray, feasible: np.ndarray, *,
+              free_decisions: Sequence[int] | None = None,
               rel_tol: float = 1e-9) -> tuple[list, list, list]:
     """Per-candidate figures from scenario x candidate matrices.
+
+    ``free`` and ``free_decisions`` (default 0 each) are the free variables and
+    free decisions per candidate, int (K,).
 
     ``cost`` float64 (S, K), ``flips`` int64 (S, K), ``feasible`` bool (S, K).
     In each scenario the best repair is the lowest feasible cost (within
@@ -333,6 +454,7 @@ def summarise(ids: Sequence[str], energy: Sequence[float], free: Sequence[int],
         fk = flips[ok, k]
         rows.append(CandidateStress(
             candidate_id=str(ids[k]), energy=float(energy[k]), free_variables=int(free[k]),
+            free_decisions=int(free_decisions[k]) if free_decisions is not None else 0,
             wins=int(win[:, k].sum()), win_rate=float(win[:, k].sum() / S) if S else math.nan,
             mean_cost=float(ck.mean()) if nk else math.nan,
             worst_cost=float(ck.max()) if nk else math.nan,
@@ -345,7 +467,7 @@ def summarise(ids: Sequence[str], energy: Sequence[float], free: Sequence[int],
 
 
 def stress_test(problem: Problem, candidates: CandidateSet,
-                family: ScenarioFamily | Sequence[Scenario], *, scenarios: int = 20,
+                family: ScenarioFamily | Sequence[Scenario] | None = None, *, scenarios: int = 20,
                 seed: int = 0, method: str = "greedy", time_limit: float = 30.0,
                 epsilon: float = 0.0, cancel=None,
                 progress: Callable[[dict], None] | None = None,
@@ -353,12 +475,12 @@ def stress_test(problem: Problem, candidates: CandidateSet,
     """Repair the whole library under each scenario and summarise.
 
     ``family`` is a :class:`ScenarioFamily` (``scenarios`` are drawn with
-    ``seed``) or a list of :class:`Scenario`. ``time_limit`` (seconds) covers the
+    ``seed``), a list of :class:`Scenario`, or None for :func:`default_family`. ``time_limit`` (seconds) covers the
     whole run; each scenario gets an even share of what is left, and no new
     scenario starts once it is spent. ``cancel`` (a ``threading.Event``) stops
     the run after the current scenario (and is passed to the repair).
     ``progress(dict(done, total, best_cost, phase="stress"))`` is called after
-    each scenario from the calling thread. ``epsilon`` is the free-variable
+    each scenario from the calling thread. ``epsilon`` is the free-variable and free-decision
     threshold of the robustness profile.
     """
     from flipfix.repair.api import repair
@@ -369,6 +491,8 @@ def stress_test(problem: Problem, candidates: CandidateSet,
     if isinstance(time_limit, bool) or not isinstance(time_limit, (int, float)) \
             or not math.isfinite(time_limit) or time_limit <= 0:
         raise InputError("time_limit", f"must be a number of seconds > 0, got {time_limit!r}")
+    if family is None:
+        family = default_family(problem)
     if isinstance(family, ScenarioFamily):
         drawn = draw_scenarios(problem, candidates, family, count=scenarios, seed=seed)
         family_doc = family.to_dict()
@@ -380,9 +504,8 @@ def stress_test(problem: Problem, candidates: CandidateSet,
     profile = robustness_profile(problem, candidates, epsilon=epsilon, spectrum=False)
     ids = list(candidates.ids)
     energy = profile.column("energy")
-    # robustness = free moves: free variables outside decisions plus free decisions
-    free = [a + b for a, b in zip(profile.column("free_variables"),
-                                  profile.column("free_decisions"))]
+    free_var = profile.column("free_variables")  # outside declared decisions
+    free_dec = profile.column("free_decisions")
     pos = {cid: k for k, cid in enumerate(ids)}
     K = len(ids)
     cost_rows, flip_rows, feas_rows, seeds, descs = [], [], [], [], []
@@ -421,10 +544,11 @@ def stress_test(problem: Problem, candidates: CandidateSet,
     cost = np.vstack(cost_rows) if S else np.zeros((0, K))
     flips = np.vstack(flip_rows) if S else np.zeros((0, K), dtype=np.int64)
     feas = np.vstack(feas_rows) if S else np.zeros((0, K), dtype=bool)
-    rows, best, winners = summarise(ids, energy, free, cost, flips, feas)
+    rows, best, winners = summarise(ids, energy, free_var, cost, flips, feas,
+                                    free_decisions=free_dec)
     means = np.asarray([r.mean_cost for r in rows], dtype=np.float64)
     fin = np.isfinite(means)
-    fv = np.asarray(free, dtype=np.float64)
+    fv = np.asarray([r.free_moves for r in rows], dtype=np.float64)  # robustness = free moves
     msg = ""
     if stopped == "time_limit":
         msg = f"time limit reached after {S} of {len(drawn)} scenarios"

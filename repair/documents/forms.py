@@ -30,109 +30,33 @@ object keys and is rejected (``problem.quadratic[k]``).
 Errors are :class:`flipfix.repair.errors.InputError` naming the field as a dotted path,
 e.g. ``constraints[2].weight`` or ``candidates[0].assignment['x3']``.
 
-Extending: :data:`CONSTRAINT_PARSERS` maps a ``"type"`` to a parser
-``parser(obj: dict, problem: Problem, field: str) -> constraint``. Integer-decision
-kinds come from :mod:`flipfix.repair.model.encodings` (its ``CONSTRAINT_PARSERS`` are merged in
-when that module exists), and so does ``parse_decisions(obj, field)`` for a
-problem's ``"decisions"``.
+Constraint kinds: the JSON form of each kind (its ``"type"``, keys, reader and
+writer) is part of the kind's record (:mod:`flipfix.repair.model.constraints`);
+:func:`parse_constraints` and :func:`constraints_document` dispatch through it.
 """
 
 from __future__ import annotations
 
-import math
-import re
-from typing import Any, Callable, Hashable, Mapping
+from typing import Any, Mapping
 
-from flipfix.repair.model.candidates import CandidateSet
-from flipfix.repair.model.constraints import (
-    SENSES, SHAPES, ExtraTerms, FixVariables, ForbidAssignment, HammingPenalty,
-    LinearConstraint,
+from flipfix.repair.documents.fields import (
+    as_list, as_mapping, canonical_int, check_keys, json_label, number, require,
+    resolve_label, resolve_mapping,
 )
 from flipfix.repair.errors import InputError
-from flipfix.repair.model.problem import VARTYPES, Problem
+from flipfix.repair.model.candidates import CandidateSet
+from flipfix.repair.model.constraints import registry
+from flipfix.repair.model.problem import ENCODINGS, VARTYPES, Decision, Problem, check_label, check_value
 
 __all__ = [
-    "parse_problem", "parse_candidates", "parse_candidate_records", "parse_constraints",
-    "parse_constraint", "problem_document", "resolve_label", "resolve_mapping",
-    "CONSTRAINT_PARSERS", "constraint_parsers",
+    "parse_problem", "parse_decisions", "parse_candidates", "parse_candidate_records",
+    "parse_constraints", "parse_constraint", "problem_document", "constraints_document",
+    "resolve_label", "resolve_mapping",
 ]
 
-_CANONICAL_INT = re.compile(r"-?(0|[1-9][0-9]*)\Z")
 _PROBLEM_KEYS = {"vartype", "linear", "quadratic", "offset", "labels", "decisions", "name"}
 _CANDIDATE_KEYS = {"id", "assignment", "source", "energy", "tags", "revision"}
-
-
-def _canonical_int(key: str) -> int | None:
-    return int(key) if _CANONICAL_INT.match(key) else None
-
-
-def _json_label(value: Any, field: str) -> Hashable:
-    """A label written in a JSON list: str or int (bool and float are errors)."""
-    if isinstance(value, bool) or not isinstance(value, (str, int)):
-        raise InputError(field, f"label {value!r} must be a string or an integer")
-    return value
-
-
-def _mapping(obj: Any, field: str) -> Mapping:
-    if not isinstance(obj, Mapping):
-        raise InputError(field, f"must be an object {{label: value}}, got {type(obj).__name__}")
-    return obj
-
-
-def _list(obj: Any, field: str) -> list:
-    if not isinstance(obj, (list, tuple)):
-        raise InputError(field, f"must be a list, got {type(obj).__name__}")
-    return list(obj)
-
-
-def _number(value: Any, field: str) -> float:
-    if isinstance(value, bool) or not isinstance(value, (int, float)):
-        raise InputError(field, f"{value!r} is not a number")
-    v = float(value)
-    if not math.isfinite(v):
-        raise InputError(field, f"{value!r} is not finite")
-    return v
-
-
-def _check_keys(obj: Mapping, allowed: set, field: str) -> None:
-    for key in obj:
-        if key not in allowed:
-            raise InputError(f"{field}.{key}", f"unknown field (allowed: {', '.join(sorted(allowed))})")
-
-
-def _reprefix(err: InputError, field: str) -> InputError:
-    """An error raised by a domain constructor with a bare field name, under ``field``."""
-    if err.field.startswith(field):
-        return err
-    return InputError(f"{field}.{err.field}", err.message)
-
-
-# ------------------------------------------------------------------- labels
-def resolve_label(problem: Problem, key: Any, field: str) -> Hashable:
-    """A label as written in a candidates/constraints document -> the problem's label.
-
-    JSON integers stay integers; strings follow rule 2 of the module docstring.
-    A string that names no variable is an :class:`InputError` naming ``field``.
-    """
-    if isinstance(key, bool) or not isinstance(key, (str, int)):
-        raise InputError(field, f"label {key!r} must be a string or an integer")
-    if isinstance(key, int):
-        return key
-    if key in problem.index:
-        return key
-    as_int = _canonical_int(key)
-    if as_int is not None and as_int in problem.index:
-        return as_int
-    raise InputError(field, f"unknown variable {key!r}")
-
-
-def resolve_mapping(problem: Problem, obj: Any, field: str) -> dict:
-    """``{key: value}`` with keys resolved to the problem's labels (values untouched)."""
-    out: dict = {}
-    for key, value in _mapping(obj, field).items():
-        lab = resolve_label(problem, key, f"{field}[{key!r}]")
-        out[lab] = value
-    return out
+_DECISION_KEYS = {"name", "encoding", "variables", "values"}
 
 
 # ------------------------------------------------------------------ problem
@@ -141,24 +65,24 @@ def parse_problem(obj: Any, *, field: str = "problem") -> Problem:
     f = field
     if not isinstance(obj, Mapping):
         raise InputError(f, f"must be a JSON object, got {type(obj).__name__}")
-    _check_keys(obj, _PROBLEM_KEYS, f)
+    check_keys(obj, _PROBLEM_KEYS, f)
     if "vartype" not in obj:
         raise InputError(f + ".vartype", f"is missing (one of {VARTYPES})")
     vartype = obj["vartype"]
     if not isinstance(vartype, str) or vartype.upper() not in VARTYPES:
         raise InputError(f + ".vartype", f"must be one of {VARTYPES}, got {vartype!r}")
     vartype = vartype.upper()
-    linear = _mapping(obj.get("linear", {}), f + ".linear")
-    quadratic = _list(obj.get("quadratic", []), f + ".quadratic")
-    offset = _number(obj.get("offset", 0.0), f + ".offset")
+    linear = as_mapping(obj.get("linear", {}), f + ".linear")
+    quadratic = as_list(obj.get("quadratic", []), f + ".quadratic")
+    offset = number(obj.get("offset", 0.0), f + ".offset")
 
     labels = None
     int_labels: dict[int, str] = {}   # int label -> where it was seen
     str_labels: dict[str, str] = {}
     if "labels" in obj:
         labels = []
-        for k, lab in enumerate(_list(obj["labels"], f + ".labels")):
-            lab = _json_label(lab, f"{f}.labels[{k}]")
+        for k, lab in enumerate(as_list(obj["labels"], f + ".labels")):
+            lab = json_label(lab, f"{f}.labels[{k}]")
             (int_labels if isinstance(lab, int) else str_labels).setdefault(lab, f"{f}.labels[{k}]")
             labels.append(lab)
     quad = []
@@ -166,28 +90,24 @@ def parse_problem(obj: Any, *, field: str = "problem") -> Problem:
         tf = f"{f}.quadratic[{k}]"
         if not isinstance(term, (list, tuple)) or len(term) != 3:
             raise InputError(tf, "must be [u, v, bias]")
-        u = _json_label(term[0], tf)
-        v = _json_label(term[1], tf)
+        u = json_label(term[0], tf)
+        v = json_label(term[1], tf)
         for lab in (u, v):
             (int_labels if isinstance(lab, int) else str_labels).setdefault(lab, tf)
-        quad.append((u, v, _number(term[2], tf)))
+        quad.append((u, v, number(term[2], tf)))
     for s, where in str_labels.items():
-        i = _canonical_int(s)
+        i = canonical_int(s)
         if i is not None and i in int_labels:
             raise InputError(where, f"uses both the integer {i} and the string {s!r} as labels; "
                                     "JSON object keys cannot tell them apart")
     lin = []
     for key, bias in linear.items():
         kf = f"{f}.linear[{key!r}]"
-        as_int = _canonical_int(key) if isinstance(key, str) else None
+        as_int = canonical_int(key) if isinstance(key, str) else None
         lab = as_int if as_int is not None and as_int in int_labels else key
-        lin.append((lab, _number(bias, kf)))
+        lin.append((lab, number(bias, kf)))
 
-    decisions = ()
-    if obj.get("decisions") not in (None, []):
-        from flipfix.repair.model import encodings
-
-        decisions = tuple(encodings.parse_decisions(obj["decisions"], f + ".decisions"))
+    decisions = tuple(parse_decisions(obj.get("decisions"), f + ".decisions"))
     return Problem.from_terms(lin, quad, offset=offset, vartype=vartype, labels=labels,
                               decisions=decisions, field_prefix=f + ".")
 
@@ -214,18 +134,52 @@ def problem_document(problem: Problem) -> dict:
     return doc
 
 
+def parse_decisions(obj: Any, field: str = "decisions") -> list[Decision]:
+    """The problem document's ``"decisions"`` list -> [Decision].
+
+    Each item: ``{"name": str, "encoding": "one_hot" | "domain_wall",
+    "variables": [label, ...], "values": [value, ...]}``. Shapes and bit
+    ownership are checked against the problem when it is built
+    (:func:`flipfix.repair.model.problem.validate_decisions`).
+    """
+    if obj is None:
+        return []
+    if not isinstance(obj, list):
+        raise InputError(field, "must be a list of decisions")
+    out = []
+    for k, item in enumerate(obj):
+        f = f"{field}[{k}]"
+        if not isinstance(item, Mapping):
+            raise InputError(f, f"must be an object, got {type(item).__name__}")
+        check_keys(item, _DECISION_KEYS, f)
+        for key in sorted(_DECISION_KEYS):
+            require(item, key, f)
+        if not isinstance(item["name"], str) or item["name"] == "":
+            raise InputError(f + ".name", f"must be a non-empty string, got {item['name']!r}")
+        if item["encoding"] not in ENCODINGS:
+            raise InputError(f + ".encoding", f"must be one of {ENCODINGS}, got {item['encoding']!r}")
+        for key in ("variables", "values"):
+            if not isinstance(item[key], list):
+                raise InputError(f"{f}.{key}", "must be a list")
+        variables = tuple(check_label(lab, f"{f}.variables[{j}]")
+                          for j, lab in enumerate(item["variables"]))
+        values = tuple(check_value(v, f"{f}.values[{j}]") for j, v in enumerate(item["values"]))
+        out.append(Decision(item["name"], item["encoding"], variables, values))
+    return out
+
+
 # --------------------------------------------------------------- candidates
 def parse_candidate_records(obj: Any, problem: Problem, *, field: str = "candidates") -> list[dict]:
     """Candidates document -> records ``{"id", "assignment" {label: value}, "source",
     "energy", "tags"}`` with labels resolved; the assignment is checked by
     :func:`parse_candidates`, not here."""
-    items = _list(obj, field)
+    items = as_list(obj, field)
     out = []
     for k, item in enumerate(items):
         f = f"{field}[{k}]"
         if not isinstance(item, Mapping):
             raise InputError(f, 'must be an object {"id": ..., "assignment": {label: value}}')
-        _check_keys(item, _CANDIDATE_KEYS, f)
+        check_keys(item, _CANDIDATE_KEYS, f)
         if "assignment" not in item:
             raise InputError(f + ".assignment", "is missing")
         rec = {"id": item.get("id", f"c{k}"),
@@ -235,8 +189,8 @@ def parse_candidate_records(obj: Any, problem: Problem, *, field: str = "candida
         if not isinstance(rec["source"], str):
             raise InputError(f + ".source", "must be a string")
         if rec["energy"] is not None:
-            rec["energy"] = _number(rec["energy"], f + ".energy")
-        tags = _list(rec["tags"], f + ".tags")
+            rec["energy"] = number(rec["energy"], f + ".energy")
+        tags = as_list(rec["tags"], f + ".tags")
         for t, tag in enumerate(tags):
             if not isinstance(tag, str):
                 raise InputError(f"{f}.tags[{t}]", "must be a string")
@@ -252,141 +206,19 @@ def parse_candidates(obj: Any, problem: Problem, *, field: str = "candidates") -
 
 
 # -------------------------------------------------------------- constraints
-def _opt_name(obj: Mapping, field: str, default: str) -> str:
-    name = obj.get("name", default)
-    if not isinstance(name, str) or not name:
-        raise InputError(field + ".name", "must be a non-empty string")
-    return name
-
-
-def _parse_hamming(obj: Mapping, problem: Problem, field: str) -> HammingPenalty:
-    _check_keys(obj, {"type", "name", "reference", "weight", "shape", "threshold", "table",
-                      "variables"}, field)
-    if "reference" not in obj:
-        raise InputError(field + ".reference", "is missing")
-    ref = resolve_mapping(problem, obj["reference"], field + ".reference")
-    weight = _number(obj.get("weight", 1.0), field + ".weight")
-    if weight < 0:
-        raise InputError(field + ".weight", f"must be >= 0, got {weight!r}")
-    shape = obj.get("shape", "linear")
-    if shape not in SHAPES:
-        raise InputError(field + ".shape", f"must be one of {SHAPES}, got {shape!r}")
-    threshold = _number(obj.get("threshold", 0.0), field + ".threshold")
-    table = None
-    if "table" in obj:
-        table = [_number(v, f"{field}.table[{k}]")
-                 for k, v in enumerate(_list(obj["table"], field + ".table"))]
-    if shape == "table" and not table:
-        raise InputError(field + ".table", "a table shape needs a non-empty list of values")
-    variables = None
-    if "variables" in obj:
-        variables = [resolve_label(problem, v, f"{field}.variables[{k}]")
-                     for k, v in enumerate(_list(obj["variables"], field + ".variables"))]
-    return HammingPenalty(ref, weight=weight, shape=shape, threshold=threshold, table=table,
-                          variables=variables, name=_opt_name(obj, field, "hamming"))
-
-
-def _parse_extra(obj: Mapping, problem: Problem, field: str) -> ExtraTerms:
-    _check_keys(obj, {"type", "name", "linear", "quadratic", "offset"}, field)
-    lin = {lab: _number(b, f"{field}.linear[{lab!r}]")
-           for lab, b in resolve_mapping(problem, obj.get("linear", {}), field + ".linear").items()}
-    quad = []
-    for k, term in enumerate(_list(obj.get("quadratic", []), field + ".quadratic")):
-        tf = f"{field}.quadratic[{k}]"
-        if not isinstance(term, (list, tuple)) or len(term) != 3:
-            raise InputError(tf, "must be [u, v, bias]")
-        quad.append((resolve_label(problem, term[0], tf), resolve_label(problem, term[1], tf),
-                     _number(term[2], tf)))
-    if not lin and not quad and "offset" not in obj:
-        raise InputError(field, "has no terms (give linear, quadratic or offset)")
-    return ExtraTerms(lin, tuple(quad), _number(obj.get("offset", 0.0), field + ".offset"),
-                      name=_opt_name(obj, field, "extra"))
-
-
-def _required_mapping(obj: Mapping, problem: Problem, field: str, key: str) -> dict:
-    """``obj[key]``: a non-empty label -> value mapping, labels resolved against the problem."""
-    if key not in obj:
-        raise InputError(f"{field}.{key}", "is missing")
-    out = resolve_mapping(problem, obj[key], f"{field}.{key}")
-    if not out:
-        raise InputError(f"{field}.{key}", "is empty")
-    return out
-
-
-def _parse_fix(obj: Mapping, problem: Problem, field: str) -> FixVariables:
-    _check_keys(obj, {"type", "name", "values"}, field)
-    return FixVariables(_required_mapping(obj, problem, field, "values"),
-                        name=_opt_name(obj, field, "fix"))
-
-
-def _parse_linear(obj: Mapping, problem: Problem, field: str) -> LinearConstraint:
-    _check_keys(obj, {"type", "name", "terms", "sense", "rhs"}, field)
-    if "terms" not in obj:
-        raise InputError(field + ".terms", "is missing")
-    terms = {lab: _number(c, f"{field}.terms[{lab!r}]")
-             for lab, c in resolve_mapping(problem, obj["terms"], field + ".terms").items()}
-    if not terms:
-        raise InputError(field + ".terms", "is empty")
-    sense = obj.get("sense")
-    if sense not in SENSES:
-        raise InputError(field + ".sense", f"must be one of {SENSES}, got {sense!r}")
-    if "rhs" not in obj:
-        raise InputError(field + ".rhs", "is missing")
-    return LinearConstraint(terms, sense, _number(obj["rhs"], field + ".rhs"),
-                            name=_opt_name(obj, field, "linear"))
-
-
-def _parse_forbid(obj: Mapping, problem: Problem, field: str) -> ForbidAssignment:
-    _check_keys(obj, {"type", "name", "assignment"}, field)
-    return ForbidAssignment(_required_mapping(obj, problem, field, "assignment"),
-                            name=_opt_name(obj, field, "forbid"))
-
-
-Parser = Callable[[Mapping, Problem, str], Any]
-
-#: ``"type"`` -> parser(obj, problem, field). Bit-level kinds; see :func:`constraint_parsers`.
-CONSTRAINT_PARSERS: dict[str, Parser] = {
-    "hamming": _parse_hamming,
-    "extra": _parse_extra,
-    "fix": _parse_fix,
-    "linear": _parse_linear,
-    "forbid": _parse_forbid,
-}
-
-
-def constraint_parsers() -> dict[str, Parser]:
-    """Every known parser: :data:`CONSTRAINT_PARSERS` plus those of :mod:`flipfix.repair.model.encodings`."""
-    parsers = dict(CONSTRAINT_PARSERS)
-    try:
-        from flipfix.repair.model import encodings
-    except ImportError:
-        return parsers
-    for name, fn in getattr(encodings, "CONSTRAINT_PARSERS", {}).items():
-        # encodings' parsers take (obj, field); decision names are checked when lowered
-        parsers.setdefault(name, lambda obj, problem, field, fn=fn: fn(obj, field))
-    return parsers
-
-
-def parse_constraint(obj: Any, problem: Problem, *, field: str = "constraints[0]",
-                     parsers: Mapping[str, Parser] | None = None) -> Any:
-    """One constraint object -> its domain object."""
-    parsers = constraint_parsers() if parsers is None else parsers
-    if not isinstance(obj, Mapping):
-        raise InputError(field, f"must be an object with a \"type\", got {type(obj).__name__}")
-    kind = obj.get("type")
-    if not isinstance(kind, str) or kind not in parsers:
-        raise InputError(field + ".type", f"must be one of {sorted(parsers)}, got {kind!r}")
-    try:
-        return parsers[kind](obj, problem, field)
-    except InputError as err:
-        raise _reprefix(err, field) from None
+def parse_constraint(obj: Any, problem: Problem, *, field: str = "constraints[0]") -> Any:
+    """One constraint object ``{"type": kind, "name"?: str, ...}`` -> its domain object."""
+    return registry.read_json(obj, problem, field=field)
 
 
 def parse_constraints(obj: Any, problem: Problem, *, field: str = "constraints") -> list:
     """Constraints document (a list, or one object) -> list of domain constraints."""
     if isinstance(obj, Mapping):
         obj = [obj]
-    items = _list(obj, field)
-    parsers = constraint_parsers()
-    return [parse_constraint(c, problem, field=f"{field}[{k}]", parsers=parsers)
-            for k, c in enumerate(items)]
+    return [parse_constraint(c, problem, field=f"{field}[{k}]")
+            for k, c in enumerate(as_list(obj, field))]
+
+
+def constraints_document(constraints: Any) -> list[dict]:
+    """The inverse of :func:`parse_constraints`: one JSON object per domain constraint."""
+    return [registry.write_json(c) for c in constraints]

@@ -1,226 +1,31 @@
-"""Lowering of late constraints to the arrays the solvers work on.
+"""The late constraints of a problem, lowered and merged: :class:`Compiled`.
 
-Every late constraint, bit-level or integer-level, lowers to :class:`Pieces`:
-
-* soft QUBO terms (linear, quadratic, offset) merged into the search objective;
-* soft count penalties ``f(d)`` with ``d = const + sum_t coef_t * AND(literals_t)``
-  (a literal is "variable i has bit value b"), for non-linear shapes;
-* hard linear rows ``lo <= sum_i a_i x_i <= hi`` over 0/1 bits;
-* hard fixings ``x_i = b``.
-
-:class:`Compiled` holds the merged arrays and evaluates a batch of assignments:
-cost split by component and violation per hard constraint.
+:func:`compile_constraints` checks every constraint against the problem and
+lowers it to :class:`flipfix.repair.lowering.pieces.Pieces` (through the kind's
+record, :mod:`flipfix.repair.model.constraints.registry`), adds the validity rows
+of the problem's decisions, and merges everything into the arrays the solvers
+work on. :class:`Compiled` also evaluates a batch of assignments: cost split by
+component and violation per hard constraint.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any, Sequence
 
 import numpy as np
 
-from flipfix.repair.model.constraints import (
-    ExtraTerms, FixVariables, ForbidAssignment, HammingPenalty, LinearConstraint, _number,
-    shape_table,
-)
-from flipfix.repair.kernels.batching import row_slices
 from flipfix.repair.errors import InputError
+from flipfix.repair.kernels.batching import row_slices
+from flipfix.repair.lowering.decisions import encoding_pieces
+from flipfix.repair.lowering.pieces import CountSpec, Pieces, RowSpec
+from flipfix.repair.model.constraints import registry
 from flipfix.repair.model.problem import Problem
 
-__all__ = ["CountSpec", "RowSpec", "Pieces", "Compiled", "compile_constraints", "lower",
-           "FEAS_TOL"]
+__all__ = ["Compiled", "Evaluation", "compile_constraints", "FEAS_TOL"]
 
 #: Absolute tolerance on a hard row, scaled by the row's size (common practice).
 FEAS_TOL = 1e-9
-
-
-@dataclass
-class CountSpec:
-    """Soft penalty ``table[d]`` with ``d = const + sum_t coef[t] * AND(lits of t)``.
-
-    ``terms`` is a list of ``(coef int, [(var int, bit int), ...])``; d must stay in
-    0..len(table)-1 for every assignment (the lowering guarantees it).
-    """
-
-    name: str
-    table: np.ndarray
-    const: int
-    terms: list
-
-
-@dataclass
-class RowSpec:
-    """Hard ``lo <= sum coef[k] * x[idx[k]] <= hi`` over 0/1 bits."""
-
-    name: str
-    idx: np.ndarray
-    coef: np.ndarray
-    lo: float
-    hi: float
-
-
-@dataclass
-class Pieces:
-    """What one constraint lowers to (indices are variable positions, bits 0/1)."""
-
-    name: str
-    linear: list = field(default_factory=list)      # [(i, coef)]
-    quadratic: list = field(default_factory=list)   # [(i, j, coef)], i != j
-    offset: float = 0.0
-    counts: list = field(default_factory=list)      # [CountSpec]
-    rows: list = field(default_factory=list)        # [RowSpec]
-    fixed: list = field(default_factory=list)       # [(i, bit)]
-    hard: bool = False
-
-
-# --------------------------------------------------------------------- lowering
-def _positions(problem: Problem, mapping, field_name: str) -> tuple[np.ndarray, np.ndarray]:
-    """Label -> caller value mapping to (positions int64, bits int8)."""
-    if not hasattr(mapping, "items"):
-        raise InputError(field_name, "must map variable labels to values")
-    idx, bits = [], []
-    for lab, val in mapping.items():
-        f = f"{field_name}[{lab!r}]"
-        idx.append(problem.lookup(lab, f))
-        bits.append(problem.value_to_bit(val, f))
-    return np.asarray(idx, dtype=np.int64), np.asarray(bits, dtype=np.int8)
-
-
-def lower_hamming(problem: Problem, c: HammingPenalty, name: str, prefix: str) -> Pieces:
-    idx, ref = _positions(problem, c.reference, prefix + "reference")
-    if idx.size == 0:
-        raise InputError(prefix + "reference", "is empty")
-    if c.variables is not None:
-        chosen = [problem.lookup(lab, f"{prefix}variables[{k}]") for k, lab in enumerate(c.variables)]
-        pos = {int(i): int(b) for i, b in zip(idx, ref)}
-        missing = [lab for lab, i in zip(c.variables, chosen) if i not in pos]
-        if missing:
-            raise InputError(prefix + "variables", f"{missing[0]!r} has no value in reference")
-        idx = np.asarray(chosen, dtype=np.int64)
-        ref = np.asarray([pos[i] for i in chosen], dtype=np.int8)
-        if np.unique(idx).size != idx.size:
-            raise InputError(prefix + "variables", "lists a variable twice")
-    table = shape_table(c.shape, c.weight, int(idx.size), threshold=c.threshold, table=c.table,
-                        field_name=prefix + "shape")
-    # d = number of i with x_i != ref_i: one single-literal term per variable
-    terms = [(1, [(int(i), 1 - int(b))]) for i, b in zip(idx, ref)]
-    return count_pieces(name, CountSpec(name, table, 0, terms))
-
-
-def count_pieces(name: str, spec: CountSpec) -> Pieces:
-    """A count penalty; merged into QUBO terms when its table is linear in d and terms are small."""
-    t = spec.table
-    d = np.arange(t.size, dtype=np.float64)
-    slope = (t[-1] - t[0]) / max(t.size - 1, 1)
-    linear_shape = np.allclose(t, t[0] + slope * d, rtol=0, atol=1e-12 * (1 + np.abs(t).max()))
-    if not (linear_shape and all(len(lits) <= 2 for _, lits in spec.terms)):
-        return Pieces(name, counts=[spec])
-    p = Pieces(name, offset=float(t[0] + slope * spec.const))
-    for coef, lits in spec.terms:
-        w = slope * coef
-        # [x_i == b] = b*x_i + (1-b)*(1-x_i): an affine form a + s*x_i
-        forms = [(1.0 - b, 2.0 * b - 1.0, i) for i, b in lits]
-        if len(forms) == 1:
-            a, s, i = forms[0]
-            p.offset += w * a
-            p.linear.append((i, w * s))
-        else:
-            (a1, s1, i), (a2, s2, j) = forms
-            p.offset += w * a1 * a2
-            p.linear.append((i, w * s1 * a2))
-            p.linear.append((j, w * s2 * a1))
-            p.quadratic.append((i, j, w * s1 * s2))
-    return p
-
-
-def lower_extra(problem: Problem, c: ExtraTerms, name: str, prefix: str) -> Pieces:
-    lin = {}
-    for lab, bias in dict(c.linear).items():
-        i = problem.lookup(lab, f"{prefix}linear[{lab!r}]")
-        lin[i] = lin.get(i, 0.0) + _number(bias, f"{prefix}linear[{lab!r}]")
-    quad = []
-    for k, term in enumerate(c.quadratic):
-        f = f"{prefix}quadratic[{k}]"
-        try:
-            u, v, bias = term
-        except (TypeError, ValueError):
-            raise InputError(f, "must be [u, v, bias]") from None
-        i, j = problem.lookup(u, f), problem.lookup(v, f)
-        if i == j:
-            raise InputError(f, f"self-loop on {u!r}: put it in linear instead")
-        quad.append((i, j, _number(bias, f)))
-    offset = _number(c.offset, prefix + "offset")
-    p = Pieces(name)
-    if problem.vartype == "SPIN":
-        # s = 2x - 1, exactly as in Problem._assemble
-        for i, h in lin.items():
-            p.linear.append((i, 2.0 * h))
-            offset -= h
-        for i, j, w in quad:
-            p.quadratic.append((i, j, 4.0 * w))
-            p.linear.append((i, -2.0 * w))
-            p.linear.append((j, -2.0 * w))
-            offset += w
-    else:
-        p.linear.extend(lin.items())
-        p.quadratic.extend(quad)
-    p.offset = offset
-    return p
-
-
-def lower_fix(problem: Problem, c: FixVariables, name: str, prefix: str) -> Pieces:
-    idx, bits = _positions(problem, c.values, prefix + "values")
-    if idx.size == 0:
-        raise InputError(prefix + "values", "is empty")
-    return Pieces(name, fixed=list(zip(idx.tolist(), bits.tolist())), hard=True)
-
-
-def lower_linear(problem: Problem, c: LinearConstraint, name: str, prefix: str) -> Pieces:
-    if not hasattr(c.terms, "items") or len(c.terms) == 0:
-        raise InputError(prefix + "terms", "must be a non-empty map of label -> coefficient")
-    acc: dict = {}
-    for lab, coef in c.terms.items():
-        f = f"{prefix}terms[{lab!r}]"
-        i = problem.lookup(lab, f)
-        acc[i] = acc.get(i, 0.0) + _number(coef, f)
-    rhs = _number(c.rhs, prefix + "rhs")
-    idx = np.asarray(list(acc), dtype=np.int64)
-    coef = np.asarray(list(acc.values()), dtype=np.float64)
-    if problem.vartype == "SPIN":  # a*s = 2a*x - a
-        rhs += float(coef.sum())
-        coef = 2.0 * coef
-    lo = rhs if c.sense in ("==", ">=") else -np.inf
-    hi = rhs if c.sense in ("==", "<=") else np.inf
-    return Pieces(name, rows=[RowSpec(name, idx, coef, lo, hi)], hard=True)
-
-
-def lower_forbid(problem: Problem, c: ForbidAssignment, name: str, prefix: str) -> Pieces:
-    idx, bits = _positions(problem, c.assignment, prefix + "assignment")
-    if idx.size == 0:
-        raise InputError(prefix + "assignment", "is empty")
-    # matches = sum_{b=1} x_i + sum_{b=0} (1 - x_i) <= |P| - 1
-    coef = np.where(bits == 1, 1.0, -1.0)
-    hi = float(idx.size - 1) - float((bits == 0).sum())
-    return Pieces(name, rows=[RowSpec(name, idx, coef, -np.inf, hi)], hard=True)
-
-
-_LOWER = {
-    HammingPenalty: lower_hamming,
-    ExtraTerms: lower_extra,
-    FixVariables: lower_fix,
-    LinearConstraint: lower_linear,
-    ForbidAssignment: lower_forbid,
-}
-
-
-def lower(problem: Problem, constraint: Any, name: str, prefix: str) -> Pieces:
-    """Lower one constraint; integer-level constraints provide ``lower(problem, name, prefix)``."""
-    fn = _LOWER.get(type(constraint))
-    if fn is not None:
-        return fn(problem, constraint, name, prefix)
-    if hasattr(constraint, "lower"):
-        return constraint.lower(problem, name, prefix)
-    raise InputError(prefix.rstrip("."), f"unknown constraint type {type(constraint).__name__}")
 
 
 # --------------------------------------------------------------------- compiled
@@ -360,32 +165,40 @@ def _unique_name(base: str, used: set) -> str:
 
 
 def compile_constraints(problem: Problem, constraints: Sequence[Any], *,
-                        field_name: str = "constraints") -> Compiled:
-    """Validate and lower every constraint (and the problem's decision encodings)."""
+                        field_name: str = "constraints",
+                        paths: Sequence[str] | None = None) -> Compiled:
+    """Check every constraint against ``problem``, lower it, and merge (with the validity
+    rows of the problem's decisions).
+
+    Errors name ``paths[k]`` (default ``field_name[k]``) followed by the constraint's
+    attribute, e.g. ``constraints[2].reference['x3']``; a caller whose request nests
+    each constraint under its kind passes ``paths`` such as ``constraints[2].hamming``.
+    """
     if not isinstance(constraints, (list, tuple)):
         raise InputError(field_name, "must be a list of constraints")
+    if paths is None:
+        paths = [f"{field_name}[{k}]" for k in range(len(constraints))]
+    elif len(paths) != len(constraints):
+        raise InputError(field_name, f"has {len(constraints)} constraints for {len(paths)} paths")
     used: set = set()
-    pieces: list = []
-    if problem.decisions:
-        from flipfix.repair.model.encodings import encoding_pieces
-
-        pieces.extend(encoding_pieces(problem))
-        used.update(p.name for p in pieces)
-    for k, c in enumerate(constraints):
-        base = getattr(c, "name", None) or type(c).__name__.lower()
-        pieces.append(lower(problem, c, _unique_name(str(base), used), f"{field_name}[{k}]."))
+    pieces: list = encoding_pieces(problem)
+    used.update(p.name for p in pieces)
+    for c, path in zip(constraints, paths):
+        kind = registry.kind_of(c, path)
+        name = _unique_name(str(getattr(c, "name", None) or kind.name), used)
+        pieces.append(kind.lower(problem, c, name, path))
     n = problem.n
     h = problem.linear.copy()
     offset = problem.offset
-    qi, qj, qv = list(problem.pairs())
     extra_i, extra_j, extra_v = [], [], []
     counts: list = []
     rows: list = []
     fixed = np.full(n, -1, dtype=np.int8)
     conflicts: list = []
     for p in pieces:
-        for i, c in p.linear:
-            h[i] += c
+        if p.linear:  # in order, as a loop of h[i] += c would
+            li, lc = zip(*p.linear)
+            np.add.at(h, np.asarray(li, dtype=np.int64), np.asarray(lc, dtype=np.float64))
         offset += p.offset
         for i, j, c in p.quadratic:
             extra_i.append(i)
@@ -397,12 +210,17 @@ def compile_constraints(problem: Problem, constraints: Sequence[Any], *,
             if fixed[i] >= 0 and fixed[i] != b:
                 conflicts.append((problem.labels[i], p.name))
             fixed[i] = b
-    merged = Problem._assemble(
-        list(problem.labels), h,
-        np.concatenate([qi, np.asarray(extra_i, dtype=np.int64)]),
-        np.concatenate([qj, np.asarray(extra_j, dtype=np.int64)]),
-        np.concatenate([qv, np.asarray(extra_v, dtype=np.float64)]), offset, "BINARY", (),
-    )
+    if extra_i:
+        qi, qj, qv = problem.pairs()
+        merged = Problem._assemble(
+            list(problem.labels), h,
+            np.concatenate([qi, np.asarray(extra_i, dtype=np.int64)]),
+            np.concatenate([qj, np.asarray(extra_j, dtype=np.int64)]),
+            np.concatenate([qv, np.asarray(extra_v, dtype=np.float64)]), offset, "BINARY", (),
+        )
+    else:  # no new couplings: the problem's own (assembled) CSR, the new biases and offset
+        merged = Problem(problem.labels, h, problem.indptr, problem.indices, problem.data,
+                         float(offset), "BINARY", (), problem.index)
     a_indptr = np.zeros(len(rows) + 1, dtype=np.int64)
     a_indptr[1:] = np.cumsum([r.idx.size for r in rows]) if rows else []
     a_indices = (np.concatenate([r.idx for r in rows]) if rows else np.zeros(0)).astype(np.int32)

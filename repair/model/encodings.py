@@ -1,7 +1,7 @@
-"""Integer decisions encoded in bits: validation, decoding, lowering, integer constraints.
+"""Integer decisions encoded in bits: encoding, decoding, reports, model building.
 
-A :class:`flipfix.repair.model.problem.Decision` chooses one of k ``values``; its ``variables``
-are bit labels of the problem. Two encodings:
+A :class:`flipfix.repair.model.problem.Decision` chooses one of k ``values``; its
+``variables`` are bit labels of the problem. Two encodings:
 
 * ``one_hot``: k bits, bit m set means value m; valid iff exactly one bit is set.
 * ``domain_wall``: k-1 bits read as a run of ones followed by zeros; the value
@@ -9,13 +9,11 @@ are bit labels of the problem. Two encodings:
   ``x_i = [m > i]``. Valid iff no 0 is followed by a 1. Moving the value one
   step flips exactly one bit (the bit at the wall's edge).
 
-Validity is a hard constraint of every repair (:func:`encoding_pieces`): one-hot
-is the row ``sum x == 1``, domain wall the chain ``x_{i+1} - x_i <= 0``.
-
-Integer-level late constraints (:class:`ForbidValues`, :class:`ForceValue`,
-:class:`AllowValues`, :class:`DecisionChangePenalty`) lower to
-:class:`flipfix.repair.lowering.compiled.Pieces`, so the solvers need no change. Every count they
-build stays in range for *every* bit string, valid or not.
+A problem checks its decisions when it is built
+(:func:`flipfix.repair.model.problem.validate_decisions`). Validity is a hard
+constraint of every repair (:func:`flipfix.repair.lowering.decisions.encoding_pieces`);
+the integer-level late constraints (``forbid_values``, ``force_value``,
+``allow_values``, ``decision_change``) are kinds of :mod:`flipfix.repair.model.constraints`.
 
 Candidates that break an encoding are accepted as repair input (a broken
 encoding is one more violated hard row, which the repair fixes) and are
@@ -29,101 +27,30 @@ valid strings): :func:`unary_terms` and :func:`pair_terms`.
 
 from __future__ import annotations
 
-import math
-from dataclasses import dataclass
-from typing import Any, Hashable, Mapping, NamedTuple, Sequence
+from typing import Any, NamedTuple, Sequence
 
 import numpy as np
 
-from flipfix.repair.lowering.compiled import CountSpec, Pieces, RowSpec, count_pieces
-from flipfix.repair.model.constraints import SHAPES, _number, shape_table
 from flipfix.repair.errors import InputError
-from flipfix.repair.model.problem import Decision, Problem, check_label
+from flipfix.repair.model.problem import (
+    DOMAIN_WALL, ENCODINGS, ONE_HOT, Decision, Problem, validate_decisions,
+)
 
 __all__ = [
-    "ONE_HOT", "DOMAIN_WALL", "ENCODINGS", "DISTANCES",
-    "validate_decisions", "encoding_pieces", "decision_bits",
+    "ONE_HOT", "DOMAIN_WALL", "ENCODINGS",
+    "validate_decisions", "decision_bits", "find_decision", "value_index",
     "decode_indices", "decode", "check_candidates", "EncodingIssue", "integer_changes",
     "encode", "codewords", "unary_terms", "pair_terms", "validity_penalty",
-    "ForbidValues", "ForceValue", "AllowValues", "DecisionChangePenalty",
-    "parse_decisions", "CONSTRAINT_PARSERS",
 ]
 
-ONE_HOT = "one_hot"
-DOMAIN_WALL = "domain_wall"
-ENCODINGS = (ONE_HOT, DOMAIN_WALL)
-DISTANCES = ("changed", "absolute")
-
-#: Largest distance table an "absolute" change penalty may build.
-MAX_TABLE = 1_000_000
-
-
-# ------------------------------------------------------------------ validation
-def _check_value(value: Any, field_name: str) -> Any:
-    """Decision values are strings or finite numbers (not bool)."""
-    if isinstance(value, bool) or not isinstance(value, (str, int, float, np.integer, np.floating)):
-        raise InputError(field_name, f"value {value!r} must be a string or a number")
-    if isinstance(value, (float, np.floating)):
-        if not math.isfinite(float(value)):
-            raise InputError(field_name, f"value {value!r} is not finite")
-        return int(value) if float(value).is_integer() else float(value)
-    return int(value) if isinstance(value, np.integer) else value
-
-
-def validate_decisions(problem: Problem, *, field_prefix: str = "decisions") -> None:
-    """Check every declared decision of ``problem``; raise :class:`InputError` naming the field.
-
-    Checks: names are unique non-empty strings; the encoding is known; every bit
-    exists and belongs to at most one decision (and appears once in it); one-hot
-    has k bits for k values, domain wall k-1 bits; at least two values, distinct.
-    """
-    names: set = set()
-    owner: dict = {}
-    for k, d in enumerate(problem.decisions):
-        f = f"{field_prefix}[{k}]"
-        if not isinstance(d, Decision):
-            raise InputError(f, f"must be a Decision, got {type(d).__name__}")
-        if not isinstance(d.name, str) or d.name == "":
-            raise InputError(f + ".name", f"must be a non-empty string, got {d.name!r}")
-        if d.name in names:
-            raise InputError(f + ".name", f"duplicate decision name {d.name!r}")
-        names.add(d.name)
-        if d.encoding not in ENCODINGS:
-            raise InputError(f + ".encoding", f"must be one of {ENCODINGS}, got {d.encoding!r}")
-        values = list(d.values)
-        if len(values) < 2:
-            raise InputError(f + ".values", f"needs at least 2 values, got {len(values)}")
-        seen_values: set = set()
-        for m, v in enumerate(values):
-            v = _check_value(v, f"{f}.values[{m}]")
-            key = (type(v) is str, v)
-            if key in seen_values:
-                raise InputError(f"{f}.values[{m}]", f"duplicate value {v!r}")
-            seen_values.add(key)
-        want = len(values) if d.encoding == ONE_HOT else len(values) - 1
-        if len(d.variables) != want:
-            kind = "k" if d.encoding == ONE_HOT else "k-1"
-            raise InputError(
-                f + ".variables",
-                f"{d.encoding} with {len(values)} values needs {want} bits ({kind}), "
-                f"got {len(d.variables)}",
-            )
-        for j, lab in enumerate(d.variables):
-            fj = f"{f}.variables[{j}]"
-            i = problem.lookup(check_label(lab, fj), fj)
-            if i in owner:
-                other = owner[i]
-                where = "twice in this decision" if other == d.name else f"also in decision {other!r}"
-                raise InputError(fj, f"bit {lab!r} is {where}")
-            owner[i] = d.name
-
-
+# ------------------------------------------------------------------- lookups
 def decision_bits(problem: Problem, d: Decision) -> np.ndarray:
     """Positions of the decision's bits in ``problem.labels`` order: int64 (len(variables),)."""
     return np.asarray([problem.index[lab] for lab in d.variables], dtype=np.int64)
 
 
-def _find(problem: Problem, name: Any, field_name: str) -> Decision:
+def find_decision(problem: Problem, name: Any, field_name: str) -> Decision:
+    """The declared decision called ``name``, or an InputError naming ``field_name``."""
     for d in problem.decisions:
         if d.name == name:
             return d
@@ -131,7 +58,8 @@ def _find(problem: Problem, name: Any, field_name: str) -> Decision:
     raise InputError(field_name, f"unknown decision {name!r} (known: {known})")
 
 
-def _index_of(d: Decision, value: Any, field_name: str) -> int:
+def value_index(d: Decision, value: Any, field_name: str) -> int:
+    """Position of ``value`` in ``d.values`` (strings match strings only), or an InputError."""
     if isinstance(value, bool):
         raise InputError(field_name, f"{value!r} is not a value of decision {d.name!r}")
     for m, v in enumerate(d.values):
@@ -141,206 +69,6 @@ def _index_of(d: Decision, value: Any, field_name: str) -> int:
         elif v == value:
             return m
     raise InputError(field_name, f"{value!r} is not a value of decision {d.name!r} {list(d.values)}")
-
-
-# --------------------------------------------------------------------- lowering
-def encoding_pieces(problem: Problem) -> list[Pieces]:
-    """One hard :class:`Pieces` per decision keeping its encoding valid.
-
-    one-hot: ``sum_m x_m == 1``; domain wall: ``x_{i+1} - x_i <= 0`` for each
-    neighbouring pair (k = 2 has one free bit and no row).
-    """
-    out = []
-    for d in problem.decisions:
-        idx = decision_bits(problem, d)
-        name = f"encoding[{d.name}]"
-        if d.encoding == ONE_HOT:
-            rows = [RowSpec(name, idx, np.ones(idx.size), 1.0, 1.0)]
-        else:
-            rows = [RowSpec(f"{name}[{i}]", idx[[i + 1, i]], np.asarray([1.0, -1.0]), -np.inf, 0.0)
-                    for i in range(idx.size - 1)]
-        out.append(Pieces(name, rows=rows, hard=True))
-    return out
-
-
-def _is_value_lits(d: Decision, idx: np.ndarray, m: int) -> list:
-    """Literals whose AND is ``[value index == m]`` on valid strings."""
-    if d.encoding == ONE_HOT:
-        return [(int(idx[m]), 1)]
-    k = len(d.values)
-    if m == 0:
-        return [(int(idx[0]), 0)]
-    if m == k - 1:
-        return [(int(idx[k - 2]), 1)]
-    return [(int(idx[m - 1]), 1), (int(idx[m]), 0)]
-
-
-def _forbid_pieces(problem: Problem, d: Decision, forbidden: Sequence[int], name: str) -> Pieces:
-    """Hard: the decision takes none of the value indices ``forbidden``."""
-    idx = decision_bits(problem, d)
-    p = Pieces(name, hard=True)
-    for m in sorted(set(forbidden)):
-        lits = _is_value_lits(d, idx, m)
-        if len(lits) == 1:
-            (i, b), = lits
-            p.fixed.append((i, 1 - b))
-        else:
-            # not (x_{m-1} = 1 and x_m = 0):  x_{m-1} - x_m <= 0
-            (i, _), (j, _) = lits
-            p.rows.append(RowSpec(f"{name}[{d.values[m]!r}]", np.asarray([i, j], dtype=np.int64),
-                                  np.asarray([1.0, -1.0]), -np.inf, 0.0))
-    return p
-
-
-def _values_list(values: Any, field_name: str) -> list:
-    if isinstance(values, (str, bytes)) or not isinstance(values, Sequence):
-        raise InputError(field_name, "must be a list of values")
-    if len(values) == 0:
-        raise InputError(field_name, "is empty")
-    return list(values)
-
-
-def _decision_values(problem: Problem, decision: Any, values: Any, prefix: str):
-    """(the named decision, the value indices of ``values``), errors naming the field."""
-    d = _find(problem, decision, prefix + "decision")
-    vals = _values_list(values, prefix + "values")
-    return d, [_index_of(d, v, f"{prefix}values[{k}]") for k, v in enumerate(vals)]
-
-
-@dataclass(frozen=True)
-class ForbidValues:
-    """Hard: decision ``decision`` takes none of ``values`` ("machine M is down in slots 3-4")."""
-
-    decision: str
-    values: Sequence[Any]
-    name: str = "forbid_values"
-
-    def lower(self, problem: Problem, name: str, prefix: str) -> Pieces:
-        d, ms = _decision_values(problem, self.decision, self.values, prefix)
-        return _forbid_pieces(problem, d, ms, name)
-
-
-@dataclass(frozen=True)
-class AllowValues:
-    """Hard: decision ``decision`` takes one of ``values``."""
-
-    decision: str
-    values: Sequence[Any]
-    name: str = "allow_values"
-
-    def lower(self, problem: Problem, name: str, prefix: str) -> Pieces:
-        d, keep = _decision_values(problem, self.decision, self.values, prefix)
-        return _forbid_pieces(problem, d, [m for m in range(len(d.values)) if m not in keep], name)
-
-
-@dataclass(frozen=True)
-class ForceValue:
-    """Hard: decision ``decision`` takes ``value`` (every bit of the decision is pinned)."""
-
-    decision: str
-    value: Any
-    name: str = "force_value"
-
-    def lower(self, problem: Problem, name: str, prefix: str) -> Pieces:
-        d = _find(problem, self.decision, prefix + "decision")
-        m = _index_of(d, self.value, prefix + "value")
-        bits = encode(d, m)
-        return Pieces(name, fixed=list(zip(decision_bits(problem, d).tolist(), bits.tolist())),
-                      hard=True)
-
-
-def _integral(v: Any) -> int | None:
-    if isinstance(v, str) or isinstance(v, bool):
-        return None
-    f = float(v)
-    return int(f) if f.is_integer() else None
-
-
-@dataclass(frozen=True)
-class DecisionChangePenalty:
-    """Soft: ``weight * shape(d)``, d = distance of the decisions from ``reference``.
-
-    ``reference`` maps decision names to values (only those decisions count).
-    ``distance``: ``"changed"`` = number of decisions whose value differs;
-    ``"absolute"`` = sum of ``|value - reference value|`` (integer values only).
-    ``shape`` as for :class:`flipfix.repair.model.constraints.HammingPenalty`: linear,
-    quadratic, threshold (``threshold`` d0) or table (``table[d]``).
-
-    Lowered as a count ``d = const + sum coef * AND(literals)`` that equals the
-    distance on valid strings and stays within ``0..d_max`` on every string;
-    a linear shape is merged into the QUBO.
-    """
-
-    reference: Mapping[str, Any]
-    weight: float = 1.0
-    shape: str = "linear"
-    threshold: float = 0.0
-    table: Sequence[float] | None = None
-    distance: str = "changed"
-    name: str = "decision_change"
-
-    def __post_init__(self):
-        w = _number(self.weight, "weight")
-        if w < 0:
-            raise InputError("weight", f"must be >= 0, got {self.weight!r}")
-        if self.shape not in SHAPES:
-            raise InputError("shape", f"must be one of {SHAPES}, got {self.shape!r}")
-        _number(self.threshold, "threshold")
-        if self.distance not in DISTANCES:
-            raise InputError("distance", f"must be one of {DISTANCES}, got {self.distance!r}")
-
-    def lower(self, problem: Problem, name: str, prefix: str) -> Pieces:
-        ref = self.reference
-        if not hasattr(ref, "items") or len(ref) == 0:
-            raise InputError(prefix + "reference", "must be a non-empty map of decision -> value")
-        const, terms, d_max = 0, [], 0
-        for dname, value in ref.items():
-            f = f"{prefix}reference[{dname!r}]"
-            d = _find(problem, dname, f)
-            r = _index_of(d, value, f)
-            idx = decision_bits(problem, d)
-            if self.distance == "changed":
-                c, t = _changed_terms(d, idx, r)
-                d_max += 1
-            else:
-                c, t, top = _absolute_terms(d, idx, r, f)
-                d_max += top
-            const += c
-            terms.extend(t)
-        if d_max > MAX_TABLE:
-            raise InputError(prefix + "reference", f"distance can reach {d_max} (limit {MAX_TABLE})")
-        table = shape_table(self.shape, self.weight, d_max, threshold=self.threshold,
-                            table=self.table, field_name=prefix + "shape")
-        return count_pieces(name, CountSpec(name, table, const, terms))
-
-
-def _changed_terms(d: Decision, idx: np.ndarray, r: int) -> tuple[int, list]:
-    """[value != r] as const + terms; in {0, 1} for every bit string."""
-    lits = _is_value_lits(d, idx, r)
-    if len(lits) == 1:
-        (i, b), = lits
-        return 0, [(1, [(i, 1 - b)])]
-    # 1 - AND(x_{r-1} = 1, x_r = 0): the wall is not at r
-    return 1, [(-1, lits)]
-
-
-def _absolute_terms(d: Decision, idx: np.ndarray, r: int, f: str) -> tuple[int, list, int]:
-    """|value - value_r| as const + terms with non-negative coefficients, and its largest value."""
-    ints = [_integral(v) for v in d.values]
-    if any(v is None for v in ints):
-        raise InputError(f, f"distance 'absolute' needs integer values; decision {d.name!r} has "
-                            f"{list(d.values)}")
-    cost = [abs(v - ints[r]) for v in ints]
-    k = len(ints)
-    steps = np.diff(ints)
-    if d.encoding == DOMAIN_WALL and (np.all(steps > 0) or np.all(steps < 0)):
-        # monotone values: the distance is a weighted Hamming distance to the
-        # reference wall string; each bit i carries the step |v_{i+1} - v_i|
-        w = np.abs(steps)
-        terms = [(int(w[i]), [(int(idx[i]), 0 if i < r else 1)]) for i in range(k - 1)]
-        return 0, terms, int(w.sum())
-    terms = [(int(cost[m]), _is_value_lits(d, idx, m)) for m in range(k) if cost[m] > 0]
-    return 0, terms, int(sum(cost))
 
 
 # ---------------------------------------------------------------- decode/report
@@ -536,104 +264,3 @@ def validity_penalty(d: Decision, strength: float = 1.0) -> tuple[dict, dict, fl
         lin[v[i + 1]] = lin.get(v[i + 1], 0.0) + s
         quad[(v[i], v[i + 1])] = -s
     return lin, quad, 0.0
-
-
-# ----------------------------------------------------------------------- JSON
-def _obj(obj: Any, field_name: str, allowed: set, required: set) -> Mapping:
-    if not isinstance(obj, Mapping):
-        raise InputError(field_name, f"must be an object, got {type(obj).__name__}")
-    for key in obj:
-        if key not in allowed:
-            raise InputError(f"{field_name}.{key}", f"unknown key (allowed: {sorted(allowed)})")
-    for key in sorted(required):
-        if key not in obj:
-            raise InputError(f"{field_name}.{key}", "is missing")
-    return obj
-
-
-def _opt_name(obj: Mapping, field_name: str, default: str) -> str:
-    name = obj.get("name", default)
-    if not isinstance(name, str) or name == "":
-        raise InputError(field_name + ".name", f"must be a non-empty string, got {name!r}")
-    return name
-
-
-def parse_decisions(obj: Any, field: str = "decisions") -> list[Decision]:
-    """The problem document's ``"decisions"`` list -> [Decision].
-
-    Each item: ``{"name": str, "encoding": "one_hot" | "domain_wall",
-    "variables": [label, ...], "values": [value, ...]}``. Shapes and bit
-    ownership are checked against the problem by :func:`validate_decisions`.
-    """
-    if obj is None:
-        return []
-    if not isinstance(obj, list):
-        raise InputError(field, "must be a list of decisions")
-    out = []
-    for k, item in enumerate(obj):
-        f = f"{field}[{k}]"
-        item = _obj(item, f, {"name", "encoding", "variables", "values"},
-                    {"name", "encoding", "variables", "values"})
-        if not isinstance(item["name"], str) or item["name"] == "":
-            raise InputError(f + ".name", f"must be a non-empty string, got {item['name']!r}")
-        if item["encoding"] not in ENCODINGS:
-            raise InputError(f + ".encoding", f"must be one of {ENCODINGS}, got {item['encoding']!r}")
-        for key in ("variables", "values"):
-            if not isinstance(item[key], list):
-                raise InputError(f"{f}.{key}", "must be a list")
-        variables = tuple(check_label(lab, f"{f}.variables[{j}]") for j, lab in enumerate(item["variables"]))
-        values = tuple(_check_value(v, f"{f}.values[{j}]") for j, v in enumerate(item["values"]))
-        out.append(Decision(item["name"], item["encoding"], variables, values))
-    return out
-
-
-_KIND_KEYS = {"type", "kind", "name"}
-
-
-def _parse_forbid(obj: Any, field: str) -> ForbidValues:
-    o = _obj(obj, field, _KIND_KEYS | {"decision", "values"}, {"decision", "values"})
-    return ForbidValues(o["decision"], _values_list(o["values"], field + ".values"),
-                        _opt_name(o, field, "forbid_values"))
-
-
-def _parse_allow(obj: Any, field: str) -> AllowValues:
-    o = _obj(obj, field, _KIND_KEYS | {"decision", "values"}, {"decision", "values"})
-    return AllowValues(o["decision"], _values_list(o["values"], field + ".values"),
-                       _opt_name(o, field, "allow_values"))
-
-
-def _parse_force(obj: Any, field: str) -> ForceValue:
-    o = _obj(obj, field, _KIND_KEYS | {"decision", "value"}, {"decision", "value"})
-    return ForceValue(o["decision"], o["value"], _opt_name(o, field, "force_value"))
-
-
-def _parse_change(obj: Any, field: str) -> DecisionChangePenalty:
-    keys = {"reference", "weight", "shape", "threshold", "table", "distance"}
-    o = _obj(obj, field, _KIND_KEYS | keys, {"reference"})
-    if not isinstance(o["reference"], Mapping) or len(o["reference"]) == 0:
-        raise InputError(field + ".reference", "must be a non-empty object of decision -> value")
-    table = o.get("table")
-    if table is not None and not isinstance(table, list):
-        raise InputError(field + ".table", "must be a list of numbers")
-    kwargs = {}
-    for key in ("weight", "threshold"):
-        if key in o:
-            kwargs[key] = _number(o[key], f"{field}.{key}")
-    try:
-        return DecisionChangePenalty(
-            dict(o["reference"]), shape=o.get("shape", "linear"),
-            table=None if table is None else [_number(v, f"{field}.table[{j}]") for j, v in enumerate(table)],
-            distance=o.get("distance", "changed"), name=_opt_name(o, field, "decision_change"),
-            **kwargs,
-        )
-    except InputError as e:  # __post_init__ names the bare key
-        raise InputError(f"{field}.{e.field}", e.message) from None
-
-
-#: JSON constraint kinds of integer decisions: kind -> fn(obj: dict, field: str) -> constraint.
-CONSTRAINT_PARSERS = {
-    "forbid_values": _parse_forbid,
-    "force_value": _parse_force,
-    "allow_values": _parse_allow,
-    "decision_change": _parse_change,
-}

@@ -20,14 +20,17 @@ from typing import Any, Hashable, Iterable, Mapping, Sequence
 
 import numpy as np
 
-from flipfix.repair.kernels.energy import csr_energies, csr_local_fields
 from flipfix.repair.errors import InputError
+from flipfix.repair.kernels.energy import csr_energies, csr_local_fields
+from flipfix.repair.model import vartypes
+from flipfix.repair.model.vartypes import BINARY, SPIN, VARTYPES
 
-__all__ = ["Problem", "Decision", "BINARY", "SPIN", "check_label", "finite"]
+__all__ = ["Problem", "Decision", "BINARY", "SPIN", "VARTYPES", "ONE_HOT", "DOMAIN_WALL",
+           "ENCODINGS", "check_label", "check_value", "finite", "validate_decisions"]
 
-BINARY = "BINARY"
-SPIN = "SPIN"
-VARTYPES = (BINARY, SPIN)
+ONE_HOT = "one_hot"
+DOMAIN_WALL = "domain_wall"
+ENCODINGS = (ONE_HOT, DOMAIN_WALL)
 
 
 def check_label(label: Any, field_name: str) -> Hashable:
@@ -48,6 +51,17 @@ def finite(value: Any, field_name: str) -> float:
     if not math.isfinite(v):
         raise InputError(field_name, f"{value!r} is not finite")
     return v
+
+
+def check_value(value: Any, field_name: str) -> Any:
+    """A decision value: a string or a finite number (not bool); integral floats become int."""
+    if isinstance(value, bool) or not isinstance(value, (str, int, float, np.integer, np.floating)):
+        raise InputError(field_name, f"value {value!r} must be a string or a number")
+    if isinstance(value, (float, np.floating)):
+        if not math.isfinite(float(value)):
+            raise InputError(field_name, f"value {value!r} is not finite")
+        return int(value) if float(value).is_integer() else float(value)
+    return int(value) if isinstance(value, np.integer) else value
 
 
 @dataclass(frozen=True)
@@ -225,13 +239,10 @@ class Problem:
         """Convert to 0/1 form if needed, symmetrise, merge duplicates, build CSR."""
         n = len(order)
         if vartype == SPIN:
-            # s = 2x - 1:  h s = 2h x - h ;  J s_i s_j = 4J x_i x_j - 2J x_i - 2J x_j + J
-            h_b = 2.0 * h
-            offset = offset - float(h.sum()) + float(vals.sum())
-            np.add.at(h_b, rows, -2.0 * vals)
-            np.add.at(h_b, cols, -2.0 * vals)
-            vals = 4.0 * vals
-            h = h_b
+            idx, lin, vals, offset = vartypes.change_vartype(
+                np.arange(n), h, rows, cols, vals, offset, source=SPIN, target=BINARY)
+            h = np.zeros(n, dtype=np.float64)
+            np.add.at(h, idx, lin)
         a = np.minimum(rows, cols)
         b = np.maximum(rows, cols)
         key = a * max(n, 1) + b
@@ -255,8 +266,6 @@ class Problem:
             index={lab: i for i, lab in enumerate(order)},
         )
         if decisions:
-            from flipfix.repair.model.encodings import validate_decisions  # local: encodings imports model
-
             validate_decisions(prob, field_prefix=p + "decisions")
         return prob
 
@@ -354,8 +363,7 @@ class Problem:
     # ------------------------------------------------------------- vartype
     def to_caller(self, X: np.ndarray) -> np.ndarray:
         """0/1 values -> the caller's vartype values (int8, same shape)."""
-        X = np.asarray(X, dtype=np.int8)
-        return (2 * X - 1).astype(np.int8) if self.vartype == SPIN else X.copy()
+        return vartypes.to_caller(X, self.vartype)
 
     def from_caller(self, values: np.ndarray, field_name: str = "values") -> np.ndarray:
         """Caller's vartype values -> 0/1 int8; values outside the vartype are an error."""
@@ -366,9 +374,7 @@ class Problem:
             bad = arr[~ok].ravel()[0]
             bad = bad.item() if hasattr(bad, "item") else bad
             raise InputError(field_name, f"value {bad!r} is not {self.vartype} (allowed {(lo, hi)})")
-        if self.vartype == SPIN:
-            return (arr == 1).astype(np.int8)
-        return arr.astype(np.int8)
+        return vartypes.to_bits(arr, self.vartype)
 
     def value_to_bit(self, value: Any, field_name: str) -> int:
         """One caller-vartype value -> 0/1, with a field-named error."""
@@ -377,7 +383,7 @@ class Problem:
             value = int(value)
         if not isinstance(value, (int, np.integer, float)) or value not in allowed:
             raise InputError(field_name, f"value {value!r} is not {self.vartype} (allowed {allowed})")
-        return int((int(value) + 1) // 2) if self.vartype == SPIN else int(value)
+        return vartypes.value_to_bit(value, self.vartype)
 
     def lookup(self, label: Any, field_name: str) -> int:
         """Label -> position, with a field-named error for unknown labels."""
@@ -399,3 +405,51 @@ class Problem:
             self.offset, dimod.BINARY,
         )
         return bqm.change_vartype(dimod.SPIN, inplace=False) if self.vartype == SPIN else bqm
+
+
+def validate_decisions(problem: Problem, *, field_prefix: str = "decisions") -> None:
+    """Check every declared decision of ``problem``; raise :class:`InputError` naming the field.
+
+    Checks: names are unique non-empty strings; the encoding is known; every bit
+    exists and belongs to at most one decision (and appears once in it); one-hot
+    has k bits for k values, domain wall k-1 bits; at least two values, distinct.
+    """
+    names: set = set()
+    owner: dict = {}
+    for k, d in enumerate(problem.decisions):
+        f = f"{field_prefix}[{k}]"
+        if not isinstance(d, Decision):
+            raise InputError(f, f"must be a Decision, got {type(d).__name__}")
+        if not isinstance(d.name, str) or d.name == "":
+            raise InputError(f + ".name", f"must be a non-empty string, got {d.name!r}")
+        if d.name in names:
+            raise InputError(f + ".name", f"duplicate decision name {d.name!r}")
+        names.add(d.name)
+        if d.encoding not in ENCODINGS:
+            raise InputError(f + ".encoding", f"must be one of {ENCODINGS}, got {d.encoding!r}")
+        values = list(d.values)
+        if len(values) < 2:
+            raise InputError(f + ".values", f"needs at least 2 values, got {len(values)}")
+        seen_values: set = set()
+        for m, v in enumerate(values):
+            v = check_value(v, f"{f}.values[{m}]")
+            key = (type(v) is str, v)
+            if key in seen_values:
+                raise InputError(f"{f}.values[{m}]", f"duplicate value {v!r}")
+            seen_values.add(key)
+        want = len(values) if d.encoding == ONE_HOT else len(values) - 1
+        if len(d.variables) != want:
+            kind = "k" if d.encoding == ONE_HOT else "k-1"
+            raise InputError(
+                f + ".variables",
+                f"{d.encoding} with {len(values)} values needs {want} bits ({kind}), "
+                f"got {len(d.variables)}",
+            )
+        for j, lab in enumerate(d.variables):
+            fj = f"{f}.variables[{j}]"
+            i = problem.lookup(check_label(lab, fj), fj)
+            if i in owner:
+                other = owner[i]
+                where = "twice in this decision" if other == d.name else f"also in decision {other!r}"
+                raise InputError(fj, f"bit {lab!r} is {where}")
+            owner[i] = d.name

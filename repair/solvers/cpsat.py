@@ -36,6 +36,7 @@ from dataclasses import dataclass
 import numpy as np
 from ortools.sat.python import cp_model
 
+from flipfix.repair.cancel import CancelToken, as_token
 from flipfix.repair.lowering.compiled import Compiled
 
 __all__ = ["CpsatOutput", "LateModel", "solve_cpsat", "integer_scale"]
@@ -189,7 +190,7 @@ class LateModel:
     def solve(self, *, hint: np.ndarray | None = None, center: np.ndarray | None = None,
               radius: int | None = None, flip_price: float = 0.0, upper: float | None = None,
               time_limit: float = 1.0, workers: int = 1, seed: int = 0,
-              cancel: threading.Event | None = None) -> CpsatOutput:
+              cancel: threading.Event | CancelToken | None = None) -> CpsatOutput:
         """One search on a clone of the model; see :func:`solve_cpsat` for the options."""
         t0 = time.perf_counter()
         m = self.model.clone()
@@ -215,7 +216,7 @@ class LateModel:
     def fewest_flips(self, *, center: np.ndarray, upper: float, hint: np.ndarray | None = None,
                      radius: int | None = None, flip_price: float = 0.0, slack: float = 1e-9,
                      time_limit: float = 1.0, workers: int = 1, seed: int = 0,
-                     cancel: threading.Event | None = None) -> CpsatOutput:
+                     cancel: threading.Event | CancelToken | None = None) -> CpsatOutput:
         """Fewest flips from ``center`` (int8 (n,)) among assignments costing at most ``upper``.
 
         The cost is the objective :meth:`solve` minimises with the same ``center`` and
@@ -315,26 +316,20 @@ class LateModel:
     def _run(self, m, *, t0, time_limit, workers, seed, cancel):
         """Solve ``m`` within what is left of ``time_limit`` since ``t0``; stop on ``cancel``.
 
+        ``cancel`` (None, a ``threading.Event`` or a :class:`CancelToken`) stops the search
+        at once: the token calls :func:`_stopper` of the solver while the search runs, so
+        a cancel set at any moment before or during the search stops it.
+
         Returns (solver, status name, the bits int8 (n,) of the solution found or None)."""
+        token = as_token(cancel)
         solver = cp_model.CpSolver()
-        solver.parameters.max_time_in_seconds = max(0.01, float(time_limit) - (time.perf_counter() - t0))
+        limit = max(0.01, float(time_limit) - (time.perf_counter() - t0))
+        solver.parameters.max_time_in_seconds = limit
         solver.parameters.num_workers = max(1, int(workers))
         solver.parameters.random_seed = int(seed)
         solver.parameters.log_search_progress = False
-        finished = threading.Event()
-        watcher = None
-        if cancel is not None:
-            def watch():
-                while not finished.wait(0.02):
-                    if cancel.is_set():
-                        solver.stop_search()
-                        return
-            watcher = threading.Thread(target=watch, daemon=True)
-            watcher.start()
-        code = solver.solve(m)
-        finished.set()
-        if watcher is not None:
-            watcher.join()
+        with token.subscribed(_stopper(solver), timeout=limit + 1.0):
+            code = solver.solve(m)
         xs = None
         if code in (cp_model.OPTIMAL, cp_model.FEASIBLE):
             xs = np.asarray([solver.value(v) for v in self.x], dtype=np.int8)
@@ -467,11 +462,25 @@ def _decision_terms(compiled, h, pi, pj, pv):
     return h, pi[keep], pj[keep], pv[keep], _Decisions(problem, codes, bits, unary, pair_cost)
 
 
+def _stopper(solver: cp_model.CpSolver):
+    """A callback that stops ``solver``'s search, whenever it comes.
+
+    ``solve`` makes the search, then copies ``solver.parameters`` into it, then runs it;
+    ``stop_search`` only reaches a search that exists. So the callback first sets the time
+    limit to 0 (a search not yet made starts stopped), then calls ``stop_search`` (a search
+    made stops now, and stays stopped if it has not started running).
+    """
+    def stop() -> None:
+        solver.parameters.max_time_in_seconds = 0.0
+        solver.stop_search()
+    return stop
+
+
 def solve_cpsat(
     compiled: "Compiled | LateModel", *, hint: np.ndarray | None = None,
     center: np.ndarray | None = None, radius: int | None = None, flip_price: float = 0.0,
     upper: float | None = None, time_limit: float = 1.0, workers: int = 1, seed: int = 0,
-    cancel: threading.Event | None = None,
+    cancel: threading.Event | CancelToken | None = None,
 ) -> CpsatOutput:
     """Solve the compiled late problem (or a prebuilt :class:`LateModel`) with CP-SAT.
 

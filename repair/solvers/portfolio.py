@@ -17,25 +17,43 @@ Portfolio, within a budget of T seconds:
    the hinted basin, so this search runs without one; if it proves that nothing
    better exists, the answer is optimal.
 
+Between 1 and 2, when CP-SAT can be built in a small part of what is left, a short
+unhinted whole-problem search (stage 4 run early, ``PROOF_SHARE`` of what is left) tries to
+prove the best answer optimal, or the hard constraints infeasible; with a proof the search
+stops there (``stats["stopped_early"]``) instead of spending the rest of the budget.
+
 The last ``POLISH_SHARE`` of the budget (greedy and portfolio) moves the best answers back
 toward their candidates: greedy descent with a tiny price per flip (:func:`_polish`), then,
 in the portfolio when CP-SAT is affordable, its exact counterpart (:func:`_fewest_flips`):
 CP-SAT's fewest flips from the reported candidate among assignments no costlier than the
-best answer.
+best answer. When that CP-SAT step cannot be afforded in the tail, the tail is only
+``POLISH_ALONE`` of the budget (the greedy polish) and the search keeps the rest.
+
+Every stage works to one ``deadline`` (a ``time.perf_counter()`` value) that the caller sets
+so that the reply fits its budget (:func:`flipfix.repair.api.repair` keeps back what building
+the result will take). CP-SAT's set-up costs (building the model, and per solve cloning,
+hinting, presolve and reading the answer back) are predicted from the model's size at the
+rate last measured in this process (:class:`CpsatCosts`), so that a stage starts only when it
+fits and asks CP-SAT for what is left after them. Every repaired assignment is scored once,
+from its candidate's state (:class:`flipfix.repair.kernels.scores.Scorer`), and keeps its
+scores (:class:`Attempt`).
 """
 
 from __future__ import annotations
 
 import time
+from collections import deque
 from dataclasses import dataclass, field
 
 import numpy as np
 
 from flipfix.repair.lowering.compiled import Compiled
 from flipfix.repair.errors import InputError
+from flipfix.repair.kernels.scores import Scorer, distances
 from flipfix.repair.solvers.greedy import objective_tol, greedy_repair
 
-__all__ = ["Attempt", "PlanOutcome", "kick_masks", "run_plan"]
+__all__ = ["Attempt", "PlanOutcome", "CpsatCosts", "CPSAT_COSTS", "kick_masks", "run_plan",
+           "attempt_scores"]
 
 KICK_BATCH = 32
 #: share of the budget kept at the end for moving the best answers back toward their candidates
@@ -44,11 +62,19 @@ POLISH_SHARE = 0.05
 #: (it gets the rest). Measured on the quick repair benchmark: the polish takes 1-19 ms; the
 #: CP-SAT step needs 20-200 ms there to return its hint and did not find fewer flips in 3 s.
 POLISH_GREEDY = 0.5
+#: the tail when only the greedy polish can run in it
+POLISH_ALONE = 0.02
 POLISH_TOP = 8
 #: shortest time worth a fewest-flips CP-SAT search (a clone and a hinted solve)
 FEWEST_MIN_SECONDS = 0.01
 #: relative cost slack of "no costlier" in the polish steps
 COST_SLACK = 1e-9
+#: share of what is left after greedy that the early proof attempt may take; it runs when
+#: CP-SAT's model and set-up fit in ``PROOF_SETUP`` of what is left
+PROOF_SHARE = 0.1
+PROOF_SETUP = 0.05
+#: shortest CP-SAT search worth starting after its set-up
+CPSAT_MIN_SECONDS = 0.02
 
 
 @dataclass(frozen=True)
@@ -87,12 +113,18 @@ DEFAULT_MIX = Mix()
 
 @dataclass
 class Attempt:
-    """One repaired assignment: x int8 (n,), from candidate ``k``, by ``method``."""
+    """One repaired assignment: x int8 (n,), from candidate ``k``, by ``method``.
+
+    ``cost``, ``violation`` (late problem) and ``flips`` (Hamming distance from candidate
+    ``k``) are filled once, by whoever has them or by :func:`attempt_scores`."""
 
     k: int
     x: np.ndarray
     method: str
     seconds: float
+    cost: float | None = None
+    violation: float | None = None
+    flips: int | None = None
 
 
 @dataclass
@@ -105,10 +137,18 @@ class PlanOutcome:
     stats: dict = field(default_factory=dict)
 
 
-def _objective(compiled: Compiled, X: np.ndarray, X0: np.ndarray, price: float):
-    ev = compiled.evaluate(X)
-    flips = (X != X0).sum(axis=1)
-    return ev, ev.cost + price * flips, flips
+def attempt_scores(scorer: Scorer, attempts: list):
+    """(ks int64, cost float64, violation float64, flips int64), each (len(attempts),), of
+    every attempt; those not scored yet are scored in one batch (and keep their scores)."""
+    todo = [a for a in attempts if a.cost is None]
+    if todo:
+        cost, viol, flips = scorer.near(np.vstack([a.x for a in todo]), [a.k for a in todo])
+        for a, c, v, f in zip(todo, cost.tolist(), viol.tolist(), flips.tolist()):
+            a.cost, a.violation, a.flips = c, v, f
+    return (np.fromiter((a.k for a in attempts), np.int64, len(attempts)),
+            np.fromiter((a.cost for a in attempts), np.float64, len(attempts)),
+            np.fromiter((a.violation for a in attempts), np.float64, len(attempts)),
+            np.fromiter((a.flips for a in attempts), np.int64, len(attempts)))
 
 
 def _ranked(feasible: np.ndarray, objective: np.ndarray) -> np.ndarray:
@@ -116,59 +156,150 @@ def _ranked(feasible: np.ndarray, objective: np.ndarray) -> np.ndarray:
     return np.lexsort((objective, ~feasible))
 
 
+def _items(compiled: Compiled) -> int:
+    """Size of the CP-SAT model: products, count terms, row entries and bits."""
+    return (compiled.data.size // 2 + sum(len(c.terms) for c in compiled.counts)
+            + compiled.a_data.size + compiled.n)
+
+
+class CpsatCosts:
+    """CP-SAT's fixed costs, as measured in this process.
+
+    ``build``: seconds per model item to build the model
+    (:class:`flipfix.repair.solvers.cpsat.LateModel`); it follows each real build (the
+    larger of the measurement and half the previous estimate, so one quick build does not
+    halve the margin). Prior: 55-70 us measured at 1,000 to 10,000 variables on the 2-vCPU
+    development machine under load (15 us when it was quiet).
+    ``setup``: seconds per model item one search spends on our side beyond CP-SAT's time
+    limit (cloning, hinting, reading the answer back): 20-30 us measured there.
+    ``latency``: how far CP-SAT itself may run past its time limit, by worker count (one,
+    or more): the largest of the last ``LATENCY_WINDOW`` searches that ran to their limit,
+    and never less than the floor. With two workers about one unhinted search in four
+    overran by 0.04-0.23 s whatever the model's size (bqp100-1), while many short hinted
+    searches in a row did not (so a window alone forgets it); one worker: at most 0.01 s.
+    Floors: 0.01 s (one worker) and 0.15 s (more).
+    """
+
+    LATENCY_WINDOW = 8
+
+    def __init__(self, build: float = 70e-6, setup: float = 30e-6,
+                 latency: tuple = (0.01, 0.15)):
+        self.build = build
+        self.setup = setup
+        self.floor = {True: latency[0], False: latency[1]}
+        self.latencies = {one: deque(maxlen=self.LATENCY_WINDOW) for one in (True, False)}
+
+    def latency(self, workers: int) -> float:
+        one = workers <= 1
+        return max([self.floor[one], *self.latencies[one]])
+
+    def build_seconds(self, compiled: Compiled) -> float:
+        return self.build * _items(compiled)
+
+    def setup_seconds(self, compiled: Compiled, workers: int = 1) -> float:
+        """Predicted seconds a search runs beyond the time limit CP-SAT is given."""
+        return self.latency(workers) + self.setup * _items(compiled)
+
+    def built(self, compiled: Compiled, seconds: float) -> None:
+        """A build of ``compiled`` took ``seconds``."""
+        self.build = max(seconds / max(1, _items(compiled)), 0.5 * self.build)
+
+    def overran(self, compiled: Compiled, workers: int, seconds: float) -> None:
+        """A search that ran to its limit took ``seconds`` more than the limit CP-SAT had."""
+        self.latencies[workers <= 1].append(max(0.0, seconds - self.setup * _items(compiled)))
+
+
+#: the process-wide estimates (:class:`CpsatCosts`)
+CPSAT_COSTS = CpsatCosts()
+
+
 def build_cost(compiled: Compiled) -> float:
-    """Rough seconds to build the CP-SAT model (measured here: ~25 us per product or term)."""
-    items = compiled.data.size // 2 + sum(len(c.terms) for c in compiled.counts)
-    return 25e-6 * (items + compiled.a_data.size + compiled.n)
+    """Predicted seconds to build the CP-SAT model (:data:`CPSAT_COSTS`)."""
+    return CPSAT_COSTS.build_seconds(compiled)
 
 
-def _cpsat_affordable(compiled: Compiled, seconds: float) -> bool:
-    return build_cost(compiled) + 0.05 < seconds
+def _cpsat_affordable(compiled: Compiled, seconds: float, built: bool = False,
+                      workers: int = 1) -> bool:
+    """Whether a CP-SAT search on ``workers`` (built first unless ``built``) fits in ``seconds``."""
+    need = CPSAT_COSTS.setup_seconds(compiled, workers) + CPSAT_MIN_SECONDS
+    return need + (0.0 if built else build_cost(compiled)) < seconds
 
 
 class _LazyCpsat:
-    """The CP-SAT model, built on first use and only when the budget can pay for it.
+    """The CP-SAT model, built on first use and only when the budget can pay for it;
+    every search on ``workers`` threads.
 
     (Imported late: ortools brings protobuf, which plain greedy runs avoid.)
     """
 
-    def __init__(self, compiled: Compiled, stats: dict):
+    def __init__(self, compiled: Compiled, stats: dict, workers: int = 1):
         self.compiled = compiled
         self.model = None
         self.stats = stats
+        self.workers = workers
+
+    def affordable(self, seconds: float) -> bool:
+        """Whether a search (and the build, if not done yet) fits in ``seconds``."""
+        return _cpsat_affordable(self.compiled, seconds, built=self.model is not None,
+                                 workers=self.workers)
 
     def ready(self, deadline: float) -> bool:
+        """Built (or now built), and a search still fits before ``deadline``."""
         if self.model is None:
             from flipfix.repair.solvers.cpsat import LateModel
 
-            if time.perf_counter() + build_cost(self.compiled) >= deadline:
+            if not self.affordable(deadline - time.perf_counter()):
                 self.stats["cpsat_skipped"] = "budget too short to build the CP-SAT model"
                 return False
             self.model = LateModel(self.compiled)
+            CPSAT_COSTS.built(self.compiled, self.model.build_seconds)
             self.stats["cpsat_build_seconds"] = round(self.model.build_seconds, 4)
-        return time.perf_counter() < deadline - 0.005
+        return self.affordable(deadline - time.perf_counter())
 
-    def solve(self, **kwargs):
-        return self.model.solve(**kwargs)
+    def limit(self, seconds: float) -> float:
+        """The time limit to give CP-SAT so that a search with its set-up takes ``seconds``."""
+        return max(0.01, seconds - CPSAT_COSTS.setup_seconds(self.compiled, self.workers))
+
+    def _timed(self, run, time_limit: float, **kwargs):
+        r = run(time_limit=time_limit, **kwargs)
+        if r.status in ("feasible", "unknown"):  # it ran to its limit: the rest is set-up
+            CPSAT_COSTS.overran(self.compiled, kwargs.get("workers", 1), r.seconds - time_limit)
+        return r
+
+    def solve(self, *, time_limit: float, **kwargs):
+        """A search that, set-up included, takes about ``time_limit`` seconds."""
+        return self._timed(self.model.solve, self.limit(time_limit), **kwargs)
+
+    def fewest_flips(self, *, time_limit: float, **kwargs):
+        return self._timed(self.model.fewest_flips, self.limit(time_limit), **kwargs)
 
 
-def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: float,
+def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, deadline: float,
              max_flips: int | None, flip_price: float, seed: int, workers: int,
-             cancel=None, progress=None, mix: Mix = DEFAULT_MIX) -> PlanOutcome:
-    """Run one plan on the candidates X0 (int8 (K, n)); see the module docstring.
+             cancel=None, progress=None, mix: Mix = DEFAULT_MIX,
+             scorer: Scorer | None = None) -> PlanOutcome:
+    """Run one plan on the candidates X0 (int8 (K, n)) until ``deadline`` (a
+    ``time.perf_counter()`` value); see the module docstring.
 
-    greedy and portfolio keep the last ``POLISH_SHARE`` of the budget to move the best
-    answers back toward their candidates where that costs nothing (:func:`_polish`, then
-    in the portfolio :func:`_fewest_flips`).
+    greedy and portfolio keep the last ``POLISH_SHARE`` of the time (``POLISH_ALONE``
+    when CP-SAT cannot run in it) to move the best answers back toward their candidates
+    where that costs nothing (:func:`_polish`, then in the portfolio :func:`_fewest_flips`).
+    ``scorer`` (default: built here) scores the library and every attempt.
     """
-    t0 = time.perf_counter()
-    deadline = t0 + time_limit
-    share = 1.0 if method == "cpsat" else 1.0 - POLISH_SHARE
     out = PlanOutcome(attempts=[])
-    cp = _LazyCpsat(compiled, out.stats)
-    _search(compiled, X0, out, cp, method=method, time_limit=share * time_limit,
-            max_flips=max_flips, flip_price=flip_price, seed=seed, workers=workers,
-            cancel=cancel, progress=progress, mix=mix)
+    if scorer is None:
+        scorer = Scorer(compiled, X0, workers=workers)
+    time_limit = max(0.0, deadline - time.perf_counter())
+    tail = POLISH_SHARE
+    cp = _LazyCpsat(compiled, out.stats, workers)
+    if method == "greedy" or (method == "portfolio" and not cp.affordable(
+            (1.0 - POLISH_GREEDY) * POLISH_SHARE * time_limit)):
+        tail = POLISH_ALONE  # no CP-SAT step in the tail: only the greedy polish
+    share = 1.0 if method == "cpsat" else 1.0 - tail
+    _search(compiled, X0, out, cp, scorer, method=method,
+            deadline=deadline - (1.0 - share) * time_limit, max_flips=max_flips,
+            flip_price=flip_price, seed=seed, workers=workers, cancel=cancel,
+            progress=progress, mix=mix)
 
     def cancelled() -> bool:
         return cancel is not None and cancel.is_set()
@@ -177,24 +308,25 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, time_limit: flo
         return out
     left = deadline - time.perf_counter()
     # the CP-SAT step shares the tail only when it can run in it (model built or affordable)
-    exact = method == "portfolio" and (cp.model is not None or _cpsat_affordable(compiled, left))
+    exact = method == "portfolio" and cp.affordable((1.0 - POLISH_GREEDY) * left)
     polish_deadline = time.perf_counter() + POLISH_GREEDY * left if exact else deadline
-    _polish(compiled, X0, out, deadline=polish_deadline, max_flips=max_flips,
+    _polish(compiled, X0, out, scorer, deadline=polish_deadline, max_flips=max_flips,
             flip_price=flip_price, workers=workers)
     if method == "portfolio" and not cancelled():
-        _fewest_flips(cp, compiled, X0, out, deadline=deadline, max_flips=max_flips,
+        _fewest_flips(cp, compiled, X0, out, scorer, deadline=deadline, max_flips=max_flips,
                       flip_price=flip_price, seed=seed, workers=workers, cancel=cancel)
     return out
 
 
-def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat, *,
-            method: str, time_limit: float, max_flips: int | None, flip_price: float,
-            seed: int, workers: int, cancel=None, progress=None,
+def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat,
+            scorer: Scorer, *, method: str, deadline: float, max_flips: int | None,
+            flip_price: float, seed: int, workers: int, cancel=None, progress=None,
             mix: Mix = DEFAULT_MIX) -> PlanOutcome:
-    """Run the search stages of one plan on the candidates X0 (int8 (K, n)) into ``out``;
-    see the module docstring. ``cp`` is the (lazily built) CP-SAT model."""
+    """Run the search stages of one plan on the candidates X0 (int8 (K, n)) into ``out``
+    until ``deadline``; see the module docstring. ``cp`` is the (lazily built) CP-SAT
+    model, ``scorer`` scores the library and the attempts."""
     t0 = time.perf_counter()
-    deadline = t0 + time_limit
+    time_limit = max(0.0, deadline - t0)
     K, n = X0.shape
     report = progress or (lambda **kw: None)
 
@@ -202,36 +334,58 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
         return (cancel is not None and cancel.is_set()) or time.perf_counter() >= deadline
 
     if method == "cpsat":
-        _per_candidate_cpsat(cp, compiled, X0, out, deadline=deadline, max_flips=max_flips,
-                             flip_price=flip_price, seed=seed, workers=workers, cancel=cancel,
-                             report=report)
+        _per_candidate_cpsat(cp, compiled, X0, out, scorer, deadline=deadline,
+                             max_flips=max_flips, flip_price=flip_price, seed=seed,
+                             workers=workers, cancel=cancel, report=report)
         return out
 
     g_deadline = deadline if method == "greedy" else t0 + mix.greedy * time_limit
     # most promising candidates first, so a short budget is spent where it pays most
-    ev0, obj0, _ = _objective(compiled, X0, X0, 0.0)
-    first = _ranked(ev0.feasible, obj0)
-    g = greedy_repair(compiled, X0[first], max_flips=max_flips, flip_price=flip_price,
-                      deadline=g_deadline, cancel=cancel, workers=workers,
-                      progress=lambda d, tot: report(done=d, total=tot, phase="greedy"))
-    back = np.argsort(first)
-    g.X, g.steps, g.done, g.seconds = g.X[back], g.steps[back], g.done[back], g.seconds[back]
+    first = _ranked(scorer.violation == 0.0, scorer.cost)
+    cost, viol = scorer.cost.copy(), scorer.violation.copy()
+    flips = np.zeros(K, dtype=np.int64)
+    if stopped():  # nothing starts after the deadline: the candidates as they are
+        out.attempts.extend(Attempt(k, X0[k], "unrepaired", 0.0, cost[k], viol[k], 0)
+                            for k in range(K))
+        out.stats["greedy_done"] = out.stats["greedy_moves"] = 0
+        return out
+    rows, seconds, steps = _greedy_stage(compiled, X0, first, deadline=g_deadline,
+                                         first_deadline=deadline,
+                                         max_flips=max_flips, flip_price=flip_price,
+                                         cancel=cancel, workers=workers, report=report)
+    fin = np.fromiter(rows, np.int64, len(rows))  # the candidates greedy repaired
+    done = np.zeros(K, dtype=bool)
+    done[fin] = True
+    # each repaired candidate is scored from its own state; the others are as they were
+    if fin.size:
+        cost[fin], viol[fin], flips[fin] = scorer.near(np.vstack(list(rows.values())), fin)
     for k in range(K):
-        out.attempts.append(Attempt(k, g.X[k], "greedy" if g.done[k] else "unrepaired",
-                                    float(g.seconds[k])))
-    out.stats["greedy_done"] = int(g.done.sum())
-    out.stats["greedy_moves"] = int(g.steps.sum())
+        out.attempts.append(Attempt(k, rows.get(k, X0[k]), "greedy" if done[k] else "unrepaired",
+                                    float(seconds[k]), float(cost[k]), float(viol[k]),
+                                    int(flips[k])))
+    out.stats["greedy_done"] = int(done.sum())
+    out.stats["greedy_moves"] = int(steps)
     if method == "greedy" or stopped():
         return out
 
-    ev, obj, flips = _objective(compiled, g.X, X0, flip_price)
-    cur = g.X.copy()
+    feasible = viol == 0.0
+    obj = cost + flip_price * flips
+    # ---- early proof: CP-SAT on the whole problem, when that is cheap; a proof ends the search
+    if _early_proof(cp, compiled, X0, out, scorer, feasible=feasible, obj=obj, deadline=deadline,
+                    max_flips=max_flips, flip_price=flip_price, seed=seed, workers=workers,
+                    cancel=cancel, t0=t0):
+        return out
+
+    # each repaired candidate's current answer (the kicks change it; only those are read)
+    cur = np.empty_like(X0)
+    if fin.size:
+        cur[fin] = np.vstack([rows[k] for k in fin.tolist()])
     left = deadline - time.perf_counter()
     kick_share = mix.kicks
-    if mix.kicks > 0 and not _cpsat_affordable(compiled, (1.0 - mix.kicks) * left):
+    if mix.kicks > 0 and not cp.affordable((1.0 - mix.kicks) * left):
         kick_share = 1.0  # CP-SAT could not even be built in its share: kicks take it all
     kick_deadline = time.perf_counter() + kick_share * left
-    rounds, kept = _kicks(compiled, X0, cur, obj, ev.feasible, g.done, out,
+    rounds, kept = _kicks(compiled, X0, cur, obj, feasible, flips, done, out, scorer,
                           deadline=kick_deadline, max_flips=max_flips, flip_price=flip_price,
                           seed=seed, cancel=cancel, workers=workers)
     out.stats["kick_rounds"] = rounds
@@ -239,13 +393,11 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
     report(done=K, total=K, phase="kicks")
     if stopped():
         return out
-    ev, obj, flips = _objective(compiled, cur, X0, flip_price)
-    g.X = cur
-    order = [int(k) for k in _ranked(ev.feasible, obj) if g.done[k]]
+    order = [int(k) for k in _ranked(feasible, obj) if done[k]]
     seen: set = set()
     tops = []
     for k in order:
-        key = g.X[k].tobytes()
+        key = cur[k].tobytes()
         if key not in seen:
             seen.add(key)
             tops.append(k)
@@ -253,7 +405,7 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
             break
     margin = int(np.clip(n // 10, 5, 50))
     # ---- stage 3: neighbourhoods of the best candidates, hinted with their repaired result
-    best_obj = float(obj[tops[0]]) if tops and ev.feasible[tops[0]] else None
+    best_obj = float(obj[tops[0]]) if tops and feasible[tops[0]] else None
     tops = tops[: mix.neighbourhoods]
     share = (deadline - time.perf_counter()) * (mix.neighbourhood_share if mix.full_search else 1.0)
     share /= max(1, len(tops))
@@ -262,7 +414,7 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
             break
         radius = max_flips if max_flips is not None else min(n, int(flips[k]) + margin)
         budget = min(share, deadline - time.perf_counter())
-        r = cp.solve(hint=g.X[k], center=X0[k], radius=radius, flip_price=flip_price,
+        r = cp.solve(hint=cur[k], center=X0[k], radius=radius, flip_price=flip_price,
                      time_limit=budget, workers=workers, seed=seed + rank, cancel=cancel)
         out.scaling_error = max(out.scaling_error, r.scaling_error)
         out.cpsat_status = r.status
@@ -275,19 +427,65 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
     if stopped() or not mix.full_search or not cp.ready(deadline):
         return out
     anchor = tops[0] if tops else (order[0] if order else 0)
+    _full_search(cp, X0, out, anchor=anchor, best_obj=best_obj,
+                 time_limit=deadline - time.perf_counter(), max_flips=max_flips,
+                 flip_price=flip_price, seed=seed + mix.neighbourhoods, workers=workers,
+                 cancel=cancel)
+    report(done=K, total=K, phase="full", best_cost=best_obj)
+    return out
+
+
+#: candidates in the first greedy batch; each next batch is twice the last
+GREEDY_FIRST_BATCH = 16
+
+
+def _greedy_stage(compiled, X0, order, *, deadline, first_deadline, max_flips, flip_price,
+                  cancel, workers, report):
+    """Greedy repair of the candidates X0[order] in that order: the first alone until
+    ``first_deadline`` (the whole search's: with no repaired answer nothing else can start
+    from one), then the others in batches of doubling size (from ``GREEDY_FIRST_BATCH``)
+    until ``deadline``: each batch's set-up (its copies, its consensus) is paid only for
+    candidates the time reaches. Returns ({candidate: repaired x int8 (n,)} of those
+    repaired, seconds float64 (K,) spent on each, total steps)."""
+    K = X0.shape[0]
+    rows: dict = {}
+    seconds = np.zeros(K)
+    steps = 0
+    pos, size = 0, 1
+    while pos < K and time.perf_counter() < (first_deadline if pos == 0 else deadline):
+        batch = order[pos:pos + size]
+        g = greedy_repair(compiled, X0[batch], max_flips=max_flips, flip_price=flip_price,
+                          deadline=first_deadline if pos == 0 else deadline, cancel=cancel,
+                          workers=workers,
+                          progress=lambda d, tot, at=pos: report(done=at + d, total=K,
+                                                                 phase="greedy"))
+        seconds[batch] = g.seconds
+        steps += int(g.steps.sum())
+        rows.update((int(k), g.X[j]) for j, k in enumerate(batch.tolist()) if g.done[j])
+        if not g.done.all() or (cancel is not None and cancel.is_set()):
+            break
+        pos, size = pos + size, GREEDY_FIRST_BATCH if pos == 0 else 2 * size
+    return rows, seconds, steps
+
+
+def _full_search(cp, X0, out, *, anchor, best_obj, time_limit, max_flips, flip_price, seed,
+                 workers, cancel):
+    """CP-SAT on the whole problem (or within ``max_flips`` of candidate ``anchor``),
+    unhinted, asked only for answers better than ``best_obj`` (any, when None); a proof
+    sets ``out.proven_optimal`` / ``out.proven_infeasible``."""
     full_space = max_flips is None
     upper = None
     if best_obj is not None:
         upper = best_obj - max(1e-9, 1e-9 * abs(best_obj))
     r = cp.solve(hint=None, center=X0[anchor], radius=None if full_space else max_flips,
-                 flip_price=flip_price, upper=upper, time_limit=deadline - time.perf_counter(),
-                 workers=workers, seed=seed + mix.neighbourhoods, cancel=cancel)
+                 flip_price=flip_price, upper=upper, time_limit=time_limit, workers=workers,
+                 seed=seed, cancel=cancel)
     out.scaling_error = max(out.scaling_error, r.scaling_error)
     out.cpsat_status = r.status
     out.stats["full_search_status"] = r.status
     if r.x is not None:
         # attribute an unhinted answer to the candidate nearest to it
-        near = int(np.argmin((X0 != r.x).sum(axis=1))) if not flip_price else anchor
+        near = int(np.argmin(distances(X0, r.x))) if not flip_price else anchor
         out.attempts.append(Attempt(near, r.x, "cpsat", r.seconds))
         if r.status == "optimal" and full_space and not flip_price:
             out.proven_optimal = True
@@ -296,26 +494,58 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
             out.proven_infeasible = True
         elif not flip_price:
             out.proven_optimal = True  # nothing better than best_obj exists
-    report(done=K, total=K, phase="full", best_cost=best_obj)
-    return out
 
 
-def _polish(compiled, X0, out, *, deadline, max_flips, flip_price, workers=1):
+def _early_proof(cp, compiled, X0, out, scorer, *, feasible, obj, deadline, max_flips,
+                 flip_price, seed, workers, cancel, t0) -> bool:
+    """Right after greedy, when CP-SAT's model and set-up cost at most ``PROOF_SETUP`` of
+    what is left: :func:`_full_search` for ``PROOF_SHARE`` of it. Returns True (and records
+    ``stats["stopped_early"]``) when it proved the best answer optimal or the hard
+    constraints infeasible; only a whole-space search without a flip price can."""
+    if max_flips is not None or flip_price:
+        return False
+    left = deadline - time.perf_counter()
+    setup = CPSAT_COSTS.setup_seconds(compiled, cp.workers)
+    if cp.model is None:
+        setup += build_cost(compiled)
+    if setup > PROOF_SETUP * left or not cp.ready(deadline):
+        return False
+    ok = np.flatnonzero(feasible)
+    best = int(ok[np.argmin(obj[ok])]) if ok.size else None
+    anchor = best if best is not None else int(np.argmin(scorer.violation))
+    _full_search(cp, X0, out, anchor=anchor,
+                 best_obj=None if best is None else float(obj[best]),
+                 time_limit=PROOF_SHARE * (deadline - time.perf_counter()), max_flips=None,
+                 flip_price=0.0, seed=seed, workers=workers, cancel=cancel)
+    if not (out.proven_optimal or out.proven_infeasible):
+        return False
+    what = "optimal" if out.proven_optimal else "infeasible"
+    out.stats["stopped_early"] = (f"CP-SAT proved the answer {what} "
+                                  f"{time.perf_counter() - t0:.3f} s into the search")
+    return True
+
+
+def _objective(out, scorer, flip_price):
+    """Over every attempt: (ks, cost, feasible, objective, flips) arrays."""
+    ks, cost, viol, flips = attempt_scores(scorer, out.attempts)
+    return ks, cost, viol == 0.0, cost + flip_price * flips, flips
+
+
+def _polish(compiled, X0, out, scorer, *, deadline, max_flips, flip_price, workers=1):
     """Move the best answers back toward their candidates where the cost does not rise.
 
     Greedy descent from each of the ``POLISH_TOP`` best answers with a tiny extra price
     per flip away from its candidate: only flips that cost (next to) nothing and undo a
     change are taken. A result is kept when it is feasible, no costlier and has fewer flips.
     """
-    if not out.attempts:
+    if not out.attempts or time.perf_counter() >= deadline:
         return
-    A = np.vstack([a.x for a in out.attempts])
-    ks = np.asarray([a.k for a in out.attempts])
-    ev, obj, flips = _objective(compiled, A, X0[ks], flip_price)
-    order = [int(i) for i in _ranked(ev.feasible, obj) if ev.feasible[i]]
+    ks, _, feas, obj, flips = _objective(out, scorer, flip_price)
     picked, seen = [], set()
-    for i in order:
-        key = (int(ks[i]), A[i].tobytes())
+    for i in _ranked(feas, obj).tolist():
+        if not feas[i]:
+            break
+        key = (int(ks[i]), out.attempts[i].x.tobytes())
         if key not in seen:
             seen.add(key)
             picked.append(i)
@@ -324,21 +554,24 @@ def _polish(compiled, X0, out, *, deadline, max_flips, flip_price, workers=1):
     if not picked:
         return
     eps = 1e3 * objective_tol(compiled)
-    g = greedy_repair(compiled, A[picked], origin=X0[ks[picked]], max_flips=max_flips,
+    g = greedy_repair(compiled, np.vstack([out.attempts[i].x for i in picked]),
+                      origin=X0[ks[picked]], max_flips=max_flips,
                       flip_price=flip_price + eps, deadline=deadline, chunk=4, workers=workers)
-    ev2, obj2, flips2 = _objective(compiled, g.X, X0[ks[picked]], flip_price)
+    cost2, viol2, flips2 = scorer.near(g.X, ks[picked])
+    obj2 = cost2 + flip_price * flips2
     for pos, i in enumerate(picked):
         slack = COST_SLACK * max(1.0, abs(obj[i]))
-        if (g.done[pos] and ev2.feasible[pos] and flips2[pos] < flips[i]
+        if (g.done[pos] and viol2[pos] == 0.0 and flips2[pos] < flips[i]
                 and obj2[pos] <= obj[i] + slack):
             src = out.attempts[i]
             label = "greedy" if src.method == "greedy" else f"{src.method}+greedy"
-            out.attempts.append(Attempt(int(ks[i]), g.X[pos].copy(), label, float(g.seconds[pos])))
+            out.attempts.append(Attempt(int(ks[i]), g.X[pos].copy(), label, float(g.seconds[pos]),
+                                        float(cost2[pos]), float(viol2[pos]), int(flips2[pos])))
             out.stats["polished"] = out.stats.get("polished", 0) + 1
 
 
-def _fewest_flips(cp, compiled, X0, out, *, deadline, max_flips, flip_price, seed, workers,
-                  cancel):
+def _fewest_flips(cp, compiled, X0, out, scorer, *, deadline, max_flips, flip_price, seed,
+                  workers, cancel):
     """CP-SAT: the fewest flips at the best cost (:meth:`flipfix.repair.solvers.cpsat.LateModel.fewest_flips`).
 
     The best answer is the one :func:`flipfix.repair.api.repair` reports (feasible, then objective,
@@ -353,21 +586,21 @@ def _fewest_flips(cp, compiled, X0, out, *, deadline, max_flips, flip_price, see
     if not out.attempts:
         return
     left = deadline - time.perf_counter()
-    if cp.model is None and not _cpsat_affordable(compiled, left):
+    if cp.model is None and not cp.affordable(left):
         stats["fewest_flips_status"] = "skipped: budget too short to build the CP-SAT model"
         return
     if left < FEWEST_MIN_SECONDS or not cp.ready(deadline):
         stats["fewest_flips_status"] = "skipped: no time left"
         return
-    A = np.vstack([a.x for a in out.attempts])
-    ks = np.asarray([a.k for a in out.attempts])
-    ev, obj, flips = _objective(compiled, A, X0[ks], flip_price)
-    feas = ev.feasible if max_flips is None else ev.feasible & (flips <= max_flips)
+    ks, cost, feas, obj, flips = _objective(out, scorer, flip_price)
+    if max_flips is not None:
+        feas = feas & (flips <= max_flips)
     if not feas.any():
         stats["fewest_flips_status"] = "skipped: no feasible answer"
         return
     b = int(np.lexsort((flips, obj, ~feas))[0])  # as flipfix.repair.api._build picks the best
-    dist = (X0 != A[b][None, :]).sum(axis=1)
+    xb = out.attempts[b].x
+    dist = distances(X0, xb)
     origin = int(ks[b])
     k = origin if dist[origin] == dist.min() else int(np.argmin(dist))
     d0 = int(dist[k])
@@ -375,22 +608,24 @@ def _fewest_flips(cp, compiled, X0, out, *, deadline, max_flips, flip_price, see
     if d0 == 0:
         stats["fewest_flips_status"] = "skipped: already unchanged"
         return
-    upper = float(ev.cost[b]) + flip_price * d0  # <= obj[b]: its objective from candidate k
-    r = cp.model.fewest_flips(center=X0[k], upper=upper, hint=A[b], radius=d0,
-                              flip_price=flip_price, slack=COST_SLACK,
-                              time_limit=deadline - time.perf_counter(), workers=workers,
-                              seed=seed, cancel=cancel)
+    upper = float(cost[b]) + flip_price * d0  # <= obj[b]: its objective from candidate k
+    r = cp.fewest_flips(center=X0[k], upper=upper, hint=xb, radius=d0,
+                        flip_price=flip_price, slack=COST_SLACK,
+                        time_limit=deadline - time.perf_counter(), workers=workers,
+                        seed=seed, cancel=cancel)
     out.scaling_error = max(out.scaling_error, r.scaling_error)
     stats["fewest_flips_status"] = r.status
     stats["fewest_flips_seconds"] = round(r.seconds, 4)
     if r.x is None:
         return
-    ev2, obj2, flips2 = _objective(compiled, r.x[None, :], X0[k][None, :], flip_price)
-    if (ev2.feasible[0] and flips2[0] < d0
-            and obj2[0] <= upper + COST_SLACK * max(1.0, abs(upper))):
+    cost2, viol2, flips2 = scorer.near(r.x, k)
+    obj2 = cost2[0] + flip_price * flips2[0]
+    if (viol2[0] == 0.0 and flips2[0] < d0
+            and obj2 <= upper + COST_SLACK * max(1.0, abs(upper))):
         src = out.attempts[b].method
         label = src if src.endswith("cpsat") else f"{src}+cpsat"
-        out.attempts.append(Attempt(k, r.x.copy(), label, r.seconds))
+        out.attempts.append(Attempt(k, r.x.copy(), label, r.seconds, float(cost2[0]),
+                                    float(viol2[0]), int(flips2[0])))
         stats["fewest_flips"] = int(flips2[0])
 
 
@@ -404,9 +639,10 @@ def kick_masks(rng: np.random.Generator, rows: int, width: int, top: int) -> np.
     return keys <= low[np.arange(rows), size - 1][:, None]
 
 
-def _kicks(compiled, X0, cur, obj, feasible, done, out, *, deadline, max_flips, flip_price,
-           seed, cancel, workers=1):
-    """Iterated local search on the best repaired solutions, in place on ``cur`` / ``obj``.
+def _kicks(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *, deadline, max_flips,
+           flip_price, seed, cancel, workers=1):
+    """Iterated local search on the best repaired solutions, in place on ``cur``, ``obj``,
+    ``feasible`` and ``flips`` (each candidate's current answer and its scores).
 
     Each round takes the best ``KICK_BATCH`` candidates' current solutions, flips a
     random handful of free variables in each (seeded), descends greedily (on ``workers``
@@ -435,27 +671,29 @@ def _kicks(compiled, X0, cur, obj, feasible, done, out, *, deadline, max_flips, 
                           flip_price=flip_price, deadline=deadline if near_end else None,
                           cancel=cancel, chunk=len(order), workers=workers)
         last = time.perf_counter() - t
-        ev, new_obj, new_flips = _objective(compiled, g.X, X0[order], flip_price)
+        new_cost, new_viol, new_flips = scorer.near(g.X, order)
+        new_obj = new_cost + flip_price * new_flips
         inside = np.ones(len(order), dtype=bool) if max_flips is None else new_flips <= max_flips
         for pos, k in enumerate(order):
-            if not (g.done[pos] and ev.feasible[pos] and inside[pos]):
+            if not (g.done[pos] and new_viol[pos] == 0.0 and inside[pos]):
                 continue
             if not feasible[k] or new_obj[pos] < obj[k] - 1e-9:
                 cur[k] = g.X[pos]
                 obj[k] = new_obj[pos]
                 feasible[k] = True
-                out.attempts.append(Attempt(k, g.X[pos].copy(), "greedy", float(g.seconds[pos])))
+                flips[k] = new_flips[pos]
+                out.attempts.append(Attempt(k, g.X[pos].copy(), "greedy", float(g.seconds[pos]),
+                                            float(new_cost[pos]), 0.0, int(new_flips[pos])))
                 kept += 1
         rounds += 1
     return rounds, kept
 
 
-def _per_candidate_cpsat(cp, compiled, X0, out, *, deadline, max_flips, flip_price, seed, workers,
-                         cancel, report):
+def _per_candidate_cpsat(cp, compiled, X0, out, scorer, *, deadline, max_flips, flip_price, seed,
+                         workers, cancel, report):
     """CP-SAT from each candidate (hinted with it), best-ranked candidates first."""
     K = X0.shape[0]
-    ev, obj, _ = _objective(compiled, X0, X0, 0.0)
-    order = [int(k) for k in _ranked(ev.feasible, obj)]
+    order = [int(k) for k in _ranked(scorer.violation == 0.0, scorer.cost)]
     reached = np.zeros(K, dtype=bool)
     statuses = []
     overrun = 0.0  # how far past its limit a solve ran, on average (set-up, presolve)
@@ -477,14 +715,16 @@ def _per_candidate_cpsat(cp, compiled, X0, out, *, deadline, max_flips, flip_pri
         if r.x is not None:
             out.attempts.append(Attempt(k, r.x, "cpsat", r.seconds))
         else:
-            out.attempts.append(Attempt(k, X0[k].copy(), "unrepaired", r.seconds))
+            out.attempts.append(Attempt(k, X0[k].copy(), "unrepaired", r.seconds,
+                                        float(scorer.cost[k]), float(scorer.violation[k]), 0))
         report(done=pos + 1, total=K, phase="cpsat")
         full = max_flips is None
         if full and r.status == "optimal" and not flip_price:
             out.proven_optimal = True
         if full and r.status == "infeasible":
             out.proven_infeasible = True
-    for k in np.flatnonzero(~reached):
-        out.attempts.append(Attempt(int(k), X0[k].copy(), "unrepaired", 0.0))
+    for k in np.flatnonzero(~reached).tolist():
+        out.attempts.append(Attempt(k, X0[k].copy(), "unrepaired", 0.0, float(scorer.cost[k]),
+                                    float(scorer.violation[k]), 0))
     if flip_price and statuses and all(s == "optimal" for s in statuses) and reached.all():
         out.proven_optimal = max_flips is None

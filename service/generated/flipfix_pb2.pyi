@@ -443,14 +443,13 @@ class DecisionChangePenalty(_message.Message):
     def __init__(self, reference: _Optional[_Iterable[_Union[DecisionReference, _Mapping]]] = ..., weight: _Optional[float] = ..., shape: _Optional[_Union[PenaltyShape, str]] = ..., threshold: _Optional[float] = ..., table: _Optional[_Iterable[float]] = ..., distance: _Optional[_Union[DecisionDistance, str]] = ...) -> None: ...
 
 class Constraint(_message.Message):
-    __slots__ = ("name", "hamming", "extra", "fix", "linear", "forbid", "json", "forbid_values", "force_value", "allow_values", "decision_change")
+    __slots__ = ("name", "hamming", "extra", "fix", "linear", "forbid", "forbid_values", "force_value", "allow_values", "decision_change")
     NAME_FIELD_NUMBER: _ClassVar[int]
     HAMMING_FIELD_NUMBER: _ClassVar[int]
     EXTRA_FIELD_NUMBER: _ClassVar[int]
     FIX_FIELD_NUMBER: _ClassVar[int]
     LINEAR_FIELD_NUMBER: _ClassVar[int]
     FORBID_FIELD_NUMBER: _ClassVar[int]
-    JSON_FIELD_NUMBER: _ClassVar[int]
     FORBID_VALUES_FIELD_NUMBER: _ClassVar[int]
     FORCE_VALUE_FIELD_NUMBER: _ClassVar[int]
     ALLOW_VALUES_FIELD_NUMBER: _ClassVar[int]
@@ -461,12 +460,11 @@ class Constraint(_message.Message):
     fix: FixVariables
     linear: LinearConstraint
     forbid: ForbidAssignment
-    json: str
     forbid_values: ForbidValues
     force_value: ForceValue
     allow_values: AllowValues
     decision_change: DecisionChangePenalty
-    def __init__(self, name: _Optional[str] = ..., hamming: _Optional[_Union[HammingPenalty, _Mapping]] = ..., extra: _Optional[_Union[ExtraTerms, _Mapping]] = ..., fix: _Optional[_Union[FixVariables, _Mapping]] = ..., linear: _Optional[_Union[LinearConstraint, _Mapping]] = ..., forbid: _Optional[_Union[ForbidAssignment, _Mapping]] = ..., json: _Optional[str] = ..., forbid_values: _Optional[_Union[ForbidValues, _Mapping]] = ..., force_value: _Optional[_Union[ForceValue, _Mapping]] = ..., allow_values: _Optional[_Union[AllowValues, _Mapping]] = ..., decision_change: _Optional[_Union[DecisionChangePenalty, _Mapping]] = ...) -> None: ...
+    def __init__(self, name: _Optional[str] = ..., hamming: _Optional[_Union[HammingPenalty, _Mapping]] = ..., extra: _Optional[_Union[ExtraTerms, _Mapping]] = ..., fix: _Optional[_Union[FixVariables, _Mapping]] = ..., linear: _Optional[_Union[LinearConstraint, _Mapping]] = ..., forbid: _Optional[_Union[ForbidAssignment, _Mapping]] = ..., forbid_values: _Optional[_Union[ForbidValues, _Mapping]] = ..., force_value: _Optional[_Union[ForceValue, _Mapping]] = ..., allow_values: _Optional[_Union[AllowValues, _Mapping]] = ..., decision_change: _Optional[_Union[DecisionChangePenalty, _Mapping]] = ...) -> None: ...
 
 class RepairOptions(_message.Message):
     __slots__ = ("method", "time_limit", "max_flips", "flip_price", "seed", "workers", "audit_limit", "pareto")
@@ -526,9 +524,9 @@ class DecisionChange(_message.Message):
     OLD_VALUE_FIELD_NUMBER: _ClassVar[int]
     NEW_VALUE_FIELD_NUMBER: _ClassVar[int]
     decision: str
-    old_value: str
-    new_value: str
-    def __init__(self, decision: _Optional[str] = ..., old_value: _Optional[str] = ..., new_value: _Optional[str] = ...) -> None: ...
+    old_value: DecisionValue
+    new_value: DecisionValue
+    def __init__(self, decision: _Optional[str] = ..., old_value: _Optional[_Union[DecisionValue, _Mapping]] = ..., new_value: _Optional[_Union[DecisionValue, _Mapping]] = ...) -> None: ...
 
 class Solution(_message.Message):
     __slots__ = ("candidate_id", "values", "repaired_from", "cost", "objective", "base_energy", "penalties", "flips", "feasible", "violation", "violations", "method", "changes", "decisions_changed")

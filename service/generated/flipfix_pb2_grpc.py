@@ -182,7 +182,7 @@ class FlipfixServicer:
         raise NotImplementedError('Method not implemented!')
 
     def ProfileRobustness(self, request, context):
-        """Audit of repair cost (issue 5): which candidates of a stored library are
+        """Audit of repair cost: which candidates of a stored library are
         worth keeping. All run in the repair pool (RESOURCE_EXHAUSTED when every
         slot is busy) and honour the call's deadline and cancellation as Repair does.
 

@@ -39,18 +39,13 @@ from flipfix.repair.solvers.greedy.cache import drop_stale
 drop_stale()
 
 from flipfix.repair.kernels.bundles import objective_tol  # noqa: E402
-from flipfix.repair.solvers.greedy.driver import GreedyOutput, greedy_repair, warm_up  # noqa: E402
-from flipfix.repair.solvers.greedy.layout import MAX_WIDE, WIDE, general_arrays  # noqa: E402
+from flipfix.repair.solvers.greedy.driver import (FIRST_SLICE, GreedyOutput,  # noqa: E402
+                                                  greedy_repair, warm_up)
+from flipfix.repair.solvers.greedy.layout import (MAX_GROUP_SHARE, MAX_WIDE,  # noqa: E402
+                                                  MIN_GROUPS, WIDE, general_arrays)
 from flipfix.repair.solvers.greedy.qubo import SMALL_START, descend_qubo  # noqa: E402
 from flipfix.repair.solvers.greedy.start import consensus  # noqa: E402
 
 __all__ = ["GreedyOutput", "greedy_repair", "descend_qubo", "objective_tol", "warm_up",
            "consensus", "general_arrays", "WIDE", "MAX_WIDE", "MAX_GROUP_SHARE", "MIN_GROUPS",
-           "SMALL_START"]
-
-#: Grouped trees pay only while there are few groups; past this share of the free
-#: variables the plain scan over free variables is used instead (read by the driver at
-#: each call).
-MAX_GROUP_SHARE = 0.25
-#: ... but up to this many groups always use them.
-MIN_GROUPS = 4
+           "SMALL_START", "FIRST_SLICE"]

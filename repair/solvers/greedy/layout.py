@@ -19,7 +19,8 @@ from flipfix.repair.lowering.compiled import Compiled
 from flipfix.repair.solvers.greedy.groups import Groups
 from flipfix.repair.solvers.greedy.pairs import PairBounds, pair_bounds
 
-__all__ = ["WIDE", "MAX_WIDE", "NarrowMaps", "Layout", "GeneralArrays", "general_arrays"]
+__all__ = ["WIDE", "MAX_WIDE", "MAX_GROUP_SHARE", "MIN_GROUPS", "NarrowMaps", "Layout",
+           "GeneralArrays", "general_arrays", "groups_pay"]
 
 #: A row or count penalty over more than this many variables is "wide": its share of a
 #: flip's change is taken per group (see "grouped single flips"), not re-keyed per member.
@@ -27,6 +28,11 @@ __all__ = ["WIDE", "MAX_WIDE", "NarrowMaps", "Layout", "GeneralArrays", "general
 WIDE = 64
 #: More wide structures than this: no groups (their signature matrix is (2, n, wide)).
 MAX_WIDE = 16
+#: Grouped trees pay only while there are few groups; past this share of the free
+#: variables the plain scan over free variables is used instead.
+MAX_GROUP_SHARE = 0.25
+#: ... but up to this many groups always use them.
+MIN_GROUPS = 4
 
 
 class NarrowMaps(NamedTuple):
@@ -209,3 +215,9 @@ def general_arrays(compiled: Compiled) -> GeneralArrays:
                                pair_bounds(late.qubo, late.rows, tol))
         compiled._greedy_general = cached
     return cached
+
+
+def groups_pay(trees: int, nfree: int) -> bool:
+    """Whether ``trees`` grouped trees beat the plain scan over ``nfree`` free variables
+    (:data:`MAX_GROUP_SHARE`, :data:`MIN_GROUPS`, read at each call)."""
+    return trees <= max(MIN_GROUPS, MAX_GROUP_SHARE * nfree)

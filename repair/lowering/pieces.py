@@ -1,0 +1,106 @@
+"""What a late constraint lowers to: :class:`Pieces` over 0/1 bits.
+
+Every constraint kind (:mod:`flipfix.repair.model.constraints`) lowers to one
+:class:`Pieces`:
+
+* soft QUBO terms (linear, quadratic, offset) merged into the search objective;
+* soft count penalties ``f(d)`` with ``d = const + sum_t coef_t * AND(literals_t)``
+  (a literal is "variable i has bit value b"), for non-linear shapes;
+* hard linear rows ``lo <= sum_i a_i x_i <= hi`` over 0/1 bits;
+* hard fixings ``x_i = b``.
+
+:func:`flipfix.repair.lowering.compiled.compile_constraints` merges them.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from flipfix.repair.errors import InputError
+from flipfix.repair.model.problem import Problem
+
+__all__ = ["CountSpec", "RowSpec", "Pieces", "count_pieces", "label_bits"]
+
+
+@dataclass
+class CountSpec:
+    """Soft penalty ``table[d]`` with ``d = const + sum_t coef[t] * AND(lits of t)``.
+
+    ``terms`` is a list of ``(coef int, [(var int, bit int), ...])``; d must stay in
+    0..len(table)-1 for every assignment (the lowering guarantees it).
+    """
+
+    name: str
+    table: np.ndarray
+    const: int
+    terms: list
+
+
+@dataclass
+class RowSpec:
+    """Hard ``lo <= sum coef[k] * x[idx[k]] <= hi`` over 0/1 bits."""
+
+    name: str
+    idx: np.ndarray
+    coef: np.ndarray
+    lo: float
+    hi: float
+
+
+@dataclass
+class Pieces:
+    """What one constraint lowers to (indices are variable positions, bits 0/1)."""
+
+    name: str
+    linear: list = field(default_factory=list)      # [(i, coef)]
+    quadratic: list = field(default_factory=list)   # [(i, j, coef)], i != j
+    offset: float = 0.0
+    counts: list = field(default_factory=list)      # [CountSpec]
+    rows: list = field(default_factory=list)        # [RowSpec]
+    fixed: list = field(default_factory=list)       # [(i, bit)]
+    hard: bool = False
+
+
+def label_bits(problem: Problem, mapping, field_name: str) -> tuple[np.ndarray, np.ndarray]:
+    """A non-empty ``{label: caller value}`` mapping -> (positions int64 (p,), bits int8 (p,)).
+
+    Errors name ``field_name`` or ``field_name[label]``.
+    """
+    if not hasattr(mapping, "items"):
+        raise InputError(field_name, "must map variable labels to values")
+    idx, bits = [], []
+    for lab, val in mapping.items():
+        f = f"{field_name}[{lab!r}]"
+        idx.append(problem.lookup(lab, f))
+        bits.append(problem.value_to_bit(val, f))
+    if not idx:
+        raise InputError(field_name, "is empty")
+    return np.asarray(idx, dtype=np.int64), np.asarray(bits, dtype=np.int8)
+
+
+def count_pieces(name: str, spec: CountSpec) -> Pieces:
+    """A count penalty; merged into QUBO terms when its table is linear in d and terms are small."""
+    t = spec.table
+    d = np.arange(t.size, dtype=np.float64)
+    slope = (t[-1] - t[0]) / max(t.size - 1, 1)
+    linear_shape = np.allclose(t, t[0] + slope * d, rtol=0, atol=1e-12 * (1 + np.abs(t).max()))
+    if not (linear_shape and all(len(lits) <= 2 for _, lits in spec.terms)):
+        return Pieces(name, counts=[spec])
+    p = Pieces(name, offset=float(t[0] + slope * spec.const))
+    for coef, lits in spec.terms:
+        w = slope * coef
+        # [x_i == b] = b*x_i + (1-b)*(1-x_i): an affine form a + s*x_i
+        forms = [(1.0 - b, 2.0 * b - 1.0, i) for i, b in lits]
+        if len(forms) == 1:
+            a, s, i = forms[0]
+            p.offset += w * a
+            p.linear.append((i, w * s))
+        else:
+            (a1, s1, i), (a2, s2, j) = forms
+            p.offset += w * a1 * a2
+            p.linear.append((i, w * s1 * a2))
+            p.linear.append((j, w * s2 * a1))
+            p.quadratic.append((i, j, w * s1 * s2))
+    return p

@@ -1,0 +1,54 @@
+"""Repair options: RepairOptions <-> keyword arguments of :func:`flipfix.repair.repair`."""
+
+from __future__ import annotations
+
+import math
+
+from flipfix.repair.errors import InputError
+
+from flipfix.service.convert.enums import METHOD_ENUM, METHOD_NAMES, METHOD_TEXT, enum_name
+from flipfix.service.generated import flipfix_pb2 as pb
+
+__all__ = ["options_to_kwargs", "kwargs_to_options", "nonneg"]
+
+
+def nonneg(v: float, field: str) -> float:
+    """A finite number >= 0, or an InputError naming ``field``."""
+    if not math.isfinite(v) or v < 0:
+        raise InputError(field, f"must be a finite number >= 0, got {v!r}")
+    return float(v)
+
+
+def options_to_kwargs(o: pb.RepairOptions, *, default_time_limit: float = 5.0,
+                      field: str = "options") -> dict:
+    """RepairOptions -> keyword arguments of :func:`flipfix.repair.repair` (time limit uncapped)."""
+    method = enum_name(METHOD_NAMES, o.method, field + ".method", METHOD_TEXT)
+    if not math.isfinite(o.time_limit) or o.time_limit < 0:
+        raise InputError(field + ".time_limit", f"must be >= 0 seconds, got {o.time_limit!r}")
+    if not math.isfinite(o.flip_price) or o.flip_price < 0:
+        raise InputError(field + ".flip_price", f"must be >= 0, got {o.flip_price!r}")
+    return {
+        "method": method,
+        "time_limit": float(o.time_limit) if o.time_limit > 0 else float(default_time_limit),
+        "max_flips": int(o.max_flips) if o.HasField("max_flips") else None,
+        "flip_price": float(o.flip_price),
+        "seed": int(o.seed),
+        "workers": max(1, int(o.workers)),
+        "pareto": bool(o.pareto),
+    }
+
+
+def kwargs_to_options(*, method: str = "portfolio", time_limit: float = 0.0,
+                      max_flips: int | None = None, flip_price: float = 0.0, seed: int = 0,
+                      workers: int = 1, audit_limit: int | None = None, pareto: bool = False
+                      ) -> pb.RepairOptions:
+    if method not in METHOD_ENUM:
+        raise InputError("method", f"must be one of {sorted(METHOD_ENUM)}, got {method!r}")
+    o = pb.RepairOptions(method=METHOD_ENUM[method], time_limit=float(time_limit or 0.0),
+                         flip_price=float(flip_price), seed=int(seed), workers=int(workers),
+                         pareto=bool(pareto))
+    if max_flips is not None:
+        o.max_flips = int(max_flips)
+    if audit_limit is not None:
+        o.audit_limit = int(audit_limit)
+    return o
