@@ -93,12 +93,13 @@ def test_grouped_trees_take_the_same_steps_as_the_plain_scan(kind, max_flips, mo
     p = _model(n, seed)
     comp = compile_constraints(p, _constraints(n, seed, kind))
     X0 = np.random.default_rng(seed).integers(0, 2, (5, n)).astype(np.int8)
-    lay = greedy._general_arrays(comp)[2]
+    lay = greedy.general_arrays(comp).layout
     par = 1 if max_flips is None else 2
-    assert 2 <= lay["groups"] * par <= greedy.MAX_GROUP_SHARE * n  # the grouped path runs
+    assert 2 <= lay.groups * par <= greedy.MAX_GROUP_SHARE * n  # the grouped path runs
     grouped = greedy_repair(comp, X0, max_flips=max_flips)
-    monkeypatch.setattr(greedy, "MAX_GROUP_SHARE", -1.0)  # force the scan
-    monkeypatch.setattr(greedy, "MIN_GROUPS", -1)
+    monkeypatch.setattr(greedy.layout, "MAX_GROUP_SHARE", -1.0)  # force the scan
+    monkeypatch.setattr(greedy.layout, "MIN_GROUPS", -1)
+    assert not greedy.layout.groups_pay(lay.groups * par, n)
     scan = greedy_repair(comp, X0, max_flips=max_flips)
     np.testing.assert_array_equal(grouped.X, scan.X)
     np.testing.assert_array_equal(grouped.steps, scan.steps)
@@ -121,8 +122,8 @@ def test_a_narrow_penalty_moves_variables_their_qubo_change_alone_would_not():
         HammingPenalty({0: 1, 1: 1, 2: 1}, weight=100.0, shape="threshold", threshold=1,
                        name="narrow")])
     assert len(comp.counts) == 1  # a count penalty, not folded into the QUBO
-    lay = greedy._general_arrays(comp)[2]
-    assert 2 <= lay["groups"] <= greedy.MAX_GROUP_SHARE * n  # the grouped path runs
+    lay = greedy.general_arrays(comp).layout
+    assert 2 <= lay.groups <= greedy.MAX_GROUP_SHARE * n  # the grouped path runs
     X0 = np.zeros((3, n), dtype=np.int8)
     X0[1, 50:] = 1
     X0[2, 1] = 1
@@ -222,3 +223,25 @@ def test_greedy_answers_do_not_depend_on_the_thread_count(kind):
         np.testing.assert_array_equal(one.X, many.X)
         np.testing.assert_array_equal(one.steps, many.steps)
         assert many.done.all()
+
+
+def test_every_input_layout_runs_the_one_compiled_kernel():
+    # a read-only or Fortran-order batch, int32 CSR pointers or a read-only fixings array
+    # is another array type to numba: each would compile the kernel again (seconds, inside
+    # a request's budget) unless the driver normalises its inputs first
+    n, seed = 60, 13
+    p = _model(n, seed)
+    rng = np.random.default_rng(seed)
+    X0 = rng.integers(0, 2, (4, n)).astype(np.int8)
+    frozen = X0.copy()
+    frozen.flags.writeable = False
+    fixed = np.full(n, -1, dtype=np.int8)
+    fixed.flags.writeable = False
+    comp = compile_constraints(p, _constraints(n, seed, "mixed"))
+    plain = compile_constraints(p, [])
+    for X in (X0, frozen, np.asfortranarray(X0)):
+        greedy_repair(comp, X, origin=frozen, max_flips=20)
+        greedy_repair(plain, X)
+        descend_qubo(p.linear, p.indptr.astype(np.int32), p.indices, p.data, X, fixed=fixed)
+    for kernel in (greedy.general.descend_general, greedy.qubo.descend_tree):
+        assert len(kernel.signatures) == 1, kernel.signatures

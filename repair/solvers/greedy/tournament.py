@@ -1,4 +1,4 @@
-"""Tournament trees for the greedy kernels' best-flip selection.
+"""Tournament trees: the greedy kernels' best-flip selection.
 
 A tournament tree over N (a power of two) leaves lives in flat arrays from offset b0:
 ``tkey`` float64 and ``titem`` int64, node r at b0 + r (r = 1 .. 2N-1; the root is r = 1;
@@ -7,17 +7,19 @@ candidate), each inner node the smaller child's key and item, the left one on ti
 the lowest leaf wins ties (deterministic). Many trees can share the flat arrays at
 different offsets. Setting a key repairs the path to the root and stops at the first
 node that does not change: O(log N) at worst, a level or two when little changes.
+Offsets, sizes and leaves are int64 at every call site (one compiled specialisation).
 """
 
 from __future__ import annotations
 
-import numba as nb
 import numpy as np
+
+from flipfix.repair.solvers.greedy.jit import kernel
 
 __all__ = ["tree_clear", "tree_drain", "tree_set"]
 
 
-@nb.njit(cache=True, inline="always")
+@kernel
 def tree_clear(tkey, titem, b0, N):
     """Every leaf +inf. The leaves' items (``titem[b0 + N + p]``) are the caller's to set,
     once: they never change."""
@@ -27,7 +29,7 @@ def tree_clear(tkey, titem, b0, N):
         titem[b0 + r] = titem[b0 + 2 * r]
 
 
-@nb.njit(cache=True, inline="always")
+@kernel
 def tree_set(tkey, titem, b0, N, p, value):
     """Set leaf p's key and repair the path to the root, stopping where nothing changes."""
     r = N + p
@@ -46,7 +48,7 @@ def tree_set(tkey, titem, b0, N, p, value):
         r >>= 1
 
 
-@nb.njit(cache=True, inline="always")
+@kernel
 def tree_drain(tkey, b0, N, stack):
     """Every leaf +inf again, visiting only the nodes that hold a finite key: cheap when
     few leaves are set. ``stack`` int64 (>= log2(N) + 2,) is scratch. Inner nodes whose
