@@ -58,12 +58,12 @@ from __future__ import annotations
 import math
 import threading
 import time
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
 
 from flipfix.repair.errors import InputError
+from flipfix.repair.kernels.batching import thread_pool
 from flipfix.repair.kernels.bundles import late_arrays, objective_tol
 from flipfix.repair.kernels.metropolis import Moves, Plan, advance, flip_changes, new_chain
 from flipfix.repair.lowering.compiled import Compiled
@@ -194,19 +194,6 @@ def _check(compiled, starts, origin, depth, sweeps, flip_price, max_flips, scale
     return starts, origin
 
 
-# ------------------------------------------------------------------ threads
-_POOLS: dict = {}
-
-
-def _pool(workers: int) -> ThreadPoolExecutor:
-    """A process-wide pool of ``workers`` threads (the kernels release the GIL)."""
-    pool = _POOLS.get(workers)
-    if pool is None:
-        pool = _POOLS[workers] = ThreadPoolExecutor(max_workers=workers,
-                                                     thread_name_prefix="flipfix-anneal")
-    return pool
-
-
 def _block(late, moves, plan, X, O, a, b, tol, sweeps_out, stop):
     """Anneal starts a..b-1 of X in place, slice by slice, until done or ``stop()``."""
     q, c, r = late
@@ -274,7 +261,7 @@ def anneal(compiled: Compiled, starts: np.ndarray, *, depth: float, sweeps: int,
         if parts == 1:
             _block(*args, 0, R, tol, done, stop)
         else:
-            jobs = [_pool(parts).submit(_block, *args, int(a), int(b), tol, done, stop)
+            jobs = [thread_pool(parts).submit(_block, *args, int(a), int(b), tol, done, stop)
                     for a, b in zip(cuts[:-1], cuts[1:])]
             for j in jobs:
                 j.result()
