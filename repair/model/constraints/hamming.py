@@ -9,7 +9,8 @@ import numpy as np
 
 from flipfix.repair.documents.fields import as_list, number, require, resolve_label, resolve_mapping
 from flipfix.repair.errors import InputError
-from flipfix.repair.lowering.pieces import CountSpec, Pieces, count_pieces, label_bits
+from flipfix.repair.lowering.pieces import (CountSpec, Pieces, count_pieces, label_bits,
+                                           linear_slope)
 from flipfix.repair.model.constraints.fix import assignment_json
 from flipfix.repair.model.constraints.kind import ConstraintKind
 from flipfix.repair.model.constraints.shapes import check_penalty, shape_table
@@ -82,8 +83,13 @@ def lower(problem: Problem, c: HammingPenalty, name: str, field: str) -> Pieces:
             raise InputError(field + ".variables", "lists a variable twice")
     table = shape_table(c.shape, c.weight, int(idx.size), threshold=c.threshold, table=c.table,
                         field_name=field + ".shape")
+    slope = linear_slope(table)
+    if slope is not None:  # as count_pieces merges it: [x_i != r_i] = r_i + (1 - 2 r_i) x_i
+        r = ref.astype(np.float64)
+        return Pieces(name, linear=list(zip(idx.tolist(), (slope * (1.0 - 2.0 * r)).tolist())),
+                      offset=float(table[0] + slope * r.sum()))
     # d = number of i with x_i != ref_i: one single-literal term per variable
-    terms = [(1, [(int(i), 1 - int(b))]) for i, b in zip(idx, ref)]
+    terms = [(1, [(i, 1 - b)]) for i, b in zip(idx.tolist(), ref.tolist())]
     return count_pieces(name, CountSpec(name, table, 0, terms))
 
 

@@ -9,7 +9,7 @@ import numpy as np
 
 from flipfix.repair.documents.fields import number, require, resolve_mapping
 from flipfix.repair.errors import InputError
-from flipfix.repair.lowering.pieces import Pieces, RowSpec
+from flipfix.repair.lowering.pieces import Pieces, RowSpec, label_keys
 from flipfix.repair.model.constraints.kind import ConstraintKind
 from flipfix.repair.model.problem import Problem, finite
 from flipfix.repair.model.vartypes import BINARY, change_vartype
@@ -48,16 +48,37 @@ def write_json(c: LinearConstraint) -> dict:
             "rhs": float(c.rhs)}
 
 
+def _terms_at_once(problem: Problem, terms):
+    """(positions int64, coefficients float64) of a label -> coefficient mapping without a
+    Python call per entry, when every label is a distinct known str / int and every
+    coefficient a finite number; None otherwise."""
+    if not label_keys(terms.keys()) or not all(
+            issubclass(t, (int, float, np.integer, np.floating)) and t is not bool
+            for t in set(map(type, terms.values()))):
+        return None
+    try:
+        idx = np.fromiter(map(problem.index.__getitem__, terms.keys()), np.int64, len(terms))
+    except KeyError:
+        return None
+    coef = np.fromiter(terms.values(), np.float64, len(terms))
+    if not np.all(np.isfinite(coef)) or np.unique(idx).size != idx.size:
+        return None
+    return idx, coef
+
+
 def lower(problem: Problem, c: LinearConstraint, name: str, field: str) -> Pieces:
     if not hasattr(c.terms, "items") or len(c.terms) == 0:
         raise InputError(field + ".terms", "must be a non-empty map of label -> coefficient")
-    acc: dict = {}
-    for lab, coef in c.terms.items():
-        f = f"{field}.terms[{lab!r}]"
-        i = problem.lookup(lab, f)
-        acc[i] = acc.get(i, 0.0) + finite(coef, f)
+    terms = _terms_at_once(problem, c.terms)
+    if terms is None:  # entry by entry: names the bad label or coefficient
+        acc: dict = {}
+        for lab, coef in c.terms.items():
+            f = f"{field}.terms[{lab!r}]"
+            i = problem.lookup(lab, f)
+            acc[i] = acc.get(i, 0.0) + finite(coef, f)
+        terms = (list(acc), list(acc.values()))
     none = np.zeros(0)
-    idx, coef, _, offset = change_vartype(list(acc), list(acc.values()), none, none, none, 0.0,
+    idx, coef, _, offset = change_vartype(terms[0], terms[1], none, none, none, 0.0,
                                           source=problem.vartype, target=BINARY)
     rhs = finite(c.rhs, field + ".rhs") - offset
     lo = rhs if c.sense in ("==", ">=") else -np.inf
