@@ -12,7 +12,7 @@ from typing import NamedTuple
 
 import numpy as np
 
-from flipfix.repair.solvers.greedy.jit import entry, kernel
+from flipfix.repair.solvers.greedy.jit import kernel
 from flipfix.repair.solvers.greedy.state import eval_flip, flip_state, row_viol
 
 __all__ = ["PairBounds", "PairLists", "pair_bounds", "pair_lists", "best_pair"]
@@ -37,20 +37,13 @@ class PairLists(NamedTuple):
     dn_v: np.ndarray
 
 
-@entry
-def _largest_positive(indptr, data, out):
-    """out float64 (rows,) = each row's largest positive coefficient of a CSR matrix
-    (indptr int64, data float64), 0 if none."""
-    for r in range(indptr.size - 1):
-        out[r] = 0.0
-        for p in range(indptr[r], indptr[r + 1]):
-            out[r] = max(out[r], data[p])
-
-
 def _row_maxima(indptr: np.ndarray, data: np.ndarray) -> np.ndarray:
-    out = np.empty(indptr.size - 1)
-    _largest_positive(np.ascontiguousarray(indptr, dtype=np.int64),
-                      np.ascontiguousarray(data, dtype=np.float64), out)
+    """Each row's largest positive entry of a CSR matrix (indptr, data), 0 if none:
+    float64 (rows,)."""
+    out = np.zeros(indptr.size - 1)
+    filled = np.diff(indptr) > 0
+    if filled.any():  # a row's segment runs to the next filled row's start: its own end
+        out[filled] = np.maximum(np.maximum.reduceat(data, indptr[:-1][filled]), 0.0)
     return out
 
 
