@@ -7,7 +7,9 @@ offending field so that a caller (the service, the CLI) can report it as is.
 
 from __future__ import annotations
 
-__all__ = ["InputError", "LimitError", "under"]
+import math
+
+__all__ = ["InputError", "LimitError", "under", "nonnegative"]
 
 
 class InputError(ValueError):
@@ -29,3 +31,14 @@ def under(err: InputError, field: str) -> InputError:
     if err.field == field or err.field.startswith((field + ".", field + "[")):
         return err
     return type(err)(f"{field}.{err.field}" if err.field else field, err.message)
+
+
+def nonnegative(value, field: str) -> float:
+    """``value`` as a finite float >= 0 (anything ``float()`` takes); errors name ``field``."""
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        raise InputError(field, f"{value!r} is not a number") from None
+    if not math.isfinite(v) or v < 0:
+        raise InputError(field, f"must be a finite number >= 0, got {value!r}")
+    return v

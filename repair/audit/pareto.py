@@ -17,7 +17,7 @@ from typing import Any, Iterable, Sequence
 
 import numpy as np
 
-from flipfix.repair.errors import InputError
+from flipfix.repair.errors import InputError, nonnegative
 from flipfix.repair.result import ParetoPoint
 
 __all__ = ["pareto_front", "as_points", "cheapest_within", "fewest_flips_within",
@@ -113,12 +113,7 @@ def cheapest_within(points: Sequence[Any], max_flips: int) -> ParetoPoint | None
 def fewest_flips_within(points: Sequence[Any], percent: float) -> ParetoPoint | None:
     """Fewest flips among points costing at most ``best + percent/100 * |best|``
     (ties: cheaper), or None when there are no points."""
-    try:
-        pct = float(percent)
-    except (TypeError, ValueError):
-        raise InputError("percent", f"{percent!r} is not a number") from None
-    if not math.isfinite(pct) or pct < 0:
-        raise InputError("percent", f"must be a finite number >= 0, got {percent!r}")
+    pct = nonnegative(percent, "percent")
     pts = as_points(points)
     if not pts:
         return None

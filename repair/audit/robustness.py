@@ -26,7 +26,7 @@ from typing import Any
 import numpy as np
 
 from flipfix.repair.model.candidates import CandidateSet
-from flipfix.repair.errors import InputError
+from flipfix.repair.errors import InputError, nonnegative
 from flipfix.repair.model.encodings import codewords as encoder_codewords
 from flipfix.repair.model.problem import Decision, Problem
 
@@ -116,16 +116,6 @@ def _as_X(problem: Problem, X: np.ndarray | CandidateSet, field_name: str) -> np
     return X.astype(np.int8, copy=False)
 
 
-def _epsilon(epsilon: Any) -> float:
-    try:
-        e = float(epsilon)
-    except (TypeError, ValueError):
-        raise InputError("epsilon", f"{epsilon!r} is not a number") from None
-    if not np.isfinite(e) or e < 0:
-        raise InputError("epsilon", f"must be a finite number >= 0, got {epsilon!r}")
-    return e
-
-
 def _tolerance(problem: Problem) -> float:
     scale = float(np.abs(problem.linear).sum() + np.abs(problem.data).sum() / 2.0)
     return ROUNDOFF * (1.0 + scale)
@@ -176,7 +166,7 @@ def free_variable_counts(problem: Problem, X, *, epsilon: float = 0.0,
     ``problem.flip_costs(X)`` float64 (K, n).
     """
     X = _as_X(problem, X, "candidates")
-    eps = _epsilon(epsilon)
+    eps = nonnegative(epsilon, "epsilon")
     c = flip_cost_matrix(problem, X) if costs is None else costs
     return ((c <= eps + _tolerance(problem)) & _plain_bits(problem)).sum(axis=1).astype(np.int64)
 
@@ -243,7 +233,7 @@ def free_decision_counts(problem: Problem, X, *, epsilon: float = 0.0,
                          costs: np.ndarray | None = None) -> np.ndarray:
     """Number of decisions with a valid move costing ``<= epsilon``: int64 (K,)."""
     X = _as_X(problem, X, "candidates")
-    eps = _epsilon(epsilon)
+    eps = nonnegative(epsilon, "epsilon")
     c = flip_cost_matrix(problem, X) if costs is None else costs
     tol = _tolerance(problem)
     count = np.zeros(X.shape[0], dtype=np.int64)
@@ -296,7 +286,7 @@ def robustness_profile(problem: Problem, candidates: CandidateSet, *,
     """
     if not isinstance(candidates, CandidateSet):
         raise InputError("candidates", f"expected a CandidateSet, got {type(candidates).__name__}")
-    eps = _epsilon(epsilon)
+    eps = nonnegative(epsilon, "epsilon")
     X = _as_X(problem, candidates.X, "candidates")
     K = X.shape[0]
     costs, energy = _costs_and_energies(problem, X)  # (K, n), (K,)
