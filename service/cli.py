@@ -120,9 +120,8 @@ def _repair_local(args, docs: dict, show: _Progress) -> dict:
 
 
 def _repair_remote(args, docs: dict, show: _Progress) -> dict:
-    import grpc
-
-    from flipfix.service.client import FlipfixClient
+    from flipfix.service import convert
+    from flipfix.service.client import FlipfixClient, FlipfixError
 
     # the client reads each document once, before any call; its errors name the field
     # (problem..., candidates..., constraints...), which _blame maps to the file
@@ -134,13 +133,12 @@ def _repair_remote(args, docs: dict, show: _Progress) -> dict:
                              **_repair_options(args),
                              on_progress=lambda p: show(p.done, p.total,
                                                         p.best_cost if p.HasField("best_cost") else None,
-                                                        p.phase))
-        except grpc.RpcError as err:
-            code = err.code()
-            if code == grpc.StatusCode.INVALID_ARGUMENT:
-                field, _, msg = (err.details() or "").partition(": ")
-                raise InputError(field, msg) from None
-            raise UsageError(f"server {args.server}: {code.name}: {err.details()}") from None
+                                                        convert.PHASE_NAMES.get(p.current_phase, "")))
+        except FlipfixError as err:
+            if err.reason == "INVALID_FIELD":
+                raise InputError(err.field, err.violations[0][1] if err.violations
+                                 else err.details()) from None
+            raise UsageError(f"server {args.server}: {err.code().name}: {err.details()}") from None
 
 
 def cmd_serve(args) -> int:

@@ -19,26 +19,106 @@ the core's own report objects (:mod:`flipfix.repair.audit.robustness`, :mod:`fli
         rep = fx.stress_test("roster", ScenarioFamily(hamming_weight=3.0), scenarios=30)
         out = fx.curate("roster", ScenarioFamily(hamming_weight=3.0), 5, keep=True)
 
-Errors are ``grpc.RpcError`` with the status codes listed in the proto.
+Errors: every method raises :class:`FlipfixError` (a ``grpc.RpcError``) for a server
+status and for a mistake found locally before any call (a label typo, ``time_limit=0``):
+``err.code()`` (a ``grpc.StatusCode``), ``err.reason`` (``"INVALID_FIELD"``, ...: the
+proto's ErrorReason without its prefix), ``err.field`` (the request path, ``""`` when none)
+and ``err.details()`` (the message). Transport failures carry the reason ``""``.
 """
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 from typing import Any, Callable, Iterable, Mapping, Sequence
 
 import grpc
 import numpy as np
+from google.rpc import error_details_pb2
+from grpc_status import rpc_status
 
 from flipfix.repair.documents import forms as documents
 from flipfix.repair.model.candidates import CandidateSet
+from flipfix.repair.errors import InputError
 from flipfix.repair.model.problem import Problem
 
 from flipfix.service import convert
 from flipfix.service.generated import flipfix_pb2 as pb
 from flipfix.service.generated import flipfix_pb2_grpc as pb_grpc
 
-__all__ = ["FlipfixClient", "StoredCandidates"]
+__all__ = ["FlipfixClient", "FlipfixError", "StoredCandidates"]
+
+
+class FlipfixError(grpc.RpcError):
+    """One error type for every failure of a client call.
+
+    ``code()`` -> grpc.StatusCode, ``details()`` -> the message, ``reason`` (the server's
+    ErrorInfo reason, e.g. ``"INVALID_FIELD"``; ``""`` for transport failures), ``field``
+    (the request path to blame, ``""`` when none) and ``violations`` ([(field,
+    description)] of the BadRequest detail)."""
+
+    def __init__(self, code: grpc.StatusCode, message: str, *, reason: str = "",
+                 field: str = "", violations: Sequence[tuple[str, str]] = ()):
+        super().__init__(message)
+        self._code, self._message = code, message
+        self.reason, self.field, self.violations = reason, field, list(violations)
+
+    def code(self) -> grpc.StatusCode:
+        return self._code
+
+    def details(self) -> str:
+        return self._message
+
+    def __str__(self) -> str:
+        return f"{self._code.name}: {self._message}"
+
+    @classmethod
+    def from_rpc(cls, err: grpc.RpcError) -> "FlipfixError":
+        """Read the rich status (ErrorInfo, BadRequest) of a failed call."""
+        code = err.code() if callable(getattr(err, "code", None)) else grpc.StatusCode.UNKNOWN
+        message = (err.details() if callable(getattr(err, "details", None)) else "") or ""
+        reason, field, violations = "", "", []
+        try:
+            status = rpc_status.from_call(err)
+        except (ValueError, AttributeError):  # a status without details, or no call
+            status = None
+        for detail in (status.details if status is not None else ()):
+            info, bad = error_details_pb2.ErrorInfo(), error_details_pb2.BadRequest()
+            if detail.Unpack(info):
+                reason, field = info.reason, info.metadata.get("field", "")
+            elif detail.Unpack(bad):
+                violations = [(v.field, v.description) for v in bad.field_violations]
+        return cls(code, message, reason=reason, field=field, violations=violations)
+
+    @classmethod
+    def from_input(cls, err: InputError) -> "FlipfixError":
+        """A mistake found before any call, as the server would report it."""
+        return cls(grpc.StatusCode.INVALID_ARGUMENT, f"{err.field}: {err.message}",
+                   reason="INVALID_FIELD", field=err.field,
+                   violations=[(err.field, err.message)])
+
+
+def _one_error_type(method):
+    """Raise :class:`FlipfixError` for a failed call or a local input mistake."""
+    @functools.wraps(method)
+    def wrapped(*args, **kwargs):
+        try:
+            return method(*args, **kwargs)
+        except FlipfixError:
+            raise
+        except grpc.RpcError as err:
+            raise FlipfixError.from_rpc(err) from None
+        except InputError as err:
+            raise FlipfixError.from_input(err) from None
+    return wrapped
+
+
+def _public_methods_raise_flipfix_errors(cls):
+    for name, fn in list(vars(cls).items()):
+        if (callable(fn) and not isinstance(fn, (staticmethod, classmethod))
+                and not name.startswith("_") and name != "close"):
+            setattr(cls, name, _one_error_type(fn))
+    return cls
 
 
 def _last_result(stream, on_progress):
@@ -90,8 +170,10 @@ def as_problem(model: Any) -> Problem:
     return Problem.from_bqm(model)
 
 
+@_public_methods_raise_flipfix_errors
 class FlipfixClient:
-    """Wraps the generated stub; ``target`` is ``HOST:PORT``."""
+    """Wraps the generated stub; ``target`` is ``HOST:PORT``. Every public method raises
+    :class:`FlipfixError` only."""
 
     def __init__(self, target: str, *, timeout: float | None = 60.0,
                  max_message_bytes: int = 64 * 1024 * 1024):
@@ -238,7 +320,7 @@ class FlipfixClient:
                                    all_revisions=all_revisions)
         else:
             if candidates is None:
-                raise ValueError("an inline repair needs candidates")
+                raise InputError("inline.candidates", "an inline repair needs candidates")
             m, dom = self._model(problem)
             rev = 0
             req = pb.RepairRequest(inline=pb.InlineLibrary(
@@ -274,15 +356,10 @@ class FlipfixClient:
         if isinstance(family, Mapping):
             family = ScenarioFamily(**family)
         if not isinstance(family, ScenarioFamily):
-            raise TypeError(f"family: expected a flipfix.repair.audit.stress.ScenarioFamily, got "
-                            f"{type(family).__name__}")
+            raise InputError("family", "expected a flipfix.repair.audit.stress.ScenarioFamily, "
+                                       f"got {type(family).__name__}")
         return convert.family_to_proto(family), family.to_dict()
 
-    @staticmethod
-    def _method(method: str) -> int:
-        if method not in convert.METHOD_ENUM:
-            raise ValueError(f"method must be one of {sorted(convert.METHOD_ENUM)}, got {method!r}")
-        return convert.METHOD_ENUM[method]
 
     def robustness(self, name: str, *, epsilon: float = 0.0, spectrum: bool = False,
                    candidate_ids: Sequence[str] = (), all_revisions: bool = False,
@@ -294,15 +371,18 @@ class FlipfixClient:
         return convert.reply_to_robustness(r)
 
     def stress_request(self, name: str, family: Any, *, scenarios: int = 20, seed: int = 0,
-                       method: str = "greedy", time_limit: float = 0.0, epsilon: float = 0.0,
+                       method: str = "greedy", time_limit: float | None = None,
+                       epsilon: float = 0.0,
                        max_flips: int | None = None, flip_price: float = 0.0,
                        candidate_ids: Sequence[str] = (), all_revisions: bool = False,
                        matrices: bool = False) -> pb.StressRequest:
         fam, _ = self._family(family)
         req = pb.StressRequest(problem=name, candidate_ids=list(candidate_ids),
                                all_revisions=all_revisions, family=fam, scenarios=scenarios,
-                               seed=seed, method=self._method(method), time_limit=time_limit,
-                               epsilon=epsilon, flip_price=flip_price, matrices=matrices)
+                               seed=seed, method=convert.method_number(method), epsilon=epsilon,
+                               flip_price=flip_price, matrices=matrices)
+        if time_limit is not None:
+            req.time_limit = convert.check_time_limit(float(time_limit), "time_limit")
         if max_flips is not None:
             req.max_flips = int(max_flips)
         return req
@@ -324,7 +404,7 @@ class FlipfixClient:
         return convert.reply_to_stress(reply, family=fam_doc)
 
     def pareto_front(self, name: str, constraints: Iterable[Any], *,
-                     methods: Sequence[str] = ("greedy", "cpsat"), time_limit: float = 0.0,
+                     methods: Sequence[str] = ("greedy", "cpsat"), time_limit: float | None = None,
                      seed: int = 0, include_unchanged: bool = True,
                      cheapest_within_flips: int | None = None,
                      fewest_flips_within_percent: float | None = None,
@@ -336,8 +416,11 @@ class FlipfixClient:
         req = pb.ParetoRequest(problem=name, candidate_ids=list(candidate_ids),
                                all_revisions=all_revisions,
                                constraints=self._constraints(dom, constraints),
-                               methods=[self._method(m) for m in methods], time_limit=time_limit,
+                               methods=[convert.method_number(m, f"methods[{k}]")
+                                        for k, m in enumerate(methods)],
                                seed=seed, exclude_unchanged=not include_unchanged)
+        if time_limit is not None:
+            req.time_limit = convert.check_time_limit(float(time_limit), "time_limit")
         if cheapest_within_flips is not None:
             req.cheapest_within_flips = int(cheapest_within_flips)
         if fewest_flips_within_percent is not None:
@@ -355,11 +438,10 @@ class FlipfixClient:
         """Choose ``m`` candidates by the stress test; ``keep=True`` removes the others from the
         store. ``{"stress": StressReport, "curation": CurationResult | None, "kept": bool,
         "removed_ids": [...], "message": str, "revision": int}``."""
-        sel = {"greedy": pb.FORWARD, "exhaustive": pb.EXHAUSTIVE}
-        if selection not in sel:
-            raise ValueError(f"selection must be 'greedy' or 'exhaustive', got {selection!r}")
+        if selection not in convert.SELECTION_ENUM:
+            raise InputError("selection", f"must be greedy or exhaustive, got {selection}")
         req = pb.CurateRequest(stress=self.stress_request(name, family, **options), m=m,
-                               selection=sel[selection], keep=keep)
+                               selection=convert.SELECTION_ENUM[selection], keep=keep)
         _, fam_doc = self._family(family)
         r = self.stub.CurateLibrary(req, timeout=timeout if timeout is not None else self.timeout)
         return {"stress": convert.reply_to_stress(r.stress, family=fam_doc),

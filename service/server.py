@@ -13,7 +13,7 @@ core, and converts back; errors become status codes in :mod:`flipfix.service.err
 * Waits are events: the RPC blocks on the job's queue (worker start, progress, end)
   for at most the time left to its next stop; nothing polls.
 * The standard health service (``""`` and ``flipfix.v1.Flipfix``) and server
-  reflection are registered; health answers while repairs run.
+  reflection (v1alpha and v1, :mod:`flipfix.service.reflection_v1`) are registered; health answers while repairs run.
 * :meth:`RunningServer.shutdown`: health NOT_SERVING, no new calls, in-flight
   calls get ``grace`` seconds, then are cancelled (their solvers stop).
 * The audit RPCs (robustness, stress test, Pareto front, curation) take
@@ -34,7 +34,6 @@ from pathlib import Path
 
 import grpc
 from grpc_health.v1 import health, health_pb2, health_pb2_grpc
-from grpc_reflection.v1alpha import reflection
 
 from flipfix.repair.model.candidates import CandidateSet
 
@@ -42,6 +41,7 @@ from flipfix.repair.errors import InputError
 
 from flipfix.service import audit_jobs
 from flipfix.service import convert
+from flipfix.service import reflection_v1
 from flipfix.service.errors import ConflictError, NotFoundError, TransientError, translate_errors
 from flipfix.service.generated import flipfix_pb2 as pb
 from flipfix.service.generated import flipfix_pb2_grpc as pb_grpc
@@ -308,7 +308,8 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
             if p.updates == last[0]:
                 return None
             last[0] = p.updates
-            msg = pb.RepairProgress(done=p.done, total=p.total, phase=p.phase or "running")
+            msg = pb.RepairProgress(done=p.done, total=p.total,
+                                    current_phase=convert.PHASE_ENUM.get(p.phase or "", 0))
             if p.best_cost is not None and math.isfinite(p.best_cost):
                 msg.best_cost = p.best_cost
             return progress_event(msg)
@@ -510,9 +511,8 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
     pb_grpc.add_FlipfixServicer_to_server(servicer, server)
     health_servicer = health.HealthServicer()
     health_pb2_grpc.add_HealthServicer_to_server(health_servicer, server)
-    names = (SERVICE_NAME, health_pb2.DESCRIPTOR.services_by_name["Health"].full_name,
-             reflection.SERVICE_NAME)
-    reflection.enable_server_reflection(names, server)
+    names = (SERVICE_NAME, health_pb2.DESCRIPTOR.services_by_name["Health"].full_name)
+    reflection_v1.enable_server_reflection(names, server)  # v1alpha and v1
     try:
         port = server.add_insecure_port(address)
     except RuntimeError as err:

@@ -307,8 +307,9 @@ class Store:
             if db.execute("SELECT 1 FROM problems WHERE name = ?", (name,)).fetchone():
                 raise AlreadyExistsError("name", f"a problem named {name!r} exists")
             now = _now()
-            db.execute("INSERT INTO problems (name, revision, created_at, updated_at) "
-                       "VALUES (?, 1, ?, ?)", (name, now, now))
+            # assigned candidate ids count from c0 (as every other path numbers them)
+            db.execute("INSERT INTO problems (name, revision, next_candidate, created_at, "
+                       "updated_at) VALUES (?, 1, 0, ?, ?)", (name, now, now))
             db.execute("INSERT INTO revisions VALUES (?, 1, ?, ?, ?, ?)",
                        (name, model, problem.n, problem.num_interactions, now))
             return self._info(db, name)
@@ -370,7 +371,7 @@ class Store:
                        ) -> list[str]:
         """Add K candidates made for ``revision`` (X int8 (K, n), 0/1 in that revision's order).
 
-        Empty ids are assigned ``c<N>``. All or nothing: a taken id stores none.
+        Empty ids are assigned ``c<N>``, N counting from 0 per problem (never reused). All or nothing: a taken id stores none.
         """
         X = np.asarray(X, dtype=np.int8)
         rb = packing.row_bytes(X.shape[1])

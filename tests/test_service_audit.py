@@ -151,7 +151,7 @@ def test_stress_stream_sends_progress_then_the_same_result(fx, planted_lib):
     streamed = fx.stress_test("planted", fam, scenarios=8, seed=3, epsilon=ALPHA,
                               time_limit=BUDGET, on_progress=seen.append)
     unary = fx.stress_test("planted", fam, scenarios=8, seed=3, epsilon=ALPHA, time_limit=BUDGET)
-    assert seen and all(ev.phase == "stress" and ev.total == 8 and 1 <= ev.done <= 8 for ev in seen)
+    assert seen and all(ev.current_phase == pb.PHASE_STRESS and ev.total == 8 and 1 <= ev.done <= 8 for ev in seen)
     assert [ev.done for ev in seen] == sorted(ev.done for ev in seen) and seen[-1].done == 8
     assert streamed.to_dict()["candidates"] == unary.to_dict()["candidates"]
 
@@ -162,7 +162,8 @@ def test_repair_stream_passes_the_core_phase_names(fx, planted_lib):
     for method, want in (("cpsat", {"cpsat"}), ("portfolio", set())):
         phases = []
         out = fx.repair("planted", cons, method=method, time_limit=1.0,
-                        on_progress=lambda ev: phases.append(ev.phase))
+                        on_progress=lambda ev: phases.append(
+                            convert.PHASE_NAMES.get(ev.current_phase, "?")))
         assert out["best"]["feasible"]
         assert phases and set(phases) <= CORE_PHASES, phases  # never the old "running"
         assert want <= set(phases)
@@ -244,7 +245,7 @@ def test_malformed_curation_stores_nothing_and_names_the_field(fx, planted_lib, 
         (curate_req(m=0), grpc.StatusCode.INVALID_ARGUMENT, "m:"),
         (curate_req(m=5), grpc.StatusCode.INVALID_ARGUMENT, "m:"),
         (curate_req(family=pb.ScenarioFamily()), grpc.StatusCode.INVALID_ARGUMENT, "stress.family:"),
-        (curate_req(family=pb.ScenarioFamily(hamming_weight=1.0, hamming_shape=pb.TABLE)),
+        (curate_req(family=pb.ScenarioFamily(hamming_weight=1.0, hamming_shape=pb.PENALTY_SHAPE_TABLE)),
          grpc.StatusCode.INVALID_ARGUMENT, "stress.family.hamming_shape:"),
         (curate_req(epsilon=-1.0), grpc.StatusCode.INVALID_ARGUMENT, "stress.epsilon:"),
         (curate_req(candidate_ids=["NN", "NN"]), grpc.StatusCode.INVALID_ARGUMENT,
@@ -321,7 +322,7 @@ def test_stress_deadline_caps_the_budget_and_still_answers(fx, big, server):
     rep = stub.StressTest(req, timeout=4.0)
     assert time.monotonic() - t0 < 4.0
     assert 0 < rep.time_limit < 4.0  # min(requested 60 s, deadline - margin)
-    assert rep.stopped in ("done", "time_limit", "cancelled") and rep.scenarios_done >= 1
+    assert rep.stop_reason != pb.STOP_REASON_UNSPECIFIED and rep.scenarios_done >= 1
     assert rep.seconds < 4.0 and len(rep.candidates) == 4
 
 
@@ -364,7 +365,7 @@ def test_typed_decisions_round_trip(fx, server):
     assert "decisions_json" not in pb.ProblemModel.DESCRIPTOR.fields_by_name
     stub = pb_grpc.FlipfixStub(grpc.insecure_channel(server.address))
     model = convert.doc_to_model(DECISION_DOC)
-    assert [d.encoding for d in model.decisions] == [pb.ONE_HOT, pb.DOMAIN_WALL]
+    assert [d.encoding for d in model.decisions] == [pb.ENCODING_ONE_HOT, pb.ENCODING_DOMAIN_WALL]
     stub.CreateProblem(pb.CreateProblemRequest(name="decisions", model=model))
     got = stub.GetProblem(pb.GetProblemRequest(name="decisions")).model
     back = convert.model_to_problem(got)

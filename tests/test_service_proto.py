@@ -163,7 +163,7 @@ def test_indexed_model_errors_name_the_field():
     from flipfix.service.generated import flipfix_pb2 as pb
 
     def model(**kw):
-        m = pb.ProblemModel(vartype=pb.BINARY, labels=[convert.py_to_label(x) for x in "abc"])
+        m = pb.ProblemModel(vartype=pb.VARTYPE_BINARY, labels=[convert.py_to_label(x) for x in "abc"])
         m.indexed.CopyFrom(pb.IndexedTerms(**{"linear": [1.0, 2.0, 3.0], "u": [0], "v": [1],
                                               "bias": [0.5], **kw}))
         return m

@@ -71,7 +71,7 @@ def big_request(benchmarks):
     cands = convert.arrays_to_batch([f"r{k}" for k in range(8)], X)
     fix = pb.Constraint(fix=pb.FixVariables(values=convert.dict_to_assignment({p.labels[0]: 1})))
 
-    def make(time_limit=30.0, method=pb.CPSAT):
+    def make(time_limit=30.0, method=pb.METHOD_CPSAT):
         return pb.RepairRequest(inline=pb.InlineLibrary(model=convert.problem_to_model(p),
                                                         candidates=cands),
                                 constraints=[fix],
@@ -162,7 +162,7 @@ def test_constraints_are_read_and_compiled_once_on_the_server(server, stub, smal
     cons = convert.docs_to_constraints([{"type": "fix", "values": {"a": 0}},
                                         {"type": "forbid", "assignment": {"b": 1, "c": 1}}], small)
     r = stub.Repair(pb.RepairRequest(problem="small", constraints=cons,
-                                     options=pb.RepairOptions(time_limit=1.0, method=pb.GREEDY)))
+                                     options=pb.RepairOptions(time_limit=1.0, method=pb.METHOD_GREEDY)))
     assert r.best.feasible and "fix" in {v.name for v in r.best.violations}
     assert len(compiles) == 1 and len(submitted) == 1
     constraints, kwargs = submitted[0]
@@ -251,7 +251,7 @@ def test_inline_packed_errors_name_the_field(stub, small):
 def test_packed_candidates_round_trip(server, vartype):
     """AddCandidates -> ListCandidates gives back the same ids, values and provenance, and
     an inline repair reads the same values as the stored one (n = 13: padded rows)."""
-    from flipfix.service.client import FlipfixClient
+    from flipfix.service.client import FlipfixClient, FlipfixError
 
     labels = ["s", 7, "t", 0, "u", 3, "v", 11, "w", 2, "x", 5, "y"]
     doc = {"vartype": vartype, "labels": labels,
@@ -266,7 +266,7 @@ def test_packed_candidates_round_trip(server, vartype):
         fx.create_problem(name, doc)
         ids = fx.add_candidates(name, values[:4])  # server-assigned ids
         ids += fx.add_candidates(name, values[4:], ids=[f"mine{k}" for k in range(5)])
-        assert ids[:4] == ["c1", "c2", "c3", "c4"] and ids[4] == "mine0"
+        assert ids[:4] == ["c0", "c1", "c2", "c3"] and ids[4] == "mine0"  # counted from 0
         [lib] = fx.list_candidates(name, page_size=2)  # 5 pages joined into one run
         assert lib.ids == tuple(ids) and lib.revision == 1
         np.testing.assert_array_equal(lib.values, values)
@@ -314,7 +314,8 @@ def test_repair_matches_brute_force(stub, small):
         bqm.offset += 0.0 if val == 0 else 0.25
     ss = dimod.ExactSolver().sample(bqm)
     feasible = [d.energy for d in ss.data(["sample", "energy"]) if d.sample["a"] == 0]
-    assert r.best.feasible and r.status in ("optimal", "feasible")
+    assert r.best.feasible and r.repair_status in (pb.REPAIR_STATUS_OPTIMAL,
+                                                   pb.REPAIR_STATUS_FEASIBLE)
     assert r.best.cost == pytest.approx(min(feasible), abs=1e-9)
     got = convert.reply_to_dict(r, small)["best"]["assignment"]
     assert got["a"] == 0
@@ -342,11 +343,11 @@ def test_stream_ends_in_the_result(stub, small):
 def test_deadline_caps_the_budget_and_still_answers(server, stub, big_request):
     _wait_idle(server)
     t0 = time.monotonic()
-    r = stub.Repair(big_request(time_limit=30.0, method=pb.PORTFOLIO), timeout=4.0)
+    r = stub.Repair(big_request(time_limit=30.0, method=pb.METHOD_PORTFOLIO), timeout=4.0)
     elapsed = time.monotonic() - t0
     assert elapsed < 4.0
     assert 0 < r.time_limit < 4.0  # min(requested 30 s, deadline - margin)
-    assert r.best.feasible and r.status == "feasible"
+    assert r.best.feasible and r.repair_status == pb.REPAIR_STATUS_FEASIBLE
 
 
 def test_cancelled_call_stops_its_worker_and_health_stays_responsive(server, stub, big_request):
@@ -456,7 +457,7 @@ def test_client_sends_sample_sets_and_arrays_packed(server):
     """A dimod SampleSet goes in packed with its energies as provenance; a short array row
     is refused by the client's own check, naming the field."""
     from flipfix.repair.errors import InputError
-    from flipfix.service.client import FlipfixClient
+    from flipfix.service.client import FlipfixClient, FlipfixError
 
     bqm = dimod.BinaryQuadraticModel({"a": 1.0, "b": -1.0}, {("a", "b"): 2.0, ("b", "c"): -1.0},
                                      0.0, "SPIN")
@@ -469,6 +470,7 @@ def test_client_sends_sample_sets_and_arrays_packed(server):
         order = [ss.variables.index(lab) for lab in lib.problem.labels]
         np.testing.assert_array_equal(lib.values, ss.record.sample[:, order])
         assert [pr["energy"] for pr in lib.provenance] == pytest.approx(list(ss.record.energy))
-        with pytest.raises(InputError) as e:
+        with pytest.raises(FlipfixError) as e:  # found locally, reported as the server would
             fx.add_candidates("ss", np.ones((2, 2), dtype=np.int8))
-        assert e.value.field == "candidates"
+        assert e.value.field == "candidates" and e.value.reason == "INVALID_FIELD"
+        assert e.value.code() == grpc.StatusCode.INVALID_ARGUMENT

@@ -32,7 +32,9 @@ from flipfix.service.convert.constraints import (
     PROTO_FORMS, ProtoForm, constraint_paths, constraint_to_domain, constraint_to_proto,
     constraints_to_compiled, constraints_to_domain, doc_to_constraint, docs_to_constraints,
 )
-from flipfix.service.convert.enums import METHOD_ENUM, METHOD_NAMES, SELECTION_NAMES
+from flipfix.service.convert.enums import (
+    METHOD_ENUM, METHOD_NAMES, PHASE_ENUM, PHASE_NAMES, SELECTION_ENUM, SELECTION_NAMES,
+)
 from flipfix.service.convert.labels import (
     assignment_to_dict, dict_to_assignment, label_to_py, py_to_label, py_to_value, value_to_py,
 )
@@ -40,7 +42,10 @@ from flipfix.service.convert.models import (
     caller_terms, decision_to_domain, decision_to_proto, doc_to_model, model_to_problem,
     problem_to_model,
 )
-from flipfix.service.convert.options import kwargs_to_options, nonneg, options_to_kwargs
+from flipfix.service.convert.options import (
+    DEFAULT_TIME_LIMIT, check_time_limit, kwargs_to_options, method_number, nonneg,
+    options_to_kwargs,
+)
 from flipfix.service.convert.results import (
     reply_to_dict, reply_to_result, reply_values, result_to_reply,
 )
@@ -55,7 +60,8 @@ __all__ = [
     "constraint_paths", "constraints_to_compiled", "constraint_to_proto", "doc_to_constraint",
     "docs_to_constraints",
     "options_to_kwargs", "kwargs_to_options", "nonneg", "METHOD_NAMES", "METHOD_ENUM",
-    "SELECTION_NAMES",
+    "SELECTION_NAMES", "SELECTION_ENUM", "PHASE_ENUM", "PHASE_NAMES", "DEFAULT_TIME_LIMIT", "check_time_limit",
+    "method_number",
     "result_to_reply", "reply_values", "reply_to_result", "reply_to_dict",
     "DEFAULT_SCENARIOS", "family_to_domain", "family_to_proto", "stress_to_kwargs",
     "pareto_to_kwargs", "robustness_to_reply", "stress_to_reply", "pareto_to_reply",

@@ -9,11 +9,11 @@ from flipfix.repair.errors import InputError, LimitError
 from flipfix.repair.model.problem import Problem
 
 from flipfix.service.convert.enums import (
-    AUDIT_METHOD_NAMES, METHOD_NAMES, METHOD_TEXT, REFERENCE_ENUM, REFERENCE_NAMES, SHAPE_ENUM,
-    SHAPE_NAMES, enum_name,
+    METHOD_ENUM, METHOD_NAMES, REFERENCE_ENUM, REFERENCE_NAMES, SHAPE_ENUM, SHAPE_NAMES,
+    STOP_ENUM, STOP_NAMES, enum_name, proto_to_solvers,
 )
 from flipfix.service.convert.labels import label_to_py, py_to_label
-from flipfix.service.convert.options import nonneg
+from flipfix.service.convert.options import DEFAULT_TIME_LIMIT, nonneg, time_limit
 from flipfix.service.convert.results import _point
 from flipfix.service.generated import flipfix_pb2 as pb
 
@@ -40,9 +40,10 @@ def family_to_domain(f: pb.ScenarioFamily, problem: Problem, *, field: str = "fa
     """ScenarioFamily proto -> validated :class:`flipfix.repair.audit.stress.ScenarioFamily`."""
     from flipfix.repair.audit.stress import ScenarioFamily
 
-    reference = enum_name(REFERENCE_NAMES, f.reference, field + ".reference", "UNIFORM or PERTURBED")
+    reference = enum_name(REFERENCE_NAMES, f.reference, field + ".reference",
+                          pb.ReferenceKind)
     shape = enum_name(SHAPE_NAMES, f.hamming_shape, field + ".hamming_shape",
-                      "LINEAR, QUADRATIC or THRESHOLD")
+                      pb.PenaltyShape)
     weights = None
     if len(f.capacity_weights):
         weights = {}
@@ -87,29 +88,30 @@ def stress_to_kwargs(r: pb.StressRequest, problem: Problem, *, default_time_limi
     scenarios = int(r.scenarios) or DEFAULT_SCENARIOS
     if max_scenarios is not None and scenarios > max_scenarios:
         raise LimitError(field + "scenarios", f"{scenarios} scenarios exceed the limit of {max_scenarios}")
-    method = enum_name(AUDIT_METHOD_NAMES, r.method, field + "method", METHOD_TEXT)
-    t = nonneg(r.time_limit, field + "time_limit")
+    method = enum_name(METHOD_NAMES, r.method, field + "method", pb.Method)
+    t = time_limit(r, "time_limit", field + "time_limit", default_time_limit)
     opts: dict = {"flip_price": nonneg(r.flip_price, field + "flip_price")}
     if r.HasField("max_flips"):
         opts["max_flips"] = int(r.max_flips)
     return fam, {
         "scenarios": scenarios, "seed": int(r.seed), "method": method,
-        "time_limit": t if t > 0 else float(default_time_limit),
+        "time_limit": t,
         "epsilon": nonneg(r.epsilon, field + "epsilon"), "repair_options": opts,
     }
 
 
-def pareto_to_kwargs(r: pb.ParetoRequest, *, default_time_limit: float) -> dict:
+def pareto_to_kwargs(r: pb.ParetoRequest, *, default_time_limit: float = DEFAULT_TIME_LIMIT
+                     ) -> dict:
     """ParetoRequest options -> keyword arguments of :func:`flipfix.service.audit_jobs.pareto`."""
-    methods = [enum_name(METHOD_NAMES, m, f"methods[{k}]", METHOD_TEXT)
+    methods = [enum_name(METHOD_NAMES, m, f"methods[{k}]", pb.Method)
                for k, m in enumerate(r.methods)]
     if r.seed >= 2**31:
         raise InputError("seed", f"must be below 2^31, got {r.seed}")
-    t = nonneg(r.time_limit, "time_limit")
+    t = time_limit(r, "time_limit", "time_limit", default_time_limit)
     if r.HasField("fewest_flips_within_percent"):
         nonneg(r.fewest_flips_within_percent, "fewest_flips_within_percent")
     return {"methods": tuple(methods) or ("greedy", "cpsat"),
-            "time_limit": t if t > 0 else float(default_time_limit), "seed": int(r.seed),
+            "time_limit": t, "seed": int(r.seed),
             "include_unchanged": not r.exclude_unchanged}
 
 
@@ -132,9 +134,9 @@ def stress_to_reply(rep, *, matrices: bool = False, time_limit: float = 0.0,
                     revision: int = 0) -> pb.StressReply:
     """:class:`flipfix.repair.audit.stress.StressReport` -> StressReply (NaN figures left unset)."""
     out = pb.StressReply(
-        method=rep.method, seed=rep.seed, epsilon=rep.epsilon,
+        method_used=METHOD_ENUM[rep.method], seed=rep.seed, epsilon=rep.epsilon,
         scenarios_requested=rep.scenarios_requested, scenarios_done=rep.scenarios_done,
-        stopped=rep.stopped, message=rep.message, seconds=rep.seconds, time_limit=time_limit,
+        stop_reason=STOP_ENUM[rep.stopped], message=rep.message, seconds=rep.seconds, time_limit=time_limit,
         correlated=rep.correlated, revision=revision)
     _set_opt(out, "pearson", rep.pearson)
     _set_opt(out, "spearman", rep.spearman)
@@ -206,9 +208,9 @@ def reply_to_stress(r: pb.StressReply, *, family: dict | None = None):
     from flipfix.repair.audit.stress import CandidateStress, StressReport
 
     return StressReport(
-        family=dict(family or {}), method=r.method, seed=int(r.seed), epsilon=r.epsilon,
+        family=dict(family or {}), method=METHOD_NAMES[r.method_used], seed=int(r.seed), epsilon=r.epsilon,
         scenarios_requested=r.scenarios_requested, scenarios_done=r.scenarios_done,
-        stopped=r.stopped, seconds=r.seconds,
+        stopped=STOP_NAMES.get(r.stop_reason, ""), seconds=r.seconds,
         candidates=[CandidateStress(
             candidate_id=c.candidate_id, energy=c.energy, free_variables=c.free_variables,
             wins=c.wins, win_rate=c.win_rate, mean_cost=_get_opt(c, "mean_cost"),
@@ -229,7 +231,8 @@ def reply_to_stress(r: pb.StressReply, *, family: dict | None = None):
 def reply_to_point(p: pb.ParetoPoint):
     from flipfix.repair.result import ParetoPoint
 
-    return ParetoPoint(cost=p.cost, flips=int(p.flips), candidate_id=p.candidate_id, method=p.method)
+    return ParetoPoint(cost=p.cost, flips=int(p.flips), candidate_id=p.candidate_id,
+                       method=proto_to_solvers(p.solvers))
 
 
 def reply_to_curation(r: pb.CurateReply, m: int, selection: str = "greedy"):

@@ -48,17 +48,19 @@ def _provenance(p: pb.Provenance, field: str) -> dict:
 
 def batch_to_arrays(problem: Problem, batch: pb.CandidateBatch, *, field: str = "candidates"
                     ) -> tuple[list[str], np.ndarray, list[dict]]:
-    """CandidateBatch -> (ids ('' = assign one), X int8 (K, n) 0/1 in ``problem.labels``
-    order, K provenance dicts). Non-empty ids must be distinct."""
+    """CandidateBatch -> (K ids ('' = assign one), X int8 (K, n) 0/1 in ``problem.labels``
+    order, K provenance dicts). ``ids`` is empty (K = ``values.count``, every id assigned)
+    or has K entries (``values.count`` must agree), the non-empty ones distinct."""
     ids = list(batch.ids)
-    K = len(ids)
+    K = len(ids) or int(batch.values.count)
     if K == 0:
-        raise InputError(field + ".ids", "is empty: at least one candidate is needed")
+        raise InputError(field + ".values.count", "is 0: at least one candidate is needed")
+    ids = ids or [""] * K
     seen: set = set()
     for k, cid in enumerate(ids):
         if cid:
             if cid in seen:
-                raise InputError(f"{field}.ids[{k}]", f"duplicate candidate id {cid!r}")
+                raise InputError(f"{field}.ids[{k}]", f"duplicate candidate id \"{cid}\"")
             seen.add(cid)
     X = packed_to_array(batch.values, problem.n, field=field + ".values", count=K)
     if len(batch.provenance) not in (0, K):
@@ -121,7 +123,8 @@ def candidates_to_batch(problem: Problem, candidates: Any, *, ids: Sequence[str]
     ``candidates``: a :class:`CandidateSet`, a ``dimod.SampleSet`` (its energies become
     provenance), a numpy array (K, n) of values in the problem's vartype (columns in label
     order) or a candidates JSON document (list of objects). Without ``ids``, arrays and
-    sample sets go with empty ids: the server assigns them (stored: ``c<N>``, inline: ``c<k>``).
+    sample sets go without ids: the server assigns them (stored: ``c<N>`` counting on from
+    ``c0``, inline: ``c<k>``, k the 0-based position, as :meth:`CandidateSet.from_sampleset`).
     """
     if isinstance(candidates, pb.CandidateBatch):
         return candidates
@@ -130,12 +133,12 @@ def candidates_to_batch(problem: Problem, candidates: Any, *, ids: Sequence[str]
     if type(candidates).__name__ == "SampleSet":
         cs = CandidateSet.from_sampleset(problem, candidates, ids=ids, field_name=field)
         energies = np.asarray(candidates.record.energy, dtype=np.float64)
-        return arrays_to_batch(cs.ids if ids is not None else [""] * len(cs), cs.X,
+        return arrays_to_batch(cs.ids if ids is not None else [], cs.X,
                                [{"source": "dimod.SampleSet", "energy": float(e)}
                                 for e in energies])
     if isinstance(candidates, np.ndarray):
         cs = CandidateSet.from_array(problem, candidates, ids=ids, field_name=field)
-        return arrays_to_batch(cs.ids if ids is not None else [""] * len(cs), cs.X)
+        return arrays_to_batch(cs.ids if ids is not None else [], cs.X)
     recs = documents.parse_candidate_records(candidates, problem, field=field)
     cs = CandidateSet.from_mappings(
         problem, [{"id": r["id"], "assignment": r["assignment"]} for r in recs], field_name=field)

@@ -51,9 +51,6 @@ class ProtoForm:
     write: Callable[[Any], Any]
 
 
-_SHAPES = "LINEAR, QUADRATIC, THRESHOLD or TABLE"
-
-
 def _summed_terms(terms, field: str) -> dict:
     """Repeated LinearTerms -> ``{label: bias}``, repeated labels summed."""
     out: dict = {}
@@ -70,7 +67,7 @@ def _terms(mapping: Mapping) -> list:
 # ------------------------------------------------------------------ bit level
 def _read_hamming(h: pb.HammingPenalty, f: str) -> dict:
     return {"reference": assignment_to_dict(h.reference, f + ".reference"), "weight": h.weight,
-            "shape": enum_name(SHAPE_NAMES, h.shape, f + ".shape", _SHAPES),
+            "shape": enum_name(SHAPE_NAMES, h.shape, f + ".shape", pb.PenaltyShape),
             "threshold": h.threshold, "table": list(h.table) or None,
             "variables": [label_to_py(v, f"{f}.variables[{k}]")
                           for k, v in enumerate(h.variables)] or None}
@@ -98,7 +95,7 @@ def _write_extra(c: ExtraTerms) -> pb.ExtraTerms:
 
 def _read_linear(ln: pb.LinearConstraint, f: str) -> dict:
     return {"terms": _summed_terms(ln.terms, f + ".terms"),
-            "sense": enum_name(SENSE_NAMES, ln.sense, f + ".sense", "LE, EQ or GE"),
+            "sense": enum_name(SENSE_NAMES, ln.sense, f + ".sense", pb.Sense),
             "rhs": ln.rhs}
 
 
@@ -119,9 +116,10 @@ def _read_force(m: pb.ForceValue, f: str) -> dict:
 def _read_change(dc: pb.DecisionChangePenalty, f: str) -> dict:
     return {"reference": {r.decision: value_to_py(r.value, f"{f}.reference[{k}].value")
                           for k, r in enumerate(dc.reference)},
-            "weight": dc.weight, "shape": enum_name(SHAPE_NAMES, dc.shape, f + ".shape", _SHAPES),
+            "weight": dc.weight, "shape": enum_name(SHAPE_NAMES, dc.shape, f + ".shape", pb.PenaltyShape),
             "threshold": dc.threshold, "table": list(dc.table) or None,
-            "distance": enum_name(DISTANCE_NAMES, dc.distance, f + ".distance", "CHANGED or ABSOLUTE")}
+            "distance": enum_name(DISTANCE_NAMES, dc.distance, f + ".distance",
+                                  pb.DecisionDistance)}
 
 
 def _write_change(c: DecisionChangePenalty) -> pb.DecisionChangePenalty:

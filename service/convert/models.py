@@ -22,7 +22,7 @@ __all__ = ["decision_to_domain", "decision_to_proto", "model_to_problem", "calle
 def decision_to_domain(d: pb.Decision, field: str) -> Decision:
     """A Decision proto -> :class:`flipfix.repair.model.problem.Decision` (sizes and bit ownership
     are checked with the problem, by :func:`flipfix.repair.model.problem.validate_decisions`)."""
-    encoding = enum_name(ENCODING_NAMES, d.encoding, field + ".encoding", "ONE_HOT or DOMAIN_WALL")
+    encoding = enum_name(ENCODING_NAMES, d.encoding, field + ".encoding", pb.Encoding)
     variables = tuple(label_to_py(v, f"{field}.variables[{j}]") for j, v in enumerate(d.variables))
     values = tuple(value_to_py(v, f"{field}.values[{j}]") for j, v in enumerate(d.values))
     return Decision(d.name, encoding, variables, values)
@@ -35,7 +35,7 @@ def decision_to_proto(d: Decision) -> pb.Decision:
 
 
 def _vartype(model: pb.ProblemModel, field: str) -> str:
-    return enum_name(VARTYPE_NAMES, model.vartype, field + ".vartype", "BINARY or SPIN")
+    return enum_name(VARTYPE_NAMES, model.vartype, field + ".vartype", pb.Vartype)
 
 
 def model_to_problem(model: pb.ProblemModel, *, field: str = "model") -> Problem:
@@ -92,7 +92,8 @@ def problem_to_model(problem: Problem) -> pb.ProblemModel:
     indexed (packed arrays)."""
     h, i, j, J, off = caller_terms(problem)
     m = pb.ProblemModel(
-        vartype=pb.SPIN if problem.vartype == SPIN else pb.BINARY, offset=off,
+        vartype=pb.VARTYPE_SPIN if problem.vartype == SPIN else pb.VARTYPE_BINARY,
+        offset=off,
         labels=[py_to_label(lab) for lab in problem.labels],
         indexed=pb.IndexedTerms(linear=h.tolist(), u=i.tolist(), v=j.tolist(), bias=J.tolist()))
     m.decisions.extend(decision_to_proto(d) for d in problem.decisions)
@@ -108,7 +109,7 @@ def doc_to_model(doc: Any, *, field: str = "problem", problem: Problem | None = 
     """
     if problem is None:
         problem = documents.parse_problem(doc, field=field)
-    m = pb.ProblemModel(vartype=pb.SPIN if problem.vartype == SPIN else pb.BINARY,
+    m = pb.ProblemModel(vartype=pb.VARTYPE_SPIN if problem.vartype == SPIN else pb.VARTYPE_BINARY,
                         offset=float(doc.get("offset", 0.0)),
                         labels=[py_to_label(lab) for lab in problem.labels])
     for key, bias in doc.get("linear", {}).items():

@@ -6,30 +6,46 @@ import math
 
 from flipfix.repair.errors import InputError
 
-from flipfix.service.convert.enums import METHOD_ENUM, METHOD_NAMES, METHOD_TEXT, enum_name
+from flipfix.service.convert.enums import METHOD_ENUM, METHOD_NAMES, enum_name
 from flipfix.service.generated import flipfix_pb2 as pb
 
-__all__ = ["options_to_kwargs", "kwargs_to_options", "nonneg"]
+__all__ = ["options_to_kwargs", "kwargs_to_options", "nonneg", "time_limit", "check_time_limit",
+           "method_number", "DEFAULT_TIME_LIMIT"]
+
+#: the server's default search budget (s) of a Repair and a ParetoFront call, as the proto states
+DEFAULT_TIME_LIMIT = 5.0
 
 
 def nonneg(v: float, field: str) -> float:
     """A finite number >= 0, or an InputError naming ``field``."""
     if not math.isfinite(v) or v < 0:
-        raise InputError(field, f"must be a finite number >= 0, got {v!r}")
+        raise InputError(field, f"must be a finite number >= 0, got {v:g}")
     return float(v)
 
 
-def options_to_kwargs(o: pb.RepairOptions, *, default_time_limit: float = 5.0,
+def check_time_limit(seconds: float, field: str) -> float:
+    """A time limit the caller set: a finite number of seconds > 0, or an InputError
+    naming ``field`` (0 is refused rather than read as "the default": leave it unset)."""
+    if not (math.isfinite(seconds) and seconds > 0):
+        raise InputError(field, f"must be a number of seconds > 0, got {seconds:g} "
+                                "(leave it unset for the server's default)")
+    return float(seconds)
+
+
+def time_limit(msg, name: str, field: str, default: float) -> float:
+    """The optional time-limit field ``name`` of ``msg``: checked when set, else ``default``."""
+    return check_time_limit(getattr(msg, name), field) if msg.HasField(name) else float(default)
+
+
+def options_to_kwargs(o: pb.RepairOptions, *, default_time_limit: float = DEFAULT_TIME_LIMIT,
                       field: str = "options") -> dict:
     """RepairOptions -> keyword arguments of :func:`flipfix.repair.repair` (time limit uncapped)."""
-    method = enum_name(METHOD_NAMES, o.method, field + ".method", METHOD_TEXT)
-    if not math.isfinite(o.time_limit) or o.time_limit < 0:
-        raise InputError(field + ".time_limit", f"must be >= 0 seconds, got {o.time_limit!r}")
-    if not math.isfinite(o.flip_price) or o.flip_price < 0:
-        raise InputError(field + ".flip_price", f"must be >= 0, got {o.flip_price!r}")
+    method = enum_name(METHOD_NAMES, o.method, field + ".method", pb.Method)
+    budget = time_limit(o, "time_limit", field + ".time_limit", default_time_limit)
+    nonneg(o.flip_price, field + ".flip_price")
     return {
         "method": method,
-        "time_limit": float(o.time_limit) if o.time_limit > 0 else float(default_time_limit),
+        "time_limit": budget,
         "max_flips": int(o.max_flips) if o.HasField("max_flips") else None,
         "flip_price": float(o.flip_price),
         "seed": int(o.seed),
@@ -38,15 +54,25 @@ def options_to_kwargs(o: pb.RepairOptions, *, default_time_limit: float = 5.0,
     }
 
 
-def kwargs_to_options(*, method: str = "portfolio", time_limit: float = 0.0,
+def method_number(method: str, field: str = "method") -> int:
+    """A core method name (``"portfolio"``, ``"greedy"``, ``"cpsat"``) -> Method number."""
+    if method not in METHOD_ENUM:
+        raise InputError(field, f"must be one of {', '.join(sorted(METHOD_ENUM))}, got "
+                                f"{str(method)[:40]}")
+    return METHOD_ENUM[method]
+
+
+def kwargs_to_options(*, method: str = "portfolio", time_limit: float | None = None,
                       max_flips: int | None = None, flip_price: float = 0.0, seed: int = 0,
                       workers: int = 1, audit_limit: int | None = None, pareto: bool = False
                       ) -> pb.RepairOptions:
-    if method not in METHOD_ENUM:
-        raise InputError("method", f"must be one of {sorted(METHOD_ENUM)}, got {method!r}")
-    o = pb.RepairOptions(method=METHOD_ENUM[method], time_limit=float(time_limit or 0.0),
+    """Keyword arguments (as :func:`flipfix.repair.repair` takes them) -> RepairOptions;
+    ``time_limit=None`` leaves it unset (the server's default), 0 is refused here."""
+    o = pb.RepairOptions(method=method_number(method, "options.method"),
                          flip_price=float(flip_price), seed=int(seed), workers=int(workers),
                          pareto=bool(pareto))
+    if time_limit is not None:
+        o.time_limit = check_time_limit(float(time_limit), "options.time_limit")
     if max_flips is not None:
         o.max_flips = int(max_flips)
     if audit_limit is not None:

@@ -15,6 +15,10 @@ from flipfix.repair.result import AuditRow, ParetoPoint, RepairResult, Solution
 
 from flipfix.service import packing
 from flipfix.service.convert.candidates import array_to_packed, packed_to_array
+from flipfix.service.convert.enums import (
+    CPSAT_ENUM, CPSAT_NAMES, METHOD_ENUM, METHOD_NAMES, STATUS_ENUM, STATUS_NAMES,
+    proto_to_solvers, solvers_to_proto,
+)
 from flipfix.service.convert.labels import py_to_value, value_to_py
 from flipfix.service.generated import flipfix_pb2 as pb
 
@@ -37,7 +41,7 @@ def _change(decision, old, new) -> pb.DecisionChange:
 
 def _point(p) -> pb.ParetoPoint:
     return pb.ParetoPoint(cost=float(p.cost), flips=int(p.flips), candidate_id=p.candidate_id,
-                          method=p.method)
+                          solvers=solvers_to_proto(p.method))
 
 
 def result_to_reply(res: RepairResult, *, audit_limit: int | None = None,
@@ -48,23 +52,25 @@ def result_to_reply(res: RepairResult, *, audit_limit: int | None = None,
         values=array_to_packed(np.asarray(b.x, dtype=np.int8)),
         cost=float(b.cost), objective=float(b.objective), base_energy=float(b.base_energy),
         penalties=_named(b.penalties), flips=int(b.flips), feasible=bool(b.feasible),
-        violation=float(b.violation), violations=_named(b.violations), method=b.method,
+        violation=float(b.violation), violations=_named(b.violations), solvers=solvers_to_proto(b.method),
         changes=[_change(d, o, n) for d, o, n in b.changes],
         decisions_changed=int(b.decisions_changed), plan_distance=b.plan_distance)
     rows = res.audit if audit_limit is None else res.audit[:audit_limit]
     return pb.RepairReply(
-        status=res.status, message=res.message, method=res.method, seed=int(res.seed),
+        repair_status=STATUS_ENUM[res.status], message=res.message,
+        method_used=METHOD_ENUM[res.method], seed=int(res.seed),
         seconds=float(res.seconds), time_limit=float(time_limit), best=best,
         audit=[pb.AuditRow(candidate_id=r.candidate_id, cost_before=float(r.cost_before),
                            feasible_before=bool(r.feasible_before), cost=float(r.cost_after),
                            objective=float(r.objective_after), flips=int(r.flips),
                            feasible=bool(r.feasible), violation=float(r.violation),
-                           method=r.method, seconds=float(r.seconds),
+                           solvers=solvers_to_proto(r.method), seconds=float(r.seconds),
                            decisions_changed=int(r.decisions_changed),
                            encoding_issues=[pb.EncodingIssue(decision=d, how=h)
                                             for d, h in r.encoding_issues]) for r in rows],
         audit_total=len(res.audit), pareto=[_point(p) for p in res.pareto],
-        scaling_error=float(res.scaling_error), cpsat_status=res.cpsat_status, revision=revision)
+        scaling_error=float(res.scaling_error), cpsat_outcome=CPSAT_ENUM[res.cpsat_status],
+        revision=revision)
 
 
 def reply_values(r: pb.RepairReply, problem: Problem) -> np.ndarray:
@@ -98,23 +104,24 @@ def reply_to_result(r: pb.RepairReply, problem: Problem | None = None) -> Repair
         objective=b.objective, base_energy=b.base_energy,
         penalties={p.name: p.value for p in b.penalties}, flips=int(b.flips),
         feasible=bool(b.feasible), violation=b.violation,
-        violations={p.name: p.value for p in b.violations}, method=b.method,
+        violations={p.name: p.value for p in b.violations}, method=proto_to_solvers(b.solvers),
         changes=[(c.decision, _value(c, "old_value"), _value(c, "new_value")) for c in b.changes],
         decisions_changed=int(b.decisions_changed), repaired_from=b.repaired_from,
         plan_distance=b.plan_distance if b.HasField("plan_distance") else None)
     audit = [AuditRow(candidate_id=a.candidate_id, cost_before=a.cost_before,
                       feasible_before=bool(a.feasible_before), cost_after=a.cost,
                       objective_after=a.objective, flips=int(a.flips), feasible=bool(a.feasible),
-                      violation=a.violation, method=a.method, seconds=a.seconds,
+                      violation=a.violation, method=proto_to_solvers(a.solvers), seconds=a.seconds,
                       decisions_changed=int(a.decisions_changed),
                       encoding_issues=[(e.decision, e.how) for e in a.encoding_issues])
              for a in r.audit]
     return RepairResult(
-        status=r.status, best=best, audit=audit, seed=int(r.seed), method=r.method,
+        status=STATUS_NAMES.get(r.repair_status, ""), best=best, audit=audit, seed=int(r.seed),
+        method=METHOD_NAMES[r.method_used],
         seconds=r.seconds, message=r.message,
         pareto=[ParetoPoint(cost=p.cost, flips=int(p.flips), candidate_id=p.candidate_id,
-                            method=p.method) for p in r.pareto],
-        scaling_error=r.scaling_error, cpsat_status=r.cpsat_status)
+                            method=proto_to_solvers(p.solvers)) for p in r.pareto],
+        scaling_error=r.scaling_error, cpsat_status=CPSAT_NAMES.get(r.cpsat_outcome, ""))
 
 
 def reply_to_dict(r: pb.RepairReply, problem: Problem | None = None) -> dict:

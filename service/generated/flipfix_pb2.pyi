@@ -8,85 +8,177 @@ from typing import ClassVar as _ClassVar, Optional as _Optional, Union as _Union
 
 DESCRIPTOR: _descriptor.FileDescriptor
 
+class ErrorReason(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+    __slots__ = ()
+    ERROR_REASON_UNSPECIFIED: _ClassVar[ErrorReason]
+    ERROR_REASON_INVALID_FIELD: _ClassVar[ErrorReason]
+    ERROR_REASON_LIMIT_EXCEEDED: _ClassVar[ErrorReason]
+    ERROR_REASON_QUEUE_FULL: _ClassVar[ErrorReason]
+    ERROR_REASON_NOT_FOUND: _ClassVar[ErrorReason]
+    ERROR_REASON_ALREADY_EXISTS: _ClassVar[ErrorReason]
+    ERROR_REASON_STATE_CONFLICT: _ClassVar[ErrorReason]
+    ERROR_REASON_TRANSIENT: _ClassVar[ErrorReason]
+    ERROR_REASON_INTERNAL: _ClassVar[ErrorReason]
+
 class Vartype(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = ()
     VARTYPE_UNSPECIFIED: _ClassVar[Vartype]
-    BINARY: _ClassVar[Vartype]
-    SPIN: _ClassVar[Vartype]
+    VARTYPE_BINARY: _ClassVar[Vartype]
+    VARTYPE_SPIN: _ClassVar[Vartype]
 
 class Encoding(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = ()
     ENCODING_UNSPECIFIED: _ClassVar[Encoding]
-    ONE_HOT: _ClassVar[Encoding]
-    DOMAIN_WALL: _ClassVar[Encoding]
+    ENCODING_ONE_HOT: _ClassVar[Encoding]
+    ENCODING_DOMAIN_WALL: _ClassVar[Encoding]
 
 class PenaltyShape(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = ()
-    SHAPE_UNSPECIFIED: _ClassVar[PenaltyShape]
-    LINEAR: _ClassVar[PenaltyShape]
-    QUADRATIC: _ClassVar[PenaltyShape]
-    THRESHOLD: _ClassVar[PenaltyShape]
-    TABLE: _ClassVar[PenaltyShape]
+    PENALTY_SHAPE_UNSPECIFIED: _ClassVar[PenaltyShape]
+    PENALTY_SHAPE_LINEAR: _ClassVar[PenaltyShape]
+    PENALTY_SHAPE_QUADRATIC: _ClassVar[PenaltyShape]
+    PENALTY_SHAPE_THRESHOLD: _ClassVar[PenaltyShape]
+    PENALTY_SHAPE_TABLE: _ClassVar[PenaltyShape]
 
 class Sense(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = ()
     SENSE_UNSPECIFIED: _ClassVar[Sense]
-    LE: _ClassVar[Sense]
-    EQ: _ClassVar[Sense]
-    GE: _ClassVar[Sense]
+    SENSE_LE: _ClassVar[Sense]
+    SENSE_EQ: _ClassVar[Sense]
+    SENSE_GE: _ClassVar[Sense]
 
 class DecisionDistance(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = ()
-    DISTANCE_UNSPECIFIED: _ClassVar[DecisionDistance]
-    CHANGED: _ClassVar[DecisionDistance]
-    ABSOLUTE: _ClassVar[DecisionDistance]
+    DECISION_DISTANCE_UNSPECIFIED: _ClassVar[DecisionDistance]
+    DECISION_DISTANCE_CHANGED: _ClassVar[DecisionDistance]
+    DECISION_DISTANCE_ABSOLUTE: _ClassVar[DecisionDistance]
 
 class Method(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = ()
     METHOD_UNSPECIFIED: _ClassVar[Method]
-    PORTFOLIO: _ClassVar[Method]
-    GREEDY: _ClassVar[Method]
-    CPSAT: _ClassVar[Method]
+    METHOD_PORTFOLIO: _ClassVar[Method]
+    METHOD_GREEDY: _ClassVar[Method]
+    METHOD_CPSAT: _ClassVar[Method]
+
+class Solver(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+    __slots__ = ()
+    SOLVER_UNSPECIFIED: _ClassVar[Solver]
+    SOLVER_UNREPAIRED: _ClassVar[Solver]
+    SOLVER_UNCHANGED: _ClassVar[Solver]
+    SOLVER_GREEDY: _ClassVar[Solver]
+    SOLVER_ANNEAL: _ClassVar[Solver]
+    SOLVER_CPSAT: _ClassVar[Solver]
+
+class RepairStatus(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+    __slots__ = ()
+    REPAIR_STATUS_UNSPECIFIED: _ClassVar[RepairStatus]
+    REPAIR_STATUS_OPTIMAL: _ClassVar[RepairStatus]
+    REPAIR_STATUS_FEASIBLE: _ClassVar[RepairStatus]
+    REPAIR_STATUS_INFEASIBLE: _ClassVar[RepairStatus]
+    REPAIR_STATUS_NO_FEASIBLE_FOUND: _ClassVar[RepairStatus]
+
+class CpsatStatus(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+    __slots__ = ()
+    CPSAT_STATUS_UNSPECIFIED: _ClassVar[CpsatStatus]
+    CPSAT_STATUS_OPTIMAL: _ClassVar[CpsatStatus]
+    CPSAT_STATUS_FEASIBLE: _ClassVar[CpsatStatus]
+    CPSAT_STATUS_INFEASIBLE: _ClassVar[CpsatStatus]
+    CPSAT_STATUS_UNKNOWN: _ClassVar[CpsatStatus]
+    CPSAT_STATUS_INVALID: _ClassVar[CpsatStatus]
+
+class Phase(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+    __slots__ = ()
+    PHASE_UNSPECIFIED: _ClassVar[Phase]
+    PHASE_GREEDY: _ClassVar[Phase]
+    PHASE_ANNEAL: _ClassVar[Phase]
+    PHASE_NEIGHBOURHOOD: _ClassVar[Phase]
+    PHASE_FULL: _ClassVar[Phase]
+    PHASE_CPSAT: _ClassVar[Phase]
+    PHASE_STRESS: _ClassVar[Phase]
 
 class ReferenceKind(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = ()
-    REFERENCE_UNSPECIFIED: _ClassVar[ReferenceKind]
-    UNIFORM: _ClassVar[ReferenceKind]
-    PERTURBED: _ClassVar[ReferenceKind]
+    REFERENCE_KIND_UNSPECIFIED: _ClassVar[ReferenceKind]
+    REFERENCE_KIND_UNIFORM: _ClassVar[ReferenceKind]
+    REFERENCE_KIND_PERTURBED: _ClassVar[ReferenceKind]
+
+class StopReason(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+    __slots__ = ()
+    STOP_REASON_UNSPECIFIED: _ClassVar[StopReason]
+    STOP_REASON_DONE: _ClassVar[StopReason]
+    STOP_REASON_TIME_LIMIT: _ClassVar[StopReason]
+    STOP_REASON_CANCELLED: _ClassVar[StopReason]
 
 class Selection(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = ()
     SELECTION_UNSPECIFIED: _ClassVar[Selection]
-    FORWARD: _ClassVar[Selection]
-    EXHAUSTIVE: _ClassVar[Selection]
+    SELECTION_FORWARD: _ClassVar[Selection]
+    SELECTION_EXHAUSTIVE: _ClassVar[Selection]
+ERROR_REASON_UNSPECIFIED: ErrorReason
+ERROR_REASON_INVALID_FIELD: ErrorReason
+ERROR_REASON_LIMIT_EXCEEDED: ErrorReason
+ERROR_REASON_QUEUE_FULL: ErrorReason
+ERROR_REASON_NOT_FOUND: ErrorReason
+ERROR_REASON_ALREADY_EXISTS: ErrorReason
+ERROR_REASON_STATE_CONFLICT: ErrorReason
+ERROR_REASON_TRANSIENT: ErrorReason
+ERROR_REASON_INTERNAL: ErrorReason
 VARTYPE_UNSPECIFIED: Vartype
-BINARY: Vartype
-SPIN: Vartype
+VARTYPE_BINARY: Vartype
+VARTYPE_SPIN: Vartype
 ENCODING_UNSPECIFIED: Encoding
-ONE_HOT: Encoding
-DOMAIN_WALL: Encoding
-SHAPE_UNSPECIFIED: PenaltyShape
-LINEAR: PenaltyShape
-QUADRATIC: PenaltyShape
-THRESHOLD: PenaltyShape
-TABLE: PenaltyShape
+ENCODING_ONE_HOT: Encoding
+ENCODING_DOMAIN_WALL: Encoding
+PENALTY_SHAPE_UNSPECIFIED: PenaltyShape
+PENALTY_SHAPE_LINEAR: PenaltyShape
+PENALTY_SHAPE_QUADRATIC: PenaltyShape
+PENALTY_SHAPE_THRESHOLD: PenaltyShape
+PENALTY_SHAPE_TABLE: PenaltyShape
 SENSE_UNSPECIFIED: Sense
-LE: Sense
-EQ: Sense
-GE: Sense
-DISTANCE_UNSPECIFIED: DecisionDistance
-CHANGED: DecisionDistance
-ABSOLUTE: DecisionDistance
+SENSE_LE: Sense
+SENSE_EQ: Sense
+SENSE_GE: Sense
+DECISION_DISTANCE_UNSPECIFIED: DecisionDistance
+DECISION_DISTANCE_CHANGED: DecisionDistance
+DECISION_DISTANCE_ABSOLUTE: DecisionDistance
 METHOD_UNSPECIFIED: Method
-PORTFOLIO: Method
-GREEDY: Method
-CPSAT: Method
-REFERENCE_UNSPECIFIED: ReferenceKind
-UNIFORM: ReferenceKind
-PERTURBED: ReferenceKind
+METHOD_PORTFOLIO: Method
+METHOD_GREEDY: Method
+METHOD_CPSAT: Method
+SOLVER_UNSPECIFIED: Solver
+SOLVER_UNREPAIRED: Solver
+SOLVER_UNCHANGED: Solver
+SOLVER_GREEDY: Solver
+SOLVER_ANNEAL: Solver
+SOLVER_CPSAT: Solver
+REPAIR_STATUS_UNSPECIFIED: RepairStatus
+REPAIR_STATUS_OPTIMAL: RepairStatus
+REPAIR_STATUS_FEASIBLE: RepairStatus
+REPAIR_STATUS_INFEASIBLE: RepairStatus
+REPAIR_STATUS_NO_FEASIBLE_FOUND: RepairStatus
+CPSAT_STATUS_UNSPECIFIED: CpsatStatus
+CPSAT_STATUS_OPTIMAL: CpsatStatus
+CPSAT_STATUS_FEASIBLE: CpsatStatus
+CPSAT_STATUS_INFEASIBLE: CpsatStatus
+CPSAT_STATUS_UNKNOWN: CpsatStatus
+CPSAT_STATUS_INVALID: CpsatStatus
+PHASE_UNSPECIFIED: Phase
+PHASE_GREEDY: Phase
+PHASE_ANNEAL: Phase
+PHASE_NEIGHBOURHOOD: Phase
+PHASE_FULL: Phase
+PHASE_CPSAT: Phase
+PHASE_STRESS: Phase
+REFERENCE_KIND_UNSPECIFIED: ReferenceKind
+REFERENCE_KIND_UNIFORM: ReferenceKind
+REFERENCE_KIND_PERTURBED: ReferenceKind
+STOP_REASON_UNSPECIFIED: StopReason
+STOP_REASON_DONE: StopReason
+STOP_REASON_TIME_LIMIT: StopReason
+STOP_REASON_CANCELLED: StopReason
 SELECTION_UNSPECIFIED: Selection
-FORWARD: Selection
-EXHAUSTIVE: Selection
+SELECTION_FORWARD: Selection
+SELECTION_EXHAUSTIVE: Selection
 
 class Label(_message.Message):
     __slots__ = ("str", "int")
@@ -529,7 +621,7 @@ class DecisionChange(_message.Message):
     def __init__(self, decision: _Optional[str] = ..., old_value: _Optional[_Union[DecisionValue, _Mapping]] = ..., new_value: _Optional[_Union[DecisionValue, _Mapping]] = ...) -> None: ...
 
 class Solution(_message.Message):
-    __slots__ = ("candidate_id", "values", "repaired_from", "cost", "objective", "base_energy", "penalties", "flips", "feasible", "violation", "violations", "method", "changes", "decisions_changed", "plan_distance")
+    __slots__ = ("candidate_id", "values", "repaired_from", "cost", "objective", "base_energy", "penalties", "flips", "feasible", "violation", "violations", "changes", "decisions_changed", "plan_distance", "solvers")
     CANDIDATE_ID_FIELD_NUMBER: _ClassVar[int]
     VALUES_FIELD_NUMBER: _ClassVar[int]
     REPAIRED_FROM_FIELD_NUMBER: _ClassVar[int]
@@ -541,10 +633,10 @@ class Solution(_message.Message):
     FEASIBLE_FIELD_NUMBER: _ClassVar[int]
     VIOLATION_FIELD_NUMBER: _ClassVar[int]
     VIOLATIONS_FIELD_NUMBER: _ClassVar[int]
-    METHOD_FIELD_NUMBER: _ClassVar[int]
     CHANGES_FIELD_NUMBER: _ClassVar[int]
     DECISIONS_CHANGED_FIELD_NUMBER: _ClassVar[int]
     PLAN_DISTANCE_FIELD_NUMBER: _ClassVar[int]
+    SOLVERS_FIELD_NUMBER: _ClassVar[int]
     candidate_id: str
     values: PackedAssignments
     repaired_from: str
@@ -556,14 +648,14 @@ class Solution(_message.Message):
     feasible: bool
     violation: float
     violations: _containers.RepeatedCompositeFieldContainer[NamedValue]
-    method: str
     changes: _containers.RepeatedCompositeFieldContainer[DecisionChange]
     decisions_changed: int
     plan_distance: int
-    def __init__(self, candidate_id: _Optional[str] = ..., values: _Optional[_Union[PackedAssignments, _Mapping]] = ..., repaired_from: _Optional[str] = ..., cost: _Optional[float] = ..., objective: _Optional[float] = ..., base_energy: _Optional[float] = ..., penalties: _Optional[_Iterable[_Union[NamedValue, _Mapping]]] = ..., flips: _Optional[int] = ..., feasible: _Optional[bool] = ..., violation: _Optional[float] = ..., violations: _Optional[_Iterable[_Union[NamedValue, _Mapping]]] = ..., method: _Optional[str] = ..., changes: _Optional[_Iterable[_Union[DecisionChange, _Mapping]]] = ..., decisions_changed: _Optional[int] = ..., plan_distance: _Optional[int] = ...) -> None: ...
+    solvers: _containers.RepeatedScalarFieldContainer[Solver]
+    def __init__(self, candidate_id: _Optional[str] = ..., values: _Optional[_Union[PackedAssignments, _Mapping]] = ..., repaired_from: _Optional[str] = ..., cost: _Optional[float] = ..., objective: _Optional[float] = ..., base_energy: _Optional[float] = ..., penalties: _Optional[_Iterable[_Union[NamedValue, _Mapping]]] = ..., flips: _Optional[int] = ..., feasible: _Optional[bool] = ..., violation: _Optional[float] = ..., violations: _Optional[_Iterable[_Union[NamedValue, _Mapping]]] = ..., changes: _Optional[_Iterable[_Union[DecisionChange, _Mapping]]] = ..., decisions_changed: _Optional[int] = ..., plan_distance: _Optional[int] = ..., solvers: _Optional[_Iterable[_Union[Solver, str]]] = ...) -> None: ...
 
 class AuditRow(_message.Message):
-    __slots__ = ("candidate_id", "cost_before", "feasible_before", "cost", "objective", "flips", "feasible", "violation", "method", "seconds", "decisions_changed", "encoding_issues")
+    __slots__ = ("candidate_id", "cost_before", "feasible_before", "cost", "objective", "flips", "feasible", "violation", "seconds", "decisions_changed", "encoding_issues", "solvers")
     CANDIDATE_ID_FIELD_NUMBER: _ClassVar[int]
     COST_BEFORE_FIELD_NUMBER: _ClassVar[int]
     FEASIBLE_BEFORE_FIELD_NUMBER: _ClassVar[int]
@@ -572,10 +664,10 @@ class AuditRow(_message.Message):
     FLIPS_FIELD_NUMBER: _ClassVar[int]
     FEASIBLE_FIELD_NUMBER: _ClassVar[int]
     VIOLATION_FIELD_NUMBER: _ClassVar[int]
-    METHOD_FIELD_NUMBER: _ClassVar[int]
     SECONDS_FIELD_NUMBER: _ClassVar[int]
     DECISIONS_CHANGED_FIELD_NUMBER: _ClassVar[int]
     ENCODING_ISSUES_FIELD_NUMBER: _ClassVar[int]
+    SOLVERS_FIELD_NUMBER: _ClassVar[int]
     candidate_id: str
     cost_before: float
     feasible_before: bool
@@ -584,11 +676,11 @@ class AuditRow(_message.Message):
     flips: int
     feasible: bool
     violation: float
-    method: str
     seconds: float
     decisions_changed: int
     encoding_issues: _containers.RepeatedCompositeFieldContainer[EncodingIssue]
-    def __init__(self, candidate_id: _Optional[str] = ..., cost_before: _Optional[float] = ..., feasible_before: _Optional[bool] = ..., cost: _Optional[float] = ..., objective: _Optional[float] = ..., flips: _Optional[int] = ..., feasible: _Optional[bool] = ..., violation: _Optional[float] = ..., method: _Optional[str] = ..., seconds: _Optional[float] = ..., decisions_changed: _Optional[int] = ..., encoding_issues: _Optional[_Iterable[_Union[EncodingIssue, _Mapping]]] = ...) -> None: ...
+    solvers: _containers.RepeatedScalarFieldContainer[Solver]
+    def __init__(self, candidate_id: _Optional[str] = ..., cost_before: _Optional[float] = ..., feasible_before: _Optional[bool] = ..., cost: _Optional[float] = ..., objective: _Optional[float] = ..., flips: _Optional[int] = ..., feasible: _Optional[bool] = ..., violation: _Optional[float] = ..., seconds: _Optional[float] = ..., decisions_changed: _Optional[int] = ..., encoding_issues: _Optional[_Iterable[_Union[EncodingIssue, _Mapping]]] = ..., solvers: _Optional[_Iterable[_Union[Solver, str]]] = ...) -> None: ...
 
 class EncodingIssue(_message.Message):
     __slots__ = ("decision", "how")
@@ -599,22 +691,20 @@ class EncodingIssue(_message.Message):
     def __init__(self, decision: _Optional[str] = ..., how: _Optional[str] = ...) -> None: ...
 
 class ParetoPoint(_message.Message):
-    __slots__ = ("cost", "flips", "candidate_id", "method")
+    __slots__ = ("cost", "flips", "candidate_id", "solvers")
     COST_FIELD_NUMBER: _ClassVar[int]
     FLIPS_FIELD_NUMBER: _ClassVar[int]
     CANDIDATE_ID_FIELD_NUMBER: _ClassVar[int]
-    METHOD_FIELD_NUMBER: _ClassVar[int]
+    SOLVERS_FIELD_NUMBER: _ClassVar[int]
     cost: float
     flips: int
     candidate_id: str
-    method: str
-    def __init__(self, cost: _Optional[float] = ..., flips: _Optional[int] = ..., candidate_id: _Optional[str] = ..., method: _Optional[str] = ...) -> None: ...
+    solvers: _containers.RepeatedScalarFieldContainer[Solver]
+    def __init__(self, cost: _Optional[float] = ..., flips: _Optional[int] = ..., candidate_id: _Optional[str] = ..., solvers: _Optional[_Iterable[_Union[Solver, str]]] = ...) -> None: ...
 
 class RepairReply(_message.Message):
-    __slots__ = ("status", "message", "method", "seed", "seconds", "time_limit", "best", "audit", "audit_total", "pareto", "scaling_error", "cpsat_status", "revision")
-    STATUS_FIELD_NUMBER: _ClassVar[int]
+    __slots__ = ("message", "seed", "seconds", "time_limit", "best", "audit", "audit_total", "pareto", "scaling_error", "revision", "repair_status", "method_used", "cpsat_outcome")
     MESSAGE_FIELD_NUMBER: _ClassVar[int]
-    METHOD_FIELD_NUMBER: _ClassVar[int]
     SEED_FIELD_NUMBER: _ClassVar[int]
     SECONDS_FIELD_NUMBER: _ClassVar[int]
     TIME_LIMIT_FIELD_NUMBER: _ClassVar[int]
@@ -623,11 +713,11 @@ class RepairReply(_message.Message):
     AUDIT_TOTAL_FIELD_NUMBER: _ClassVar[int]
     PARETO_FIELD_NUMBER: _ClassVar[int]
     SCALING_ERROR_FIELD_NUMBER: _ClassVar[int]
-    CPSAT_STATUS_FIELD_NUMBER: _ClassVar[int]
     REVISION_FIELD_NUMBER: _ClassVar[int]
-    status: str
+    REPAIR_STATUS_FIELD_NUMBER: _ClassVar[int]
+    METHOD_USED_FIELD_NUMBER: _ClassVar[int]
+    CPSAT_OUTCOME_FIELD_NUMBER: _ClassVar[int]
     message: str
-    method: str
     seed: int
     seconds: float
     time_limit: float
@@ -636,21 +726,23 @@ class RepairReply(_message.Message):
     audit_total: int
     pareto: _containers.RepeatedCompositeFieldContainer[ParetoPoint]
     scaling_error: float
-    cpsat_status: str
     revision: int
-    def __init__(self, status: _Optional[str] = ..., message: _Optional[str] = ..., method: _Optional[str] = ..., seed: _Optional[int] = ..., seconds: _Optional[float] = ..., time_limit: _Optional[float] = ..., best: _Optional[_Union[Solution, _Mapping]] = ..., audit: _Optional[_Iterable[_Union[AuditRow, _Mapping]]] = ..., audit_total: _Optional[int] = ..., pareto: _Optional[_Iterable[_Union[ParetoPoint, _Mapping]]] = ..., scaling_error: _Optional[float] = ..., cpsat_status: _Optional[str] = ..., revision: _Optional[int] = ...) -> None: ...
+    repair_status: RepairStatus
+    method_used: Method
+    cpsat_outcome: CpsatStatus
+    def __init__(self, message: _Optional[str] = ..., seed: _Optional[int] = ..., seconds: _Optional[float] = ..., time_limit: _Optional[float] = ..., best: _Optional[_Union[Solution, _Mapping]] = ..., audit: _Optional[_Iterable[_Union[AuditRow, _Mapping]]] = ..., audit_total: _Optional[int] = ..., pareto: _Optional[_Iterable[_Union[ParetoPoint, _Mapping]]] = ..., scaling_error: _Optional[float] = ..., revision: _Optional[int] = ..., repair_status: _Optional[_Union[RepairStatus, str]] = ..., method_used: _Optional[_Union[Method, str]] = ..., cpsat_outcome: _Optional[_Union[CpsatStatus, str]] = ...) -> None: ...
 
 class RepairProgress(_message.Message):
-    __slots__ = ("done", "total", "best_cost", "phase")
+    __slots__ = ("done", "total", "best_cost", "current_phase")
     DONE_FIELD_NUMBER: _ClassVar[int]
     TOTAL_FIELD_NUMBER: _ClassVar[int]
     BEST_COST_FIELD_NUMBER: _ClassVar[int]
-    PHASE_FIELD_NUMBER: _ClassVar[int]
+    CURRENT_PHASE_FIELD_NUMBER: _ClassVar[int]
     done: int
     total: int
     best_cost: float
-    phase: str
-    def __init__(self, done: _Optional[int] = ..., total: _Optional[int] = ..., best_cost: _Optional[float] = ..., phase: _Optional[str] = ...) -> None: ...
+    current_phase: Phase
+    def __init__(self, done: _Optional[int] = ..., total: _Optional[int] = ..., best_cost: _Optional[float] = ..., current_phase: _Optional[_Union[Phase, str]] = ...) -> None: ...
 
 class RepairEvent(_message.Message):
     __slots__ = ("progress", "result")
@@ -817,13 +909,11 @@ class StressRow(_message.Message):
     def __init__(self, cost: _Optional[_Iterable[float]] = ..., flips: _Optional[_Iterable[int]] = ..., feasible: _Optional[_Iterable[bool]] = ...) -> None: ...
 
 class StressReply(_message.Message):
-    __slots__ = ("method", "seed", "epsilon", "scenarios_requested", "scenarios_done", "stopped", "message", "seconds", "time_limit", "candidates", "scenarios", "pearson", "spearman", "correlated", "rows", "revision")
-    METHOD_FIELD_NUMBER: _ClassVar[int]
+    __slots__ = ("seed", "epsilon", "scenarios_requested", "scenarios_done", "message", "seconds", "time_limit", "candidates", "scenarios", "pearson", "spearman", "correlated", "rows", "revision", "stop_reason", "method_used")
     SEED_FIELD_NUMBER: _ClassVar[int]
     EPSILON_FIELD_NUMBER: _ClassVar[int]
     SCENARIOS_REQUESTED_FIELD_NUMBER: _ClassVar[int]
     SCENARIOS_DONE_FIELD_NUMBER: _ClassVar[int]
-    STOPPED_FIELD_NUMBER: _ClassVar[int]
     MESSAGE_FIELD_NUMBER: _ClassVar[int]
     SECONDS_FIELD_NUMBER: _ClassVar[int]
     TIME_LIMIT_FIELD_NUMBER: _ClassVar[int]
@@ -834,12 +924,12 @@ class StressReply(_message.Message):
     CORRELATED_FIELD_NUMBER: _ClassVar[int]
     ROWS_FIELD_NUMBER: _ClassVar[int]
     REVISION_FIELD_NUMBER: _ClassVar[int]
-    method: str
+    STOP_REASON_FIELD_NUMBER: _ClassVar[int]
+    METHOD_USED_FIELD_NUMBER: _ClassVar[int]
     seed: int
     epsilon: float
     scenarios_requested: int
     scenarios_done: int
-    stopped: str
     message: str
     seconds: float
     time_limit: float
@@ -850,7 +940,9 @@ class StressReply(_message.Message):
     correlated: int
     rows: _containers.RepeatedCompositeFieldContainer[StressRow]
     revision: int
-    def __init__(self, method: _Optional[str] = ..., seed: _Optional[int] = ..., epsilon: _Optional[float] = ..., scenarios_requested: _Optional[int] = ..., scenarios_done: _Optional[int] = ..., stopped: _Optional[str] = ..., message: _Optional[str] = ..., seconds: _Optional[float] = ..., time_limit: _Optional[float] = ..., candidates: _Optional[_Iterable[_Union[CandidateStress, _Mapping]]] = ..., scenarios: _Optional[_Iterable[_Union[StressScenario, _Mapping]]] = ..., pearson: _Optional[float] = ..., spearman: _Optional[float] = ..., correlated: _Optional[int] = ..., rows: _Optional[_Iterable[_Union[StressRow, _Mapping]]] = ..., revision: _Optional[int] = ...) -> None: ...
+    stop_reason: StopReason
+    method_used: Method
+    def __init__(self, seed: _Optional[int] = ..., epsilon: _Optional[float] = ..., scenarios_requested: _Optional[int] = ..., scenarios_done: _Optional[int] = ..., message: _Optional[str] = ..., seconds: _Optional[float] = ..., time_limit: _Optional[float] = ..., candidates: _Optional[_Iterable[_Union[CandidateStress, _Mapping]]] = ..., scenarios: _Optional[_Iterable[_Union[StressScenario, _Mapping]]] = ..., pearson: _Optional[float] = ..., spearman: _Optional[float] = ..., correlated: _Optional[int] = ..., rows: _Optional[_Iterable[_Union[StressRow, _Mapping]]] = ..., revision: _Optional[int] = ..., stop_reason: _Optional[_Union[StopReason, str]] = ..., method_used: _Optional[_Union[Method, str]] = ...) -> None: ...
 
 class StressEvent(_message.Message):
     __slots__ = ("progress", "result")

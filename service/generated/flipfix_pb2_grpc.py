@@ -26,7 +26,9 @@ if _version_not_supported:
 
 
 class FlipfixStub:
-    """Missing associated documentation comment in .proto file."""
+    """The flipfix service: stored problems with candidate libraries, repairs
+    against late constraints, and audits of a library's repair cost.
+    """
 
     def __init__(self, channel):
         """Constructor.
@@ -112,17 +114,19 @@ class FlipfixStub:
 
 
 class FlipfixServicer:
-    """Missing associated documentation comment in .proto file."""
+    """The flipfix service: stored problems with candidate libraries, repairs
+    against late constraints, and audits of a library's repair cost.
+    """
 
     def CreateProblem(self, request, context):
-        """Problems: a named model with a revision number (1 on creation).
+        """Stores a new named problem at revision 1 (ALREADY_EXISTS if the name is taken).
         """
         context.set_code(grpc.StatusCode.UNIMPLEMENTED)
         context.set_details('Method not implemented!')
         raise NotImplementedError('Method not implemented!')
 
     def ReplaceProblem(self, request, context):
-        """Replace the model of an existing problem; the revision goes up by one.
+        """Replaces the model of an existing problem; the revision goes up by one.
         Stored candidates keep the revision they were made for.
         """
         context.set_code(grpc.StatusCode.UNIMPLEMENTED)
@@ -130,13 +134,15 @@ class FlipfixServicer:
         raise NotImplementedError('Method not implemented!')
 
     def GetProblem(self, request, context):
-        """Missing associated documentation comment in .proto file."""
+        """Returns a problem's summary and the model of one revision, in the indexed form.
+        """
         context.set_code(grpc.StatusCode.UNIMPLEMENTED)
         context.set_details('Method not implemented!')
         raise NotImplementedError('Method not implemented!')
 
     def ListProblems(self, request, context):
-        """Missing associated documentation comment in .proto file."""
+        """Lists stored problems by name, one page at a time.
+        """
         context.set_code(grpc.StatusCode.UNIMPLEMENTED)
         context.set_details('Method not implemented!')
         raise NotImplementedError('Method not implemented!')
@@ -149,73 +155,81 @@ class FlipfixServicer:
         raise NotImplementedError('Method not implemented!')
 
     def AddCandidates(self, request, context):
-        """Candidates: all or nothing (one bad candidate stores none of the request).
+        """Adds candidates for the current revision: all or nothing (one bad
+        candidate stores none of the request).
         """
         context.set_code(grpc.StatusCode.UNIMPLEMENTED)
         context.set_details('Method not implemented!')
         raise NotImplementedError('Method not implemented!')
 
     def ListCandidates(self, request, context):
-        """Missing associated documentation comment in .proto file."""
+        """Lists stored candidates in store order, one page at a time.
+        """
         context.set_code(grpc.StatusCode.UNIMPLEMENTED)
         context.set_details('Method not implemented!')
         raise NotImplementedError('Method not implemented!')
 
     def RemoveCandidates(self, request, context):
-        """Missing associated documentation comment in .proto file."""
+        """Removes candidates by id: all or nothing (an unknown id removes none).
+        """
         context.set_code(grpc.StatusCode.UNIMPLEMENTED)
         context.set_details('Method not implemented!')
         raise NotImplementedError('Method not implemented!')
 
     def Repair(self, request, context):
-        """Repair the library against late constraints.
+        """Repairs the library against late constraints and returns the best answer
+        with a per-candidate audit. Runs in the repair pool (RESOURCE_EXHAUSTED
+        with reason QUEUE_FULL when every slot is busy); honours the call's
+        deadline (see Time at the top of this file) and cancellation.
         """
         context.set_code(grpc.StatusCode.UNIMPLEMENTED)
         context.set_details('Method not implemented!')
         raise NotImplementedError('Method not implemented!')
 
     def RepairStream(self, request, context):
-        """The same repair, as progress messages ending in one message with the result.
+        """The same repair, as progress messages (at least one per stage) ending in
+        one message with the result.
         """
         context.set_code(grpc.StatusCode.UNIMPLEMENTED)
         context.set_details('Method not implemented!')
         raise NotImplementedError('Method not implemented!')
 
     def ProfileRobustness(self, request, context):
-        """Audit of repair cost: which candidates of a stored library are
-        worth keeping. All run in the repair pool (RESOURCE_EXHAUSTED when every
-        slot is busy) and honour the call's deadline and cancellation as Repair does.
-
-        Per candidate: free variables and decisions, flip-cost spectrum, distances.
+        """Per candidate of a stored library: free variables and decisions, the
+        single-flip cost spectrum, distances to the others. Runs in the repair
+        pool like Repair.
         """
         context.set_code(grpc.StatusCode.UNIMPLEMENTED)
         context.set_details('Method not implemented!')
         raise NotImplementedError('Method not implemented!')
 
     def StressTest(self, request, context):
-        """Repair the library under N seeded random late constraints.
+        """Repairs a stored library under N seeded random late constraints and
+        scores each candidate by its repair costs. Runs in the repair pool.
         """
         context.set_code(grpc.StatusCode.UNIMPLEMENTED)
         context.set_details('Method not implemented!')
         raise NotImplementedError('Method not implemented!')
 
     def StressTestStream(self, request, context):
-        """The same, as progress messages (one per scenario) ending in the result.
+        """The same stress test, as progress messages (one per scenario) ending in
+        one message with the result.
         """
         context.set_code(grpc.StatusCode.UNIMPLEMENTED)
         context.set_details('Method not implemented!')
         raise NotImplementedError('Method not implemented!')
 
     def ParetoFront(self, request, context):
-        """The non-dominated (cost, flips) repairs for a set of late constraints.
+        """The non-dominated (cost, flips) repairs of a stored library for a set of
+        late constraints. Runs in the repair pool.
         """
         context.set_code(grpc.StatusCode.UNIMPLEMENTED)
         context.set_details('Method not implemented!')
         raise NotImplementedError('Method not implemented!')
 
     def CurateLibrary(self, request, context):
-        """Choose M candidates by the stress test; with keep, remove the others from
-        the store in one transaction.
+        """Chooses M candidates by the stress test; with keep, removes the others
+        from the store in one transaction. Runs in the repair pool.
         """
         context.set_code(grpc.StatusCode.UNIMPLEMENTED)
         context.set_details('Method not implemented!')
@@ -308,7 +322,9 @@ def add_FlipfixServicer_to_server(servicer, server):
 
  # This class is part of an EXPERIMENTAL API.
 class Flipfix:
-    """Missing associated documentation comment in .proto file."""
+    """The flipfix service: stored problems with candidate libraries, repairs
+    against late constraints, and audits of a library's repair cost.
+    """
 
     @staticmethod
     def CreateProblem(request,

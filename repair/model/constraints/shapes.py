@@ -22,6 +22,8 @@ def check_penalty(weight: Any, shape: Any, threshold: Any) -> None:
     if shape not in SHAPES:
         raise InputError("shape", f"must be one of {SHAPES}, got {shape!r}")
     finite(threshold, "threshold")
+    if shape == "threshold" and threshold < 0:  # a negative threshold charges a distance of 0
+        raise InputError("threshold", f"must be >= 0 for the threshold shape, got {float(threshold):g}")
 
 
 def shape_table(shape: str, weight: float, d_max: int, *, threshold: float = 0.0,
