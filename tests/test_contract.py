@@ -8,6 +8,7 @@ Expected optima come from dimod's ExactSolver (brute force over every assignment
 
 from __future__ import annotations
 
+import functools
 import re
 import subprocess
 import sys
@@ -296,18 +297,24 @@ def test_reflection_answers_v1_and_v1alpha(server):
 
 
 # --------------------------------------------------------------- proto conventions
+@functools.lru_cache(maxsize=1)
 def _descriptor_set() -> descriptor_pb2.FileDescriptorSet:
-    """Every .proto of proto/, compiled by protoc (grpcio-tools) with source info."""
-    from grpc_tools import protoc
+    """Every .proto of proto/, compiled by protoc (grpcio-tools) with source info.
+
+    protoc runs in a subprocess: its C++ protobuf runtime must not be loaded into a test
+    process that has already loaded OR-Tools' (the process aborts)."""
     import tempfile
-    from importlib.resources import files
 
     protos = sorted(str(p.relative_to(ROOT / "proto")) for p in (ROOT / "proto").rglob("*.proto"))
+    include = ("import sys; from importlib.resources import files; from grpc_tools import protoc; "
+               "sys.exit(protoc.main(['protoc', '-I' + str(files('grpc_tools') / '_proto')] "
+               "+ sys.argv[1:]))")
     with tempfile.TemporaryDirectory() as tmp:
         out = Path(tmp) / "set.pb"
-        rc = protoc.main(["protoc", f"-I{ROOT / 'proto'}", f"-I{files('grpc_tools') / '_proto'}",
-                          "--include_source_info", f"--descriptor_set_out={out}", *protos])
-        assert rc == 0
+        run = subprocess.run([sys.executable, "-c", include, f"-I{ROOT / 'proto'}",
+                              "--include_source_info", f"--descriptor_set_out={out}", *protos],
+                             capture_output=True, text=True, timeout=120)
+        assert run.returncode == 0, run.stderr
         return descriptor_pb2.FileDescriptorSet.FromString(out.read_bytes())
 
 
