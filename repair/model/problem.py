@@ -373,7 +373,7 @@ class Problem:
         if arr.size and not ok.all():
             bad = arr[~ok].ravel()[0]
             bad = bad.item() if hasattr(bad, "item") else bad
-            raise InputError(field_name, f"value {bad!r} is not {self.vartype} (allowed {(lo, hi)})")
+            raise InputError(field_name, f"value {bad!r} is not {self.vartype} (allowed: {lo} or {hi})")
         return vartypes.to_bits(arr, self.vartype)
 
     def value_to_bit(self, value: Any, field_name: str) -> int:
@@ -382,7 +382,8 @@ class Problem:
         if isinstance(value, bool):
             value = int(value)
         if not isinstance(value, (int, np.integer, float)) or value not in allowed:
-            raise InputError(field_name, f"value {value!r} is not {self.vartype} (allowed {allowed})")
+            raise InputError(field_name, f"value {value!r} is not {self.vartype} "
+                                         f"(allowed: {allowed[0]} or {allowed[1]})")
         return vartypes.value_to_bit(value, self.vartype)
 
     def lookup(self, label: Any, field_name: str) -> int:
