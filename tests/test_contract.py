@@ -116,6 +116,30 @@ def test_unknown_label_is_named_by_position_too(stub, problem):
     assert violations[0][0] == "constraints[0].extra.linear[1]"
 
 
+def test_model_and_decision_paths_are_positional(stub, problem):
+    L = convert.py_to_label
+    model = pb.ProblemModel(vartype=pb.VARTYPE_BINARY, labels=[L("a"), L("b")],
+                            linear=[pb.LinearTerm(label=L("a"), bias=1.0),
+                                    pb.LinearTerm(label=L("typo"), bias=1.0)])
+    err = rpc_error(lambda: stub.CreateProblem(pb.CreateProblemRequest(name="m", model=model)))
+    assert _details(err)[0].metadata["field"] == "model.linear[1]", err.details()
+    model = convert.doc_to_model({
+        "vartype": "BINARY", "labels": ["a", "b", "c", "d"],
+        "decisions": [{"name": "s", "encoding": "one_hot", "variables": ["a", "b"], "values": [1, 2]},
+                      {"name": "t", "encoding": "one_hot", "variables": ["c", "d"],
+                       "values": ["x", "y"]}]})
+    stub.CreateProblem(pb.CreateProblemRequest(name="decisions", model=model))
+    batch = convert.arrays_to_batch([], np.array([[1, 0, 1, 0]], dtype=np.int8))
+    stub.AddCandidates(pb.AddCandidatesRequest(problem="decisions", candidates=batch))
+    change = pb.Constraint(decision_change=pb.DecisionChangePenalty(weight=1.0, reference=[
+        pb.DecisionReference(decision="s", value=pb.DecisionValue(int=1)),
+        pb.DecisionReference(decision="t", value=pb.DecisionValue(str="zz"))]))
+    err = rpc_error(lambda: stub.Repair(_repair("decisions", change, time_limit=1.0)))
+    info, violations = _details(err)
+    assert info.metadata["field"] == "constraints[0].decision_change.reference[1]"
+    assert violations[0][1] == "'zz' is not a value of decision 't' (its values: 'x', 'y')"
+
+
 def test_messages_carry_no_numpy_or_python_reprs(stub, problem):
     inf = pb.Constraint(hamming=pb.HammingPenalty(
         reference=convert.dict_to_assignment({"a": 1}), weight=float("inf")))

@@ -68,7 +68,8 @@ def value_index(d: Decision, value: Any, field_name: str) -> int:
                 return m
         elif v == value:
             return m
-    raise InputError(field_name, f"{value!r} is not a value of decision {d.name!r} {list(d.values)}")
+    raise InputError(field_name, f"{value!r} is not a value of decision {d.name!r} (its values: "
+                                 f"{', '.join(map(repr, d.values))})")
 
 
 # ---------------------------------------------------------------- decode/report

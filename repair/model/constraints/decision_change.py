@@ -126,7 +126,7 @@ def _absolute_terms(d: Decision, idx: np.ndarray, r: int, f: str) -> tuple[int, 
     ints = [_integral(v) for v in d.values]
     if any(v is None for v in ints):
         raise InputError(f, f"distance 'absolute' needs integer values; decision {d.name!r} has "
-                            f"{list(d.values)}")
+                            f"{', '.join(map(repr, d.values))}")
     cost = [abs(v - ints[r]) for v in ints]
     k = len(ints)
     steps = np.diff(ints)
