@@ -212,6 +212,23 @@ def test_client_raises_one_error_type_locally_and_from_the_server(server, proble
     assert remote.value.violations[0][0] == remote.value.field
 
 
+def test_client_error_type_on_streams_and_transport_failures(server, problem):
+    with FlipfixClient(server.address) as fx:
+        with pytest.raises(FlipfixError) as e:  # refused by the server, on the streaming RPC
+            fx.repair("c", [_fix({"b": 5})], time_limit=1.0, on_progress=lambda p: None)
+        assert e.value.reason == "INVALID_FIELD"
+        assert e.value.field == "constraints[0].fix.values.values[0]"
+    import socket
+
+    with socket.socket() as s:  # a port nobody listens on
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    with FlipfixClient(f"127.0.0.1:{port}", timeout=2.0) as fx:
+        with pytest.raises(FlipfixError) as e:
+            fx.list_problems()
+    assert e.value.code() == grpc.StatusCode.UNAVAILABLE and e.value.reason == ""
+
+
 # ------------------------------------------------------------------ time limits
 def test_time_limit_unset_is_the_stated_default_and_zero_is_refused(stub, problem, server):
     fix = _fix({"a": 0})
