@@ -187,8 +187,8 @@ class FlipfixServicer:
         raise NotImplementedError('Method not implemented!')
 
     def RepairStream(self, request, context):
-        """The same repair, as progress messages (at least one per stage) ending in
-        one message with the result.
+        """The same repair, as progress messages while it runs, ending in one
+        message with the result.
         """
         context.set_code(grpc.StatusCode.UNIMPLEMENTED)
         context.set_details('Method not implemented!')
