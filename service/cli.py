@@ -153,7 +153,8 @@ def cmd_serve(args) -> int:
         db_path=args.db, workers=args.workers, queue_size=args.queue,
         max_message_bytes=int(args.max_message_mb * 1024 * 1024),
         max_variables=args.max_variables, max_candidates=args.max_candidates,
-        max_constraints=args.max_constraints, default_time_limit=args.default_time_limit)
+        max_constraints=args.max_constraints, default_time_limit=args.default_time_limit,
+        dask=args.dask or "")
     try:
         srv = create_server(f"{args.host}:{args.port}", config)
     except OSError as err:
@@ -208,6 +209,9 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--max-constraints", type=int, default=1_000)
     s.add_argument("--default-time-limit", type=_positive_float, default=5.0)
     s.add_argument("--grace", type=float, default=10.0, help="seconds in-flight calls get on SIGTERM")
+    s.add_argument("--dask", metavar="ADDRESS|local:N", default=None,
+                   help="run stress tests on a Dask cluster: a scheduler address "
+                        "(tcp://host:8786) or local:N worker processes started here")
     s.set_defaults(func=cmd_serve)
 
     r = sub.add_parser("repair", help="repair the candidates of PROBLEM under CONSTRAINTS")

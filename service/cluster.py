@@ -79,9 +79,11 @@ class Cluster:
 def connect(text: str, *, field: str = "dask", timeout: float = 30.0) -> Cluster:
     """Connect to a scheduler, or start ``local:N`` (N single-threaded worker processes
     on 127.0.0.1; the dashboard is off)."""
-    from distributed import Client, LocalCluster
-
     address, n = parse_address(text, field=field)
+    try:
+        from distributed import Client, LocalCluster
+    except ImportError:
+        raise InputError(field, "needs Dask distributed: pip install 'flipfix[cluster]'") from None
     if n:
         local = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
                              host="127.0.0.1", dashboard_address=None)

@@ -157,3 +157,73 @@ def test_bad_addresses_name_the_field(text):
 def test_addresses_parse():
     assert parse_address("local:3") == ("", 3)
     assert parse_address("tcp://10.0.0.5:8786") == ("tcp://10.0.0.5:8786", 0)
+
+
+# ------------------------------------------------- through the server and the CLI
+def test_a_server_with_dask_answers_like_the_core(tmp_path):
+    """`serve --dask local:2`: the StressTest RPC runs its scenarios on the cluster and
+    answers exactly like the core in-process (same seed)."""
+    from flipfix.service.client import FlipfixClient
+    from flipfix.service.server import create_server
+
+    problem, cands = _model(seed=8)
+    family = ScenarioFamily(fix_k=2, hamming_weight=1.5)
+    ref = stress_test(problem, cands, family, scenarios=6, seed=4, method="greedy",
+                      time_limit=120)
+    srv = create_server("127.0.0.1:0", db_path=str(tmp_path / "db.sqlite3"), workers=1,
+                        queue_size=2, dask="local:2")
+    try:
+        assert srv.cluster is not None and srv.servicer.dask_address.startswith("tcp://")
+        with FlipfixClient(srv.address, timeout=180.0) as fx:
+            fx.create_problem("m", problem)
+            fx.add_candidates("m", cands)
+            got = fx.stress_test("m", family, scenarios=6, seed=4, method="greedy",
+                                 time_limit=120, matrices=True)
+        assert got.stopped == "done" and got.scenarios_done == 6
+        assert got.scenario_seeds == ref.scenario_seeds
+        np.testing.assert_allclose(got.cost, ref.cost, atol=1e-9)
+        assert got.flips == ref.flips and got.feasible == ref.feasible
+    finally:
+        srv.shutdown(grace=1.0)
+    # the cluster was closed with the server
+    assert srv.cluster.client.status in ("closed", "closing")
+
+
+def test_audit_cli_with_dask_reports_the_serial_figures(tmp_path):
+    import json
+
+    from flipfix.repair.documents import forms as documents
+    from flipfix.service.cli import main
+
+    problem, cands = _model(seed=9)
+    (tmp_path / "p.json").write_text(json.dumps(documents.problem_document(problem)))
+    (tmp_path / "c.json").write_text(json.dumps(_candidates_doc(problem, cands)))
+    outs = []
+    for extra in ([], ["--dask", "local:2"]):
+        out = tmp_path / f"audit{len(extra)}.json"
+        rc = main(["audit", str(tmp_path / "p.json"), str(tmp_path / "c.json"), "--scenarios",
+                   "5", "--fix-k", "2", "--seed", "3", "--time-limit", "120",
+                   "--json", str(out)] + extra)
+        assert rc == 0
+        outs.append(json.loads(out.read_text())["stress"])
+    assert outs[0]["cost"] == outs[1]["cost"]
+    assert outs[0]["flips"] == outs[1]["flips"]
+
+
+def test_audit_cli_refuses_a_bad_dask_address(tmp_path, capsys):
+    import json
+
+    from flipfix.repair.documents import forms as documents
+    from flipfix.service.cli import main
+
+    problem, cands = _model(n=8, k=3)
+    (tmp_path / "p.json").write_text(json.dumps(documents.problem_document(problem)))
+    (tmp_path / "c.json").write_text(json.dumps(_candidates_doc(problem, cands)))
+    rc = main(["audit", str(tmp_path / "p.json"), str(tmp_path / "c.json"), "--dask", "local:0"])
+    assert rc == 2
+    assert "dask: local:N needs" in capsys.readouterr().err
+
+
+def _candidates_doc(problem, cands) -> list:
+    return [{"id": cid, "assignment": dict(zip(problem.labels, map(int, x)))}
+            for cid, x in zip(cands.ids, cands.X)]
