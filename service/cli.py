@@ -200,7 +200,8 @@ def build_parser() -> argparse.ArgumentParser:
     s = sub.add_parser("serve", help="run the gRPC service")
     s.add_argument("--host", default="127.0.0.1")
     s.add_argument("--port", type=int, default=50051, help="0 picks a free port")
-    s.add_argument("--db", default="flipfix.sqlite3", help="SQLite database file")
+    s.add_argument("--db", default="flipfix.sqlite3",
+                   help="an SQLite database file, or a postgresql:// URL shared by replicas")
     s.add_argument("--workers", type=int, default=1, help="repair processes")
     s.add_argument("--queue", type=int, default=4, help="repairs that may wait for a worker")
     s.add_argument("--max-message-mb", type=float, default=64.0)
