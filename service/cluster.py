@@ -8,10 +8,11 @@ each scenario's repair to a Dask cluster instead of running them one after anoth
   each task then carries only its scenario (a few constraints);
 * results come back in scenario order, each waited for with ``Future.result(timeout)``
   up to the run's deadline (no polling);
-* a cancel (the caller's token) or the deadline sets a Dask ``Event`` named for the run:
-  inside every running task a thread blocks on that Event and sets the task's own
-  :class:`~flipfix.repair.cancel.CancelToken`, so the repair stops at once; queued tasks
-  are cancelled on the scheduler;
+* a cancel (the caller's token), the deadline or the end of the run sets a Dask ``Event``
+  named for the run: in every worker process that ran a task of the run, one thread
+  blocks on that Event and sets the cancel token
+  (:class:`~flipfix.repair.cancel.CancelToken`) of each of the run's tasks running there,
+  so their repairs stop at once; queued tasks are cancelled on the scheduler;
 * a worker lost mid-task: the scheduler runs the task again on another worker (Dask's
   own retry of lost tasks); when no worker is left, or a task killed too many workers,
   :class:`~flipfix.service.errors.TransientError` (UNAVAILABLE) -- never a hang.
@@ -94,26 +95,49 @@ def connect(text: str, *, field: str = "dask", timeout: float = 30.0) -> Cluster
         raise TransientError("dask", f"scheduler {address} not reachable: {exc}") from exc
 
 
-def _run_task(fn: Callable, shared: tuple, item, *, time_limit: float, event_name: str,
-              options: Mapping[str, Any]):
-    """One task on a Dask worker: ``fn(*shared, item, ...)`` with a cancel token that the
-    run's Dask Event sets."""
+_RUNS: dict[str, set] = {}  # run name -> cancel tokens of its tasks running here
+_RUNS_LOCK = threading.Lock()
+
+
+def _watch(run: str, event, timeout: float) -> None:
+    """One thread per run and worker process: wait for the run's Event, then cancel every
+    task of the run that is running here. The runner sets the Event when the run ends, so
+    the thread ends with the run (``timeout`` bounds it if the caller vanished)."""
+    event.wait(timeout=timeout)
+    with _RUNS_LOCK:
+        tokens = _RUNS.pop(run, set())
+    for token in tokens:
+        token.set()
+
+
+def _run_task(fn: Callable, shared: tuple, items: list, *, time_limit: float, event_name: str,
+              run_seconds: float, options: Mapping[str, Any]) -> list:
+    """One task on a Dask worker: ``fn(*shared, item, ...)`` for each of its items in turn,
+    with a cancel token that the run's Dask Event sets; stops at the first item the cancel
+    cuts short (its result and the rest are left out)."""
     from distributed import Event, get_client
 
     token = CancelToken()
-    done = threading.Event()
-    event = Event(event_name, client=get_client())  # bound here: the watcher thread has no worker context
-
-    def watch() -> None:
-        if event.wait(timeout=time_limit + _WATCH_SLACK) and not done.is_set():
-            token.set()
-
-    watcher = threading.Thread(target=watch, daemon=True, name="flipfix-dask-cancel")
-    watcher.start()
+    with _RUNS_LOCK:
+        first = event_name not in _RUNS
+        _RUNS.setdefault(event_name, set()).add(token)
+    if first:  # bound here: the watcher thread has no worker context of its own
+        event = Event(event_name, client=get_client())
+        threading.Thread(target=_watch, args=(event_name, event, run_seconds + _WATCH_SLACK),
+                         daemon=True, name="flipfix-dask-cancel").start()
+    out = []
     try:
-        return fn(*shared, item, time_limit=time_limit, cancel=token, **dict(options))
+        for item in items:
+            if token.is_set():
+                break
+            result = fn(*shared, item, time_limit=time_limit, cancel=token, **dict(options))
+            if token.is_set():
+                break
+            out.append(result)
+        return out
     finally:
-        done.set()
+        with _RUNS_LOCK:
+            _RUNS.get(event_name, set()).discard(token)
 
 
 def _left(deadline: float) -> float | None:
@@ -122,10 +146,15 @@ def _left(deadline: float) -> float | None:
 
 
 class DaskRunner:
-    """A :class:`~flipfix.repair.audit.stress.ScenarioRunner` over a Dask client."""
+    """A :class:`~flipfix.repair.audit.stress.ScenarioRunner` over a Dask client.
 
-    def __init__(self, client):
+    ``chunk``: items per task (0: about four tasks per worker thread, so that the
+    scheduler's cost per task stays small beside the work and the load still evens out).
+    """
+
+    def __init__(self, client, *, chunk: int = 0):
         self.client = client
+        self.chunk = int(chunk)
 
     @property
     def parallel(self) -> int:
@@ -143,10 +172,14 @@ class DaskRunner:
         run = f"flipfix-{uuid.uuid4().hex}"
         stop = Event(run, client=client)
         shared_futures = client.scatter(list(shared), broadcast=True, hash=False)
-        futures = [client.submit(_run_task, fn, shared_futures, item, time_limit=seconds_each,
-                                 event_name=run, options=dict(options), pure=False,
-                                 key=f"{run}-{k}")
-                   for k, item in enumerate(items)]
+        run_seconds = _left(deadline)
+        run_seconds = seconds_each * len(items) if run_seconds is None else run_seconds
+        size = self.chunk or max(1, math.ceil(len(items) / (4 * self.parallel)))
+        chunks = [list(items[i:i + size]) for i in range(0, len(items), size)]
+        futures = [client.submit(_run_task, fn, shared_futures, chunk, time_limit=seconds_each,
+                                 event_name=run, run_seconds=run_seconds, options=dict(options),
+                                 pure=False, key=f"{run}-{k}")
+                   for k, chunk in enumerate(chunks)]
         stopped = threading.Event()
 
         def stop_all() -> None:
@@ -158,12 +191,12 @@ class DaskRunner:
 
         try:
             with token.subscribed(stop_all, timeout=_left(deadline)):
-                for fut in futures:
+                for fut, chunk in zip(futures, chunks):
                     left = _left(deadline)
                     if stopped.is_set() or (left is not None and left <= 0):
                         break
                     try:
-                        yield fut.result(timeout=left)
+                        results = fut.result(timeout=left)
                     except (FutureTimeout, TimeoutError, CancelledError):
                         break
                     except Exception as exc:  # a task that killed workers, or lost for good
@@ -171,6 +204,9 @@ class DaskRunner:
                             raise TransientError("dask", f"workers kept dying on a scenario: {exc}") \
                                 from exc
                         raise
+                    yield from results
+                    if len(results) < len(chunk):
+                        break  # a cancel cut this task short
         finally:
             stop_all()
             client.cancel(shared_futures)
