@@ -72,6 +72,9 @@ class ServerConfig:
     default_audit_time_limit: float = 30.0  # whole stress-test run
     max_scenarios: int | None = 1_000
     warm: bool = True
+    #: stress tests on a Dask cluster: a scheduler address, or ``local:N`` (N worker
+    #: processes started with the server); "" runs them in the repair workers
+    dask: str = ""
 
     @property
     def limits(self) -> Limits:
@@ -123,6 +126,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         self.pool = pool
         self.config = config
         self.limits = config.limits
+        self.dask_address = ""  # set by create_server when stress tests go to Dask
 
     # ------------------------------------------------------------- problems
     @staticmethod
@@ -365,6 +369,8 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
             request, problem, default_time_limit=self.config.default_audit_time_limit,
             max_scenarios=self.config.max_scenarios, field=field)
         kwargs["time_limit"] = self._budget(kwargs["time_limit"], context)
+        if self.dask_address:
+            kwargs["dask"] = self.dask_address
         return rev, problem, cands, family, kwargs
 
     @translate_errors
@@ -461,6 +467,7 @@ class RunningServer:
         self.store = store
         self._stopped = threading.Event()
         self._lock = threading.Lock()
+        self.cluster = None  # the Dask cluster (client) of stress tests, when configured
 
     @property
     def address(self) -> str:
@@ -476,6 +483,8 @@ class RunningServer:
             stopped.wait()
             self.pool.shutdown(wait=True)
             self.store.close()
+            if self.cluster is not None:
+                self.cluster.close()
             self._stopped.set()
 
     stop = shutdown
@@ -523,8 +532,22 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
         pool.shutdown(wait=False)
         store.close()
         raise OSError(f"cannot bind {address}")
+    cluster = None
+    if config.dask:
+        from flipfix.service.cluster import connect
+
+        try:
+            cluster = connect(config.dask, field="dask")
+        except Exception:
+            server.stop(0)
+            pool.shutdown(wait=False)
+            store.close()
+            raise
+        servicer.dask_address = cluster.address
     server.start()
     for name in ("", SERVICE_NAME):
         health_servicer.set(name, health_pb2.HealthCheckResponse.SERVING)
     log.info("flipfix listening on port %d (db %s)", port, Path(config.db_path))
-    return RunningServer(server, port, servicer, health_servicer, pool, store)
+    running = RunningServer(server, port, servicer, health_servicer, pool, store)
+    running.cluster = cluster
+    return running
