@@ -47,7 +47,7 @@ from flipfix.repair.model.problem import Problem
 from flipfix.repair.solvers.anneal import HEAT, temperatures
 
 __all__ = ["GrowSettings", "NewState", "GrowResult", "grow", "distances", "groups_of",
-           "MODES", "UNITS"]
+           "warm_up", "MODES", "UNITS"]
 
 MODES = ("robust", "diverse", "both")
 UNITS = ("bits", "decisions")
@@ -85,8 +85,9 @@ class GrowSettings:
 
     def checked(self, problem: Problem, candidates: CandidateSet, *,
                 field_name: str = "settings") -> "GrowSettings":
-        """These settings with the defaults filled in; errors name ``field_name.<option>``."""
-        f = field_name + "."
+        """These settings with the defaults filled in; errors name ``field_name.<option>``
+        (the bare option when ``field_name`` is empty)."""
+        f = field_name + "." if field_name else ""
         if self.mode not in MODES:
             raise InputError(f + "mode", f"must be one of {MODES}, got {self.mode!r}")
         eps = nonnegative(self.epsilon, f + "epsilon")
@@ -155,6 +156,21 @@ class NewState:
     mode: str
     chain: int
     seed: int
+
+    def provenance(self, settings: "GrowSettings") -> dict[str, Any]:
+        """Where it comes from, as a store provenance: source text, energy, tags."""
+        tol = (f"tolerance={settings.tolerance}" if settings.tolerance is not None
+               else f"tolerance_percent={settings.tolerance_percent}")
+        return {"source": f"grown from {self.origin_id} ({self.mode}, seed {self.seed}, "
+                          f"chain {self.chain})",
+                "energy": self.energy,
+                "tags": ["grown", f"mode={self.mode}", f"origin={self.origin_id}",
+                         f"seed={self.seed}", f"chain={self.chain}",
+                         f"epsilon={settings.epsilon}", tol,
+                         f"reward_free={settings.reward_free}",
+                         f"reward_distance={settings.reward_distance}",
+                         f"unit={settings.unit}", f"sweeps={settings.sweeps}",
+                         f"depth={settings.depth}"]}
 
     def to_dict(self, problem: Problem | None = None) -> dict[str, Any]:
         d = {k: v for k, v in asdict(self).items() if k != "x"}
@@ -412,3 +428,24 @@ def _confirm(problem, s, states, k, origin_id, e0, free0, best, cap, rtol, ref, 
             seed=s.seed))
     return kept
 
+
+
+_WARM = False
+
+
+def warm_up() -> None:
+    """Compile (or load from numba's on-disk cache) the chain kernel on a tiny model with a
+    one-hot and a domain-wall decision, in both distance units; once per process."""
+    global _WARM
+    if _WARM:
+        return
+    from flipfix.repair.model.problem import Decision
+
+    p = Problem.from_terms({"a": 1.0, "b": -1.0, "c": 0.5, "d": 0.0, "e": 0.2, "f": -0.3},
+                           [("a", "b", 1.0), ("c", "d", -1.0), ("e", "f", 0.5)],
+                           decisions=[Decision("o", "one_hot", ("a", "b", "c"), (0, 1, 2)),
+                                      Decision("w", "domain_wall", ("d", "e"), (0, 1, 2))])
+    lib = CandidateSet(("w0",), np.array([[1, 0, 0, 1, 0, 0]], dtype=np.int8))
+    for unit in UNITS:
+        grow(p, lib, settings=GrowSettings(mode="both", unit=unit, chains=1, sweeps=2))
+    _WARM = True
