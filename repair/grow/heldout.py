@@ -17,12 +17,13 @@ from __future__ import annotations
 
 import math
 from dataclasses import asdict, dataclass
-from typing import Any, Callable, Mapping
+from typing import Any, Callable, Mapping, Sequence
 
 import numpy as np
 
 from flipfix.repair.audit.curation import curate
-from flipfix.repair.audit.stress import ScenarioFamily, default_family, draw_scenarios, stress_test
+from flipfix.repair.audit.stress import (Scenario, ScenarioFamily, default_family, draw_scenarios,
+                                         stress_test)
 from flipfix.repair.errors import InputError
 from flipfix.repair.model.candidates import CandidateSet
 from flipfix.repair.model.problem import Problem
@@ -77,9 +78,12 @@ def compare_heldout(problem: Problem, original: CandidateSet, new: CandidateSet,
                     family: ScenarioFamily | None = None, scenarios: int = 20, seed: int = 0,
                     method: str = "greedy", time_limit: float = 60.0, cancel=None,
                     progress: Callable[[dict], None] | None = None,
-                    repair_options: Mapping[str, Any] | None = None) -> HeldoutComparison:
+                    repair_options: Mapping[str, Any] | None = None,
+                    base: Sequence = ()) -> HeldoutComparison:
     """Compare ``original`` curated to ``min(m, K0)`` with ``original + new`` curated to ``m``
-    on held-out scenarios (module docstring). ``scenarios`` >= 2 in all (half held out)."""
+    on held-out scenarios (module docstring). ``scenarios`` >= 2 in all (half held out).
+    ``base``: constraints that hold in every scenario (e.g. a knapsack's capacity), added to
+    each scenario's late constraints."""
     if isinstance(scenarios, bool) or not isinstance(scenarios, (int, np.integer)) \
             or scenarios < 2:
         raise InputError("scenarios", f"must be an integer >= 2, got {scenarios!r}")
@@ -88,6 +92,9 @@ def compare_heldout(problem: Problem, original: CandidateSet, new: CandidateSet,
         raise InputError("m", f"must be an integer in [1, {len(both)}], got {m!r}")
     fam = default_family(problem) if family is None else family
     drawn = draw_scenarios(problem, original, fam, count=int(scenarios), seed=seed)
+    if base:
+        drawn = [Scenario(sc.index, sc.seed, list(base) + list(sc.constraints),
+                          sc.description, sc.plan) for sc in drawn]
     report = stress_test(problem, both, drawn, method=method, time_limit=time_limit,
                          cancel=cancel, progress=progress, repair_options=repair_options)
     C = report.cost_matrix()  # (S_done, K0 + K1)
