@@ -237,3 +237,31 @@ def test_bad_settings_name_their_field():
         with pytest.raises(InputError) as err:
             grow(p, lib, settings=s)
         assert err.value.field == field
+
+
+def test_heldout_comparison_recomputed_from_the_stress_matrix():
+    """compare_heldout against a direct stress test of the union and curation of its halves."""
+    from flipfix.repair.audit.curation import curate
+    from flipfix.repair.audit.stress import ScenarioFamily, draw_scenarios, stress_test
+    from flipfix.repair.grow.heldout import union
+
+    p = _random_problem(9, n=12)
+    lib = _library(p, 4, seed=5)
+    res = grow(p, lib, settings=GrowSettings(mode="both", tolerance_percent=40.0, chains=3,
+                                             sweeps=60, top=4, seed=2))
+    assert res.states
+    new = res.candidate_set()
+    fam = ScenarioFamily(hamming_weight=2.0, hamming_fraction=0.5)
+    cmp = compare_heldout(p, lib, new, m=2, family=fam, scenarios=10, seed=3)
+    both = union(lib, new)
+    C = stress_test(p, both, draw_scenarios(p, lib, fam, count=10, seed=3)).cost_matrix()
+    o = curate(C[0::2, :4], 2, ids=lib.ids)
+    g = curate(C[0::2], 2, ids=both.ids)
+    assert (cmp.original_kept, cmp.grown_kept) == (o.kept_ids, g.kept_ids)
+    so, sg = C[1::2][:, o.kept_indices].min(axis=1), C[1::2][:, g.kept_indices].min(axis=1)
+    assert cmp.original_mean == pytest.approx(so.mean()) and cmp.grown_mean == pytest.approx(sg.mean())
+    assert cmp.original_worst == pytest.approx(so.max()) and cmp.grown_worst == pytest.approx(sg.max())
+    assert cmp.wins == int((sg < so - 1e-6).sum()) and cmp.losses == int((sg > so + 1e-6).sum())
+    with pytest.raises(InputError) as err:
+        union(lib, lib)
+    assert err.value.field == "new.ids"
