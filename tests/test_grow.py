@@ -229,6 +229,7 @@ def test_bad_settings_name_their_field():
     cases = [(GrowSettings(mode="wide"), "settings.mode"),
              (GrowSettings(tolerance=1.0, tolerance_percent=2.0), "settings.tolerance"),
              (GrowSettings(from_ids=("nope",)), "settings.from_ids[0]"),
+             (GrowSettings(from_ids=("c0", "c1", "c0")), "settings.from_ids[2]"),
              (GrowSettings(chains=0), "settings.chains"),
              (GrowSettings(depth=1.5), "settings.depth"),
              (GrowSettings(reward_free=-1.0), "settings.reward_free"),

@@ -111,6 +111,8 @@ class GrowSettings:
         for pos, cid in enumerate(ids):
             if cid not in known:
                 raise InputError(f"{f}from_ids[{pos}]", f"no stored candidate {cid!r}")
+            if cid in ids[:pos]:
+                raise InputError(f"{f}from_ids[{pos}]", f"{cid!r} is listed twice")
         for name, lo in (("top", 1), ("chains", 1), ("sweeps", 1), ("max_new", 1),
                          ("seed", 0), ("workers", 1)):
             v = getattr(self, name)
