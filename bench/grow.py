@@ -16,8 +16,9 @@ Instances:
   Hamming penalty of weight w = the median |coupling|: ``uni30`` to uniform random bits on a
   random 30 % of the variables, ``pert`` to a library candidate with 10 % of its bits
   flipped; and ``fix10``: ten random variables fixed to random values. The knapsack's
-  capacity holds in every scenario, and grown states over capacity are set aside (growing
-  works on the energy alone).
+  capacity bounds the growing (``grow(..., constraints=inst.base)``: every move keeps it, a
+  free move too) and holds in every scenario; "over cap" double-checks the proposals against
+  it (always 0).
 
 Per instance and mode: grow (seed 0), then :func:`flipfix.repair.grow.heldout.compare_heldout`
 (greedy repairs; even scenarios curate, odd ones are held out). No target outside the planted
@@ -94,7 +95,7 @@ def run(*, quick: bool = False, seed: int = 0, log=print) -> dict:
             res = grow(p, lib, settings=GrowSettings(mode=mode, tolerance_percent=pct,
                                                      top=min(5, len(lib)), chains=4,
                                                      sweeps=200, max_new=10, seed=seed),
-                       time_limit=120.0)
+                       constraints=base, time_limit=120.0)
             t_grow = time.perf_counter() - t0
             states = [s for s in res.states if keep is None or keep(s.x)]
             head = {"instance": name, "mode": mode, "K": len(lib), "M": m, "new": len(states),

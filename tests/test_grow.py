@@ -16,8 +16,9 @@ import pytest
 
 from flipfix.repair.errors import InputError
 from flipfix.repair.grow.heldout import compare_heldout
-from flipfix.repair.grow.kernel import BITS, DECISIONS, run_chain
-from flipfix.repair.grow.neighbours import GrowSettings, _qubo, groups_of, grow
+from flipfix.repair.grow.kernel import BITS, DECISIONS, new_scratch, run_chain
+from flipfix.repair.grow.neighbours import GrowSettings, _qubo, groups_of, grow, hard_rows
+from flipfix.repair.model.constraints import HammingPenalty, LinearConstraint
 from flipfix.repair.grow.planted import planted_model
 from flipfix.repair.kernels.metropolis import Plan
 from flipfix.repair.model.candidates import CandidateSet
@@ -63,8 +64,27 @@ def _library(problem: Problem, k: int, seed: int) -> CandidateSet:
     return CandidateSet(tuple(f"c{r}" for r in range(k)), X)
 
 
-def _brute_free(problem: Problem, x: np.ndarray, eps: float) -> tuple[float, int, int]:
-    """(energy, free variables, free decisions) by dimod energies of every neighbour."""
+def _cap_row(problem: Problem, lib: CandidateSet) -> list:
+    """A capacity row over the plain variables that the library's lightest candidate meets
+    with one unit to spare (so some moves break it)."""
+    plain = groups_of(problem).plain
+    w = {problem.labels[i]: float(1 + i % 3) for i in plain}
+    load = min(sum(w[problem.labels[i]] * x[i] for i in plain) for x in lib.X)
+    return [LinearConstraint(w, "<=", load + 1.0)]
+
+
+def _holds(constraints, x) -> bool:
+    """Plain-Python check of LinearConstraint rows (<= only) on x (labels x0, x1, ...)."""
+    for c in constraints:
+        if sum(w * x[int(str(lab)[1:])] for lab, w in c.terms.items()) > c.rhs + 1e-9:
+            return False
+    return True
+
+
+def _brute_free(problem: Problem, x: np.ndarray, eps: float,
+                constraints=()) -> tuple[float, int, int]:
+    """(energy, free variables, free decisions) by dimod energies of every neighbour; with
+    constraints, a free move must also keep them."""
     bqm = problem.to_bqm()
     lab = problem.labels
 
@@ -79,7 +99,7 @@ def _brute_free(problem: Problem, x: np.ndarray, eps: float) -> tuple[float, int
             continue
         y = x.copy()
         y[i] ^= 1
-        fv += e(y) - e0 <= eps + TOL
+        fv += e(y) - e0 <= eps + TOL and _holds(constraints, y)
     fd = 0
     for d in problem.decisions:
         cols = [problem.index[v] for v in d.variables]
@@ -99,7 +119,7 @@ def _brute_free(problem: Problem, x: np.ndarray, eps: float) -> tuple[float, int
             y = x.copy()
             for i in mv:
                 y[i] ^= 1
-            free |= e(y) - e0 <= eps + TOL
+            free |= e(y) - e0 <= eps + TOL and _holds(constraints, y)
         fd += free
     return e0, fv, fd
 
@@ -148,11 +168,14 @@ def test_distance_is_to_the_nearest_stored_or_earlier_state():
         assert st.distance > 0
 
 
-def test_kernel_figures_match_brute_force():
+@pytest.mark.parametrize("rows", [False, True])
+def test_kernel_figures_match_brute_force(rows):
     """run_chain's own F, D and energy change are exact (not only the confirmation)."""
     p = _random_problem(11, decisions=True)
     lib = _library(p, 3, seed=4)
     Q, Gr = _qubo(p), groups_of(p)
+    cons = _cap_row(p, lib) if rows else []
+    R = hard_rows(p, cons)
     Lv = decode_indices(p, lib.X)
     for unit in (BITS, DECISIONS):
         for chain in range(4):
@@ -160,10 +183,11 @@ def test_kernel_figures_match_brute_force():
             plan = Plan(40, 4, 0.05, 2.0, 0.0, p.n, np.uint64(9), False, 1.0)
             params = np.array([0.7, 0.4, 0.5 + TOL, 5.0, 1e-12])
             best, out = np.zeros(p.n, np.int8), np.zeros(5)
-            run_chain(Q, Gr, plan, params, unit, lib.X, Lv, x0,
-                      decode_indices(p, x0[None, :])[0], chain, np.zeros(1, np.uint8), best, out)
-            e0 = _brute_free(p, x0, 0.5)[0]
-            e, fv, fd = _brute_free(p, best, 0.5)
+            g0 = np.ascontiguousarray(decode_indices(p, x0[None, :])[0])
+            run_chain(Q, Gr, R, plan, params, unit, lib.X, Lv, x0, g0, np.int64(chain),
+                      np.zeros(1, np.uint8), new_scratch(p.n, g0.size, 3, R.lo.size), best, out)
+            e0 = _brute_free(p, x0, 0.5, cons)[0]
+            e, fv, fd = _brute_free(p, best, 0.5, cons)
             assert out[0] == pytest.approx(e - e0)
             assert out[1] == fv + fd
             if unit == BITS:
@@ -175,6 +199,7 @@ def test_kernel_figures_match_brute_force():
                            for y, lv in zip(lib.X, Lv))
             assert out[2] == dmin
             assert out[4] == 40
+            assert _holds(cons, best)
 
 
 def test_seeded_and_reproducible():
@@ -266,3 +291,39 @@ def test_heldout_comparison_recomputed_from_the_stress_matrix():
     with pytest.raises(InputError) as err:
         union(lib, lib)
     assert err.value.field == "new.ids"
+
+
+@pytest.mark.parametrize("mode", ["robust", "diverse"])
+def test_growing_under_a_capacity_row(mode):
+    """Every origin and proposal meets the row; free moves counted only when they keep it
+    (dimod energies and a plain-Python row check of every neighbour)."""
+    p = _random_problem(13, n=12, decisions=True)
+    lib = _library(p, 4, seed=6)
+    cons = _cap_row(p, lib)
+    res = grow(p, lib, constraints=cons,
+               settings=GrowSettings(mode=mode, epsilon=1.0, tolerance=6.0, chains=6, sweeps=60,
+                                     top=4, seed=1))
+    ok = [k for k in range(4) if _holds(cons, lib.X[k])]
+    assert res.best_energy == pytest.approx(min(_brute_free(p, lib.X[k], 1.0)[0] for k in ok))
+    assert res.states
+    for st in res.states:
+        assert _holds(cons, st.x)
+        assert st.origin_id in [lib.ids[k] for k in ok]
+        e, fv, fd = _brute_free(p, st.x, 1.0, cons)
+        assert st.energy == pytest.approx(e)
+        assert (st.free_variables, st.free_decisions) == (fv, fd)
+        k = lib.ids.index(st.origin_id)
+        _, fv0, fd0 = _brute_free(p, lib.X[k], 1.0, cons)
+        assert st.free_gained == fv + fd - fv0 - fd0
+
+
+def test_constraints_must_be_hard_rows_met_by_some_candidate():
+    p = _random_problem(13, n=12)
+    lib = _library(p, 3, seed=6)
+    with pytest.raises(InputError) as err:
+        grow(p, lib, constraints=[LinearConstraint({"x0": 1.0}, "<=", 0.0),
+                                  HammingPenalty({"x1": 1}, weight=1.0)])
+    assert err.value.field == "constraints[1]"
+    with pytest.raises(InputError) as err:
+        grow(p, lib, constraints=[LinearConstraint({lab: 1.0 for lab in p.labels}, "<=", -1.0)])
+    assert err.value.field == "constraints"

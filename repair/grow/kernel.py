@@ -16,6 +16,11 @@ under the hard cap ``E(x) - E(x0) <= cap`` (the energy tolerance), where
 * D is the distance to the nearest reference state (the stored library), in bits, or in
   decisions (a plain variable counts as a decision of its own).
 
+Hard rows (:class:`~flipfix.repair.kernels.bundles.Rows`, ``lo <= A x <= hi``; none when the
+bundle is empty) bound the search: x0 must satisfy them, a move that would break one is never
+made, and a free move must keep them too (so F also changes when a row's activity moves: the
+members of the rows a move touches are refreshed).
+
 Moves keep every valid decision valid: plain variables flip singly, a one-hot decision
 swaps its "on" bit with another bit of it, a domain wall moves one step; a decision whose
 bits are not a valid code word never moves. Each proposal is applied tentatively (fields of
@@ -38,8 +43,10 @@ import numba as nb
 import numpy as np
 
 from flipfix.repair.kernels.metropolis import _accept, _stream, _uniform, temperature
+from flipfix.repair.solvers.greedy.jit import entry, kernel
 
-__all__ = ["Groups", "run_chain", "ONE_HOT", "DOMAIN_WALL", "BITS", "DECISIONS"]
+__all__ = ["Groups", "Scratch", "new_scratch", "run_chain", "ONE_HOT", "DOMAIN_WALL", "BITS",
+           "DECISIONS"]
 
 #: group kinds
 ONE_HOT, DOMAIN_WALL = 0, 1
@@ -67,9 +74,73 @@ class Groups(NamedTuple):
     j_val: np.ndarray
 
 
+class Scratch(NamedTuple):
+    """One chain's working arrays (the kernels allocate nothing; see
+    :mod:`flipfix.repair.solvers.greedy.jit` for why: no reference counting in the hot loop).
+
+    x int8 (n,); field float64 (n,) ``h + J x``; act float64 (m,) row activities; gval int64
+    (G,) decision values; pfree int8 (n,), gfree int8 (G,) free flags; dist int64 (K,)
+    distances to the references; stamp int64 (n,), gstamp int64 (G,), cnt int64 (1,): the
+    refresh stamps; rng uint64 (1,).
+    """
+
+    x: np.ndarray
+    field: np.ndarray
+    act: np.ndarray
+    gval: np.ndarray
+    pfree: np.ndarray
+    gfree: np.ndarray
+    dist: np.ndarray
+    stamp: np.ndarray
+    gstamp: np.ndarray
+    cnt: np.ndarray
+    rng: np.ndarray
+
+
+def new_scratch(n: int, G: int, K: int, m: int) -> Scratch:
+    """Working arrays of one chain: n variables, G decisions, K references, m rows."""
+    return Scratch(np.zeros(n, np.int8), np.zeros(n), np.zeros(m), np.zeros(G, np.int64),
+                   np.zeros(n, np.int8), np.zeros(G, np.int8), np.zeros(K, np.int64),
+                   np.zeros(n, np.int64), np.zeros(G, np.int64), np.zeros(1, np.int64),
+                   np.zeros(1, np.uint64))
+
+
 @nb.njit(cache=True, inline="always")
 def _cost(x, field, i):
     return (1.0 - 2.0 * x[i]) * field[i]
+
+
+@nb.njit(cache=True, inline="always")
+def _shift(R, act, x, i, sign):
+    """Add ``sign`` times the activity change of flipping bit i (at its current value)."""
+    sgn = sign * (1.0 - 2.0 * x[i])
+    for q in range(R.col_ptr[i], R.col_ptr[i + 1]):
+        act[R.col_row[q]] += sgn * R.col_val[q]
+
+
+@nb.njit(cache=True, inline="always")
+def _rows_hold(R, act, i):
+    """Every row containing bit i is within its bounds (with its tolerance)."""
+    for q in range(R.col_ptr[i], R.col_ptr[i + 1]):
+        r = R.col_row[q]
+        if act[r] < R.lo[r] - R.rtol[r] or act[r] > R.hi[r] + R.rtol[r]:
+            return False
+    return True
+
+
+@nb.njit(cache=True, inline="always")
+def _feasible_move(R, act, x, i, j):
+    """Flipping i (and j >= 0, i != j) keeps every hard row; act is left unchanged."""
+    if R.lo.size == 0:
+        return True
+    _shift(R, act, x, i, 1.0)
+    if j >= 0:
+        _shift(R, act, x, j, 1.0)
+    ok = _rows_hold(R, act, i) and (j < 0 or _rows_hold(R, act, j))
+    _shift(R, act, x, i, -1.0)
+    if j >= 0:
+        _shift(R, act, x, j, -1.0)
+    return ok
 
 
 @nb.njit(cache=True, inline="always")
@@ -82,23 +153,32 @@ def _swap_cost(x, field, Gr, g, a, b):
     return _cost(x, field, ia) + _cost(x, field, ib) - Gr.j_val[Gr.j_ptr[g] + a * k + b]
 
 
-@nb.njit(cache=True, inline="always")
-def _group_free(x, field, Gr, gval, g, thr):
+@kernel
+def _group_free(x, field, Gr, R, act, gval, g, thr):
     v = gval[g]
     if v < 0:
         return 0
     s = Gr.g_ptr[g]
     k = Gr.g_ptr[g + 1] - s
     if Gr.g_kind[g] == ONE_HOT:
+        on = Gr.g_col[s + v]
         for m in range(k):
-            if m != v and _swap_cost(x, field, Gr, g, v, m) <= thr:
+            if m != v and _swap_cost(x, field, Gr, g, v, m) <= thr \
+                    and _feasible_move(R, act, x, on, Gr.g_col[s + m]):
                 return 1
         return 0
-    if v > 0 and _cost(x, field, Gr.g_col[s + v - 1]) <= thr:
+    if v > 0 and _cost(x, field, Gr.g_col[s + v - 1]) <= thr \
+            and _feasible_move(R, act, x, Gr.g_col[s + v - 1], -1):
         return 1
-    if v < k and _cost(x, field, Gr.g_col[s + v]) <= thr:
+    if v < k and _cost(x, field, Gr.g_col[s + v]) <= thr \
+            and _feasible_move(R, act, x, Gr.g_col[s + v], -1):
         return 1
     return 0
+
+
+@nb.njit(cache=True, inline="always")
+def _plain_free(x, field, R, act, v, thr):
+    return 1 if _cost(x, field, v) <= thr and _feasible_move(R, act, x, v, -1) else 0
 
 
 @nb.njit(cache=True, inline="always")
@@ -109,10 +189,32 @@ def _flip(Q, x, field, i):
     x[i] = 1 - x[i]
 
 
-@nb.njit(cache=True)
-def _refresh(Q, Gr, x, field, gval, pfree, gfree, stamp, gstamp, cnt, i, j, thr):
-    """Free flags of i, j (j = -1: none) and their neighbours, recomputed; returns the
+@kernel
+def _touch(Gr, R, x, field, act, gval, pfree, gfree, stamp, gstamp, c, v, thr):
+    """Recompute the free flag of v (or of its decision) once per stamp c; returns the
     change of F."""
+    if stamp[v] == c:
+        return 0
+    stamp[v] = c
+    g = Gr.var_group[v]
+    if g < 0:
+        new = _plain_free(x, field, R, act, v, thr)
+        d = new - pfree[v]
+        pfree[v] = new
+        return d
+    if gstamp[g] == c:
+        return 0
+    gstamp[g] = c
+    new = _group_free(x, field, Gr, R, act, gval, g, thr)
+    d = new - gfree[g]
+    gfree[g] = new
+    return d
+
+
+@kernel
+def _refresh(Q, Gr, R, x, field, act, gval, pfree, gfree, stamp, gstamp, cnt, i, j, thr):
+    """Free flags of i, j (j = -1: none), their neighbours and the members of the rows they
+    belong to, recomputed; returns the change of F."""
     cnt[0] += 1
     c = cnt[0]
     dF = 0
@@ -120,21 +222,15 @@ def _refresh(Q, Gr, x, field, gval, pfree, gfree, stamp, gstamp, cnt, i, j, thr)
         b = i if t == 0 else j
         if b < 0:
             continue
-        for p in range(Q.indptr[b], Q.indptr[b + 1] + 1):
-            v = b if p == Q.indptr[b + 1] else nb.int64(Q.indices[p])
-            if stamp[v] == c:
-                continue
-            stamp[v] = c
-            g = Gr.var_group[v]
-            if g < 0:
-                new = 1 if _cost(x, field, v) <= thr else 0
-                dF += new - pfree[v]
-                pfree[v] = new
-            elif gstamp[g] != c:
-                gstamp[g] = c
-                new = _group_free(x, field, Gr, gval, g, thr)
-                dF += new - gfree[g]
-                gfree[g] = new
+        dF += _touch(Gr, R, x, field, act, gval, pfree, gfree, stamp, gstamp, c, b, thr)
+        for p in range(Q.indptr[b], Q.indptr[b + 1]):
+            dF += _touch(Gr, R, x, field, act, gval, pfree, gfree, stamp, gstamp, c,
+                         nb.int64(Q.indices[p]), thr)
+        for q in range(R.col_ptr[b], R.col_ptr[b + 1]):
+            r = R.col_row[q]
+            for a in range(R.a_ptr[r], R.a_ptr[r + 1]):
+                dF += _touch(Gr, R, x, field, act, gval, pfree, gfree, stamp, gstamp, c,
+                             R.a_col[a], thr)
     return dF
 
 
@@ -164,10 +260,13 @@ def _dmin(dist):
 
 
 @nb.njit(cache=True, inline="always")
-def _move(Q, Gr, x, field, gval, L, Lv, dist, unit, i, j, g, to):
-    """Apply a move: flip i (and j >= 0); decision g (>= 0) takes value ``to``."""
+def _move(Q, Gr, R, x, field, act, gval, L, Lv, dist, unit, i, j, g, to):
+    """Apply a move: flip i (and j >= 0); decision g (>= 0) takes value ``to``; row
+    activities follow."""
+    _shift(R, act, x, i, 1.0)
     _flip(Q, x, field, i)
     if j >= 0:
+        _shift(R, act, x, j, 1.0)
         _flip(Q, x, field, j)
     if g >= 0:
         frm = gval[g]
@@ -180,39 +279,53 @@ def _move(Q, Gr, x, field, gval, L, Lv, dist, unit, i, j, g, to):
             _bit_dist(x, j, L, dist)
 
 
-@nb.njit(cache=True, nogil=True)
-def run_chain(Q, Gr, plan, params, unit, L, Lv, x0, gval0, chain, stop, best, out):
-    """Anneal one chain from x0 (int8 (n,)) and write its best state into ``best``.
+@entry
+def run_chain(Q, Gr, R, plan, params, unit, L, Lv, x0, gval0, chain, stop, sc, best, out):
+    """Anneal one chain from x0 (int8 (n,), within the rows R) and write its best state into
+    ``best``.
 
     params float64 (5,): reward_free, reward_distance, thr (free-move threshold, round-off
     included), cap (largest energy increase over x0), tol (objective round-off).
     unit: BITS or DECISIONS; L int8 (K, n) and Lv int64 (K, G): reference states and their
     decision values (-1 invalid); gval0 int64 (G,): x0's decision values; chain: this
-    chain's stream index under ``plan.seed``; stop uint8 (1,): non-zero ends the run.
+    chain's stream index under ``plan.seed``; stop uint8 (1,): non-zero ends the run; sc: a
+    :class:`Scratch` of matching sizes (overwritten).
     out float64 (5,): energy change of ``best`` over x0, its F, its D, its S, sweeps run.
     """
     rf, rd, thr, cap, tol = params[0], params[1], params[2], params[3], params[4]
     n = x0.size
     G = gval0.size
-    x = x0.copy()
-    gval = gval0.copy()
-    field = Q.h.copy()
+    x, field, act, gval = sc.x, sc.field, sc.act, sc.gval
+    pfree, gfree, dist, stamp, gstamp, cnt, rng = (sc.pfree, sc.gfree, sc.dist, sc.stamp,
+                                                   sc.gstamp, sc.cnt, sc.rng)
+    for i in range(n):
+        x[i] = x0[i]
+        field[i] = Q.h[i]
+        pfree[i] = 0
+        stamp[i] = 0
+    for g in range(G):
+        gval[g] = gval0[g]
+        gfree[g] = 0
+        gstamp[g] = 0
+    cnt[0] = 0
     for i in range(n):
         if x[i]:
             for p in range(Q.indptr[i], Q.indptr[i + 1]):
                 field[Q.indices[p]] += Q.data[p]
-    pfree = np.zeros(n, np.int8)
-    gfree = np.zeros(G, np.int8)
+    for r in range(R.lo.size):
+        a = 0.0
+        for q in range(R.a_ptr[r], R.a_ptr[r + 1]):
+            a += R.a_val[q] * x[R.a_col[q]]
+        act[r] = a
     F = 0
     for f in range(Gr.plain.size):
         i = Gr.plain[f]
-        pfree[i] = 1 if _cost(x, field, i) <= thr else 0
+        pfree[i] = _plain_free(x, field, R, act, i, thr)
         F += pfree[i]
     for g in range(G):
-        gfree[g] = _group_free(x, field, Gr, gval, g, thr)
+        gfree[g] = _group_free(x, field, Gr, R, act, gval, g, thr)
         F += gfree[g]
     K = L.shape[0]
-    dist = np.zeros(K, np.int64)
     for r in range(K):
         d = 0
         if unit == BITS:
@@ -226,14 +339,11 @@ def run_chain(Q, Gr, plan, params, unit, L, Lv, x0, gval0, chain, stop, best, ou
                 d += 1 if (gval[g] != Lv[r, g] or gval[g] < 0) else 0
         dist[r] = d
     D = _dmin(dist)
-    stamp = np.zeros(n, np.int64)
-    gstamp = np.zeros(G, np.int64)
-    cnt = np.zeros(1, np.int64)
-    rng = np.zeros(1, np.uint64)
     rng[0] = _stream(plan.seed, chain)
     dE = 0.0
     S = -rf * F - rd * D
-    best[:] = x
+    for i in range(n):
+        best[i] = x[i]
     bE, bF, bD, bS = 0.0, float(F), D, S
     sweeps = 0
     for s in range(plan.sweeps):
@@ -271,11 +381,12 @@ def run_chain(Q, Gr, plan, params, unit, L, Lv, x0, gval0, chain, stop, best, ou
                     to = v + 1 if up else v - 1
                     i = Gr.g_col[a + v] if up else Gr.g_col[a + v - 1]
                     e = _cost(x, field, i)
-            if dE + e > cap + tol:
+            if dE + e > cap + tol or not _feasible_move(R, act, x, i, j):
                 continue
             old = gval[g] if g >= 0 else -1
-            _move(Q, Gr, x, field, gval, L, Lv, dist, unit, i, j, g, to)
-            dF = _refresh(Q, Gr, x, field, gval, pfree, gfree, stamp, gstamp, cnt, i, j, thr)
+            _move(Q, Gr, R, x, field, act, gval, L, Lv, dist, unit, i, j, g, to)
+            dF = _refresh(Q, Gr, R, x, field, act, gval, pfree, gfree, stamp, gstamp, cnt, i, j,
+                          thr)
             D2 = _dmin(dist)
             change = e - rf * dF - rd * (D2 - D)
             if _accept(change, beta, rng):
@@ -284,11 +395,13 @@ def run_chain(Q, Gr, plan, params, unit, L, Lv, x0, gval0, chain, stop, best, ou
                 D = D2
                 S += change
             else:
-                _move(Q, Gr, x, field, gval, L, Lv, dist, unit, i, j, g, old)
-                _refresh(Q, Gr, x, field, gval, pfree, gfree, stamp, gstamp, cnt, i, j, thr)
+                _move(Q, Gr, R, x, field, act, gval, L, Lv, dist, unit, i, j, g, old)
+                _refresh(Q, Gr, R, x, field, act, gval, pfree, gfree, stamp, gstamp, cnt, i, j,
+                         thr)
         sweeps += 1
         if dE <= cap + tol and S < bS - tol:
-            best[:] = x
+            for i in range(n):
+                best[i] = x[i]
             bE, bF, bD, bS = dE, float(F), D, S
     out[0] = bE
     out[1] = bF

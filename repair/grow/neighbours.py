@@ -17,6 +17,12 @@ state, and gains what its mode asks (robust: more free moves than its origin; di
 distance > 0; both: either). Each kept state carries its provenance: origin candidate,
 mode, settings, seed and chain. Nothing is stored here.
 
+Hard constraints (``constraints``: linear rows only, e.g. a knapsack's capacity) bound the
+search: origins must satisfy them (the default origins are the best that do, and the cap
+counts from the best that does), every move keeps them, and a free move must keep them too
+(confirmed exactly by :func:`free_counts`, which then differs from the audit's profile, where
+constraints are not known).
+
 Seeded: chain c of origin o draws from stream (seed, o * chains + c) of the annealing
 kernel's generator, so the answer depends on the seed alone (not on ``workers``).
 ``cancel`` (a ``threading.Event`` or :class:`~flipfix.repair.cancel.CancelToken`) and
@@ -37,9 +43,10 @@ from flipfix.repair.audit.robustness import (flip_cost_matrix, free_decision_cou
                                              free_variable_counts, hamming_to_rows, ROUNDOFF)
 from flipfix.repair.cancel import as_token
 from flipfix.repair.errors import InputError, nonnegative
-from flipfix.repair.grow.kernel import BITS, DECISIONS, DOMAIN_WALL, ONE_HOT, Groups, run_chain
+from flipfix.repair.grow.kernel import (BITS, DECISIONS, DOMAIN_WALL, ONE_HOT, Groups,
+                                        new_scratch, run_chain)
 from flipfix.repair.kernels.batching import thread_pool
-from flipfix.repair.kernels.bundles import Qubo, unsigned
+from flipfix.repair.kernels.bundles import Qubo, Rows, late_arrays, unsigned
 from flipfix.repair.kernels.metropolis import Plan
 from flipfix.repair.model.candidates import CandidateSet
 from flipfix.repair.model.encodings import decision_bits, decode_indices
@@ -47,7 +54,7 @@ from flipfix.repair.model.problem import Problem
 from flipfix.repair.solvers.anneal import HEAT, temperatures
 
 __all__ = ["GrowSettings", "NewState", "GrowResult", "grow", "distances", "groups_of",
-           "warm_up", "MODES", "UNITS"]
+           "hard_rows", "free_counts", "warm_up", "MODES", "UNITS"]
 
 MODES = ("robust", "diverse", "both")
 UNITS = ("bits", "decisions")
@@ -277,17 +284,90 @@ def _tol(problem: Problem) -> float:
     return ROUNDOFF * (1.0 + scale)
 
 
-def _free(problem: Problem, X: np.ndarray, eps: float) -> tuple[np.ndarray, np.ndarray]:
+def hard_rows(problem: Problem, constraints) -> Rows:
+    """The rows ``lo <= A x <= hi`` of hard linear ``constraints`` (with the validity rows of
+    the problem's decisions) as a :class:`~flipfix.repair.kernels.bundles.Rows` bundle; no
+    constraint: an empty bundle. A constraint that is not a hard linear row (a penalty, a
+    fixing, a table) is an error naming ``constraints[k]``."""
+    from flipfix.repair.lowering.compiled import compile_constraints
+
+    constraints = list(constraints)
+    if not constraints:
+        n = problem.n
+        z, zi = np.zeros(0), np.zeros(0, np.int64)
+        return Rows(np.zeros(1, np.int64), zi, z, np.zeros(n + 1, np.int64), zi, z, z, z, z)
+    for k, c in enumerate(constraints):
+        one = compile_constraints(problem, [c], field_name=f"constraints[{k}]",
+                                  paths=[f"constraints[{k}]"])
+        soft = (one.counts or (one.fixed >= 0).any() or one.data.size != problem.data.size
+                or not np.array_equal(one.h, problem.linear)
+                or not np.array_equal(one.data, problem.data))
+        if soft:
+            raise InputError(f"constraints[{k}]", "only hard linear rows can bound growing "
+                                                  f"(got a {getattr(c, 'name', type(c).__name__)}"
+                                                  " that adds penalties or fixings)")
+    return late_arrays(compile_constraints(problem, constraints)).rows
+
+
+def _dense(R: Rows, n: int) -> np.ndarray:
+    A = np.zeros((R.lo.size, n))
+    rows = np.repeat(np.arange(R.lo.size), np.diff(R.a_ptr))
+    np.add.at(A, (rows, R.a_col), R.a_val)
+    return A
+
+
+def _within(R: Rows, act: np.ndarray) -> np.ndarray:
+    """bool (...,): every row within its bounds, for activities act (..., m)."""
+    return ((act >= R.lo - R.rtol) & (act <= R.hi + R.rtol)).all(axis=-1)
+
+
+def free_counts(problem: Problem, X: np.ndarray, eps: float, rows: Rows | None = None
+                ) -> tuple[np.ndarray, np.ndarray]:
+    """(free variables, free decisions) int64 (K,) of X int8 (K, n), exactly.
+
+    Without rows (or an empty bundle): the audit's own counts
+    (:func:`~flipfix.repair.audit.robustness.free_variable_counts`, ``free_decision_counts``).
+    With rows, a move counts only when it also keeps every row (dense row matrix: meant for
+    a few hundred rows)."""
     costs = flip_cost_matrix(problem, X)
-    return (free_variable_counts(problem, X, epsilon=eps, costs=costs),
-            free_decision_counts(problem, X, epsilon=eps, costs=costs))
+    fv = free_variable_counts(problem, X, epsilon=eps, costs=costs)
+    fd = free_decision_counts(problem, X, epsilon=eps, costs=costs)
+    if rows is None or rows.lo.size == 0:
+        return fv, fd
+    from flipfix.repair.audit.robustness import codewords, decision_move_costs
+
+    thr = eps + _tol(problem)
+    A = _dense(rows, problem.n)  # (m, n)
+    Xf = X.astype(np.float64)
+    act = Xf @ A.T  # (K, m)
+    s = 1.0 - 2.0 * Xf  # (K, n) sign of each flip
+    plain = groups_of(problem).plain
+    fv = np.zeros(X.shape[0], np.int64)
+    for v in plain:
+        ok = _within(rows, act + s[:, v:v + 1] * A[:, v][None, :])
+        fv += (costs[:, v] <= thr) & ok
+    fd = np.zeros(X.shape[0], np.int64)
+    for d in problem.decisions:
+        cols = decision_bits(problem, d)
+        mv = decision_move_costs(problem, X, d, costs=costs)  # (K, k), inf: not a move
+        words = codewords(d)
+        free = np.zeros(X.shape[0], bool)
+        for m in range(words.shape[0]):
+            diff = (X[:, cols] != words[m][None, :]).astype(np.float64)  # (K, b)
+            moved = act + (diff * s[:, cols]) @ A[:, cols].T
+            free |= (mv[:, m] <= thr) & _within(rows, moved)
+        fd += free
+    return fv, fd
 
 
 # ---------------------------------------------------------------------- the search
 def grow(problem: Problem, candidates: CandidateSet, *, settings: GrowSettings | None = None,
-         time_limit: float | None = None, cancel=None,
+         constraints=(), time_limit: float | None = None, cancel=None,
          progress: Callable[[dict], None] | None = None) -> GrowResult:
     """Propose robust and/or diverse neighbours of the stored candidates (module docstring).
+
+    ``constraints``: hard linear constraints (:class:`~flipfix.repair.model.constraints.LinearConstraint`)
+    every origin and proposed state satisfies.
 
     ``progress(dict(done, total, best_cost=None, phase="grow"))`` is called from the calling
     thread after each origin's chains.
@@ -300,14 +380,22 @@ def grow(problem: Problem, candidates: CandidateSet, *, settings: GrowSettings |
         time_limit = nonnegative(time_limit, "time_limit")
     token = as_token(cancel)
     X = np.ascontiguousarray(candidates.X, dtype=np.int8)
+    R = hard_rows(problem, constraints)
+    feasible = (_within(R, X.astype(np.float64) @ _dense(R, problem.n).T) if R.lo.size
+                else np.ones(X.shape[0], bool))
+    if not feasible.any():
+        raise InputError("constraints", "no stored candidate satisfies them: nothing to grow from")
     energy = problem.energies(X)
-    best = float(energy.min())
+    best = float(energy[feasible].min())
     cap = (best + s.tolerance if s.tolerance is not None
            else best + s.tolerance_percent / 100.0 * abs(best))
     rtol = _tol(problem)
-    fv, fd = _free(problem, X, s.epsilon)
-    origins = ([candidates.ids.index(c) for c in s.from_ids] if s.from_ids
-               else [int(k) for k in np.argsort(energy, kind="stable")[:s.top]])
+    fv, fd = free_counts(problem, X, s.epsilon, R)
+    for pos, cid in enumerate(s.from_ids):
+        if not feasible[candidates.ids.index(cid)]:
+            raise InputError(f"settings.from_ids[{pos}]", f"{cid!r} breaks the constraints")
+    order = [int(k) for k in np.argsort(energy, kind="stable") if feasible[k]]
+    origins = ([candidates.ids.index(c) for c in s.from_ids] if s.from_ids else order[:s.top])
     costs = np.abs(flip_cost_matrix(problem, X[origins]))
     nz = costs[costs > rtol]
     scale = float(np.median(nz)) if nz.size else 1.0
@@ -346,10 +434,10 @@ def grow(problem: Problem, candidates: CandidateSet, *, settings: GrowSettings |
                 if stop[0]:
                     break
                 ref = np.vstack([X] + [st.x[None, :] for st in kept])
-                states, _ = _chains(Q, Gr, plan, s, unit, problem, ref, X[k], energy[k], cap,
-                                    rtol, o_pos, stop)
+                states, _ = _chains(Q, Gr, R, plan, s, unit, problem, ref, X[k], energy[k],
+                                    cap, rtol, o_pos, stop)
                 chains_run += s.chains
-                _confirm(problem, s, states, k, candidates.ids[k], energy[k],
+                _confirm(problem, s, R, states, k, candidates.ids[k], energy[k],
                          int(fv[k] + fd[k]), best, cap, rtol, X, ref_ids, kept, counts, o_pos)
                 if progress is not None:
                     progress({"done": chains_run, "total": total, "best_cost": None,
@@ -372,20 +460,23 @@ def _rank(mode: str):
     return lambda st: (-st.free_gained, -st.distance, st.energy, st.id)
 
 
-def _chains(Q, Gr, plan, s, unit, problem, ref, x0, e0, cap, rtol, o_pos, stop):
+def _chains(Q, Gr, R, plan, s, unit, problem, ref, x0, e0, cap, rtol, o_pos, stop):
     """Run one origin's chains (threads when ``s.workers`` > 1): (states int8 (C, n),
     kernel figures float64 (C, 5))."""
     n = problem.n
-    Lv = (decode_indices(problem, ref) if problem.decisions
-          else np.zeros((ref.shape[0], 0), np.int64))
-    gval0 = decode_indices(problem, x0[None, :])[0] if problem.decisions else np.zeros(0, np.int64)
+    Lv = np.ascontiguousarray(decode_indices(problem, ref) if problem.decisions
+                              else np.zeros((ref.shape[0], 0), np.int64))
+    gval0 = np.ascontiguousarray(decode_indices(problem, x0[None, :])[0] if problem.decisions
+                                 else np.zeros(0, np.int64))
+    x0 = np.ascontiguousarray(x0)
     params = np.array([s.reward_free, s.reward_distance, s.epsilon + rtol, cap - e0, rtol])
     out_x = np.zeros((s.chains, n), np.int8)
     out = np.zeros((s.chains, 5))
 
     def one(c):
-        run_chain(Q, Gr, plan, params, unit, ref, Lv, x0, gval0, o_pos * s.chains + c, stop,
-                  out_x[c], out[c])
+        sc = new_scratch(n, gval0.size, ref.shape[0], R.lo.size)
+        run_chain(Q, Gr, R, plan, params, unit, ref, Lv, x0, gval0, np.int64(o_pos * s.chains + c),
+                  stop, sc, out_x[c], out[c])
 
     if s.workers == 1 or s.chains == 1:
         for c in range(s.chains):
@@ -397,15 +488,17 @@ def _chains(Q, Gr, plan, s, unit, problem, ref, x0, e0, cap, rtol, o_pos, stop):
     return out_x, out
 
 
-def _confirm(problem, s, states, k, origin_id, e0, free0, best, cap, rtol, ref, ref_ids,
+def _confirm(problem, s, R, states, k, origin_id, e0, free0, best, cap, rtol, ref, ref_ids,
              kept, counts, o_pos):
     """Exact figures of each chain's state; accepted ones join ``kept`` (the stored rows
     ``ref`` and ``kept`` are the reference for distances and repeats)."""
     E = problem.energies(states)
-    fv, fd = _free(problem, states, s.epsilon)
+    fv, fd = free_counts(problem, states, s.epsilon, R)
+    ok = (_within(R, states.astype(np.float64) @ _dense(R, problem.n).T) if R.lo.size
+          else np.ones(states.shape[0], bool))
     for c in range(states.shape[0]):
         x = states[c]
-        if E[c] > cap + rtol:
+        if E[c] > cap + rtol or not ok[c]:
             counts["outside_cap"] += 1
             continue
         R = np.vstack([ref] + [st.x[None, :] for st in kept])
