@@ -21,7 +21,9 @@ Instances:
   it (always 0).
 
 Per instance and mode: grow (seed 0), then :func:`flipfix.repair.grow.heldout.compare_heldout`
-(greedy repairs; even scenarios curate, odd ones are held out). No target outside the planted
+(greedy repairs; even scenarios curate, odd ones are held out). Energy tolerance: 25 % on the
+planted model (a block's crossing climbs 2.07 above its start), 10 % on the workshop, 2 % on
+bqp, 5 % on the knapsack. No target outside the planted
 model: the table says where growing helps (lower held-out mean) and where it does not.
 """
 
@@ -81,7 +83,9 @@ def _case(name: str, seed: int):
 
         def keep(x):
             return float(w @ x) <= cap + 1e-9
-    return inst.problem, lib, fams, list(inst.base), 2.0, LIBRARY // 2, keep, None
+    # the knapsack library's local minima spread wider: at 2 % most origins are above the cap
+    pct = 5.0 if inst.weights is not None else 2.0
+    return inst.problem, lib, fams, list(inst.base), pct, LIBRARY // 2, keep, None
 
 
 def run(*, quick: bool = False, seed: int = 0, log=print) -> dict:

@@ -74,6 +74,9 @@ def register(subparsers) -> argparse.ArgumentParser:
                    help="seconds for the search and the comparison (30)")
     p.add_argument("--heldout", type=int, default=0, metavar="M",
                    help="compare original and grown libraries curated to M on held-out scenarios")
+    p.add_argument("--constraints", default=None, metavar="FILE",
+                   help="constraints JSON: hard linear rows every proposal keeps (and every "
+                        "held-out scenario)")
     p.add_argument("--scenarios", type=int, default=20, help="scenarios of the comparison (20)")
     p.add_argument("--scenario-seed", type=int, default=0)
     p.add_argument("--json", default=None, help="write everything to this JSON file")
@@ -116,6 +119,7 @@ def _local(args, err: TextIO) -> dict:
     if isinstance(doc, dict) and "candidates" in doc:
         doc = doc["candidates"]
     cands = parse_candidates(doc, problem)
+    cons = _constraints(args, problem)
     show = _progress(not args.quiet, err)
 
     def prog(d):
@@ -123,7 +127,8 @@ def _local(args, err: TextIO) -> dict:
 
     t0 = time.perf_counter()
     search = args.time_limit * (0.5 if args.heldout else 1.0)
-    res = grow(problem, cands, settings=_settings(args), time_limit=search, progress=prog)
+    res = grow(problem, cands, settings=_settings(args), constraints=cons, time_limit=search,
+               progress=prog)
     out = res.to_dict(problem)
     if args.heldout:
         if not res.states:
@@ -133,14 +138,27 @@ def _local(args, err: TextIO) -> dict:
                                   scenarios=args.scenarios, seed=args.scenario_seed,
                                   time_limit=max(1e-3, args.time_limit
                                                  - (time.perf_counter() - t0)),
-                                  progress=prog)
+                                  progress=prog, base=cons)
             out["heldout"] = cmp.to_dict()
     return out
+
+
+def _constraints(args, problem) -> list:
+    """The --constraints document (a list, or {"constraints": [...]}) parsed; [] without it."""
+    from flipfix.repair.documents.forms import parse_constraints
+
+    if not args.constraints:
+        return []
+    doc = _load(args.constraints, "constraints")
+    if isinstance(doc, dict) and "constraints" in doc:
+        doc = doc["constraints"]
+    return parse_constraints(doc, problem)
 
 
 def _remote(args, err: TextIO) -> dict:
     from flipfix.service.client import FlipfixClient
     from flipfix.service.convert import grow as convert_grow
+    from flipfix.service.convert.constraints import constraint_to_proto
     from flipfix.service.generated import grow_pb2 as gpb
     from flipfix.service.generated import grow_pb2_grpc as gpb_grpc
 
@@ -165,6 +183,7 @@ def _remote(args, err: TextIO) -> dict:
     show = _progress(not args.quiet, err)
     with FlipfixClient(args.server, timeout=2 * args.time_limit + 60.0) as fx:
         _info, problem = fx.get_problem(args.problem)
+        req.constraints.extend(constraint_to_proto(c) for c in _constraints(args, problem))
         reply = None
         for event in gpb_grpc.GrowStub(fx.channel).ProposeStream(
                 req, timeout=2 * args.time_limit + 60.0):

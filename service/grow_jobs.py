@@ -16,9 +16,10 @@ __all__ = ["grow_job"]
 
 
 def grow_job(problem: Problem, candidates: CandidateSet, settings, *, time_limit: float,
-             heldout: dict | None = None, cancel=None, progress=None):
+             constraints=(), heldout: dict | None = None, cancel=None, progress=None):
     """:func:`flipfix.repair.grow.neighbours.grow`, then (``heldout``: keyword arguments of
-    :func:`flipfix.repair.grow.heldout.compare_heldout`) the held-out comparison.
+    :func:`flipfix.repair.grow.heldout.compare_heldout`) the held-out comparison; the hard
+    ``constraints`` bound the search and hold in every scenario.
 
     ``time_limit`` covers both: the search gets half of it when a comparison is asked, the
     comparison what is left. The chain kernel is warmed up before the clock starts.
@@ -31,8 +32,8 @@ def grow_job(problem: Problem, candidates: CandidateSet, settings, *, time_limit
     warm_up()
     t0 = time.perf_counter()
     search = time_limit * (0.5 if heldout else 1.0)
-    res = grow(problem, candidates, settings=settings, time_limit=search, cancel=cancel,
-               progress=progress)
+    res = grow(problem, candidates, settings=settings, constraints=constraints,
+               time_limit=search, cancel=cancel, progress=progress)
     if not heldout:
         return res, None, ""
     if not res.states:
@@ -44,7 +45,7 @@ def grow_job(problem: Problem, candidates: CandidateSet, settings, *, time_limit
         return res, None, "no comparison: the time limit was spent by the search"
     try:
         cmp = compare_heldout(problem, candidates, res.candidate_set(), time_limit=left,
-                              cancel=cancel, progress=progress, **heldout)
+                              cancel=cancel, progress=progress, base=constraints, **heldout)
     except InputError as err:
         if err.field != "time_limit":
             raise

@@ -145,3 +145,23 @@ def test_cli_in_process_and_through_the_server(tmp_path, server, planted, capsys
 
 
 
+
+
+def test_hard_constraints_bound_the_proposals(fx, planted):
+    from flipfix.repair.model.constraints import HammingPenalty, LinearConstraint
+    from flipfix.service.convert.constraints import constraint_to_proto
+
+    core = [f"v0_{a}" for a in range(3)]
+    keep_narrow = LinearConstraint({v: 1.0 for v in core}, "<=", 0.0)  # block 0 stays narrow
+    reply = _stub(fx).Propose(_request(constraints=[constraint_to_proto(keep_narrow)]),
+                              timeout=120)
+    d = reply_to_dict(reply, planted.problem)
+    assert d["states"]
+    for s in d["states"]:
+        assert all(s["assignment"][v] == 0 for v in core)
+        assert sum(s["assignment"][f"v{b}_0"] for b in range(1, BLOCKS)) == BLOCKS - 1
+    soft = HammingPenalty({"v0_0": 1}, weight=1.0)
+    err = rpc_error(lambda: _stub(fx).Propose(
+        _request(constraints=[constraint_to_proto(soft)]), timeout=60))
+    assert err.code() == grpc.StatusCode.INVALID_ARGUMENT
+    assert err.details().startswith("constraints[0]:"), err.details()

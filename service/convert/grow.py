@@ -11,6 +11,7 @@ from flipfix.repair.model.problem import Problem
 
 from flipfix.service.convert.audits import DEFAULT_SCENARIOS, family_to_domain
 from flipfix.service.convert.candidates import array_to_packed, packed_to_array
+from flipfix.service.convert.constraints import constraints_to_domain
 from flipfix.service.convert.enums import enum_name
 from flipfix.service.convert.options import nonneg
 from flipfix.service.generated import grow_pb2 as gpb
@@ -34,12 +35,13 @@ _FIELDS = {"tolerance": "tolerance_absolute", "unit": "distance"}
 
 def request_to_job(r: gpb.GrowRequest, problem: Problem, candidates: CandidateSet, *,
                    default_time_limit: float, max_scenarios: int | None = None
-                   ) -> tuple[Any, dict | None, float]:
-    """(checked GrowSettings, held-out keyword arguments or None, requested time limit).
+                   ) -> tuple[Any, list, dict | None, float]:
+    """(checked GrowSettings, hard constraints, held-out keyword arguments or None, requested
+    time limit).
 
     Errors name the request's fields (``tolerance_absolute``, ``from_ids[2]``,
     ``heldout.family.hamming_weight``...)."""
-    from flipfix.repair.grow.neighbours import GrowSettings
+    from flipfix.repair.grow.neighbours import GrowSettings, hard_rows
 
     mode = enum_name(MODE_NAMES, r.mode, "mode", "GROW_MODE_ROBUST, GROW_MODE_DIVERSE or "
                                                  "GROW_MODE_BOTH")
@@ -69,6 +71,8 @@ def request_to_job(r: gpb.GrowRequest, problem: Problem, candidates: CandidateSe
                                    f"limit of {MAX_CHAINS} chains per call")
     if settings.sweeps > MAX_SWEEPS:
         raise LimitError("sweeps", f"{settings.sweeps} sweeps exceed the limit of {MAX_SWEEPS}")
+    constraints = constraints_to_domain(r.constraints)
+    hard_rows(problem, constraints)  # hard linear rows only; errors name constraints[k]
     t = nonneg(r.time_limit, "time_limit")
     heldout = None
     h = r.heldout
@@ -83,7 +87,7 @@ def request_to_job(r: gpb.GrowRequest, problem: Problem, candidates: CandidateSe
         family = (family_to_domain(h.family, problem, field="heldout.family")
                   if r.heldout.HasField("family") else None)
         heldout = {"m": int(h.m), "family": family, "scenarios": scenarios, "seed": int(h.seed)}
-    return settings, heldout, (t if t > 0 else float(default_time_limit))
+    return settings, constraints, heldout, (t if t > 0 else float(default_time_limit))
 
 
 def _opt(msg, name: str, v: float) -> None:

@@ -42,7 +42,7 @@ class GrowHeldout(_message.Message):
     def __init__(self, m: _Optional[int] = ..., family: _Optional[_Union[_flipfix_pb2.ScenarioFamily, _Mapping]] = ..., scenarios: _Optional[int] = ..., seed: _Optional[int] = ...) -> None: ...
 
 class GrowRequest(_message.Message):
-    __slots__ = ("problem", "candidate_ids", "from_ids", "mode", "epsilon", "tolerance_absolute", "tolerance_percent", "reward_free", "reward_distance", "distance", "top", "chains", "sweeps", "depth", "max_new", "seed", "time_limit", "keep", "heldout")
+    __slots__ = ("problem", "candidate_ids", "from_ids", "mode", "epsilon", "tolerance_absolute", "tolerance_percent", "reward_free", "reward_distance", "distance", "top", "chains", "sweeps", "depth", "max_new", "seed", "time_limit", "keep", "heldout", "constraints")
     PROBLEM_FIELD_NUMBER: _ClassVar[int]
     CANDIDATE_IDS_FIELD_NUMBER: _ClassVar[int]
     FROM_IDS_FIELD_NUMBER: _ClassVar[int]
@@ -62,6 +62,7 @@ class GrowRequest(_message.Message):
     TIME_LIMIT_FIELD_NUMBER: _ClassVar[int]
     KEEP_FIELD_NUMBER: _ClassVar[int]
     HELDOUT_FIELD_NUMBER: _ClassVar[int]
+    CONSTRAINTS_FIELD_NUMBER: _ClassVar[int]
     problem: str
     candidate_ids: _containers.RepeatedScalarFieldContainer[str]
     from_ids: _containers.RepeatedScalarFieldContainer[str]
@@ -81,7 +82,8 @@ class GrowRequest(_message.Message):
     time_limit: float
     keep: bool
     heldout: GrowHeldout
-    def __init__(self, problem: _Optional[str] = ..., candidate_ids: _Optional[_Iterable[str]] = ..., from_ids: _Optional[_Iterable[str]] = ..., mode: _Optional[_Union[GrowMode, str]] = ..., epsilon: _Optional[float] = ..., tolerance_absolute: _Optional[float] = ..., tolerance_percent: _Optional[float] = ..., reward_free: _Optional[float] = ..., reward_distance: _Optional[float] = ..., distance: _Optional[_Union[GrowDistance, str]] = ..., top: _Optional[int] = ..., chains: _Optional[int] = ..., sweeps: _Optional[int] = ..., depth: _Optional[float] = ..., max_new: _Optional[int] = ..., seed: _Optional[int] = ..., time_limit: _Optional[float] = ..., keep: _Optional[bool] = ..., heldout: _Optional[_Union[GrowHeldout, _Mapping]] = ...) -> None: ...
+    constraints: _containers.RepeatedCompositeFieldContainer[_flipfix_pb2.Constraint]
+    def __init__(self, problem: _Optional[str] = ..., candidate_ids: _Optional[_Iterable[str]] = ..., from_ids: _Optional[_Iterable[str]] = ..., mode: _Optional[_Union[GrowMode, str]] = ..., epsilon: _Optional[float] = ..., tolerance_absolute: _Optional[float] = ..., tolerance_percent: _Optional[float] = ..., reward_free: _Optional[float] = ..., reward_distance: _Optional[float] = ..., distance: _Optional[_Union[GrowDistance, str]] = ..., top: _Optional[int] = ..., chains: _Optional[int] = ..., sweeps: _Optional[int] = ..., depth: _Optional[float] = ..., max_new: _Optional[int] = ..., seed: _Optional[int] = ..., time_limit: _Optional[float] = ..., keep: _Optional[bool] = ..., heldout: _Optional[_Union[GrowHeldout, _Mapping]] = ..., constraints: _Optional[_Iterable[_Union[_flipfix_pb2.Constraint, _Mapping]]] = ...) -> None: ...
 
 class GrownState(_message.Message):
     __slots__ = ("id", "values", "energy", "energy_given_up", "above_best", "free_variables", "free_decisions", "free_moves", "free_gained", "distance", "nearest_id", "origin_id", "mode", "chain", "seed")
