@@ -111,8 +111,7 @@ def _progress(enabled: bool, err: TextIO):
 
 def _local(args, err: TextIO) -> dict:
     from flipfix.repair.documents.forms import parse_candidates, parse_problem
-    from flipfix.repair.grow.heldout import compare_heldout
-    from flipfix.repair.grow.neighbours import grow
+    from flipfix.service.grow_jobs import grow_job
 
     problem = parse_problem(_load(args.problem, "problem"))
     doc = _load(args.candidates, "candidates")
@@ -125,21 +124,15 @@ def _local(args, err: TextIO) -> dict:
     def prog(d):
         show(d["done"], d["total"], d["phase"])
 
-    t0 = time.perf_counter()
-    search = args.time_limit * (0.5 if args.heldout else 1.0)
-    res = grow(problem, cands, settings=_settings(args), constraints=cons, time_limit=search,
-               progress=prog)
+    heldout = ({"m": args.heldout, "family": None, "scenarios": args.scenarios,
+                "seed": args.scenario_seed} if args.heldout else None)
+    res, cmp, note = grow_job(problem, cands, _settings(args), time_limit=args.time_limit,
+                              constraints=cons, heldout=heldout, progress=prog)
     out = res.to_dict(problem)
-    if args.heldout:
-        if not res.states:
-            out["heldout_message"] = "no comparison: no state was proposed"
-        else:
-            cmp = compare_heldout(problem, cands, res.candidate_set(), m=args.heldout,
-                                  scenarios=args.scenarios, seed=args.scenario_seed,
-                                  time_limit=max(1e-3, args.time_limit
-                                                 - (time.perf_counter() - t0)),
-                                  progress=prog, base=cons)
-            out["heldout"] = cmp.to_dict()
+    if cmp is not None:
+        out["heldout"] = cmp.to_dict()
+    if note:
+        out["heldout_message"] = note
     return out
 
 
