@@ -5,6 +5,7 @@
                    [--max-flips N] [--flip-price P] [--seed S] [--server HOST:PORT]
     flipfix demo
     flipfix audit ...   (when flipfix.service.audit_cli is installed)
+    flipfix grow ...    (flipfix.service.grow_cli)
 
 ``repair`` runs in-process by default and prints the result JSON on stdout
 (progress on stderr); ``--server`` sends the same files through the service. A
@@ -238,6 +239,9 @@ def build_parser() -> argparse.ArgumentParser:
     from flipfix.service import audit_cli  # the audit commands live in their own module
 
     audit_cli.register(sub)
+    from flipfix.service import grow_cli  # flipfix grow, in its own module
+
+    grow_cli.register(sub)
     for name, p in sub.choices.items():
         if p.get_default("func") is None and name not in ("serve", "repair", "demo"):
             p.set_defaults(func=audit_cli.run)

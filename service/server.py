@@ -42,6 +42,7 @@ from flipfix.repair.errors import InputError
 
 from flipfix.service import audit_jobs
 from flipfix.service import convert
+from flipfix.service import grow_service
 from flipfix.service.errors import ConflictError, NotFoundError, TransientError, translate_errors
 from flipfix.service.generated import flipfix_pb2 as pb
 from flipfix.service.generated import flipfix_pb2_grpc as pb_grpc
@@ -517,9 +518,10 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
                          options=options)
     servicer = FlipfixServicer(store, pool, config)
     pb_grpc.add_FlipfixServicer_to_server(servicer, server)
+    grow_name = grow_service.register(servicer, server)
     health_servicer = health.HealthServicer()
     health_pb2_grpc.add_HealthServicer_to_server(health_servicer, server)
-    names = (SERVICE_NAME, health_pb2.DESCRIPTOR.services_by_name["Health"].full_name,
+    names = (SERVICE_NAME, grow_name, health_pb2.DESCRIPTOR.services_by_name["Health"].full_name,
              reflection.SERVICE_NAME)
     reflection.enable_server_reflection(names, server)
     try:
