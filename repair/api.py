@@ -210,9 +210,11 @@ def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, 
 
     if compiled.fix_conflicts:
         label, name = compiled.fix_conflicts[0]
-        return _build(problem, candidates, compiled, scorer, [], price, method, seed, t0,
-                      status="infeasible", **common,
-                      message=f"variable {label!r} is fixed to both values ({name})")
+        res = _build(problem, candidates, compiled, scorer, [], price, method, seed, t0,
+                     status="infeasible", **common,
+                     message=f"variable {label!r} is fixed to both values ({name})")
+        return _name_conflict(res, compiled, time_limit=time_limit, seed=seed, cancel=cancel,
+                              t0=t0)
     # the front's attempts are not known yet: those of greedy plus a round of kicks
     reserve = result_seconds(K, problem.n, attempts=2 * K if pareto else 0,
                              decisions=len(problem.decisions))
@@ -220,8 +222,30 @@ def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, 
                     deadline=search_deadline(t0, float(time_limit), reserve),
                     max_flips=max_flips, flip_price=price, seed=seed, workers=workers,
                     cancel=cancel, progress=report, mix=mix, scorer=scorer)
-    return _build(problem, candidates, compiled, scorer, plan.attempts, price, method, seed, t0,
-                  plan=plan, **common)
+    res = _build(problem, candidates, compiled, scorer, plan.attempts, price, method, seed, t0,
+                 plan=plan, **common)
+    return _name_conflict(res, compiled, time_limit=time_limit, seed=seed, cancel=cancel, t0=t0)
+
+
+def _name_conflict(res: RepairResult, compiled: Compiled, *, time_limit, seed, cancel, t0
+                   ) -> RepairResult:
+    """Without a feasible answer, name a minimal set of hard late constraints that conflict
+    (:mod:`flipfix.repair.solvers.conflicts`, in what is left of the budget, at least
+    0.05 s); a proved conflict makes the status "infeasible" and the message names it."""
+    if (res.status not in ("infeasible", "no_feasible_found") or not compiled.has_hard
+            or (cancel is not None and cancel.is_set())):
+        return res
+    from flipfix.repair.solvers.conflicts import name_conflict
+
+    left = max(0.05, float(time_limit) - (time.perf_counter() - t0))
+    conflict = name_conflict(compiled, time_limit=left, seed=seed, cancel=cancel)
+    if conflict.status == "conflict":  # a proof: a search that found nothing is now "infeasible"
+        res.conflict = conflict
+        res.message = (f"{res.message}; {conflict.message}" if res.status == "infeasible"
+                       and res.message else conflict.message)
+        res.status = "infeasible"
+    res.seconds = time.perf_counter() - t0
+    return res
 
 
 def _build(problem, candidates, compiled, scorer, attempts, price, method, seed, t0, *, pareto,

@@ -101,6 +101,8 @@ def cmd_repair(args) -> int:
             out = _repair_local(args, docs, show)
     except InputError as err:
         raise UsageError(_blame(err, files)) from None
+    if out.get("conflict"):  # the hard constraints that cannot all hold, readable
+        print(f"flipfix: {out['conflict']['message']}", file=sys.stderr)
     json.dump(out, sys.stdout, indent=2)
     sys.stdout.write("\n")
     return 0
