@@ -505,7 +505,7 @@ class InlineLibrary(_message.Message):
     def __init__(self, model: _Optional[_Union[ProblemModel, _Mapping]] = ..., candidates: _Optional[_Union[CandidateBatch, _Mapping]] = ...) -> None: ...
 
 class RepairRequest(_message.Message):
-    __slots__ = ("problem", "inline", "candidate_ids", "all_revisions", "constraints", "options", "use_events", "skip_record")
+    __slots__ = ("problem", "inline", "candidate_ids", "all_revisions", "constraints", "options", "use_events", "skip_record", "from_published_plan")
     PROBLEM_FIELD_NUMBER: _ClassVar[int]
     INLINE_FIELD_NUMBER: _ClassVar[int]
     CANDIDATE_IDS_FIELD_NUMBER: _ClassVar[int]
@@ -514,6 +514,7 @@ class RepairRequest(_message.Message):
     OPTIONS_FIELD_NUMBER: _ClassVar[int]
     USE_EVENTS_FIELD_NUMBER: _ClassVar[int]
     SKIP_RECORD_FIELD_NUMBER: _ClassVar[int]
+    FROM_PUBLISHED_PLAN_FIELD_NUMBER: _ClassVar[int]
     problem: str
     inline: InlineLibrary
     candidate_ids: _containers.RepeatedScalarFieldContainer[str]
@@ -522,7 +523,8 @@ class RepairRequest(_message.Message):
     options: RepairOptions
     use_events: bool
     skip_record: bool
-    def __init__(self, problem: _Optional[str] = ..., inline: _Optional[_Union[InlineLibrary, _Mapping]] = ..., candidate_ids: _Optional[_Iterable[str]] = ..., all_revisions: _Optional[bool] = ..., constraints: _Optional[_Iterable[_Union[Constraint, _Mapping]]] = ..., options: _Optional[_Union[RepairOptions, _Mapping]] = ..., use_events: _Optional[bool] = ..., skip_record: _Optional[bool] = ...) -> None: ...
+    from_published_plan: bool
+    def __init__(self, problem: _Optional[str] = ..., inline: _Optional[_Union[InlineLibrary, _Mapping]] = ..., candidate_ids: _Optional[_Iterable[str]] = ..., all_revisions: _Optional[bool] = ..., constraints: _Optional[_Iterable[_Union[Constraint, _Mapping]]] = ..., options: _Optional[_Union[RepairOptions, _Mapping]] = ..., use_events: _Optional[bool] = ..., skip_record: _Optional[bool] = ..., from_published_plan: _Optional[bool] = ...) -> None: ...
 
 class NamedValue(_message.Message):
     __slots__ = ("name", "value")
