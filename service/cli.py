@@ -155,10 +155,11 @@ def cmd_serve(args) -> int:
         db_path=args.db, workers=args.workers, queue_size=args.queue,
         max_message_bytes=int(args.max_message_mb * 1024 * 1024),
         max_variables=args.max_variables, max_candidates=args.max_candidates,
-        max_constraints=args.max_constraints, default_time_limit=args.default_time_limit)
+        max_constraints=args.max_constraints, default_time_limit=args.default_time_limit,
+        max_records=args.max_records)
     try:
         srv = create_server(f"{args.host}:{args.port}", config)
-    except OSError as err:
+    except (OSError, InputError) as err:
         raise UsageError(str(err)) from None
     print(f"flipfix: serving on {args.host}:{srv.port} (db {args.db}, {args.workers} worker(s))",
           file=sys.stderr, flush=True)
@@ -209,6 +210,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--max-candidates", type=int, default=10_000)
     s.add_argument("--max-constraints", type=int, default=1_000)
     s.add_argument("--default-time-limit", type=_positive_float, default=5.0)
+    s.add_argument("--max-records", type=int, default=1000, metavar="N",
+                   help="run records kept per problem (the oldest go first)")
     s.add_argument("--grace", type=float, default=10.0, help="seconds in-flight calls get on SIGTERM")
     s.set_defaults(func=cmd_serve)
 
@@ -235,6 +238,9 @@ def build_parser() -> argparse.ArgumentParser:
     from flipfix.service import audit_cli  # the audit commands live in their own module
 
     audit_cli.register(sub)
+    from flipfix.service import timeline_cli  # events, records, adoption: their own module
+
+    timeline_cli.register(sub)
     for name, p in sub.choices.items():
         if p.get_default("func") is None and name not in ("serve", "repair", "demo"):
             p.set_defaults(func=audit_cli.run)

@@ -533,6 +533,11 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
             raise TypeError(f"unknown server option {k!r}")
         setattr(config, k, v)
     store = Store(config.db_path)
+    try:
+        timeline = Timeline(store, max_records=config.max_records)
+    except BaseException:
+        store.close()
+        raise
     pool = RepairPool(workers=config.workers, queue_size=config.queue_size, warm=config.warm)
     options = [("grpc.max_receive_message_length", config.max_message_bytes),
                ("grpc.max_send_message_length", config.max_message_bytes),
@@ -541,9 +546,9 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
     server = grpc.server(futures.ThreadPoolExecutor(max_workers=pool.slots + 8,
                                                     thread_name_prefix="flipfix-rpc"),
                          options=options)
-    servicer = FlipfixServicer(store, pool, config)
+    servicer = FlipfixServicer(store, pool, config, timeline)
     pb_grpc.add_FlipfixServicer_to_server(servicer, server)
-    tpb_grpc.add_TimelineServicer_to_server(TimelineServicer(servicer.timeline), server)
+    tpb_grpc.add_TimelineServicer_to_server(TimelineServicer(timeline), server)
     health_servicer = health.HealthServicer()
     health_pb2_grpc.add_HealthServicer_to_server(health_servicer, server)
     names = (SERVICE_NAME, TIMELINE_SERVICE_NAME, health_pb2.DESCRIPTOR.services_by_name["Health"].full_name,

@@ -122,8 +122,15 @@ class TimelineClient(FlipfixClient):
         ``use_events`` applies the events in force, ``from_published_plan`` repairs the
         published plan, ``stay_close`` > 0 adds a penalty of that weight per changed bit
         (``by_decisions``: per changed decision) from the published plan. The dict adds
-        ``record_id``, ``event_ids`` and each conflict member's ``event_id``."""
+        ``record_id``, ``event_ids`` and each conflict member's ``event_id``;
+        ``alternatives``, ``alternative_distance`` and ``alternatives_by_decisions`` ask for
+        feasible alternatives (RepairOptions)."""
+        alt = {k: kwargs.pop(k) for k in ("alternatives", "alternative_distance",
+                                          "alternatives_by_decisions") if k in kwargs}
         req, dom, rev = self._repair_request(problem, constraints, **kwargs)
+        req.options.alternatives = int(alt.get("alternatives", 0))
+        req.options.alternative_distance = int(alt.get("alternative_distance", 0))
+        req.options.alternatives_by_decisions = bool(alt.get("alternatives_by_decisions", False))
         req.use_events = use_events
         req.from_published_plan = from_published_plan
         req.skip_record = skip_record
