@@ -125,12 +125,7 @@ class TimelineClient(FlipfixClient):
         ``record_id``, ``event_ids`` and each conflict member's ``event_id``;
         ``alternatives``, ``alternative_distance`` and ``alternatives_by_decisions`` ask for
         feasible alternatives (RepairOptions)."""
-        alt = {k: kwargs.pop(k) for k in ("alternatives", "alternative_distance",
-                                          "alternatives_by_decisions") if k in kwargs}
         req, dom, rev = self._repair_request(problem, constraints, **kwargs)
-        req.options.alternatives = int(alt.get("alternatives", 0))
-        req.options.alternative_distance = int(alt.get("alternative_distance", 0))
-        req.options.alternatives_by_decisions = bool(alt.get("alternatives_by_decisions", False))
         req.use_events = use_events
         req.from_published_plan = from_published_plan
         req.skip_record = skip_record
@@ -153,9 +148,4 @@ def reply_dict(out: dict, reply: pb.RepairReply) -> dict:
     if out.get("conflict"):
         for m, pm in zip(out["conflict"]["members"], reply.conflict):
             m["event_id"] = int(pm.event_id)
-    out["alternatives"] = [{
-        "cost": a.cost, "objective": a.objective, "flips": int(a.flips),
-        "source_candidate_id": a.source_candidate_id,
-        "decisions_changed": int(a.decisions_changed),
-        "distance_to_previous": int(a.distance_to_previous)} for a in reply.alternatives]
     return out

@@ -182,3 +182,23 @@ def test_audit_runs_are_recorded_and_retention_holds(tl, server):
     tl.repair("ward", method="greedy", time_limit=0.5, skip_record=True)
     assert len(tl.list_records("ward")) == min(4, keep)
     assert as_dict(tpb.RecordSummary(id=5))["id"] == 5
+
+
+def test_alternatives_through_the_server(tl, ward):
+    problem, pref = ward
+    out = tl.repair("ward", [{"type": "forbid_values", "name": "n0 away", "decision": "n0",
+                              "values": ["early", "off"]}], time_limit=3.0,
+                    alternatives=3, alternative_distance=2, alternatives_by_decisions=True)
+    alts = out["alternatives"]
+    assert 1 <= len(alts) <= 3 and alts[0]["cost"] == pytest.approx(out["best"]["cost"])
+    plans = [_plan_of(a["assignment"]) for a in alts]
+    for a, p in zip(alts, plans):  # each cost written out from the construction
+        assert p[0] not in (0, 3) and a["cost"] == pytest.approx(roster_energy(p, pref))
+        assert a["candidate_id"] in ("c1", "c2", "c3")
+    for p, q in itertools.combinations(plans, 2):
+        assert sum(x != y for x, y in zip(p, q)) >= 2
+    assert [a["cost"] for a in alts] == sorted(a["cost"] for a in alts)
+    rec = tl.get_record("ward", out["record_id"])
+    assert len(rec.repair.reply.alternatives) == len(alts)
+    err = rpc_error(lambda: tl.repair("ward", alternatives=50))
+    assert err.details().startswith("options.alternatives:")
