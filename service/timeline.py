@@ -166,6 +166,9 @@ class Timeline:
         name = request.problem if stored else None
         if request.use_events and not stored:
             raise InputError("use_events", "only for a stored problem")
+        if request.options.alternatives_by_decisions and not problem.decisions:
+            raise InputError("options.alternatives_by_decisions",
+                             "the problem declares no decisions")
         cons = self.resolve(name, request.constraints, problem)
         events: list = []
         if request.use_events:

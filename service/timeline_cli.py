@@ -25,18 +25,10 @@ from typing import TextIO
 __all__ = ["register", "run"]
 
 
-def _positive(text: str) -> float:
-    try:
-        v = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
-    if not v > 0:
-        raise argparse.ArgumentTypeError(f"must be > 0, got {text}")
-    return v
-
-
 def register(subparsers) -> argparse.ArgumentParser:
     """Add the ``timeline`` command (and its sub-commands) to ``subparsers``."""
+    from flipfix.service.cli import _positive_float as _positive
+
     p = subparsers.add_parser("timeline", help="events, published plan, records and adoption "
                                                "of a stored problem (needs a running service)")
     p.add_argument("--server", metavar="HOST:PORT", default="127.0.0.1:50051")

@@ -18,10 +18,11 @@ Errors are ``grpc.RpcError`` with the status codes listed in the protos.
 
 from __future__ import annotations
 
-from typing import Any, Iterable
+from typing import Any, Iterable, Mapping
 
 from google.protobuf.json_format import MessageToDict
 
+from flipfix.service import convert
 from flipfix.service.client import FlipfixClient
 from flipfix.service.generated import flipfix_pb2 as pb
 from flipfix.service.generated import timeline_pb2 as tpb
@@ -59,7 +60,9 @@ class TimelineClient(FlipfixClient):
         if isinstance(constraint, pb.Constraint):
             return constraint
         _info, _rev, dom = self._get_problem(problem)
-        return self._constraints(dom, [constraint])[0]
+        if isinstance(constraint, Mapping):  # errors name "constraint...", as the server's do
+            return convert.doc_to_constraint(constraint, dom, field="constraint")
+        return convert.constraint_to_proto(constraint, field="constraint")
 
     # ----------------------------------------------------------------- events
     def add_event(self, problem: str, constraint: Any) -> dict:

@@ -202,3 +202,22 @@ def test_alternatives_through_the_server(tl, ward):
     assert len(rec.repair.reply.alternatives) == len(alts)
     err = rpc_error(lambda: tl.repair("ward", alternatives=50))
     assert err.details().startswith("options.alternatives:")
+
+
+def test_option_and_cli_errors_name_the_field(tl, server, tmp_path, capsys):
+    from flipfix.repair import Problem
+    from flipfix.service.cli import main
+
+    flat = Problem.from_terms({"a": 1.0, "b": -1.0}, [])
+    err = rpc_error(lambda: tl.repair(flat, candidates=np.zeros((1, 2), np.int8), alternatives=2,
+                                      alternatives_by_decisions=True))
+    assert err.details().startswith("options.alternatives_by_decisions:")
+    assert main(["timeline", "--server", server.address, "add-event", "ward",
+                 str(tmp_path / "missing.json")]) == 2
+    assert "missing.json: cannot read" in capsys.readouterr().err
+    (tmp_path / "bad.json").write_text('{"type": "fix", "values": {"nobody": 1}}')
+    assert main(["timeline", "--server", server.address, "add-event", "ward",
+                 str(tmp_path / "bad.json")]) == 2
+    assert "constraint.values['nobody']" in capsys.readouterr().err
+    assert main(["timeline", "--server", server.address, "adopt", "ward", "999"]) == 2
+    assert "NOT_FOUND: record_id:" in capsys.readouterr().err
