@@ -82,7 +82,8 @@ _DDL = (
     events BLOB NOT NULL DEFAULT x'',
     request BLOB NOT NULL,
     reply BLOB NOT NULL,
-    adopted_candidate_id TEXT NOT NULL DEFAULT ''
+    adopted_candidate_id TEXT NOT NULL DEFAULT '',
+    published TEXT NOT NULL DEFAULT ''
 )""",
     "CREATE INDEX IF NOT EXISTS records_by_problem ON records(problem, id)",
 )
@@ -142,13 +143,14 @@ class RecordRow:
     request: bytes
     reply: bytes
     adopted_candidate_id: str
+    published: str = ""
 
 
 _EVENT_COLUMNS = ("id, problem, name, payload, revision, added_at, added_by, withdrawn_at, "
                   "withdrawn_by")
 _SUMMARY_COLUMNS = ("id, problem, kind, rpc, revision, recorded_at, caller, seconds, seed, "
                     "status, best_cost, flips, decisions_changed, feasible, event_ids")
-_RECORD_COLUMNS = _SUMMARY_COLUMNS + ", events, request, reply, adopted_candidate_id"
+_RECORD_COLUMNS = _SUMMARY_COLUMNS + ", events, request, reply, adopted_candidate_id, published"
 
 
 def migrate(db: sqlite3.Connection) -> None:
@@ -173,8 +175,8 @@ def _record(row, full: bool) -> RecordRow:
     head = list(row[:15])
     head[13] = bool(head[13])
     head[14] = tuple(json.loads(head[14]))
-    tail = [bytes(row[15]), bytes(row[16]), bytes(row[17]), row[18]] if full else [
-        b"", b"", b"", row[15]]
+    tail = [bytes(row[15]), bytes(row[16]), bytes(row[17]), row[18], row[19]] if full else [
+        b"", b"", b"", row[15], row[16]]
     return RecordRow(*head, *tail)
 
 
@@ -277,7 +279,7 @@ class History:
                    seed: int, status: str, request: bytes, reply: bytes,
                    best_cost: float | None = None, flips: int = 0, decisions_changed: int = 0,
                    feasible: bool = False, event_ids: Sequence[int] = (), events: bytes = b"",
-                   caller: str = "") -> int:
+                   caller: str = "", published: str = "") -> int:
         """Store one run's record; returns its id. Keeps at most ``max_records`` per problem."""
         if kind not in KINDS:
             raise InputError("kind", f"must be one of {KINDS}, got {kind!r}")
@@ -286,11 +288,12 @@ class History:
             cur = db.execute(
                 "INSERT INTO records (problem, kind, rpc, revision, recorded_at, caller, seconds, "
                 "seed, status, best_cost, flips, decisions_changed, feasible, event_ids, events, "
-                "request, reply) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                "request, reply, published) VALUES "
+                "(?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
                 (problem, kind, rpc, int(revision), _now(), caller, float(seconds), int(seed),
                  status, None if best_cost is None or not np.isfinite(best_cost)
                  else float(best_cost), int(flips), int(decisions_changed), int(bool(feasible)),
-                 json.dumps([int(e) for e in event_ids]), events, request, reply))
+                 json.dumps([int(e) for e in event_ids]), events, request, reply, published))
             if self.max_records is not None:
                 db.execute("DELETE FROM records WHERE problem = ? AND id NOT IN (SELECT id FROM "
                            "records WHERE problem = ? ORDER BY id DESC LIMIT ?)",
@@ -307,7 +310,8 @@ class History:
             raise InputError("page_token", f"{page_token!r} is not a token from this server") from None
         with self.store._read() as db:
             Store.current_revision(db, problem)
-            rows = db.execute(f"SELECT {_SUMMARY_COLUMNS}, adopted_candidate_id FROM records "
+            rows = db.execute(f"SELECT {_SUMMARY_COLUMNS}, adopted_candidate_id, published "
+                              "FROM records "
                               "WHERE problem = ? AND id < ? ORDER BY id DESC LIMIT ?",
                               (problem, before, page_size + 1)).fetchall()
         more = len(rows) > page_size

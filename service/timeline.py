@@ -114,6 +114,7 @@ class Used:
     requested: int
     events: list = field(default_factory=list)  # [EventRow]
     started: float = field(default_factory=time.perf_counter)
+    published: str = ""  # the published plan referred to, if any
 
     @property
     def event_ids(self) -> list[int]:
@@ -139,10 +140,12 @@ class Timeline:
         return ids
 
     def resolve(self, name: str | None, constraints: Sequence[pb.Constraint], problem: Problem,
-                *, field: str = "constraints") -> list[pb.Constraint]:
+                *, field: str = "constraints", pub: PublishedRow | None = None
+                ) -> list[pb.Constraint]:
         """Copies of ``constraints`` with published-plan references filled in (``name``: the
-        stored problem, None for an inline one, where the flag is refused)."""
-        out, x, pub = [], None, None
+        stored problem, None for an inline one, where the flag is refused; ``pub``: the
+        published plan already read for this call, else it is read here)."""
+        out, x = [], None
         for k, c in enumerate(constraints):
             f = f"{field}[{k}]" if field == "constraints" else field
             if not _wants_plan(c):
@@ -152,7 +155,7 @@ class Timeline:
                 raise InputError(f"{f}.{c.WhichOneof('kind')}.published_plan",
                                  "only for a stored problem")
             if x is None:
-                pub = self.history.published(name)
+                pub = pub or self.history.published(name)
                 x = _published_x(self.store, name, pub, problem)
             c2 = pb.Constraint()
             c2.CopyFrom(c)
@@ -169,21 +172,26 @@ class Timeline:
         if request.options.alternatives_by_decisions and not problem.decisions:
             raise InputError("options.alternatives_by_decisions",
                              "the problem declares no decisions")
-        cons = self.resolve(name, request.constraints, problem)
         events: list = []
         if request.use_events:
             rev, events = self.history.events(name)
-            for e in events:
-                cons.append(self.check_event(name, e, problem, rev, field="use_events"))
-        return Used(cons, len(request.constraints), events)
+        pub = None  # read once: every reference of the call is to the same plan
+        if stored and (request.from_published_plan or any(map(_wants_plan, request.constraints))
+                       or any(_wants_plan(pb.Constraint.FromString(e.payload)) for e in events)):
+            pub = self.history.published(name)
+        cons = self.resolve(name, request.constraints, problem, pub=pub)
+        for e in events:
+            cons.append(self.check_event(name, e, problem, rev, field="use_events", pub=pub))
+        return Used(cons, len(request.constraints), events,
+                    published=pub.candidate_id if pub is not None else "")
 
     def check_event(self, name: str, e: EventRow, problem: Problem, revision: int, *,
-                    field: str) -> pb.Constraint:
+                    field: str, pub: PublishedRow | None = None) -> pb.Constraint:
         """The event's constraint resolved for ``problem``; ConflictError naming ``field``
         and the event when it no longer applies."""
         c = pb.Constraint.FromString(e.payload)
         try:
-            (c,) = self.resolve(name, [c], problem, field="constraint")
+            (c,) = self.resolve(name, [c], problem, field="constraint", pub=pub)
             check_constraint(c, problem, "constraint")
         except (InputError, NotFoundError, ConflictError) as err:
             raise ConflictError(field, f"event {e.id} {e.name!r} (added for revision "
@@ -212,7 +220,7 @@ class Timeline:
                 request=request.SerializeToString(), reply=reply.SerializeToString(),
                 best_cost=b.cost, flips=b.flips, decisions_changed=b.decisions_changed,
                 feasible=b.feasible, event_ids=ids, events=events.SerializeToString(),
-                caller=caller_of(context))
+                caller=caller_of(context), published=used.published)
         except (NotFoundError, sqlite3.IntegrityError) as err:  # deleted during the run
             log.warning("repair of %r not recorded: %s", request.problem, err)
         return reply
@@ -253,7 +261,8 @@ def _summary(r: RecordRow) -> tpb.RecordSummary:
         rpc=r.rpc, revision=r.revision, recorded_at=r.recorded_at, caller=r.caller,
         seconds=r.seconds, seed=r.seed, status=r.status, flips=r.flips,
         decisions_changed=r.decisions_changed, event_ids=list(r.event_ids),
-        adopted_candidate_id=r.adopted_candidate_id, feasible=r.feasible)
+        adopted_candidate_id=r.adopted_candidate_id, feasible=r.feasible,
+        published_candidate_id=r.published)
     if r.best_cost is not None:
         s.best_cost = r.best_cost
     return s

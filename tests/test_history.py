@@ -148,3 +148,16 @@ def test_newer_timeline_tables_are_refused(path):
     with pytest.raises(RuntimeError, match="newer"):
         History(store)
     store.close()
+
+
+def test_a_database_without_timeline_tables_is_migrated(path):
+    store = Store(path)  # written before the timeline existed
+    store.create_problem("p", _problem())
+    store.close()
+    db = sqlite3.connect(path)
+    assert not db.execute("SELECT name FROM sqlite_master WHERE name = 'events'").fetchall()
+    db.close()
+    store, h = _open(path)
+    assert h.version == TIMELINE_VERSION and h.events("p") == (1, [])
+    assert store.get_problem("p")[1] == 1  # the store's own data untouched
+    store.close()

@@ -221,3 +221,21 @@ def test_option_and_cli_errors_name_the_field(tl, server, tmp_path, capsys):
     assert "constraint.values['nobody']" in capsys.readouterr().err
     assert main(["timeline", "--server", server.address, "adopt", "ward", "999"]) == 2
     assert "NOT_FOUND: record_id:" in capsys.readouterr().err
+
+
+def test_hamming_to_the_published_plan(tl, ward):
+    _problem, pref = ward
+    ref = tl.plans[1]
+    tl.set_published_plan("ward", "c2")
+    out = tl.repair("ward", stay_close=0.75, method="cpsat", time_limit=5.0)
+    # brute force: energy + 0.75 per bit differing from c2 (two bits per moved nurse)
+    best = min(roster_energy(q, pref) + 0.75 * 2 * sum(a != b for a, b in zip(q, ref))
+               for q in itertools.product(range(4), repeat=NURSES))
+    assert out["status"] == "optimal" and out["best"]["cost"] == pytest.approx(best, abs=1e-9)
+    rec = tl.get_record("ward", out["record_id"])
+    assert rec.repair.request.constraints[0].hamming.published_plan  # recorded as asked
+    assert rec.summary.published_candidate_id == "c2"  # and the plan it referred to then
+    tl.set_published_plan("ward", "c3")
+    assert tl.get_record("ward", out["record_id"]).summary.published_candidate_id == "c2"
+    plain = tl.repair("ward", method="greedy", time_limit=0.5)
+    assert tl.get_record("ward", plain["record_id"]).summary.published_candidate_id == ""

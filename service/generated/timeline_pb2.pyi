@@ -114,7 +114,7 @@ class GetPublishedPlanRequest(_message.Message):
     def __init__(self, problem: _Optional[str] = ...) -> None: ...
 
 class RecordSummary(_message.Message):
-    __slots__ = ("id", "problem", "kind", "rpc", "revision", "recorded_at", "caller", "seconds", "seed", "status", "best_cost", "flips", "decisions_changed", "event_ids", "adopted_candidate_id", "feasible")
+    __slots__ = ("id", "problem", "kind", "rpc", "revision", "recorded_at", "caller", "seconds", "seed", "status", "best_cost", "flips", "decisions_changed", "event_ids", "adopted_candidate_id", "feasible", "published_candidate_id")
     ID_FIELD_NUMBER: _ClassVar[int]
     PROBLEM_FIELD_NUMBER: _ClassVar[int]
     KIND_FIELD_NUMBER: _ClassVar[int]
@@ -131,6 +131,7 @@ class RecordSummary(_message.Message):
     EVENT_IDS_FIELD_NUMBER: _ClassVar[int]
     ADOPTED_CANDIDATE_ID_FIELD_NUMBER: _ClassVar[int]
     FEASIBLE_FIELD_NUMBER: _ClassVar[int]
+    PUBLISHED_CANDIDATE_ID_FIELD_NUMBER: _ClassVar[int]
     id: int
     problem: str
     kind: RecordKind
@@ -147,7 +148,8 @@ class RecordSummary(_message.Message):
     event_ids: _containers.RepeatedScalarFieldContainer[int]
     adopted_candidate_id: str
     feasible: bool
-    def __init__(self, id: _Optional[int] = ..., problem: _Optional[str] = ..., kind: _Optional[_Union[RecordKind, str]] = ..., rpc: _Optional[str] = ..., revision: _Optional[int] = ..., recorded_at: _Optional[str] = ..., caller: _Optional[str] = ..., seconds: _Optional[float] = ..., seed: _Optional[int] = ..., status: _Optional[str] = ..., best_cost: _Optional[float] = ..., flips: _Optional[int] = ..., decisions_changed: _Optional[int] = ..., event_ids: _Optional[_Iterable[int]] = ..., adopted_candidate_id: _Optional[str] = ..., feasible: _Optional[bool] = ...) -> None: ...
+    published_candidate_id: str
+    def __init__(self, id: _Optional[int] = ..., problem: _Optional[str] = ..., kind: _Optional[_Union[RecordKind, str]] = ..., rpc: _Optional[str] = ..., revision: _Optional[int] = ..., recorded_at: _Optional[str] = ..., caller: _Optional[str] = ..., seconds: _Optional[float] = ..., seed: _Optional[int] = ..., status: _Optional[str] = ..., best_cost: _Optional[float] = ..., flips: _Optional[int] = ..., decisions_changed: _Optional[int] = ..., event_ids: _Optional[_Iterable[int]] = ..., adopted_candidate_id: _Optional[str] = ..., feasible: _Optional[bool] = ..., published_candidate_id: _Optional[str] = ...) -> None: ...
 
 class Record(_message.Message):
     __slots__ = ("summary", "events", "repair", "robustness", "stress", "pareto", "curate")
