@@ -102,6 +102,8 @@ def cmd_repair(args) -> int:
             out = _repair_local(args, docs, show)
     except InputError as err:
         raise UsageError(_blame(err, files)) from None
+    if out.get("conflict"):  # the hard constraints that cannot all hold, readable
+        print(f"flipfix: {out['conflict']['message']}", file=sys.stderr)
     json.dump(out, sys.stdout, indent=2)
     sys.stdout.write("\n")
     return 0
@@ -155,10 +157,10 @@ def cmd_serve(args) -> int:
         max_message_bytes=int(args.max_message_mb * 1024 * 1024),
         max_variables=args.max_variables, max_candidates=args.max_candidates,
         max_constraints=args.max_constraints, default_time_limit=args.default_time_limit,
-        dask=args.dask or "")
+        dask=args.dask or "", max_records=args.max_records)
     try:
         srv = create_server(f"{args.host}:{args.port}", config)
-    except OSError as err:
+    except (OSError, InputError) as err:
         raise UsageError(str(err)) from None
     print(f"flipfix: serving on {args.host}:{srv.port} (db {args.db}, {args.workers} worker(s))",
           file=sys.stderr, flush=True)
@@ -210,6 +212,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--max-candidates", type=int, default=10_000)
     s.add_argument("--max-constraints", type=int, default=1_000)
     s.add_argument("--default-time-limit", type=_positive_float, default=5.0)
+    s.add_argument("--max-records", type=int, default=1000, metavar="N",
+                   help="run records kept per problem (the oldest go first)")
     s.add_argument("--grace", type=float, default=10.0, help="seconds in-flight calls get on SIGTERM")
     s.add_argument("--dask", metavar="ADDRESS|local:N", default=None,
                    help="run stress tests on a Dask cluster: a scheduler address "
@@ -242,6 +246,9 @@ def build_parser() -> argparse.ArgumentParser:
     from flipfix.service import grow_cli  # flipfix grow, in its own module
 
     grow_cli.register(sub)
+    from flipfix.service import timeline_cli  # events, records, adoption: their own module
+
+    timeline_cli.register(sub)
     for name, p in sub.choices.items():
         if p.get_default("func") is None and name not in ("serve", "repair", "demo"):
             p.set_defaults(func=audit_cli.run)

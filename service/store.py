@@ -26,6 +26,7 @@ from __future__ import annotations
 import dataclasses
 import json
 import re
+from contextlib import nullcontext
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
@@ -251,6 +252,16 @@ class Store:
         return ProblemRecord(*row)
 
     @staticmethod
+    def current_revision(db: sqlite3.Connection, name: str, field: str = "problem") -> int:
+        """The current revision of problem ``name`` inside an open transaction ``db``: the
+        one lookup of a problem by its key for modules that keep tables beside the store's
+        (:mod:`flipfix.service.history`); NotFoundError naming ``field`` when there is none."""
+        row = db.execute("SELECT revision FROM problems WHERE name = ?", (name,)).fetchone()
+        if row is None:
+            raise NotFoundError(field, f"no problem named {name!r}")
+        return int(row[0])
+
+    @staticmethod
     def _check_name(name: str) -> None:
         if not isinstance(name, str) or not name.strip():
             raise InputError("name", "must be a non-empty string")
@@ -324,16 +335,17 @@ class Store:
 
     # -------------------------------------------------------------- candidates
     def add_candidates(self, name: str, revision: int, ids: Sequence[str],
-                       X: np.ndarray, provenance: Sequence[dict], *, field: str = "candidates"
-                       ) -> list[str]:
+                       X: np.ndarray, provenance: Sequence[dict], *, field: str = "candidates",
+                       db: sqlite3.Connection | None = None) -> list[str]:
         """Add K candidates made for ``revision`` (X int8 (K, n), 0/1 in that revision's order).
 
-        Empty ids are assigned ``c<N>``. All or nothing: a taken id stores none.
+        Empty ids are assigned ``c<N>``. All or nothing: a taken id stores none. ``db``: an
+        open write transaction of this store to join (e.g. an adoption's), else one of its own.
         """
         X = np.asarray(X, dtype=np.int8)
         rb = packing.row_bytes(X.shape[1])
         blob = packing.pack_rows(X)
-        with self._tx() as db:
+        with self._tx() if db is None else nullcontext(db) as db:
             row = db.execute("SELECT revision, next_candidate FROM problems WHERE name = ?",
                              (name,)).fetchone()
             if row is None:
