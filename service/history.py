@@ -1,7 +1,7 @@
 """The timeline of a stored problem: events in force, the published plan, run records.
 
-Tables beside the store's, in the same SQLite file and with the same durability (WAL,
-``synchronous=FULL``): every public write here is one transaction of the store's own
+Tables beside the store's, in the same database (SQLite file or PostgreSQL) and with the
+same durability: every public write here is one transaction of the store's own
 helpers (``Store._tx``: the one write connection under its lock; ``Store._read``: a
 pooled read-only snapshot), so a write is on disk before it is acknowledged and a failed
 one leaves nothing behind. Problems are found through the store's key lookup
@@ -25,7 +25,6 @@ Tables:
 from __future__ import annotations
 
 import json
-import sqlite3
 from dataclasses import dataclass
 from typing import Sequence
 
@@ -153,11 +152,13 @@ _SUMMARY_COLUMNS = ("id, problem, kind, rpc, revision, recorded_at, caller, seco
 _RECORD_COLUMNS = _SUMMARY_COLUMNS + ", events, request, reply, adopted_candidate_id, published"
 
 
-def migrate(db: sqlite3.Connection) -> None:
+def migrate(db, translate=lambda stmt: [stmt]) -> None:
     """Create or bring the timeline tables to :data:`TIMELINE_VERSION`, inside the open
-    write transaction ``db`` (a failure leaves the database as it was)."""
+    write transaction ``db`` (a failure leaves the database as it was). ``translate``: the
+    store backend's DDL dialect (:meth:`flipfix.service.store.Store.ddl`)."""
     for stmt in _DDL:
-        db.execute(stmt)
+        for part in translate(stmt):
+            db.execute(part)
     row = db.execute("SELECT version FROM timeline_version").fetchone()
     if row is None:
         db.execute("INSERT INTO timeline_version VALUES (?)", (TIMELINE_VERSION,))
@@ -193,7 +194,7 @@ class History:
         self.store = store
         self.max_records = max_records
         with store._tx() as db:
-            migrate(db)
+            migrate(db, store.ddl)
 
     @property
     def version(self) -> int:
@@ -210,11 +211,11 @@ class History:
             if rev != revision:
                 raise ConflictError("constraint", f"problem {problem!r} moved to revision {rev} "
                                                   f"while the event was checked against {revision}")
-            cur = db.execute("INSERT INTO events (problem, name, payload, revision, added_at, "
-                             "added_by) VALUES (?, ?, ?, ?, ?, ?)",
-                             (problem, name, payload, rev, _now(), caller))
+            new_id = db.execute("INSERT INTO events (problem, name, payload, revision, added_at, "
+                                "added_by) VALUES (?, ?, ?, ?, ?, ?) RETURNING id",
+                                (problem, name, payload, rev, _now(), caller)).fetchone()[0]
             return _event(db.execute(f"SELECT {_EVENT_COLUMNS} FROM events WHERE id = ?",
-                                     (cur.lastrowid,)).fetchone())
+                                     (new_id,)).fetchone())
 
     def withdraw_event(self, problem: str, event_id: int, *, caller: str = "") -> EventRow:
         with self.store._tx() as db:
@@ -242,7 +243,7 @@ class History:
 
     # -------------------------------------------------------- published plan
     def publish(self, problem: str, candidate_id: str, *, caller: str = "",
-                db: sqlite3.Connection | None = None) -> PublishedRow:
+                db=None) -> PublishedRow:
         """Make a stored candidate the published plan (``db``: join an open transaction)."""
         if not isinstance(candidate_id, str) or not candidate_id:
             raise InputError("candidate_id", "must name a stored candidate")
@@ -256,7 +257,9 @@ class History:
             raise NotFoundError("candidate_id", f"problem {problem!r} has no candidate "
                                                 f"{candidate_id!r}")
         out = PublishedRow(problem, candidate_id, int(row[0]), _now(), caller)
-        db.execute("INSERT OR REPLACE INTO published VALUES (?, ?, ?, ?, ?)",
+        db.execute("INSERT INTO published VALUES (?, ?, ?, ?, ?) ON CONFLICT (problem) DO UPDATE "
+                   "SET candidate_id = excluded.candidate_id, revision = excluded.revision, "
+                   "published_at = excluded.published_at, published_by = excluded.published_by",
                    (out.problem, out.candidate_id, out.revision, out.published_at,
                     out.published_by))
         return out
@@ -285,20 +288,21 @@ class History:
             raise InputError("kind", f"must be one of {KINDS}, got {kind!r}")
         with self.store._tx() as db:
             Store.current_revision(db, problem)
-            cur = db.execute(
+            record_id = db.execute(
                 "INSERT INTO records (problem, kind, rpc, revision, recorded_at, caller, seconds, "
                 "seed, status, best_cost, flips, decisions_changed, feasible, event_ids, events, "
                 "request, reply, published) VALUES "
-                "(?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                "(?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING id",
                 (problem, kind, rpc, int(revision), _now(), caller, float(seconds), int(seed),
                  status, None if best_cost is None or not np.isfinite(best_cost)
                  else float(best_cost), int(flips), int(decisions_changed), int(bool(feasible)),
-                 json.dumps([int(e) for e in event_ids]), events, request, reply, published))
+                 json.dumps([int(e) for e in event_ids]), events, request, reply,
+                 published)).fetchone()[0]
             if self.max_records is not None:
                 db.execute("DELETE FROM records WHERE problem = ? AND id NOT IN (SELECT id FROM "
                            "records WHERE problem = ? ORDER BY id DESC LIMIT ?)",
                            (problem, problem, self.max_records))
-            return int(cur.lastrowid)
+            return int(record_id)
 
     def records(self, problem: str, *, page_size: int = 100, page_token: str = ""
                 ) -> tuple[list[RecordRow], str]:

@@ -187,6 +187,16 @@ class Store:
         """The database, for messages (a URL without its password)."""
         return re.sub(r"//([^:/@]+):[^@/]*@", r"//\1:***@", self.path)
 
+    def ddl(self, stmt: str) -> list[str]:
+        """One DDL statement written for SQLite, in this store's dialect (for modules that
+        keep tables beside the store's, :mod:`flipfix.service.history`)."""
+        return self._backend.ddl(stmt)
+
+    @property
+    def integrity_errors(self) -> tuple:
+        """The backend's exception types for a broken key or reference."""
+        return self._backend.integrity_errors
+
     @property
     def backend(self) -> str:
         """``"sqlite"`` or ``"postgresql"``."""
@@ -252,7 +262,7 @@ class Store:
         return ProblemRecord(*row)
 
     @staticmethod
-    def current_revision(db: sqlite3.Connection, name: str, field: str = "problem") -> int:
+    def current_revision(db, name: str, field: str = "problem") -> int:
         """The current revision of problem ``name`` inside an open transaction ``db``: the
         one lookup of a problem by its key for modules that keep tables beside the store's
         (:mod:`flipfix.service.history`); NotFoundError naming ``field`` when there is none."""
@@ -336,7 +346,7 @@ class Store:
     # -------------------------------------------------------------- candidates
     def add_candidates(self, name: str, revision: int, ids: Sequence[str],
                        X: np.ndarray, provenance: Sequence[dict], *, field: str = "candidates",
-                       db: sqlite3.Connection | None = None) -> list[str]:
+                       db=None) -> list[str]:
         """Add K candidates made for ``revision`` (X int8 (K, n), 0/1 in that revision's order).
 
         Empty ids are assigned ``c<N>``. All or nothing: a taken id stores none. ``db``: an

@@ -15,7 +15,6 @@ Thin, as the rest of the service: proto -> domain, the store's timeline tables
 from __future__ import annotations
 
 import logging
-import sqlite3
 import time
 from dataclasses import dataclass, field
 from typing import Sequence
@@ -221,7 +220,7 @@ class Timeline:
                 best_cost=b.cost, flips=b.flips, decisions_changed=b.decisions_changed,
                 feasible=b.feasible, event_ids=ids, events=events.SerializeToString(),
                 caller=caller_of(context), published=used.published)
-        except (NotFoundError, sqlite3.IntegrityError) as err:  # deleted during the run
+        except (NotFoundError, *self.store.integrity_errors) as err:  # deleted during the run
             log.warning("repair of %r not recorded: %s", request.problem, err)
         return reply
 
@@ -233,7 +232,7 @@ class Timeline:
                                     seconds=time.perf_counter() - started, seed=seed,
                                     status=status or "done", request=request.SerializeToString(),
                                     reply=reply.SerializeToString(), caller=caller_of(context))
-        except (NotFoundError, sqlite3.IntegrityError) as err:
+        except (NotFoundError, *self.store.integrity_errors) as err:
             log.warning("%s of %r not recorded: %s", rpc, problem, err)
 
     # ---------------------------------------------------------------- protos

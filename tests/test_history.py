@@ -1,4 +1,6 @@
-"""The timeline tables: durability across reopen, retention, withdraw, adopt's refusals."""
+"""The timeline tables: durability across reopen, retention, withdraw, adopt's refusals;
+on both store backends (PostgreSQL: a real server the fixtures start, a fresh database per
+test)."""
 
 from __future__ import annotations
 
@@ -17,8 +19,15 @@ def _problem(n=4):
     return Problem.from_terms({f"x{i}": float(i) for i in range(n)}, [])
 
 
+@pytest.fixture(params=["sqlite", "postgresql"])
+def path(request, tmp_path):
+    if request.param == "sqlite":
+        return tmp_path / "t.sqlite3"
+    return request.getfixturevalue("postgres").new_database()
+
+
 @pytest.fixture
-def path(tmp_path):
+def sqlite_path(tmp_path):
     return tmp_path / "t.sqlite3"
 
 
@@ -137,7 +146,8 @@ def test_published_plan_removed_is_reported_and_delete_cascades(path):
     store.close()
 
 
-def test_newer_timeline_tables_are_refused(path):
+def test_newer_timeline_tables_are_refused(sqlite_path):
+    path = sqlite_path
     store, h = _open(path)
     store.close()
     db = sqlite3.connect(path)
@@ -150,7 +160,8 @@ def test_newer_timeline_tables_are_refused(path):
     store.close()
 
 
-def test_a_database_without_timeline_tables_is_migrated(path):
+def test_a_database_without_timeline_tables_is_migrated(sqlite_path):
+    path = sqlite_path
     store = Store(path)  # written before the timeline existed
     store.create_problem("p", _problem())
     store.close()
