@@ -28,6 +28,7 @@ from typing import Any, TextIO
 
 import numpy as np
 
+from flipfix.repair.documents import jsontext
 from flipfix.repair.errors import InputError
 
 __all__ = ["register", "run", "audit", "audit_remote", "draw_figure", "format_table"]
@@ -97,12 +98,11 @@ def register(subparsers) -> argparse.ArgumentParser:
 
 def _load(path: str, field: str) -> Any:
     try:
-        with open(path, encoding="utf-8") as fh:
-            return json.load(fh)
+        with open(path, "rb") as fh:
+            raw = fh.read()
     except OSError as exc:
         raise InputError(field, f"cannot read {path}: {exc.strerror or exc}") from None
-    except json.JSONDecodeError as exc:
-        raise InputError(field, f"{path} is not valid JSON: {exc.msg} at line {exc.lineno}") from None
+    return jsontext.loads(raw, field=field)
 
 
 def audit(problem, candidates, family=None, *, scenarios: int, seed: int, method: str,

@@ -36,15 +36,17 @@ class UsageError(Exception):
 
 # ------------------------------------------------------------------ helpers
 def _load_json(path: str, what: str):
+    """The JSON document in ``path`` (strict: :mod:`flipfix.repair.documents.jsontext`)."""
+    from flipfix.repair.documents import jsontext
+
     try:
-        text = Path(path).read_text(encoding="utf-8")
+        raw = Path(path).read_bytes()
     except OSError as err:
         raise UsageError(f"{path}: cannot read the {what} file: {err.strerror or err}") from None
     try:
-        return json.loads(text)
-    except json.JSONDecodeError as err:
-        raise UsageError(f"{path}: not valid JSON (line {err.lineno}, column {err.colno}): "
-                         f"{err.msg}") from None
+        return jsontext.loads(raw, field=what)
+    except InputError as err:
+        raise UsageError(f"{path}: {err.field}: {err.message}") from None
 
 
 _OPTION_FIELDS = {"method": "--method", "time_limit": "--time-limit", "max_flips": "--max-flips",
@@ -191,8 +193,16 @@ def _positive_float(text: str) -> float:
     return v
 
 
+class _Parser(argparse.ArgumentParser):
+    """argparse with one-line errors (``flipfix repair: argument --time-limit: ...``, exit 2)
+    instead of the usage block; ``--help`` still shows the usage."""
+
+    def error(self, message: str):
+        self.exit(EXIT_USAGE, f"{self.prog}: {message}\n")
+
+
 def build_parser() -> argparse.ArgumentParser:
-    ap = argparse.ArgumentParser(prog="flipfix", description="Repair a library of QUBO/Ising "
+    ap = _Parser(prog="flipfix", description="Repair a library of QUBO/Ising "
                                  "solutions when a late constraint arrives.")
     sub = ap.add_subparsers(dest="command", required=True)
 

@@ -24,6 +24,7 @@ import json
 import queue
 import sqlite3
 import threading
+import unicodedata
 from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import datetime, timezone
@@ -298,6 +299,9 @@ class Store:
             raise InputError("name", "must be a non-empty string")
         if len(name) > 200:
             raise InputError("name", "must be at most 200 characters")
+        bad = next((ch for ch in name if unicodedata.category(ch) in ("Cc", "Cf", "Cs")), None)
+        if bad is not None:
+            raise InputError("name", f"must not contain control characters (found {bad!r})")
 
     # ---------------------------------------------------------------- problems
     def create_problem(self, name: str, problem: Problem) -> ProblemRecord:
