@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import re
 import signal
 import sys
@@ -155,7 +156,9 @@ def cmd_serve(args) -> int:
         db_path=args.db, workers=args.workers, queue_size=args.queue,
         max_message_bytes=int(args.max_message_mb * 1024 * 1024),
         max_variables=args.max_variables, max_candidates=args.max_candidates,
-        max_constraints=args.max_constraints, default_time_limit=args.default_time_limit)
+        max_constraints=args.max_constraints, default_time_limit=args.default_time_limit,
+        max_couplings=args.max_couplings, heavy_calls=args.heavy_calls,
+        heavy_queue=args.queue, memory_mb=args.memory_mb)
     try:
         srv = create_server(f"{args.host}:{args.port}", config)
     except OSError as err:
@@ -164,16 +167,20 @@ def cmd_serve(args) -> int:
           file=sys.stderr, flush=True)
 
     def stop(signum, _frame):
+        srv.begin_shutdown()  # new calls get UNAVAILABLE from here on
         print(f"flipfix: signal {signum}: shutting down (grace {args.grace}s)", file=sys.stderr,
               flush=True)
         threading.Thread(target=srv.shutdown, args=(args.grace,), daemon=True).start()
 
     signal.signal(signal.SIGTERM, stop)
     signal.signal(signal.SIGINT, stop)
-    while not srv.wait_for_termination(0.5):
-        pass
+    srv.wait_for_termination()  # an event; signal handlers run while it waits
     print("flipfix: stopped", file=sys.stderr, flush=True)
-    return 0
+    # the store is closed and the workers have ended: skip the interpreter's teardown
+    # (about 0.5 s of joining library threads) so the process ends within the grace period
+    logging.shutdown()
+    sys.stdout.flush()
+    os._exit(0)
 
 
 def cmd_demo(args) -> int:
@@ -210,8 +217,14 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--host", default="127.0.0.1")
     s.add_argument("--port", type=int, default=50051, help="0 picks a free port")
     s.add_argument("--db", default="flipfix.sqlite3", help="SQLite database file")
-    s.add_argument("--workers", type=int, default=1, help="repair processes")
-    s.add_argument("--queue", type=int, default=4, help="repairs that may wait for a worker")
+    s.add_argument("--workers", type=int, default=2, help="repair processes")
+    s.add_argument("--queue", type=int, default=64,
+                   help="repairs that may wait for a worker, and heavy calls for the gate")
+    s.add_argument("--heavy-calls", type=int, default=2,
+                   help="uploads/conversions run at once (the rest wait in the queue)")
+    s.add_argument("--memory-mb", type=float, default=2048.0,
+                   help="estimated memory all heavy calls together may use (25 x request bytes)")
+    s.add_argument("--max-couplings", type=int, default=2_000_000)
     s.add_argument("--max-message-mb", type=float, default=64.0)
     s.add_argument("--max-variables", type=int, default=100_000)
     s.add_argument("--max-candidates", type=int, default=10_000)

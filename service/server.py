@@ -41,6 +41,7 @@ from flipfix.repair.model.candidates import CandidateSet
 from flipfix.repair.errors import InputError
 
 from flipfix.service import audit_jobs
+from flipfix.service.admission import AdmissionConfig, DrainInterceptor, HeavyGate
 from flipfix.service import convert
 from flipfix.service.errors import ConflictError, NotFoundError, TransientError, translate_errors
 from flipfix.service.generated import flipfix_pb2 as pb
@@ -61,8 +62,8 @@ class ServerConfig:
     """Server settings; limits of None mean unlimited."""
 
     db_path: str = "flipfix.sqlite3"
-    workers: int = 1
-    queue_size: int = 4
+    workers: int = 2
+    queue_size: int = 64
     max_message_bytes: int = 64 * 1024 * 1024
     max_variables: int | None = 100_000
     max_candidates: int | None = 10_000
@@ -71,12 +72,25 @@ class ServerConfig:
     max_time_limit: float = 600.0
     default_audit_time_limit: float = 30.0  # whole stress-test run
     max_scenarios: int | None = 1_000
+    max_couplings: int | None = 2_000_000
+    #: heavy calls (uploads, reads of models, the conversion part of repairs and audits)
+    #: converted at once, and how many may wait (:mod:`flipfix.service.admission`)
+    heavy_calls: int = 2
+    heavy_queue: int = 64
+    memory_mb: float = 2048.0
+    memory_factor: float = 25.0
     warm: bool = True
 
     @property
     def limits(self) -> Limits:
         return Limits(max_variables=self.max_variables, max_candidates=self.max_candidates,
-                      max_constraints=self.max_constraints)
+                      max_constraints=self.max_constraints, max_couplings=self.max_couplings)
+
+    @property
+    def admission(self) -> AdmissionConfig:
+        return AdmissionConfig(capacity=self.heavy_calls, queue=self.heavy_queue,
+                               memory_bytes=int(self.memory_mb * 1024 * 1024),
+                               memory_factor=self.memory_factor)
 
 
 #: Held back from a call's deadline for what is not search: the hand-over to a worker,
@@ -118,11 +132,17 @@ def deadline_budget(requested: float, remaining: float | None) -> float:
 
 
 class FlipfixServicer(pb_grpc.FlipfixServicer):
-    def __init__(self, store: Store, pool: RepairPool, config: ServerConfig):
+    def __init__(self, store: Store, pool: RepairPool, config: ServerConfig,
+                 gate: HeavyGate | None = None):
         self.store = store
         self.pool = pool
         self.config = config
         self.limits = config.limits
+        self.gate = gate or HeavyGate(config.admission)
+
+    def _heavy(self, request, context, what: str):
+        """A place in the heavy-call gate for this call (waits at most to its deadline)."""
+        return self.gate.admit(request.ByteSize(), what, timeout=time_left(context))
 
     # ------------------------------------------------------------- problems
     @staticmethod
@@ -138,20 +158,23 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
 
     @translate_errors
     def CreateProblem(self, request, context):
-        problem = self._problem(request.model, "model")
-        return self._info(self.store.create_problem(request.name, problem))
+        with self._heavy(request, context, "CreateProblem"):
+            problem = self._problem(request.model, "model")
+            return self._info(self.store.create_problem(request.name, problem))
 
     @translate_errors
     def ReplaceProblem(self, request, context):
-        problem = self._problem(request.model, "model")
-        return self._info(self.store.replace_problem(
-            request.name, problem, expected_revision=request.expected_revision))
+        with self._heavy(request, context, "ReplaceProblem"):
+            problem = self._problem(request.model, "model")
+            return self._info(self.store.replace_problem(
+                request.name, problem, expected_revision=request.expected_revision))
 
     @translate_errors
     def GetProblem(self, request, context):
-        info, rev, problem = self.store.get_problem(request.name, request.revision)
-        return pb.GetProblemReply(info=self._info(info), revision=rev,
-                                  model=convert.problem_to_model(problem))
+        with self._heavy(request, context, "GetProblem"):
+            info, rev, problem = self.store.get_problem(request.name, request.revision)
+            return pb.GetProblemReply(info=self._info(info), revision=rev,
+                                      model=convert.problem_to_model(problem))
 
     @translate_errors
     def ListProblems(self, request, context):
@@ -166,14 +189,15 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
     # ----------------------------------------------------------- candidates
     @translate_errors
     def AddCandidates(self, request, context):
-        _info, rev, problem = self.store.get_problem(request.problem)
-        if request.revision and request.revision != rev:
-            raise ConflictError("revision", f"problem {request.problem!r} is at revision {rev}, "
-                                            f"not {request.revision}")
-        self.limits.candidates(request.candidates, "candidates")
-        ids, X, provs = convert.batch_to_arrays(problem, request.candidates)
-        out = self.store.add_candidates(request.problem, rev, ids, X, provs)
-        return pb.AddCandidatesReply(ids=out, revision=rev)
+        with self._heavy(request, context, "AddCandidates"):
+            _info, rev, problem = self.store.get_problem(request.problem)
+            if request.revision and request.revision != rev:
+                raise ConflictError("revision", f"problem {request.problem!r} is at revision "
+                                                f"{rev}, not {request.revision}")
+            self.limits.candidates(request.candidates, "candidates")
+            ids, X, provs = convert.batch_to_arrays(problem, request.candidates)
+            out = self.store.add_candidates(request.problem, rev, ids, X, provs)
+            return pb.AddCandidatesReply(ids=out, revision=rev)
 
     @translate_errors
     def ListCandidates(self, request, context):
@@ -210,15 +234,17 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         """Validate, pick the budget, submit; returns (job, budget, audit_limit, revision).
 
         The constraints are read, checked and lowered once, here; the worker gets the
-        result (``compiled``, picklable) and does not compile again.
+        result (``compiled``, picklable) and does not compile again. The conversion holds a
+        place in the heavy-call gate; the search waits in the pool's queue.
         """
-        rev, problem, cands = self._library(request)
-        compiled = self._compiled(request.constraints, problem)
-        kwargs = convert.options_to_kwargs(request.options,
-                                           default_time_limit=self.config.default_time_limit)
-        budget = kwargs["time_limit"] = self._budget(kwargs["time_limit"], context)
-        job = self._watched(self.pool.submit(problem, cands, (), {**kwargs, "compiled": compiled}),
-                            context)
+        with self._heavy(request, context, "Repair"):
+            kwargs = convert.options_to_kwargs(request.options,
+                                               default_time_limit=self.config.default_time_limit)
+            rev, problem, cands = self._library(request)
+            compiled = self._compiled(request.constraints, problem)
+            budget = kwargs["time_limit"] = self._budget(kwargs["time_limit"], context)
+            job = self._watched(self.pool.submit(problem, cands, (),
+                                                 {**kwargs, "compiled": compiled}), context)
         audit_limit = (request.options.audit_limit if request.options.HasField("audit_limit")
                        else None)
         return job, budget, audit_limit, rev
@@ -349,20 +375,22 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
 
     @translate_errors
     def ProfileRobustness(self, request, context):
-        rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
-                                                  request.all_revisions)
-        eps = convert.nonneg(request.epsilon, "epsilon")
-        job = self._submit_call(audit_jobs.robustness, (problem, cands),
-                                {"epsilon": eps, "spectrum": bool(request.spectrum)}, context)
+        with self._heavy(request, context, "ProfileRobustness"):
+            eps = convert.nonneg(request.epsilon, "epsilon")
+            rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
+                                                      request.all_revisions)
+            job = self._submit_call(audit_jobs.robustness, (problem, cands),
+                                    {"epsilon": eps, "spectrum": bool(request.spectrum)}, context)
         rep = self._wait(job, context, math.inf)  # vectorised, not interruptible
         return convert.robustness_to_reply(rep, revision=rev)
 
     def _start_stress(self, request, context, *, field: str = ""):
-        rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
-                                                  request.all_revisions, field=field)
-        family, kwargs = convert.stress_to_kwargs(
-            request, problem, default_time_limit=self.config.default_audit_time_limit,
-            max_scenarios=self.config.max_scenarios, field=field)
+        with self._heavy(request, context, "StressTest"):
+            rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
+                                                      request.all_revisions, field=field)
+            family, kwargs = convert.stress_to_kwargs(
+                request, problem, default_time_limit=self.config.default_audit_time_limit,
+                max_scenarios=self.config.max_scenarios, field=field)
         kwargs["time_limit"] = self._budget(kwargs["time_limit"], context)
         return rev, problem, cands, family, kwargs
 
@@ -388,11 +416,12 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
     def ParetoFront(self, request, context):
         from flipfix.repair.audit.pareto import cheapest_within, fewest_flips_within
 
-        rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
-                                                  request.all_revisions)
-        compiled = self._compiled(request.constraints, problem)
-        kwargs = convert.pareto_to_kwargs(request,
-                                          default_time_limit=self.config.default_time_limit)
+        with self._heavy(request, context, "ParetoFront"):
+            rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
+                                                      request.all_revisions)
+            compiled = self._compiled(request.constraints, problem)
+            kwargs = convert.pareto_to_kwargs(request,
+                                              default_time_limit=self.config.default_time_limit)
         kwargs["time_limit"] = budget = self._budget(kwargs["time_limit"], context)
         t0 = time.perf_counter()
         job = self._submit_call(audit_jobs.pareto, (problem, cands, compiled), kwargs, context)
@@ -451,13 +480,16 @@ class RunningServer:
     """A started server; ``port`` is the bound port (bind port 0 in tests)."""
 
     def __init__(self, server: grpc.Server, port: int, servicer: FlipfixServicer,
-                 health_servicer: health.HealthServicer, pool: RepairPool, store: Store):
+                 health_servicer: health.HealthServicer, pool: RepairPool, store: Store,
+                 drain: DrainInterceptor):
         self.server = server
         self.port = port
         self.servicer = servicer
         self.health = health_servicer
         self.pool = pool
         self.store = store
+        self.drain = drain
+        self.draining = drain.draining
         self._stopped = threading.Event()
         self._lock = threading.Lock()
 
@@ -465,15 +497,23 @@ class RunningServer:
     def address(self) -> str:
         return f"127.0.0.1:{self.port}"
 
+    def begin_shutdown(self) -> None:
+        """From now on new calls (health checks aside) get UNAVAILABLE at once; health
+        answers NOT_SERVING. Safe to call from a signal handler (sets flags only)."""
+        self.draining.set()
+
     def shutdown(self, grace: float = 10.0) -> None:
-        """Health NOT_SERVING, refuse new calls, give in-flight ones ``grace`` s, then cancel."""
+        """Health NOT_SERVING, refuse new calls (UNAVAILABLE), give in-flight ones ``grace``
+        s (woken as soon as the last ends), then cancel them: their solvers stop, the
+        workers exit, the store closes."""
+        self.draining.set()
         with self._lock:
             if self._stopped.is_set():
                 return
             self.health.enter_graceful_shutdown()
-            stopped = self.server.stop(grace)
-            stopped.wait()
-            self.pool.shutdown(wait=True)
+            idle = self.drain.wait_idle(grace)
+            self.server.stop(0).wait()  # cancels what is left; their jobs are cancelled
+            self.pool.shutdown(wait=True, terminate=not idle)
             self.store.close()
             self._stopped.set()
 
@@ -499,14 +539,18 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
         setattr(config, k, v)
     store = Store(config.db_path)
     pool = RepairPool(workers=config.workers, queue_size=config.queue_size, warm=config.warm)
+    gate = HeavyGate(config.admission)
+    drain = DrainInterceptor(threading.Event())
     options = [("grpc.max_receive_message_length", config.max_message_bytes),
                ("grpc.max_send_message_length", config.max_message_bytes),
                ("grpc.so_reuseport", 0)]
-    # threads: one per repair slot (they wait on the pool) plus room for quick calls
-    server = grpc.server(futures.ThreadPoolExecutor(max_workers=pool.slots + 8,
+    # threads: one per repair slot (they wait on the pool), one per heavy call running or
+    # waiting at the gate, plus room for quick calls and health checks
+    threads = pool.slots + config.heavy_calls + config.heavy_queue + 8
+    server = grpc.server(futures.ThreadPoolExecutor(max_workers=threads,
                                                     thread_name_prefix="flipfix-rpc"),
-                         options=options)
-    servicer = FlipfixServicer(store, pool, config)
+                         options=options, interceptors=[drain])
+    servicer = FlipfixServicer(store, pool, config, gate)
     pb_grpc.add_FlipfixServicer_to_server(servicer, server)
     health_servicer = health.HealthServicer()
     health_pb2_grpc.add_HealthServicer_to_server(health_servicer, server)
@@ -527,4 +571,4 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
     for name in ("", SERVICE_NAME):
         health_servicer.set(name, health_pb2.HealthCheckResponse.SERVING)
     log.info("flipfix listening on port %d (db %s)", port, Path(config.db_path))
-    return RunningServer(server, port, servicer, health_servicer, pool, store)
+    return RunningServer(server, port, servicer, health_servicer, pool, store, drain)
