@@ -28,7 +28,8 @@ import grpc
 
 from flipfix.service.errors import QueueFullError
 
-__all__ = ["AdmissionConfig", "HeavyGate", "DrainInterceptor", "HEALTH_PREFIX"]
+__all__ = ["AdmissionConfig", "HeavyGate", "DrainInterceptor", "HEALTH_PREFIX", "behaviour",
+           "replace_behaviour"]
 
 #: Method paths starting with this are health checks (always answered).
 HEALTH_PREFIX = "/grpc.health.v1.Health/"
@@ -184,10 +185,9 @@ class DrainInterceptor(grpc.ServerInterceptor):
                 def refuse_stream(request, context):
                     refuse(request, context)
                     yield  # pragma: no cover - abort raises
-                return _replace(handler, refuse_stream)
-            return _replace(handler, refuse)
-        inner = (handler.unary_unary or handler.unary_stream or handler.stream_unary
-                 or handler.stream_stream)
+                return replace_behaviour(handler, refuse_stream)
+            return replace_behaviour(handler, refuse)
+        inner = behaviour(handler)
         if handler.response_streaming:
             def counted_stream(request, context):
                 self._enter()
@@ -195,7 +195,7 @@ class DrainInterceptor(grpc.ServerInterceptor):
                     yield from inner(request, context)
                 finally:
                     self._leave()
-            return _replace(handler, counted_stream)
+            return replace_behaviour(handler, counted_stream)
 
         def counted(request, context):
             self._enter()
@@ -203,10 +203,16 @@ class DrainInterceptor(grpc.ServerInterceptor):
                 return inner(request, context)
             finally:
                 self._leave()
-        return _replace(handler, counted)
+        return replace_behaviour(handler, counted)
 
 
-def _replace(handler, fn):
+def behaviour(handler):
+    """The function a method handler runs (whatever its kind)."""
+    return (handler.unary_unary or handler.unary_stream or handler.stream_unary
+            or handler.stream_stream)
+
+
+def replace_behaviour(handler, fn):
     """``handler`` with its behaviour replaced by ``fn`` (same (de)serialisers and kind)."""
     if handler.request_streaming and handler.response_streaming:
         return grpc.stream_stream_rpc_method_handler(

@@ -30,6 +30,7 @@ import numpy as np
 
 from flipfix.repair.documents import jsontext
 from flipfix.repair.errors import InputError
+from flipfix.service import connect
 
 __all__ = ["register", "run", "audit", "audit_remote", "draw_figure", "format_table"]
 
@@ -92,6 +93,7 @@ def register(subparsers) -> argparse.ArgumentParser:
                    help="audit a problem stored in a running flipfix service")
     p.add_argument("--commit", action="store_true",
                    help="with --server and --keep M: keep only the chosen candidates in the store")
+    connect.add_arguments(p)
     p.set_defaults(func=run)
     return p
 
@@ -568,7 +570,8 @@ def _run_remote(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         print("flipfix audit: error: --commit: needs --keep M", file=err)
         return 2
     budget = args.time_limit + args.pareto_time
-    with FlipfixClient(args.server, timeout=2 * budget + 60.0) as fx:
+    with FlipfixClient(args.server, timeout=2 * budget + 60.0,
+                       connection=connect.from_args(args, args.server)) as fx:
         try:
             _info, problem = fx.get_problem(args.problem)
             if problem.decisions and all(getattr(args, o) is None for o in _PART_OPTIONS.values()):

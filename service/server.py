@@ -23,6 +23,7 @@ core, and converts back; errors become status codes in :mod:`flipfix.service.err
 
 from __future__ import annotations
 
+import ipaddress
 import logging
 import math
 import threading
@@ -42,12 +43,15 @@ from flipfix.repair.errors import InputError
 
 from flipfix.service import audit_jobs
 from flipfix.service.admission import AdmissionConfig, DrainInterceptor, HeavyGate
+from flipfix.service.auth import AuthInterceptor, TokenFile
+from flipfix.service.auth import current as current_caller
 from flipfix.service import convert
 from flipfix.service.errors import ConflictError, NotFoundError, TransientError, translate_errors
 from flipfix.service.generated import flipfix_pb2 as pb
 from flipfix.service.generated import flipfix_pb2_grpc as pb_grpc
 from flipfix.service.limits import Limits
 from flipfix.service.store import Store
+from flipfix.service.tenancy import Quotas, TenantView
 from flipfix.service.worker import RepairPool
 
 __all__ = ["create_server", "RunningServer", "ServerConfig", "SERVICE_NAME"]
@@ -79,12 +83,32 @@ class ServerConfig:
     heavy_queue: int = 64
     memory_mb: float = 2048.0
     memory_factor: float = 25.0
+    #: TLS: the server's certificate chain and key (PEM files); with ``tls_client_ca``
+    #: clients must present a certificate signed by it (mutual TLS)
+    tls_cert: str | None = None
+    tls_key: str | None = None
+    tls_client_ca: str | None = None
+    #: bind a non-loopback address without TLS and tokens (refused otherwise)
+    allow_insecure_public_bind: bool = False
+    #: JSON-lines token file (:mod:`flipfix.service.auth`); None: no authentication
+    token_file: str | None = None
+    #: serve gRPC reflection (to authenticated callers when tokens are on)
+    reflection: bool = True
+    #: per-tenant quotas (None: unlimited): stored problems, candidates, MiB
+    quota_problems: int | None = None
+    quota_candidates: int | None = None
+    quota_mb: float | None = None
     warm: bool = True
 
     @property
     def limits(self) -> Limits:
         return Limits(max_variables=self.max_variables, max_candidates=self.max_candidates,
                       max_constraints=self.max_constraints, max_couplings=self.max_couplings)
+
+    @property
+    def quotas(self) -> Quotas:
+        return Quotas(problems=self.quota_problems, candidates=self.quota_candidates,
+                      bytes=None if self.quota_mb is None else int(self.quota_mb * 1024 * 1024))
 
     @property
     def admission(self) -> AdmissionConfig:
@@ -134,11 +158,16 @@ def deadline_budget(requested: float, remaining: float | None) -> float:
 class FlipfixServicer(pb_grpc.FlipfixServicer):
     def __init__(self, store: Store, pool: RepairPool, config: ServerConfig,
                  gate: HeavyGate | None = None):
-        self.store = store
+        self._store = store
         self.pool = pool
         self.config = config
         self.limits = config.limits
         self.gate = gate or HeavyGate(config.admission)
+
+    @property
+    def store(self) -> TenantView:
+        """The store as the calling tenant sees it (:mod:`flipfix.service.tenancy`)."""
+        return TenantView(self._store, current_caller().tenant)
 
     def _heavy(self, request, context, what: str):
         """A place in the heavy-call gate for this call (waits at most to its deadline)."""
@@ -497,6 +526,12 @@ class RunningServer:
     def address(self) -> str:
         return f"127.0.0.1:{self.port}"
 
+    tokens: TokenFile | None = None
+
+    def reload_tokens(self) -> bool:
+        """Read the token file again (SIGHUP); False when it did not read (old tokens stay)."""
+        return self.tokens.reload() if self.tokens is not None else False
+
     def begin_shutdown(self) -> None:
         """From now on new calls (health checks aside) get UNAVAILABLE at once; health
         answers NOT_SERVING. Safe to call from a signal handler (sets flags only)."""
@@ -529,15 +564,64 @@ class RunningServer:
         self.shutdown(grace=1.0)
 
 
+def is_loopback(address: str) -> bool:
+    """Whether ``HOST:PORT`` binds only the loopback interface."""
+    host = address.rsplit(":", 1)[0].strip("[]") if ":" in address else address
+    if host == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False
+
+
+def _credentials(config: ServerConfig):
+    """gRPC server credentials for the TLS files of ``config`` (None: no TLS)."""
+    if not (config.tls_cert or config.tls_key or config.tls_client_ca):
+        return None
+    if not (config.tls_cert and config.tls_key):
+        raise InputError("--tls-cert" if not config.tls_cert else "--tls-key",
+                         "TLS needs both --tls-cert and --tls-key")
+
+    def read(path: str, option: str) -> bytes:
+        try:
+            return Path(path).read_bytes()
+        except OSError as err:
+            raise InputError(option, f"cannot read {path}: {err.strerror or err}") from None
+
+    ca = read(config.tls_client_ca, "--tls-client-ca") if config.tls_client_ca else None
+    return grpc.ssl_server_credentials(
+        [(read(config.tls_key, "--tls-key"), read(config.tls_cert, "--tls-cert"))],
+        root_certificates=ca, require_client_auth=ca is not None)
+
+
+def _check_bind(address: str, config: ServerConfig) -> None:
+    """Refuse a non-loopback address without TLS and tokens unless explicitly allowed."""
+    if is_loopback(address) or config.allow_insecure_public_bind:
+        return
+    missing = [what for what, ok in (("TLS (--tls-cert/--tls-key)", config.tls_cert),
+                                     ("tokens (--token-file)", config.token_file)) if not ok]
+    if missing:
+        raise InputError("--host", f"refusing to serve {address} beyond this machine without "
+                                   f"{' and '.join(missing)}; give them, or "
+                                   "--allow-insecure-public-bind to accept the risk")
+
+
 def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = None,
                   **overrides) -> RunningServer:
-    """Build, bind and start the server; returns a :class:`RunningServer` (``.port``)."""
+    """Build, bind and start the server; returns a :class:`RunningServer` (``.port``).
+
+    A bad TLS or bind setting is an InputError naming the option (nothing is started).
+    """
     config = config or ServerConfig()
     for k, v in overrides.items():
         if not hasattr(config, k):
             raise TypeError(f"unknown server option {k!r}")
         setattr(config, k, v)
-    store = Store(config.db_path)
+    _check_bind(address, config)
+    credentials = _credentials(config)
+    tokens = TokenFile(config.token_file) if config.token_file else None
+    store = Store(config.db_path, quotas=config.quotas)
     pool = RepairPool(workers=config.workers, queue_size=config.queue_size, warm=config.warm)
     gate = HeavyGate(config.admission)
     drain = DrainInterceptor(threading.Event())
@@ -549,16 +633,19 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
     threads = pool.slots + config.heavy_calls + config.heavy_queue + 8
     server = grpc.server(futures.ThreadPoolExecutor(max_workers=threads,
                                                     thread_name_prefix="flipfix-rpc"),
-                         options=options, interceptors=[drain])
+                         options=options,
+                         interceptors=[drain] + ([AuthInterceptor(tokens)] if tokens else []))
     servicer = FlipfixServicer(store, pool, config, gate)
     pb_grpc.add_FlipfixServicer_to_server(servicer, server)
     health_servicer = health.HealthServicer()
     health_pb2_grpc.add_HealthServicer_to_server(health_servicer, server)
     names = (SERVICE_NAME, health_pb2.DESCRIPTOR.services_by_name["Health"].full_name,
              reflection.SERVICE_NAME)
-    reflection.enable_server_reflection(names, server)
+    if config.reflection:
+        reflection.enable_server_reflection(names, server)
     try:
-        port = server.add_insecure_port(address)
+        port = (server.add_secure_port(address, credentials) if credentials is not None
+                else server.add_insecure_port(address))
     except RuntimeError as err:
         pool.shutdown(wait=False)
         store.close()
@@ -571,4 +658,6 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
     for name in ("", SERVICE_NAME):
         health_servicer.set(name, health_pb2.HealthCheckResponse.SERVING)
     log.info("flipfix listening on port %d (db %s)", port, Path(config.db_path))
-    return RunningServer(server, port, servicer, health_servicer, pool, store, drain)
+    srv = RunningServer(server, port, servicer, health_servicer, pool, store, drain)
+    srv.tokens = tokens
+    return srv
