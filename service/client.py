@@ -27,7 +27,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any, Callable, Iterable, Mapping, Sequence
 
-import grpc
 import numpy as np
 
 from flipfix.repair.documents import forms as documents

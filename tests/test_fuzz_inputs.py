@@ -19,7 +19,6 @@ import subprocess
 import sys
 
 import grpc
-import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
