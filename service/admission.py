@@ -2,7 +2,8 @@
 
 * :class:`HeavyGate` -- at most ``capacity`` heavy calls (model uploads and reads,
   candidate uploads, the conversion part of repairs and audits) run at once, and their
-  estimated memory (request bytes x ``memory_factor``) stays within ``memory_bytes``.
+  estimated memory (bytes of the request plus the stored model it reads, x
+  ``memory_factor``) stays within ``memory_bytes``; calls under ``light_bytes`` pass.
   Beyond that a call waits in a first-come queue of at most ``queue`` calls; a call that
   finds the queue full, or that alone could never fit, is refused at once with a
   :class:`flipfix.service.errors.QueueFullError` (RESOURCE_EXHAUSTED) saying which limit
@@ -50,6 +51,9 @@ class AdmissionConfig:
     queue: int = 64
     memory_bytes: int = 2048 * MIB
     memory_factor: float = 25.0
+    #: calls smaller than this (request plus stored model read) pass without a place:
+    #: converting them costs milliseconds, and queueing them behind uploads would not help
+    light_bytes: int = 64 * 1024
 
 
 class HeavyGate:
@@ -91,8 +95,11 @@ class HeavyGate:
 
         ``timeout``: seconds it may wait for a place (None: no limit; the call's deadline).
         """
-        need = self.estimate(request_bytes)
         cfg = self.config
+        if request_bytes < cfg.light_bytes:
+            yield
+            return
+        need = self.estimate(request_bytes)
         if need > cfg.memory_bytes:
             with self._cond:
                 self.refused += 1

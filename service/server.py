@@ -169,9 +169,11 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         """The store as the calling tenant sees it (:mod:`flipfix.service.tenancy`)."""
         return TenantView(self._store, current_caller().tenant)
 
-    def _heavy(self, request, context, what: str):
-        """A place in the heavy-call gate for this call (waits at most to its deadline)."""
-        return self.gate.admit(request.ByteSize(), what, timeout=time_left(context))
+    def _heavy(self, request, context, what: str, problem: str = ""):
+        """A place in the heavy-call gate for this call (waits at most to its deadline);
+        ``problem``: the stored problem it reads (its model's bytes count too)."""
+        size = request.ByteSize() + (self.store.model_bytes(problem) if problem else 0)
+        return self.gate.admit(size, what, timeout=time_left(context))
 
     # ------------------------------------------------------------- problems
     @staticmethod
@@ -200,7 +202,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
 
     @translate_errors
     def GetProblem(self, request, context):
-        with self._heavy(request, context, "GetProblem"):
+        with self._heavy(request, context, "GetProblem", request.name):
             info, rev, problem = self.store.get_problem(request.name, request.revision)
             return pb.GetProblemReply(info=self._info(info), revision=rev,
                                       model=convert.problem_to_model(problem))
@@ -218,7 +220,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
     # ----------------------------------------------------------- candidates
     @translate_errors
     def AddCandidates(self, request, context):
-        with self._heavy(request, context, "AddCandidates"):
+        with self._heavy(request, context, "AddCandidates", request.problem):
             _info, rev, problem = self.store.get_problem(request.problem)
             if request.revision and request.revision != rev:
                 raise ConflictError("revision", f"problem {request.problem!r} is at revision "
@@ -266,7 +268,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         result (``compiled``, picklable) and does not compile again. The conversion holds a
         place in the heavy-call gate; the search waits in the pool's queue.
         """
-        with self._heavy(request, context, "Repair"):
+        with self._heavy(request, context, "Repair", request.problem):
             kwargs = convert.options_to_kwargs(request.options,
                                                default_time_limit=self.config.default_time_limit)
             rev, problem, cands = self._library(request)
@@ -404,7 +406,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
 
     @translate_errors
     def ProfileRobustness(self, request, context):
-        with self._heavy(request, context, "ProfileRobustness"):
+        with self._heavy(request, context, "ProfileRobustness", request.problem):
             eps = convert.nonneg(request.epsilon, "epsilon")
             rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
                                                       request.all_revisions)
@@ -414,7 +416,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         return convert.robustness_to_reply(rep, revision=rev)
 
     def _start_stress(self, request, context, *, field: str = ""):
-        with self._heavy(request, context, "StressTest"):
+        with self._heavy(request, context, "StressTest", request.problem):
             rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
                                                       request.all_revisions, field=field)
             family, kwargs = convert.stress_to_kwargs(
@@ -445,7 +447,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
     def ParetoFront(self, request, context):
         from flipfix.repair.audit.pareto import cheapest_within, fewest_flips_within
 
-        with self._heavy(request, context, "ParetoFront"):
+        with self._heavy(request, context, "ParetoFront", request.problem):
             rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
                                                       request.all_revisions)
             compiled = self._compiled(request.constraints, problem)

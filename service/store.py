@@ -326,6 +326,15 @@ class Store:
         if not db.execute("SELECT 1 FROM problems WHERE name = ?", (key,)).fetchone():
             raise NotFoundError(field, f"no problem named {name!r}")
 
+    def model_bytes(self, name: str, *, tenant: str = "") -> int:
+        """Bytes of the problem's stored current model (0 when there is no such problem):
+        what reading it costs, known before it is read."""
+        with self._read() as db:
+            row = db.execute("SELECT LENGTH(r.model) FROM problems p JOIN revisions r ON "
+                             "r.problem = p.name AND r.revision = p.revision WHERE p.name = ?",
+                             (self._key(tenant, name),)).fetchone()
+        return int(row[0]) if row else 0
+
     def usage(self, *, tenant: str = "") -> dict:
         """The tenant's stored problems, candidates and bytes."""
         with self._read() as db:

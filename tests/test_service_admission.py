@@ -47,7 +47,8 @@ def _hold(gate, size, entered, release, errors):
 
 
 def test_gate_runs_capacity_calls_queues_the_rest_and_refuses_beyond_the_queue():
-    gate = HeavyGate(AdmissionConfig(capacity=2, queue=1, memory_bytes=10**9, memory_factor=1))
+    gate = HeavyGate(AdmissionConfig(capacity=2, queue=1, memory_bytes=10**9, memory_factor=1,
+                                     light_bytes=0))
     entered, release, errors = threading.Semaphore(0), threading.Event(), []
     threads = [threading.Thread(target=_hold, args=(gate, 10, entered, release, errors))
                for _ in range(3)]
@@ -70,7 +71,8 @@ def test_gate_runs_capacity_calls_queues_the_rest_and_refuses_beyond_the_queue()
 
 
 def test_gate_memory_estimate_refuses_a_call_that_can_never_fit_and_queues_by_memory():
-    gate = HeavyGate(AdmissionConfig(capacity=4, queue=4, memory_bytes=1000, memory_factor=10))
+    gate = HeavyGate(AdmissionConfig(capacity=4, queue=4, memory_bytes=1000, memory_factor=10,
+                                       light_bytes=0))
     with pytest.raises(QueueFullError) as e:
         with gate.admit(101, "CreateProblem"):
             pass
@@ -85,7 +87,8 @@ def test_gate_memory_estimate_refuses_a_call_that_can_never_fit_and_queues_by_me
 
 
 def test_gate_wakes_the_next_caller_when_a_place_frees():
-    gate = HeavyGate(AdmissionConfig(capacity=1, queue=4, memory_bytes=10**9, memory_factor=1))
+    gate = HeavyGate(AdmissionConfig(capacity=1, queue=4, memory_bytes=10**9, memory_factor=1,
+                                     light_bytes=0))
     order = []
     release = threading.Event()
 
@@ -112,6 +115,17 @@ def test_gate_wakes_the_next_caller_when_a_place_frees():
     b.join(timeout=10)
     assert order[0] == "first in" and "second in" in order
     assert time.monotonic() - t0 < 1.0
+
+
+def test_light_calls_pass_without_a_place():
+    gate = HeavyGate(AdmissionConfig(capacity=1, queue=0, memory_bytes=10**9, memory_factor=1,
+                                     light_bytes=100))
+    with gate.admit(500, "upload"):  # the one place is taken, no queue
+        with pytest.raises(QueueFullError):
+            with gate.admit(100, "another upload"):
+                pass
+        with gate.admit(99, "small repair"):
+            assert gate.running == 1
 
 
 # ----------------------------------------------------------------- on a server
@@ -192,6 +206,10 @@ def test_serve_exits_within_the_grace_period_after_sigterm(tmp_path, benchmarks)
         time.sleep(1.0)  # the repair is running (its budget is 30 s)
         t0 = time.monotonic()
         proc.send_signal(signal.SIGTERM)
+        line = proc.stderr.readline()  # printed by the handler once new calls are refused
+        while "shutting down" not in line:
+            assert line, "server exited"
+            line = proc.stderr.readline()
         e = rpc_error(lambda: stub.ListProblems(pb.ListProblemsRequest(), timeout=30))
         assert e.code() == grpc.StatusCode.UNAVAILABLE
         assert time.monotonic() - t0 < 0.5
