@@ -41,7 +41,7 @@ from flipfix.repair.model.candidates import CandidateSet
 
 from flipfix.repair.errors import InputError
 
-from flipfix.service import audit_jobs
+from flipfix.service import audit_jobs, upload_jobs
 from flipfix.service.admission import AdmissionConfig, DrainInterceptor, HeavyGate
 from flipfix.service.auth import AuthInterceptor, TokenFile
 from flipfix.service.auth import current as current_caller
@@ -187,18 +187,31 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         self.limits.model(model, field)
         return convert.model_to_problem(model, field=field)
 
+    def _upload(self, request, context):
+        """(Problem, stored JSON) of an uploaded ``request.model``: a large one is converted
+        in a pool worker (:mod:`flipfix.service.upload_jobs`), a small one here."""
+        if request.ByteSize() < self.gate.config.light_bytes:
+            problem = self._problem(request.model, "model")
+            return problem, None
+        job = self._submit_call(upload_jobs.model_to_stored,
+                                (request.model.SerializeToString(), self.limits, "model"), {},
+                                context)
+        return self._wait(job, context, math.inf)
+
     @translate_errors
     def CreateProblem(self, request, context):
+        Store._check_name(request.name)  # before the conversion, not after
         with self._heavy(request, context, "CreateProblem"):
-            problem = self._problem(request.model, "model")
-            return self._info(self.store.create_problem(request.name, problem))
+            problem, encoded = self._upload(request, context)
+            return self._info(self.store.create_problem(request.name, problem, encoded=encoded))
 
     @translate_errors
     def ReplaceProblem(self, request, context):
         with self._heavy(request, context, "ReplaceProblem"):
-            problem = self._problem(request.model, "model")
+            problem, encoded = self._upload(request, context)
             return self._info(self.store.replace_problem(
-                request.name, problem, expected_revision=request.expected_revision))
+                request.name, problem, expected_revision=request.expected_revision,
+                encoded=encoded))
 
     @translate_errors
     def GetProblem(self, request, context):

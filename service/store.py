@@ -368,9 +368,11 @@ class Store:
             raise InputError("name", f"must not contain control characters (found {bad!r})")
 
     # ---------------------------------------------------------------- problems
-    def create_problem(self, name: str, problem: Problem, *, tenant: str = "") -> ProblemRecord:
+    def create_problem(self, name: str, problem: Problem, *, tenant: str = "",
+                       encoded: str | None = None) -> ProblemRecord:
+        """Store a new problem; ``encoded``: its :func:`encode_model` text when already made."""
         self._check_name(name)
-        model = encode_model(problem)
+        model = encoded if encoded is not None else encode_model(problem)
         key = self._key(tenant, name)
         with self._tx() as db:
             if db.execute("SELECT 1 FROM problems WHERE name = ?", (key,)).fetchone():
@@ -384,8 +386,8 @@ class Store:
             return self._info(db, key, name)
 
     def replace_problem(self, name: str, problem: Problem, *, expected_revision: int = 0,
-                        tenant: str = "") -> ProblemRecord:
-        model = encode_model(problem)
+                        tenant: str = "", encoded: str | None = None) -> ProblemRecord:
+        model = encoded if encoded is not None else encode_model(problem)
         key = self._key(tenant, name)
         with self._tx() as db:
             row = db.execute("SELECT revision FROM problems WHERE name = ?", (key,)).fetchone()

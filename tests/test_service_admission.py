@@ -155,6 +155,31 @@ def test_server_refuses_a_model_over_the_coupling_cap_and_the_memory_estimate(sm
     stub.CreateProblem(pb.CreateProblemRequest(name="ok", model=convert.doc_to_model(SMALL)))
 
 
+def test_a_large_upload_is_converted_in_a_worker_with_the_same_answers(tmp_path):
+    """Over 64 KiB the model is converted in a pool process: stored exactly, and a bad term
+    is still INVALID_ARGUMENT naming it."""
+    with create_server("127.0.0.1:0", db_path=str(tmp_path / "u.sqlite3"), warm=False,
+                       workers=1) as srv:
+        stub = pb_grpc.FlipfixStub(grpc.insecure_channel(srv.address))
+        doc = {"vartype": "SPIN", "linear": {f"v{k}": 0.5 * (k % 7) for k in range(3000)},
+               "quadratic": [[f"v{k}", f"v{k + 1}", -1.0] for k in range(2999)]}
+        model = convert.doc_to_model(doc)
+        assert model.ByteSize() > srv.servicer.gate.config.light_bytes
+        bad = pb.ProblemModel()
+        bad.CopyFrom(model)
+        bad.quadratic[2500].bias = float("nan")
+        e = rpc_error(lambda: stub.CreateProblem(pb.CreateProblemRequest(name="bad", model=bad)))
+        assert e.code() == grpc.StatusCode.INVALID_ARGUMENT
+        assert e.details().startswith("model.quadratic[2500].bias")
+        stub.CreateProblem(pb.CreateProblemRequest(name="big", model=model))
+        got = convert.model_to_problem(stub.GetProblem(pb.GetProblemRequest(name="big")).model)
+        want = convert.model_to_problem(model)
+        assert got.labels == want.labels and got.vartype == "SPIN"
+        assert np.array_equal(got.linear, want.linear) and got.offset == want.offset
+        assert np.array_equal(got.data, want.data) and np.array_equal(got.indices, want.indices)
+        assert [p.name for p in stub.ListProblems(pb.ListProblemsRequest()).problems] == ["big"]
+
+
 def _big_repair(benchmarks):
     p = read_bqp(benchmarks / "bqp" / "bqp100-1.sparse")
     X = np.random.default_rng(1).integers(0, 2, size=(4, p.n), dtype=np.int8)
