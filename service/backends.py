@@ -70,6 +70,11 @@ class SQLiteBackend:
         return sqlite3.connect(self.path, isolation_level=None, check_same_thread=False,
                                timeout=10.0)
 
+    @staticmethod
+    def ddl(stmt: str) -> list[str]:
+        """Statements of one DDL statement in this dialect (SQLite: as written)."""
+        return [stmt]
+
     def create_schema(self, ddl: str) -> None:
         # executescript commits by itself; every statement is CREATE ... IF NOT EXISTS
         self.db.executescript(ddl)
@@ -124,7 +129,7 @@ class SQLiteBackend:
 # ------------------------------------------------------------------ PostgreSQL
 _TYPES = [(re.compile(r"INTEGER PRIMARY KEY AUTOINCREMENT"), "BIGSERIAL PRIMARY KEY"),
           (re.compile(r"\bINTEGER\b"), "BIGINT"), (re.compile(r"\bBLOB\b"), "BYTEA"),
-          (re.compile(r"\bREAL\b"), "DOUBLE PRECISION")]
+          (re.compile(r"\bREAL\b"), "DOUBLE PRECISION"), (re.compile(r"\b[xX]''"), "''::bytea")]
 
 
 def postgres_ddl(ddl: str) -> list[str]:
@@ -172,6 +177,11 @@ class PostgresBackend:
         except Exception as exc:
             self.pool.close()
             raise TransientError("db", f"cannot reach the PostgreSQL server: {exc}") from None
+
+    @staticmethod
+    def ddl(stmt: str) -> list[str]:
+        """Statements of one (SQLite-typed) DDL statement in PostgreSQL's types."""
+        return postgres_ddl(stmt)
 
     def create_schema(self, ddl: str) -> None:
         with self.tx() as db:  # under the write lock: replicas starting at once do not race

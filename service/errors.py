@@ -46,7 +46,7 @@ from flipfix.repair.errors import InputError, LimitError
 
 __all__ = ["NotFoundError", "AlreadyExistsError", "ConflictError", "TransientError",
            "QueueFullError", "DOMAIN", "Fault", "fault_for", "status_for", "rich_status",
-           "positional", "plain", "translate_errors"]
+           "positional", "plain", "translate_errors", "refuse", "INTERCEPTOR_REASONS"]
 
 log = logging.getLogger("flipfix.service")
 
@@ -126,6 +126,16 @@ def fault_for(exc: BaseException, request: Any = None) -> Fault:
     if isinstance(exc, sqlite3.OperationalError) and "locked" in str(exc):
         return Fault(grpc.StatusCode.UNAVAILABLE, "TRANSIENT", "", "database busy; retry")
     return Fault(grpc.StatusCode.INTERNAL, "INTERNAL", "", f"internal error: {type(exc).__name__}")
+
+
+def refuse(context: grpc.ServicerContext, code: grpc.StatusCode, reason: str, field: str,
+           message: str) -> None:
+    """Abort a call outside :func:`translate_errors` (interceptors) with the same details."""
+    context.abort_with_status(rich_status(Fault(code, reason, field, message)))
+
+
+#: reasons sent by interceptors (auth), beside those of :data:`_TABLE`, TRANSIENT and INTERNAL
+INTERCEPTOR_REASONS = ("UNAUTHENTICATED", "PERMISSION_DENIED")
 
 
 def status_for(exc: BaseException) -> tuple[grpc.StatusCode, str]:

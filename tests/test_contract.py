@@ -191,7 +191,8 @@ def test_reasons_are_the_proto_error_reason_values():
     """Every reason the server can send is an ErrorReason value name minus its prefix."""
     names = {pb.ErrorReason.Name(v).removeprefix("ERROR_REASON_")
              for v in pb.ErrorReason.values() if v}
-    sent = {r for _, _, r in errors._TABLE} | {"TRANSIENT", "INTERNAL"}
+    sent = ({r for _, _, r in errors._TABLE} | {"TRANSIENT", "INTERNAL"}
+            | set(errors.INTERCEPTOR_REASONS))
     assert sent == names
     assert errors.fault_for(errors.QueueFullError("queue", "full")).reason == "QUEUE_FULL"
     assert errors.fault_for(RuntimeError("x")).reason == "INTERNAL"

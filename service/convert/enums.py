@@ -58,7 +58,7 @@ STOP_NAMES = {v: k for k, v in STOP_ENUM.items()}
 #: the core's progress phase names; a name missing here is reported as PHASE_UNSPECIFIED
 PHASE_ENUM = {"greedy": pb.PHASE_GREEDY, "anneal": pb.PHASE_ANNEAL,
               "neighbourhood": pb.PHASE_NEIGHBOURHOOD, "full": pb.PHASE_FULL,
-              "cpsat": pb.PHASE_CPSAT, "stress": pb.PHASE_STRESS}
+              "cpsat": pb.PHASE_CPSAT, "stress": pb.PHASE_STRESS, "grow": pb.PHASE_GROW}
 PHASE_NAMES = {v: k for k, v in PHASE_ENUM.items()}
 #: the core's stage names (a method label joins them with "+", e.g. "anneal+greedy")
 SOLVER_ENUM = {"unrepaired": pb.SOLVER_UNREPAIRED, "unchanged": pb.SOLVER_UNCHANGED,
