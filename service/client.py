@@ -47,7 +47,7 @@ from flipfix.service.connect import Connection, open_channel
 from flipfix.service.generated import flipfix_pb2 as pb
 from flipfix.service.generated import flipfix_pb2_grpc as pb_grpc
 
-__all__ = ["FlipfixClient", "FlipfixError", "StoredCandidates"]
+__all__ = ["FlipfixClient", "FlipfixError", "StoredCandidates", "raises_flipfix_errors"]
 
 
 class FlipfixError(grpc.RpcError):
@@ -114,7 +114,9 @@ def _one_error_type(method):
     return wrapped
 
 
-def _public_methods_raise_flipfix_errors(cls):
+def raises_flipfix_errors(cls):
+    """Class decorator: every public method of ``cls`` raises only :class:`FlipfixError`
+    (for subclasses of :class:`FlipfixClient` that add methods)."""
     for name, fn in list(vars(cls).items()):
         if (callable(fn) and not isinstance(fn, (staticmethod, classmethod))
                 and not name.startswith("_") and name != "close"):
@@ -171,7 +173,7 @@ def as_problem(model: Any) -> Problem:
     return Problem.from_bqm(model)
 
 
-@_public_methods_raise_flipfix_errors
+@raises_flipfix_errors
 class FlipfixClient:
     """Wraps the generated stub; ``target`` is ``HOST:PORT``. Every public method raises
     :class:`FlipfixError` only."""

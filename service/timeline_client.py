@@ -23,7 +23,7 @@ from typing import Any, Iterable, Mapping
 from google.protobuf.json_format import MessageToDict
 
 from flipfix.service import convert
-from flipfix.service.client import FlipfixClient
+from flipfix.service.client import FlipfixClient, raises_flipfix_errors
 from flipfix.service.generated import flipfix_pb2 as pb
 from flipfix.service.generated import timeline_pb2 as tpb
 from flipfix.service.generated import timeline_pb2_grpc as tpb_grpc
@@ -49,6 +49,7 @@ def _ints(v):
     return v
 
 
+@raises_flipfix_errors
 class TimelineClient(FlipfixClient):
     """The Flipfix client plus the Timeline stub on the same channel."""
 

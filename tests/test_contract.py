@@ -436,3 +436,31 @@ def test_language_options_are_set_alike_in_every_file_of_the_package():
         assert o.java_multiple_files and o.java_package and o.go_package and o.csharp_namespace, fd.name
         seen.setdefault(fd.package, set()).add(opts)
     assert seen and all(len(v) == 1 for v in seen.values()), seen
+
+
+def test_auth_refusals_carry_error_info_and_reflection_v1_is_a_reader_method(tmp_path):
+    from flipfix.service.token_cli import make_token
+
+    path = str(tmp_path / "tokens.jsonl")
+    reader = make_token(path, tenant="t", role="reader")
+    with create_server("127.0.0.1:0", db_path=str(tmp_path / "a.sqlite3"), warm=False,
+                       workers=1, token_file=path) as srv:
+        ch = grpc.insecure_channel(srv.address)
+        stub = pb_grpc.FlipfixStub(ch)
+        err = rpc_error(lambda: stub.ListProblems(pb.ListProblemsRequest()))
+        info, violations = _details(err)
+        assert err.code() == grpc.StatusCode.UNAUTHENTICATED
+        assert (info.reason, info.metadata["field"]) == ("UNAUTHENTICATED", "authorization")
+        assert violations == []
+        auth_md = (("authorization", f"Bearer {reader}"),)
+        err = rpc_error(lambda: stub.CreateProblem(pb.CreateProblemRequest(
+            name="x", model=convert.doc_to_model(DOC)), metadata=auth_md))
+        assert err.code() == grpc.StatusCode.PERMISSION_DENIED
+        assert _details(err)[0].reason == "PERMISSION_DENIED"
+        call = ch.stream_stream("/grpc.reflection.v1.ServerReflection/ServerReflectionInfo",
+                                request_serializer=reflection_pb2.ServerReflectionRequest.SerializeToString,
+                                response_deserializer=reflection_pb2.ServerReflectionResponse.FromString)
+        out = list(call(iter([reflection_pb2.ServerReflectionRequest(list_services="")]),
+                        metadata=auth_md, timeout=10))
+        assert SERVICE_NAME in {s.name for s in out[0].list_services_response.service}
+        ch.close()
