@@ -25,16 +25,13 @@ __all__ = ["repair", "warm_up", "check_options", "result_seconds", "search_deadl
 
 def warm_up() -> None:
     """Load (or, on a machine's first run, compile) every search kernel once per process:
-    greedy, the scorer, annealing and the growing chains. Set-up, never counted against a
-    budget."""
-    from flipfix.repair.grow import neighbours as grow_chains
+    greedy, the scorer and annealing. Set-up, never counted against a budget."""
     from flipfix.repair.kernels import scores
     from flipfix.repair.solvers import anneal, greedy
 
     greedy.warm_up()
     scores.warm_up()
     anneal.warm_up()
-    grow_chains.warm_up()
 
 
 def check_options(*, method: Any, time_limit: Any, max_flips: Any, flip_price: Any, seed: Any,
