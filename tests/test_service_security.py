@@ -434,3 +434,33 @@ def test_schema_2_database_is_migrated_to_tenants(tmp_path):
     assert con.execute("PRAGMA foreign_key_check").fetchall() == []
     con.close()
     s.close()
+
+
+def test_each_tenant_has_its_own_timeline(secured, tokens):
+    """Two tenants with a problem of the same name: events, published plan and records of
+    one are invisible to the other, and the history names the caller by token."""
+    from flipfix.service.timeline_client import TimelineClient
+
+    event = {"type": "fix", "name": "b stays off", "values": {"b": 0}}
+    clients = {t: TimelineClient(secured.address, token=tokens[t, "planner"], timeout=30)
+               for t in ("north", "south")}
+    try:
+        for fx in clients.values():
+            fx.create_problem("p", SMALL)
+            fx.add_candidates("p", CANDS)
+        north, south = clients["north"], clients["south"]
+        added = north.add_event("p", event)
+        assert added["problem"] == "p" and added["added_by"] == "token north/planner"
+        north.set_published_plan("p", "k1")
+        north.repair("p", use_events=True, time_limit=0.5)
+        assert [e["constraint"]["name"] for e in north.list_events("p")["events"]] == ["b stays off"]
+        assert south.list_events("p")["events"] == []
+        assert rpc_error(lambda: south.published_plan("p")).code() == grpc.StatusCode.NOT_FOUND
+        assert len(north.list_records("p")) == 1 and south.list_records("p") == []
+        assert north.list_records("p")[0]["problem"] == "p"
+        # the other tenant cannot withdraw it by id either
+        e = rpc_error(lambda: south.withdraw_event("p", added["id"]))
+        assert e.code() == grpc.StatusCode.NOT_FOUND
+    finally:
+        for fx in clients.values():
+            fx.close()
