@@ -79,7 +79,7 @@ class Cluster:
 
 def connect(text: str, *, field: str = "dask", timeout: float = 30.0) -> Cluster:
     """Connect to a scheduler, or start ``local:N`` (N single-threaded worker processes
-    on 127.0.0.1; the dashboard is off)."""
+    on 127.0.0.1; its HTTP status page on a free loopback port)."""
     address, n = parse_address(text, field=field)
     try:
         from distributed import Client, LocalCluster
@@ -87,7 +87,7 @@ def connect(text: str, *, field: str = "dask", timeout: float = 30.0) -> Cluster
         raise InputError(field, "needs Dask distributed: pip install 'flipfix[cluster]'") from None
     if n:
         local = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
-                             host="127.0.0.1", dashboard_address=None)
+                             host="127.0.0.1", dashboard_address="127.0.0.1:0")
         return Cluster(Client(local, timeout=timeout), local)
     try:
         return Cluster(Client(address, timeout=timeout))

@@ -135,7 +135,7 @@ def test_a_task_whose_worker_dies_runs_again():
 def test_a_cluster_without_workers_is_unavailable_not_a_hang():
     from distributed import Client, LocalCluster
 
-    local = LocalCluster(n_workers=0, processes=True, host="127.0.0.1", dashboard_address=None)
+    local = LocalCluster(n_workers=0, processes=True, host="127.0.0.1", dashboard_address="127.0.0.1:0")
     client = Client(local)
     try:
         gen = DaskRunner(client).map(_die_once, (None, None), [1], seconds_each=1,
