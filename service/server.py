@@ -42,7 +42,7 @@ from flipfix.repair.model.candidates import CandidateSet
 from flipfix.repair.errors import InputError
 
 from flipfix.service import audit_jobs, upload_jobs
-from flipfix.service.admission import AdmissionConfig, DrainInterceptor, HeavyGate
+from flipfix.service.admission import AdmissionConfig, DrainInterceptor, HeavyGate, RequestGuard
 from flipfix.service.auth import AuthInterceptor, TokenFile
 from flipfix.service.auth import current as current_caller
 from flipfix.service import convert
@@ -649,7 +649,8 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
     server = grpc.server(futures.ThreadPoolExecutor(max_workers=threads,
                                                     thread_name_prefix="flipfix-rpc"),
                          options=options,
-                         interceptors=[drain] + ([AuthInterceptor(tokens)] if tokens else []))
+                         interceptors=[drain] + ([AuthInterceptor(tokens)] if tokens else [])
+                         + [RequestGuard(gate)])
     servicer = FlipfixServicer(store, pool, config, gate)
     pb_grpc.add_FlipfixServicer_to_server(servicer, server)
     health_servicer = health.HealthServicer()
