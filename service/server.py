@@ -188,14 +188,21 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         return convert.model_to_problem(model, field=field)
 
     def _upload(self, request, context):
-        """(Problem, stored JSON) of an uploaded ``request.model``: a large one is converted
-        in a pool worker (:mod:`flipfix.service.upload_jobs`), a small one here."""
-        if request.ByteSize() < self.gate.config.light_bytes:
-            problem = self._problem(request.model, "model")
-            return problem, None
+        """(Problem, stored JSON or None) of an uploaded ``request.model``: a large one is
+        converted in a pool worker (:mod:`flipfix.service.upload_jobs`), a small one here."""
+        if request.model.ByteSize() < self.gate.config.light_bytes:
+            return self._problem(request.model, "model"), None
+        return self._in_worker(request.model, "model", context)
+
+    def _converted(self, model: pb.ProblemModel, field: str, context):
+        """The Problem of ``model`` (an inline one), converted in a worker when large."""
+        if model.ByteSize() < self.gate.config.light_bytes:
+            return self._problem(model, field)
+        return self._in_worker(model, field, context)[0]
+
+    def _in_worker(self, model: pb.ProblemModel, field: str, context):
         job = self._submit_call(upload_jobs.model_to_stored,
-                                (request.model.SerializeToString(), self.limits, "model"), {},
-                                context)
+                                (model.SerializeToString(), self.limits, field), {}, context)
         return self._wait(job, context, math.inf)
 
     @translate_errors
@@ -257,7 +264,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
                                                                              list(request.ids)))
 
     # --------------------------------------------------------------- repair
-    def _library(self, request):
+    def _library(self, request, context):
         which = request.WhichOneof("library")
         if which == "problem":
             rev, problem, cands = self.store.library(
@@ -265,7 +272,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
                 all_revisions=request.all_revisions, max_candidates=self.config.max_candidates)
             return rev, problem, cands
         if which == "inline":
-            problem = self._problem(request.inline.model, "inline.model")
+            problem = self._converted(request.inline.model, "inline.model", context)
             self.limits.candidates(request.inline.candidates, "inline.candidates")
             ids, X, _ = convert.batch_to_arrays(problem, request.inline.candidates,
                                                 field="inline.candidates")
@@ -284,7 +291,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         with self._heavy(request, context, "Repair", request.problem):
             kwargs = convert.options_to_kwargs(request.options,
                                                default_time_limit=self.config.default_time_limit)
-            rev, problem, cands = self._library(request)
+            rev, problem, cands = self._library(request, context)
             compiled = self._compiled(request.constraints, problem)
             budget = kwargs["time_limit"] = self._budget(kwargs["time_limit"], context)
             job = self._watched(self.pool.submit(problem, cands, (),

@@ -178,6 +178,18 @@ def test_a_large_upload_is_converted_in_a_worker_with_the_same_answers(tmp_path)
         assert np.array_equal(got.linear, want.linear) and got.offset == want.offset
         assert np.array_equal(got.data, want.data) and np.array_equal(got.indices, want.indices)
         assert [p.name for p in stub.ListProblems(pb.ListProblemsRequest()).problems] == ["big"]
+        # the same model inline in a repair: converted in a worker too, same field names
+        X = np.zeros((2, 3000), dtype=np.int8)
+        fix = pb.Constraint(fix=pb.FixVariables(values=convert.dict_to_assignment({"v5": 1})))
+        req = pb.RepairRequest(inline=pb.InlineLibrary(
+            model=model, candidates=convert.arrays_to_batch(["a", "b"], X)),
+            constraints=[fix], options=pb.RepairOptions(method=2, time_limit=2.0))  # GREEDY
+        out = convert.reply_to_dict(stub.Repair(req, timeout=60), want)
+        assert out["best"]["assignment"]["v5"] == 1 and out["best"]["feasible"]
+        req.inline.model.CopyFrom(bad)
+        e = rpc_error(lambda: stub.Repair(req, timeout=60))
+        assert e.code() == grpc.StatusCode.INVALID_ARGUMENT
+        assert e.details().startswith("inline.model.quadratic[2500].bias")
 
 
 def _big_repair(benchmarks):
