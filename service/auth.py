@@ -45,6 +45,8 @@ log = logging.getLogger("flipfix.auth")
 ROLES = ("reader", "planner", "admin")
 
 _F = "/flipfix.v1.Flipfix/"
+_T = "/flipfix.v1.Timeline/"
+_G = "/flipfix.v1.Grow/"
 _REFLECTION = "/grpc.reflection.v1alpha.ServerReflection/ServerReflectionInfo"
 
 #: The least role each method needs (full gRPC method paths). Methods not listed need
@@ -57,6 +59,9 @@ METHOD_ROLES: dict[str, str] = {
                                    "StressTest", "StressTestStream", "ParetoFront",
                                    "CurateLibrary")},
     _REFLECTION: "reader",
+    **{_T + m: "reader" for m in ("ListEvents", "GetPublishedPlan", "ListRecords", "GetRecord")},
+    **{_T + m: "planner" for m in ("AddEvent", "WithdrawEvent", "SetPublishedPlan", "Adopt")},
+    **{_G + m: "planner" for m in ("Propose", "ProposeStream")},
 }
 
 

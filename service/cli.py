@@ -5,6 +5,7 @@
                    [--max-flips N] [--flip-price P] [--seed S] [--server HOST:PORT]
     flipfix demo
     flipfix audit ...   (when flipfix.service.audit_cli is installed)
+    flipfix grow ...    (flipfix.service.grow_cli)
 
 ``repair`` runs in-process by default and prints the result JSON on stdout
 (progress on stderr); ``--server`` sends the same files through the service. A
@@ -104,6 +105,8 @@ def cmd_repair(args) -> int:
             out = _repair_local(args, docs, show)
     except InputError as err:
         raise UsageError(_blame(err, files)) from None
+    if out.get("conflict"):  # the hard constraints that cannot all hold, readable
+        print(f"flipfix: {out['conflict']['message']}", file=sys.stderr)
     json.dump(out, sys.stdout, indent=2)
     sys.stdout.write("\n")
     return 0
@@ -166,10 +169,10 @@ def cmd_serve(args) -> int:
         allow_insecure_public_bind=args.allow_insecure_public_bind,
         reflection=not args.no_reflection, token_file=args.token_file,
         quota_problems=args.quota_problems, quota_candidates=args.quota_candidates,
-        quota_mb=args.quota_mb)
+        quota_mb=args.quota_mb, dask=args.dask or "", max_records=args.max_records)
     try:
         srv = create_server(f"{args.host}:{args.port}", config)
-    except OSError as err:
+    except (OSError, InputError) as err:
         raise UsageError(str(err)) from None
     except InputError as err:
         raise UsageError(f"{err.field}: {err.message}") from None
@@ -230,7 +233,8 @@ def build_parser() -> argparse.ArgumentParser:
     s = sub.add_parser("serve", help="run the gRPC service")
     s.add_argument("--host", default="127.0.0.1")
     s.add_argument("--port", type=int, default=50051, help="0 picks a free port")
-    s.add_argument("--db", default="flipfix.sqlite3", help="SQLite database file")
+    s.add_argument("--db", default="flipfix.sqlite3",
+                   help="an SQLite database file, or a postgresql:// URL shared by replicas")
     s.add_argument("--workers", type=int, default=2, help="repair processes")
     s.add_argument("--queue", type=int, default=64,
                    help="repairs that may wait for a worker, and heavy calls for the gate")
@@ -258,7 +262,12 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--max-candidates", type=int, default=10_000)
     s.add_argument("--max-constraints", type=int, default=1_000)
     s.add_argument("--default-time-limit", type=_positive_float, default=5.0)
+    s.add_argument("--max-records", type=int, default=1000, metavar="N",
+                   help="run records kept per problem (the oldest go first)")
     s.add_argument("--grace", type=float, default=10.0, help="seconds in-flight calls get on SIGTERM")
+    s.add_argument("--dask", metavar="ADDRESS|local:N", default=None,
+                   help="run stress tests on a Dask cluster: a scheduler address "
+                        "(tcp://host:8786) or local:N worker processes started here")
     s.set_defaults(func=cmd_serve)
 
     r = sub.add_parser("repair", help="repair the candidates of PROBLEM under CONSTRAINTS")
@@ -288,6 +297,12 @@ def build_parser() -> argparse.ArgumentParser:
 
     token_cli.register(sub)
     audit_cli.register(sub)
+    from flipfix.service import grow_cli  # flipfix grow, in its own module
+
+    grow_cli.register(sub)
+    from flipfix.service import timeline_cli  # events, records, adoption: their own module
+
+    timeline_cli.register(sub)
     for name, p in sub.choices.items():
         if p.get_default("func") is None and name not in ("serve", "repair", "demo", "token"):
             p.set_defaults(func=audit_cli.run)

@@ -166,8 +166,12 @@ def test_a_public_address_needs_tls_and_tokens_or_the_explicit_option(tmp_path, 
 
 # ------------------------------------------------------------ tokens, roles
 def test_every_flipfix_method_has_a_role_and_unlisted_methods_are_admin_only():
-    methods = {f"/{SERVICE_NAME}/{m.name}"
-               for m in pb.DESCRIPTOR.services_by_name["Flipfix"].methods}
+    from flipfix.service.generated import grow_pb2, timeline_pb2
+
+    methods = {f"/{service.full_name}/{m.name}"
+               for module in (pb, grow_pb2, timeline_pb2)
+               for service in module.DESCRIPTOR.services_by_name.values()
+               for m in service.methods}
     assert methods <= set(auth.METHOD_ROLES), sorted(methods - set(auth.METHOD_ROLES))
     assert set(auth.METHOD_ROLES.values()) <= set(auth.ROLES)
 
