@@ -14,6 +14,9 @@
   retries elsewhere) instead of being queued behind the in-flight ones, and the server
   waits for the in-flight ones (at most the grace period) before it stops.
 
+* :class:`RequestGuard` -- refuses, before decoding, a request whose bytes alone put its
+  estimate over the whole memory budget, and turns undecodable bytes into INVALID_ARGUMENT.
+
 Health checks never pass through the gate, so they answer while uploads are converted.
 """
 
@@ -27,11 +30,12 @@ from dataclasses import dataclass
 
 import grpc
 
+from flipfix.repair.errors import InputError
 from flipfix.service import errors
-from flipfix.service.errors import QueueFullError
+from flipfix.service.errors import QueueFullError, status_for
 
-__all__ = ["AdmissionConfig", "HeavyGate", "DrainInterceptor", "HEALTH_PREFIX", "behaviour",
-           "replace_behaviour"]
+__all__ = ["AdmissionConfig", "HeavyGate", "DrainInterceptor", "RequestGuard", "HEALTH_PREFIX",
+           "behaviour", "replace_behaviour"]
 
 #: Method paths starting with this are health checks (always answered).
 HEALTH_PREFIX = "/grpc.health.v1.Health/"
@@ -214,26 +218,86 @@ class DrainInterceptor(grpc.ServerInterceptor):
         return replace_behaviour(handler, counted)
 
 
+class _Refused:
+    """What the guarded deserialiser returns instead of a request it will not decode."""
+
+    __slots__ = ("error",)
+
+    def __init__(self, error: Exception):
+        self.error = error
+
+
+class RequestGuard(grpc.ServerInterceptor):
+    """Looks at each request's bytes before they are decoded: a request whose estimated
+    memory (its bytes x the gate's factor) exceeds the gate's whole budget is refused
+    RESOURCE_EXHAUSTED without being decoded, and bytes that are not a valid message are
+    INVALID_ARGUMENT (``request: ...``) rather than the library's INTERNAL. Streaming
+    requests and health checks pass untouched."""
+
+    def __init__(self, gate: HeavyGate):
+        self.gate = gate
+
+    def intercept_service(self, continuation, handler_call_details):
+        handler = continuation(handler_call_details)
+        method = handler_call_details.method
+        if (handler is None or handler.request_streaming or handler.request_deserializer is None
+                or method.startswith(HEALTH_PREFIX)):
+            return handler
+        decode, inner, gate = handler.request_deserializer, behaviour(handler), self.gate
+        what = method.rsplit("/", 1)[-1]
+
+        def guarded_decode(raw: bytes):
+            need, cfg = gate.estimate(len(raw)), gate.config
+            if len(raw) >= cfg.light_bytes and need > cfg.memory_bytes:
+                return _Refused(QueueFullError(
+                    "request", f"{what}: estimated memory {need / MIB:.0f} MiB "
+                               f"({len(raw) / MIB:.1f} MiB of request x {cfg.memory_factor:g}) "
+                               f"exceeds the server's limit of {cfg.memory_bytes / MIB:.0f} MiB "
+                               "per call (serve --memory-mb); not decoded"))
+            try:
+                return decode(raw)
+            except Exception as err:  # noqa: BLE001 - any decoding failure is the caller's
+                return _Refused(InputError("request", f"not a valid {what} request "
+                                                      f"({type(err).__name__})"))
+
+        def refuse_or_run(request, context):
+            if isinstance(request, _Refused):
+                code, details = status_for(request.error)
+                context.abort(code, details)
+            return inner(request, context)
+
+        if handler.response_streaming:
+            def refuse_or_stream(request, context):
+                if isinstance(request, _Refused):
+                    code, details = status_for(request.error)
+                    context.abort(code, details)
+                yield from inner(request, context)
+            return replace_behaviour(handler, refuse_or_stream, decode=guarded_decode)
+        return replace_behaviour(handler, refuse_or_run, decode=guarded_decode)
+
+
 def behaviour(handler):
     """The function a method handler runs (whatever its kind)."""
     return (handler.unary_unary or handler.unary_stream or handler.stream_unary
             or handler.stream_stream)
 
 
-def replace_behaviour(handler, fn):
-    """``handler`` with its behaviour replaced by ``fn`` (same (de)serialisers and kind)."""
+def replace_behaviour(handler, fn, *, decode=None):
+    """``handler`` with its behaviour replaced by ``fn`` (same serialisers and kind; the
+    request deserialiser too unless ``decode`` is given)."""
+    decode = decode or handler.request_deserializer
     if handler.request_streaming and handler.response_streaming:
         return grpc.stream_stream_rpc_method_handler(
-            fn, request_deserializer=handler.request_deserializer,
+            fn, request_deserializer=decode,
             response_serializer=handler.response_serializer)
     if handler.request_streaming:
         return grpc.stream_unary_rpc_method_handler(
-            fn, request_deserializer=handler.request_deserializer,
+            fn, request_deserializer=decode,
             response_serializer=handler.response_serializer)
     if handler.response_streaming:
         return grpc.unary_stream_rpc_method_handler(
-            fn, request_deserializer=handler.request_deserializer,
+            fn, request_deserializer=decode,
             response_serializer=handler.response_serializer)
     return grpc.unary_unary_rpc_method_handler(
-        fn, request_deserializer=handler.request_deserializer,
+        fn, request_deserializer=decode,
         response_serializer=handler.response_serializer)

@@ -41,7 +41,7 @@ from flipfix.repair.model.candidates import CandidateSet
 from flipfix.repair.errors import InputError
 
 from flipfix.service import audit_jobs, upload_jobs
-from flipfix.service.admission import AdmissionConfig, DrainInterceptor, HeavyGate
+from flipfix.service.admission import AdmissionConfig, DrainInterceptor, HeavyGate, RequestGuard
 from flipfix.service.auth import AuthInterceptor, TokenFile
 from flipfix.service.auth import current as current_caller
 from flipfix.service import convert
@@ -197,14 +197,21 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         return convert.model_to_problem(model, field=field)
 
     def _upload(self, request, context):
-        """(Problem, stored JSON) of an uploaded ``request.model``: a large one is converted
-        in a pool worker (:mod:`flipfix.service.upload_jobs`), a small one here."""
-        if request.ByteSize() < self.gate.config.light_bytes:
-            problem = self._problem(request.model, "model")
-            return problem, None
+        """(Problem, stored JSON or None) of an uploaded ``request.model``: a large one is
+        converted in a pool worker (:mod:`flipfix.service.upload_jobs`), a small one here."""
+        if request.model.ByteSize() < self.gate.config.light_bytes:
+            return self._problem(request.model, "model"), None
+        return self._in_worker(request.model, "model", context)
+
+    def _converted(self, model: pb.ProblemModel, field: str, context):
+        """The Problem of ``model`` (an inline one), converted in a worker when large."""
+        if model.ByteSize() < self.gate.config.light_bytes:
+            return self._problem(model, field)
+        return self._in_worker(model, field, context)[0]
+
+    def _in_worker(self, model: pb.ProblemModel, field: str, context):
         job = self._submit_call(upload_jobs.model_to_stored,
-                                (request.model.SerializeToString(), self.limits, "model"), {},
-                                context)
+                                (model.SerializeToString(), self.limits, field), {}, context)
         return self._wait(job, context, math.inf)
 
     @translate_errors
@@ -266,7 +273,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
                                                                              list(request.ids)))
 
     # --------------------------------------------------------------- repair
-    def _library(self, request):
+    def _library(self, request, context):
         which = request.WhichOneof("library")
         if which == "problem":
             rev, problem, cands = self.store.library(
@@ -274,7 +281,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
                 all_revisions=request.all_revisions, max_candidates=self.config.max_candidates)
             return rev, problem, cands
         if which == "inline":
-            problem = self._problem(request.inline.model, "inline.model")
+            problem = self._converted(request.inline.model, "inline.model", context)
             self.limits.candidates(request.inline.candidates, "inline.candidates")
             ids, X, _ = convert.batch_to_arrays(problem, request.inline.candidates,
                                                 field="inline.candidates")
@@ -294,7 +301,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         with self._heavy(request, context, "Repair", request.problem):
             kwargs = convert.options_to_kwargs(request.options,
                                                default_time_limit=self.config.default_time_limit)
-            rev, problem, cands = self._library(request)
+            rev, problem, cands = self._library(request, context)
             used = self.timeline.used(request, problem, rev)  # published plan, events in force
             compiled = self._compiled(used.constraints, problem)
             budget = kwargs["time_limit"] = self._budget(kwargs["time_limit"], context)
@@ -702,7 +709,8 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
     server = grpc.server(futures.ThreadPoolExecutor(max_workers=threads,
                                                     thread_name_prefix="flipfix-rpc"),
                          options=options,
-                         interceptors=[drain] + ([AuthInterceptor(tokens)] if tokens else []))
+                         interceptors=[drain] + ([AuthInterceptor(tokens)] if tokens else [])
+                         + [RequestGuard(gate)])
     servicer = FlipfixServicer(store, pool, config, timeline, gate)
     pb_grpc.add_FlipfixServicer_to_server(servicer, server)
     grow_name = grow_service.register(servicer, server)

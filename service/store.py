@@ -321,7 +321,7 @@ class Store:
                 candidates: int = 0, size: int = 0) -> None:
         """Refuse (QuotaError, inside the write transaction: nothing is stored) a write that
         would take ``tenant`` over a quota."""
-        if self.quotas is None:
+        if self.quotas is None or not self.quotas.any:
             return
         self.quotas.check(tenant, self._usage(db, tenant), problems=problems,
                           candidates=candidates, size=size)

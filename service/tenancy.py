@@ -31,6 +31,11 @@ class Quotas:
     candidates: int | None = None
     bytes: int | None = None
 
+    @property
+    def any(self) -> bool:
+        """Whether any quota is set (else writes skip counting the tenant's usage)."""
+        return any(v is not None for v in (self.problems, self.candidates, self.bytes))
+
     def check(self, tenant: str, usage: dict, *, problems: int = 0, candidates: int = 0,
               size: int = 0) -> None:
         """Raise :class:`QuotaError` when adding to ``usage`` (the store's counts) goes over."""

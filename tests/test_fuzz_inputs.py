@@ -29,6 +29,8 @@ from flipfix.service.generated import flipfix_pb2 as pb
 from flipfix.service.generated import flipfix_pb2_grpc as pb_grpc
 from flipfix.service.server import create_server
 
+from conftest import rpc_error
+
 SMALL = {"vartype": "BINARY",
          "linear": {"a": -1.0, "b": -1.0, "c": -1.0, "d": 0.5, "e": -0.5},
          "quadratic": [["a", "b", 2.0], ["b", "c", 2.0], ["c", "d", -1.5], ["d", "e", 1.0]],
@@ -446,3 +448,56 @@ def test_cli_option_errors_are_one_line():
     assert out.returncode == 2
     assert out.stderr.strip().splitlines() == [
         "flipfix repair: argument --time-limit: must be > 0, got -1"]
+
+
+# ------------------------------------------------------------ raw wire bytes
+UNARY = [m.name for m in pb.DESCRIPTOR.services_by_name["Flipfix"].methods
+         if not m.server_streaming]
+
+
+@pytest.fixture(scope="module")
+def raw_server(tmp_path_factory):
+    db = tmp_path_factory.mktemp("raw") / "flipfix.sqlite3"
+    srv = create_server("127.0.0.1:0", db_path=str(db), workers=1, queue_size=2, warm=False,
+                        max_time_limit=1.0, memory_mb=1.0)
+    ch = grpc.insecure_channel(srv.address)
+    yield srv, ch
+    ch.close()
+    srv.shutdown(grace=0.5)
+
+
+def _raw_call(ch, method: str, raw: bytes):
+    call = ch.unary_unary(f"/flipfix.v1.Flipfix/{method}", request_serializer=lambda b: b,
+                          response_deserializer=lambda b: b)
+    return call(raw, timeout=5)
+
+
+def test_undecodable_bytes_are_invalid_argument_not_internal(raw_server):
+    _srv, ch = raw_server
+    # a length-delimited field (tag 1, wire type 2) claiming more bytes than follow, and a
+    # truncated varint: no protobuf decoder accepts these
+    for raw in (b"\x0a\x64abc", b"\x08\xff\xff", b"\x0a\x02\xff"):
+        for method in UNARY:
+            e = rpc_error(lambda: _raw_call(ch, method, raw))
+            assert e.code() == grpc.StatusCode.INVALID_ARGUMENT, (method, raw, e.details())
+            assert e.details().startswith("request: not a valid"), e.details()
+
+
+def test_oversized_request_is_refused_before_decoding(raw_server):
+    _srv, ch = raw_server
+    # 1 MiB budget / 25 per byte: 100 KB of bytes (not even valid protobuf) is refused unread
+    e = rpc_error(lambda: _raw_call(ch, "CreateProblem", b"\x0a" * 100_000))
+    assert e.code() == grpc.StatusCode.RESOURCE_EXHAUSTED
+    assert "not decoded" in e.details() and "--memory-mb" in e.details()
+
+
+@settings(max_examples=80, deadline=None, derandomize=True,
+          suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])
+@given(method=st.sampled_from(UNARY), raw=st.binary(max_size=64))
+def test_random_wire_bytes_never_give_internal_or_unknown(raw_server, method, raw):
+    _srv, ch = raw_server
+    try:
+        _raw_call(ch, method, raw)
+    except grpc.RpcError as err:
+        assert err.code() not in (grpc.StatusCode.INTERNAL, grpc.StatusCode.UNKNOWN), (
+            method, raw, err.code(), err.details())

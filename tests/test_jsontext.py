@@ -45,7 +45,7 @@ def test_depth_is_refused_before_decoding():
 
 def test_duplicate_keys_name_their_place():
     e = _err('{"linear": {"a": 1, "b": 2, "a": 3}}', field="problem")
-    assert (e.field, e.message) == ("problem.linear.a", "key given twice in one object")
+    assert (e.field, e.message) == ("problem.linear['a']", "key given twice in one object")
     e = _err('[{"id": 1}, {"id": 2, "id": 3}]', field="candidates")
     assert e.field == "candidates[1].id"
     assert _err('{"x y": 1, "x y": 2}').field == "doc['x y']"
@@ -53,9 +53,11 @@ def test_duplicate_keys_name_their_place():
 
 def test_huge_integers_and_constants_name_their_place():
     e = _err('{"linear": {"a": ' + "9" * 5000 + "}}", field="problem")
-    assert e.field == "problem.linear.a" and "5000 digits" in e.message
+    assert e.field == "problem.linear['a']" and "5000 digits" in e.message
     assert _err('[1, -' + "1" * 21 + "]").field == "doc[1]"
     assert _err('{"a": [NaN]}').field == "doc.a[0]"
+    e = _err('[{"id": "k", "assignment": {"x3": 1, "x3": 0}}]', field="candidates")
+    assert e.field == "candidates[0].assignment['x3']"  # as the documents name it
     assert "Infinity" in _err('{"a": -Infinity}').message
 
 

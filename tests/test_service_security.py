@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import datetime
 import json
+import os
 import signal
 import sqlite3
 import subprocess
@@ -94,8 +95,12 @@ def pki(tmp_path_factory):
 
 
 def _health(client: FlipfixClient):
+    """A health check's status: the call got through (TLS handshake, no token needed)."""
     return health_pb2_grpc.HealthStub(client.channel).Check(
         health_pb2.HealthCheckRequest(service=SERVICE_NAME), timeout=10)
+
+
+ANSWERED = (health_pb2.HealthCheckResponse.SERVING, health_pb2.HealthCheckResponse.NOT_SERVING)
 
 
 # --------------------------------------------------------------------- TLS
@@ -104,7 +109,7 @@ def test_tls_handshake_with_the_right_ca_and_not_with_a_wrong_one(tmp_path, pki)
                        tls_cert=pki["server_cert"], tls_key=pki["server_key"]) as srv:
         target = f"localhost:{srv.port}"
         with FlipfixClient(target, ca=pki["ca"], timeout=10) as fx:
-            assert _health(fx).status == health_pb2.HealthCheckResponse.SERVING
+            assert _health(fx).status in ANSWERED
             fx.create_problem("p", SMALL)
             assert [i.name for i in fx.list_problems()] == ["p"]
         with FlipfixClient(target, ca=pki["other_ca"], timeout=5) as fx:
@@ -120,7 +125,7 @@ def test_mutual_tls_needs_a_client_certificate_from_the_client_ca(tmp_path, pki)
         target = f"localhost:{srv.port}"
         with FlipfixClient(target, ca=pki["ca"], cert=pki["client_cert"],
                            key=pki["client_key"], timeout=10) as fx:
-            assert _health(fx).status == health_pb2.HealthCheckResponse.SERVING
+            assert _health(fx).status in ANSWERED
         with FlipfixClient(target, ca=pki["ca"], timeout=5) as fx:  # no client certificate
             assert rpc_error(lambda: _health(fx)).code() == grpc.StatusCode.UNAVAILABLE
         with FlipfixClient(target, ca=pki["ca"], cert=pki["rogue_cert"], key=pki["rogue_key"],
@@ -233,7 +238,7 @@ def test_tokens_and_roles(secured, tokens):
     for (tenant, role), token in ((k, v) for k, v in tokens.items() if k != "path"):
         assert token not in text and auth.token_digest(token) in text
     with _client(secured) as fx:  # no token: health answers, nothing else
-        assert _health(fx).status == health_pb2.HealthCheckResponse.SERVING
+        assert _health(fx).status in ANSWERED
         e = rpc_error(lambda: fx.list_problems())
         assert e.code() == grpc.StatusCode.UNAUTHENTICATED
     with _client(secured, token="not-a-token") as fx:
@@ -464,3 +469,35 @@ def test_each_tenant_has_its_own_timeline(secured, tokens):
     finally:
         for fx in clients.values():
             fx.close()
+
+
+def test_cli_repair_over_tls_with_a_token(tmp_path, pki):
+    """`flipfix repair --server` with --ca and --token-file (and $FLIPFIX_TOKEN) end to end."""
+    path = str(tmp_path / "tokens.jsonl")
+    token = make_token(path, tenant="north", role="planner")
+    files = {}
+    for name, doc in (("problem", SMALL), ("candidates", CANDS),
+                      ("constraints", [{"type": "fix", "values": {"a": 0}}])):
+        files[name] = tmp_path / f"{name}.json"
+        files[name].write_text(json.dumps(doc))
+    (tmp_path / "token").write_text(token + "\n")
+    with create_server("127.0.0.1:0", db_path=str(tmp_path / "c.sqlite3"), warm=False,
+                       workers=1, tls_cert=pki["server_cert"], tls_key=pki["server_key"],
+                       token_file=path) as srv:
+        base = [sys.executable, "-m", "flipfix.service.cli", "repair", str(files["problem"]),
+                str(files["candidates"]), str(files["constraints"]), "--quiet",
+                "--time-limit", "0.5", "--server", f"localhost:{srv.port}", "--ca", pki["ca"]]
+        env = {k: v for k, v in os.environ.items() if k != "FLIPFIX_TOKEN"}
+        out = subprocess.run(base + ["--token-file", str(tmp_path / "token")], env=env,
+                             capture_output=True, text=True, timeout=120)
+        assert out.returncode == 0, out.stderr
+        best = json.loads(out.stdout)["best"]
+        assert best["assignment"]["a"] == 0 and best["feasible"]
+        out = subprocess.run(base, env={**env, "FLIPFIX_TOKEN": token}, capture_output=True,
+                             text=True, timeout=120)
+        assert out.returncode == 0, out.stderr
+        out = subprocess.run(base, env=env, capture_output=True, text=True, timeout=120)
+        assert out.returncode == 2
+        assert out.stderr.strip().splitlines() == [
+            f"flipfix: server localhost:{srv.port}: UNAUTHENTICATED: authorization: send "
+            "'authorization: Bearer <token>' with a token the server knows"]

@@ -63,27 +63,33 @@ def _depth(raw: bytes) -> tuple[int, int]:
     return int(level[k]), k
 
 
-def _place(field: str, key: Any) -> str:
+def _place(field: str, key: Any, *, mapping: bool) -> str:
+    """``field`` then ``key``: ``[k]`` for a list index, ``['key']`` for a key of a mapping
+    (an object that is itself an object's value: labels, as in ``problem.linear['x3']``),
+    ``.key`` for a document's own keys (the root's and a list element's)."""
     if isinstance(key, int):
         return f"{field}[{key}]"
-    if re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]*", key):
+    if not mapping and re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]*", key):
         return f"{field}.{key}"
     return f"{field}[{key!r}]"
 
 
 def _find(value: Any, field: str) -> None:
     """Raise an InputError at the first refused value or duplicated key (depth-first)."""
-    stack = [(value, field)]
+    stack = [(value, field, False)]
     while stack:
-        v, f = stack.pop()
+        v, f, mapping = stack.pop()
         if isinstance(v, _Bad):
             raise InputError(f, v.message)
         if isinstance(v, _Object):
             if v.duplicate is not None:
-                raise InputError(_place(f, v.duplicate), "key given twice in one object")
-            stack.extend((item, _place(f, k)) for k, item in reversed(list(v.items())))
+                raise InputError(_place(f, v.duplicate, mapping=mapping),
+                                 "key given twice in one object")
+            stack.extend((item, _place(f, k, mapping=mapping), True)
+                         for k, item in reversed(list(v.items())))
         elif isinstance(v, list):
-            stack.extend((item, _place(f, k)) for k, item in reversed(list(enumerate(v))))
+            stack.extend((item, _place(f, k, mapping=False), False)
+                         for k, item in reversed(list(enumerate(v))))
 
 
 def loads(text: str | bytes, *, field: str, max_depth: int = MAX_DEPTH,
