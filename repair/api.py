@@ -25,13 +25,11 @@ __all__ = ["repair", "warm_up", "check_options", "result_seconds", "search_deadl
 
 def warm_up() -> None:
     """Load (or, on a machine's first run, compile) every search kernel once per process:
-    greedy, the scorer and annealing. Set-up, never counted against a budget."""
-    from flipfix.repair.kernels import scores
-    from flipfix.repair.solvers import anneal, greedy
+    greedy, the scorer and annealing. Set-up, never counted against a budget; a cold
+    compile is announced on stderr first (:mod:`flipfix.repair.kernels.readiness`)."""
+    from flipfix.repair.kernels import readiness
 
-    greedy.warm_up()
-    scores.warm_up()
-    anneal.warm_up()
+    readiness.warm_up()
 
 
 def check_options(*, method: Any, time_limit: Any, max_flips: Any, flip_price: Any, seed: Any,

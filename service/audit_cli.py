@@ -496,6 +496,9 @@ def run(args: argparse.Namespace, *, out: TextIO | None = None, err: TextIO | No
         print("flipfix audit: error: candidates: a candidates JSON document is needed "
               "(or --server HOST:PORT with a stored problem)", file=err)
         return 2
+    from flipfix.repair.kernels.readiness import warm_up
+
+    warm_up()  # before the stress test's clock: a first run compiles the kernels (announced)
     try:
         problem = parse_problem(_load(args.problem, "problem"))
         doc = _load(args.candidates, "candidates")
@@ -570,6 +573,7 @@ def _run_remote(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     budget = args.time_limit + args.pareto_time
     with FlipfixClient(args.server, timeout=2 * budget + 60.0) as fx:
         try:
+            fx.wait_ready(notice=lambda m: print(m, file=sys.stderr, flush=True))
             _info, problem = fx.get_problem(args.problem)
             if problem.decisions and all(getattr(args, o) is None for o in _PART_OPTIONS.values()):
                 print("flipfix audit: error: --server: the problem declares decisions, whose "

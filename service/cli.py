@@ -110,6 +110,9 @@ def _repair_local(args, docs: dict, show: _Progress) -> dict:
     from flipfix.repair.documents import forms as documents
     from flipfix.repair import repair
 
+    from flipfix.repair.kernels.readiness import warm_up
+
+    warm_up()  # before any clock: a first run compiles the kernels (announced on stderr)
     problem = documents.parse_problem(docs["problem"])
     candidates = documents.parse_candidates(docs["candidates"], problem)
     constraints = documents.parse_constraints(docs["constraints"], problem)
@@ -130,6 +133,7 @@ def _repair_remote(args, docs: dict, show: _Progress) -> dict:
     timeout = None if budget is None else budget * 2 + 30.0
     with FlipfixClient(args.server, timeout=timeout) as fx:
         try:
+            fx.wait_ready(notice=lambda m: print(m, file=sys.stderr, flush=True))
             return fx.repair(docs["problem"], docs["constraints"], candidates=docs["candidates"],
                              **_repair_options(args),
                              on_progress=lambda p: show(p.done, p.total,
@@ -158,8 +162,10 @@ def cmd_serve(args) -> int:
         srv = create_server(f"{args.host}:{args.port}", config)
     except OSError as err:
         raise UsageError(str(err)) from None
-    print(f"flipfix: serving on {args.host}:{srv.port} (db {args.db}, {args.workers} worker(s))",
-          file=sys.stderr, flush=True)
+    print(f"flipfix: serving on {args.host}:{srv.port} (db {args.db}, {args.workers} worker(s)); "
+          f"health NOT_SERVING until the search kernels are loaded", file=sys.stderr, flush=True)
+    srv.pool.when_ready(lambda: print("flipfix: ready (health SERVING)", file=sys.stderr,
+                                      flush=True))
 
     def stop(signum, _frame):
         print(f"flipfix: signal {signum}: shutting down (grace {args.grace}s)", file=sys.stderr,

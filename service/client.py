@@ -105,6 +105,33 @@ class FlipfixClient:
     def close(self) -> None:
         self.channel.close()
 
+    def wait_ready(self, timeout: float | None = 300.0, *,
+                   notice: Callable[[str], None] | None = None) -> None:
+        """Block until the server's health is SERVING: a freshly started server reports
+        NOT_SERVING while its workers load (on a machine's first run: compile) the search
+        kernels. Event-driven (the standard ``grpc.health.v1.Health/Watch`` stream; waits for
+        the server to come up). ``notice(message)`` is called once if the server is not
+        ready at first. Raises ``TimeoutError`` after ``timeout`` seconds."""
+        from grpc_health.v1 import health_pb2, health_pb2_grpc
+
+        stream = health_pb2_grpc.HealthStub(self.channel).Watch(
+            health_pb2.HealthCheckRequest(service=""), timeout=timeout, wait_for_ready=True)
+        try:
+            for reply in stream:
+                if reply.status == health_pb2.HealthCheckResponse.SERVING:
+                    return
+                if notice is not None:
+                    notice(f"flipfix: waiting for {self.target}: the server is loading its "
+                           f"search kernels (a first run compiles them, about a minute)")
+                    notice = None
+        except grpc.RpcError as err:
+            if err.code() == grpc.StatusCode.DEADLINE_EXCEEDED:
+                raise TimeoutError(f"{self.target} was not ready within {timeout} s") from None
+            raise
+        finally:
+            stream.cancel()
+        raise TimeoutError(f"{self.target} ended the health stream before it was ready")
+
     def __enter__(self) -> "FlipfixClient":
         return self
 

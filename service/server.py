@@ -524,7 +524,10 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
         store.close()
         raise OSError(f"cannot bind {address}")
     server.start()
+    # NOT_SERVING until the workers' kernels are warm (a first run compiles them)
     for name in ("", SERVICE_NAME):
-        health_servicer.set(name, health_pb2.HealthCheckResponse.SERVING)
+        health_servicer.set(name, health_pb2.HealthCheckResponse.NOT_SERVING)
+    pool.when_ready(lambda: [health_servicer.set(name, health_pb2.HealthCheckResponse.SERVING)
+                             for name in ("", SERVICE_NAME)])
     log.info("flipfix listening on port %d (db %s)", port, Path(config.db_path))
     return RunningServer(server, port, servicer, health_servicer, pool, store)
