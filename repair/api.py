@@ -207,10 +207,11 @@ def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, 
             progress(kw)
 
     if compiled.fix_conflicts:
-        label, name = compiled.fix_conflicts[0]
+        label, first, second = compiled.fix_conflicts[0]
         return _build(problem, candidates, compiled, scorer, [], price, method, seed, t0,
                       status="infeasible", **common,
-                      message=f"variable {label!r} is fixed to both values ({name})")
+                      message=f"{first!r} and {second!r} fix variable {label!r} to different "
+                              f"values")
     # the front's attempts are not known yet: those of greedy plus a round of kicks
     reserve = result_seconds(K, problem.n, attempts=2 * K if pareto else 0,
                              decisions=len(problem.decisions))
@@ -281,7 +282,9 @@ def _build(problem, candidates, compiled, scorer, attempts, price, method, seed,
         audit.append(AuditRow(ids[k], c0[k], v0[k] == 0.0, c1[k], o1[k], f1[k], v1[k] == 0.0,
                               v1[k], attempts[a].method, secs[k], chg[k], issues.get(k, [])))
     ev = compiled.evaluate(xb[None, :])
-    violations = {name: float(v[0]) for name, v in ev.violations.items()}
+    # a decision's validity row is listed only when the answer breaks it
+    violations = {name: float(v[0]) for name, v in ev.violations.items()
+                  if v[0] or name not in compiled.encoding_names}
     if max_flips is not None:
         violations["max_flips"] = float(max(0, int(flips[b]) - max_flips))
     changes = _changes(problem, X0[bk], xb)

@@ -28,6 +28,7 @@ __all__ = ["main", "build_parser"]
 
 EXIT_USAGE = 2  # a bad file or option (argparse uses 2 too)
 EXIT_FAILURE = 1
+EXIT_NOT_FEASIBLE = 3  # with --require-feasible: the answer breaks a hard constraint
 
 
 class UsageError(Exception):
@@ -103,6 +104,13 @@ def cmd_repair(args) -> int:
         raise UsageError(_blame(err, files)) from None
     json.dump(out, sys.stdout, indent=2)
     sys.stdout.write("\n")
+    if args.require_feasible and not out["best"]["feasible"]:
+        broken = [k for k, v in out["best"].get("violations", {}).items() if v]
+        print(f"flipfix: the answer is not feasible (status {out['status']}"
+              + (f"; violated: {', '.join(broken)}" if broken else "")
+              + (f"; {out['message']}" if out.get("message") else "") + ")",
+              file=sys.stderr)
+        return EXIT_NOT_FEASIBLE
     return 0
 
 
@@ -229,6 +237,9 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--pareto", action="store_true", help="also report the (cost, flips) front")
     r.add_argument("--server", metavar="HOST:PORT", help="repair through a running service")
     r.add_argument("--quiet", action="store_true", help="no progress on stderr")
+    r.add_argument("--require-feasible", action="store_true",
+                   help=f"exit with code {EXIT_NOT_FEASIBLE} when the answer is not feasible "
+                        "(the result JSON is printed all the same)")
     r.set_defaults(func=cmd_repair)
 
     d = sub.add_parser("demo", help="start a server, load a library, repair a late event")

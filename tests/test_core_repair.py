@@ -210,7 +210,7 @@ def test_unsatisfiable_constraints_are_a_status_not_an_error():
     res = repair(p, cands, cs, method="greedy", time_limit=1.0)
     assert res.status == "no_feasible_found" and res.best.violation == pytest.approx(1.0)
     clash = repair(p, cands, [FixVariables({0: 1}), FixVariables({0: 0})])
-    assert clash.status == "infeasible" and "fixed to both" in clash.message
+    assert clash.status == "infeasible" and "fix variable 0 to different values" in clash.message
 
 
 @pytest.mark.parametrize("method", ["greedy", "cpsat", "portfolio"])
