@@ -37,10 +37,19 @@ class UsageError(Exception):
 
 # ------------------------------------------------------------------ helpers
 def _load_json(path: str, what: str):
+    """A JSON document; for the problem also a dimod ConstrainedQuadraticModel file."""
     try:
-        text = Path(path).read_text(encoding="utf-8")
+        raw = Path(path).read_bytes()
     except OSError as err:
         raise UsageError(f"{path}: cannot read the {what} file: {err.strerror or err}") from None
+    from flipfix.repair.documents import dimod_forms
+
+    if what == "problem" and raw.startswith(dimod_forms.CQM_MAGIC):
+        return dimod_forms.read_cqm_file(raw)
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as err:
+        raise UsageError(f"{path}: not UTF-8 text ({err.reason} at byte {err.start})") from None
     try:
         return json.loads(text)
     except json.JSONDecodeError as err:
@@ -102,7 +111,11 @@ def cmd_repair(args) -> int:
             out = _repair_local(args, docs, show)
     except InputError as err:
         raise UsageError(_blame(err, files)) from None
-    json.dump(out, sys.stdout, indent=2)
+    if args.output == "sampleset":  # dimod's serialised SampleSet of the answer
+        json.dump(out.pop("_sampleset"), sys.stdout)
+    else:
+        out.pop("_sampleset", None)
+        json.dump(out, sys.stdout, indent=2)
     sys.stdout.write("\n")
     if args.require_feasible and not out["best"]["feasible"]:
         broken = [k for k, v in out["best"].get("violations", {}).items() if v]
@@ -115,19 +128,22 @@ def cmd_repair(args) -> int:
 
 
 def _repair_local(args, docs: dict, show: _Progress) -> dict:
-    from flipfix.repair.documents import forms as documents
+    from flipfix.repair.documents import dimod_forms, forms as documents
     from flipfix.repair import repair
 
     from flipfix.repair.kernels.readiness import warm_up
 
     warm_up()  # before any clock: a first run compiles the kernels (announced on stderr)
-    problem = documents.parse_problem(docs["problem"])
-    candidates = documents.parse_candidates(docs["candidates"], problem)
-    constraints = documents.parse_constraints(docs["constraints"], problem)
+    problem, rows = dimod_forms.read_problem(docs["problem"])
+    candidates = dimod_forms.read_candidates(docs["candidates"], problem)
+    constraints = rows + documents.parse_constraints(docs["constraints"], problem)
     res = repair(problem, candidates, constraints, **_repair_options(args),
                  progress=lambda d: show(d.get("done"), d.get("total"), d.get("best_cost"),
                                          d.get("phase", "")))
-    return res.to_dict()
+    out = res.to_dict()
+    if args.output == "sampleset":
+        out["_sampleset"] = dimod_forms.to_sampleset(out, problem).to_serializable()
+    return out
 
 
 def _repair_remote(args, docs: dict, show: _Progress) -> dict:
@@ -142,11 +158,15 @@ def _repair_remote(args, docs: dict, show: _Progress) -> dict:
     with FlipfixClient(args.server, timeout=timeout) as fx:
         try:
             fx.wait_ready(notice=lambda m: print(m, file=sys.stderr, flush=True))
-            return fx.repair(docs["problem"], docs["constraints"], candidates=docs["candidates"],
-                             **_repair_options(args),
-                             on_progress=lambda p: show(p.done, p.total,
-                                                        p.best_cost if p.HasField("best_cost") else None,
-                                                        p.phase))
+            call = fx.repair_sampleset if args.output == "sampleset" else fx.repair
+            got = call(docs["problem"], docs["constraints"], candidates=docs["candidates"],
+                       **_repair_options(args),
+                       on_progress=lambda p: show(p.done, p.total,
+                                                  p.best_cost if p.HasField("best_cost") else None,
+                                                  p.phase))
+            if args.output == "sampleset":
+                return {**got[1], "_sampleset": got[0].to_serializable()}
+            return got
         except grpc.RpcError as err:
             code = err.code()
             if code == grpc.StatusCode.INVALID_ARGUMENT:
@@ -237,6 +257,9 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--pareto", action="store_true", help="also report the (cost, flips) front")
     r.add_argument("--server", metavar="HOST:PORT", help="repair through a running service")
     r.add_argument("--quiet", action="store_true", help="no progress on stderr")
+    r.add_argument("--output", choices=("result", "sampleset"), default="result",
+                   help="stdout: the result JSON (result), or the answer as dimod's serialised "
+                        "SampleSet JSON (sampleset)")
     r.add_argument("--require-feasible", action="store_true",
                    help=f"exit with code {EXIT_NOT_FEASIBLE} when the answer is not feasible "
                         "(the result JSON is printed all the same)")

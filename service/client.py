@@ -30,7 +30,8 @@ from typing import Any, Callable, Iterable, Mapping, Sequence
 import grpc
 import numpy as np
 
-from flipfix.repair.documents import forms as documents
+from flipfix.repair.documents import dimod_forms, forms as documents
+from flipfix.repair.errors import InputError
 from flipfix.repair.model.candidates import CandidateSet
 from flipfix.repair.model.problem import Problem
 
@@ -141,6 +142,16 @@ class FlipfixClient:
     # ------------------------------------------------------------ conversion
     @staticmethod
     def _model(model: Any) -> tuple[pb.ProblemModel, Problem]:
+        model = dimod_forms.as_native(model, "model")  # dimod's serialised BQM
+        if dimod_forms.is_cqm(model):
+            problem, rows = dimod_forms.from_cqm(model, field="model")
+            if rows:
+                raise InputError("model", f"the ConstrainedQuadraticModel has linear "
+                                          f"constraints ({', '.join(c.name for c in rows)}), "
+                                          f"which a stored problem cannot hold: repair it "
+                                          f"inline (repair(cqm, ..., candidates=...)), or store "
+                                          f"from_cqm(cqm)[0] and pass the rows with each repair")
+            return convert.problem_to_model(problem), problem
         if isinstance(model, Mapping):  # keep the document's own terms (exact); parsed once
             problem = documents.parse_problem(model)
             return convert.doc_to_model(model, problem=problem), problem
@@ -151,7 +162,9 @@ class FlipfixClient:
     def _candidates(problem: Problem, candidates: Any, ids: Sequence[str] | None = None
                     ) -> pb.CandidateBatch:
         """A SampleSet, CandidateSet, numpy array (K, n) in the problem's vartype (columns in
-        label order) or candidates JSON list -> one packed CandidateBatch."""
+        label order), candidates JSON list or dimod's serialised SampleSet -> one packed
+        CandidateBatch."""
+        candidates = dimod_forms.as_native(candidates, "candidates")
         if not isinstance(candidates, (CandidateSet, np.ndarray, pb.CandidateBatch)) and \
                 type(candidates).__name__ != "SampleSet":
             candidates = list(candidates)
@@ -263,32 +276,48 @@ class FlipfixClient:
             _info, rev, dom = self._get_problem(problem)
             req = pb.RepairRequest(problem=problem, candidate_ids=list(candidate_ids),
                                    all_revisions=all_revisions)
+            rows: list = []
         else:
             if candidates is None:
                 raise ValueError("an inline repair needs candidates")
-            m, dom = self._model(problem)
+            if dimod_forms.is_cqm(problem):  # its linear constraints go first, as hard rows
+                dom, rows = dimod_forms.from_cqm(problem, field="model")
+                m = convert.problem_to_model(dom)
+            else:
+                (m, dom), rows = self._model(problem), []
             rev = 0
             req = pb.RepairRequest(inline=pb.InlineLibrary(
                 model=m, candidates=self._candidates(dom, candidates)))
-        req.constraints.extend(self._constraints(dom, constraints))
+        req.constraints.extend(self._constraints(dom, [*rows, *(constraints or [])]))
         req.options.CopyFrom(convert.kwargs_to_options(**options))
         return req, dom, rev
-
-    def _reply_dict(self, reply: pb.RepairReply, problem: str | Any, dom: Problem, rev: int) -> dict:
-        if isinstance(problem, str) and reply.revision != rev:  # replaced meanwhile
-            dom = self._get_problem(problem, reply.revision)[2]
-        return convert.reply_to_dict(reply, dom)
 
     def repair(self, problem: str | Any, constraints: Iterable[Any] = (), *,
                timeout: float | None = None,
                on_progress: Callable[[pb.RepairProgress], None] | None = None, **kwargs) -> dict:
         """Repair and return the result dict; ``on_progress`` switches to the streaming RPC."""
+        return self._repair(problem, constraints, timeout, on_progress, kwargs)[0]
+
+    def repair_sampleset(self, problem: str | Any, constraints: Iterable[Any] = (), *,
+                         timeout: float | None = None,
+                         on_progress: Callable[[pb.RepairProgress], None] | None = None,
+                         **kwargs) -> tuple[Any, dict]:
+        """:meth:`repair`, with the answer also as a one-row ``dimod.SampleSet``
+        (:func:`flipfix.repair.documents.dimod_forms.to_sampleset`): (sampleset, result dict)."""
+        out, dom = self._repair(problem, constraints, timeout, on_progress, kwargs)
+        return dimod_forms.to_sampleset(out, dom), out
+
+    def _repair(self, problem, constraints, timeout, on_progress, kwargs) -> tuple[dict, Problem]:
+        """(the result dict, the model its values refer to)."""
         req, dom, rev = self._repair_request(problem, constraints, **kwargs)
         timeout = timeout if timeout is not None else self.timeout
         if on_progress is None:
-            return self._reply_dict(self.stub.Repair(req, timeout=timeout), problem, dom, rev)
-        reply = _last_result(self.stub.RepairStream(req, timeout=timeout), on_progress)
-        return self._reply_dict(reply, problem, dom, rev)
+            reply = self.stub.Repair(req, timeout=timeout)
+        else:
+            reply = _last_result(self.stub.RepairStream(req, timeout=timeout), on_progress)
+        if isinstance(problem, str) and reply.revision != rev:  # replaced meanwhile
+            dom = self._get_problem(problem, reply.revision)[2]
+        return convert.reply_to_dict(reply, dom), dom
 
     # ----------------------------------------------------------------- audit
     @staticmethod
