@@ -89,6 +89,7 @@ def register(subparsers) -> argparse.ArgumentParser:
     p.add_argument("--json", default=None, help="write the full audit to this JSON file")
     p.add_argument("--server", metavar="HOST:PORT", default=None,
                    help="audit a problem stored in a running flipfix service")
+    p.add_argument("--quiet", action="store_true", help="no progress on stderr")
     p.add_argument("--commit", action="store_true",
                    help="with --server and --keep M: keep only the chosen candidates in the store")
     p.set_defaults(func=run)
@@ -121,6 +122,8 @@ def audit(problem, candidates, family=None, *, scenarios: int, seed: int, method
 
     if family is None:
         family = default_family(problem)
+    if progress is not None:
+        progress({"phase": "robustness"})
     prof = robustness_profile(problem, candidates, epsilon=epsilon)
     stress = stress_test(problem, candidates, family, scenarios=scenarios, seed=seed, method=method,
                          time_limit=time_limit, epsilon=epsilon, cancel=cancel, progress=progress)
@@ -129,6 +132,8 @@ def audit(problem, candidates, family=None, *, scenarios: int, seed: int, method
         pareto_constraints, pareto_what = sc.constraints, f"scenario 0: {sc.description}"
     else:
         pareto_what = "given constraints"
+    if progress is not None:
+        progress({"phase": "pareto"})
     front = cost_flip_front(problem, candidates, pareto_constraints, methods=tuple(pareto_methods),
                             time_limit=pareto_time, seed=seed, cancel=cancel)
     cur = None
@@ -148,6 +153,8 @@ def audit_remote(client, name: str, family, *, scenarios: int, seed: int, method
                  pareto_time: float = 2.0, progress=None) -> dict:
     """:func:`audit` through a running service (``client``: :class:`flipfix.service.client.FlipfixClient`);
     the library is the stored problem ``name`` (candidates of its current revision).
+    ``progress`` gets a dict ``{"phase"}`` at each stage and the stress test's progress
+    messages (:class:`flipfix.service.progress.Progress` takes both).
 
     The service's ``ScenarioFamily`` message has no decision-level parts yet: a family
     with ``unavailable_values`` or ``must_change`` is refused here (InputError naming the
@@ -160,11 +167,15 @@ def audit_remote(client, name: str, family, *, scenarios: int, seed: int, method
             raise InputError(f"family.{part}", "decision-level scenarios are not in the "
                                                "service's StressTest yet; audit in-process "
                                                "(without --server)")
+    if progress is not None:
+        progress({"phase": "robustness"})
     prof = client.robustness(name, epsilon=epsilon)
     opts = dict(scenarios=scenarios, seed=seed, method=method, time_limit=time_limit,
                 epsilon=epsilon)
     cur, kept_note = None, None
     if keep is not None:
+        if progress is not None:
+            progress({"phase": "stress + curation"})
         out = client.curate(name, family, keep, keep=commit, **opts)
         stress, cur = out["stress"], out["curation"]
         kept_note = out["message"] + (f"; removed: {', '.join(out['removed_ids'])}"
@@ -185,6 +196,8 @@ def audit_remote(client, name: str, family, *, scenarios: int, seed: int, method
         pareto_constraints, pareto_what = sc.constraints, f"scenario 0: {sc.description}"
     else:
         pareto_what = "given constraints"
+    if progress is not None:
+        progress({"phase": "pareto"})
     got = client.pareto_front(name, pareto_constraints, methods=tuple(pareto_methods),
                               time_limit=pareto_time, seed=seed, cheapest_within_flips=5,
                               fewest_flips_within_percent=1.0)
@@ -508,16 +521,27 @@ def run(args: argparse.Namespace, *, out: TextIO | None = None, err: TextIO | No
         cons = _pareto_constraints(args, problem)
         family = _family_of(args, problem)
         methods = _pareto_methods(args)
-        report = audit(problem, candidates, family, scenarios=args.scenarios, seed=args.seed,
-                       method=args.method, time_limit=args.time_limit, epsilon=args.epsilon,
-                       keep=args.keep, pareto_constraints=cons, pareto_methods=methods,
-                       pareto_time=args.pareto_time)
+        with _progress(args, err) as show:
+            report = audit(problem, candidates, family, scenarios=args.scenarios,
+                           seed=args.seed, method=args.method, time_limit=args.time_limit,
+                           epsilon=args.epsilon, keep=args.keep, pareto_constraints=cons,
+                           pareto_methods=methods, pareto_time=args.pareto_time,
+                           progress=show)
     except InputError as exc:
         field = _OPTION_OF.get(exc.field, exc.field)
         print(f"flipfix audit: error: {field}: {exc.message}", file=err)
         return 2
     _emit(args, report, out)
     return 0
+
+
+def _progress(args, err: TextIO):
+    """The audit's progress on ``err`` (a bar on a terminal, lines elsewhere): the stress
+    test counts scenarios; the budget is the stress test's plus the front's."""
+    from flipfix.service.progress import Progress
+
+    return Progress("audit", budget=args.time_limit + args.pareto_time, unit="scenarios",
+                    enabled=not getattr(args, "quiet", False), stream=err)
 
 
 def _pareto_constraints(args, problem):
@@ -584,11 +608,12 @@ def _run_remote(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
             cons = _pareto_constraints(args, problem)
             family = _family_of(args, problem)
             methods = _pareto_methods(args)
-            report = audit_remote(
-                fx, args.problem, family, scenarios=args.scenarios, seed=args.seed,
-                method=args.method, time_limit=args.time_limit, epsilon=args.epsilon,
-                keep=args.keep, commit=args.commit, pareto_constraints=cons,
-                pareto_methods=methods, pareto_time=args.pareto_time)
+            with _progress(args, err) as show:
+                report = audit_remote(
+                    fx, args.problem, family, scenarios=args.scenarios, seed=args.seed,
+                    method=args.method, time_limit=args.time_limit, epsilon=args.epsilon,
+                    keep=args.keep, commit=args.commit, pareto_constraints=cons,
+                    pareto_methods=methods, pareto_time=args.pareto_time, progress=show)
         except InputError as exc:
             field = _OPTION_OF.get(exc.field, exc.field)
             print(f"flipfix audit: error: {field}: {exc.message}", file=err)

@@ -19,10 +19,10 @@ import re
 import signal
 import sys
 import threading
-import time
 from pathlib import Path
 
 from flipfix.repair.errors import InputError
+from flipfix.service.progress import Progress
 
 __all__ = ["main", "build_parser"]
 
@@ -75,24 +75,6 @@ def _blame(err: InputError, files: dict) -> str:
     return f"{field}: {err.message}"
 
 
-class _Progress:
-    """Progress lines on stderr, at most a few per second."""
-
-    def __init__(self, enabled: bool):
-        self.enabled = enabled
-        self.t0 = time.monotonic()
-        self.last = 0.0
-
-    def __call__(self, done, total, best_cost, phase="") -> None:
-        now = time.monotonic()
-        if not self.enabled or now - self.last < 0.5:
-            return
-        self.last = now
-        best = "-" if best_cost is None else f"{best_cost:.6g}"
-        print(f"flipfix: {now - self.t0:6.1f}s  {phase or 'running'}: {done}/{total} candidates, "
-              f"best cost {best}", file=sys.stderr, flush=True)
-
-
 def _repair_options(args) -> dict:
     return {"method": args.method, "time_limit": args.time_limit, "max_flips": args.max_flips,
             "flip_price": args.flip_price, "seed": args.seed, "workers": args.workers,
@@ -103,7 +85,7 @@ def cmd_repair(args) -> int:
     files = {"problem": args.problem, "candidates": args.candidates,
              "constraints": args.constraints}
     docs = {k: _load_json(v, k) for k, v in files.items()}
-    show = _Progress(not args.quiet)
+    show = Progress("repair", budget=args.time_limit, enabled=not args.quiet)
     try:
         if args.server:
             out = _repair_remote(args, docs, show)
@@ -127,7 +109,7 @@ def cmd_repair(args) -> int:
     return 0
 
 
-def _repair_local(args, docs: dict, show: _Progress) -> dict:
+def _repair_local(args, docs: dict, show: Progress) -> dict:
     from flipfix.repair.documents import dimod_forms, forms as documents
     from flipfix.repair import repair
 
@@ -137,16 +119,15 @@ def _repair_local(args, docs: dict, show: _Progress) -> dict:
     problem, rows = dimod_forms.read_problem(docs["problem"])
     candidates = dimod_forms.read_candidates(docs["candidates"], problem)
     constraints = rows + documents.parse_constraints(docs["constraints"], problem)
-    res = repair(problem, candidates, constraints, **_repair_options(args),
-                 progress=lambda d: show(d.get("done"), d.get("total"), d.get("best_cost"),
-                                         d.get("phase", "")))
+    with show:
+        res = repair(problem, candidates, constraints, **_repair_options(args), progress=show)
     out = res.to_dict()
     if args.output == "sampleset":
         out["_sampleset"] = dimod_forms.to_sampleset(out, problem).to_serializable()
     return out
 
 
-def _repair_remote(args, docs: dict, show: _Progress) -> dict:
+def _repair_remote(args, docs: dict, show: Progress) -> dict:
     import grpc
 
     from flipfix.service.client import FlipfixClient
@@ -159,11 +140,9 @@ def _repair_remote(args, docs: dict, show: _Progress) -> dict:
         try:
             fx.wait_ready(notice=lambda m: print(m, file=sys.stderr, flush=True))
             call = fx.repair_sampleset if args.output == "sampleset" else fx.repair
-            got = call(docs["problem"], docs["constraints"], candidates=docs["candidates"],
-                       **_repair_options(args),
-                       on_progress=lambda p: show(p.done, p.total,
-                                                  p.best_cost if p.HasField("best_cost") else None,
-                                                  p.phase))
+            with show:
+                got = call(docs["problem"], docs["constraints"], candidates=docs["candidates"],
+                           **_repair_options(args), on_progress=show.message)
             if args.output == "sampleset":
                 return {**got[1], "_sampleset": got[0].to_serializable()}
             return got
