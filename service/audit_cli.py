@@ -155,18 +155,9 @@ def audit_remote(client, name: str, family, *, scenarios: int, seed: int, method
     the library is the stored problem ``name`` (candidates of its current revision).
     ``progress`` gets a dict ``{"phase"}`` at each stage and the stress test's progress
     messages (:class:`flipfix.service.progress.Progress` takes both).
-
-    The service's ``ScenarioFamily`` message has no decision-level parts yet: a family
-    with ``unavailable_values`` or ``must_change`` is refused here (InputError naming the
-    part) instead of being sent without them.
     """
     from flipfix.repair.audit.stress import draw_scenarios
 
-    for part in ("unavailable_values", "must_change"):
-        if getattr(family, part):
-            raise InputError(f"family.{part}", "decision-level scenarios are not in the "
-                                               "service's StressTest yet; audit in-process "
-                                               "(without --server)")
     if progress is not None:
         progress({"phase": "robustness"})
     prof = client.robustness(name, epsilon=epsilon)
@@ -182,12 +173,6 @@ def audit_remote(client, name: str, family, *, scenarios: int, seed: int, method
                                       if out["removed_ids"] else "")
     else:
         stress = client.stress_test(name, family, on_progress=progress, **opts)
-    # the service's CandidateStress has no free_decisions yet; the profile (same epsilon) has both
-    counts = {q.candidate_id: q for q in prof.profiles}
-    for c in stress.candidates:
-        if c.candidate_id in counts:
-            c.free_variables = counts[c.candidate_id].free_variables
-            c.free_decisions = counts[c.candidate_id].free_decisions
     if pareto_constraints is None:  # scenario 0, drawn exactly as the server draws it
         info, problem = client.get_problem(name)
         [lib] = client.list_candidates(name, revision=info.revision)  # one revision: one run
@@ -599,12 +584,6 @@ def _run_remote(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         try:
             fx.wait_ready(notice=lambda m: print(m, file=sys.stderr, flush=True))
             _info, problem = fx.get_problem(args.problem)
-            if problem.decisions and all(getattr(args, o) is None for o in _PART_OPTIONS.values()):
-                print("flipfix audit: error: --server: the problem declares decisions, whose "
-                      "default scenarios (--unavailable 1) the service cannot run yet; give "
-                      "--weight, --fix-k or --cut for bit-level scenarios, or audit in-process",
-                      file=err)
-                return 2
             cons = _pareto_constraints(args, problem)
             family = _family_of(args, problem)
             methods = _pareto_methods(args)
