@@ -607,6 +607,9 @@ def _run_remote(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
             print(f"flipfix audit: error: server {args.server}: {exc.code().name}: "
                   f"{exc.details()}", file=err)
             return 1
+        except TimeoutError as exc:
+            print(f"flipfix audit: error: server {args.server}: {exc}", file=err)
+            return 1
     _emit(args, report, out)
     return 0
 

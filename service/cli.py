@@ -121,6 +121,7 @@ def _repair_local(args, docs: dict, show: Progress) -> dict:
     constraints = rows + documents.parse_constraints(docs["constraints"], problem)
     with show:
         res = repair(problem, candidates, constraints, **_repair_options(args), progress=show)
+        show({"phase": "done", "best_cost": res.best.cost if res.best.feasible else None})
     out = res.to_dict()
     if args.output == "sampleset":
         out["_sampleset"] = dimod_forms.to_sampleset(out, problem).to_serializable()
@@ -143,6 +144,8 @@ def _repair_remote(args, docs: dict, show: Progress) -> dict:
             with show:
                 got = call(docs["problem"], docs["constraints"], candidates=docs["candidates"],
                            **_repair_options(args), on_progress=show.message)
+                best = (got[1] if args.output == "sampleset" else got)["best"]
+                show({"phase": "done", "best_cost": best["cost"] if best["feasible"] else None})
             if args.output == "sampleset":
                 return {**got[1], "_sampleset": got[0].to_serializable()}
             return got
@@ -152,6 +155,8 @@ def _repair_remote(args, docs: dict, show: Progress) -> dict:
                 field, _, msg = (err.details() or "").partition(": ")
                 raise InputError(field, msg) from None
             raise UsageError(f"server {args.server}: {code.name}: {err.details()}") from None
+        except TimeoutError as err:
+            raise UsageError(f"server {args.server}: {err}") from None
 
 
 def cmd_serve(args) -> int:

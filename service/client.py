@@ -24,6 +24,7 @@ Errors are ``grpc.RpcError`` with the status codes listed in the proto.
 
 from __future__ import annotations
 
+import time
 from dataclasses import dataclass
 from typing import Any, Callable, Iterable, Mapping, Sequence
 
@@ -110,13 +111,15 @@ class FlipfixClient:
                    notice: Callable[[str], None] | None = None) -> None:
         """Block until the server's health is SERVING: a freshly started server reports
         NOT_SERVING while its workers load (on a machine's first run: compile) the search
-        kernels. Event-driven (the standard ``grpc.health.v1.Health/Watch`` stream; waits for
-        the server to come up). ``notice(message)`` is called once if the server is not
-        ready at first. Raises ``TimeoutError`` after ``timeout`` seconds."""
+        kernels. Event-driven (the standard ``grpc.health.v1.Health/Watch`` stream).
+        ``notice(message)`` is called once if the server is not ready at first. Raises
+        ``TimeoutError`` after ``timeout`` seconds, and ``grpc.RpcError`` (UNAVAILABLE) at once
+        when nothing answers at the address."""
         from grpc_health.v1 import health_pb2, health_pb2_grpc
 
+        t0 = time.monotonic()
         stream = health_pb2_grpc.HealthStub(self.channel).Watch(
-            health_pb2.HealthCheckRequest(service=""), timeout=timeout, wait_for_ready=True)
+            health_pb2.HealthCheckRequest(service=""), timeout=timeout)
         try:
             for reply in stream:
                 if reply.status == health_pb2.HealthCheckResponse.SERVING:
@@ -127,7 +130,8 @@ class FlipfixClient:
                     notice = None
         except grpc.RpcError as err:
             if err.code() == grpc.StatusCode.DEADLINE_EXCEEDED:
-                raise TimeoutError(f"{self.target} was not ready within {timeout} s") from None
+                raise TimeoutError(f"{self.target} was not ready after "
+                                   f"{time.monotonic() - t0:.1f} s") from None
             raise
         finally:
             stream.cancel()

@@ -77,9 +77,11 @@ def test_repair_prints_a_line_every_half_second(tmp_path, capsys, server, remote
     rows = _check_lines(cap.err, "repair", "candidates", 2.0)
     assert len(rows) >= 3  # a 2 s portfolio run: 0.5, 1.0, 1.5, ... and the last state
     last = rows[-1]
-    assert last.group(5) == "24/24 candidates"
-    # the best cost shown is a real cost, never better than the answer
-    assert last.group(6) != "-" and float(last.group(6)) >= out["best"]["cost"] - 1e-6
+    # the last line is the answer's
+    assert (last.group(4), last.group(5)) == ("done", "24/24 candidates")
+    assert float(last.group(6)) == pytest.approx(out["best"]["cost"], rel=1e-5)
+    # every best cost shown is a real cost, never better than the answer
+    assert all(m.group(6) == "-" or float(m.group(6)) >= out["best"]["cost"] - 1e-3 for m in rows)
     stages = {m.group(4) for m in rows}
     assert stages - {"starting"}, stages
 
