@@ -116,6 +116,8 @@ def _repair_local(args, docs: dict, show: Progress) -> dict:
     from flipfix.repair.kernels.readiness import warm_up
 
     warm_up()  # before any clock: a first run compiles the kernels (announced on stderr)
+    if args.method != "greedy":  # OR-Tools loads in about a second: before the progress clock too
+        from flipfix.repair.solvers import cpsat  # noqa: F401
     problem, rows = dimod_forms.read_problem(docs["problem"])
     candidates = dimod_forms.read_candidates(docs["candidates"], problem)
     constraints = rows + documents.parse_constraints(docs["constraints"], problem)
