@@ -63,6 +63,22 @@ def test_conflicting_force_values_exit_3_and_name_both(tmp_path, capsys, method)
     assert out["best"]["violations"]["crew B only"] > 0
 
 
+def test_require_feasible_through_a_server(tmp_path, capsys):
+    from flipfix.service.client import FlipfixClient
+    from flipfix.service.server import create_server
+
+    with create_server("127.0.0.1:0", db_path=str(tmp_path / "s.sqlite3"), workers=1) as srv:
+        with FlipfixClient(srv.address) as fx:
+            fx.wait_ready(timeout=300)
+        code = main(["repair", *_files(tmp_path, CONFLICT), "--require-feasible", "--quiet",
+                     "--time-limit", "1", "--server", srv.address])
+    cap = capsys.readouterr()
+    assert code == EXIT_NOT_FEASIBLE
+    out = json.loads(cap.out)
+    assert out["status"] == "infeasible" and "'crew A booked'" in out["message"]
+    assert "not feasible" in cap.err
+
+
 def test_feasible_answer_exits_0_and_lists_no_satisfied_encoding_row(tmp_path, capsys):
     code = main(["repair", *_files(tmp_path, FORCE_B), "--require-feasible", "--quiet",
                  "--time-limit", "1"])
