@@ -2,7 +2,9 @@
 
 Sections: repair (repair vs re-solve), kernel (greedy throughput), service (gRPC overhead),
 memory (peak RSS), mix (which portfolio budget mix wins at each budget), rerun (repair vs a
-simulated annealer re-run from scratch; needs the ``bench`` extra). Prints a table per section and writes bench/results/latest.json
+simulated annealer re-run from scratch; needs the ``bench`` extra), cluster (stress tests on
+Dask vs the local pool), grow (original vs grown library on held-out scenarios). Prints a table
+per section and writes bench/results/latest.json
 (the figures, the machine, the command). Never part of the test suite.
 """
 
@@ -12,7 +14,7 @@ import argparse
 import sys
 import time
 
-from bench import (budget, kernel, memory, mix, repair_vs_rerun, repair_vs_resolve,
+from bench import (budget, cluster, grow, kernel, memory, mix, repair_vs_rerun, repair_vs_resolve,
                    service_overhead)
 from bench.common import machine, write_results
 
@@ -26,6 +28,8 @@ SECTIONS = {
     "mix": mix,
     "budget": budget,
     "rerun": repair_vs_rerun,
+    "cluster": cluster,
+    "grow": grow,
 }
 
 

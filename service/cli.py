@@ -5,6 +5,7 @@
                    [--max-flips N] [--flip-price P] [--seed S] [--server HOST:PORT]
     flipfix demo
     flipfix audit ...   (when flipfix.service.audit_cli is installed)
+    flipfix grow ...    (flipfix.service.grow_cli)
 
 ``repair`` runs in-process by default and prints the result JSON on stdout
 (progress on stderr); ``--server`` sends the same files through the service. A
@@ -93,6 +94,8 @@ def cmd_repair(args) -> int:
             out = _repair_local(args, docs, show)
     except InputError as err:
         raise UsageError(_blame(err, files)) from None
+    if out.get("conflict"):  # the hard constraints that cannot all hold, readable
+        print(f"flipfix: {out['conflict']['message']}", file=sys.stderr)
     if args.output == "sampleset":  # dimod's serialised SampleSet of the answer
         json.dump(out.pop("_sampleset"), sys.stdout)
     else:
@@ -171,10 +174,11 @@ def cmd_serve(args) -> int:
         db_path=args.db, workers=args.workers, queue_size=args.queue,
         max_message_bytes=int(args.max_message_mb * 1024 * 1024),
         max_variables=args.max_variables, max_candidates=args.max_candidates,
-        max_constraints=args.max_constraints, default_time_limit=args.default_time_limit)
+        max_constraints=args.max_constraints, default_time_limit=args.default_time_limit,
+        dask=args.dask or "", max_records=args.max_records)
     try:
         srv = create_server(f"{args.host}:{args.port}", config)
-    except OSError as err:
+    except (OSError, InputError) as err:
         raise UsageError(str(err)) from None
     print(f"flipfix: serving on {args.host}:{srv.port} (db {args.db}, {args.workers} worker(s)); "
           f"health NOT_SERVING until the search kernels are loaded", file=sys.stderr, flush=True)
@@ -219,7 +223,8 @@ def build_parser() -> argparse.ArgumentParser:
     s = sub.add_parser("serve", help="run the gRPC service")
     s.add_argument("--host", default="127.0.0.1")
     s.add_argument("--port", type=int, default=50051, help="0 picks a free port")
-    s.add_argument("--db", default="flipfix.sqlite3", help="SQLite database file")
+    s.add_argument("--db", default="flipfix.sqlite3",
+                   help="an SQLite database file, or a postgresql:// URL shared by replicas")
     s.add_argument("--workers", type=int, default=1, help="repair processes")
     s.add_argument("--queue", type=int, default=4, help="repairs that may wait for a worker")
     s.add_argument("--max-message-mb", type=float, default=64.0)
@@ -227,7 +232,12 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--max-candidates", type=int, default=10_000)
     s.add_argument("--max-constraints", type=int, default=1_000)
     s.add_argument("--default-time-limit", type=_positive_float, default=5.0)
+    s.add_argument("--max-records", type=int, default=1000, metavar="N",
+                   help="run records kept per problem (the oldest go first)")
     s.add_argument("--grace", type=float, default=10.0, help="seconds in-flight calls get on SIGTERM")
+    s.add_argument("--dask", metavar="ADDRESS|local:N", default=None,
+                   help="run stress tests on a Dask cluster: a scheduler address "
+                        "(tcp://host:8786) or local:N worker processes started here")
     s.set_defaults(func=cmd_serve)
 
     r = sub.add_parser("repair", help="repair the candidates of PROBLEM under CONSTRAINTS")
@@ -259,6 +269,12 @@ def build_parser() -> argparse.ArgumentParser:
     from flipfix.service import audit_cli  # the audit commands live in their own module
 
     audit_cli.register(sub)
+    from flipfix.service import grow_cli  # flipfix grow, in its own module
+
+    grow_cli.register(sub)
+    from flipfix.service import timeline_cli  # events, records, adoption: their own module
+
+    timeline_cli.register(sub)
     for name, p in sub.choices.items():
         if p.get_default("func") is None and name not in ("serve", "repair", "demo"):
             p.set_defaults(func=audit_cli.run)

@@ -42,11 +42,14 @@ from flipfix.repair.errors import InputError
 
 from flipfix.service import audit_jobs
 from flipfix.service import convert
+from flipfix.service import grow_service
 from flipfix.service.errors import ConflictError, NotFoundError, TransientError, translate_errors
 from flipfix.service.generated import flipfix_pb2 as pb
 from flipfix.service.generated import flipfix_pb2_grpc as pb_grpc
 from flipfix.service.limits import Limits
 from flipfix.service.store import Store
+from flipfix.service.generated import timeline_pb2_grpc as tpb_grpc
+from flipfix.service.timeline import TIMELINE_SERVICE_NAME, Timeline, TimelineServicer
 from flipfix.service.worker import RepairPool
 
 __all__ = ["create_server", "RunningServer", "ServerConfig", "SERVICE_NAME"]
@@ -71,7 +74,11 @@ class ServerConfig:
     max_time_limit: float = 600.0
     default_audit_time_limit: float = 30.0  # whole stress-test run
     max_scenarios: int | None = 1_000
+    max_records: int | None = 1_000  # run records kept per problem (timeline); None: all
     warm: bool = True
+    #: stress tests on a Dask cluster: a scheduler address, or ``local:N`` (N worker
+    #: processes started with the server); "" runs them in the repair workers
+    dask: str = ""
 
     @property
     def limits(self) -> Limits:
@@ -118,11 +125,14 @@ def deadline_budget(requested: float, remaining: float | None) -> float:
 
 
 class FlipfixServicer(pb_grpc.FlipfixServicer):
-    def __init__(self, store: Store, pool: RepairPool, config: ServerConfig):
+    def __init__(self, store: Store, pool: RepairPool, config: ServerConfig,
+                 timeline: Timeline | None = None):
         self.store = store
         self.pool = pool
         self.config = config
         self.limits = config.limits
+        self.dask_address = ""  # set by create_server when stress tests go to Dask
+        self.timeline = timeline or Timeline(store, max_records=config.max_records)
 
     # ------------------------------------------------------------- problems
     @staticmethod
@@ -193,7 +203,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         which = request.WhichOneof("library")
         if which == "problem":
             rev, problem, cands = self.store.library(
-                request.problem, ids=list(request.candidate_ids),
+                request.problem, ids=self.timeline.candidate_ids(request),
                 all_revisions=request.all_revisions, max_candidates=self.config.max_candidates)
             return rev, problem, cands
         if which == "inline":
@@ -207,13 +217,15 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         raise InputError("library", "set problem (a stored problem) or inline")
 
     def _start(self, request, context):
-        """Validate, pick the budget, submit; returns (job, budget, audit_limit, revision).
+        """Validate, pick the budget, submit; returns (job, budget, audit_limit, revision,
+        the timeline's :class:`~flipfix.service.timeline.Used`).
 
         The constraints are read, checked and lowered once, here; the worker gets the
         result (``compiled``, picklable) and does not compile again.
         """
         rev, problem, cands = self._library(request)
-        compiled = self._compiled(request.constraints, problem)
+        used = self.timeline.used(request, problem, rev)  # published plan, events in force
+        compiled = self._compiled(used.constraints, problem)
         kwargs = convert.options_to_kwargs(request.options,
                                            default_time_limit=self.config.default_time_limit)
         budget = kwargs["time_limit"] = self._budget(kwargs["time_limit"], context)
@@ -221,7 +233,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
                             context)
         audit_limit = (request.options.audit_limit if request.options.HasField("audit_limit")
                        else None)
-        return job, budget, audit_limit, rev
+        return job, budget, audit_limit, rev, used
 
     def _compiled(self, constraints, problem):
         self.limits.constraints(constraints, "constraints")
@@ -283,18 +295,20 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
 
     @translate_errors
     def Repair(self, request, context):
-        job, budget, audit_limit, rev = self._start(request, context)
+        job, budget, audit_limit, rev, used = self._start(request, context)
         res = self._wait(job, context, budget)
-        return convert.result_to_reply(res, audit_limit=audit_limit, time_limit=budget,
-                                       revision=rev)
+        return self.timeline.finish_repair(request, convert.result_to_reply(
+            res, audit_limit=audit_limit, time_limit=budget, revision=rev), used, context)
 
     @translate_errors
     def RepairStream(self, request, context):
-        job, budget, audit_limit, rev = self._start(request, context)
+        job, budget, audit_limit, rev, used = self._start(request, context)
         yield from self._stream(
             job, context, budget, lambda msg: pb.RepairEvent(progress=msg),
-            lambda res: pb.RepairEvent(result=convert.result_to_reply(
-                res, audit_limit=audit_limit, time_limit=budget, revision=rev)))
+            lambda res: pb.RepairEvent(result=self.timeline.finish_repair(
+                request, convert.result_to_reply(res, audit_limit=audit_limit,
+                                                 time_limit=budget, revision=rev),
+                used, context)))
 
     def _stream(self, job, context, budget: float, progress_event, result_event):
         """Progress messages as the worker reports (the core's phase names), then the result.
@@ -349,13 +363,17 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
 
     @translate_errors
     def ProfileRobustness(self, request, context):
+        t0 = time.perf_counter()
         rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
                                                   request.all_revisions)
         eps = convert.nonneg(request.epsilon, "epsilon")
         job = self._submit_call(audit_jobs.robustness, (problem, cands),
                                 {"epsilon": eps, "spectrum": bool(request.spectrum)}, context)
         rep = self._wait(job, context, math.inf)  # vectorised, not interruptible
-        return convert.robustness_to_reply(rep, revision=rev)
+        reply = convert.robustness_to_reply(rep, revision=rev)
+        self.timeline.record_audit("ProfileRobustness", request, reply, problem=request.problem,
+                                   revision=rev, started=t0, context=context)
+        return reply
 
     def _start_stress(self, request, context, *, field: str = ""):
         rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
@@ -364,25 +382,40 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
             request, problem, default_time_limit=self.config.default_audit_time_limit,
             max_scenarios=self.config.max_scenarios, field=field)
         kwargs["time_limit"] = self._budget(kwargs["time_limit"], context)
+        if self.dask_address:
+            kwargs["dask"] = self.dask_address
         return rev, problem, cands, family, kwargs
 
     @translate_errors
     def StressTest(self, request, context):
+        t0 = time.perf_counter()
         rev, problem, cands, family, kwargs = self._start_stress(request, context)
         job = self._submit_call(audit_jobs.stress, (problem, cands, family), kwargs, context)
         rep = self._wait(job, context, kwargs["time_limit"])
-        return convert.stress_to_reply(rep, matrices=request.matrices,
-                                       time_limit=kwargs["time_limit"], revision=rev)
+        reply = convert.stress_to_reply(rep, matrices=request.matrices,
+                                        time_limit=kwargs["time_limit"], revision=rev)
+        self.timeline.record_audit("StressTest", request, reply, problem=request.problem,
+                                   revision=rev, started=t0, seed=request.seed,
+                                   status=reply.stopped, context=context)
+        return reply
 
     @translate_errors
     def StressTestStream(self, request, context):
+        t0 = time.perf_counter()
         rev, problem, cands, family, kwargs = self._start_stress(request, context)
         job = self._submit_call(audit_jobs.stress, (problem, cands, family), kwargs, context)
         budget = kwargs["time_limit"]
-        yield from self._stream(
-            job, context, budget, lambda msg: pb.StressEvent(progress=msg),
-            lambda rep: pb.StressEvent(result=convert.stress_to_reply(
-                rep, matrices=request.matrices, time_limit=budget, revision=rev)))
+
+        def result(rep):
+            reply = convert.stress_to_reply(rep, matrices=request.matrices, time_limit=budget,
+                                            revision=rev)
+            self.timeline.record_audit("StressTest", request, reply, problem=request.problem,
+                                       revision=rev, started=t0, seed=request.seed,
+                                       status=reply.stopped, context=context)
+            return pb.StressEvent(result=reply)
+
+        yield from self._stream(job, context, budget, lambda msg: pb.StressEvent(progress=msg),
+                                result)
 
     @translate_errors
     def ParetoFront(self, request, context):
@@ -402,12 +435,16 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
             cheapest = cheapest_within(front, int(request.cheapest_within_flips))
         if request.HasField("fewest_flips_within_percent"):
             fewest = fewest_flips_within(front, request.fewest_flips_within_percent)
-        return convert.pareto_to_reply(front, cheapest=cheapest, fewest=fewest,
-                                       seconds=time.perf_counter() - t0, time_limit=budget,
-                                       revision=rev)
+        reply = convert.pareto_to_reply(front, cheapest=cheapest, fewest=fewest,
+                                        seconds=time.perf_counter() - t0, time_limit=budget,
+                                        revision=rev)
+        self.timeline.record_audit("ParetoFront", request, reply, problem=request.problem,
+                                   revision=rev, started=t0, seed=request.seed, context=context)
+        return reply
 
     @translate_errors
     def CurateLibrary(self, request, context):
+        t0 = time.perf_counter()
         rev, problem, cands, family, kwargs = self._start_stress(request.stress, context,
                                                                  field="stress.")
         K = len(cands.ids)
@@ -443,8 +480,13 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
                                                revision=rev)
                 kept = True
                 message = f"kept {len(cur.kept_ids)} candidates, removed {len(removed)}"
-        return convert.curation_to_reply(stress, cur, kept=kept, removed=removed,
-                                         message=message, revision=rev)
+        reply = convert.curation_to_reply(stress, cur, kept=kept, removed=removed,
+                                          message=message, revision=rev)
+        self.timeline.record_audit("CurateLibrary", request, reply,
+                                   problem=request.stress.problem, revision=rev, started=t0,
+                                   seed=request.stress.seed, status=stress.stopped,
+                                   context=context)
+        return reply
 
 
 class RunningServer:
@@ -460,6 +502,7 @@ class RunningServer:
         self.store = store
         self._stopped = threading.Event()
         self._lock = threading.Lock()
+        self.cluster = None  # the Dask cluster (client) of stress tests, when configured
 
     @property
     def address(self) -> str:
@@ -475,6 +518,8 @@ class RunningServer:
             stopped.wait()
             self.pool.shutdown(wait=True)
             self.store.close()
+            if self.cluster is not None:
+                self.cluster.close()
             self._stopped.set()
 
     stop = shutdown
@@ -498,6 +543,11 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
             raise TypeError(f"unknown server option {k!r}")
         setattr(config, k, v)
     store = Store(config.db_path)
+    try:
+        timeline = Timeline(store, max_records=config.max_records)
+    except BaseException:
+        store.close()
+        raise
     pool = RepairPool(workers=config.workers, queue_size=config.queue_size, warm=config.warm)
     options = [("grpc.max_receive_message_length", config.max_message_bytes),
                ("grpc.max_send_message_length", config.max_message_bytes),
@@ -506,11 +556,13 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
     server = grpc.server(futures.ThreadPoolExecutor(max_workers=pool.slots + 8,
                                                     thread_name_prefix="flipfix-rpc"),
                          options=options)
-    servicer = FlipfixServicer(store, pool, config)
+    servicer = FlipfixServicer(store, pool, config, timeline)
     pb_grpc.add_FlipfixServicer_to_server(servicer, server)
+    grow_name = grow_service.register(servicer, server)
+    tpb_grpc.add_TimelineServicer_to_server(TimelineServicer(timeline), server)
     health_servicer = health.HealthServicer()
     health_pb2_grpc.add_HealthServicer_to_server(health_servicer, server)
-    names = (SERVICE_NAME, health_pb2.DESCRIPTOR.services_by_name["Health"].full_name,
+    names = (SERVICE_NAME, grow_name, TIMELINE_SERVICE_NAME, health_pb2.DESCRIPTOR.services_by_name["Health"].full_name,
              reflection.SERVICE_NAME)
     reflection.enable_server_reflection(names, server)
     try:
@@ -523,11 +575,26 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
         pool.shutdown(wait=False)
         store.close()
         raise OSError(f"cannot bind {address}")
+    cluster = None
+    if config.dask:
+        from flipfix.service.cluster import connect
+
+        try:
+            cluster = connect(config.dask, field="dask")
+        except Exception:
+            server.stop(0)
+            pool.shutdown(wait=False)
+            store.close()
+            raise
+        servicer.dask_address = cluster.address
     server.start()
     # NOT_SERVING until the workers' kernels are warm (a first run compiles them)
-    for name in ("", SERVICE_NAME):
+    served = ("", SERVICE_NAME, TIMELINE_SERVICE_NAME)
+    for name in served:
         health_servicer.set(name, health_pb2.HealthCheckResponse.NOT_SERVING)
     pool.when_ready(lambda: [health_servicer.set(name, health_pb2.HealthCheckResponse.SERVING)
-                             for name in ("", SERVICE_NAME)])
+                             for name in served])
     log.info("flipfix listening on port %d (db %s)", port, Path(config.db_path))
-    return RunningServer(server, port, servicer, health_servicer, pool, store)
+    running = RunningServer(server, port, servicer, health_servicer, pool, store)
+    running.cluster = cluster
+    return running

@@ -1,12 +1,16 @@
-"""Durable store of problems (with revisions) and candidate libraries: SQLite.
+"""Durable store of problems (with revisions) and candidate libraries.
 
-* WAL journal, ``synchronous=FULL``: a write is on disk before it is acknowledged.
-* Every public write is one transaction (``BEGIN IMMEDIATE`` ... ``COMMIT``) on the one
-  write connection: a request that fails validation half-way stores nothing.
-* Every public read is one read-only transaction (``BEGIN`` ... ``ROLLBACK``: one
-  snapshot, no write lock) on a ``query_only`` connection of its own from a small pool,
-  so reads run beside each other and beside a write, as WAL allows (an in-memory
-  database is one connection: there reads share the write connection).
+The rows live in an SQLite file (the default) or a PostgreSQL database shared by
+several replicas (:mod:`flipfix.service.backends`, chosen by the ``--db`` value):
+
+* a write is durable before it is acknowledged (SQLite: WAL, ``synchronous=FULL``;
+  PostgreSQL: its commit);
+* every public write is one transaction, and writes run one at a time (SQLite's
+  ``BEGIN IMMEDIATE``; PostgreSQL: one advisory lock across replicas): a request that
+  fails validation half-way stores nothing, and a revision check cannot interleave with
+  another write;
+* every public read is one read-only snapshot without the write lock, so reads run
+  beside each other and beside a write.
 * ``schema_version`` holds the schema number; opening a newer database fails,
   an older one is migrated in one transaction (see :data:`SCHEMA_HISTORY`).
 
@@ -21,10 +25,8 @@ from __future__ import annotations
 
 import dataclasses
 import json
-import queue
-import sqlite3
-import threading
-from contextlib import contextmanager
+import re
+from contextlib import nullcontext
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
@@ -37,6 +39,7 @@ from flipfix.repair.errors import InputError
 from flipfix.repair.model.problem import Decision, Problem
 
 from flipfix.service import packing
+from flipfix.service.backends import open_backend
 from flipfix.service.errors import AlreadyExistsError, ConflictError, NotFoundError
 
 __all__ = ["Store", "ProblemRecord", "CandidateRecord", "SCHEMA_VERSION", "SCHEMA_HISTORY"]
@@ -155,40 +158,52 @@ def decode_model(text: str) -> Problem:
 
 
 class Store:
-    """Problems and candidates in one SQLite file (``":memory:"`` for tests only).
+    """Problems and candidates in an SQLite file (``":memory:"`` for tests only) or a
+    PostgreSQL database (``postgresql://user@host:port/db``).
 
-    Thread-safe: writes go through one connection under one lock; reads take a pooled
-    read-only connection each. Each public method is one transaction.
+    Thread-safe; each public method is one transaction.
     """
 
     def __init__(self, path: str | Path):
         self.path = str(path)
-        self._memory = self.path == ":memory:"
-        if not self._memory:
-            Path(self.path).parent.mkdir(parents=True, exist_ok=True)
-        self._lock = threading.Lock()
-        self._idle_readers: queue.SimpleQueue[sqlite3.Connection] = queue.SimpleQueue()
-        self._readers: list[sqlite3.Connection] = []  # every read connection opened
-        self._readers_lock = threading.Lock()  # not the write lock: a write may be open
-        self._db = self._connect()
-        self._db.execute("PRAGMA journal_mode=WAL")
-        self._db.execute("PRAGMA synchronous=FULL")
-        self._db.execute("PRAGMA foreign_keys=ON")
-        # executescript commits by itself; every statement is CREATE ... IF NOT EXISTS
-        # (on an older database the existing tables are kept and migrated below)
-        self._db.executescript(_SCHEMA)
-        with self._tx() as db:
-            row = db.execute("SELECT version FROM schema_version").fetchone()
-            if row is None:
-                db.execute("INSERT INTO schema_version VALUES (?)", (SCHEMA_VERSION,))
-            elif row[0] > SCHEMA_VERSION:
-                raise RuntimeError(f"{self.path}: schema version {row[0]} is newer than this "
-                                   f"flipfix ({SCHEMA_VERSION})")
-            elif row[0] < SCHEMA_VERSION:
-                self._migrate(db, row[0])
+        self._backend = open_backend(path)
+        self._backend.create_schema(_SCHEMA)
+        try:
+            with self._tx() as db:
+                row = db.execute("SELECT version FROM schema_version").fetchone()
+                if row is None:
+                    db.execute("INSERT INTO schema_version VALUES (?)", (SCHEMA_VERSION,))
+                elif row[0] > SCHEMA_VERSION:
+                    raise RuntimeError(f"{self._where}: schema version {row[0]} is newer than "
+                                       f"this flipfix ({SCHEMA_VERSION})")
+                elif row[0] < SCHEMA_VERSION:
+                    self._migrate(db, row[0])
+        except BaseException:
+            self._backend.close()
+            raise
+
+    @property
+    def _where(self) -> str:
+        """The database, for messages (a URL without its password)."""
+        return re.sub(r"//([^:/@]+):[^@/]*@", r"//\1:***@", self.path)
+
+    def ddl(self, stmt: str) -> list[str]:
+        """One DDL statement written for SQLite, in this store's dialect (for modules that
+        keep tables beside the store's, :mod:`flipfix.service.history`)."""
+        return self._backend.ddl(stmt)
+
+    @property
+    def integrity_errors(self) -> tuple:
+        """The backend's exception types for a broken key or reference."""
+        return self._backend.integrity_errors
+
+    @property
+    def backend(self) -> str:
+        """``"sqlite"`` or ``"postgresql"``."""
+        return self._backend.name
 
     @staticmethod
-    def _migrate(db: sqlite3.Connection, version: int) -> None:
+    def _migrate(db, version: int) -> None:
         """Bring a database of ``version`` to :data:`SCHEMA_VERSION` (inside the open
         transaction: a failure leaves the old database as it was)."""
         if version == 1:  # bits TEXT '0101...' -> packed BLOB; the table is rebuilt
@@ -209,72 +224,26 @@ class Store:
         db.execute("UPDATE schema_version SET version = ?", (version,))
 
     # ---------------------------------------------------------------- plumbing
-    class _Tx:
-        def __init__(self, store: "Store"):
-            self.store = store
+    def _tx(self):
+        """One write transaction (all or nothing), see :mod:`flipfix.service.backends`."""
+        return self._backend.tx()
 
-        def __enter__(self) -> sqlite3.Connection:
-            self.store._lock.acquire()
-            try:
-                self.store._db.execute("BEGIN IMMEDIATE")
-            except BaseException:
-                self.store._lock.release()
-                raise
-            return self.store._db
-
-        def __exit__(self, exc_type, exc, tb):
-            try:
-                self.store._db.execute("COMMIT" if exc_type is None else "ROLLBACK")
-            finally:
-                self.store._lock.release()
-            return False
-
-    def _tx(self) -> "Store._Tx":
-        return Store._Tx(self)
-
-    def _connect(self) -> sqlite3.Connection:
-        return sqlite3.connect(self.path, isolation_level=None, check_same_thread=False,
-                               timeout=10.0)
-
-    @contextmanager
     def _read(self):
-        """A read-only transaction on an idle read connection (a new one if none is idle)."""
-        if self._memory:
-            with self._tx() as db:
-                yield db
-            return
-        try:
-            db = self._idle_readers.get_nowait()
-        except queue.Empty:
-            db = self._connect()
-            db.execute("PRAGMA query_only=ON")
-            with self._readers_lock:
-                self._readers.append(db)
-        try:
-            db.execute("BEGIN")  # deferred: a snapshot from the first read, no write lock
-            try:
-                yield db
-            finally:
-                if db.in_transaction:  # nothing was written: ending the snapshot is all
-                    db.execute("ROLLBACK")
-        finally:
-            self._idle_readers.put(db)
+        """One read-only snapshot."""
+        return self._backend.read()
 
     def close(self) -> None:
-        with self._lock, self._readers_lock:
-            for db in self._readers:
-                db.close()
-            self._db.close()
+        self._backend.close()
 
     @property
     def journal_mode(self) -> str:
-        with self._lock:
-            return self._db.execute("PRAGMA journal_mode").fetchone()[0]
+        """SQLite's journal mode (``wal``)."""
+        return self._backend.pragma("journal_mode")
 
     @property
     def synchronous(self) -> int:
-        with self._lock:
-            return int(self._db.execute("PRAGMA synchronous").fetchone()[0])
+        """SQLite's synchronous level (2: FULL)."""
+        return int(self._backend.pragma("synchronous"))
 
     @property
     def schema_version(self) -> int:
@@ -282,7 +251,7 @@ class Store:
             return int(db.execute("SELECT version FROM schema_version").fetchone()[0])
 
     @staticmethod
-    def _info(db: sqlite3.Connection, name: str) -> ProblemRecord:
+    def _info(db, name: str) -> ProblemRecord:
         row = db.execute(
             "SELECT p.name, p.revision, r.num_variables, r.num_interactions, "
             "(SELECT COUNT(*) FROM candidates c WHERE c.problem = p.name), p.created_at, "
@@ -291,6 +260,16 @@ class Store:
         if row is None:
             raise NotFoundError("name", f"no problem named {name!r}")
         return ProblemRecord(*row)
+
+    @staticmethod
+    def current_revision(db, name: str, field: str = "problem") -> int:
+        """The current revision of problem ``name`` inside an open transaction ``db``: the
+        one lookup of a problem by its key for modules that keep tables beside the store's
+        (:mod:`flipfix.service.history`); NotFoundError naming ``field`` when there is none."""
+        row = db.execute("SELECT revision FROM problems WHERE name = ?", (name,)).fetchone()
+        if row is None:
+            raise NotFoundError(field, f"no problem named {name!r}")
+        return int(row[0])
 
     @staticmethod
     def _check_name(name: str) -> None:
@@ -366,16 +345,17 @@ class Store:
 
     # -------------------------------------------------------------- candidates
     def add_candidates(self, name: str, revision: int, ids: Sequence[str],
-                       X: np.ndarray, provenance: Sequence[dict], *, field: str = "candidates"
-                       ) -> list[str]:
+                       X: np.ndarray, provenance: Sequence[dict], *, field: str = "candidates",
+                       db=None) -> list[str]:
         """Add K candidates made for ``revision`` (X int8 (K, n), 0/1 in that revision's order).
 
-        Empty ids are assigned ``c<N>``. All or nothing: a taken id stores none.
+        Empty ids are assigned ``c<N>``. All or nothing: a taken id stores none. ``db``: an
+        open write transaction of this store to join (e.g. an adoption's), else one of its own.
         """
         X = np.asarray(X, dtype=np.int8)
         rb = packing.row_bytes(X.shape[1])
         blob = packing.pack_rows(X)
-        with self._tx() as db:
+        with self._tx() if db is None else nullcontext(db) as db:
             row = db.execute("SELECT revision, next_candidate FROM problems WHERE name = ?",
                              (name,)).fetchone()
             if row is None:
@@ -399,7 +379,7 @@ class Store:
                         (name, cid, revision, blob[k * rb:(k + 1) * rb],
                          prov.get("source", ""), prov.get("energy"),
                          json.dumps(list(prov.get("tags", ()))), now))
-                except sqlite3.IntegrityError:
+                except self._backend.integrity_errors:
                     raise AlreadyExistsError(f"{field}.ids[{k}]",
                                              f"candidate {cid!r} already exists") from None
                 out.append(cid)

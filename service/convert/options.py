@@ -35,18 +35,36 @@ def options_to_kwargs(o: pb.RepairOptions, *, default_time_limit: float = 5.0,
         "seed": int(o.seed),
         "workers": max(1, int(o.workers)),
         "pareto": bool(o.pareto),
+        **_alternatives(o, field),
     }
+
+
+def _alternatives(o: pb.RepairOptions, field: str) -> dict:
+    """The alternatives options (fields 50-52) as :func:`flipfix.repair.repair` takes them."""
+    from flipfix.repair.solvers.alternatives import MAX_ALTERNATIVES
+
+    if o.alternatives > MAX_ALTERNATIVES:
+        raise InputError(field + ".alternatives", f"must be at most {MAX_ALTERNATIVES}, got "
+                                                  f"{o.alternatives}")
+    if not o.alternatives:
+        return {}
+    return {"alternatives": int(o.alternatives),
+            "alternative_distance": max(1, int(o.alternative_distance)),
+            "alternatives_by": "decisions" if o.alternatives_by_decisions else "flips"}
 
 
 def kwargs_to_options(*, method: str = "portfolio", time_limit: float = 0.0,
                       max_flips: int | None = None, flip_price: float = 0.0, seed: int = 0,
-                      workers: int = 1, audit_limit: int | None = None, pareto: bool = False
-                      ) -> pb.RepairOptions:
+                      workers: int = 1, audit_limit: int | None = None, pareto: bool = False,
+                      alternatives: int = 0, alternative_distance: int = 0,
+                      alternatives_by_decisions: bool = False) -> pb.RepairOptions:
     if method not in METHOD_ENUM:
         raise InputError("method", f"must be one of {sorted(METHOD_ENUM)}, got {method!r}")
     o = pb.RepairOptions(method=METHOD_ENUM[method], time_limit=float(time_limit or 0.0),
                          flip_price=float(flip_price), seed=int(seed), workers=int(workers),
-                         pareto=bool(pareto))
+                         pareto=bool(pareto), alternatives=int(alternatives),
+                         alternative_distance=int(alternative_distance),
+                         alternatives_by_decisions=bool(alternatives_by_decisions))
     if max_flips is not None:
         o.max_flips = int(max_flips)
     if audit_limit is not None:
