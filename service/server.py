@@ -588,8 +588,9 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
             raise
         servicer.dask_address = cluster.address
     server.start()
-    # NOT_SERVING until the workers' kernels are warm (a first run compiles them)
-    served = ("", SERVICE_NAME, TIMELINE_SERVICE_NAME)
+    # NOT_SERVING until the workers' kernels are warm (a first run compiles them); the
+    # whole server ("") turns SERVING last, once every named service does
+    served = (SERVICE_NAME, TIMELINE_SERVICE_NAME, "")
     for name in served:
         health_servicer.set(name, health_pb2.HealthCheckResponse.NOT_SERVING)
     pool.when_ready(lambda: [health_servicer.set(name, health_pb2.HealthCheckResponse.SERVING)
