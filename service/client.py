@@ -319,9 +319,18 @@ class FlipfixClient:
             reply = self.stub.Repair(req, timeout=timeout)
         else:
             reply = _last_result(self.stub.RepairStream(req, timeout=timeout), on_progress)
-        if isinstance(problem, str) and reply.revision != rev:  # replaced meanwhile
-            dom = self._get_problem(problem, reply.revision)[2]
+        dom = self._reply_model(reply, problem, dom, rev)
         return convert.reply_to_dict(reply, dom), dom
+
+    def _reply_dict(self, reply: pb.RepairReply, problem: str | Any, dom: Problem, rev: int,
+                    ) -> dict:
+        """The reply as a result dict, read with the model of the reply's revision."""
+        return convert.reply_to_dict(reply, self._reply_model(reply, problem, dom, rev))
+
+    def _reply_model(self, reply, problem: str | Any, dom: Problem, rev: int) -> Problem:
+        if isinstance(problem, str) and reply.revision != rev:  # replaced meanwhile
+            return self._get_problem(problem, reply.revision)[2]
+        return dom
 
     # ----------------------------------------------------------------- audit
     @staticmethod
