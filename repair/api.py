@@ -250,6 +250,9 @@ def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, 
     return res
 
 
+#: the conflict search's time when the budget is spent (a small model needs a few
+#: milliseconds; a busy machine more)
+CONFLICT_MIN_SECONDS = 0.25
 #: share of the budget kept for the alternatives' CP-SAT searches when they are asked for
 ALTERNATIVES_SHARE = 0.2
 
@@ -277,13 +280,14 @@ def _name_conflict(res: RepairResult, compiled: Compiled, *, time_limit, seed, c
                    ) -> RepairResult:
     """Without a feasible answer, name a minimal set of hard late constraints that conflict
     (:mod:`flipfix.repair.solvers.conflicts`, in what is left of the budget, at least
-    0.05 s); a proved conflict makes the status "infeasible" and the message names it."""
+    CONFLICT_MIN_SECONDS); a proved conflict makes the status "infeasible" and the message
+    names it. A cancel stops it with what it has proved."""
     if (res.status not in ("infeasible", "no_feasible_found") or not compiled.has_hard
             or (cancel is not None and cancel.is_set())):
         return res
     from flipfix.repair.solvers.conflicts import name_conflict
 
-    left = max(0.05, float(time_limit) - (time.perf_counter() - t0))
+    left = max(CONFLICT_MIN_SECONDS, float(time_limit) - (time.perf_counter() - t0))
     conflict = name_conflict(compiled, time_limit=left, seed=seed, cancel=cancel)
     if conflict.status == "conflict":  # a proof: a search that found nothing is now "infeasible"
         res.conflict = conflict

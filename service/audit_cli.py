@@ -29,8 +29,10 @@ from typing import Any, TextIO
 
 import numpy as np
 
+from flipfix.repair.documents import jsontext
 from flipfix.repair.errors import InputError
 from flipfix.service.errors import TransientError
+from flipfix.service import connect
 
 __all__ = ["register", "run", "audit", "audit_remote", "draw_figure", "format_table"]
 
@@ -97,18 +99,18 @@ def register(subparsers) -> argparse.ArgumentParser:
     p.add_argument("--quiet", action="store_true", help="no progress on stderr")
     p.add_argument("--commit", action="store_true",
                    help="with --server and --keep M: keep only the chosen candidates in the store")
+    connect.add_arguments(p)
     p.set_defaults(func=run)
     return p
 
 
 def _load(path: str, field: str) -> Any:
     try:
-        with open(path, encoding="utf-8") as fh:
-            return json.load(fh)
+        with open(path, "rb") as fh:
+            raw = fh.read()
     except OSError as exc:
         raise InputError(field, f"cannot read {path}: {exc.strerror or exc}") from None
-    except json.JSONDecodeError as exc:
-        raise InputError(field, f"{path} is not valid JSON: {exc.msg} at line {exc.lineno}") from None
+    return jsontext.loads(raw, field=field)
 
 
 def audit(problem, candidates, family=None, *, scenarios: int, seed: int, method: str,
@@ -608,7 +610,8 @@ def _run_remote(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         print("flipfix audit: error: --commit: needs --keep M", file=err)
         return 2
     budget = args.time_limit + args.pareto_time
-    with FlipfixClient(args.server, timeout=2 * budget + 60.0) as fx:
+    with FlipfixClient(args.server, timeout=2 * budget + 60.0,
+                       connection=connect.from_args(args, args.server)) as fx:
         try:
             fx.wait_ready(notice=lambda m: print(m, file=sys.stderr, flush=True))
             _info, problem = fx.get_problem(args.problem)

@@ -28,7 +28,6 @@ import time
 from dataclasses import dataclass
 from typing import Any, Callable, Iterable, Mapping, Sequence
 
-import grpc
 import numpy as np
 
 from flipfix.repair.documents import dimod_forms, forms as documents
@@ -37,6 +36,7 @@ from flipfix.repair.model.candidates import CandidateSet
 from flipfix.repair.model.problem import Problem
 
 from flipfix.service import convert
+from flipfix.service.connect import Connection, open_channel
 from flipfix.service.generated import flipfix_pb2 as pb
 from flipfix.service.generated import flipfix_pb2_grpc as pb_grpc
 
@@ -96,10 +96,16 @@ class FlipfixClient:
     """Wraps the generated stub; ``target`` is ``HOST:PORT``."""
 
     def __init__(self, target: str, *, timeout: float | None = 60.0,
-                 max_message_bytes: int = 64 * 1024 * 1024):
+                 max_message_bytes: int = 64 * 1024 * 1024, ca: str | None = None,
+                 cert: str | None = None, key: str | None = None, token: str | None = None,
+                 connection: Connection | None = None):
+        """``ca``/``cert``/``key``: PEM files (TLS, mutual with cert and key); ``token``: the
+        bearer token sent with every call; or all of it as one ``connection``
+        (:mod:`flipfix.service.connect`)."""
         self.target = target
         self.timeout = timeout
-        self.channel = grpc.insecure_channel(target, options=[
+        conn = connection or Connection(target, ca=ca, cert=cert, key=key, token=token)
+        self.channel = open_channel(conn, options=[
             ("grpc.max_receive_message_length", max_message_bytes),
             ("grpc.max_send_message_length", max_message_bytes)])
         self.stub = pb_grpc.FlipfixStub(self.channel)
@@ -115,6 +121,7 @@ class FlipfixClient:
         ``notice(message)`` is called once if the server is not ready at first. Raises
         ``TimeoutError`` after ``timeout`` seconds, and ``grpc.RpcError`` (UNAVAILABLE) at once
         when nothing answers at the address."""
+        import grpc
         from grpc_health.v1 import health_pb2, health_pb2_grpc
 
         t0 = time.monotonic()

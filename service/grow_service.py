@@ -33,15 +33,17 @@ class GrowServicer(gpb_grpc.GrowServicer):
 
     def _start(self, request, context):
         b = self.base
-        rev, problem, cands = b._audit_library(request.problem, request.candidate_ids, False)
-        b.limits.constraints(request.constraints, "constraints")
-        settings, constraints, heldout, t = convert_grow.request_to_job(
-            request, problem, cands, default_time_limit=b.config.default_audit_time_limit,
-            max_scenarios=b.config.max_scenarios)
-        budget = b._budget(t, context)
-        job = b._submit_call(grow_jobs.grow_job, (problem, cands, settings),
-                             {"constraints": constraints, "time_limit": budget,
-                              "heldout": heldout}, context)
+        # the library's read and conversion pass the heavy-call gate, as a repair's do
+        with b._heavy(request, context, "Propose", request.problem):
+            rev, problem, cands = b._audit_library(request.problem, request.candidate_ids, False)
+            b.limits.constraints(request.constraints, "constraints")
+            settings, constraints, heldout, t = convert_grow.request_to_job(
+                request, problem, cands, default_time_limit=b.config.default_audit_time_limit,
+                max_scenarios=b.config.max_scenarios)
+            budget = b._budget(t, context)
+            job = b._submit_call(grow_jobs.grow_job, (problem, cands, settings),
+                                 {"constraints": constraints, "time_limit": budget,
+                                  "heldout": heldout}, context)
         return job, budget, rev
 
     def _finish(self, request, context, result, budget: float, rev: int) -> gpb.GrowReply:

@@ -30,7 +30,10 @@ from flipfix.service.errors import ConflictError, NotFoundError, translate_error
 from flipfix.service.generated import flipfix_pb2 as pb
 from flipfix.service.generated import timeline_pb2 as tpb
 from flipfix.service.generated import timeline_pb2_grpc as tpb_grpc
+from flipfix.service.auth import ANONYMOUS
+from flipfix.service.auth import current as current_caller
 from flipfix.service.history import EventRow, History, PublishedRow, RecordRow
+from flipfix.service.store import TENANT_SEPARATOR, Store
 
 __all__ = ["Timeline", "TimelineServicer", "Used", "TIMELINE_SERVICE_NAME", "caller_of"]
 
@@ -48,13 +51,31 @@ AUDIT_RUNS = {
 
 
 def caller_of(context) -> str:
-    """The caller's identity for the history: the authenticated peer identity when the
-    transport has one (a TLS client certificate), else ""."""
+    """The caller's identity for the history: the bearer token's tenant and role (when the
+    server checks tokens) and the authenticated peer identity (a TLS client certificate),
+    as far as the call has them; "" for an anonymous call over a plain channel."""
+    parts = []
+    who = current_caller()
+    if who is not ANONYMOUS:
+        parts.append(f"token {who.tenant or '-'}/{who.role}")
     try:
         ids = context.peer_identities() if context is not None else None
     except Exception:  # a context without a transport identity
-        return ""
-    return b",".join(ids).decode("utf-8", "replace") if ids else ""
+        ids = None
+    if ids:
+        parts.append("tls " + b",".join(ids).decode("utf-8", "replace"))
+    return "; ".join(parts)
+
+
+def stored_key(name: str) -> str:
+    """The store's key of the calling tenant's problem ``name`` (the timeline's tables
+    refer to problems by that key, so one tenant never sees another's timeline)."""
+    return Store._key(current_caller().tenant, name)
+
+
+def shown(key: str) -> str:
+    """The problem name of a stored key, as its tenant calls it."""
+    return key.rsplit(TENANT_SEPARATOR, 1)[-1]
 
 
 # ------------------------------------------------------------- published plan
@@ -134,7 +155,7 @@ class Timeline:
         if request.from_published_plan:
             if request.WhichOneof("library") != "problem":
                 raise InputError("from_published_plan", "only for a stored problem")
-            pub = self.history.published(request.problem)
+            pub = self.history.published(stored_key(request.problem))
             ids = [pub.candidate_id] + [i for i in ids if i != pub.candidate_id]
         return ids
 
@@ -165,7 +186,7 @@ class Timeline:
     def used(self, request: pb.RepairRequest, problem: Problem, revision: int) -> Used:
         """The constraints a repair uses (see the module doc); events checked one by one."""
         stored = request.WhichOneof("library") == "problem"
-        name = request.problem if stored else None
+        name = stored_key(request.problem) if stored else None
         if request.use_events and not stored:
             raise InputError("use_events", "only for a stored problem")
         if request.options.alternatives_by_decisions and not problem.decisions:
@@ -214,7 +235,7 @@ class Timeline:
         events = tpb.ListEventsReply(events=[self.event_proto(e) for e in used.events])
         try:
             reply.record_id = self.history.add_record(
-                request.problem, kind="repair", rpc="Repair", revision=reply.revision,
+                stored_key(request.problem), kind="repair", rpc="Repair", revision=reply.revision,
                 seconds=time.perf_counter() - used.started, seed=reply.seed, status=reply.status,
                 request=request.SerializeToString(), reply=reply.SerializeToString(),
                 best_cost=b.cost, flips=b.flips, decisions_changed=b.decisions_changed,
@@ -226,7 +247,8 @@ class Timeline:
 
     def record_audit(self, rpc: str, request, reply, *, problem: str, revision: int,
                      started: float, seed: int = 0, status: str = "done", context=None) -> None:
-        """Record one audit run (its request and reply)."""
+        """Record one audit run (its request and reply) of the calling tenant's ``problem``."""
+        problem = stored_key(problem)
         try:
             self.history.add_record(problem, kind="audit", rpc=rpc, revision=revision,
                                     seconds=time.perf_counter() - started, seed=seed,
@@ -239,7 +261,7 @@ class Timeline:
     def event_proto(self, e: EventRow, *, state: int | None = None, problem_message: str = ""
                     ) -> tpb.Event:
         return tpb.Event(
-            id=e.id, problem=e.problem, constraint=pb.Constraint.FromString(e.payload),
+            id=e.id, problem=shown(e.problem), constraint=pb.Constraint.FromString(e.payload),
             state=state if state is not None else (
                 tpb.EVENT_STATE_IN_FORCE if e.in_force else tpb.EVENT_STATE_WITHDRAWN),
             added_at=e.added_at, added_by=e.added_by, revision=e.revision,
@@ -255,7 +277,7 @@ def check_constraint(c: pb.Constraint, problem: Problem, field: str) -> None:
 
 def _summary(r: RecordRow) -> tpb.RecordSummary:
     s = tpb.RecordSummary(
-        id=r.id, problem=r.problem,
+        id=r.id, problem=shown(r.problem),
         kind=tpb.RECORD_KIND_REPAIR if r.kind == "repair" else tpb.RECORD_KIND_AUDIT,
         rpc=r.rpc, revision=r.revision, recorded_at=r.recorded_at, caller=r.caller,
         seconds=r.seconds, seed=r.seed, status=r.status, flips=r.flips,
@@ -268,7 +290,7 @@ def _summary(r: RecordRow) -> tpb.RecordSummary:
 
 
 def _published(p: PublishedRow) -> tpb.PublishedPlan:
-    return tpb.PublishedPlan(problem=p.problem, candidate_id=p.candidate_id, revision=p.revision,
+    return tpb.PublishedPlan(problem=shown(p.problem), candidate_id=p.candidate_id, revision=p.revision,
                              published_at=p.published_at, published_by=p.published_by)
 
 
@@ -284,7 +306,7 @@ class TimelineServicer(tpb_grpc.TimelineServicer):
     def _name(request) -> str:
         if not request.problem:
             raise InputError("problem", "must name a stored problem")
-        return request.problem
+        return stored_key(request.problem)
 
     @translate_errors
     def AddEvent(self, request, context):

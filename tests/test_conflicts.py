@@ -7,6 +7,7 @@ the late constraints is read from ``Compiled.evaluate`` over all of them.
 
 from __future__ import annotations
 
+import dataclasses
 import itertools
 
 import dimod
@@ -154,7 +155,7 @@ def test_cli_prints_the_conflict_locally_and_through_a_server(tmp_path, capsys):
     for name, doc in docs.items():
         paths.append(tmp_path / f"{name}.json")
         paths[-1].write_text(json.dumps(doc))
-    args = ["repair", *map(str, paths), "--time-limit", "1", "--quiet"]
+    args = ["repair", *map(str, paths), "--time-limit", "2", "--quiet"]
     with create_server("127.0.0.1:0", db_path=str(tmp_path / "c.sqlite3"), warm=False) as srv:
         for extra in ([], ["--server", srv.address]):
             assert main(args + extra) == 0
@@ -164,3 +165,30 @@ def test_cli_prints_the_conflict_locally_and_through_a_server(tmp_path, capsys):
             assert [(m["index"], m["name"]) for m in out["conflict"]["members"]] == [
                 (0, "a on"), (2, "not a with c off"), (3, "c off")]
             assert "[0] a on, [2] not a with c off, [3] c off" in cap.err
+
+
+@pytest.mark.parametrize("assumptions", [True, False])
+def test_many_constraints_divide_and_conquer_against_brute_force(monkeypatch, assumptions):
+    """Over 16 hard constraints: without the assumptions' core (its time set to 0) every
+    constraint is the start and divide and conquer narrows it; the set is still minimal."""
+    from flipfix.repair.solvers import conflicts
+
+    if not assumptions:
+        monkeypatch.setattr(conflicts, "ASSUMPTION_SECONDS", 0.0)
+    rng = np.random.default_rng(11)
+    found = 0
+    for trial in range(12):
+        n = 8
+        problem = Problem.from_terms({f"x{i}": 0.0 for i in range(n)}, [])
+        states = _all_states(problem)
+        cons = []
+        while len(cons) < 20:
+            cons.extend(_random_hard(problem, rng))
+        cons = [dataclasses.replace(c, name=f"{c.name}.{j}") for j, c in enumerate(cons)]
+        res = name_conflict(compile_constraints(problem, cons), seed=trial)
+        if _feasible(problem, cons, states):
+            assert res.status == "feasible"
+            continue
+        _check_minimal(problem, cons, res, states)
+        found += 1
+    assert found >= 6

@@ -181,6 +181,9 @@ def test_schema_1_database_is_migrated(tmp_path):
     s.close()
     db = sqlite3.connect(path)  # rewrite the file as schema 1 had it
     db.executescript("""
+        DROP INDEX problems_by_tenant;
+        ALTER TABLE problems DROP COLUMN tenant;
+        ALTER TABLE problems DROP COLUMN bytes;
         ALTER TABLE candidates RENAME TO c2;
         DROP INDEX candidates_by_problem;
         CREATE TABLE candidates (seq INTEGER PRIMARY KEY AUTOINCREMENT,
@@ -200,7 +203,7 @@ def test_schema_1_database_is_migrated(tmp_path):
     db.close()
 
     s = Store(path)
-    assert s.schema_version == SCHEMA_VERSION == 2
+    assert s.schema_version == SCHEMA_VERSION == 3
     recs, _ = s.list_candidates("p")
     assert [r.id for r in recs] == ids_before
     assert [r.x.tolist() for r in recs] == X.tolist()

@@ -187,6 +187,8 @@ def _score(compiled: Compiled, X0, x, origin: int, flip_price: float, method: st
 def _fill(compiled, X0, picked, consider, *, k, distance, by_decisions, flip_price, deadline,
           seed, workers, cancel) -> None:
     """More alternatives from CP-SAT, each at least ``distance`` from every one picked."""
+    from ortools.sat.python import cp_model
+
     from flipfix.repair.model.encodings import decision_bits
     from flipfix.repair.solvers.cpsat import LateModel
 
@@ -202,35 +204,24 @@ def _fill(compiled, X0, picked, consider, *, k, distance, by_decisions, flip_pri
         if left <= 0.01 or (cancel is not None and cancel.is_set()):
             return
         m = model.model.clone()
-        proto = m.proto
-        xs = [v.index for v in model.x]
-        for a in picked:
+        xs = [m.get_bool_var_from_proto_index(v.index) for v in model.x]
+        weighted = cp_model.LinearExpr.weighted_sum
+        for a in picked:  # |x_i - a_i| = (1 - 2 a_i) x_i + a_i
             ax = np.asarray(a.x, dtype=np.int64)
-            if not by_decisions:  # sum_i (1 - 2 a_i) x_i >= d - sum_i a_i
-                ct = proto.constraints.add()
-                ct.linear.vars.extend(xs)
-                ct.linear.coeffs.extend((1 - 2 * ax).tolist())
-                ct.linear.domain.extend([int(distance - ax.sum()), 2 ** 40])
+            if not by_decisions:  # Hamming distance from a: sum_i |x_i - a_i| >= d
+                m.add(weighted(xs, (1 - 2 * ax).tolist()) >= int(distance - ax.sum()))
                 continue
-            ind = []
-            for idx in bits:  # c_j <= sum over the decision's bits of |x_i - a_i|
-                c = len(proto.variables)
-                var = proto.variables.add()
-                var.domain.extend([0, 1])
-                ind.append(c)
+            changed = []
+            for idx in bits:  # c_j = 1 only when a bit of decision j differs from a
+                c = m.new_bool_var("")
                 sub = ax[idx]
-                ct = proto.constraints.add()
-                ct.linear.vars.extend([xs[i] for i in idx.tolist()] + [c])
-                ct.linear.coeffs.extend((1 - 2 * sub).tolist() + [-1])
-                ct.linear.domain.extend([-int(sub.sum()), 2 ** 40])
-            ct = proto.constraints.add()
-            ct.linear.vars.extend(ind)
-            ct.linear.coeffs.extend([1] * len(ind))
-            ct.linear.domain.extend([int(distance), 2 ** 40])
+                m.add(weighted([xs[i] for i in idx.tolist()] + [c],
+                               (1 - 2 * sub).tolist() + [-1]) >= -int(sub.sum()))
+                changed.append(c)
+            m.add(cp_model.LinearExpr.sum(changed) >= distance)
         idx, coef, const_units, _err, _s = model._objective_terms(center, flip_price)
-        proto.objective.vars.extend(idx.tolist())
-        proto.objective.coeffs.extend(coef.tolist())
-        proto.objective.offset = float(const_units)
+        m.minimize(weighted([m.get_int_var_from_proto_index(int(i)) for i in idx],
+                            coef.tolist()) + const_units)
         _solver, status, x = model._run(m, t0=time.perf_counter(), time_limit=left,
                                         workers=workers, seed=seed + tries, cancel=cancel)
         if x is None:  # infeasible: nothing further that far away; unknown: out of time

@@ -4,12 +4,17 @@ from __future__ import annotations
 
 import math
 
+from flipfix.repair.api import check_options
 from flipfix.repair.errors import InputError
 
 from flipfix.service.convert.enums import METHOD_ENUM, METHOD_NAMES, METHOD_TEXT, enum_name
 from flipfix.service.generated import flipfix_pb2 as pb
 
-__all__ = ["options_to_kwargs", "kwargs_to_options", "nonneg"]
+__all__ = ["options_to_kwargs", "kwargs_to_options", "nonneg", "MAX_WIRE_FLIPS"]
+
+#: The largest max_flips accepted on the wire (the int32 range: larger uint32 values are
+#: almost always a negative int32 that the client sent unchecked).
+MAX_WIRE_FLIPS = 2**31 - 1
 
 
 def nonneg(v: float, field: str) -> float:
@@ -27,7 +32,12 @@ def options_to_kwargs(o: pb.RepairOptions, *, default_time_limit: float = 5.0,
         raise InputError(field + ".time_limit", f"must be >= 0 seconds, got {o.time_limit!r}")
     if not math.isfinite(o.flip_price) or o.flip_price < 0:
         raise InputError(field + ".flip_price", f"must be >= 0, got {o.flip_price!r}")
-    return {
+    if o.HasField("max_flips") and o.max_flips > MAX_WIRE_FLIPS:
+        # a negative number sent by a client as int32 arrives as a uint32 near 2^32
+        raise InputError(field + ".max_flips", f"must be a whole number in [0, {MAX_WIRE_FLIPS}], "
+                                               f"got {o.max_flips} (a negative value sent as "
+                                               "uint32 arrives as 2^32 minus it)")
+    kwargs = {
         "method": method,
         "time_limit": float(o.time_limit) if o.time_limit > 0 else float(default_time_limit),
         "max_flips": int(o.max_flips) if o.HasField("max_flips") else None,
@@ -37,6 +47,12 @@ def options_to_kwargs(o: pb.RepairOptions, *, default_time_limit: float = 5.0,
         "pareto": bool(o.pareto),
         **_alternatives(o, field),
     }
+    try:
+        check_options(**{k: kwargs[k] for k in ("method", "time_limit", "max_flips",
+                                                "flip_price", "seed", "workers")})
+    except InputError as err:
+        raise InputError(f"{field}.{err.field}", err.message) from None
+    return kwargs
 
 
 def _alternatives(o: pb.RepairOptions, field: str) -> dict:
