@@ -26,13 +26,11 @@ __all__ = ["repair", "warm_up", "check_options", "result_seconds", "search_deadl
 
 def warm_up() -> None:
     """Load (or, on a machine's first run, compile) every search kernel once per process:
-    greedy, the scorer and annealing. Set-up, never counted against a budget."""
-    from flipfix.repair.kernels import scores
-    from flipfix.repair.solvers import anneal, greedy
+    greedy, the scorer and annealing. Set-up, never counted against a budget; a cold
+    compile is announced on stderr first (:mod:`flipfix.repair.kernels.readiness`)."""
+    from flipfix.repair.kernels import readiness
 
-    greedy.warm_up()
-    scores.warm_up()
-    anneal.warm_up()
+    readiness.warm_up()
 
 
 def check_options(*, method: Any, time_limit: Any, max_flips: Any, flip_price: Any, seed: Any,
@@ -222,10 +220,11 @@ def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, 
             progress(kw)
 
     if compiled.fix_conflicts:
-        label, name = compiled.fix_conflicts[0]
+        label, first, second = compiled.fix_conflicts[0]
         res = _build(problem, candidates, compiled, scorer, [], price, method, seed, t0,
                      status="infeasible", **common,
-                     message=f"variable {label!r} is fixed to both values ({name})")
+                     message=f"{first!r} and {second!r} fix variable {label!r} to different "
+                             f"values")
         return _name_conflict(res, compiled, time_limit=time_limit, seed=seed, cancel=cancel,
                               t0=t0)
     # the front's attempts are not known yet: those of greedy plus a round of kicks
@@ -358,7 +357,9 @@ def _build(problem, candidates, compiled, scorer, attempts, price, method, seed,
         audit.append(AuditRow(ids[k], c0[k], v0[k] == 0.0, c1[k], o1[k], f1[k], v1[k] == 0.0,
                               v1[k], attempts[a].method, secs[k], chg[k], issues.get(k, [])))
     ev = compiled.evaluate(xb[None, :])
-    violations = {name: float(v[0]) for name, v in ev.violations.items()}
+    # a decision's validity row is listed only when the answer breaks it
+    violations = {name: float(v[0]) for name, v in ev.violations.items()
+                  if v[0] or name not in compiled.encoding_names}
     if max_flips is not None:
         violations["max_flips"] = float(max(0, int(flips[b]) - max_flips))
     changes = _changes(problem, X0[bk], xb)

@@ -96,6 +96,7 @@ def register(subparsers) -> argparse.ArgumentParser:
                         "address (tcp://host:8786) or local:N worker processes started here")
     p.add_argument("--server", metavar="HOST:PORT", default=None,
                    help="audit a problem stored in a running flipfix service")
+    p.add_argument("--quiet", action="store_true", help="no progress on stderr")
     p.add_argument("--commit", action="store_true",
                    help="with --server and --keep M: keep only the chosen candidates in the store")
     connect.add_arguments(p)
@@ -131,6 +132,8 @@ def audit(problem, candidates, family=None, *, scenarios: int, seed: int, method
 
     if family is None:
         family = default_family(problem)
+    if progress is not None:
+        progress({"phase": "robustness"})
     prof = robustness_profile(problem, candidates, epsilon=epsilon)
     stress = stress_test(problem, candidates, family, scenarios=scenarios, seed=seed, method=method,
                          time_limit=time_limit, epsilon=epsilon, cancel=cancel, progress=progress,
@@ -140,6 +143,8 @@ def audit(problem, candidates, family=None, *, scenarios: int, seed: int, method
         pareto_constraints, pareto_what = sc.constraints, f"scenario 0: {sc.description}"
     else:
         pareto_what = "given constraints"
+    if progress is not None:
+        progress({"phase": "pareto"})
     front = cost_flip_front(problem, candidates, pareto_constraints, methods=tuple(pareto_methods),
                             time_limit=pareto_time, seed=seed, cancel=cancel)
     cur = None
@@ -159,35 +164,26 @@ def audit_remote(client, name: str, family, *, scenarios: int, seed: int, method
                  pareto_time: float = 2.0, progress=None) -> dict:
     """:func:`audit` through a running service (``client``: :class:`flipfix.service.client.FlipfixClient`);
     the library is the stored problem ``name`` (candidates of its current revision).
-
-    The service's ``ScenarioFamily`` message has no decision-level parts yet: a family
-    with ``unavailable_values`` or ``must_change`` is refused here (InputError naming the
-    part) instead of being sent without them.
+    ``progress`` gets a dict ``{"phase"}`` at each stage and the stress test's progress
+    messages (:class:`flipfix.service.progress.Progress` takes both).
     """
     from flipfix.repair.audit.stress import draw_scenarios
 
-    for part in ("unavailable_values", "must_change"):
-        if getattr(family, part):
-            raise InputError(f"family.{part}", "decision-level scenarios are not in the "
-                                               "service's StressTest yet; audit in-process "
-                                               "(without --server)")
+    if progress is not None:
+        progress({"phase": "robustness"})
     prof = client.robustness(name, epsilon=epsilon)
     opts = dict(scenarios=scenarios, seed=seed, method=method, time_limit=time_limit,
                 epsilon=epsilon)
     cur, kept_note = None, None
     if keep is not None:
+        if progress is not None:
+            progress({"phase": "stress + curation"})
         out = client.curate(name, family, keep, keep=commit, **opts)
         stress, cur = out["stress"], out["curation"]
         kept_note = out["message"] + (f"; removed: {', '.join(out['removed_ids'])}"
                                       if out["removed_ids"] else "")
     else:
         stress = client.stress_test(name, family, on_progress=progress, **opts)
-    # the service's CandidateStress has no free_decisions yet; the profile (same epsilon) has both
-    counts = {q.candidate_id: q for q in prof.profiles}
-    for c in stress.candidates:
-        if c.candidate_id in counts:
-            c.free_variables = counts[c.candidate_id].free_variables
-            c.free_decisions = counts[c.candidate_id].free_decisions
     if pareto_constraints is None:  # scenario 0, drawn exactly as the server draws it
         info, problem = client.get_problem(name)
         [lib] = client.list_candidates(name, revision=info.revision)  # one revision: one run
@@ -196,6 +192,8 @@ def audit_remote(client, name: str, family, *, scenarios: int, seed: int, method
         pareto_constraints, pareto_what = sc.constraints, f"scenario 0: {sc.description}"
     else:
         pareto_what = "given constraints"
+    if progress is not None:
+        progress({"phase": "pareto"})
     got = client.pareto_front(name, pareto_constraints, methods=tuple(pareto_methods),
                               time_limit=pareto_time, seed=seed, cheapest_within_flips=5,
                               fewest_flips_within_percent=1.0)
@@ -511,6 +509,9 @@ def run(args: argparse.Namespace, *, out: TextIO | None = None, err: TextIO | No
         print("flipfix audit: error: candidates: a candidates JSON document is needed "
               "(or --server HOST:PORT with a stored problem)", file=err)
         return 2
+    from flipfix.repair.kernels.readiness import warm_up
+
+    warm_up()  # before the stress test's clock: a first run compiles the kernels (announced)
     try:
         problem = parse_problem(_load(args.problem, "problem"))
         doc = _load(args.candidates, "candidates")
@@ -520,17 +521,27 @@ def run(args: argparse.Namespace, *, out: TextIO | None = None, err: TextIO | No
         cons = _pareto_constraints(args, problem)
         family = _family_of(args, problem)
         methods = _pareto_methods(args)
-        with _cluster(getattr(args, "dask", None)) as runner:
+        with _cluster(getattr(args, "dask", None)) as runner, _progress(args, err) as show:
             report = audit(problem, candidates, family, scenarios=args.scenarios,
                            seed=args.seed, method=args.method, time_limit=args.time_limit,
                            epsilon=args.epsilon, keep=args.keep, pareto_constraints=cons,
-                           pareto_methods=methods, pareto_time=args.pareto_time, runner=runner)
+                           pareto_methods=methods, pareto_time=args.pareto_time, runner=runner,
+                           progress=show)
     except (InputError, TransientError) as exc:
         field = _OPTION_OF.get(exc.field, exc.field)
         print(f"flipfix audit: error: {field}: {exc.message}", file=err)
         return 2
     _emit(args, report, out)
     return 0
+
+
+def _progress(args, err: TextIO):
+    """The audit's progress on ``err`` (a bar on a terminal, lines elsewhere): the stress
+    test counts scenarios; the budget is the stress test's plus the front's."""
+    from flipfix.service.progress import Progress
+
+    return Progress("audit", budget=args.time_limit + args.pareto_time, unit="scenarios",
+                    enabled=not getattr(args, "quiet", False), stream=err)
 
 
 @contextmanager
@@ -602,21 +613,17 @@ def _run_remote(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     with FlipfixClient(args.server, timeout=2 * budget + 60.0,
                        connection=connect.from_args(args, args.server)) as fx:
         try:
+            fx.wait_ready(notice=lambda m: print(m, file=sys.stderr, flush=True))
             _info, problem = fx.get_problem(args.problem)
-            if problem.decisions and all(getattr(args, o) is None for o in _PART_OPTIONS.values()):
-                print("flipfix audit: error: --server: the problem declares decisions, whose "
-                      "default scenarios (--unavailable 1) the service cannot run yet; give "
-                      "--weight, --fix-k or --cut for bit-level scenarios, or audit in-process",
-                      file=err)
-                return 2
             cons = _pareto_constraints(args, problem)
             family = _family_of(args, problem)
             methods = _pareto_methods(args)
-            report = audit_remote(
-                fx, args.problem, family, scenarios=args.scenarios, seed=args.seed,
-                method=args.method, time_limit=args.time_limit, epsilon=args.epsilon,
-                keep=args.keep, commit=args.commit, pareto_constraints=cons,
-                pareto_methods=methods, pareto_time=args.pareto_time)
+            with _progress(args, err) as show:
+                report = audit_remote(
+                    fx, args.problem, family, scenarios=args.scenarios, seed=args.seed,
+                    method=args.method, time_limit=args.time_limit, epsilon=args.epsilon,
+                    keep=args.keep, commit=args.commit, pareto_constraints=cons,
+                    pareto_methods=methods, pareto_time=args.pareto_time, progress=show)
         except InputError as exc:
             field = _OPTION_OF.get(exc.field, exc.field)
             print(f"flipfix audit: error: {field}: {exc.message}", file=err)
@@ -630,6 +637,9 @@ def _run_remote(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
                 return 2
             print(f"flipfix audit: error: server {args.server}: {exc.code().name}: "
                   f"{exc.details()}", file=err)
+            return 1
+        except TimeoutError as exc:
+            print(f"flipfix audit: error: server {args.server}: {exc}", file=err)
             return 1
     _emit(args, report, out)
     return 0

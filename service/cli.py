@@ -21,15 +21,16 @@ import re
 import signal
 import sys
 import threading
-import time
 from pathlib import Path
 
 from flipfix.repair.errors import InputError
+from flipfix.service.progress import Progress
 
 __all__ = ["main", "build_parser"]
 
 EXIT_USAGE = 2  # a bad file or option (argparse uses 2 too)
 EXIT_FAILURE = 1
+EXIT_NOT_FEASIBLE = 3  # with --require-feasible: the answer breaks a hard constraint
 
 
 class UsageError(Exception):
@@ -38,13 +39,18 @@ class UsageError(Exception):
 
 # ------------------------------------------------------------------ helpers
 def _load_json(path: str, what: str):
-    """The JSON document in ``path`` (strict: :mod:`flipfix.repair.documents.jsontext`)."""
+    """The JSON document in ``path`` (strict: :mod:`flipfix.repair.documents.jsontext`); for
+    the problem also a dimod ConstrainedQuadraticModel file."""
     from flipfix.repair.documents import jsontext
 
     try:
         raw = Path(path).read_bytes()
     except OSError as err:
         raise UsageError(f"{path}: cannot read the {what} file: {err.strerror or err}") from None
+    from flipfix.repair.documents import dimod_forms
+
+    if what == "problem" and raw.startswith(dimod_forms.CQM_MAGIC):
+        return dimod_forms.read_cqm_file(raw)
     try:
         return jsontext.loads(raw, field=what)
     except InputError as err:
@@ -69,24 +75,6 @@ def _blame(err: InputError, files: dict) -> str:
     return f"{field}: {err.message}"
 
 
-class _Progress:
-    """Progress lines on stderr, at most a few per second."""
-
-    def __init__(self, enabled: bool):
-        self.enabled = enabled
-        self.t0 = time.monotonic()
-        self.last = 0.0
-
-    def __call__(self, done, total, best_cost, phase="") -> None:
-        now = time.monotonic()
-        if not self.enabled or now - self.last < 0.5:
-            return
-        self.last = now
-        best = "-" if best_cost is None else f"{best_cost:.6g}"
-        print(f"flipfix: {now - self.t0:6.1f}s  {phase or 'running'}: {done}/{total} candidates, "
-              f"best cost {best}", file=sys.stderr, flush=True)
-
-
 def _repair_options(args) -> dict:
     return {"method": args.method, "time_limit": args.time_limit, "max_flips": args.max_flips,
             "flip_price": args.flip_price, "seed": args.seed, "workers": args.workers,
@@ -97,7 +85,7 @@ def cmd_repair(args) -> int:
     files = {"problem": args.problem, "candidates": args.candidates,
              "constraints": args.constraints}
     docs = {k: _load_json(v, k) for k, v in files.items()}
-    show = _Progress(not args.quiet)
+    show = Progress("repair", budget=args.time_limit, enabled=not args.quiet)
     try:
         if args.server:
             out = _repair_remote(args, docs, show)
@@ -107,26 +95,44 @@ def cmd_repair(args) -> int:
         raise UsageError(_blame(err, files)) from None
     if out.get("conflict"):  # the hard constraints that cannot all hold, readable
         print(f"flipfix: {out['conflict']['message']}", file=sys.stderr)
-    json.dump(out, sys.stdout, indent=2)
+    if args.output == "sampleset":  # dimod's serialised SampleSet of the answer
+        json.dump(out.pop("_sampleset"), sys.stdout)
+    else:
+        out.pop("_sampleset", None)
+        json.dump(out, sys.stdout, indent=2)
     sys.stdout.write("\n")
+    if args.require_feasible and not out["best"]["feasible"]:
+        broken = [k for k, v in out["best"].get("violations", {}).items() if v]
+        print(f"flipfix: the answer is not feasible (status {out['status']}"
+              + (f"; violated: {', '.join(broken)}" if broken else "")
+              + (f"; {out['message']}" if out.get("message") else "") + ")",
+              file=sys.stderr)
+        return EXIT_NOT_FEASIBLE
     return 0
 
 
-def _repair_local(args, docs: dict, show: _Progress) -> dict:
-    from flipfix.repair.documents import forms as documents
+def _repair_local(args, docs: dict, show: Progress) -> dict:
+    from flipfix.repair.documents import dimod_forms, forms as documents
     from flipfix.repair import repair
 
-    problem = documents.parse_problem(docs["problem"])
-    candidates = documents.parse_candidates(docs["candidates"], problem)
-    constraints = documents.parse_constraints(docs["constraints"], problem)
-    res = repair(problem, candidates, constraints, **_repair_options(args),
-                 progress=lambda d: show(d.get("done"), d.get("total"), d.get("best_cost"),
-                                         d.get("phase", "")))
-    return res.to_dict()
+    from flipfix.repair.kernels.readiness import warm_up
+
+    warm_up()  # before any clock: a first run compiles the kernels (announced on stderr)
+    if args.method != "greedy":  # OR-Tools loads in about a second: before the progress clock too
+        from flipfix.repair.solvers import cpsat  # noqa: F401
+    problem, rows = dimod_forms.read_problem(docs["problem"])
+    candidates = dimod_forms.read_candidates(docs["candidates"], problem)
+    constraints = rows + documents.parse_constraints(docs["constraints"], problem)
+    with show:
+        res = repair(problem, candidates, constraints, **_repair_options(args), progress=show)
+        show({"phase": "done", "best_cost": res.best.cost if res.best.feasible else None})
+    out = res.to_dict()
+    if args.output == "sampleset":
+        out["_sampleset"] = dimod_forms.to_sampleset(out, problem).to_serializable()
+    return out
 
 
-def _repair_remote(args, docs: dict, show: _Progress) -> dict:
-    from flipfix.service import convert
+def _repair_remote(args, docs: dict, show: Progress) -> dict:
     from flipfix.service.client import FlipfixClient, FlipfixError
 
     # the client reads each document once, before any call; its errors name the field
@@ -138,16 +144,23 @@ def _repair_remote(args, docs: dict, show: _Progress) -> dict:
     with FlipfixClient(args.server, timeout=timeout,
                        connection=connect.from_args(args, args.server)) as fx:
         try:
-            return fx.repair(docs["problem"], docs["constraints"], candidates=docs["candidates"],
-                             **_repair_options(args),
-                             on_progress=lambda p: show(p.done, p.total,
-                                                        p.best_cost if p.HasField("best_cost") else None,
-                                                        convert.PHASE_NAMES.get(p.current_phase, "")))
+            fx.wait_ready(notice=lambda m: print(m, file=sys.stderr, flush=True))
+            call = fx.repair_sampleset if args.output == "sampleset" else fx.repair
+            with show:
+                got = call(docs["problem"], docs["constraints"], candidates=docs["candidates"],
+                           **_repair_options(args), on_progress=show.message)
+                best = (got[1] if args.output == "sampleset" else got)["best"]
+                show({"phase": "done", "best_cost": best["cost"] if best["feasible"] else None})
+            if args.output == "sampleset":
+                return {**got[1], "_sampleset": got[0].to_serializable()}
+            return got
         except FlipfixError as err:
             if err.reason == "INVALID_FIELD":
                 raise InputError(err.field, err.violations[0][1] if err.violations
                                  else err.details()) from None
             raise UsageError(f"server {args.server}: {err.code().name}: {err.details()}") from None
+        except TimeoutError as err:
+            raise UsageError(f"server {args.server}: {err}") from None
 
 
 def cmd_serve(args) -> int:
@@ -174,8 +187,10 @@ def cmd_serve(args) -> int:
         raise UsageError(str(err)) from None
     except InputError as err:
         raise UsageError(f"{err.field}: {err.message}") from None
-    print(f"flipfix: serving on {args.host}:{srv.port} (db {args.db}, {args.workers} worker(s))",
-          file=sys.stderr, flush=True)
+    print(f"flipfix: serving on {args.host}:{srv.port} (db {args.db}, {args.workers} worker(s)); "
+          f"health NOT_SERVING until the search kernels are loaded", file=sys.stderr, flush=True)
+    srv.pool.when_ready(lambda: print("flipfix: ready (health SERVING)", file=sys.stderr,
+                                      flush=True))
 
     def stop(signum, _frame):
         srv.begin_shutdown()  # new calls get UNAVAILABLE from here on
@@ -281,6 +296,12 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--pareto", action="store_true", help="also report the (cost, flips) front")
     r.add_argument("--server", metavar="HOST:PORT", help="repair through a running service")
     r.add_argument("--quiet", action="store_true", help="no progress on stderr")
+    r.add_argument("--output", choices=("result", "sampleset"), default="result",
+                   help="stdout: the result JSON (result), or the answer as dimod's serialised "
+                        "SampleSet JSON (sampleset)")
+    r.add_argument("--require-feasible", action="store_true",
+                   help=f"exit with code {EXIT_NOT_FEASIBLE} when the answer is not feasible "
+                        "(the result JSON is printed all the same)")
     from flipfix.service import connect
 
     connect.add_arguments(r)

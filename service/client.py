@@ -29,6 +29,7 @@ and ``err.details()`` (the message). Transport failures carry the reason ``""``.
 from __future__ import annotations
 
 import functools
+import time
 from dataclasses import dataclass
 from typing import Any, Callable, Iterable, Mapping, Sequence
 
@@ -37,7 +38,8 @@ import numpy as np
 from google.rpc import error_details_pb2
 from grpc_status import rpc_status
 
-from flipfix.repair.documents import forms as documents
+from flipfix.repair.documents import dimod_forms, forms as documents
+from flipfix.repair.errors import InputError
 from flipfix.repair.model.candidates import CandidateSet
 from flipfix.repair.errors import InputError
 from flipfix.repair.model.problem import Problem
@@ -196,6 +198,37 @@ class FlipfixClient:
     def close(self) -> None:
         self.channel.close()
 
+    def wait_ready(self, timeout: float | None = 300.0, *,
+                   notice: Callable[[str], None] | None = None) -> None:
+        """Block until the server's health is SERVING: a freshly started server reports
+        NOT_SERVING while its workers load (on a machine's first run: compile) the search
+        kernels. Event-driven (the standard ``grpc.health.v1.Health/Watch`` stream).
+        ``notice(message)`` is called once if the server is not ready at first. Raises
+        ``TimeoutError`` after ``timeout`` seconds, and ``grpc.RpcError`` (UNAVAILABLE) at once
+        when nothing answers at the address."""
+        import grpc
+        from grpc_health.v1 import health_pb2, health_pb2_grpc
+
+        t0 = time.monotonic()
+        stream = health_pb2_grpc.HealthStub(self.channel).Watch(
+            health_pb2.HealthCheckRequest(service=""), timeout=timeout)
+        try:
+            for reply in stream:
+                if reply.status == health_pb2.HealthCheckResponse.SERVING:
+                    return
+                if notice is not None:
+                    notice(f"flipfix: waiting for {self.target}: the server is loading its "
+                           f"search kernels (a first run compiles them, about a minute)")
+                    notice = None
+        except grpc.RpcError as err:
+            if err.code() == grpc.StatusCode.DEADLINE_EXCEEDED:
+                raise TimeoutError(f"{self.target} was not ready after "
+                                   f"{time.monotonic() - t0:.1f} s") from None
+            raise
+        finally:
+            stream.cancel()
+        raise TimeoutError(f"{self.target} ended the health stream before it was ready")
+
     def __enter__(self) -> "FlipfixClient":
         return self
 
@@ -205,6 +238,16 @@ class FlipfixClient:
     # ------------------------------------------------------------ conversion
     @staticmethod
     def _model(model: Any) -> tuple[pb.ProblemModel, Problem]:
+        model = dimod_forms.as_native(model, "model")  # dimod's serialised BQM
+        if dimod_forms.is_cqm(model):
+            problem, rows = dimod_forms.from_cqm(model, field="model")
+            if rows:
+                raise InputError("model", f"the ConstrainedQuadraticModel has linear "
+                                          f"constraints ({', '.join(c.name for c in rows)}), "
+                                          f"which a stored problem cannot hold: repair it "
+                                          f"inline (repair(cqm, ..., candidates=...)), or store "
+                                          f"from_cqm(cqm)[0] and pass the rows with each repair")
+            return convert.problem_to_model(problem), problem
         if isinstance(model, Mapping):  # keep the document's own terms (exact); parsed once
             problem = documents.parse_problem(model)
             return convert.doc_to_model(model, problem=problem), problem
@@ -215,7 +258,9 @@ class FlipfixClient:
     def _candidates(problem: Problem, candidates: Any, ids: Sequence[str] | None = None
                     ) -> pb.CandidateBatch:
         """A SampleSet, CandidateSet, numpy array (K, n) in the problem's vartype (columns in
-        label order) or candidates JSON list -> one packed CandidateBatch."""
+        label order), candidates JSON list or dimod's serialised SampleSet -> one packed
+        CandidateBatch."""
+        candidates = dimod_forms.as_native(candidates, "candidates")
         if not isinstance(candidates, (CandidateSet, np.ndarray, pb.CandidateBatch)) and \
                 type(candidates).__name__ != "SampleSet":
             candidates = list(candidates)
@@ -327,32 +372,57 @@ class FlipfixClient:
             _info, rev, dom = self._get_problem(problem)
             req = pb.RepairRequest(problem=problem, candidate_ids=list(candidate_ids),
                                    all_revisions=all_revisions)
+            rows: list = []
         else:
             if candidates is None:
                 raise InputError("inline.candidates", "an inline repair needs candidates")
-            m, dom = self._model(problem)
+            if dimod_forms.is_cqm(problem):  # its linear constraints go first, as hard rows
+                dom, rows = dimod_forms.from_cqm(problem, field="model")
+                m = convert.problem_to_model(dom)
+            else:
+                (m, dom), rows = self._model(problem), []
             rev = 0
             req = pb.RepairRequest(inline=pb.InlineLibrary(
                 model=m, candidates=self._candidates(dom, candidates)))
-        req.constraints.extend(self._constraints(dom, constraints))
+        req.constraints.extend(self._constraints(dom, [*rows, *(constraints or [])]))
         req.options.CopyFrom(convert.kwargs_to_options(**options))
         return req, dom, rev
-
-    def _reply_dict(self, reply: pb.RepairReply, problem: str | Any, dom: Problem, rev: int) -> dict:
-        if isinstance(problem, str) and reply.revision != rev:  # replaced meanwhile
-            dom = self._get_problem(problem, reply.revision)[2]
-        return convert.reply_to_dict(reply, dom)
 
     def repair(self, problem: str | Any, constraints: Iterable[Any] = (), *,
                timeout: float | None = None,
                on_progress: Callable[[pb.RepairProgress], None] | None = None, **kwargs) -> dict:
         """Repair and return the result dict; ``on_progress`` switches to the streaming RPC."""
+        return self._repair(problem, constraints, timeout, on_progress, kwargs)[0]
+
+    def repair_sampleset(self, problem: str | Any, constraints: Iterable[Any] = (), *,
+                         timeout: float | None = None,
+                         on_progress: Callable[[pb.RepairProgress], None] | None = None,
+                         **kwargs) -> tuple[Any, dict]:
+        """:meth:`repair`, with the answer also as a one-row ``dimod.SampleSet``
+        (:func:`flipfix.repair.documents.dimod_forms.to_sampleset`): (sampleset, result dict)."""
+        out, dom = self._repair(problem, constraints, timeout, on_progress, kwargs)
+        return dimod_forms.to_sampleset(out, dom), out
+
+    def _repair(self, problem, constraints, timeout, on_progress, kwargs) -> tuple[dict, Problem]:
+        """(the result dict, the model its values refer to)."""
         req, dom, rev = self._repair_request(problem, constraints, **kwargs)
         timeout = timeout if timeout is not None else self.timeout
         if on_progress is None:
-            return self._reply_dict(self.stub.Repair(req, timeout=timeout), problem, dom, rev)
-        reply = _last_result(self.stub.RepairStream(req, timeout=timeout), on_progress)
-        return self._reply_dict(reply, problem, dom, rev)
+            reply = self.stub.Repair(req, timeout=timeout)
+        else:
+            reply = _last_result(self.stub.RepairStream(req, timeout=timeout), on_progress)
+        dom = self._reply_model(reply, problem, dom, rev)
+        return convert.reply_to_dict(reply, dom), dom
+
+    def _reply_dict(self, reply: pb.RepairReply, problem: str | Any, dom: Problem, rev: int,
+                    ) -> dict:
+        """The reply as a result dict, read with the model of the reply's revision."""
+        return convert.reply_to_dict(reply, self._reply_model(reply, problem, dom, rev))
+
+    def _reply_model(self, reply, problem: str | Any, dom: Problem, rev: int) -> Problem:
+        if isinstance(problem, str) and reply.revision != rev:  # replaced meanwhile
+            return self._get_problem(problem, reply.revision)[2]
+        return dom
 
     # ----------------------------------------------------------------- audit
     @staticmethod

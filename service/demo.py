@@ -50,6 +50,7 @@ def run_demo(*, seed: int = 0, time_limit: float = 3.0, out: Callable[[str], Non
         try:
             _say(f"[demo] server listening on 127.0.0.1:{srv.port}, database {db.name} (temporary)")
             with FlipfixClient(srv.address, timeout=time_limit * 4 + 60) as fx:
+                fx.wait_ready(notice=_say)  # the workers' kernels, outside the repair's deadline
                 info = fx.create_problem(name, sc["problem"])
                 _say(f"[demo] stored problem {name!r}: {info.num_variables} variables, "
                      f"{info.num_interactions} couplings, revision {info.revision}")

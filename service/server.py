@@ -745,8 +745,13 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
             raise
         servicer.dask_address = cluster.address
     server.start()
-    for name in ("", SERVICE_NAME, TIMELINE_SERVICE_NAME):
-        health_servicer.set(name, health_pb2.HealthCheckResponse.SERVING)
+    # NOT_SERVING until the workers' kernels are warm (a first run compiles them); the
+    # whole server ("") turns SERVING last, once every named service does
+    served = (SERVICE_NAME, TIMELINE_SERVICE_NAME, "")
+    for name in served:
+        health_servicer.set(name, health_pb2.HealthCheckResponse.NOT_SERVING)
+    pool.when_ready(lambda: [health_servicer.set(name, health_pb2.HealthCheckResponse.SERVING)
+                             for name in served])
     log.info("flipfix listening on port %d (db %s)", port, store._where)
     srv = RunningServer(server, port, servicer, health_servicer, pool, store, drain)
     srv.tokens = tokens

@@ -284,9 +284,39 @@ class RepairPool:
                                           name="flipfix-pool-events")
         self._listener.start()
         self._executor = self._new_executor()
+        # set once every worker's warm-up ended (at once without warm-up): the server's
+        # health is NOT_SERVING until then
+        self.ready = threading.Event()
+        self._ready_callbacks: list = []
         if warm:
+            left = [workers]
+
+            def warmed(_f) -> None:
+                with self._lock:
+                    left[0] -= 1
+                    if left[0]:
+                        return
+                self._set_ready()
+
             for _ in range(workers):
-                self._executor.submit(_warm)
+                self._executor.submit(_warm).add_done_callback(warmed)
+        else:
+            self._set_ready()
+
+    def _set_ready(self) -> None:
+        with self._lock:
+            self.ready.set()
+            callbacks, self._ready_callbacks = self._ready_callbacks, []
+        for fn in callbacks:
+            fn()
+
+    def when_ready(self, fn) -> None:
+        """Call ``fn()`` once the workers' kernels are warm (at once if they are)."""
+        with self._lock:
+            if not self.ready.is_set():
+                self._ready_callbacks.append(fn)
+                return
+        fn()
 
     def _new_executor(self) -> ProcessPoolExecutor:
         return ProcessPoolExecutor(max_workers=self.workers, mp_context=self._ctx,

@@ -141,6 +141,10 @@ def test_serve_answers_health_and_stops_on_sigterm(tmp_path):
         while "serving on" not in line and time.monotonic() - t0 < 60:
             line = proc.stderr.readline()
         port = int(line.split("serving on ")[1].split()[0].rsplit(":", 1)[1])
+        from flipfix.service.client import FlipfixClient
+
+        with FlipfixClient(f"127.0.0.1:{port}") as fx:
+            fx.wait_ready(timeout=120)  # NOT_SERVING while the worker loads its kernels
         with grpc.insecure_channel(f"127.0.0.1:{port}") as ch:
             r = health_pb2_grpc.HealthStub(ch).Check(health_pb2.HealthCheckRequest(), timeout=10)
             assert r.status == health_pb2.HealthCheckResponse.SERVING

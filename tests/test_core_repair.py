@@ -212,7 +212,7 @@ def test_unsatisfiable_constraints_are_a_status_not_an_error():
     assert res.status == "infeasible" and res.best.violation == pytest.approx(1.0)
     assert [(m.index, m.name) for m in res.conflict.members] == [(0, "linear")]
     clash = repair(p, cands, [FixVariables({0: 1}), FixVariables({0: 0})])
-    assert clash.status == "infeasible" and "fixed to both" in clash.message
+    assert clash.status == "infeasible" and "fix variable 0 to different values" in clash.message
     assert "[0] fix, [1] fix#2" in clash.message
 
 

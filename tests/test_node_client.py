@@ -47,6 +47,10 @@ def node_modules():
 def server(tmp_path_factory):
     db = tmp_path_factory.mktemp("node") / "flipfix.sqlite3"
     srv = create_server("127.0.0.1:0", db_path=str(db), workers=1, queue_size=2)
+    from flipfix.service.client import FlipfixClient
+
+    with FlipfixClient(srv.address) as fx:  # health answers SERVING once the workers are warm
+        fx.wait_ready()
     yield srv
     srv.shutdown(grace=1.0)
 

@@ -203,6 +203,10 @@ def _big_repair(benchmarks):
 
 def test_calls_after_shutdown_begins_get_unavailable_at_once(tmp_path, benchmarks):
     srv = create_server("127.0.0.1:0", db_path=str(tmp_path / "d.sqlite3"), workers=1)
+    from flipfix.service.client import FlipfixClient
+
+    with FlipfixClient(srv.address) as fx:
+        fx.wait_ready(timeout=300)  # NOT_SERVING until the worker's kernels are warm
     ch = grpc.insecure_channel(srv.address)
     stub = pb_grpc.FlipfixStub(ch)
     fut = stub.Repair.future(_big_repair(benchmarks), timeout=60)

@@ -442,31 +442,46 @@ def test_input_errors_from_a_worker_keep_their_field():
 
 
 def test_audit_cli_through_the_server_on_decisions(fx, server, tmp_path, capsys):
-    """A one-hot roster (tests/roster.py) stored in the service: the default decision-level
-    scenarios and the decision options are refused by name (the service's ScenarioFamily
-    cannot carry them yet); bit-level scenarios run, and the JSON reports free variables and
-    free decisions as counted by enumeration of one-step decision moves."""
+    """A one-hot roster (tests/roster.py) stored in the service: the default scenarios are
+    decision level (a value becomes unavailable) there as in-process, with the same figures;
+    the decision options travel too; the JSON reports free variables and free decisions (the
+    service's own CandidateStress.free_decisions) as counted by enumeration of one-step
+    decision moves."""
     import json
 
     from roster import cheapest_plans, free_decisions, plan_bits, roster
 
+    from flipfix.repair.documents.forms import problem_document
     from flipfix.service.cli import main
 
     p, pref = roster()
     plans = cheapest_plans(pref, 6)
+    X = np.vstack([plan_bits(q) for q in plans])
+    ids = [f"r{k}" for k in range(6)]
     fx.create_problem("roster", p)
-    fx.add_candidates("roster", CandidateSet.from_array(
-        p, np.vstack([plan_bits(q) for q in plans]), ids=[f"r{k}" for k in range(6)]))
-    base = ["audit", "roster", "--server", server.address, "--scenarios", "2",
-            "--pareto-methods", "greedy"]
-    assert main(base) == 2
-    assert "error: --server: the problem declares decisions" in capsys.readouterr().err
-    assert main(base + ["--weight", "1", "--unavailable", "1"]) == 2
-    assert "error: --unavailable: decision-level scenarios" in capsys.readouterr().err
-    js = tmp_path / "roster.json"
-    assert main(base + ["--weight", "1", "--json", str(js)]) == 0
+    fx.add_candidates("roster", CandidateSet.from_array(p, X, ids=ids))
+    (tmp_path / "p.json").write_text(json.dumps(problem_document(p)))
+    (tmp_path / "c.json").write_text(json.dumps(
+        [{"id": i, "assignment": dict(zip(p.labels, row))}
+         for i, row in zip(ids, p.to_caller(X).tolist())]))
+    opts = ["--scenarios", "3", "--pareto-methods", "greedy", "--quiet"]
+    remote, local = tmp_path / "remote.json", tmp_path / "local.json"
+    assert main(["audit", "roster", "--server", server.address, *opts, "--json", str(remote)]) == 0
+    assert main(["audit", str(tmp_path / "p.json"), str(tmp_path / "c.json"), *opts,
+                 "--json", str(local)]) == 0
+    capsys.readouterr()
+    got, want_doc = (json.loads(f.read_text())["stress"] for f in (remote, local))
+    assert got["family"]["unavailable_values"] == 1 and got["family"]["hamming_weight"] == 0
+    for a, b in zip(got["candidates"], want_doc["candidates"]):
+        for key in ("candidate_id", "wins", "mean_cost", "worst_cost", "free_variables",
+                    "free_decisions", "failures"):
+            assert a[key] == b[key], key
     want = [free_decisions(q, pref) for q in plans]
-    cands = json.loads(js.read_text())["stress"]["candidates"]
     assert max(want) > 0
-    assert [c["free_decisions"] for c in cands] == want
-    assert [c["free_variables"] for c in cands] == [0] * len(plans)
+    assert [c["free_decisions"] for c in got["candidates"]] == want
+    assert [c["free_variables"] for c in got["candidates"]] == [0] * len(plans)
+    js = tmp_path / "both.json"
+    assert main(["audit", "roster", "--server", server.address, *opts, "--unavailable", "1",
+                 "--must-change", "1", "--json", str(js)]) == 0
+    fam = json.loads(js.read_text())["stress"]["family"]
+    assert (fam["unavailable_values"], fam["must_change"]) == (1, 1)

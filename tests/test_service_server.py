@@ -88,6 +88,10 @@ def _wait_idle(server, timeout=10.0) -> float:
 
 # ------------------------------------------------------------------ basics
 def test_health_and_reflection(server):
+    from flipfix.service.client import FlipfixClient
+
+    with FlipfixClient(server.address) as fx:
+        fx.wait_ready(timeout=120)  # NOT_SERVING while the worker loads its kernels
     ch = grpc.insecure_channel(server.address)
     h = health_pb2_grpc.HealthStub(ch)
     for name in ("", SERVICE_NAME):

@@ -61,6 +61,12 @@ class Compiled:
         return self.problem.n
 
     @property
+    def encoding_names(self) -> frozenset:
+        """Names of the validity pieces of the problem's decisions (``encoding[NAME]``;
+        :func:`compile_constraints` puts them first, one per decision)."""
+        return frozenset(p.name for p in self.pieces[:len(self.problem.decisions)])
+
+    @property
     def has_hard(self) -> bool:
         return bool(self.rows) or bool((self.fixed >= 0).any())
 
@@ -194,7 +200,8 @@ def compile_constraints(problem: Problem, constraints: Sequence[Any], *,
     counts: list = []
     rows: list = []
     fixed = np.full(n, -1, dtype=np.int8)
-    conflicts: list = []
+    conflicts: list = []  # (label, the piece that fixed it first, the one that disagrees)
+    fixed_by: dict = {}
     for p in pieces:
         if p.linear:  # in order, as a loop of h[i] += c would
             li, lc = zip(*p.linear)
@@ -208,8 +215,9 @@ def compile_constraints(problem: Problem, constraints: Sequence[Any], *,
         rows.extend(p.rows)
         for i, b in p.fixed:
             if fixed[i] >= 0 and fixed[i] != b:
-                conflicts.append((problem.labels[i], p.name))
+                conflicts.append((problem.labels[i], fixed_by[i], p.name))
             fixed[i] = b
+            fixed_by[i] = p.name
     if extra_i:
         qi, qj, qv = problem.pairs()
         merged = Problem._assemble(

@@ -60,7 +60,8 @@ def family_to_domain(f: pb.ScenarioFamily, problem: Problem, *, field: str = "fa
         reference=reference,
         perturb_rate=float(f.perturb_rate) if f.HasField("perturb_rate") else 0.1,
         fix_k=int(f.fix_k), capacity_cut_percent=float(f.capacity_cut_percent),
-        capacity_weights=weights)
+        capacity_weights=weights, unavailable_values=int(f.unavailable_values),
+        must_change=int(f.must_change))
     fam.validate(problem, field_name=field)
     return fam
 
@@ -71,7 +72,8 @@ def family_to_proto(fam) -> pb.ScenarioFamily:
         hamming_weight=fam.hamming_weight, hamming_shape=SHAPE_ENUM[fam.hamming_shape],
         hamming_threshold=fam.hamming_threshold, hamming_fraction=fam.hamming_fraction,
         reference=REFERENCE_ENUM[fam.reference], perturb_rate=fam.perturb_rate,
-        fix_k=int(fam.fix_k), capacity_cut_percent=fam.capacity_cut_percent)
+        fix_k=int(fam.fix_k), capacity_cut_percent=fam.capacity_cut_percent,
+        unavailable_values=int(fam.unavailable_values), must_change=int(fam.must_change))
     for lab, w in (fam.capacity_weights or {}).items():
         msg.capacity_weights.append(pb.LinearTerm(label=py_to_label(lab), bias=float(w)))
     return msg
@@ -142,7 +144,8 @@ def stress_to_reply(rep, *, matrices: bool = False, time_limit: float = 0.0,
     _set_opt(out, "spearman", rep.spearman)
     for c in rep.candidates:
         row = pb.CandidateStress(candidate_id=c.candidate_id, energy=c.energy,
-                                 free_variables=c.free_variables, wins=c.wins,
+                                 free_variables=c.free_variables,
+                                 free_decisions=c.free_decisions, wins=c.wins,
                                  win_rate=c.win_rate if math.isfinite(c.win_rate) else 0.0,
                                  worst_flips=c.worst_flips, failures=c.failures)
         for name in ("mean_cost", "worst_cost", "mean_regret", "mean_flips"):
@@ -213,7 +216,7 @@ def reply_to_stress(r: pb.StressReply, *, family: dict | None = None):
         stopped=STOP_NAMES.get(r.stop_reason, ""), seconds=r.seconds,
         candidates=[CandidateStress(
             candidate_id=c.candidate_id, energy=c.energy, free_variables=c.free_variables,
-            wins=c.wins, win_rate=c.win_rate, mean_cost=_get_opt(c, "mean_cost"),
+            free_decisions=c.free_decisions, wins=c.wins, win_rate=c.win_rate, mean_cost=_get_opt(c, "mean_cost"),
             worst_cost=_get_opt(c, "worst_cost"), mean_regret=_get_opt(c, "mean_regret"),
             mean_flips=_get_opt(c, "mean_flips"), worst_flips=c.worst_flips,
             failures=c.failures) for c in r.candidates],

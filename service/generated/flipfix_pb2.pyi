@@ -871,7 +871,7 @@ class RobustnessReply(_message.Message):
     def __init__(self, epsilon: _Optional[float] = ..., best_id: _Optional[str] = ..., num_variables: _Optional[int] = ..., num_decisions: _Optional[int] = ..., profiles: _Optional[_Iterable[_Union[CandidateProfile, _Mapping]]] = ..., revision: _Optional[int] = ...) -> None: ...
 
 class ScenarioFamily(_message.Message):
-    __slots__ = ("hamming_weight", "hamming_shape", "hamming_threshold", "hamming_fraction", "reference", "perturb_rate", "fix_k", "capacity_cut_percent", "capacity_weights")
+    __slots__ = ("hamming_weight", "hamming_shape", "hamming_threshold", "hamming_fraction", "reference", "perturb_rate", "fix_k", "capacity_cut_percent", "capacity_weights", "unavailable_values", "must_change")
     HAMMING_WEIGHT_FIELD_NUMBER: _ClassVar[int]
     HAMMING_SHAPE_FIELD_NUMBER: _ClassVar[int]
     HAMMING_THRESHOLD_FIELD_NUMBER: _ClassVar[int]
@@ -881,6 +881,8 @@ class ScenarioFamily(_message.Message):
     FIX_K_FIELD_NUMBER: _ClassVar[int]
     CAPACITY_CUT_PERCENT_FIELD_NUMBER: _ClassVar[int]
     CAPACITY_WEIGHTS_FIELD_NUMBER: _ClassVar[int]
+    UNAVAILABLE_VALUES_FIELD_NUMBER: _ClassVar[int]
+    MUST_CHANGE_FIELD_NUMBER: _ClassVar[int]
     hamming_weight: float
     hamming_shape: PenaltyShape
     hamming_threshold: float
@@ -890,7 +892,9 @@ class ScenarioFamily(_message.Message):
     fix_k: int
     capacity_cut_percent: float
     capacity_weights: _containers.RepeatedCompositeFieldContainer[LinearTerm]
-    def __init__(self, hamming_weight: _Optional[float] = ..., hamming_shape: _Optional[_Union[PenaltyShape, str]] = ..., hamming_threshold: _Optional[float] = ..., hamming_fraction: _Optional[float] = ..., reference: _Optional[_Union[ReferenceKind, str]] = ..., perturb_rate: _Optional[float] = ..., fix_k: _Optional[int] = ..., capacity_cut_percent: _Optional[float] = ..., capacity_weights: _Optional[_Iterable[_Union[LinearTerm, _Mapping]]] = ...) -> None: ...
+    unavailable_values: int
+    must_change: int
+    def __init__(self, hamming_weight: _Optional[float] = ..., hamming_shape: _Optional[_Union[PenaltyShape, str]] = ..., hamming_threshold: _Optional[float] = ..., hamming_fraction: _Optional[float] = ..., reference: _Optional[_Union[ReferenceKind, str]] = ..., perturb_rate: _Optional[float] = ..., fix_k: _Optional[int] = ..., capacity_cut_percent: _Optional[float] = ..., capacity_weights: _Optional[_Iterable[_Union[LinearTerm, _Mapping]]] = ..., unavailable_values: _Optional[int] = ..., must_change: _Optional[int] = ...) -> None: ...
 
 class StressRequest(_message.Message):
     __slots__ = ("problem", "candidate_ids", "all_revisions", "family", "scenarios", "seed", "method", "time_limit", "epsilon", "max_flips", "flip_price", "matrices")
@@ -921,7 +925,7 @@ class StressRequest(_message.Message):
     def __init__(self, problem: _Optional[str] = ..., candidate_ids: _Optional[_Iterable[str]] = ..., all_revisions: _Optional[bool] = ..., family: _Optional[_Union[ScenarioFamily, _Mapping]] = ..., scenarios: _Optional[int] = ..., seed: _Optional[int] = ..., method: _Optional[_Union[Method, str]] = ..., time_limit: _Optional[float] = ..., epsilon: _Optional[float] = ..., max_flips: _Optional[int] = ..., flip_price: _Optional[float] = ..., matrices: _Optional[bool] = ...) -> None: ...
 
 class CandidateStress(_message.Message):
-    __slots__ = ("candidate_id", "energy", "free_variables", "wins", "win_rate", "mean_cost", "worst_cost", "mean_regret", "mean_flips", "worst_flips", "failures")
+    __slots__ = ("candidate_id", "energy", "free_variables", "wins", "win_rate", "mean_cost", "worst_cost", "mean_regret", "mean_flips", "worst_flips", "failures", "free_decisions")
     CANDIDATE_ID_FIELD_NUMBER: _ClassVar[int]
     ENERGY_FIELD_NUMBER: _ClassVar[int]
     FREE_VARIABLES_FIELD_NUMBER: _ClassVar[int]
@@ -933,6 +937,7 @@ class CandidateStress(_message.Message):
     MEAN_FLIPS_FIELD_NUMBER: _ClassVar[int]
     WORST_FLIPS_FIELD_NUMBER: _ClassVar[int]
     FAILURES_FIELD_NUMBER: _ClassVar[int]
+    FREE_DECISIONS_FIELD_NUMBER: _ClassVar[int]
     candidate_id: str
     energy: float
     free_variables: int
@@ -944,7 +949,8 @@ class CandidateStress(_message.Message):
     mean_flips: float
     worst_flips: int
     failures: int
-    def __init__(self, candidate_id: _Optional[str] = ..., energy: _Optional[float] = ..., free_variables: _Optional[int] = ..., wins: _Optional[int] = ..., win_rate: _Optional[float] = ..., mean_cost: _Optional[float] = ..., worst_cost: _Optional[float] = ..., mean_regret: _Optional[float] = ..., mean_flips: _Optional[float] = ..., worst_flips: _Optional[int] = ..., failures: _Optional[int] = ...) -> None: ...
+    free_decisions: int
+    def __init__(self, candidate_id: _Optional[str] = ..., energy: _Optional[float] = ..., free_variables: _Optional[int] = ..., wins: _Optional[int] = ..., win_rate: _Optional[float] = ..., mean_cost: _Optional[float] = ..., worst_cost: _Optional[float] = ..., mean_regret: _Optional[float] = ..., mean_flips: _Optional[float] = ..., worst_flips: _Optional[int] = ..., failures: _Optional[int] = ..., free_decisions: _Optional[int] = ...) -> None: ...
 
 class StressScenario(_message.Message):
     __slots__ = ("seed", "description", "best_cost", "winners")
