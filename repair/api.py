@@ -17,7 +17,7 @@ from flipfix.repair.errors import InputError
 from flipfix.repair.model.problem import Problem
 from flipfix.repair.kernels.scores import Scorer, distances
 from flipfix.repair.solvers.portfolio import DEFAULT_MIX, Attempt, Mix, attempt_scores, run_plan
-from flipfix.repair.result import METHODS, AuditRow, RepairResult, Solution
+from flipfix.repair.result import METHODS, UNSCORED, Audit, RepairResult, Solution
 
 __all__ = ["repair", "warm_up", "check_options", "result_seconds", "search_deadline",
            "plan_reference"]
@@ -74,6 +74,9 @@ RESULT_PER_CANDIDATE = 7.5e-6
 RESULT_PER_CELL = 4e-10
 RESULT_PER_VARIABLE = 6e-7
 RESULT_PER_ATTEMPT = 1e-6
+#: most of the search's time (from the end of lowering to the search deadline) that scoring
+#: the library may take; the candidates it does not reach are reported unscored
+SCORING_SHARE = 0.5
 
 
 def result_seconds(candidates: int, variables: int, *, attempts: int = 0,
@@ -198,7 +201,14 @@ def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, 
     price = float(flip_price)
     plan_ref = plan_reference(problem, constraints)
     t_lowered = time.perf_counter()
-    scorer = Scorer(compiled, X0, workers=workers)
+    # the front's attempts are not known yet: those of greedy plus a round of kicks
+    reserve = result_seconds(K, problem.n, attempts=2 * K if pareto else 0,
+                             decisions=len(problem.decisions))
+    # scoring the library may take at most SCORING_SHARE of the search's time: past it, the
+    # rest of the library is reported unscored (and not searched from)
+    search_end = search_deadline(t0, float(time_limit), reserve)
+    scorer = Scorer(compiled, X0, workers=workers,
+                    deadline=t_lowered + SCORING_SHARE * max(0.0, search_end - t_lowered))
     # where the time went (stats): lowering, scoring the library, search, the result
     stages = {"lowering": t_lowered - t0, "scoring": time.perf_counter() - t_lowered}
     common = dict(max_flips=max_flips, pareto=pareto, plan_ref=plan_ref, stages=stages)
@@ -213,9 +223,10 @@ def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, 
         return _build(problem, candidates, compiled, scorer, [], price, method, seed, t0,
                       status="infeasible", **common,
                       message=f"variable {label!r} is fixed to both values ({name})")
-    # the front's attempts are not known yet: those of greedy plus a round of kicks
-    reserve = result_seconds(K, problem.n, attempts=2 * K if pareto else 0,
-                             decisions=len(problem.decisions))
+    if scorer.scored < K:  # only the scored candidates are reported against: less to build
+        reserve = result_seconds(scorer.scored, problem.n,
+                                 attempts=2 * scorer.scored if pareto else 0,
+                                 decisions=len(problem.decisions))
     plan = run_plan(compiled, X0, method=method,
                     deadline=search_deadline(t0, float(time_limit), reserve),
                     max_flips=max_flips, flip_price=price, seed=seed, workers=workers,
@@ -228,15 +239,32 @@ def _build(problem, candidates, compiled, scorer, attempts, price, method, seed,
            max_flips=None, status=None, message="", plan=None, plan_ref=None,
            stages=None) -> RepairResult:
     """The result from every attempt's scores (see :func:`flipfix.repair.solvers.portfolio.attempt_scores`):
-    the best, one audit row per candidate, the front; only the best is evaluated by part.
-    ``stages``: seconds of the stages before, completed here and kept in ``stats["seconds"]``."""
+    the best, the audit (by column, :class:`flipfix.repair.result.Audit`), the front; only the
+    best is evaluated by part. Scored candidates no attempt started from stand as they are
+    ("unrepaired"); those the scorer did not reach are reported "unscored" (NaN figures) and
+    are not compared with the answer. ``stages``: seconds of the stages before, completed
+    here and kept in ``stats["seconds"]``."""
     t_build = time.perf_counter()
     X0 = scorer.X0
     K = X0.shape[0]
-    if not attempts:  # nothing ran: report the candidates as they are
-        attempts = [Attempt(k, X0[k], "unrepaired", 0.0, float(scorer.cost[k]),
-                            float(scorer.violation[k]), 0) for k in range(K)]
+    ns = scorer.scored
+    A = len(attempts)
     ks, cost, viol, flips = attempt_scores(scorer, attempts)
+    methods = [a.method for a in attempts]
+    # the scored candidates no attempt started from: as they are
+    tried = np.zeros(K, dtype=bool)
+    tried[ks] = True
+    idle = np.flatnonzero(~tried[:ns])
+    if idle.size:
+        ks = np.concatenate([ks, idle])
+        cost = np.concatenate([cost, scorer.cost[idle]])
+        viol = np.concatenate([viol, scorer.violation[idle]])
+        flips = np.concatenate([flips, np.zeros(idle.size, dtype=np.int64)])
+        methods += ["unrepaired"] * idle.size
+
+    def x_of(i: int) -> np.ndarray:
+        return attempts[i].x if i < A else X0[ks[i]]
+
     if max_flips is not None:  # the cap is hard: flips past it count as violation
         viol = viol + np.maximum(0, flips - max_flips)
     feas = viol == 0.0
@@ -244,19 +272,18 @@ def _build(problem, candidates, compiled, scorer, attempts, price, method, seed,
     # feasible first, then objective, then violation, then flips
     order = np.lexsort((flips, obj, viol, ~feas))
     b = int(order[0])
-    xb = attempts[b].x
+    xb = x_of(b)
     origin = int(ks[b])
-    # the answer is reported against the library candidate nearest to it (the one it was
-    # repaired from on ties): the smallest change from any plan the user keeps. Audit
+    # the answer is reported against the scored library candidate nearest to it (the one it
+    # was repaired from on ties): the smallest change from any plan the user keeps. Audit
     # rows stay per origin: each row is what that candidate's own repair reached.
-    dist = distances(X0, xb)
+    dist = distances(X0[:ns], xb)
     bk = origin if dist[origin] == dist.min() else int(np.argmin(dist))
     # best per candidate (feasible first, then objective, then flips): its first in order
     first = np.full(K, -1, dtype=np.int64)
-    ks_sorted = ks[order]
-    seen, at = np.unique(ks_sorted, return_index=True)
+    seen, at = np.unique(ks[order], return_index=True)
     first[seen] = order[at]
-    seconds = np.bincount(ks, weights=[a.seconds for a in attempts], minlength=K)
+    seconds = np.bincount(ks[:A], weights=[a.seconds for a in attempts], minlength=K)
     issues: dict = {}
     changed = np.zeros(K, dtype=np.int64)
     if problem.decisions:  # broken encodings are repair input; the audit names them
@@ -264,24 +291,22 @@ def _build(problem, candidates, compiled, scorer, attempts, price, method, seed,
 
         for i in check_candidates(problem, X0):
             issues.setdefault(i.candidate, []).append((i.decision, i.how))
-        after = np.vstack([attempts[a].x if a >= 0 else X0[k] for k, a in enumerate(first)])
+        after = np.vstack([x_of(a) if a >= 0 else X0[k] for k, a in enumerate(first.tolist())])
         M0, M1 = decode_indices(problem, X0), decode_indices(problem, after)
         changed = ((M0 != M1) | (M0 < 0)).sum(axis=1)  # as integer_changes counts them
+    reached = first >= 0  # every scored candidate (attempted or idle); no unscored one
+    pick = np.where(reached, first, 0)
+    nan = np.full(K, np.nan)
+    method_col = np.array(methods, dtype=object)[pick] if methods else np.empty(K, object)
+    method_col[~reached] = UNSCORED
+    audit = Audit(candidates.ids, encoding_issues=issues,
+                  cost_before=scorer.cost, feasible_before=scorer.violation == 0.0,
+                  cost_after=np.where(reached, cost[pick], nan),
+                  objective_after=np.where(reached, obj[pick], nan),
+                  flips=np.where(reached, flips[pick], 0),
+                  feasible=reached & feas[pick], violation=np.where(reached, viol[pick], nan),
+                  method=method_col, seconds=seconds, decisions_changed=changed)
     ids = candidates.ids
-    c0, v0 = scorer.cost.tolist(), scorer.violation.tolist()
-    # per candidate, as Python numbers (a row each, no numpy scalars)
-    pick = np.where(first >= 0, first, 0)
-    c1, o1, f1, v1 = (cost[pick].tolist(), obj[pick].tolist(), flips[pick].tolist(),
-                      viol[pick].tolist())
-    secs, chg = seconds.tolist(), changed.tolist()
-    audit = []
-    for k, a in enumerate(first.tolist()):
-        if a < 0:  # never attempted (a cancelled plan): as it was
-            audit.append(AuditRow(ids[k], c0[k], v0[k] == 0.0, c0[k], c0[k], 0, v0[k] == 0.0,
-                                  v0[k], "unrepaired", 0.0, 0, issues.get(k, [])))
-            continue
-        audit.append(AuditRow(ids[k], c0[k], v0[k] == 0.0, c1[k], o1[k], f1[k], v1[k] == 0.0,
-                              v1[k], attempts[a].method, secs[k], chg[k], issues.get(k, [])))
     ev = compiled.evaluate(xb[None, :])
     violations = {name: float(v[0]) for name, v in ev.violations.items()}
     if max_flips is not None:
@@ -294,7 +319,7 @@ def _build(problem, candidates, compiled, scorer, attempts, price, method, seed,
         base_energy=float(ev.base[0]), repaired_from=ids[origin],
         penalties={name: float(v[0]) for name, v in ev.penalties.items()}, flips=int(dist[bk]),
         feasible=bool(feas[b]), violation=float(sum(violations.values())),
-        violations=violations, method=attempts[b].method, changes=changes,
+        violations=violations, method=methods[b], changes=changes,
         decisions_changed=len(changes),
         plan_distance=None if plan_ref is None else int((xb[plan_ref[0]] != plan_ref[1]).sum()))
     if status is None:
@@ -307,14 +332,22 @@ def _build(problem, candidates, compiled, scorer, attempts, price, method, seed,
             status = "no_feasible_found"
             message = ("no feasible assignment found within the budget; best is the "
                        "least-violating one")
+    if ns < K:
+        note = (f"{K - ns} of {K} candidates were not scored within the budget (audit method "
+                f"{UNSCORED!r}, NaN costs): the search started from the first {ns}")
+        message = f"{message}; {note}" if message else note
     points = []
     if pareto:
         from flipfix.repair.audit.pareto import pareto_front, run_points
 
-        A = np.vstack([a.x for a in attempts])
-        points = pareto_front(run_points(X0, ids, scorer.cost, scorer.violation == 0.0, A, ks,
-                                         cost, feas, [a.method for a in attempts]))
+        AX = (np.vstack([a.x for a in attempts]) if attempts
+              else np.empty((0, problem.n), dtype=np.int8))
+        points = pareto_front(run_points(X0[:ns], ids[:ns], scorer.cost[:ns],
+                                         scorer.violation[:ns] == 0.0, AX, ks[:A], cost[:A],
+                                         feas[:A], methods[:A]))
     stats = plan.stats if plan is not None else {}
+    if ns < K:
+        stats["unscored"] = K - ns
     if stages is not None:
         done = time.perf_counter()
         stats["seconds"] = {**stages, "search": t_build - t0 - sum(stages.values()),

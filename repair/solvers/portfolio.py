@@ -286,11 +286,14 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, deadline: float
     greedy and portfolio keep the last ``POLISH_SHARE`` of the time (``POLISH_ALONE``
     when CP-SAT cannot run in it) to move the best answers back toward their candidates
     where that costs nothing (:func:`_polish`, then in the portfolio :func:`_fewest_flips`).
-    ``scorer`` (default: built here) scores the library and every attempt.
+    ``scorer`` (default: built here) scores the library and every attempt; only the
+    candidates it scored (a prefix of X0) are searched from. Candidates no attempt starts
+    from get none (:func:`flipfix.repair.api.repair` reports them as they are).
     """
     out = PlanOutcome(attempts=[])
     if scorer is None:
         scorer = Scorer(compiled, X0, workers=workers)
+    X0 = X0[:scorer.scored]  # the search starts only from candidates the scorer reached
     time_limit = max(0.0, deadline - time.perf_counter())
     tail = POLISH_SHARE
     cp = _LazyCpsat(compiled, out.stats, workers)
@@ -343,12 +346,10 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
 
     g_deadline = deadline if method == "greedy" else t0 + mix.greedy * time_limit
     # most promising candidates first, so a short budget is spent where it pays most
-    first = _ranked(scorer.violation == 0.0, scorer.cost)
-    cost, viol = scorer.cost.copy(), scorer.violation.copy()
+    cost, viol = scorer.cost[:K].copy(), scorer.violation[:K].copy()
+    first = _ranked(viol == 0.0, cost)
     flips = np.zeros(K, dtype=np.int64)
-    if stopped():  # nothing starts after the deadline: the candidates as they are
-        out.attempts.extend(Attempt(k, X0[k], "unrepaired", 0.0, cost[k], viol[k], 0)
-                            for k in range(K))
+    if stopped():  # nothing starts after the deadline: the candidates stay as they are
         out.stats["greedy_done"] = out.stats["greedy_moves"] = 0
         return out
     rows, seconds, steps = _greedy_stage(compiled, X0, first, deadline=g_deadline,
@@ -361,10 +362,8 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
     # each repaired candidate is scored from its own state; the others are as they were
     if fin.size:
         cost[fin], viol[fin], flips[fin] = scorer.near(np.vstack(list(rows.values())), fin)
-    for k in range(K):
-        out.attempts.append(Attempt(k, rows.get(k, X0[k]), "greedy" if done[k] else "unrepaired",
-                                    float(seconds[k]), float(cost[k]), float(viol[k]),
-                                    int(flips[k])))
+    out.attempts.extend(Attempt(k, rows[k], "greedy", float(seconds[k]), float(cost[k]),
+                                float(viol[k]), int(flips[k])) for k in fin.tolist())
     out.stats["greedy_done"] = int(done.sum())
     out.stats["greedy_moves"] = int(steps)
     if method == "greedy" or stopped():
@@ -511,7 +510,7 @@ def _early_proof(cp, compiled, X0, out, scorer, *, feasible, obj, deadline, max_
         return False
     ok = np.flatnonzero(feasible)
     best = int(ok[np.argmin(obj[ok])]) if ok.size else None
-    anchor = best if best is not None else int(np.argmin(scorer.violation))
+    anchor = best if best is not None else int(np.argmin(scorer.violation[:X0.shape[0]]))
     _full_search(cp, X0, out, anchor=anchor,
                  best_obj=None if best is None else float(obj[best]),
                  time_limit=PROOF_SHARE * (deadline - time.perf_counter()), max_flips=None,
@@ -583,6 +582,7 @@ def _fewest_flips(cp, compiled, X0, out, scorer, *, deadline, max_flips, flip_pr
     """
     stats = out.stats
     if not out.attempts:
+        stats["fewest_flips_status"] = "skipped: nothing repaired"
         return
     left = deadline - time.perf_counter()
     if cp.model is None and not cp.affordable(left):
@@ -792,7 +792,7 @@ def _per_candidate_cpsat(cp, compiled, X0, out, scorer, *, deadline, max_flips, 
                          workers, cancel, report):
     """CP-SAT from each candidate (hinted with it), best-ranked candidates first."""
     K = X0.shape[0]
-    order = [int(k) for k in _ranked(scorer.violation == 0.0, scorer.cost)]
+    order = [int(k) for k in _ranked(scorer.violation[:K] == 0.0, scorer.cost[:K])]
     reached = np.zeros(K, dtype=bool)
     statuses = []
     overrun = 0.0  # how far past its limit a solve ran, on average (set-up, presolve)
@@ -822,8 +822,5 @@ def _per_candidate_cpsat(cp, compiled, X0, out, scorer, *, deadline, max_flips, 
             out.proven_optimal = True
         if full and r.status == "infeasible":
             out.proven_infeasible = True
-    for k in np.flatnonzero(~reached).tolist():
-        out.attempts.append(Attempt(k, X0[k].copy(), "unrepaired", 0.0, float(scorer.cost[k]),
-                                    float(scorer.violation[k]), 0))
     if flip_price and statuses and all(s == "optimal" for s in statuses) and reached.all():
         out.proven_optimal = max_flips is None
