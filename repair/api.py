@@ -98,31 +98,12 @@ def search_deadline(t0: float, time_limit: float, reserve: float) -> float:
     return t0 + max(0.0, time_limit - reserve)
 
 
-def plan_reference(problem: Problem, constraints: Sequence[Any]):
+def plan_reference(compiled: Compiled):
     """The published plan the late constraints measure distance from: the reference of
     the first Hamming-type penalty (``HammingPenalty``: every label in its reference;
     ``DecisionChangePenalty``: the bits of every decision in its reference, at that value's
-    code), as (positions int64, bits int8); None when there is none. The constraints are
-    already validated (lowered) here."""
-    from flipfix.repair.model.constraints import DecisionChangePenalty, HammingPenalty
-
-    for c in constraints:
-        if isinstance(c, HammingPenalty):
-            ref = c.reference
-            idx = np.fromiter(map(problem.index.__getitem__, ref.keys()), np.int64, len(ref))
-            values = np.fromiter(ref.values(), np.float64, len(ref))
-            return idx, problem.from_caller(values, "reference")
-        if isinstance(c, DecisionChangePenalty):
-            from flipfix.repair.model.encodings import (decision_bits, encode, find_decision,
-                                                        value_index)
-
-            idx, bits = [], []
-            for name, value in c.reference.items():
-                d = find_decision(problem, name, "reference")
-                idx.append(decision_bits(problem, d))
-                bits.append(encode(d, value_index(d, value, "reference")))
-            return np.concatenate(idx), np.concatenate(bits).astype(np.int8)
-    return None
+    code), as (positions int64, bits int8), kept by its lowering; None when there is none."""
+    return next((p.reference for p in compiled.pieces if p.reference is not None), None)
 
 
 _GC_LOCK = threading.Lock()
@@ -199,16 +180,19 @@ def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, 
     X0 = np.ascontiguousarray(candidates.X, dtype=np.int8)
     K = X0.shape[0]
     price = float(flip_price)
-    plan_ref = plan_reference(problem, constraints)
+    plan_ref = plan_reference(compiled)
     t_lowered = time.perf_counter()
-    # the front's attempts are not known yet: those of greedy plus a round of kicks
-    reserve = result_seconds(K, problem.n, attempts=2 * K if pareto else 0,
-                             decisions=len(problem.decisions))
-    # scoring the library may take at most SCORING_SHARE of the search's time: past it, the
-    # rest of the library is reported unscored (and not searched from)
-    search_end = search_deadline(t0, float(time_limit), reserve)
-    scorer = Scorer(compiled, X0, workers=workers,
-                    deadline=t_lowered + SCORING_SHARE * max(0.0, search_end - t_lowered))
+    # scoring the library, with what building the result will take for each candidate
+    # scored, may take at most SCORING_SHARE of the time left after lowering and the
+    # result's fixed part: past it, the rest of the library is reported unscored (and not
+    # searched from)
+    decisions = len(problem.decisions)
+    fixed_part = result_seconds(0, problem.n, decisions=decisions)
+    per_candidate = result_seconds(1, problem.n, attempts=2 if pareto else 0,
+                                   decisions=decisions) - fixed_part
+    share = SCORING_SHARE * max(0.0, search_deadline(t0, float(time_limit), fixed_part) - t_lowered)
+    scorer = Scorer(compiled, X0, workers=workers, deadline=t_lowered + share,
+                    later_per_row=per_candidate)
     # where the time went (stats): lowering, scoring the library, search, the result
     stages = {"lowering": t_lowered - t0, "scoring": time.perf_counter() - t_lowered}
     common = dict(max_flips=max_flips, pareto=pareto, plan_ref=plan_ref, stages=stages)
@@ -223,10 +207,8 @@ def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, 
         return _build(problem, candidates, compiled, scorer, [], price, method, seed, t0,
                       status="infeasible", **common,
                       message=f"variable {label!r} is fixed to both values ({name})")
-    if scorer.scored < K:  # only the scored candidates are reported against: less to build
-        reserve = result_seconds(scorer.scored, problem.n,
-                                 attempts=2 * scorer.scored if pareto else 0,
-                                 decisions=len(problem.decisions))
+    # the front's attempts are not known yet: those of greedy plus a round of kicks
+    reserve = fixed_part + per_candidate * scorer.scored
     plan = run_plan(compiled, X0, method=method,
                     deadline=search_deadline(t0, float(time_limit), reserve),
                     max_flips=max_flips, flip_price=price, seed=seed, workers=workers,

@@ -346,7 +346,7 @@ def test_plan_distance_of_a_decision_change_penalty_counts_bits_of_the_plan():
     plan = {"d0": "y", "d1": 3}
     # the plan's bits by the encodings' definitions: one-hot y = 010; domain wall 3 = 110
     plan_bits = {"a0": 0, "a1": 1, "a2": 0, "b0": 1, "b1": 1, "b2": 0}
-    idx, bits = plan_reference(p, [enc.DecisionChangePenalty(plan)])
+    idx, bits = plan_reference(compile_constraints(p, [enc.DecisionChangePenalty(plan)]))
     assert {p.labels[i]: int(b) for i, b in zip(idx, bits)} == plan_bits
     X0 = np.asarray([[1, 0, 0, 0, 0, 0, 1], [0, 0, 1, 1, 1, 1, 0]], dtype=np.int8)
     res = repair(p, CandidateSet.from_array(p, X0),

@@ -231,12 +231,14 @@ class Scorer:
 
     ``deadline`` (a ``time.perf_counter()`` value, or None): scoring stops there, in blocks
     of rows sized to take about ``BLOCK_SECONDS`` each (at least the first row is scored);
+    ``later_per_row`` seconds that each scored row will cost the caller later (its share of
+    the result) count against that deadline too;
     ``scored`` is how many leading candidates were, and the rest keep NaN cost and
     violation (:meth:`near` scores assignments near them from scratch).
     """
 
     def __init__(self, compiled: Compiled, X0: np.ndarray, *, workers: int = 1,
-                 deadline: float | None = None):
+                 deadline: float | None = None, later_per_row: float = 0.0):
         self.compiled = compiled
         self.X0 = np.ascontiguousarray(X0, dtype=np.int8)
         self.arrays = late_arrays(compiled)
@@ -275,11 +277,12 @@ class Scorer:
             block(self.scored, stop)
             rows, self.scored = stop - self.scored, stop
             now = time.perf_counter()
-            if now >= deadline:
+            left = deadline - now - later_per_row * self.scored
+            if left <= 0.0:
                 break
-            per_row = max(1e-7, (now - t) / rows)
+            per_row = max(1e-7, (now - t) / rows) + later_per_row
             # the next block: about BLOCK_SECONDS, and never past the deadline
-            size = int(max(1, min(BLOCK_SECONDS, deadline - now) / per_row))
+            size = int(max(1, min(BLOCK_SECONDS, left) / per_row))
 
     def near(self, X: np.ndarray, ks) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(cost float64, violation float64, flips int64), each (len(X),), of the rows of X

@@ -88,9 +88,8 @@ class Compiled:
     def _qubo_value(self, p: Pieces, X: np.ndarray) -> np.ndarray:
         Xf = X.astype(np.float64)
         v = np.full(X.shape[0], p.offset)
-        if p.linear:
-            i, c = zip(*p.linear)
-            v += Xf[:, list(i)] @ np.asarray(c, dtype=np.float64)
+        if p.lin_idx.size:
+            v += Xf[:, p.lin_idx] @ p.lin_coef
         if p.quadratic:
             i, j, c = zip(*p.quadratic)
             v += (Xf[:, list(i)] * Xf[:, list(j)]) @ np.asarray(c, dtype=np.float64)
@@ -127,8 +126,8 @@ class Compiled:
                 v = np.zeros(X.shape[0])
                 for r in p.rows:
                     v += self.row_violation(r, X)
-                for i, b in p.fixed:
-                    v += (X[:, i] != b).astype(np.float64)
+                if p.fix_idx.size:
+                    v += (X[:, p.fix_idx] != p.fix_bits).sum(axis=1)
                 violations[p.name] = v
             else:
                 v = self._qubo_value(p, X)
@@ -196,9 +195,8 @@ def compile_constraints(problem: Problem, constraints: Sequence[Any], *,
     fixed = np.full(n, -1, dtype=np.int8)
     conflicts: list = []
     for p in pieces:
-        if p.linear:  # in order, as a loop of h[i] += c would
-            li, lc = zip(*p.linear)
-            np.add.at(h, np.asarray(li, dtype=np.int64), np.asarray(lc, dtype=np.float64))
+        if p.lin_idx.size:  # in order, as a loop of h[i] += c would
+            np.add.at(h, p.lin_idx, p.lin_coef)
         offset += p.offset
         for i, j, c in p.quadratic:
             extra_i.append(i)
@@ -206,10 +204,15 @@ def compile_constraints(problem: Problem, constraints: Sequence[Any], *,
             extra_v.append(c)
         counts.extend(p.counts)
         rows.extend(p.rows)
-        for i, b in p.fixed:
-            if fixed[i] >= 0 and fixed[i] != b:
+        if p.fix_idx.size:
+            # a position pinned both ways, by an earlier piece or twice in this one
+            seen = np.full(n, -1, dtype=np.int8)
+            seen[p.fix_idx] = p.fix_bits
+            clash = (fixed[p.fix_idx] >= 0) & (fixed[p.fix_idx] != p.fix_bits)
+            clash |= seen[p.fix_idx] != p.fix_bits
+            for i in np.unique(p.fix_idx[clash]).tolist():
                 conflicts.append((problem.labels[i], p.name))
-            fixed[i] = b
+            fixed[p.fix_idx] = p.fix_bits
     if extra_i:
         qi, qj, qv = problem.pairs()
         merged = Problem._assemble(
