@@ -63,16 +63,18 @@ def _changes(problem: Problem, before: np.ndarray, after: np.ndarray) -> list:
 
 
 #: seconds building a result takes (:func:`result_seconds`): a fixed part (the best answer's
-#: breakdown, lists and dicts), per candidate (its audit row), per candidate and variable
-#: (the distances to the best answer), per variable (the answer's assignment and breakdown)
-#: and per attempt on the cost-flips front (pareto=True). Measured with bench/budget.py on
-#: the 2-vCPU development machine under load, plus half: 0.002-0.006 s at 1,000 variables
-#: x 100 candidates, 0.05 s at 1,000 x 10,000, 0.015-0.02 s at 20,000 x 1,000, 0.1-0.12 s
-#: at 20,000 x 10,000, 0.06-0.08 s at 100,000 x 1,000.
+#: breakdown, lists and dicts), per candidate scored (its audit entries: numpy columns), per
+#: candidate scored and variable (the distances to the best answer), per variable (the
+#: answer's assignment and breakdown) and per attempt on the cost-flips front (pareto=True).
+#: Measured with the audit by column (bench/budget.py's models, method greedy, T = 1 s, three
+#: runs each on the 2-vCPU development machine shared with other work), plus half:
+#: 0.0003-0.0007 s at 1,000 variables x 100 candidates, 0.002-0.003 s at 1,000 x 10,000,
+#: 0.009-0.043 s at 20,000 x 1,000, 0.015-0.041 s at 20,000 x 10,000, 0.03-0.075 s at
+#: 100,000 x 1,000.
 RESULT_FIXED = 0.004
-RESULT_PER_CANDIDATE = 7.5e-6
-RESULT_PER_CELL = 4e-10
-RESULT_PER_VARIABLE = 6e-7
+RESULT_PER_CANDIDATE = 1.5e-6
+RESULT_PER_CELL = 1.5e-10
+RESULT_PER_VARIABLE = 4e-7
 RESULT_PER_ATTEMPT = 1e-6
 #: most of the search's time (from the end of lowering to the search deadline) that scoring
 #: the library may take; the candidates it does not reach are reported unscored
