@@ -10,7 +10,7 @@ import numpy as np
 from flipfix.repair.documents.fields import as_list, number, require, resolve_label, resolve_mapping
 from flipfix.repair.errors import InputError
 from flipfix.repair.lowering.pieces import (CountSpec, Pieces, count_pieces, label_bits,
-                                           linear_slope)
+                                           distinct, linear_slope)
 from flipfix.repair.model.constraints.fix import assignment_json
 from flipfix.repair.model.constraints.kind import ConstraintKind
 from flipfix.repair.model.constraints.shapes import check_penalty, shape_table
@@ -80,7 +80,7 @@ def lower(problem: Problem, c: HammingPenalty, name: str, field: str) -> Pieces:
             raise InputError(field + ".variables", f"{missing[0]!r} has no value in reference")
         idx = np.asarray(chosen, dtype=np.int64)
         ref = np.asarray([pos[i] for i in chosen], dtype=np.int8)
-        if np.unique(idx).size != idx.size:
+        if not distinct(idx, problem.n):
             raise InputError(field + ".variables", "lists a variable twice")
     table = shape_table(c.shape, c.weight, int(idx.size), threshold=c.threshold, table=c.table,
                         field_name=field + ".shape")
