@@ -351,13 +351,13 @@ class FlipfixClient:
                 "seconds": r.seconds, "time_limit": r.time_limit, "revision": int(r.revision)}
 
     def curate(self, name: str, family: Any, m: int, *, keep: bool = False,
-               selection: str = "greedy", timeout: float | None = None, **options) -> dict:
+               selection: str = "forward", timeout: float | None = None, **options) -> dict:
         """Choose ``m`` candidates by the stress test; ``keep=True`` removes the others from the
         store. ``{"stress": StressReport, "curation": CurationResult | None, "kept": bool,
         "removed_ids": [...], "message": str, "revision": int}``."""
-        sel = {"greedy": pb.FORWARD, "exhaustive": pb.EXHAUSTIVE}
+        sel = {"forward": pb.FORWARD, "exhaustive": pb.EXHAUSTIVE}
         if selection not in sel:
-            raise ValueError(f"selection must be 'greedy' or 'exhaustive', got {selection!r}")
+            raise ValueError(f"selection must be 'forward' or 'exhaustive', got {selection!r}")
         req = pb.CurateRequest(stress=self.stress_request(name, family, **options), m=m,
                                selection=sel[selection], keep=keep)
         _, fam_doc = self._family(family)

@@ -306,6 +306,46 @@ def test_a_proof_of_optimality_stops_the_search():
     assert res.best.feasible and res.best.cost == pytest.approx(best, abs=1e-9)
 
 
+def _readme_example():
+    """The four-variable example of the README's file formats (problem, candidates,
+    constraints), read through the documents as the CLI reads the files."""
+    from flipfix.repair.documents import forms
+
+    problem = forms.parse_problem({
+        "vartype": "BINARY", "linear": {"a": -1.0, "b": -1.0, "c": 0.5, "0": 2.0},
+        "quadratic": [["a", "b", 2.0], ["b", "c", -1.5], ["c", 0, 1.0]], "offset": 0.0})
+    cands = forms.parse_candidates([
+        {"id": "plan-1", "assignment": {"a": 1, "b": 0, "c": 1, "0": 0}},
+        {"id": "plan-2", "assignment": {"a": 0, "b": 1, "c": 0, "0": 0}}], problem)
+    cs = forms.parse_constraints([
+        {"type": "hamming", "reference": {"a": 1, "b": 0, "c": 1, "0": 0}, "weight": 0.5,
+         "shape": "linear", "variables": ["a", "b", "c"]},
+        {"type": "hamming", "reference": {"a": 1, "b": 0}, "weight": 1.0, "shape": "threshold",
+         "threshold": 1},
+        {"type": "hamming", "reference": {"a": 1, "b": 0}, "weight": 1.0, "shape": "table",
+         "table": [0, 1, 10]},
+        {"type": "extra", "linear": {"c": 0.25}, "quadratic": [["a", "c", 1.0]], "offset": 0.0},
+        {"type": "fix", "name": "machine down", "values": {"a": 0}},
+        {"type": "linear", "terms": {"a": 1, "b": 1, "c": 1}, "sense": "<=", "rhs": 2},
+        {"type": "forbid", "assignment": {"b": 1, "c": 1}}], problem)
+    return problem, cands, cs
+
+
+@pytest.mark.parametrize("workers", [1, 2])
+@pytest.mark.parametrize("time_limit", [0.3, 1.0, 5.0])
+def test_the_readme_example_stops_at_the_proof(workers, time_limit):
+    """The default portfolio on the README's example: CP-SAT proves the answer optimal
+    right after greedy and nothing else runs (the stop is recorded; no local search), on
+    one or two workers, at short and long budgets. The optimum by dimod.ExactSolver."""
+    problem, cands, cs = _readme_example()
+    best, _ = _optimum(problem, cs)
+    res = repair(problem, cands, cs, time_limit=time_limit, workers=workers)
+    assert res.status == "optimal"
+    assert "optimal" in res.stats["stopped_early"]
+    assert "local_rounds" not in res.stats
+    assert res.best.cost == pytest.approx(best, abs=1e-9)
+
+
 def test_a_proof_of_infeasibility_stops_the_search():
     p = sparse_problem(10, 23)
     X0 = np.zeros((2, p.n), dtype=np.int8)

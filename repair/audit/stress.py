@@ -91,8 +91,8 @@ class ScenarioFamily:
     unavailable_values: int = 0
     must_change: int = 0
 
-    def validate(self, problem: Problem, *, field_name: str = "family") -> None:
-        f = field_name + "."
+    def validate(self, problem: Problem, *, field: str = "family") -> None:
+        f = field + "."
         for name in ("hamming_weight", "hamming_threshold", "hamming_fraction", "perturb_rate",
                      "capacity_cut_percent"):
             v = getattr(self, name)
@@ -135,7 +135,7 @@ class ScenarioFamily:
                              f"exceed the problem's {n_dec} decisions (the two parts use distinct "
                              f"decisions)")
         if not any(getattr(self, name) for name in PARTS):
-            raise InputError(field_name, "enables no late constraint (set one of "
+            raise InputError(field, "enables no late constraint (set one of "
                                          + ", ".join(PARTS) + ")")
 
     def to_dict(self) -> dict[str, Any]:

@@ -164,21 +164,21 @@ def _unique_name(base: str, used: set) -> str:
 
 
 def compile_constraints(problem: Problem, constraints: Sequence[Any], *,
-                        field_name: str = "constraints",
+                        field: str = "constraints",
                         paths: Sequence[str] | None = None) -> Compiled:
     """Check every constraint against ``problem``, lower it, and merge (with the validity
     rows of the problem's decisions).
 
-    Errors name ``paths[k]`` (default ``field_name[k]``) followed by the constraint's
+    Errors name ``paths[k]`` (default ``field[k]``) followed by the constraint's
     attribute, e.g. ``constraints[2].reference['x3']``; a caller whose request nests
     each constraint under its kind passes ``paths`` such as ``constraints[2].hamming``.
     """
     if not isinstance(constraints, (list, tuple)):
-        raise InputError(field_name, "must be a list of constraints")
+        raise InputError(field, "must be a list of constraints")
     if paths is None:
-        paths = [f"{field_name}[{k}]" for k in range(len(constraints))]
+        paths = [f"{field}[{k}]" for k in range(len(constraints))]
     elif len(paths) != len(constraints):
-        raise InputError(field_name, f"has {len(constraints)} constraints for {len(paths)} paths")
+        raise InputError(field, f"has {len(constraints)} constraints for {len(paths)} paths")
     used: set = set()
     pieces: list = encoding_pieces(problem)
     used.update(p.name for p in pieces)

@@ -91,23 +91,23 @@ class Pieces:
             raise ValueError(f"pieces {self.name!r}: positions and values differ in length")
 
 
-def label_bits(problem: Problem, mapping, field_name: str) -> tuple[np.ndarray, np.ndarray]:
+def label_bits(problem: Problem, mapping, field: str) -> tuple[np.ndarray, np.ndarray]:
     """A non-empty ``{label: caller value}`` mapping -> (positions int64 (p,), bits int8 (p,)).
 
-    Errors name ``field_name`` or ``field_name[label]``.
+    Errors name ``field`` or ``field[label]``.
     """
     if not hasattr(mapping, "items"):
-        raise InputError(field_name, "must map variable labels to values")
+        raise InputError(field, "must map variable labels to values")
     fast = _label_bits_at_once(problem, mapping)
     if fast is not None and fast[0].size:
         return fast
     idx, bits = [], []
     for lab, val in mapping.items():
-        f = f"{field_name}[{lab!r}]"
+        f = f"{field}[{lab!r}]"
         idx.append(problem.lookup(lab, f))
         bits.append(problem.value_to_bit(val, f))
     if not idx:
-        raise InputError(field_name, "is empty")
+        raise InputError(field, "is empty")
     return np.asarray(idx, dtype=np.int64), np.asarray(bits, dtype=np.int8)
 
 

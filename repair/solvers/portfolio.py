@@ -240,27 +240,31 @@ class _LazyCpsat:
         self.stats = stats
         self.workers = workers
 
-    def affordable(self, seconds: float) -> bool:
-        """Whether a search (and the build, if not done yet) fits in ``seconds``."""
+    def affordable(self, seconds: float, workers: int | None = None) -> bool:
+        """Whether a search on ``workers`` threads (default the model's), and the build if
+        not done yet, fits in ``seconds``."""
         return _cpsat_affordable(self.compiled, seconds, built=self.model is not None,
-                                 workers=self.workers)
+                                 workers=workers or self.workers)
 
-    def ready(self, deadline: float) -> bool:
-        """Built (or now built), and a search still fits before ``deadline``."""
+    def ready(self, deadline: float, workers: int | None = None) -> bool:
+        """Built (or now built), and a search on ``workers`` threads still fits before
+        ``deadline``."""
         if self.model is None:
             from flipfix.repair.solvers.cpsat import LateModel
 
-            if not self.affordable(deadline - time.perf_counter()):
+            if not self.affordable(deadline - time.perf_counter(), workers):
                 self.stats["cpsat_skipped"] = "budget too short to build the CP-SAT model"
                 return False
             self.model = LateModel(self.compiled)
             CPSAT_COSTS.built(self.compiled, self.model.build_seconds)
             self.stats["cpsat_build_seconds"] = round(self.model.build_seconds, 4)
-        return self.affordable(deadline - time.perf_counter())
+        return self.affordable(deadline - time.perf_counter(), workers)
 
-    def limit(self, seconds: float) -> float:
-        """The time limit to give CP-SAT so that a search with its set-up takes ``seconds``."""
-        return max(0.01, seconds - CPSAT_COSTS.setup_seconds(self.compiled, self.workers))
+    def limit(self, seconds: float, workers: int | None = None) -> float:
+        """The time limit to give CP-SAT (on ``workers`` threads, default the model's) so
+        that a search with its set-up takes ``seconds``."""
+        return max(0.01, seconds - CPSAT_COSTS.setup_seconds(self.compiled,
+                                                             workers or self.workers))
 
     def _timed(self, run, time_limit: float, **kwargs):
         r = run(time_limit=time_limit, **kwargs)
@@ -270,10 +274,12 @@ class _LazyCpsat:
 
     def solve(self, *, time_limit: float, **kwargs):
         """A search that, set-up included, takes about ``time_limit`` seconds."""
-        return self._timed(self.model.solve, self.limit(time_limit), **kwargs)
+        return self._timed(self.model.solve, self.limit(time_limit, kwargs.get("workers")),
+                           **kwargs)
 
     def fewest_flips(self, *, time_limit: float, **kwargs):
-        return self._timed(self.model.fewest_flips, self.limit(time_limit), **kwargs)
+        return self._timed(self.model.fewest_flips,
+                           self.limit(time_limit, kwargs.get("workers")), **kwargs)
 
 
 def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, deadline: float,
@@ -503,10 +509,15 @@ def _early_proof(cp, compiled, X0, out, scorer, *, feasible, obj, deadline, max_
     if max_flips is not None or flip_price:
         return False
     left = deadline - time.perf_counter()
-    setup = CPSAT_COSTS.setup_seconds(compiled, cp.workers)
-    if cp.model is None:
-        setup += build_cost(compiled)
-    if setup > PROOF_SETUP * left or not cp.ready(deadline):
+    build = 0.0 if cp.model is not None else build_cost(compiled)
+    # several CP-SAT workers may overrun a limit by up to CPSAT_COSTS.latency (0.15 s or
+    # more); when that does not fit, the proof runs on one worker (0.01 s): a small model
+    # is proved at once either way, and a short budget still gets its proof
+    workers = cp.workers
+    if CPSAT_COSTS.setup_seconds(compiled, workers) + build > PROOF_SETUP * left:
+        workers = 1
+    if (CPSAT_COSTS.setup_seconds(compiled, workers) + build > PROOF_SETUP * left
+            or not cp.ready(deadline, workers)):
         return False
     ok = np.flatnonzero(feasible)
     best = int(ok[np.argmin(obj[ok])]) if ok.size else None

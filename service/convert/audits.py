@@ -60,7 +60,7 @@ def family_to_domain(f: pb.ScenarioFamily, problem: Problem, *, field: str = "fa
         perturb_rate=float(f.perturb_rate) if f.HasField("perturb_rate") else 0.1,
         fix_k=int(f.fix_k), capacity_cut_percent=float(f.capacity_cut_percent),
         capacity_weights=weights)
-    fam.validate(problem, field_name=field)
+    fam.validate(problem, field=field)
     return fam
 
 
@@ -232,7 +232,7 @@ def reply_to_point(p: pb.ParetoPoint):
     return ParetoPoint(cost=p.cost, flips=int(p.flips), candidate_id=p.candidate_id, method=p.method)
 
 
-def reply_to_curation(r: pb.CurateReply, m: int, selection: str = "greedy"):
+def reply_to_curation(r: pb.CurateReply, m: int, selection: str = "forward"):
     """CurateReply -> :class:`flipfix.repair.audit.curation.CurationResult` (None when nothing was chosen).
 
     ``kept_indices`` are positions in the audited library (the stress report's order).

@@ -36,7 +36,7 @@ AUDIT_METHOD_NAMES = {**METHOD_NAMES, pb.METHOD_UNSPECIFIED: "greedy"}
 REFERENCE_NAMES = {pb.REFERENCE_UNSPECIFIED: "uniform", pb.UNIFORM: "uniform",
                    pb.PERTURBED: "perturbed"}
 REFERENCE_ENUM = {"uniform": pb.UNIFORM, "perturbed": pb.PERTURBED}
-SELECTION_NAMES = {pb.SELECTION_UNSPECIFIED: "greedy", pb.FORWARD: "greedy",
+SELECTION_NAMES = {pb.SELECTION_UNSPECIFIED: "forward", pb.FORWARD: "forward",
                    pb.EXHAUSTIVE: "exhaustive"}
 
 
