@@ -447,23 +447,29 @@ def _greedy_stage(compiled, X0, order, *, deadline, first_deadline, max_flips, f
                   cancel, workers, report):
     """Greedy repair of the candidates X0[order] in that order: the first alone until
     ``first_deadline`` (the whole search's: with no repaired answer nothing else can start
-    from one), then the others in batches of doubling size (from ``GREEDY_FIRST_BATCH``)
-    until ``deadline``: each batch's set-up (its copies, its consensus) is paid only for
-    candidates the time reaches. Returns ({candidate: repaired x int8 (n,)} of those
+    from one), then the others in batches of doubling size (from ``GREEDY_FIRST_BATCH``;
+    at most what half of the time left fits at the last batch's pace) until ``deadline``:
+    each batch's set-up (its copies, its consensus) is paid only for candidates the time
+    reaches. Returns ({candidate: repaired x int8 (n,)} of those
     repaired, seconds float64 (K,) spent on each, total steps)."""
     K = X0.shape[0]
     rows: dict = {}
     seconds = np.zeros(K)
     steps = 0
     pos, size = 0, 1
+    each = 0.0  # seconds per candidate of the last batch, set-up included
     while pos < K and time.perf_counter() < (first_deadline if pos == 0 else deadline):
+        if each > 0.0:  # a batch's set-up (copies, consensus: O(size x n)) ends in time
+            size = max(1, min(size, int(0.5 * (deadline - time.perf_counter()) / each)))
         batch = order[pos:pos + size]
+        t = time.perf_counter()
         g = greedy_repair(compiled, X0[batch], max_flips=max_flips, flip_price=flip_price,
                           deadline=first_deadline if pos == 0 else deadline, cancel=cancel,
                           workers=workers,
                           progress=lambda d, tot, at=pos: report(done=at + d, total=K,
                                                                  phase="greedy"))
         seconds[batch] = g.seconds
+        each = (time.perf_counter() - t) / batch.size
         steps += int(g.steps.sum())
         rows.update((int(k), g.X[j]) for j, k in enumerate(batch.tolist()) if g.done[j])
         if not g.done.all() or (cancel is not None and cancel.is_set()):
