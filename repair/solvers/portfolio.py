@@ -72,9 +72,11 @@ FEWEST_MIN_SECONDS = 0.01
 #: relative cost slack of "no costlier" in the polish steps
 COST_SLACK = 1e-9
 #: share of what is left after greedy that the early proof attempt may take; it runs when
-#: CP-SAT's model and set-up fit in ``PROOF_SETUP`` of what is left
+#: CP-SAT's model and its per-item set-up fit in ``PROOF_SETUP`` of what is left
 PROOF_SHARE = 0.1
 PROOF_SETUP = 0.05
+#: most of what is left that a proof attempt's possible overrun (CP-SAT's latency) may take
+PROOF_LATENCY = 0.5
 #: shortest CP-SAT search worth starting after its set-up
 CPSAT_MIN_SECONDS = 0.02
 
@@ -516,14 +518,16 @@ def _early_proof(cp, compiled, X0, out, scorer, *, feasible, obj, deadline, max_
         return False
     left = deadline - time.perf_counter()
     build = 0.0 if cp.model is not None else build_cost(compiled)
-    # several CP-SAT workers may overrun a limit by up to CPSAT_COSTS.latency (0.15 s or
-    # more); when that does not fit, the proof runs on one worker (0.01 s): a small model
-    # is proved at once either way, and a short budget still gets its proof
+    if build + CPSAT_COSTS.setup * _items(compiled) > PROOF_SETUP * left:
+        return False  # the model is too large for a proof to be likely in this budget
+    # a search that runs to its limit may overrun it by CPSAT_COSTS.latency (0.15 s or more
+    # on several workers, 0.01 s on one), and the later stages absorb it: on one worker
+    # when several would not fit in PROOF_LATENCY of what is left (a small model is proved
+    # at once either way, so a short budget still gets its proof)
     workers = cp.workers
-    if CPSAT_COSTS.setup_seconds(compiled, workers) + build > PROOF_SETUP * left:
+    if CPSAT_COSTS.latency(workers) > PROOF_LATENCY * left:
         workers = 1
-    if (CPSAT_COSTS.setup_seconds(compiled, workers) + build > PROOF_SETUP * left
-            or not cp.ready(deadline, workers)):
+    if CPSAT_COSTS.latency(workers) > PROOF_LATENCY * left or not cp.ready(deadline, workers):
         return False
     ok = np.flatnonzero(feasible)
     best = int(ok[np.argmin(obj[ok])]) if ok.size else None
