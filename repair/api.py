@@ -16,7 +16,7 @@ from flipfix.repair.lowering.compiled import Compiled, compile_constraints
 from flipfix.repair.errors import InputError
 from flipfix.repair.model.problem import Problem
 from flipfix.repair.kernels.scores import Scorer, distances
-from flipfix.repair.solvers.portfolio import DEFAULT_MIX, Attempt, Mix, attempt_scores, run_plan
+from flipfix.repair.solvers.portfolio import DEFAULT_MIX, Mix, attempt_scores, run_plan
 from flipfix.repair.result import METHODS, UNSCORED, Audit, RepairResult, Solution
 
 __all__ = ["repair", "warm_up", "check_options", "result_seconds", "search_deadline",
@@ -180,7 +180,6 @@ def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, 
     if compiled is None:
         compiled = compile_constraints(problem, list(constraints))
     X0 = np.ascontiguousarray(candidates.X, dtype=np.int8)
-    K = X0.shape[0]
     price = float(flip_price)
     plan_ref = plan_reference(compiled)
     t_lowered = time.perf_counter()

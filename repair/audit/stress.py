@@ -35,7 +35,7 @@ from __future__ import annotations
 
 import math
 import time
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass
 from typing import Any, Callable, Mapping, Sequence
 
 import numpy as np
@@ -46,7 +46,7 @@ from flipfix.repair.errors import InputError
 from flipfix.repair.model.constraints import ForbidValues
 from flipfix.repair.model.encodings import decode_indices
 from flipfix.repair.model.problem import Problem
-from flipfix.repair.model.vartypes import BINARY, SPIN, change_vartype
+from flipfix.repair.model.vartypes import BINARY, change_vartype
 from flipfix.repair.audit.robustness import robustness_profile
 
 __all__ = ["ScenarioFamily", "Scenario", "CandidateStress", "StressReport", "draw_scenarios",
