@@ -534,8 +534,11 @@ def _early_proof(cp, compiled, X0, out, scorer, *, feasible, obj, deadline, max_
     anchor = best if best is not None else int(np.argmin(scorer.violation[:X0.shape[0]]))
     _full_search(cp, X0, out, anchor=anchor,
                  best_obj=None if best is None else float(obj[best]),
-                 time_limit=PROOF_SHARE * (deadline - time.perf_counter()), max_flips=None,
-                 flip_price=0.0, seed=seed, workers=workers, cancel=cancel)
+                 # CP-SAT itself gets PROOF_SHARE of what is left; its set-up and possible
+                 # overrun come on top (the gate above made room for them)
+                 time_limit=(PROOF_SHARE * (deadline - time.perf_counter())
+                             + CPSAT_COSTS.setup_seconds(compiled, workers)),
+                 max_flips=None, flip_price=0.0, seed=seed, workers=workers, cancel=cancel)
     if not (out.proven_optimal or out.proven_infeasible):
         return False
     what = "optimal" if out.proven_optimal else "infeasible"
