@@ -77,6 +77,8 @@ PROOF_SHARE = 0.1
 PROOF_SETUP = 0.05
 #: most of what is left that a proof attempt's possible overrun (CP-SAT's latency) may take
 PROOF_LATENCY = 0.5
+#: shortest time limit of a proof attempt, when it fits in that room
+PROOF_MIN_SECONDS = 0.05
 #: shortest CP-SAT search worth starting after its set-up
 CPSAT_MIN_SECONDS = 0.02
 
@@ -529,15 +531,19 @@ def _early_proof(cp, compiled, X0, out, scorer, *, feasible, obj, deadline, max_
         workers = 1
     if CPSAT_COSTS.latency(workers) > PROOF_LATENCY * left or not cp.ready(deadline, workers):
         return False
+    left = deadline - time.perf_counter()
+    proof_seconds = PROOF_SHARE * left
+    if PROOF_MIN_SECONDS + CPSAT_COSTS.latency(workers) <= PROOF_LATENCY * left:
+        proof_seconds = max(proof_seconds, PROOF_MIN_SECONDS)
     ok = np.flatnonzero(feasible)
     best = int(ok[np.argmin(obj[ok])]) if ok.size else None
     anchor = best if best is not None else int(np.argmin(scorer.violation[:X0.shape[0]]))
     _full_search(cp, X0, out, anchor=anchor,
                  best_obj=None if best is None else float(obj[best]),
-                 # CP-SAT itself gets PROOF_SHARE of what is left; its set-up and possible
-                 # overrun come on top (the gate above made room for them)
-                 time_limit=(PROOF_SHARE * (deadline - time.perf_counter())
-                             + CPSAT_COSTS.setup_seconds(compiled, workers)),
+                 # CP-SAT itself gets PROOF_SHARE of what is left (at least PROOF_MIN_SECONDS
+                 # when that and the overrun fit the gate's room: its start alone took 30 ms
+                 # on a loaded machine); its set-up and possible overrun come on top
+                 time_limit=(proof_seconds + CPSAT_COSTS.setup_seconds(compiled, workers)),
                  max_flips=None, flip_price=0.0, seed=seed, workers=workers, cancel=cancel)
     if not (out.proven_optimal or out.proven_infeasible):
         return False
