@@ -34,10 +34,7 @@ from typing import NamedTuple
 import numba as nb
 import numpy as np
 
-from flipfix.repair.kernels.cache import drop_stale
 from flipfix.repair.kernels.rows import row_viol
-
-drop_stale()  # before numba loads this folder's cached kernels
 
 __all__ = ["Moves", "Plan", "Chain", "advance", "flip_changes", "new_chain", "temperature"]
 
