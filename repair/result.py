@@ -136,7 +136,10 @@ class Audit:
                         encoding_issues=list(self.encoding_issues.get(k, [])))
 
     def __iter__(self):
-        return (self[k] for k in range(len(self)))
+        cols = [getattr(self, name).tolist() for name, _ in _COLUMNS]  # Python numbers at once
+        issues = self.encoding_issues
+        for k, values in enumerate(zip(self.candidate_id, *cols)):
+            yield AuditRow(*values, encoding_issues=list(issues.get(k, [])))
 
     def __eq__(self, other) -> bool:
         if isinstance(other, Audit):
