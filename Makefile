@@ -19,6 +19,7 @@ demo: $(STAMP)
 	$(BIN)/flipfix demo
 
 test: $(STAMP)
+	scripts/ensure_postgres.sh
 	$(BIN)/python -m pytest -q
 
 # the benchmarks also need the bench extra (the reference annealer of the rerun section)

@@ -4,4 +4,4 @@ Entry point: ``python -m bench.run [--quick] [--only NAME]``. Never part of the 
 """
 
 #: the order sections run and are reported in
-SECTIONS_ORDER = ("repair", "kernel", "service", "memory", "mix")
+SECTIONS_ORDER = ("repair", "kernel", "service", "memory", "mix", "grow")

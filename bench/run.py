@@ -2,7 +2,11 @@
 
 Sections: repair (repair vs re-solve), kernel (greedy throughput), service (gRPC overhead),
 memory (peak RSS), mix (which portfolio budget mix wins at each budget), rerun (repair vs a
-simulated annealer re-run from scratch; needs the ``bench`` extra). Prints a table per section and writes bench/results/latest.json
+simulated annealer re-run from scratch; needs the ``bench`` extra), cluster (stress tests on
+Dask vs the local pool), grow (original vs grown library on held-out scenarios), load (50
+clients against one server process: rejections, latency, health p99, peak memory, shutdown
+time), conflicts (a minimal conflict among many hard rows). Prints a table per section and
+writes bench/results/latest.json
 (the figures, the machine, the command). Never part of the test suite.
 """
 
@@ -12,7 +16,8 @@ import argparse
 import sys
 import time
 
-from bench import (budget, kernel, memory, mix, repair_vs_rerun, repair_vs_resolve,
+from bench import (budget, cluster, conflicts, grow, kernel, load, memory, mix,
+                   repair_vs_rerun, repair_vs_resolve,
                    service_overhead)
 from bench.common import machine, write_results
 
@@ -26,6 +31,10 @@ SECTIONS = {
     "mix": mix,
     "budget": budget,
     "rerun": repair_vs_rerun,
+    "cluster": cluster,
+    "grow": grow,
+    "load": load,
+    "conflicts": conflicts,
 }
 
 

@@ -18,6 +18,7 @@ from flipfix.repair.model.problem import Problem
 from flipfix.repair.kernels.scores import Scorer, distances
 from flipfix.repair.solvers.portfolio import DEFAULT_MIX, Mix, attempt_scores, run_plan
 from flipfix.repair.result import METHODS, UNSCORED, Audit, RepairResult, Solution
+from flipfix.repair.solvers.alternatives import check_alternatives, pick_alternatives
 
 __all__ = ["repair", "warm_up", "check_options", "result_seconds", "search_deadline",
            "plan_reference"]
@@ -139,6 +140,7 @@ def repair(
     cancel: threading.Event | None = None,
     progress: Callable[[dict], None] | None = None,
     compiled: Compiled | None = None, mix: Mix = DEFAULT_MIX,
+    alternatives: int = 0, alternative_distance: int = 1, alternatives_by: str = "flips",
 ) -> RepairResult:
     """Repair every candidate under the late constraints; return the best and the audit.
 
@@ -152,6 +154,10 @@ def repair(
     The budget covers the whole call from its entry (after the one-time kernel warm-up):
     lowering the constraints, scoring the library, the search and building the result;
     ``RepairResult.seconds`` is that time.
+
+    ``alternatives`` > 0 also returns up to that many feasible answers pairwise at least
+    ``alternative_distance`` apart (``alternatives_by``: "flips" or "decisions"), cheapest
+    first (:mod:`flipfix.repair.solvers.alternatives`); a fifth of the budget is kept for them.
     """
     # one-time costs per process, kept out of the budget: the compiled kernels (loaded
     # from the cache, or compiled on a machine's first run) and OR-Tools
@@ -162,11 +168,14 @@ def repair(
         return _repair(problem, candidates, constraints, method=method, time_limit=time_limit,
                        max_flips=max_flips, flip_price=flip_price, seed=seed, workers=workers,
                        pareto=pareto, cancel=cancel, progress=progress, compiled=compiled,
-                       mix=mix, t0=time.perf_counter())
+                       mix=mix, t0=time.perf_counter(), alternatives=alternatives,
+                       alternative_distance=alternative_distance,
+                       alternatives_by=alternatives_by)
 
 
 def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, flip_price,
-            seed, workers, pareto, cancel, progress, compiled, mix, t0) -> RepairResult:
+            seed, workers, pareto, cancel, progress, compiled, mix, t0, alternatives=0,
+            alternative_distance=1, alternatives_by="flips") -> RepairResult:
     if not isinstance(problem, Problem):
         raise InputError("problem", f"expected a Problem, got {type(problem).__name__}")
     if not isinstance(candidates, CandidateSet):
@@ -177,6 +186,10 @@ def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, 
         raise InputError("mix", f"expected a flipfix.repair.solvers.portfolio.Mix, got {type(mix).__name__}")
     check_options(method=method, time_limit=time_limit, max_flips=max_flips,
                   flip_price=flip_price, seed=seed, workers=workers)
+    check_alternatives(alternatives=alternatives, alternative_distance=alternative_distance,
+                       alternatives_by=alternatives_by)
+    if alternatives_by == "decisions" and not problem.decisions:
+        raise InputError("alternatives_by", "the problem declares no decisions")
     if compiled is None:
         compiled = compile_constraints(problem, list(constraints))
     X0 = np.ascontiguousarray(candidates.X, dtype=np.int8)
@@ -191,7 +204,10 @@ def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, 
     fixed_part = result_seconds(0, problem.n, decisions=decisions)
     per_candidate = result_seconds(1, problem.n, attempts=2 if pareto else 0,
                                    decisions=decisions) - fixed_part
-    share = SCORING_SHARE * max(0.0, search_deadline(t0, float(time_limit), fixed_part) - t_lowered)
+    # kept for the alternatives' own CP-SAT searches
+    held = ALTERNATIVES_SHARE * float(time_limit) if alternatives else 0.0
+    share = SCORING_SHARE * max(0.0, search_deadline(t0, float(time_limit), held + fixed_part)
+                                - t_lowered)
     scorer = Scorer(compiled, X0, workers=workers, deadline=t_lowered + share,
                     later_per_row=per_candidate)
     # where the time went (stats): lowering, scoring the library, search, the result
@@ -205,17 +221,79 @@ def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, 
 
     if compiled.fix_conflicts:
         label, name = compiled.fix_conflicts[0]
-        return _build(problem, candidates, compiled, scorer, [], price, method, seed, t0,
-                      status="infeasible", **common,
-                      message=f"variable {label!r} is fixed to both values ({name})")
+        res = _build(problem, candidates, compiled, scorer, [], price, method, seed, t0,
+                     status="infeasible", **common,
+                     message=f"variable {label!r} is fixed to both values ({name})")
+        return _name_conflict(res, compiled, time_limit=time_limit, seed=seed, cancel=cancel,
+                              t0=t0)
     # the front's attempts are not known yet: those of greedy plus a round of kicks
-    reserve = fixed_part + per_candidate * scorer.scored
+    reserve = held + fixed_part + per_candidate * scorer.scored
     plan = run_plan(compiled, X0, method=method,
                     deadline=search_deadline(t0, float(time_limit), reserve),
                     max_flips=max_flips, flip_price=price, seed=seed, workers=workers,
                     cancel=cancel, progress=report, mix=mix, scorer=scorer)
-    return _build(problem, candidates, compiled, scorer, plan.attempts, price, method, seed, t0,
-                  plan=plan, **common)
+    res = _build(problem, candidates, compiled, scorer, plan.attempts, price, method, seed, t0,
+                 plan=plan, **common)
+    res = _name_conflict(res, compiled, time_limit=time_limit, seed=seed, cancel=cancel, t0=t0)
+    if alternatives and res.best.feasible:
+        res.alternatives = _alternatives(problem, candidates, compiled, plan.attempts, res,
+                                         k=alternatives, distance=alternative_distance,
+                                         by_decisions=alternatives_by == "decisions",
+                                         flip_price=price, max_flips=max_flips, seed=seed,
+                                         workers=workers, cancel=cancel,
+                                         time_limit=float(time_limit) - (time.perf_counter() - t0))
+        res.seconds = time.perf_counter() - t0
+    return res
+
+
+#: the conflict search's time when the budget is spent (a small model needs a few
+#: milliseconds; a busy machine more)
+CONFLICT_MIN_SECONDS = 0.25
+#: share of the budget kept for the alternatives' CP-SAT searches when they are asked for
+ALTERNATIVES_SHARE = 0.2
+
+
+def _alternatives(problem, candidates, compiled, attempts, res, *, k, distance, by_decisions,
+                  flip_price, max_flips, seed, workers, cancel, time_limit) -> list:
+    """The best answer, every attempt and the scored candidates no attempt started from (as
+    they are) as the pool of :func:`pick_alternatives`; the alternatives get their candidate
+    ids and caller-form assignments."""
+    X0 = np.ascontiguousarray(candidates.X, dtype=np.int8)
+    best_k = candidates.ids.index(res.best.repaired_from) if res.best.repaired_from else -1
+    idle = np.flatnonzero(res.audit.method == "unrepaired")  # scored, as they are
+    pool = np.vstack([res.best.x] + [a.x for a in attempts] + [X0[idle]])
+    origins = np.concatenate([[best_k], [a.k for a in attempts], idle]).astype(np.int64)
+    out = pick_alternatives(compiled, X0, pool, k=k, distance=distance,
+                            by_decisions=by_decisions, flip_price=flip_price,
+                            max_flips=max_flips, origins=origins,
+                            time_limit=max(0.0, time_limit), seed=seed, workers=workers,
+                            cancel=cancel)
+    for a in out:
+        a.candidate_id = candidates.ids[a.source]
+        a.assignment = dict(zip(problem.labels, problem.to_caller(a.x).tolist()))
+    return out
+
+
+def _name_conflict(res: RepairResult, compiled: Compiled, *, time_limit, seed, cancel, t0
+                   ) -> RepairResult:
+    """Without a feasible answer, name a minimal set of hard late constraints that conflict
+    (:mod:`flipfix.repair.solvers.conflicts`, in what is left of the budget, at least
+    CONFLICT_MIN_SECONDS); a proved conflict makes the status "infeasible" and the message
+    names it. A cancel stops it with what it has proved."""
+    if (res.status not in ("infeasible", "no_feasible_found") or not compiled.has_hard
+            or (cancel is not None and cancel.is_set())):
+        return res
+    from flipfix.repair.solvers.conflicts import name_conflict
+
+    left = max(CONFLICT_MIN_SECONDS, float(time_limit) - (time.perf_counter() - t0))
+    conflict = name_conflict(compiled, time_limit=left, seed=seed, cancel=cancel)
+    if conflict.status == "conflict":  # a proof: a search that found nothing is now "infeasible"
+        res.conflict = conflict
+        res.message = (f"{res.message}; {conflict.message}" if res.status == "infeasible"
+                       and res.message else conflict.message)
+        res.status = "infeasible"
+    res.seconds = time.perf_counter() - t0
+    return res
 
 
 def _build(problem, candidates, compiled, scorer, attempts, price, method, seed, t0, *, pareto,

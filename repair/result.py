@@ -209,6 +209,12 @@ class RepairResult:
     scaling_error: float = 0.0
     cpsat_status: str = ""
     stats: dict = field(default_factory=dict)
+    #: when the hard constraints cannot all hold: a minimal set of them that conflicts
+    #: (:class:`flipfix.repair.solvers.conflicts.Conflict`); None otherwise
+    conflict: Any = None
+    #: feasible alternatives, cheapest first, when asked for
+    #: (:class:`flipfix.repair.solvers.alternatives.Alternative`)
+    alternatives: list = field(default_factory=list)
 
     def __post_init__(self):
         if not isinstance(self.audit, Audit):
@@ -250,4 +256,6 @@ class RepairResult:
             "audit": self.audit.to_dicts(),
             "pareto": [{"cost": num(p.cost), "flips": int(p.flips), "candidate_id": p.candidate_id,
                         "method": p.method} for p in self.pareto],
+            "conflict": None if self.conflict is None else self.conflict.to_dict(),
+            "alternatives": [a.to_dict() for a in self.alternatives],
         }

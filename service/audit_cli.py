@@ -23,12 +23,16 @@ import json
 import math
 import sys
 import textwrap
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any, TextIO
 
 import numpy as np
 
+from flipfix.repair.documents import jsontext
 from flipfix.repair.errors import InputError
+from flipfix.service.errors import TransientError
+from flipfix.service import connect
 
 __all__ = ["register", "run", "audit", "audit_remote", "draw_figure", "format_table"]
 
@@ -87,29 +91,35 @@ def register(subparsers) -> argparse.ArgumentParser:
     p.add_argument("--keep", type=int, default=None, help="choose M candidates to keep")
     p.add_argument("--png", default=None, help="write the figure to this PNG file")
     p.add_argument("--json", default=None, help="write the full audit to this JSON file")
+    p.add_argument("--dask", metavar="ADDRESS|local:N", default=None,
+                   help="run the stress test's scenarios on a Dask cluster: a scheduler "
+                        "address (tcp://host:8786) or local:N worker processes started here")
     p.add_argument("--server", metavar="HOST:PORT", default=None,
                    help="audit a problem stored in a running flipfix service")
     p.add_argument("--commit", action="store_true",
                    help="with --server and --keep M: keep only the chosen candidates in the store")
+    connect.add_arguments(p)
     p.set_defaults(func=run)
     return p
 
 
 def _load(path: str, field: str) -> Any:
     try:
-        with open(path, encoding="utf-8") as fh:
-            return json.load(fh)
+        with open(path, "rb") as fh:
+            raw = fh.read()
     except OSError as exc:
         raise InputError(field, f"cannot read {path}: {exc.strerror or exc}") from None
-    except json.JSONDecodeError as exc:
-        raise InputError(field, f"{path} is not valid JSON: {exc.msg} at line {exc.lineno}") from None
+    return jsontext.loads(raw, field=field)
 
 
 def audit(problem, candidates, family=None, *, scenarios: int, seed: int, method: str,
           time_limit: float, epsilon: float, keep: int | None, pareto_constraints=None,
           pareto_methods=("greedy", "cpsat"), pareto_time: float = 2.0, cancel=None,
-          progress=None) -> dict:
+          progress=None, runner=None) -> dict:
     """Run the four parts of the audit and return their plain-data reports.
+
+    ``runner``: where the stress test's scenarios run (None: here, one after another;
+    :class:`flipfix.service.cluster.DaskRunner`: on a Dask cluster).
 
     ``family`` None is :func:`flipfix.repair.audit.stress.default_family` of the problem.
     """
@@ -123,7 +133,8 @@ def audit(problem, candidates, family=None, *, scenarios: int, seed: int, method
         family = default_family(problem)
     prof = robustness_profile(problem, candidates, epsilon=epsilon)
     stress = stress_test(problem, candidates, family, scenarios=scenarios, seed=seed, method=method,
-                         time_limit=time_limit, epsilon=epsilon, cancel=cancel, progress=progress)
+                         time_limit=time_limit, epsilon=epsilon, cancel=cancel, progress=progress,
+                         runner=runner)
     if pareto_constraints is None:
         sc = draw_scenarios(problem, candidates, family, count=1, seed=seed)[0]
         pareto_constraints, pareto_what = sc.constraints, f"scenario 0: {sc.description}"
@@ -491,6 +502,10 @@ def run(args: argparse.Namespace, *, out: TextIO | None = None, err: TextIO | No
     from flipfix.repair.documents.forms import parse_candidates, parse_problem
 
     if getattr(args, "server", None):
+        if getattr(args, "dask", None):
+            print("flipfix audit: error: dask: --dask runs an in-process audit's stress test on "
+                  "a cluster; with --server the server's own --dask decides", file=err)
+            return 2
         return _run_remote(args, out, err)
     if args.candidates is None:
         print("flipfix audit: error: candidates: a candidates JSON document is needed "
@@ -505,16 +520,32 @@ def run(args: argparse.Namespace, *, out: TextIO | None = None, err: TextIO | No
         cons = _pareto_constraints(args, problem)
         family = _family_of(args, problem)
         methods = _pareto_methods(args)
-        report = audit(problem, candidates, family, scenarios=args.scenarios, seed=args.seed,
-                       method=args.method, time_limit=args.time_limit, epsilon=args.epsilon,
-                       keep=args.keep, pareto_constraints=cons, pareto_methods=methods,
-                       pareto_time=args.pareto_time)
-    except InputError as exc:
+        with _cluster(getattr(args, "dask", None)) as runner:
+            report = audit(problem, candidates, family, scenarios=args.scenarios,
+                           seed=args.seed, method=args.method, time_limit=args.time_limit,
+                           epsilon=args.epsilon, keep=args.keep, pareto_constraints=cons,
+                           pareto_methods=methods, pareto_time=args.pareto_time, runner=runner)
+    except (InputError, TransientError) as exc:
         field = _OPTION_OF.get(exc.field, exc.field)
         print(f"flipfix audit: error: {field}: {exc.message}", file=err)
         return 2
     _emit(args, report, out)
     return 0
+
+
+@contextmanager
+def _cluster(text: str | None):
+    """A :class:`flipfix.service.cluster.DaskRunner` for ``--dask`` (closed after), or None."""
+    if not text:
+        yield None
+        return
+    from flipfix.service.cluster import DaskRunner, connect
+
+    cluster = connect(text, field="dask")
+    try:
+        yield DaskRunner(cluster.client)
+    finally:
+        cluster.close()
 
 
 def _pareto_constraints(args, problem):
@@ -568,7 +599,8 @@ def _run_remote(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         print("flipfix audit: error: --commit: needs --keep M", file=err)
         return 2
     budget = args.time_limit + args.pareto_time
-    with FlipfixClient(args.server, timeout=2 * budget + 60.0) as fx:
+    with FlipfixClient(args.server, timeout=2 * budget + 60.0,
+                       connection=connect.from_args(args, args.server)) as fx:
         try:
             _info, problem = fx.get_problem(args.problem)
             if problem.decisions and all(getattr(args, o) is None for o in _PART_OPTIONS.values()):

@@ -31,13 +31,29 @@ def robustness(problem: Problem, candidates: CandidateSet, *, epsilon: float, sp
 
 def stress(problem: Problem, candidates: CandidateSet, family, *, scenarios: int, seed: int,
            method: str, time_limit: float, epsilon: float, repair_options: dict,
-           cancel=None, progress=None):
-    """:func:`flipfix.repair.audit.stress.stress_test`; ``time_limit`` covers the whole run."""
+           dask: str = "", cancel=None, progress=None):
+    """:func:`flipfix.repair.audit.stress.stress_test`; ``time_limit`` covers the whole run.
+
+    ``dask``: a Dask scheduler's address; the scenarios then run on its workers
+    (:class:`flipfix.service.cluster.DaskRunner`, one client per worker process, kept).
+    """
     from flipfix.repair.audit.stress import stress_test
 
+    runner = _dask_runner(dask) if dask else None
     return stress_test(problem, candidates, family, scenarios=scenarios, seed=seed,
                        method=method, time_limit=time_limit, epsilon=epsilon, cancel=cancel,
-                       progress=progress, repair_options=repair_options)
+                       progress=progress, repair_options=repair_options, runner=runner)
+
+
+_CLUSTERS: dict = {}  # scheduler address -> Cluster, in this worker process
+
+
+def _dask_runner(address: str):
+    from flipfix.service.cluster import DaskRunner, connect
+
+    if address not in _CLUSTERS:
+        _CLUSTERS[address] = connect(address, field="dask")
+    return DaskRunner(_CLUSTERS[address].client)
 
 
 def pareto(problem: Problem, candidates: CandidateSet, compiled: Compiled, *,

@@ -5,6 +5,7 @@
                    [--max-flips N] [--flip-price P] [--seed S] [--server HOST:PORT]
     flipfix demo
     flipfix audit ...   (when flipfix.service.audit_cli is installed)
+    flipfix grow ...    (flipfix.service.grow_cli)
 
 ``repair`` runs in-process by default and prints the result JSON on stdout
 (progress on stderr); ``--server`` sends the same files through the service. A
@@ -15,6 +16,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import re
 import signal
 import sys
@@ -36,15 +38,17 @@ class UsageError(Exception):
 
 # ------------------------------------------------------------------ helpers
 def _load_json(path: str, what: str):
+    """The JSON document in ``path`` (strict: :mod:`flipfix.repair.documents.jsontext`)."""
+    from flipfix.repair.documents import jsontext
+
     try:
-        text = Path(path).read_text(encoding="utf-8")
+        raw = Path(path).read_bytes()
     except OSError as err:
         raise UsageError(f"{path}: cannot read the {what} file: {err.strerror or err}") from None
     try:
-        return json.loads(text)
-    except json.JSONDecodeError as err:
-        raise UsageError(f"{path}: not valid JSON (line {err.lineno}, column {err.colno}): "
-                         f"{err.msg}") from None
+        return jsontext.loads(raw, field=what)
+    except InputError as err:
+        raise UsageError(f"{path}: {err.field}: {err.message}") from None
 
 
 _OPTION_FIELDS = {"method": "--method", "time_limit": "--time-limit", "max_flips": "--max-flips",
@@ -101,6 +105,8 @@ def cmd_repair(args) -> int:
             out = _repair_local(args, docs, show)
     except InputError as err:
         raise UsageError(_blame(err, files)) from None
+    if out.get("conflict"):  # the hard constraints that cannot all hold, readable
+        print(f"flipfix: {out['conflict']['message']}", file=sys.stderr)
     json.dump(out, sys.stdout, indent=2)
     sys.stdout.write("\n")
     return 0
@@ -128,7 +134,10 @@ def _repair_remote(args, docs: dict, show: _Progress) -> dict:
     # (problem..., candidates..., constraints...), which _blame maps to the file
     budget = args.time_limit
     timeout = None if budget is None else budget * 2 + 30.0
-    with FlipfixClient(args.server, timeout=timeout) as fx:
+    from flipfix.service import connect
+
+    with FlipfixClient(args.server, timeout=timeout,
+                       connection=connect.from_args(args, args.server)) as fx:
         try:
             return fx.repair(docs["problem"], docs["constraints"], candidates=docs["candidates"],
                              **_repair_options(args),
@@ -153,25 +162,42 @@ def cmd_serve(args) -> int:
         db_path=args.db, workers=args.workers, queue_size=args.queue,
         max_message_bytes=int(args.max_message_mb * 1024 * 1024),
         max_variables=args.max_variables, max_candidates=args.max_candidates,
-        max_constraints=args.max_constraints, default_time_limit=args.default_time_limit)
+        max_constraints=args.max_constraints, default_time_limit=args.default_time_limit,
+        max_couplings=args.max_couplings, heavy_calls=args.heavy_calls,
+        heavy_queue=args.queue, memory_mb=args.memory_mb, tls_cert=args.tls_cert,
+        tls_key=args.tls_key, tls_client_ca=args.tls_client_ca,
+        allow_insecure_public_bind=args.allow_insecure_public_bind,
+        reflection=not args.no_reflection, token_file=args.token_file,
+        quota_problems=args.quota_problems, quota_candidates=args.quota_candidates,
+        quota_mb=args.quota_mb, dask=args.dask or "", max_records=args.max_records)
     try:
         srv = create_server(f"{args.host}:{args.port}", config)
-    except OSError as err:
+    except (OSError, InputError) as err:
         raise UsageError(str(err)) from None
+    except InputError as err:
+        raise UsageError(f"{err.field}: {err.message}") from None
     print(f"flipfix: serving on {args.host}:{srv.port} (db {args.db}, {args.workers} worker(s))",
           file=sys.stderr, flush=True)
 
     def stop(signum, _frame):
+        srv.begin_shutdown()  # new calls get UNAVAILABLE from here on
         print(f"flipfix: signal {signum}: shutting down (grace {args.grace}s)", file=sys.stderr,
               flush=True)
         threading.Thread(target=srv.shutdown, args=(args.grace,), daemon=True).start()
 
+    def reload(_signum, _frame):
+        threading.Thread(target=srv.reload_tokens, daemon=True).start()
+
     signal.signal(signal.SIGTERM, stop)
     signal.signal(signal.SIGINT, stop)
-    while not srv.wait_for_termination(0.5):
-        pass
+    signal.signal(signal.SIGHUP, reload)
+    srv.wait_for_termination()  # an event; signal handlers run while it waits
     print("flipfix: stopped", file=sys.stderr, flush=True)
-    return 0
+    # the store is closed and the workers have ended: skip the interpreter's teardown
+    # (about 0.5 s of joining library threads) so the process ends within the grace period
+    logging.shutdown()
+    sys.stdout.flush()
+    os._exit(0)
 
 
 def cmd_demo(args) -> int:
@@ -191,23 +217,57 @@ def _positive_float(text: str) -> float:
     return v
 
 
+class _Parser(argparse.ArgumentParser):
+    """argparse with one-line errors (``flipfix repair: argument --time-limit: ...``, exit 2)
+    instead of the usage block; ``--help`` still shows the usage."""
+
+    def error(self, message: str):
+        self.exit(EXIT_USAGE, f"{self.prog}: {message}\n")
+
+
 def build_parser() -> argparse.ArgumentParser:
-    ap = argparse.ArgumentParser(prog="flipfix", description="Repair a library of QUBO/Ising "
+    ap = _Parser(prog="flipfix", description="Repair a library of QUBO/Ising "
                                  "solutions when a late constraint arrives.")
     sub = ap.add_subparsers(dest="command", required=True)
 
     s = sub.add_parser("serve", help="run the gRPC service")
     s.add_argument("--host", default="127.0.0.1")
     s.add_argument("--port", type=int, default=50051, help="0 picks a free port")
-    s.add_argument("--db", default="flipfix.sqlite3", help="SQLite database file")
-    s.add_argument("--workers", type=int, default=1, help="repair processes")
-    s.add_argument("--queue", type=int, default=4, help="repairs that may wait for a worker")
+    s.add_argument("--db", default="flipfix.sqlite3",
+                   help="an SQLite database file, or a postgresql:// URL shared by replicas")
+    s.add_argument("--workers", type=int, default=2, help="repair processes")
+    s.add_argument("--queue", type=int, default=64,
+                   help="repairs that may wait for a worker, and heavy calls for the gate")
+    s.add_argument("--heavy-calls", type=int, default=2,
+                   help="uploads/conversions run at once (the rest wait in the queue)")
+    s.add_argument("--memory-mb", type=float, default=2048.0,
+                   help="estimated memory all heavy calls together may use (25 x request bytes)")
+    s.add_argument("--max-couplings", type=int, default=2_000_000)
+    s.add_argument("--tls-cert", metavar="FILE", help="server certificate chain (PEM)")
+    s.add_argument("--tls-key", metavar="FILE", help="server private key (PEM)")
+    s.add_argument("--tls-client-ca", metavar="FILE",
+                   help="require client certificates signed by these CAs (mutual TLS)")
+    s.add_argument("--allow-insecure-public-bind", action="store_true",
+                   help="serve a non-loopback --host without TLS and tokens (unsafe)")
+    s.add_argument("--no-reflection", action="store_true", help="do not serve gRPC reflection")
+    s.add_argument("--quota-problems", type=int, default=None, help="per tenant (unlimited)")
+    s.add_argument("--quota-candidates", type=int, default=None, help="per tenant (unlimited)")
+    s.add_argument("--quota-mb", type=float, default=None,
+                   help="stored MiB per tenant: models and packed candidates (unlimited)")
+    s.add_argument("--token-file", metavar="FILE",
+                   help="JSON-lines token hashes with tenant and role (SIGHUP reloads it); "
+                        "every call but health then needs a bearer token")
     s.add_argument("--max-message-mb", type=float, default=64.0)
     s.add_argument("--max-variables", type=int, default=100_000)
     s.add_argument("--max-candidates", type=int, default=10_000)
     s.add_argument("--max-constraints", type=int, default=1_000)
     s.add_argument("--default-time-limit", type=_positive_float, default=5.0)
+    s.add_argument("--max-records", type=int, default=1000, metavar="N",
+                   help="run records kept per problem (the oldest go first)")
     s.add_argument("--grace", type=float, default=10.0, help="seconds in-flight calls get on SIGTERM")
+    s.add_argument("--dask", metavar="ADDRESS|local:N", default=None,
+                   help="run stress tests on a Dask cluster: a scheduler address "
+                        "(tcp://host:8786) or local:N worker processes started here")
     s.set_defaults(func=cmd_serve)
 
     r = sub.add_parser("repair", help="repair the candidates of PROBLEM under CONSTRAINTS")
@@ -223,6 +283,9 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--pareto", action="store_true", help="also report the (cost, flips) front")
     r.add_argument("--server", metavar="HOST:PORT", help="repair through a running service")
     r.add_argument("--quiet", action="store_true", help="no progress on stderr")
+    from flipfix.service import connect
+
+    connect.add_arguments(r)
     r.set_defaults(func=cmd_repair)
 
     d = sub.add_parser("demo", help="start a server, load a library, repair a late event")
@@ -230,11 +293,18 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--time-limit", type=_positive_float, default=3.0)
     d.set_defaults(func=cmd_demo)
 
-    from flipfix.service import audit_cli  # the audit commands live in their own module
+    from flipfix.service import audit_cli, token_cli  # commands in their own modules
 
+    token_cli.register(sub)
     audit_cli.register(sub)
+    from flipfix.service import grow_cli  # flipfix grow, in its own module
+
+    grow_cli.register(sub)
+    from flipfix.service import timeline_cli  # events, records, adoption: their own module
+
+    timeline_cli.register(sub)
     for name, p in sub.choices.items():
-        if p.get_default("func") is None and name not in ("serve", "repair", "demo"):
+        if p.get_default("func") is None and name not in ("serve", "repair", "demo", "token"):
             p.set_defaults(func=audit_cli.run)
     return ap
 

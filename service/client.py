@@ -27,7 +27,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any, Callable, Iterable, Mapping, Sequence
 
-import grpc
 import numpy as np
 
 from flipfix.repair.documents import forms as documents
@@ -35,6 +34,7 @@ from flipfix.repair.model.candidates import CandidateSet
 from flipfix.repair.model.problem import Problem
 
 from flipfix.service import convert
+from flipfix.service.connect import Connection, open_channel
 from flipfix.service.generated import flipfix_pb2 as pb
 from flipfix.service.generated import flipfix_pb2_grpc as pb_grpc
 
@@ -94,10 +94,16 @@ class FlipfixClient:
     """Wraps the generated stub; ``target`` is ``HOST:PORT``."""
 
     def __init__(self, target: str, *, timeout: float | None = 60.0,
-                 max_message_bytes: int = 64 * 1024 * 1024):
+                 max_message_bytes: int = 64 * 1024 * 1024, ca: str | None = None,
+                 cert: str | None = None, key: str | None = None, token: str | None = None,
+                 connection: Connection | None = None):
+        """``ca``/``cert``/``key``: PEM files (TLS, mutual with cert and key); ``token``: the
+        bearer token sent with every call; or all of it as one ``connection``
+        (:mod:`flipfix.service.connect`)."""
         self.target = target
         self.timeout = timeout
-        self.channel = grpc.insecure_channel(target, options=[
+        conn = connection or Connection(target, ca=ca, cert=cert, key=key, token=token)
+        self.channel = open_channel(conn, options=[
             ("grpc.max_receive_message_length", max_message_bytes),
             ("grpc.max_send_message_length", max_message_bytes)])
         self.stub = pb_grpc.FlipfixStub(self.channel)

@@ -18,6 +18,7 @@ class Limits:
     max_variables: int | None = None
     max_candidates: int | None = None
     max_constraints: int | None = None
+    max_couplings: int | None = None
 
     @staticmethod
     def _check(count: int, limit: int | None, field: str, what: str) -> None:
@@ -25,7 +26,12 @@ class Limits:
             raise LimitError(field, f"{count} {what} exceed the limit of {limit}")
 
     def model(self, model: pb.ProblemModel, field: str) -> None:
-        """The model's variables: its labels when given, else the distinct labels of its terms."""
+        """The model's couplings (quadratic terms as sent, checked first: counting them costs
+        nothing) and variables (its labels when given, else the distinct labels of its terms)."""
+        if model.HasField("indexed"):
+            self._check(len(model.indexed.u), self.max_couplings, field + ".indexed.u",
+                        "couplings")
+        self._check(len(model.quadratic), self.max_couplings, field + ".quadratic", "couplings")
         if len(model.labels) or model.HasField("indexed"):
             n = len(model.labels)
         else:

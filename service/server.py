@@ -23,6 +23,7 @@ core, and converts back; errors become status codes in :mod:`flipfix.service.err
 
 from __future__ import annotations
 
+import ipaddress
 import logging
 import math
 import threading
@@ -40,13 +41,20 @@ from flipfix.repair.model.candidates import CandidateSet
 
 from flipfix.repair.errors import InputError
 
-from flipfix.service import audit_jobs
+from flipfix.service import audit_jobs, upload_jobs
+from flipfix.service.admission import AdmissionConfig, DrainInterceptor, HeavyGate
+from flipfix.service.auth import AuthInterceptor, TokenFile
+from flipfix.service.auth import current as current_caller
 from flipfix.service import convert
+from flipfix.service import grow_service
 from flipfix.service.errors import ConflictError, NotFoundError, TransientError, translate_errors
 from flipfix.service.generated import flipfix_pb2 as pb
 from flipfix.service.generated import flipfix_pb2_grpc as pb_grpc
 from flipfix.service.limits import Limits
 from flipfix.service.store import Store
+from flipfix.service.generated import timeline_pb2_grpc as tpb_grpc
+from flipfix.service.timeline import TIMELINE_SERVICE_NAME, Timeline, TimelineServicer
+from flipfix.service.tenancy import Quotas, TenantView
 from flipfix.service.worker import RepairPool
 
 __all__ = ["create_server", "RunningServer", "ServerConfig", "SERVICE_NAME"]
@@ -61,8 +69,8 @@ class ServerConfig:
     """Server settings; limits of None mean unlimited."""
 
     db_path: str = "flipfix.sqlite3"
-    workers: int = 1
-    queue_size: int = 4
+    workers: int = 2
+    queue_size: int = 64
     max_message_bytes: int = 64 * 1024 * 1024
     max_variables: int | None = 100_000
     max_candidates: int | None = 10_000
@@ -71,12 +79,49 @@ class ServerConfig:
     max_time_limit: float = 600.0
     default_audit_time_limit: float = 30.0  # whole stress-test run
     max_scenarios: int | None = 1_000
+    max_records: int | None = 1_000  # run records kept per problem (timeline); None: all
+    max_couplings: int | None = 2_000_000
+    #: heavy calls (uploads, reads of models, the conversion part of repairs and audits)
+    #: converted at once, and how many may wait (:mod:`flipfix.service.admission`)
+    heavy_calls: int = 2
+    heavy_queue: int = 64
+    memory_mb: float = 2048.0
+    memory_factor: float = 25.0
+    #: TLS: the server's certificate chain and key (PEM files); with ``tls_client_ca``
+    #: clients must present a certificate signed by it (mutual TLS)
+    tls_cert: str | None = None
+    tls_key: str | None = None
+    tls_client_ca: str | None = None
+    #: bind a non-loopback address without TLS and tokens (refused otherwise)
+    allow_insecure_public_bind: bool = False
+    #: JSON-lines token file (:mod:`flipfix.service.auth`); None: no authentication
+    token_file: str | None = None
+    #: serve gRPC reflection (to authenticated callers when tokens are on)
+    reflection: bool = True
+    #: per-tenant quotas (None: unlimited): stored problems, candidates, MiB
+    quota_problems: int | None = None
+    quota_candidates: int | None = None
+    quota_mb: float | None = None
     warm: bool = True
+    #: stress tests on a Dask cluster: a scheduler address, or ``local:N`` (N worker
+    #: processes started with the server); "" runs them in the repair workers
+    dask: str = ""
 
     @property
     def limits(self) -> Limits:
         return Limits(max_variables=self.max_variables, max_candidates=self.max_candidates,
-                      max_constraints=self.max_constraints)
+                      max_constraints=self.max_constraints, max_couplings=self.max_couplings)
+
+    @property
+    def quotas(self) -> Quotas:
+        return Quotas(problems=self.quota_problems, candidates=self.quota_candidates,
+                      bytes=None if self.quota_mb is None else int(self.quota_mb * 1024 * 1024))
+
+    @property
+    def admission(self) -> AdmissionConfig:
+        return AdmissionConfig(capacity=self.heavy_calls, queue=self.heavy_queue,
+                               memory_bytes=int(self.memory_mb * 1024 * 1024),
+                               memory_factor=self.memory_factor)
 
 
 #: Held back from a call's deadline for what is not search: the hand-over to a worker,
@@ -118,11 +163,26 @@ def deadline_budget(requested: float, remaining: float | None) -> float:
 
 
 class FlipfixServicer(pb_grpc.FlipfixServicer):
-    def __init__(self, store: Store, pool: RepairPool, config: ServerConfig):
-        self.store = store
+    def __init__(self, store: Store, pool: RepairPool, config: ServerConfig,
+                 timeline: Timeline | None = None, gate: HeavyGate | None = None):
+        self._store = store
         self.pool = pool
         self.config = config
         self.limits = config.limits
+        self.dask_address = ""  # set by create_server when stress tests go to Dask
+        self.timeline = timeline or Timeline(store, max_records=config.max_records)
+        self.gate = gate or HeavyGate(config.admission)
+
+    @property
+    def store(self) -> TenantView:
+        """The store as the calling tenant sees it (:mod:`flipfix.service.tenancy`)."""
+        return TenantView(self._store, current_caller().tenant)
+
+    def _heavy(self, request, context, what: str, problem: str = ""):
+        """A place in the heavy-call gate for this call (waits at most to its deadline);
+        ``problem``: the stored problem it reads (its model's bytes count too)."""
+        size = request.ByteSize() + (self.store.model_bytes(problem) if problem else 0)
+        return self.gate.admit(size, what, timeout=time_left(context))
 
     # ------------------------------------------------------------- problems
     @staticmethod
@@ -136,22 +196,38 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         self.limits.model(model, field)
         return convert.model_to_problem(model, field=field)
 
+    def _upload(self, request, context):
+        """(Problem, stored JSON) of an uploaded ``request.model``: a large one is converted
+        in a pool worker (:mod:`flipfix.service.upload_jobs`), a small one here."""
+        if request.ByteSize() < self.gate.config.light_bytes:
+            problem = self._problem(request.model, "model")
+            return problem, None
+        job = self._submit_call(upload_jobs.model_to_stored,
+                                (request.model.SerializeToString(), self.limits, "model"), {},
+                                context)
+        return self._wait(job, context, math.inf)
+
     @translate_errors
     def CreateProblem(self, request, context):
-        problem = self._problem(request.model, "model")
-        return self._info(self.store.create_problem(request.name, problem))
+        Store._check_name(request.name)  # before the conversion, not after
+        with self._heavy(request, context, "CreateProblem"):
+            problem, encoded = self._upload(request, context)
+            return self._info(self.store.create_problem(request.name, problem, encoded=encoded))
 
     @translate_errors
     def ReplaceProblem(self, request, context):
-        problem = self._problem(request.model, "model")
-        return self._info(self.store.replace_problem(
-            request.name, problem, expected_revision=request.expected_revision))
+        with self._heavy(request, context, "ReplaceProblem"):
+            problem, encoded = self._upload(request, context)
+            return self._info(self.store.replace_problem(
+                request.name, problem, expected_revision=request.expected_revision,
+                encoded=encoded))
 
     @translate_errors
     def GetProblem(self, request, context):
-        info, rev, problem = self.store.get_problem(request.name, request.revision)
-        return pb.GetProblemReply(info=self._info(info), revision=rev,
-                                  model=convert.problem_to_model(problem))
+        with self._heavy(request, context, "GetProblem", request.name):
+            info, rev, problem = self.store.get_problem(request.name, request.revision)
+            return pb.GetProblemReply(info=self._info(info), revision=rev,
+                                      model=convert.problem_to_model(problem))
 
     @translate_errors
     def ListProblems(self, request, context):
@@ -166,14 +242,15 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
     # ----------------------------------------------------------- candidates
     @translate_errors
     def AddCandidates(self, request, context):
-        _info, rev, problem = self.store.get_problem(request.problem)
-        if request.revision and request.revision != rev:
-            raise ConflictError("revision", f"problem {request.problem!r} is at revision {rev}, "
-                                            f"not {request.revision}")
-        self.limits.candidates(request.candidates, "candidates")
-        ids, X, provs = convert.batch_to_arrays(problem, request.candidates)
-        out = self.store.add_candidates(request.problem, rev, ids, X, provs)
-        return pb.AddCandidatesReply(ids=out, revision=rev)
+        with self._heavy(request, context, "AddCandidates", request.problem):
+            _info, rev, problem = self.store.get_problem(request.problem)
+            if request.revision and request.revision != rev:
+                raise ConflictError("revision", f"problem {request.problem!r} is at revision "
+                                                f"{rev}, not {request.revision}")
+            self.limits.candidates(request.candidates, "candidates")
+            ids, X, provs = convert.batch_to_arrays(problem, request.candidates)
+            out = self.store.add_candidates(request.problem, rev, ids, X, provs)
+            return pb.AddCandidatesReply(ids=out, revision=rev)
 
     @translate_errors
     def ListCandidates(self, request, context):
@@ -193,7 +270,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         which = request.WhichOneof("library")
         if which == "problem":
             rev, problem, cands = self.store.library(
-                request.problem, ids=list(request.candidate_ids),
+                request.problem, ids=self.timeline.candidate_ids(request),
                 all_revisions=request.all_revisions, max_candidates=self.config.max_candidates)
             return rev, problem, cands
         if which == "inline":
@@ -207,21 +284,25 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         raise InputError("library", "set problem (a stored problem) or inline")
 
     def _start(self, request, context):
-        """Validate, pick the budget, submit; returns (job, budget, audit_limit, revision).
+        """Validate, pick the budget, submit; returns (job, budget, audit_limit, revision,
+        the timeline's :class:`~flipfix.service.timeline.Used`).
 
         The constraints are read, checked and lowered once, here; the worker gets the
-        result (``compiled``, picklable) and does not compile again.
+        result (``compiled``, picklable) and does not compile again. The conversion holds a
+        place in the heavy-call gate; the search waits in the pool's queue.
         """
-        rev, problem, cands = self._library(request)
-        compiled = self._compiled(request.constraints, problem)
-        kwargs = convert.options_to_kwargs(request.options,
-                                           default_time_limit=self.config.default_time_limit)
-        budget = kwargs["time_limit"] = self._budget(kwargs["time_limit"], context)
-        job = self._watched(self.pool.submit(problem, cands, (), {**kwargs, "compiled": compiled}),
-                            context)
+        with self._heavy(request, context, "Repair", request.problem):
+            kwargs = convert.options_to_kwargs(request.options,
+                                               default_time_limit=self.config.default_time_limit)
+            rev, problem, cands = self._library(request)
+            used = self.timeline.used(request, problem, rev)  # published plan, events in force
+            compiled = self._compiled(used.constraints, problem)
+            budget = kwargs["time_limit"] = self._budget(kwargs["time_limit"], context)
+            job = self._watched(self.pool.submit(problem, cands, (),
+                                                 {**kwargs, "compiled": compiled}), context)
         audit_limit = (request.options.audit_limit if request.options.HasField("audit_limit")
                        else None)
-        return job, budget, audit_limit, rev
+        return job, budget, audit_limit, rev, used
 
     def _compiled(self, constraints, problem):
         self.limits.constraints(constraints, "constraints")
@@ -283,18 +364,20 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
 
     @translate_errors
     def Repair(self, request, context):
-        job, budget, audit_limit, rev = self._start(request, context)
+        job, budget, audit_limit, rev, used = self._start(request, context)
         res = self._wait(job, context, budget)
-        return convert.result_to_reply(res, audit_limit=audit_limit, time_limit=budget,
-                                       revision=rev)
+        return self.timeline.finish_repair(request, convert.result_to_reply(
+            res, audit_limit=audit_limit, time_limit=budget, revision=rev), used, context)
 
     @translate_errors
     def RepairStream(self, request, context):
-        job, budget, audit_limit, rev = self._start(request, context)
+        job, budget, audit_limit, rev, used = self._start(request, context)
         yield from self._stream(
             job, context, budget, lambda msg: pb.RepairEvent(progress=msg),
-            lambda res: pb.RepairEvent(result=convert.result_to_reply(
-                res, audit_limit=audit_limit, time_limit=budget, revision=rev)))
+            lambda res: pb.RepairEvent(result=self.timeline.finish_repair(
+                request, convert.result_to_reply(res, audit_limit=audit_limit,
+                                                 time_limit=budget, revision=rev),
+                used, context)))
 
     def _stream(self, job, context, budget: float, progress_event, result_event):
         """Progress messages as the worker reports (the core's phase names), then the result.
@@ -349,50 +432,72 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
 
     @translate_errors
     def ProfileRobustness(self, request, context):
-        rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
-                                                  request.all_revisions)
-        eps = convert.nonneg(request.epsilon, "epsilon")
-        job = self._submit_call(audit_jobs.robustness, (problem, cands),
-                                {"epsilon": eps, "spectrum": bool(request.spectrum)}, context)
+        t0 = time.perf_counter()
+        with self._heavy(request, context, "ProfileRobustness", request.problem):
+            eps = convert.nonneg(request.epsilon, "epsilon")
+            rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
+                                                      request.all_revisions)
+            job = self._submit_call(audit_jobs.robustness, (problem, cands),
+                                    {"epsilon": eps, "spectrum": bool(request.spectrum)}, context)
         rep = self._wait(job, context, math.inf)  # vectorised, not interruptible
-        return convert.robustness_to_reply(rep, revision=rev)
+        reply = convert.robustness_to_reply(rep, revision=rev)
+        self.timeline.record_audit("ProfileRobustness", request, reply, problem=request.problem,
+                                   revision=rev, started=t0, context=context)
+        return reply
 
     def _start_stress(self, request, context, *, field: str = ""):
-        rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
-                                                  request.all_revisions, field=field)
-        family, kwargs = convert.stress_to_kwargs(
-            request, problem, default_time_limit=self.config.default_audit_time_limit,
-            max_scenarios=self.config.max_scenarios, field=field)
+        with self._heavy(request, context, "StressTest", request.problem):
+            rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
+                                                      request.all_revisions, field=field)
+            family, kwargs = convert.stress_to_kwargs(
+                request, problem, default_time_limit=self.config.default_audit_time_limit,
+                max_scenarios=self.config.max_scenarios, field=field)
         kwargs["time_limit"] = self._budget(kwargs["time_limit"], context)
+        if self.dask_address:
+            kwargs["dask"] = self.dask_address
         return rev, problem, cands, family, kwargs
 
     @translate_errors
     def StressTest(self, request, context):
+        t0 = time.perf_counter()
         rev, problem, cands, family, kwargs = self._start_stress(request, context)
         job = self._submit_call(audit_jobs.stress, (problem, cands, family), kwargs, context)
         rep = self._wait(job, context, kwargs["time_limit"])
-        return convert.stress_to_reply(rep, matrices=request.matrices,
-                                       time_limit=kwargs["time_limit"], revision=rev)
+        reply = convert.stress_to_reply(rep, matrices=request.matrices,
+                                        time_limit=kwargs["time_limit"], revision=rev)
+        self.timeline.record_audit("StressTest", request, reply, problem=request.problem,
+                                   revision=rev, started=t0, seed=request.seed,
+                                   status=reply.stopped, context=context)
+        return reply
 
     @translate_errors
     def StressTestStream(self, request, context):
+        t0 = time.perf_counter()
         rev, problem, cands, family, kwargs = self._start_stress(request, context)
         job = self._submit_call(audit_jobs.stress, (problem, cands, family), kwargs, context)
         budget = kwargs["time_limit"]
-        yield from self._stream(
-            job, context, budget, lambda msg: pb.StressEvent(progress=msg),
-            lambda rep: pb.StressEvent(result=convert.stress_to_reply(
-                rep, matrices=request.matrices, time_limit=budget, revision=rev)))
+
+        def result(rep):
+            reply = convert.stress_to_reply(rep, matrices=request.matrices, time_limit=budget,
+                                            revision=rev)
+            self.timeline.record_audit("StressTest", request, reply, problem=request.problem,
+                                       revision=rev, started=t0, seed=request.seed,
+                                       status=reply.stopped, context=context)
+            return pb.StressEvent(result=reply)
+
+        yield from self._stream(job, context, budget, lambda msg: pb.StressEvent(progress=msg),
+                                result)
 
     @translate_errors
     def ParetoFront(self, request, context):
         from flipfix.repair.audit.pareto import cheapest_within, fewest_flips_within
 
-        rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
-                                                  request.all_revisions)
-        compiled = self._compiled(request.constraints, problem)
-        kwargs = convert.pareto_to_kwargs(request,
-                                          default_time_limit=self.config.default_time_limit)
+        with self._heavy(request, context, "ParetoFront", request.problem):
+            rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
+                                                      request.all_revisions)
+            compiled = self._compiled(request.constraints, problem)
+            kwargs = convert.pareto_to_kwargs(request,
+                                              default_time_limit=self.config.default_time_limit)
         kwargs["time_limit"] = budget = self._budget(kwargs["time_limit"], context)
         t0 = time.perf_counter()
         job = self._submit_call(audit_jobs.pareto, (problem, cands, compiled), kwargs, context)
@@ -402,12 +507,16 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
             cheapest = cheapest_within(front, int(request.cheapest_within_flips))
         if request.HasField("fewest_flips_within_percent"):
             fewest = fewest_flips_within(front, request.fewest_flips_within_percent)
-        return convert.pareto_to_reply(front, cheapest=cheapest, fewest=fewest,
-                                       seconds=time.perf_counter() - t0, time_limit=budget,
-                                       revision=rev)
+        reply = convert.pareto_to_reply(front, cheapest=cheapest, fewest=fewest,
+                                        seconds=time.perf_counter() - t0, time_limit=budget,
+                                        revision=rev)
+        self.timeline.record_audit("ParetoFront", request, reply, problem=request.problem,
+                                   revision=rev, started=t0, seed=request.seed, context=context)
+        return reply
 
     @translate_errors
     def CurateLibrary(self, request, context):
+        t0 = time.perf_counter()
         rev, problem, cands, family, kwargs = self._start_stress(request.stress, context,
                                                                  field="stress.")
         K = len(cands.ids)
@@ -443,38 +552,63 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
                                                revision=rev)
                 kept = True
                 message = f"kept {len(cur.kept_ids)} candidates, removed {len(removed)}"
-        return convert.curation_to_reply(stress, cur, kept=kept, removed=removed,
-                                         message=message, revision=rev)
+        reply = convert.curation_to_reply(stress, cur, kept=kept, removed=removed,
+                                          message=message, revision=rev)
+        self.timeline.record_audit("CurateLibrary", request, reply,
+                                   problem=request.stress.problem, revision=rev, started=t0,
+                                   seed=request.stress.seed, status=stress.stopped,
+                                   context=context)
+        return reply
 
 
 class RunningServer:
     """A started server; ``port`` is the bound port (bind port 0 in tests)."""
 
     def __init__(self, server: grpc.Server, port: int, servicer: FlipfixServicer,
-                 health_servicer: health.HealthServicer, pool: RepairPool, store: Store):
+                 health_servicer: health.HealthServicer, pool: RepairPool, store: Store,
+                 drain: DrainInterceptor):
         self.server = server
         self.port = port
         self.servicer = servicer
         self.health = health_servicer
         self.pool = pool
         self.store = store
+        self.drain = drain
+        self.draining = drain.draining
         self._stopped = threading.Event()
         self._lock = threading.Lock()
+        self.cluster = None  # the Dask cluster (client) of stress tests, when configured
 
     @property
     def address(self) -> str:
         return f"127.0.0.1:{self.port}"
 
+    tokens: TokenFile | None = None
+
+    def reload_tokens(self) -> bool:
+        """Read the token file again (SIGHUP); False when it did not read (old tokens stay)."""
+        return self.tokens.reload() if self.tokens is not None else False
+
+    def begin_shutdown(self) -> None:
+        """From now on new calls (health checks aside) get UNAVAILABLE at once; health
+        answers NOT_SERVING. Safe to call from a signal handler (sets flags only)."""
+        self.draining.set()
+
     def shutdown(self, grace: float = 10.0) -> None:
-        """Health NOT_SERVING, refuse new calls, give in-flight ones ``grace`` s, then cancel."""
+        """Health NOT_SERVING, refuse new calls (UNAVAILABLE), give in-flight ones ``grace``
+        s (woken as soon as the last ends), then cancel them: their solvers stop, the
+        workers exit, the store closes."""
+        self.draining.set()
         with self._lock:
             if self._stopped.is_set():
                 return
             self.health.enter_graceful_shutdown()
-            stopped = self.server.stop(grace)
-            stopped.wait()
-            self.pool.shutdown(wait=True)
+            idle = self.drain.wait_idle(grace)
+            self.server.stop(0).wait()  # cancels what is left; their jobs are cancelled
+            self.pool.shutdown(wait=True, terminate=not idle)
             self.store.close()
+            if self.cluster is not None:
+                self.cluster.close()
             self._stopped.set()
 
     stop = shutdown
@@ -489,32 +623,96 @@ class RunningServer:
         self.shutdown(grace=1.0)
 
 
+def is_loopback(address: str) -> bool:
+    """Whether ``HOST:PORT`` binds only the loopback interface."""
+    host = address.rsplit(":", 1)[0].strip("[]") if ":" in address else address
+    if host == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False
+
+
+def _credentials(config: ServerConfig):
+    """gRPC server credentials for the TLS files of ``config`` (None: no TLS)."""
+    if not (config.tls_cert or config.tls_key or config.tls_client_ca):
+        return None
+    if not (config.tls_cert and config.tls_key):
+        raise InputError("--tls-cert" if not config.tls_cert else "--tls-key",
+                         "TLS needs both --tls-cert and --tls-key")
+
+    def read(path: str, option: str) -> bytes:
+        try:
+            return Path(path).read_bytes()
+        except OSError as err:
+            raise InputError(option, f"cannot read {path}: {err.strerror or err}") from None
+
+    ca = read(config.tls_client_ca, "--tls-client-ca") if config.tls_client_ca else None
+    return grpc.ssl_server_credentials(
+        [(read(config.tls_key, "--tls-key"), read(config.tls_cert, "--tls-cert"))],
+        root_certificates=ca, require_client_auth=ca is not None)
+
+
+def _check_bind(address: str, config: ServerConfig) -> None:
+    """Refuse a non-loopback address without TLS and tokens unless explicitly allowed."""
+    if is_loopback(address) or config.allow_insecure_public_bind:
+        return
+    missing = [what for what, ok in (("TLS (--tls-cert/--tls-key)", config.tls_cert),
+                                     ("tokens (--token-file)", config.token_file)) if not ok]
+    if missing:
+        raise InputError("--host", f"refusing to serve {address} beyond this machine without "
+                                   f"{' and '.join(missing)}; give them, or "
+                                   "--allow-insecure-public-bind to accept the risk")
+
+
 def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = None,
                   **overrides) -> RunningServer:
-    """Build, bind and start the server; returns a :class:`RunningServer` (``.port``)."""
+    """Build, bind and start the server; returns a :class:`RunningServer` (``.port``).
+
+    A bad TLS or bind setting is an InputError naming the option (nothing is started).
+    """
     config = config or ServerConfig()
     for k, v in overrides.items():
         if not hasattr(config, k):
             raise TypeError(f"unknown server option {k!r}")
         setattr(config, k, v)
-    store = Store(config.db_path)
+    _check_bind(address, config)
+    credentials = _credentials(config)
+    tokens = TokenFile(config.token_file) if config.token_file else None
+    store = Store(config.db_path, quotas=config.quotas)
+    try:
+        timeline = Timeline(store, max_records=config.max_records)
+    except BaseException:
+        store.close()
+        raise
     pool = RepairPool(workers=config.workers, queue_size=config.queue_size, warm=config.warm)
+    gate = HeavyGate(config.admission)
+    drain = DrainInterceptor(threading.Event())
     options = [("grpc.max_receive_message_length", config.max_message_bytes),
                ("grpc.max_send_message_length", config.max_message_bytes),
                ("grpc.so_reuseport", 0)]
-    # threads: one per repair slot (they wait on the pool) plus room for quick calls
-    server = grpc.server(futures.ThreadPoolExecutor(max_workers=pool.slots + 8,
+    # threads: one per repair slot (they wait on the pool), one per heavy call running or
+    # waiting at the gate, plus room for quick calls and health checks
+    threads = pool.slots + config.heavy_calls + config.heavy_queue + 8
+    server = grpc.server(futures.ThreadPoolExecutor(max_workers=threads,
                                                     thread_name_prefix="flipfix-rpc"),
-                         options=options)
-    servicer = FlipfixServicer(store, pool, config)
+                         options=options,
+                         interceptors=[drain] + ([AuthInterceptor(tokens)] if tokens else []))
+    servicer = FlipfixServicer(store, pool, config, timeline, gate)
     pb_grpc.add_FlipfixServicer_to_server(servicer, server)
+    grow_name = grow_service.register(servicer, server)
+    tpb_grpc.add_TimelineServicer_to_server(TimelineServicer(timeline), server)
     health_servicer = health.HealthServicer()
     health_pb2_grpc.add_HealthServicer_to_server(health_servicer, server)
-    names = (SERVICE_NAME, health_pb2.DESCRIPTOR.services_by_name["Health"].full_name,
+    names = (SERVICE_NAME, grow_name, TIMELINE_SERVICE_NAME,
+             health_pb2.DESCRIPTOR.services_by_name["Health"].full_name,
              reflection.SERVICE_NAME)
-    reflection.enable_server_reflection(names, server)
+    if config.reflection:
+        reflection.enable_server_reflection(names, server)
     try:
-        port = server.add_insecure_port(address)
+        port = (server.add_secure_port(address, credentials) if credentials is not None
+                else server.add_insecure_port(address))
     except RuntimeError as err:
         pool.shutdown(wait=False)
         store.close()
@@ -523,8 +721,23 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
         pool.shutdown(wait=False)
         store.close()
         raise OSError(f"cannot bind {address}")
+    cluster = None
+    if config.dask:
+        from flipfix.service.cluster import connect
+
+        try:
+            cluster = connect(config.dask, field="dask")
+        except Exception:
+            server.stop(0)
+            pool.shutdown(wait=False)
+            store.close()
+            raise
+        servicer.dask_address = cluster.address
     server.start()
-    for name in ("", SERVICE_NAME):
+    for name in ("", SERVICE_NAME, TIMELINE_SERVICE_NAME):
         health_servicer.set(name, health_pb2.HealthCheckResponse.SERVING)
-    log.info("flipfix listening on port %d (db %s)", port, Path(config.db_path))
-    return RunningServer(server, port, servicer, health_servicer, pool, store)
+    log.info("flipfix listening on port %d (db %s)", port, store._where)
+    srv = RunningServer(server, port, servicer, health_servicer, pool, store, drain)
+    srv.tokens = tokens
+    srv.cluster = cluster
+    return srv

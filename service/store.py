@@ -1,12 +1,16 @@
-"""Durable store of problems (with revisions) and candidate libraries: SQLite.
+"""Durable store of problems (with revisions) and candidate libraries.
 
-* WAL journal, ``synchronous=FULL``: a write is on disk before it is acknowledged.
-* Every public write is one transaction (``BEGIN IMMEDIATE`` ... ``COMMIT``) on the one
-  write connection: a request that fails validation half-way stores nothing.
-* Every public read is one read-only transaction (``BEGIN`` ... ``ROLLBACK``: one
-  snapshot, no write lock) on a ``query_only`` connection of its own from a small pool,
-  so reads run beside each other and beside a write, as WAL allows (an in-memory
-  database is one connection: there reads share the write connection).
+The rows live in an SQLite file (the default) or a PostgreSQL database shared by
+several replicas (:mod:`flipfix.service.backends`, chosen by the ``--db`` value):
+
+* a write is durable before it is acknowledged (SQLite: WAL, ``synchronous=FULL``;
+  PostgreSQL: its commit);
+* every public write is one transaction, and writes run one at a time (SQLite's
+  ``BEGIN IMMEDIATE``; PostgreSQL: one advisory lock across replicas): a request that
+  fails validation half-way stores nothing, and a revision check cannot interleave with
+  another write;
+* every public read is one read-only snapshot without the write lock, so reads run
+  beside each other and beside a write.
 * ``schema_version`` holds the schema number; opening a newer database fails,
   an older one is migrated in one transaction (see :data:`SCHEMA_HISTORY`).
 
@@ -21,10 +25,9 @@ from __future__ import annotations
 
 import dataclasses
 import json
-import queue
-import sqlite3
-import threading
-from contextlib import contextmanager
+import re
+import unicodedata
+from contextlib import nullcontext
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
@@ -37,17 +40,21 @@ from flipfix.repair.errors import InputError
 from flipfix.repair.model.problem import Decision, Problem
 
 from flipfix.service import packing
+from flipfix.service.backends import open_backend
 from flipfix.service.errors import AlreadyExistsError, ConflictError, NotFoundError
 
 __all__ = ["Store", "ProblemRecord", "CandidateRecord", "SCHEMA_VERSION", "SCHEMA_HISTORY"]
 
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 
 #: What each schema version changed (a database of an older version is migrated on open).
 SCHEMA_HISTORY = {
     1: "candidates.bits TEXT: one '0'/'1' character per variable",
     2: "candidates.bits BLOB: packed bits, ceil(n / 8) bytes per candidate (numpy.packbits "
        "order, most significant bit first; the unused low bits of the last byte 0)",
+    3: "problems.tenant TEXT (whose problem; '' for schema-2 data and servers without "
+       "tokens) and problems.bytes INTEGER (stored model and candidate bytes, for quotas); "
+       "problems.name is the tenant-qualified key (see Store._key)",
 }
 
 _SCHEMA = """
@@ -57,7 +64,9 @@ CREATE TABLE IF NOT EXISTS problems (
     revision INTEGER NOT NULL,
     next_candidate INTEGER NOT NULL DEFAULT 1,
     created_at TEXT NOT NULL,
-    updated_at TEXT NOT NULL
+    updated_at TEXT NOT NULL,
+    tenant TEXT NOT NULL DEFAULT '',
+    bytes INTEGER NOT NULL DEFAULT 0
 );
 CREATE TABLE IF NOT EXISTS revisions (
     problem TEXT NOT NULL REFERENCES problems(name) ON DELETE CASCADE,
@@ -86,6 +95,11 @@ _CANDIDATES_DDL = (
     "CREATE INDEX IF NOT EXISTS candidates_by_problem ON candidates(problem, seq)",
 )
 _SCHEMA += "".join(stmt + ";\n" for stmt in _CANDIDATES_DDL)
+#: schema 3: the tenant's problems by name (also run by the schema-2 migration)
+_TENANT_INDEX = "CREATE INDEX IF NOT EXISTS problems_by_tenant ON problems(tenant, name)"
+#: between a tenant and a problem name in the stored key (names and tenants cannot
+#: contain control characters)
+TENANT_SEPARATOR = "\x1f"
 _CANDIDATE_COLUMNS = "seq, problem, id, revision, bits, source, energy, tags, created_at"
 
 
@@ -155,40 +169,56 @@ def decode_model(text: str) -> Problem:
 
 
 class Store:
-    """Problems and candidates in one SQLite file (``":memory:"`` for tests only).
+    """Problems and candidates in an SQLite file (``":memory:"`` for tests only) or a
+    PostgreSQL database (``postgresql://user@host:port/db``).
 
-    Thread-safe: writes go through one connection under one lock; reads take a pooled
-    read-only connection each. Each public method is one transaction.
+    Thread-safe; each public method is one transaction.
     """
 
-    def __init__(self, path: str | Path):
+    def __init__(self, path: str | Path, *, quotas=None):
+        """``quotas``: a :class:`flipfix.service.tenancy.Quotas` checked on every write
+        (None: none)."""
         self.path = str(path)
-        self._memory = self.path == ":memory:"
-        if not self._memory:
-            Path(self.path).parent.mkdir(parents=True, exist_ok=True)
-        self._lock = threading.Lock()
-        self._idle_readers: queue.SimpleQueue[sqlite3.Connection] = queue.SimpleQueue()
-        self._readers: list[sqlite3.Connection] = []  # every read connection opened
-        self._readers_lock = threading.Lock()  # not the write lock: a write may be open
-        self._db = self._connect()
-        self._db.execute("PRAGMA journal_mode=WAL")
-        self._db.execute("PRAGMA synchronous=FULL")
-        self._db.execute("PRAGMA foreign_keys=ON")
-        # executescript commits by itself; every statement is CREATE ... IF NOT EXISTS
-        # (on an older database the existing tables are kept and migrated below)
-        self._db.executescript(_SCHEMA)
-        with self._tx() as db:
-            row = db.execute("SELECT version FROM schema_version").fetchone()
-            if row is None:
-                db.execute("INSERT INTO schema_version VALUES (?)", (SCHEMA_VERSION,))
-            elif row[0] > SCHEMA_VERSION:
-                raise RuntimeError(f"{self.path}: schema version {row[0]} is newer than this "
-                                   f"flipfix ({SCHEMA_VERSION})")
-            elif row[0] < SCHEMA_VERSION:
-                self._migrate(db, row[0])
+        self.quotas = quotas
+        self._backend = open_backend(path)
+        self._backend.create_schema(_SCHEMA)
+        try:
+            with self._tx() as db:
+                row = db.execute("SELECT version FROM schema_version").fetchone()
+                if row is None:
+                    db.execute("INSERT INTO schema_version VALUES (?)", (SCHEMA_VERSION,))
+                elif row[0] > SCHEMA_VERSION:
+                    raise RuntimeError(f"{self._where}: schema version {row[0]} is newer than "
+                                       f"this flipfix ({SCHEMA_VERSION})")
+                elif row[0] < SCHEMA_VERSION:
+                    self._migrate(db, row[0])
+                db.execute(_TENANT_INDEX)
+        except BaseException:
+            self._backend.close()
+            raise
+
+    @property
+    def _where(self) -> str:
+        """The database, for messages (a URL without its password)."""
+        return re.sub(r"//([^:/@]+):[^@/]*@", r"//\1:***@", self.path)
+
+    def ddl(self, stmt: str) -> list[str]:
+        """One DDL statement written for SQLite, in this store's dialect (for modules that
+        keep tables beside the store's, :mod:`flipfix.service.history`)."""
+        return self._backend.ddl(stmt)
+
+    @property
+    def integrity_errors(self) -> tuple:
+        """The backend's exception types for a broken key or reference."""
+        return self._backend.integrity_errors
+
+    @property
+    def backend(self) -> str:
+        """``"sqlite"`` or ``"postgresql"``."""
+        return self._backend.name
 
     @staticmethod
-    def _migrate(db: sqlite3.Connection, version: int) -> None:
+    def _migrate(db, version: int) -> None:
         """Bring a database of ``version`` to :data:`SCHEMA_VERSION` (inside the open
         transaction: a failure leaves the old database as it was)."""
         if version == 1:  # bits TEXT '0101...' -> packed BLOB; the table is rebuilt
@@ -206,75 +236,38 @@ class Store:
                     [(r[0], r[1], r[2], r[3], _text_to_blob(r[4])) + tuple(r[5:]) for r in rows])
             db.execute("DROP TABLE candidates_v1")
             version = 2
+        if version == 2:  # tenants and stored bytes; schema-2 problems belong to tenant ''
+            db.execute("ALTER TABLE problems ADD COLUMN tenant TEXT NOT NULL DEFAULT ''")
+            db.execute("ALTER TABLE problems ADD COLUMN bytes INTEGER NOT NULL DEFAULT 0")
+            db.execute("UPDATE problems SET bytes = "
+                       "(SELECT COALESCE(SUM(LENGTH(model)), 0) FROM revisions r "
+                       " WHERE r.problem = problems.name) + "
+                       "(SELECT COALESCE(SUM(LENGTH(bits)), 0) FROM candidates c "
+                       " WHERE c.problem = problems.name)")
+            version = 3
         db.execute("UPDATE schema_version SET version = ?", (version,))
 
     # ---------------------------------------------------------------- plumbing
-    class _Tx:
-        def __init__(self, store: "Store"):
-            self.store = store
+    def _tx(self):
+        """One write transaction (all or nothing), see :mod:`flipfix.service.backends`."""
+        return self._backend.tx()
 
-        def __enter__(self) -> sqlite3.Connection:
-            self.store._lock.acquire()
-            try:
-                self.store._db.execute("BEGIN IMMEDIATE")
-            except BaseException:
-                self.store._lock.release()
-                raise
-            return self.store._db
-
-        def __exit__(self, exc_type, exc, tb):
-            try:
-                self.store._db.execute("COMMIT" if exc_type is None else "ROLLBACK")
-            finally:
-                self.store._lock.release()
-            return False
-
-    def _tx(self) -> "Store._Tx":
-        return Store._Tx(self)
-
-    def _connect(self) -> sqlite3.Connection:
-        return sqlite3.connect(self.path, isolation_level=None, check_same_thread=False,
-                               timeout=10.0)
-
-    @contextmanager
     def _read(self):
-        """A read-only transaction on an idle read connection (a new one if none is idle)."""
-        if self._memory:
-            with self._tx() as db:
-                yield db
-            return
-        try:
-            db = self._idle_readers.get_nowait()
-        except queue.Empty:
-            db = self._connect()
-            db.execute("PRAGMA query_only=ON")
-            with self._readers_lock:
-                self._readers.append(db)
-        try:
-            db.execute("BEGIN")  # deferred: a snapshot from the first read, no write lock
-            try:
-                yield db
-            finally:
-                if db.in_transaction:  # nothing was written: ending the snapshot is all
-                    db.execute("ROLLBACK")
-        finally:
-            self._idle_readers.put(db)
+        """One read-only snapshot."""
+        return self._backend.read()
 
     def close(self) -> None:
-        with self._lock, self._readers_lock:
-            for db in self._readers:
-                db.close()
-            self._db.close()
+        self._backend.close()
 
     @property
     def journal_mode(self) -> str:
-        with self._lock:
-            return self._db.execute("PRAGMA journal_mode").fetchone()[0]
+        """SQLite's journal mode (``wal``)."""
+        return self._backend.pragma("journal_mode")
 
     @property
     def synchronous(self) -> int:
-        with self._lock:
-            return int(self._db.execute("PRAGMA synchronous").fetchone()[0])
+        """SQLite's synchronous level (2: FULL)."""
+        return int(self._backend.pragma("synchronous"))
 
     @property
     def schema_version(self) -> int:
@@ -282,15 +275,66 @@ class Store:
             return int(db.execute("SELECT version FROM schema_version").fetchone()[0])
 
     @staticmethod
-    def _info(db: sqlite3.Connection, name: str) -> ProblemRecord:
+    def _key(tenant: str, name: str) -> str:
+        """The stored key of ``tenant``'s problem ``name`` (the name itself for tenant '')."""
+        return f"{tenant}{TENANT_SEPARATOR}{name}" if tenant else name
+
+    @staticmethod
+    def _info(db, key: str, name: str, field: str = "name") -> ProblemRecord:
         row = db.execute(
-            "SELECT p.name, p.revision, r.num_variables, r.num_interactions, "
+            "SELECT p.revision, r.num_variables, r.num_interactions, "
             "(SELECT COUNT(*) FROM candidates c WHERE c.problem = p.name), p.created_at, "
             "p.updated_at FROM problems p JOIN revisions r ON r.problem = p.name AND "
-            "r.revision = p.revision WHERE p.name = ?", (name,)).fetchone()
+            "r.revision = p.revision WHERE p.name = ?", (key,)).fetchone()
         if row is None:
-            raise NotFoundError("name", f"no problem named {name!r}")
-        return ProblemRecord(*row)
+            raise NotFoundError(field, f"no problem named {name!r}")
+        return ProblemRecord(name, *row)
+
+    @staticmethod
+    def _exists(db, key: str, name: str, field: str) -> None:
+        if not db.execute("SELECT 1 FROM problems WHERE name = ?", (key,)).fetchone():
+            raise NotFoundError(field, f"no problem named {name!r}")
+
+    def model_bytes(self, name: str, *, tenant: str = "") -> int:
+        """Bytes of the problem's stored current model (0 when there is no such problem):
+        what reading it costs, known before it is read."""
+        with self._read() as db:
+            row = db.execute("SELECT LENGTH(r.model) FROM problems p JOIN revisions r ON "
+                             "r.problem = p.name AND r.revision = p.revision WHERE p.name = ?",
+                             (self._key(tenant, name),)).fetchone()
+        return int(row[0]) if row else 0
+
+    def usage(self, *, tenant: str = "") -> dict:
+        """The tenant's stored problems, candidates and bytes."""
+        with self._read() as db:
+            return self._usage(db, tenant)
+
+    @staticmethod
+    def _usage(db, tenant: str) -> dict:
+        problems, size = db.execute("SELECT COUNT(*), COALESCE(SUM(bytes), 0) FROM problems "
+                                    "WHERE tenant = ?", (tenant,)).fetchone()
+        cands = db.execute("SELECT COUNT(*) FROM candidates WHERE problem IN "
+                           "(SELECT name FROM problems WHERE tenant = ?)", (tenant,)).fetchone()[0]
+        return {"problems": int(problems), "candidates": int(cands), "bytes": int(size)}
+
+    def _charge(self, db, tenant: str, *, problems: int = 0,
+                candidates: int = 0, size: int = 0) -> None:
+        """Refuse (QuotaError, inside the write transaction: nothing is stored) a write that
+        would take ``tenant`` over a quota."""
+        if self.quotas is None:
+            return
+        self.quotas.check(tenant, self._usage(db, tenant), problems=problems,
+                          candidates=candidates, size=size)
+
+    @staticmethod
+    def current_revision(db, name: str, field: str = "problem") -> int:
+        """The current revision of problem ``name`` inside an open transaction ``db``: the
+        one lookup of a problem by its key for modules that keep tables beside the store's
+        (:mod:`flipfix.service.history`); NotFoundError naming ``field`` when there is none."""
+        row = db.execute("SELECT revision FROM problems WHERE name = ?", (name,)).fetchone()
+        if row is None:
+            raise NotFoundError(field, f"no problem named {name!r}")
+        return int(row[0])
 
     @staticmethod
     def _check_name(name: str) -> None:
@@ -298,90 +342,106 @@ class Store:
             raise InputError("name", "must be a non-empty string")
         if len(name) > 200:
             raise InputError("name", "must be at most 200 characters")
+        bad = next((ch for ch in name if unicodedata.category(ch) in ("Cc", "Cf", "Cs")), None)
+        if bad is not None:
+            raise InputError("name", f"must not contain control characters (found {bad!r})")
 
     # ---------------------------------------------------------------- problems
-    def create_problem(self, name: str, problem: Problem) -> ProblemRecord:
+    def create_problem(self, name: str, problem: Problem, *, tenant: str = "",
+                       encoded: str | None = None) -> ProblemRecord:
+        """Store a new problem; ``encoded``: its :func:`encode_model` text when already made."""
         self._check_name(name)
-        model = encode_model(problem)
+        model = encoded if encoded is not None else encode_model(problem)
+        key = self._key(tenant, name)
         with self._tx() as db:
-            if db.execute("SELECT 1 FROM problems WHERE name = ?", (name,)).fetchone():
+            if db.execute("SELECT 1 FROM problems WHERE name = ?", (key,)).fetchone():
                 raise AlreadyExistsError("name", f"a problem named {name!r} exists")
+            self._charge(db, tenant, problems=1, size=len(model))
             now = _now()
-            db.execute("INSERT INTO problems (name, revision, created_at, updated_at) "
-                       "VALUES (?, 1, ?, ?)", (name, now, now))
+            db.execute("INSERT INTO problems (name, revision, created_at, updated_at, tenant, "
+                       "bytes) VALUES (?, 1, ?, ?, ?, ?)", (key, now, now, tenant, len(model)))
             db.execute("INSERT INTO revisions VALUES (?, 1, ?, ?, ?, ?)",
-                       (name, model, problem.n, problem.num_interactions, now))
-            return self._info(db, name)
+                       (key, model, problem.n, problem.num_interactions, now))
+            return self._info(db, key, name)
 
-    def replace_problem(self, name: str, problem: Problem, *, expected_revision: int = 0
-                        ) -> ProblemRecord:
-        model = encode_model(problem)
+    def replace_problem(self, name: str, problem: Problem, *, expected_revision: int = 0,
+                        tenant: str = "", encoded: str | None = None) -> ProblemRecord:
+        model = encoded if encoded is not None else encode_model(problem)
+        key = self._key(tenant, name)
         with self._tx() as db:
-            row = db.execute("SELECT revision FROM problems WHERE name = ?", (name,)).fetchone()
+            row = db.execute("SELECT revision FROM problems WHERE name = ?", (key,)).fetchone()
             if row is None:
                 raise NotFoundError("name", f"no problem named {name!r}")
             if expected_revision and row[0] != expected_revision:
                 raise ConflictError("expected_revision",
                                     f"problem {name!r} is at revision {row[0]}, not {expected_revision}")
+            self._charge(db, tenant, size=len(model))
             rev, now = row[0] + 1, _now()
-            db.execute("UPDATE problems SET revision = ?, updated_at = ? WHERE name = ?",
-                       (rev, now, name))
+            db.execute("UPDATE problems SET revision = ?, updated_at = ?, bytes = bytes + ? "
+                       "WHERE name = ?", (rev, now, len(model), key))
             db.execute("INSERT INTO revisions VALUES (?, ?, ?, ?, ?, ?)",
-                       (name, rev, model, problem.n, problem.num_interactions, now))
-            return self._info(db, name)
+                       (key, rev, model, problem.n, problem.num_interactions, now))
+            return self._info(db, key, name)
 
-    def get_problem(self, name: str, revision: int = 0) -> tuple[ProblemRecord, int, Problem]:
+    def get_problem(self, name: str, revision: int = 0, *, tenant: str = ""
+                    ) -> tuple[ProblemRecord, int, Problem]:
         """(info, revision of the model, model); revision 0 is the current one."""
+        key = self._key(tenant, name)
         with self._read() as db:
-            info = self._info(db, name)
+            info = self._info(db, key, name)
             rev = revision or info.revision
             row = db.execute("SELECT model FROM revisions WHERE problem = ? AND revision = ?",
-                             (name, rev)).fetchone()
+                             (key, rev)).fetchone()
             if row is None:
                 raise NotFoundError("revision", f"problem {name!r} has no revision {rev}")
         return info, rev, decode_model(row[0])
 
-    def list_problems(self, *, page_size: int = 100, page_token: str = ""
+    def list_problems(self, *, page_size: int = 100, page_token: str = "", tenant: str = ""
                       ) -> tuple[list[ProblemRecord], str]:
+        """The tenant's problems by name, a page at a time (the token: the last name)."""
         page_size = max(1, min(int(page_size or 100), 1000))
         with self._read() as db:
-            names = [r[0] for r in db.execute(
-                "SELECT name FROM problems WHERE name > ? ORDER BY name LIMIT ?",
-                (page_token, page_size + 1))]
-            more = len(names) > page_size
-            names = names[:page_size]
-            infos = [self._info(db, n) for n in names]
-        return infos, (names[-1] if more else "")
+            keys = [r[0] for r in db.execute(
+                "SELECT name FROM problems WHERE tenant = ? AND name > ? ORDER BY name LIMIT ?",
+                (tenant, self._key(tenant, page_token) if page_token else "", page_size + 1))]
+            more = len(keys) > page_size
+            keys = keys[:page_size]
+            cut = len(self._key(tenant, ""))
+            infos = [self._info(db, k, k[cut:]) for k in keys]
+        return infos, (infos[-1].name if more else "")
 
-    def delete_problem(self, name: str) -> int:
+    def delete_problem(self, name: str, *, tenant: str = "") -> int:
         """Delete a problem, its revisions and candidates; returns the candidates deleted."""
+        key = self._key(tenant, name)
         with self._tx() as db:
-            if not db.execute("SELECT 1 FROM problems WHERE name = ?", (name,)).fetchone():
-                raise NotFoundError("name", f"no problem named {name!r}")
-            n = db.execute("SELECT COUNT(*) FROM candidates WHERE problem = ?", (name,)).fetchone()[0]
-            db.execute("DELETE FROM candidates WHERE problem = ?", (name,))
-            db.execute("DELETE FROM revisions WHERE problem = ?", (name,))
-            db.execute("DELETE FROM problems WHERE name = ?", (name,))
+            self._exists(db, key, name, "name")
+            n = db.execute("SELECT COUNT(*) FROM candidates WHERE problem = ?", (key,)).fetchone()[0]
+            db.execute("DELETE FROM candidates WHERE problem = ?", (key,))
+            db.execute("DELETE FROM revisions WHERE problem = ?", (key,))
+            db.execute("DELETE FROM problems WHERE name = ?", (key,))
             return int(n)
 
     # -------------------------------------------------------------- candidates
     def add_candidates(self, name: str, revision: int, ids: Sequence[str],
-                       X: np.ndarray, provenance: Sequence[dict], *, field: str = "candidates"
-                       ) -> list[str]:
+                       X: np.ndarray, provenance: Sequence[dict], *, field: str = "candidates",
+                       tenant: str = "", db=None) -> list[str]:
         """Add K candidates made for ``revision`` (X int8 (K, n), 0/1 in that revision's order).
 
-        Empty ids are assigned ``c<N>``. All or nothing: a taken id stores none.
+        Empty ids are assigned ``c<N>``. All or nothing: a taken id stores none. ``db``: an
+        open write transaction of this store to join (e.g. an adoption's), else one of its own.
         """
         X = np.asarray(X, dtype=np.int8)
         rb = packing.row_bytes(X.shape[1])
         blob = packing.pack_rows(X)
-        with self._tx() as db:
+        key = self._key(tenant, name)
+        with self._tx() if db is None else nullcontext(db) as db:
             row = db.execute("SELECT revision, next_candidate FROM problems WHERE name = ?",
-                             (name,)).fetchone()
+                             (key,)).fetchone()
             if row is None:
                 raise NotFoundError("problem", f"no problem named {name!r}")
             if row[0] != revision:
                 raise ConflictError("problem", f"problem {name!r} moved to revision {row[0]}")
+            self._charge(db, tenant, candidates=len(ids), size=len(blob))
             counter = row[1]
             out, now = [], _now()
             for k, (cid, prov) in enumerate(zip(ids, provenance)):
@@ -390,21 +450,21 @@ class Store:
                         cid = f"c{counter}"
                         counter += 1
                         if not db.execute("SELECT 1 FROM candidates WHERE problem = ? AND id = ?",
-                                          (name, cid)).fetchone() and cid not in out:
+                                          (key, cid)).fetchone() and cid not in out:
                             break
                 try:
                     db.execute(
                         "INSERT INTO candidates (problem, id, revision, bits, source, energy, tags, "
                         "created_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
-                        (name, cid, revision, blob[k * rb:(k + 1) * rb],
+                        (key, cid, revision, blob[k * rb:(k + 1) * rb],
                          prov.get("source", ""), prov.get("energy"),
                          json.dumps(list(prov.get("tags", ()))), now))
-                except sqlite3.IntegrityError:
+                except self._backend.integrity_errors:
                     raise AlreadyExistsError(f"{field}.ids[{k}]",
                                              f"candidate {cid!r} already exists") from None
                 out.append(cid)
-            db.execute("UPDATE problems SET next_candidate = ?, updated_at = ? WHERE name = ?",
-                       (counter, now, name))
+            db.execute("UPDATE problems SET next_candidate = ?, updated_at = ?, bytes = bytes + ? "
+                       "WHERE name = ?", (counter, now, len(blob), key))
             return out
 
     def _labels_of(self, db, name: str, revision: int, cache: dict) -> tuple:
@@ -422,18 +482,18 @@ class Store:
                                tuple(json.loads(tags)))
 
     def list_candidates(self, name: str, *, page_size: int = 100, page_token: str = "",
-                        revision: int = 0) -> tuple[list[CandidateRecord], str]:
+                        revision: int = 0, tenant: str = "") -> tuple[list[CandidateRecord], str]:
         page_size = max(1, min(int(page_size or 100), 1000))
         try:
             after = int(page_token) if page_token else 0
         except ValueError:
             raise InputError("page_token", f"{page_token!r} is not a token from this server") from None
+        key = self._key(tenant, name)
         with self._read() as db:
-            if not db.execute("SELECT 1 FROM problems WHERE name = ?", (name,)).fetchone():
-                raise NotFoundError("problem", f"no problem named {name!r}")
+            self._exists(db, key, name, "problem")
             q = ("SELECT seq, id, revision, bits, source, energy, tags FROM candidates "
                  "WHERE problem = ? AND seq > ?")
-            args: list = [name, after]
+            args: list = [key, after]
             if revision:
                 q += " AND revision = ?"
                 args.append(revision)
@@ -441,33 +501,47 @@ class Store:
             more = len(rows) > page_size
             rows = rows[:page_size]
             cache: dict = {}
-            recs = [self._record(db, name, r, cache) for r in rows]
+            recs = [self._record(db, key, r, cache) for r in rows]
         return recs, (str(rows[-1][0]) if more else "")
 
-    def remove_candidates(self, name: str, ids: Sequence[str]) -> int:
+    def remove_candidates(self, name: str, ids: Sequence[str], *, tenant: str = "") -> int:
+        key = self._key(tenant, name)
         with self._tx() as db:
-            if not db.execute("SELECT 1 FROM problems WHERE name = ?", (name,)).fetchone():
-                raise NotFoundError("problem", f"no problem named {name!r}")
+            self._exists(db, key, name, "problem")
             for k, cid in enumerate(ids):
                 if not db.execute("SELECT 1 FROM candidates WHERE problem = ? AND id = ?",
-                                  (name, cid)).fetchone():
+                                  (key, cid)).fetchone():
                     raise NotFoundError(f"ids[{k}]", f"problem {name!r} has no candidate {cid!r}")
-            n = 0
-            for cid in dict.fromkeys(ids):
-                n += db.execute("DELETE FROM candidates WHERE problem = ? AND id = ?",
-                                (name, cid)).rowcount
-            return n
+            return self._delete_candidates(db, key, ids)
+
+    @staticmethod
+    def _delete_candidates(db, key: str, ids: Sequence[str]) -> int:
+        """Delete the listed candidates of the problem stored as ``key``; its stored bytes
+        go down by theirs. Returns how many were deleted."""
+        n = size = 0
+        for cid in dict.fromkeys(ids):
+            row = db.execute("SELECT LENGTH(bits) FROM candidates WHERE problem = ? AND id = ?",
+                             (key, cid)).fetchone()
+            if row is None:
+                continue
+            db.execute("DELETE FROM candidates WHERE problem = ? AND id = ?", (key, cid))
+            n, size = n + 1, size + int(row[0])
+        # CASE, not MAX(a, b): the two-argument MAX is SQLite's own
+        db.execute("UPDATE problems SET bytes = CASE WHEN bytes > ? THEN bytes - ? ELSE 0 END "
+                   "WHERE name = ?", (size, size, key))
+        return n
 
     def keep_only(self, name: str, keep_ids: Sequence[str], drop_ids: Sequence[str], *,
-                  revision: int) -> list[str]:
+                  revision: int, tenant: str = "") -> list[str]:
         """Remove ``drop_ids`` (curation), in one transaction; returns the ids removed.
 
         The problem must still be at ``revision`` and every id of ``keep_ids`` and
         ``drop_ids`` must still exist (else :class:`ConflictError`, nothing removed):
         the choice was made on exactly that library.
         """
+        key = self._key(tenant, name)
         with self._tx() as db:
-            row = db.execute("SELECT revision FROM problems WHERE name = ?", (name,)).fetchone()
+            row = db.execute("SELECT revision FROM problems WHERE name = ?", (key,)).fetchone()
             if row is None:
                 raise NotFoundError("problem", f"no problem named {name!r}")
             if row[0] != revision:
@@ -475,48 +549,48 @@ class Store:
                                                f"during the audit of revision {revision}")
             for cid in list(keep_ids) + list(drop_ids):
                 if not db.execute("SELECT 1 FROM candidates WHERE problem = ? AND id = ?",
-                                  (name, cid)).fetchone():
+                                  (key, cid)).fetchone():
                     raise ConflictError("problem", f"candidate {cid!r} was removed during the audit")
-            out = []
-            for cid in dict.fromkeys(drop_ids):
-                db.execute("DELETE FROM candidates WHERE problem = ? AND id = ?", (name, cid))
-                out.append(cid)
+            out = list(dict.fromkeys(drop_ids))
+            self._delete_candidates(db, key, out)
             if out:
-                db.execute("UPDATE problems SET updated_at = ? WHERE name = ?", (_now(), name))
+                db.execute("UPDATE problems SET updated_at = ? WHERE name = ?", (_now(), key))
             return out
 
     # ------------------------------------------------------------------ repair
     def library(self, name: str, *, ids: Sequence[str] = (), all_revisions: bool = False,
-                max_candidates: int | None = None) -> tuple[int, Problem, CandidateSet]:
+                max_candidates: int | None = None, tenant: str = ""
+                ) -> tuple[int, Problem, CandidateSet]:
         """(current revision, its model, the candidates to repair).
 
         Default: the candidates made for the current revision. ``ids`` picks
         candidates by id (any revision); ``all_revisions`` takes every candidate.
         Candidates of an older revision must assign exactly the current labels.
         """
+        key = self._key(tenant, name)
         with self._read() as db:
-            row = db.execute("SELECT revision FROM problems WHERE name = ?", (name,)).fetchone()
+            row = db.execute("SELECT revision FROM problems WHERE name = ?", (key,)).fetchone()
             if row is None:
                 raise NotFoundError("problem", f"no problem named {name!r}")
             rev = row[0]
             model = db.execute("SELECT model FROM revisions WHERE problem = ? AND revision = ?",
-                               (name, rev)).fetchone()[0]
+                               (key, rev)).fetchone()[0]
             q = "SELECT id, revision, bits FROM candidates WHERE problem = ?"
             if ids:
                 rows = []
                 for k, cid in enumerate(ids):
-                    r = db.execute(q + " AND id = ?", (name, cid)).fetchone()
+                    r = db.execute(q + " AND id = ?", (key, cid)).fetchone()
                     if r is None:
                         raise NotFoundError(f"candidate_ids[{k}]",
                                             f"problem {name!r} has no candidate {cid!r}")
                     rows.append(r)
             elif all_revisions:
-                rows = db.execute(q + " ORDER BY seq", (name,)).fetchall()
+                rows = db.execute(q + " ORDER BY seq", (key,)).fetchall()
             else:
-                rows = db.execute(q + " AND revision = ? ORDER BY seq", (name, rev)).fetchall()
+                rows = db.execute(q + " AND revision = ? ORDER BY seq", (key, rev)).fetchall()
             revisions = list(dict.fromkeys(r[1] for r in rows))  # in order of first use
             cache: dict = {}
-            labels_of = {v: self._labels_of(db, name, v, cache)[0] for v in revisions if v != rev}
+            labels_of = {v: self._labels_of(db, key, v, cache)[0] for v in revisions if v != rev}
         problem = decode_model(model)
         labels_of[rev] = problem.labels
         if not rows:

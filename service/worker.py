@@ -379,11 +379,20 @@ class RepairPool:
         for job in jobs:
             job.cancel()
 
-    def shutdown(self, *, wait: bool = True) -> None:
+    def shutdown(self, *, wait: bool = True, terminate: bool = False) -> None:
+        """Close the pool: cancel every job; ``terminate``: end the worker processes at once
+        (SIGTERM) rather than wait for them to finish their job and exit (they hold nothing
+        durable: the store is the server's)."""
         with self._lock:
             self._closed = True
         self.cancel_all()
+        processes = list((getattr(self._executor, "_processes", None) or {}).values())
+        if terminate:
+            for proc in processes:
+                proc.terminate()
         self._executor.shutdown(wait=wait, cancel_futures=True)
+        for proc in processes if terminate else ():
+            proc.join()
         if self._listener.is_alive():
             self._stop_w.send(None)
             self._listener.join()

@@ -35,3 +35,16 @@ def rpc_error(call):
     with pytest.raises(grpc.RpcError) as e:
         call()
     return e.value
+
+
+@pytest.fixture(scope="session")
+def postgres():
+    """A real PostgreSQL server for the session (tests/pg_server.py); fails when
+    PostgreSQL is not installed (``make test`` installs it)."""
+    from pg_server import PostgresServer
+
+    server = PostgresServer().start()
+    try:
+        yield server
+    finally:
+        server.stop()

@@ -137,7 +137,7 @@ def test_cost_split_equals_independent_recomputation(vartype):
 @pytest.mark.parametrize("constraint, field", [
     (HammingPenalty({"q": 1}), "constraints[0].reference['q']"),
     (HammingPenalty({0: 2}), "constraints[0].reference[0]"),
-    (HammingPenalty({0: 1}, shape="table"), "constraints[0].shape.table"),
+    (HammingPenalty({0: 1}, shape="table"), "constraints[0].table"),
     (LinearConstraint({0: float("nan")}, "<=", 1), "constraints[0].terms[0]"),
     (ForbidAssignment({}), "constraints[0].assignment"),
     (ExtraTerms({}, [(0, 0, 1.0)]), "constraints[0].quadratic[0]"),

@@ -232,10 +232,13 @@ def test_unsatisfiable_constraints_are_a_status_not_an_error():
         assert res.status == "infeasible"
         assert not res.best.feasible
         assert res.best.violation == pytest.approx(1.0)  # least-violating: all ones
+    # greedy proves nothing itself; the conflict search that follows proves it (CP-SAT)
     res = repair(p, cands, cs, method="greedy", time_limit=1.0)
-    assert res.status == "no_feasible_found" and res.best.violation == pytest.approx(1.0)
+    assert res.status == "infeasible" and res.best.violation == pytest.approx(1.0)
+    assert [(m.index, m.name) for m in res.conflict.members] == [(0, "linear")]
     clash = repair(p, cands, [FixVariables({0: 1}), FixVariables({0: 0})])
     assert clash.status == "infeasible" and "fixed to both" in clash.message
+    assert "[0] fix, [1] fix#2" in clash.message
 
 
 @pytest.mark.parametrize("method", ["greedy", "cpsat", "portfolio"])

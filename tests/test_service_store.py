@@ -1,4 +1,7 @@
-"""The SQLite store: durability settings, revisions, all-or-nothing writes, restart."""
+"""The store on both backends: revisions, all-or-nothing writes, restart, paging, reads
+beside writes; SQLite's durability settings and schema migration. The PostgreSQL half
+runs against a real server the fixtures start (tests/pg_server.py), one fresh database
+per test."""
 
 from __future__ import annotations
 
@@ -15,17 +18,66 @@ from flipfix.service.store import SCHEMA_VERSION, Store
 DOC = {"vartype": "SPIN", "linear": {"a": 1.0, "0": -0.5}, "quadratic": [["a", 0, 0.25], [0, 1, -1.0]]}
 
 
+@pytest.fixture(params=["sqlite", "postgresql"])
+def db_url(request, tmp_path):
+    """Where a store lives: an SQLite file, or a fresh database on the test PostgreSQL."""
+    if request.param == "sqlite":
+        return str(tmp_path / "f.sqlite3")
+    return request.getfixturevalue("postgres").new_database()
+
+
 @pytest.fixture
-def store(tmp_path):
+def store(db_url):
+    s = Store(db_url)
+    yield s
+    s.close()
+
+
+@pytest.fixture
+def sqlite_store(tmp_path):
     s = Store(tmp_path / "f.sqlite3")
     yield s
     s.close()
 
 
-def test_wal_full_sync_and_schema_version(store):
-    assert store.journal_mode == "wal"
-    assert store.synchronous == 2  # FULL (SQLite docs: 0 OFF, 1 NORMAL, 2 FULL, 3 EXTRA)
-    assert store.schema_version == SCHEMA_VERSION
+def test_wal_full_sync_and_schema_version(sqlite_store):
+    assert sqlite_store.backend == "sqlite"
+    assert sqlite_store.journal_mode == "wal"
+    assert sqlite_store.synchronous == 2  # FULL (SQLite docs: 0 OFF, 1 NORMAL, 2 FULL, 3 EXTRA)
+    assert sqlite_store.schema_version == SCHEMA_VERSION
+
+
+def test_postgres_store_has_the_schema_and_durable_commits(postgres):
+    url = postgres.new_database()
+    s = Store(url)
+    try:
+        assert s.backend == "postgresql" and s.schema_version == SCHEMA_VERSION
+        with s._read() as db:  # PostgreSQL docs: "on" waits for the WAL flush before success
+            assert db.execute("SHOW synchronous_commit").fetchone()[0] == "on"
+            assert db.execute("SHOW fsync").fetchone()[0] == "on"
+    finally:
+        s.close()
+    s = Store(url)  # reopening an existing database keeps its schema row
+    s.close()
+
+
+def test_newer_schema_is_refused_on_postgres(postgres):
+    import psycopg
+
+    url = postgres.new_database()
+    Store(url).close()
+    with psycopg.connect(url, autocommit=True) as conn:
+        conn.execute("UPDATE schema_version SET version = %s", (SCHEMA_VERSION + 1,))
+    with pytest.raises(RuntimeError, match="newer"):
+        Store(url)
+
+
+def test_an_unreachable_postgres_is_a_transient_error():
+    from flipfix.service.errors import TransientError
+
+    with pytest.raises(TransientError) as err:
+        Store("postgresql://nobody@127.0.0.1:1/none?connect_timeout=2")
+    assert err.value.field == "db"
 
 
 def test_newer_schema_is_refused(tmp_path):
@@ -39,8 +91,8 @@ def test_newer_schema_is_refused(tmp_path):
         Store(path)
 
 
-def test_revisions_and_candidates_survive_reopen(tmp_path):
-    path = tmp_path / "r.sqlite3"
+def test_revisions_and_candidates_survive_reopen(db_url):
+    path = db_url
     s = Store(path)
     p = documents.parse_problem(DOC)
     s.create_problem("p", p)
@@ -107,11 +159,12 @@ def test_paging_visits_every_candidate_once(store):
     assert store.delete_problem("p") == 5
 
 
-def test_candidates_are_stored_packed(store):
+def test_candidates_are_stored_packed(store):  # both backends: BLOB / BYTEA
     """ceil(n / 8) bytes per candidate, numpy.packbits order (n = 3: one byte, 5 pad bits)."""
     store.create_problem("p", documents.parse_problem(DOC))
     store.add_candidates("p", 1, ["a", "b"], np.array([[1, 0, 1], [0, 1, 1]], np.int8), [{}, {}])
-    rows = store._db.execute("SELECT bits FROM candidates ORDER BY seq").fetchall()
+    with store._read() as db:
+        rows = db.execute("SELECT bits FROM candidates ORDER BY seq").fetchall()
     assert [bytes(r[0]) for r in rows] == [bytes([0b10100000]), bytes([0b01100000])]
 
 
@@ -128,6 +181,9 @@ def test_schema_1_database_is_migrated(tmp_path):
     s.close()
     db = sqlite3.connect(path)  # rewrite the file as schema 1 had it
     db.executescript("""
+        DROP INDEX problems_by_tenant;
+        ALTER TABLE problems DROP COLUMN tenant;
+        ALTER TABLE problems DROP COLUMN bytes;
         ALTER TABLE candidates RENAME TO c2;
         DROP INDEX candidates_by_problem;
         CREATE TABLE candidates (seq INTEGER PRIMARY KEY AUTOINCREMENT,
@@ -147,12 +203,13 @@ def test_schema_1_database_is_migrated(tmp_path):
     db.close()
 
     s = Store(path)
-    assert s.schema_version == SCHEMA_VERSION == 2
+    assert s.schema_version == SCHEMA_VERSION == 3
     recs, _ = s.list_candidates("p")
     assert [r.id for r in recs] == ids_before
     assert [r.x.tolist() for r in recs] == X.tolist()
     assert (recs[0].source, recs[0].energy, recs[0].tags) == ("old", 2.0, ("t",))
-    assert isinstance(s._db.execute("SELECT bits FROM candidates").fetchone()[0], bytes)
+    with s._read() as db:
+        assert isinstance(db.execute("SELECT bits FROM candidates").fetchone()[0], bytes)
     # the migrated table keeps its constraints and its sequence: new ids do not collide
     with pytest.raises(AlreadyExistsError):
         s.add_candidates("p", 1, ["x"], X[:1], [{}])
@@ -188,7 +245,8 @@ def _every_read(store):
             store.schema_version)
 
 
-def test_reads_proceed_while_another_connection_holds_the_write_lock(store):
+def test_reads_proceed_while_another_connection_holds_the_write_lock(sqlite_store):
+    store = sqlite_store
     store.create_problem("p", documents.parse_problem(DOC))
     store.add_candidates("p", 1, ["a", "b"], np.array([[1, 0, 1], [0, 1, 1]], np.int8),
                          [{}, {}])
@@ -230,7 +288,8 @@ def test_reads_proceed_while_the_store_itself_writes(store):
     assert wbox == [None] and store.list_problems()[0][0].updated_at == "now"
 
 
-def test_read_connections_cannot_write(store):
+def test_read_connections_cannot_write(sqlite_store):
+    store = sqlite_store
     store.create_problem("p", documents.parse_problem(DOC))
     with store._read() as db:
         with pytest.raises(sqlite3.OperationalError, match="readonly"):

@@ -36,7 +36,7 @@ from __future__ import annotations
 import math
 import time
 from dataclasses import asdict, dataclass
-from typing import Any, Callable, Mapping, Sequence
+from typing import Any, Callable, Iterator, Mapping, Protocol, Sequence
 
 import numpy as np
 
@@ -51,7 +51,7 @@ from flipfix.repair.audit.robustness import robustness_profile
 
 __all__ = ["ScenarioFamily", "Scenario", "CandidateStress", "StressReport", "draw_scenarios",
            "default_family", "stress_test", "summarise", "pearson", "spearman", "REFERENCES",
-           "PARTS"]
+           "PARTS", "ScenarioRunner", "scenario_costs"]
 
 REFERENCES = ("uniform", "perturbed")
 
@@ -466,12 +466,70 @@ def summarise(ids: Sequence[str], energy: Sequence[float], free: Sequence[int],
     return rows, best.tolist(), winners
 
 
+class ScenarioRunner(Protocol):
+    """Runs the scenario repairs of one stress test somewhere else (other processes,
+    other machines): the core's only view of a cluster.
+
+    ``parallel`` is how many scenarios run at once. :meth:`map` calls
+    ``fn(*shared, item, time_limit=seconds_each, cancel=<token>, **options)`` once per
+    item and yields the results in item order; once ``deadline`` (a
+    ``time.perf_counter()`` instant) passes or ``cancel`` is set, it stops the running
+    calls (their cancel token is set) and yields None for every item not completed. It
+    is a generator: the caller closes it when done, which stops whatever still runs.
+    """
+
+    parallel: int
+
+    def map(self, fn: Callable, shared: tuple, items: Sequence, *, seconds_each: float,
+            deadline: float, cancel, options: Mapping[str, Any]) -> Iterator[Any]: ...
+
+
+def scenario_costs(problem: Problem, candidates: CandidateSet, scenario: Scenario, *,
+                   time_limit: float, cancel=None, method: str = "greedy",
+                   options: Mapping[str, Any] | None = None
+                   ) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
+    """Repair the library under one scenario (with the scenario's seed).
+
+    Returns (cost float64 (K,), flips int64 (K,), feasible bool (K,)) in library order,
+    or None when ``cancel`` was set (the repair may have stopped early).
+    """
+    from flipfix.repair.api import repair
+
+    res = repair(problem, candidates, scenario.constraints, method=method,
+                 time_limit=time_limit, seed=scenario.seed, cancel=cancel, **dict(options or {}))
+    if cancel is not None and cancel.is_set():
+        return None
+    pos = {cid: k for k, cid in enumerate(candidates.ids)}
+    K = len(pos)
+    c = np.full(K, np.inf)
+    f = np.zeros(K, dtype=np.int64)
+    ok = np.zeros(K, dtype=bool)
+    for row in res.audit:
+        k = pos[row.candidate_id]
+        c[k], f[k], ok[k] = float(row.cost_after), int(row.flips), bool(row.feasible)
+    return c, f, ok
+
+
+def _serial(problem: Problem, candidates: CandidateSet, drawn: Sequence[Scenario], *,
+            method: str, opts: Mapping[str, Any], deadline: float, cancel) -> Iterator[Any]:
+    """The scenarios one after another here, each with an even share of the time left;
+    None once the time is spent or ``cancel`` is set."""
+    for s, sc in enumerate(drawn):
+        left = deadline - time.perf_counter()
+        if left <= 0 or (cancel is not None and cancel.is_set()):
+            yield None
+            return
+        yield scenario_costs(problem, candidates, sc, time_limit=left / (len(drawn) - s),
+                             cancel=cancel, method=method, options=opts)
+
+
 def stress_test(problem: Problem, candidates: CandidateSet,
                 family: ScenarioFamily | Sequence[Scenario] | None = None, *, scenarios: int = 20,
                 seed: int = 0, method: str = "greedy", time_limit: float = 30.0,
                 epsilon: float = 0.0, cancel=None,
                 progress: Callable[[dict], None] | None = None,
-                repair_options: Mapping[str, Any] | None = None) -> StressReport:
+                repair_options: Mapping[str, Any] | None = None,
+                runner: "ScenarioRunner | None" = None) -> StressReport:
     """Repair the whole library under each scenario and summarise.
 
     ``family`` is a :class:`ScenarioFamily` (``scenarios`` are drawn with
@@ -482,9 +540,14 @@ def stress_test(problem: Problem, candidates: CandidateSet,
     ``progress(dict(done, total, best_cost, phase="stress"))`` is called after
     each scenario from the calling thread. ``epsilon`` is the free-variable and free-decision
     threshold of the robustness profile.
-    """
-    from flipfix.repair.api import repair
 
+    ``runner`` spreads the scenarios over other processes or machines
+    (:class:`ScenarioRunner`, e.g. a Dask cluster): each scenario then gets
+    ``time_limit * runner.parallel / S`` seconds, results arrive in scenario order, and
+    the answers equal the serial ones whenever no scenario's repair is cut short by its
+    time (each scenario is repaired with its own seed, whoever runs it). None: one
+    scenario after another in this process, each with an even share of what is left.
+    """
     t0 = time.perf_counter()
     if not isinstance(candidates, CandidateSet):
         raise InputError("candidates", f"expected a CandidateSet, got {type(candidates).__name__}")
@@ -506,40 +569,35 @@ def stress_test(problem: Problem, candidates: CandidateSet,
     energy = profile.column("energy")
     free_var = profile.column("free_variables")  # outside declared decisions
     free_dec = profile.column("free_decisions")
-    pos = {cid: k for k, cid in enumerate(ids)}
     K = len(ids)
     cost_rows, flip_rows, feas_rows, seeds, descs = [], [], [], [], []
-    stopped = "done"
     opts = dict(repair_options or {})
-    for s, sc in enumerate(drawn):
-        if cancel is not None and cancel.is_set():
-            stopped = "cancelled"
-            break
-        left = time_limit - (time.perf_counter() - t0)
-        if left <= 0:
-            stopped = "time_limit"
-            break
-        res = repair(problem, candidates, sc.constraints, method=method,
-                     time_limit=left / (len(drawn) - s), seed=sc.seed, cancel=cancel, **opts)
-        c = np.full(K, np.inf)
-        f = np.zeros(K, dtype=np.int64)
-        ok = np.zeros(K, dtype=bool)
-        for row in res.audit:
-            k = pos[row.candidate_id]
-            c[k], f[k], ok[k] = float(row.cost_after), int(row.flips), bool(row.feasible)
-        if cancel is not None and cancel.is_set():
-            # the repair may have stopped early: keep only complete scenarios
-            stopped = "cancelled"
-            break
-        cost_rows.append(c)
-        flip_rows.append(f)
-        feas_rows.append(ok)
-        seeds.append(int(sc.seed))
-        descs.append(sc.description)
-        if progress is not None:
-            fin = c[ok]
-            progress({"done": s + 1, "total": len(drawn),
-                      "best_cost": float(fin.min()) if fin.size else None, "phase": "stress"})
+    if runner is None:
+        outcomes = _serial(problem, candidates, drawn, method=method, opts=opts,
+                           deadline=t0 + time_limit, cancel=cancel)
+    else:
+        outcomes = runner.map(scenario_costs, (problem, candidates), drawn,
+                              seconds_each=time_limit * runner.parallel / len(drawn),
+                              deadline=t0 + time_limit, cancel=cancel,
+                              options={"method": method, "options": opts})
+    stopped = "done"
+    try:
+        for s, (sc, out) in enumerate(zip(drawn, outcomes)):
+            if out is None:  # the runner stopped before this scenario completed
+                stopped = "cancelled" if cancel is not None and cancel.is_set() else "time_limit"
+                break
+            c, f, ok = out
+            cost_rows.append(c)
+            flip_rows.append(f)
+            feas_rows.append(ok)
+            seeds.append(int(sc.seed))
+            descs.append(sc.description)
+            if progress is not None:
+                fin = c[ok]
+                progress({"done": s + 1, "total": len(drawn),
+                          "best_cost": float(fin.min()) if fin.size else None, "phase": "stress"})
+    finally:
+        outcomes.close()  # stops what a runner still has running
     S = len(cost_rows)
     cost = np.vstack(cost_rows) if S else np.zeros((0, K))
     flips = np.vstack(flip_rows) if S else np.zeros((0, K), dtype=np.int64)

@@ -240,6 +240,9 @@ class Problem:
     def _assemble(cls, order, h, rows, cols, vals, offset, vartype, decisions, p=""):
         """Convert to 0/1 form if needed, symmetrise, merge duplicates, build CSR."""
         n = len(order)
+        if n == 0:
+            raise InputError(p.rstrip(".") or "problem",
+                             "has no variables: give at least one label or term")
         if vartype == SPIN:
             idx, lin, vals, offset = vartypes.change_vartype(
                 np.arange(n), h, rows, cols, vals, offset, source=SPIN, target=BINARY)

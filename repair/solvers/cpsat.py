@@ -39,7 +39,7 @@ from ortools.sat.python import cp_model
 from flipfix.repair.cancel import CancelToken, as_token
 from flipfix.repair.lowering.compiled import Compiled
 
-__all__ = ["CpsatOutput", "LateModel", "solve_cpsat", "integer_scale"]
+__all__ = ["CpsatOutput", "LateModel", "solve_cpsat", "integer_scale", "add_row"]
 
 _STATUS = {
     cp_model.OPTIMAL: "optimal",
@@ -102,6 +102,24 @@ def _price_multiplier(scaled_price: float, largest: int) -> int:
 
 def _int(v: float, s: float) -> int:
     return int(round(v * s))
+
+
+def add_row(m: cp_model.CpModel, x: list, r, enforce=None) -> None:
+    """Hard row ``r.lo <= sum r.coef[k] * x[r.idx[k]] <= r.hi`` (a
+    :class:`flipfix.repair.lowering.pieces.RowSpec`), coefficients scaled to integers
+    row by row; with ``enforce`` (a Boolean literal) it holds only when that literal is true."""
+    bounds = [v for v in (r.lo, r.hi) if math.isfinite(v)]
+    rs, _ = integer_scale(np.concatenate([r.coef, bounds]))
+    expr = cp_model.LinearExpr.weighted_sum(
+        [x[int(i)] for i in r.idx], [_int(a, rs) for a in r.coef])
+    parts = []
+    if math.isfinite(r.lo):
+        parts.append(m.add(expr >= math.ceil(r.lo * rs - 1e-9)))
+    if math.isfinite(r.hi):
+        parts.append(m.add(expr <= math.floor(r.hi * rs + 1e-9)))
+    if enforce is not None:
+        for c in parts:
+            c.only_enforce_if(enforce)
 
 
 class LateModel:
@@ -172,14 +190,7 @@ class LateModel:
         for i in np.flatnonzero(compiled.fixed >= 0):
             m.add(x[int(i)] == int(compiled.fixed[i]))
         for r in compiled.rows:
-            bounds = [v for v in (r.lo, r.hi) if math.isfinite(v)]
-            rs, _ = integer_scale(np.concatenate([r.coef, bounds]))
-            expr = cp_model.LinearExpr.weighted_sum(
-                [x[int(i)] for i in r.idx], [_int(a, rs) for a in r.coef])
-            if math.isfinite(r.lo):
-                m.add(expr >= math.ceil(r.lo * rs - 1e-9))
-            if math.isfinite(r.hi):
-                m.add(expr <= math.floor(r.hi * rs + 1e-9))
+            add_row(m, x, r)
         self.model = m
         self.lin = lin
         self.obj_idx = np.asarray(obj_idx, dtype=np.int64)

@@ -12,6 +12,8 @@ import numpy as np
 
 from flipfix.repair.model.problem import Problem
 from flipfix.repair.result import AuditRow, ParetoPoint, RepairResult, Solution
+from flipfix.repair.solvers.alternatives import Alternative
+from flipfix.repair.solvers.conflicts import Conflict, ConflictMember
 
 from flipfix.service import packing
 from flipfix.service.convert.candidates import array_to_packed, packed_to_array
@@ -52,7 +54,7 @@ def result_to_reply(res: RepairResult, *, audit_limit: int | None = None,
         changes=[_change(d, o, n) for d, o, n in b.changes],
         decisions_changed=int(b.decisions_changed), plan_distance=b.plan_distance)
     rows = res.audit if audit_limit is None else res.audit[:audit_limit]
-    return pb.RepairReply(
+    reply = pb.RepairReply(
         status=res.status, message=res.message, method=res.method, seed=int(res.seed),
         seconds=float(res.seconds), time_limit=float(time_limit), best=best,
         audit=[pb.AuditRow(candidate_id=r.candidate_id, cost_before=float(r.cost_before),
@@ -65,6 +67,25 @@ def result_to_reply(res: RepairResult, *, audit_limit: int | None = None,
                                             for d, h in r.encoding_issues]) for r in rows],
         audit_total=len(res.audit), pareto=[_point(p) for p in res.pareto],
         scaling_error=float(res.scaling_error), cpsat_status=res.cpsat_status, revision=revision)
+    if res.conflict is not None:
+        reply.conflict.extend(pb.ConflictMember(index=m.index, name=m.name)
+                              for m in res.conflict.members)
+        reply.conflict_minimal = bool(res.conflict.minimal)
+    reply.alternatives.extend(pb.Alternative(
+        values=array_to_packed(np.asarray(a.x, dtype=np.int8)[None, :]), cost=float(a.cost),
+        objective=float(a.objective), flips=int(a.flips), source_candidate_id=a.candidate_id,
+        decisions_changed=int(a.decisions_changed),
+        distance_to_previous=int(a.distance_to_previous)) for a in res.alternatives)
+    return reply
+
+
+def _alternative(a: pb.Alternative, problem: Problem | None, k: int) -> Alternative:
+    n = problem.n if problem is not None else int(a.values.num_variables)
+    x = packed_to_array(a.values, n, field=f"alternatives[{k}].values", count=1)[0]
+    return Alternative(x, a.cost, a.objective, -1, int(a.flips), int(a.decisions_changed),
+                       int(a.distance_to_previous), "", a.source_candidate_id,
+                       None if problem is None
+                       else dict(zip(problem.labels, map(int, problem.to_caller(x)))))
 
 
 def reply_values(r: pb.RepairReply, problem: Problem) -> np.ndarray:
@@ -114,7 +135,10 @@ def reply_to_result(r: pb.RepairReply, problem: Problem | None = None) -> Repair
         seconds=r.seconds, message=r.message,
         pareto=[ParetoPoint(cost=p.cost, flips=int(p.flips), candidate_id=p.candidate_id,
                             method=p.method) for p in r.pareto],
-        scaling_error=r.scaling_error, cpsat_status=r.cpsat_status)
+        scaling_error=r.scaling_error, cpsat_status=r.cpsat_status,
+        conflict=Conflict("conflict", tuple(ConflictMember(m.index, m.name) for m in r.conflict),
+                          bool(r.conflict_minimal), message=r.message) if r.conflict else None,
+        alternatives=[_alternative(a, problem, k) for k, a in enumerate(r.alternatives)])
 
 
 def reply_to_dict(r: pb.RepairReply, problem: Problem | None = None) -> dict:

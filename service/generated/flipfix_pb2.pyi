@@ -337,20 +337,22 @@ class RemoveCandidatesReply(_message.Message):
     def __init__(self, removed: _Optional[int] = ...) -> None: ...
 
 class HammingPenalty(_message.Message):
-    __slots__ = ("reference", "weight", "shape", "threshold", "table", "variables")
+    __slots__ = ("reference", "weight", "shape", "threshold", "table", "variables", "published_plan")
     REFERENCE_FIELD_NUMBER: _ClassVar[int]
     WEIGHT_FIELD_NUMBER: _ClassVar[int]
     SHAPE_FIELD_NUMBER: _ClassVar[int]
     THRESHOLD_FIELD_NUMBER: _ClassVar[int]
     TABLE_FIELD_NUMBER: _ClassVar[int]
     VARIABLES_FIELD_NUMBER: _ClassVar[int]
+    PUBLISHED_PLAN_FIELD_NUMBER: _ClassVar[int]
     reference: Assignment
     weight: float
     shape: PenaltyShape
     threshold: float
     table: _containers.RepeatedScalarFieldContainer[float]
     variables: _containers.RepeatedCompositeFieldContainer[Label]
-    def __init__(self, reference: _Optional[_Union[Assignment, _Mapping]] = ..., weight: _Optional[float] = ..., shape: _Optional[_Union[PenaltyShape, str]] = ..., threshold: _Optional[float] = ..., table: _Optional[_Iterable[float]] = ..., variables: _Optional[_Iterable[_Union[Label, _Mapping]]] = ...) -> None: ...
+    published_plan: bool
+    def __init__(self, reference: _Optional[_Union[Assignment, _Mapping]] = ..., weight: _Optional[float] = ..., shape: _Optional[_Union[PenaltyShape, str]] = ..., threshold: _Optional[float] = ..., table: _Optional[_Iterable[float]] = ..., variables: _Optional[_Iterable[_Union[Label, _Mapping]]] = ..., published_plan: _Optional[bool] = ...) -> None: ...
 
 class ExtraTerms(_message.Message):
     __slots__ = ("linear", "quadratic", "offset")
@@ -427,20 +429,22 @@ class DecisionReference(_message.Message):
     def __init__(self, decision: _Optional[str] = ..., value: _Optional[_Union[DecisionValue, _Mapping]] = ...) -> None: ...
 
 class DecisionChangePenalty(_message.Message):
-    __slots__ = ("reference", "weight", "shape", "threshold", "table", "distance")
+    __slots__ = ("reference", "weight", "shape", "threshold", "table", "distance", "published_plan")
     REFERENCE_FIELD_NUMBER: _ClassVar[int]
     WEIGHT_FIELD_NUMBER: _ClassVar[int]
     SHAPE_FIELD_NUMBER: _ClassVar[int]
     THRESHOLD_FIELD_NUMBER: _ClassVar[int]
     TABLE_FIELD_NUMBER: _ClassVar[int]
     DISTANCE_FIELD_NUMBER: _ClassVar[int]
+    PUBLISHED_PLAN_FIELD_NUMBER: _ClassVar[int]
     reference: _containers.RepeatedCompositeFieldContainer[DecisionReference]
     weight: float
     shape: PenaltyShape
     threshold: float
     table: _containers.RepeatedScalarFieldContainer[float]
     distance: DecisionDistance
-    def __init__(self, reference: _Optional[_Iterable[_Union[DecisionReference, _Mapping]]] = ..., weight: _Optional[float] = ..., shape: _Optional[_Union[PenaltyShape, str]] = ..., threshold: _Optional[float] = ..., table: _Optional[_Iterable[float]] = ..., distance: _Optional[_Union[DecisionDistance, str]] = ...) -> None: ...
+    published_plan: bool
+    def __init__(self, reference: _Optional[_Iterable[_Union[DecisionReference, _Mapping]]] = ..., weight: _Optional[float] = ..., shape: _Optional[_Union[PenaltyShape, str]] = ..., threshold: _Optional[float] = ..., table: _Optional[_Iterable[float]] = ..., distance: _Optional[_Union[DecisionDistance, str]] = ..., published_plan: _Optional[bool] = ...) -> None: ...
 
 class Constraint(_message.Message):
     __slots__ = ("name", "hamming", "extra", "fix", "linear", "forbid", "forbid_values", "force_value", "allow_values", "decision_change")
@@ -467,7 +471,7 @@ class Constraint(_message.Message):
     def __init__(self, name: _Optional[str] = ..., hamming: _Optional[_Union[HammingPenalty, _Mapping]] = ..., extra: _Optional[_Union[ExtraTerms, _Mapping]] = ..., fix: _Optional[_Union[FixVariables, _Mapping]] = ..., linear: _Optional[_Union[LinearConstraint, _Mapping]] = ..., forbid: _Optional[_Union[ForbidAssignment, _Mapping]] = ..., forbid_values: _Optional[_Union[ForbidValues, _Mapping]] = ..., force_value: _Optional[_Union[ForceValue, _Mapping]] = ..., allow_values: _Optional[_Union[AllowValues, _Mapping]] = ..., decision_change: _Optional[_Union[DecisionChangePenalty, _Mapping]] = ...) -> None: ...
 
 class RepairOptions(_message.Message):
-    __slots__ = ("method", "time_limit", "max_flips", "flip_price", "seed", "workers", "audit_limit", "pareto")
+    __slots__ = ("method", "time_limit", "max_flips", "flip_price", "seed", "workers", "audit_limit", "pareto", "alternatives", "alternative_distance", "alternatives_by_decisions")
     METHOD_FIELD_NUMBER: _ClassVar[int]
     TIME_LIMIT_FIELD_NUMBER: _ClassVar[int]
     MAX_FLIPS_FIELD_NUMBER: _ClassVar[int]
@@ -476,6 +480,9 @@ class RepairOptions(_message.Message):
     WORKERS_FIELD_NUMBER: _ClassVar[int]
     AUDIT_LIMIT_FIELD_NUMBER: _ClassVar[int]
     PARETO_FIELD_NUMBER: _ClassVar[int]
+    ALTERNATIVES_FIELD_NUMBER: _ClassVar[int]
+    ALTERNATIVE_DISTANCE_FIELD_NUMBER: _ClassVar[int]
+    ALTERNATIVES_BY_DECISIONS_FIELD_NUMBER: _ClassVar[int]
     method: Method
     time_limit: float
     max_flips: int
@@ -484,7 +491,10 @@ class RepairOptions(_message.Message):
     workers: int
     audit_limit: int
     pareto: bool
-    def __init__(self, method: _Optional[_Union[Method, str]] = ..., time_limit: _Optional[float] = ..., max_flips: _Optional[int] = ..., flip_price: _Optional[float] = ..., seed: _Optional[int] = ..., workers: _Optional[int] = ..., audit_limit: _Optional[int] = ..., pareto: _Optional[bool] = ...) -> None: ...
+    alternatives: int
+    alternative_distance: int
+    alternatives_by_decisions: bool
+    def __init__(self, method: _Optional[_Union[Method, str]] = ..., time_limit: _Optional[float] = ..., max_flips: _Optional[int] = ..., flip_price: _Optional[float] = ..., seed: _Optional[int] = ..., workers: _Optional[int] = ..., audit_limit: _Optional[int] = ..., pareto: _Optional[bool] = ..., alternatives: _Optional[int] = ..., alternative_distance: _Optional[int] = ..., alternatives_by_decisions: _Optional[bool] = ...) -> None: ...
 
 class InlineLibrary(_message.Message):
     __slots__ = ("model", "candidates")
@@ -495,20 +505,26 @@ class InlineLibrary(_message.Message):
     def __init__(self, model: _Optional[_Union[ProblemModel, _Mapping]] = ..., candidates: _Optional[_Union[CandidateBatch, _Mapping]] = ...) -> None: ...
 
 class RepairRequest(_message.Message):
-    __slots__ = ("problem", "inline", "candidate_ids", "all_revisions", "constraints", "options")
+    __slots__ = ("problem", "inline", "candidate_ids", "all_revisions", "constraints", "options", "use_events", "skip_record", "from_published_plan")
     PROBLEM_FIELD_NUMBER: _ClassVar[int]
     INLINE_FIELD_NUMBER: _ClassVar[int]
     CANDIDATE_IDS_FIELD_NUMBER: _ClassVar[int]
     ALL_REVISIONS_FIELD_NUMBER: _ClassVar[int]
     CONSTRAINTS_FIELD_NUMBER: _ClassVar[int]
     OPTIONS_FIELD_NUMBER: _ClassVar[int]
+    USE_EVENTS_FIELD_NUMBER: _ClassVar[int]
+    SKIP_RECORD_FIELD_NUMBER: _ClassVar[int]
+    FROM_PUBLISHED_PLAN_FIELD_NUMBER: _ClassVar[int]
     problem: str
     inline: InlineLibrary
     candidate_ids: _containers.RepeatedScalarFieldContainer[str]
     all_revisions: bool
     constraints: _containers.RepeatedCompositeFieldContainer[Constraint]
     options: RepairOptions
-    def __init__(self, problem: _Optional[str] = ..., inline: _Optional[_Union[InlineLibrary, _Mapping]] = ..., candidate_ids: _Optional[_Iterable[str]] = ..., all_revisions: _Optional[bool] = ..., constraints: _Optional[_Iterable[_Union[Constraint, _Mapping]]] = ..., options: _Optional[_Union[RepairOptions, _Mapping]] = ...) -> None: ...
+    use_events: bool
+    skip_record: bool
+    from_published_plan: bool
+    def __init__(self, problem: _Optional[str] = ..., inline: _Optional[_Union[InlineLibrary, _Mapping]] = ..., candidate_ids: _Optional[_Iterable[str]] = ..., all_revisions: _Optional[bool] = ..., constraints: _Optional[_Iterable[_Union[Constraint, _Mapping]]] = ..., options: _Optional[_Union[RepairOptions, _Mapping]] = ..., use_events: _Optional[bool] = ..., skip_record: _Optional[bool] = ..., from_published_plan: _Optional[bool] = ...) -> None: ...
 
 class NamedValue(_message.Message):
     __slots__ = ("name", "value")
@@ -611,7 +627,7 @@ class ParetoPoint(_message.Message):
     def __init__(self, cost: _Optional[float] = ..., flips: _Optional[int] = ..., candidate_id: _Optional[str] = ..., method: _Optional[str] = ...) -> None: ...
 
 class RepairReply(_message.Message):
-    __slots__ = ("status", "message", "method", "seed", "seconds", "time_limit", "best", "audit", "audit_total", "pareto", "scaling_error", "cpsat_status", "revision")
+    __slots__ = ("status", "message", "method", "seed", "seconds", "time_limit", "best", "audit", "audit_total", "pareto", "scaling_error", "cpsat_status", "revision", "record_id", "conflict", "conflict_minimal", "alternatives", "event_ids")
     STATUS_FIELD_NUMBER: _ClassVar[int]
     MESSAGE_FIELD_NUMBER: _ClassVar[int]
     METHOD_FIELD_NUMBER: _ClassVar[int]
@@ -625,6 +641,11 @@ class RepairReply(_message.Message):
     SCALING_ERROR_FIELD_NUMBER: _ClassVar[int]
     CPSAT_STATUS_FIELD_NUMBER: _ClassVar[int]
     REVISION_FIELD_NUMBER: _ClassVar[int]
+    RECORD_ID_FIELD_NUMBER: _ClassVar[int]
+    CONFLICT_FIELD_NUMBER: _ClassVar[int]
+    CONFLICT_MINIMAL_FIELD_NUMBER: _ClassVar[int]
+    ALTERNATIVES_FIELD_NUMBER: _ClassVar[int]
+    EVENT_IDS_FIELD_NUMBER: _ClassVar[int]
     status: str
     message: str
     method: str
@@ -638,7 +659,40 @@ class RepairReply(_message.Message):
     scaling_error: float
     cpsat_status: str
     revision: int
-    def __init__(self, status: _Optional[str] = ..., message: _Optional[str] = ..., method: _Optional[str] = ..., seed: _Optional[int] = ..., seconds: _Optional[float] = ..., time_limit: _Optional[float] = ..., best: _Optional[_Union[Solution, _Mapping]] = ..., audit: _Optional[_Iterable[_Union[AuditRow, _Mapping]]] = ..., audit_total: _Optional[int] = ..., pareto: _Optional[_Iterable[_Union[ParetoPoint, _Mapping]]] = ..., scaling_error: _Optional[float] = ..., cpsat_status: _Optional[str] = ..., revision: _Optional[int] = ...) -> None: ...
+    record_id: int
+    conflict: _containers.RepeatedCompositeFieldContainer[ConflictMember]
+    conflict_minimal: bool
+    alternatives: _containers.RepeatedCompositeFieldContainer[Alternative]
+    event_ids: _containers.RepeatedScalarFieldContainer[int]
+    def __init__(self, status: _Optional[str] = ..., message: _Optional[str] = ..., method: _Optional[str] = ..., seed: _Optional[int] = ..., seconds: _Optional[float] = ..., time_limit: _Optional[float] = ..., best: _Optional[_Union[Solution, _Mapping]] = ..., audit: _Optional[_Iterable[_Union[AuditRow, _Mapping]]] = ..., audit_total: _Optional[int] = ..., pareto: _Optional[_Iterable[_Union[ParetoPoint, _Mapping]]] = ..., scaling_error: _Optional[float] = ..., cpsat_status: _Optional[str] = ..., revision: _Optional[int] = ..., record_id: _Optional[int] = ..., conflict: _Optional[_Iterable[_Union[ConflictMember, _Mapping]]] = ..., conflict_minimal: _Optional[bool] = ..., alternatives: _Optional[_Iterable[_Union[Alternative, _Mapping]]] = ..., event_ids: _Optional[_Iterable[int]] = ...) -> None: ...
+
+class ConflictMember(_message.Message):
+    __slots__ = ("index", "name", "event_id")
+    INDEX_FIELD_NUMBER: _ClassVar[int]
+    NAME_FIELD_NUMBER: _ClassVar[int]
+    EVENT_ID_FIELD_NUMBER: _ClassVar[int]
+    index: int
+    name: str
+    event_id: int
+    def __init__(self, index: _Optional[int] = ..., name: _Optional[str] = ..., event_id: _Optional[int] = ...) -> None: ...
+
+class Alternative(_message.Message):
+    __slots__ = ("values", "cost", "objective", "flips", "source_candidate_id", "decisions_changed", "distance_to_previous")
+    VALUES_FIELD_NUMBER: _ClassVar[int]
+    COST_FIELD_NUMBER: _ClassVar[int]
+    OBJECTIVE_FIELD_NUMBER: _ClassVar[int]
+    FLIPS_FIELD_NUMBER: _ClassVar[int]
+    SOURCE_CANDIDATE_ID_FIELD_NUMBER: _ClassVar[int]
+    DECISIONS_CHANGED_FIELD_NUMBER: _ClassVar[int]
+    DISTANCE_TO_PREVIOUS_FIELD_NUMBER: _ClassVar[int]
+    values: PackedAssignments
+    cost: float
+    objective: float
+    flips: int
+    source_candidate_id: str
+    decisions_changed: int
+    distance_to_previous: int
+    def __init__(self, values: _Optional[_Union[PackedAssignments, _Mapping]] = ..., cost: _Optional[float] = ..., objective: _Optional[float] = ..., flips: _Optional[int] = ..., source_candidate_id: _Optional[str] = ..., decisions_changed: _Optional[int] = ..., distance_to_previous: _Optional[int] = ...) -> None: ...
 
 class RepairProgress(_message.Message):
     __slots__ = ("done", "total", "best_cost", "phase")

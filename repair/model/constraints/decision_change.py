@@ -103,7 +103,7 @@ def lower(problem: Problem, c: DecisionChangePenalty, name: str, field: str) -> 
     if d_max > MAX_TABLE:
         raise InputError(field + ".reference", f"distance can reach {d_max} (limit {MAX_TABLE})")
     table = shape_table(c.shape, c.weight, d_max, threshold=c.threshold, table=c.table,
-                        field=field + ".shape")
+                        field=field)
     p = count_pieces(name, CountSpec(name, table, const, terms))
     p.reference = (np.concatenate(plan_idx), np.concatenate(plan_bits).astype(np.int8))
     return p

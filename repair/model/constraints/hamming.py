@@ -83,7 +83,7 @@ def lower(problem: Problem, c: HammingPenalty, name: str, field: str) -> Pieces:
         if not distinct(idx, problem.n):
             raise InputError(field + ".variables", "lists a variable twice")
     table = shape_table(c.shape, c.weight, int(idx.size), threshold=c.threshold, table=c.table,
-                        field=field + ".shape")
+                        field=field)
     slope = linear_slope(table)
     if slope is not None:  # as count_pieces merges it: [x_i != r_i] = r_i + (1 - 2 r_i) x_i
         r = ref.astype(np.float64)

@@ -25,12 +25,15 @@ def check_penalty(weight: Any, shape: Any, threshold: Any) -> None:
 
 
 def shape_table(shape: str, weight: float, d_max: int, *, threshold: float = 0.0,
-                table: Sequence[float] | None = None, field: str = "shape") -> np.ndarray:
+                table: Sequence[float] | None = None, field: str = "") -> np.ndarray:
     """Penalty value for every distance 0..d_max: float64 (d_max + 1,).
+
+    ``field`` is the constraint's field: errors name its ``.shape`` or ``.table``.
 
     linear: w*d; quadratic: w*d^2; threshold: w*max(0, d - threshold);
     table: w*table[d], the last entry repeated past the end of the table.
     """
+    prefix = field + "." if field else ""
     d = np.arange(d_max + 1, dtype=np.float64)
     if shape == "linear":
         f = d
@@ -40,12 +43,12 @@ def shape_table(shape: str, weight: float, d_max: int, *, threshold: float = 0.0
         f = np.maximum(0.0, d - float(threshold))
     elif shape == "table":
         if table is None or len(table) == 0:
-            raise InputError(field + ".table", "a table shape needs a non-empty list of values")
+            raise InputError(prefix + "table", "a table shape needs a non-empty list of values")
         t = np.asarray([float(v) for v in table], dtype=np.float64)
         if not np.all(np.isfinite(t)):
-            raise InputError(field + ".table", "values must be finite numbers")
+            raise InputError(prefix + "table", "values must be finite numbers")
         idx = np.minimum(np.arange(d_max + 1), t.size - 1)
         f = t[idx]
     else:
-        raise InputError(field, f"must be one of {SHAPES}, got {shape!r}")
+        raise InputError(prefix + "shape", f"must be one of {SHAPES}, got {shape!r}")
     return float(weight) * f

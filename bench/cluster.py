@@ -1,0 +1,113 @@
+"""Stress tests on a Dask cluster against the local pool, and what each task costs.
+
+Model: the seeded random sparse QUBO of 1,000 variables (``random_sparse``), a library of
+1,000 distinct local minima (``descend_qubo`` from seeded random starts), 200 scenarios of
+the family "10 random variables fixed + a linear Hamming penalty (weight 1) to a uniform
+random reference", greedy repair. Runs:
+
+* local: ``stress_test`` in this process, one scenario after another (what a repair worker
+  of ``flipfix serve`` does without ``--dask``), repair with 1 thread and with 2 threads;
+* dask: the same call with a :class:`flipfix.service.cluster.DaskRunner` on ``local:2``
+  (a scheduler and 2 single-threaded worker processes on loopback; start-up not counted).
+
+Also measured: the bytes broadcast once per worker (problem + library, pickled), the bytes
+of one task (its scenario, pickled), and the scheduler's overhead per task (200 tasks that
+do nothing, one per task, through the same runner, wall / 200). The runner sends about
+four tasks per worker thread (a chunk of scenarios each). Checks: the Dask answers equal the
+1-thread local answers exactly (same seeds); 2 Dask workers beat the 1-thread local run.
+Quick mode: 40 scenarios x 200 candidates.
+"""
+
+from __future__ import annotations
+
+import pickle
+import time
+
+import numpy as np
+
+from bench.common import random_sparse, table
+
+__all__ = ["run", "render"]
+
+COLUMNS = ["run", "scenarios", "candidates", "n", "seconds", "per scenario ms", "speed-up",
+           "same answers"]
+
+
+def _nothing(problem, candidates, item, *, time_limit, cancel, **options):
+    return None
+
+
+def run(*, quick: bool = False, seed: int = 0, log=print) -> dict:
+    import cloudpickle
+
+    from flipfix.repair import CandidateSet
+    from flipfix.repair.audit.stress import ScenarioFamily, draw_scenarios, stress_test
+    from flipfix.repair.solvers.greedy import descend_qubo
+    from flipfix.service.cluster import DaskRunner, connect
+
+    n, K, S = (1000, 200, 40) if quick else (1000, 1000, 200)
+    p = random_sparse(n, seed=seed)
+    rng = np.random.default_rng(seed)
+    X, _ = descend_qubo(p.linear, p.indptr, p.indices, p.data,
+                        rng.integers(0, 2, size=(K, n), dtype=np.int8))
+    cands = CandidateSet.from_array(p, X, ids=[f"c{k}" for k in range(K)])
+    family = ScenarioFamily(fix_k=10, hamming_weight=1.0)
+    common = dict(scenarios=S, seed=seed, method="greedy", time_limit=3600.0)
+    rows, reports = [], {}
+    for threads in (1, 2):
+        log(f"local, {threads} thread(s): {S} scenarios x {K} candidates")
+        t = time.perf_counter()
+        reports[threads] = stress_test(p, cands, family, repair_options={"workers": threads},
+                                       **common)
+        rows.append({"run": f"local, {threads} thread(s)", "seconds": time.perf_counter() - t})
+    log("dask local:2 (start-up not counted)")
+    cluster = connect("local:2")
+    try:
+        runner = DaskRunner(cluster.client)
+        stress_test(p, cands, family, **{**common, "scenarios": 2},
+                    repair_options={"workers": 1}, runner=runner)  # workers load the kernels
+        t = time.perf_counter()
+        dask_rep = stress_test(p, cands, family, repair_options={"workers": 1}, runner=runner,
+                               **common)
+        rows.append({"run": "dask local:2 (2 processes x 1 thread)",
+                     "seconds": time.perf_counter() - t})
+        t = time.perf_counter()
+        gen = DaskRunner(cluster.client, chunk=1).map(_nothing, (p, cands), list(range(S)),
+                                                      seconds_each=60.0,
+                         deadline=float("inf"), cancel=None, options={})
+        for _ in range(S):
+            next(gen)
+        gen.close()
+        overhead = (time.perf_counter() - t) / S
+    finally:
+        cluster.close()
+    same = dask_rep.cost == reports[1].cost and dask_rep.flips == reports[1].flips
+    base = rows[0]["seconds"]
+    for r in rows:
+        r.update({"scenarios": S, "candidates": K, "n": n,
+                  "per scenario ms": 1000.0 * r["seconds"] / S,
+                  "speed-up": base / r["seconds"]})
+    rows[2]["same answers"] = "PASS" if same else "MISS"
+    scen = draw_scenarios(p, cands, family, count=1, seed=seed)[0]
+    return {
+        "rows": rows,
+        "shared_bytes": len(cloudpickle.dumps((p, cands), protocol=pickle.HIGHEST_PROTOCOL)),
+        "task_bytes": len(cloudpickle.dumps(scen, protocol=pickle.HIGHEST_PROTOCOL)),
+        "overhead_ms": 1000.0 * overhead,
+        "faster": rows[2]["seconds"] < rows[0]["seconds"],
+        "same": same,
+    }
+
+
+def render(section: dict) -> str:
+    t = table(section["rows"], COLUMNS,
+              title="Stress test: local pool vs Dask (2 worker processes)")
+    return t + (
+        f"\n\n- broadcast once per worker (problem + library, pickled): "
+        f"{section['shared_bytes'] / 2**20:.2f} MiB; per task (one scenario, pickled): "
+        f"{section['task_bytes']} bytes; scheduler overhead per task (empty tasks through "
+        f"the same runner): {section['overhead_ms']:.2f} ms"
+        f"\n- Dask answers equal the local 1-thread answers: "
+        f"{'PASS' if section['same'] else 'MISS'}"
+        f"\n- 2 Dask workers faster than the local 1-thread run: "
+        f"{'PASS' if section['faster'] else 'MISS'}")
