@@ -46,10 +46,13 @@ CONFIG = {
               "events": ["fix+ham", "fix+ham+card"]},
     "full": {"sizes": [(n, K) for n in (1000, 10000, 20000, 100000) for K in (100, 1000, 10000)],
              "budgets": [0.1, 1.0, 5.0], "events": ["fix+ham", "fix+ham+card"]},
+    # the largest libraries only (about 5 minutes; run alone: python -m bench.budget --large)
+    "large": {"sizes": [(20000, 10000), (100000, 1000), (100000, 10000)],
+              "budgets": [0.1, 1.0], "events": ["fix+ham", "fix+ham+card"]},
 }
 LIB_SEEDS = 8
 COLUMNS = ["n", "K", "event", "T s", "seconds", "limit s", "target", "lower s", "score s",
-           "search s", "result s", "status", "cost", "flips", "plan", "wall s"]
+           "search s", "result s", "scored", "status", "cost", "flips", "plan", "wall s"]
 
 
 def target(time_limit: float) -> float:
@@ -102,8 +105,9 @@ def late_event(problem: Problem, plan: np.ndarray, kind: str, *, seed: int = 0) 
     return out
 
 
-def run(*, quick: bool = False, seed: int = 0, workers: int = 2, log=print) -> dict:
-    cfg = CONFIG["quick" if quick else "full"]
+def run(*, quick: bool = False, seed: int = 0, workers: int = 2, log=print,
+        config: str | None = None) -> dict:
+    cfg = CONFIG[config or ("quick" if quick else "full")]
     rows = []
     for n, K in cfg["sizes"]:
         t = time.perf_counter()
@@ -124,6 +128,7 @@ def run(*, quick: bool = False, seed: int = 0, workers: int = 2, log=print) -> d
                        **{f"{short} s": stage.get(name, math.nan) for short, name in
                           (("lower", "lowering"), ("score", "scoring"), ("search", "search"),
                            ("result", "result"))},
+                       "scored": K - res.stats.get("unscored", 0),
                        "status": res.status,
                        "cost": res.best.cost if res.best.feasible else math.inf,
                        "flips": res.best.flips,
@@ -144,3 +149,31 @@ def render(section: dict) -> str:
     head = (f"Replies inside the budget (workers={section['workers']}): seconds <= 1.05 x T + "
             f"0.05 s in {s['pass']}/{s['rows']} rows")
     return table(section["rows"], COLUMNS, title=head)
+
+
+def main(argv=None) -> int:
+    """``python -m bench.budget [--large]``: this section alone (``--large``: the largest
+    libraries), its table printed and written to bench/results/budget[_large].json."""
+    import argparse
+
+    from bench.common import machine, write_results
+
+    ap = argparse.ArgumentParser(prog="python -m bench.budget", description=__doc__.splitlines()[0])
+    ap.add_argument("--large", action="store_true", help="20,000 x 10,000 and 100,000 x 1,000 / 10,000")
+    ap.add_argument("--seed", type=int, default=0)
+    args = ap.parse_args(argv)
+    cfg = "large" if args.large else "full"
+    t = time.perf_counter()
+    section = run(seed=args.seed, config=cfg)
+    section["seconds"] = time.perf_counter() - t
+    text = render(section)
+    print("\n" + text)
+    write_results({"command": "python -m bench.budget" + (" --large" if args.large else ""),
+                   "machine": machine(), "seed": args.seed, "sections": {"budget": section},
+                   "started": time.strftime("%Y-%m-%d %H:%M:%S"), "markdown": text},
+                  f"budget{'_large' if args.large else ''}.json")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

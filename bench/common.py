@@ -10,14 +10,13 @@ import json
 import os
 import platform
 import subprocess
-import sys
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
-from flipfix.repair import CandidateSet, Problem
+from flipfix.repair import Problem
 from flipfix.repair.lowering.compiled import compile_constraints
 from flipfix.repair.model.constraints import FixVariables, HammingPenalty, LinearConstraint
 from flipfix.repair.solvers.greedy import descend_qubo, greedy_repair

@@ -16,8 +16,6 @@ from __future__ import annotations
 
 import math
 
-import numpy as np
-
 from flipfix.repair import CandidateSet, repair
 from flipfix.repair.solvers.portfolio import Mix
 

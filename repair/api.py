@@ -16,8 +16,8 @@ from flipfix.repair.lowering.compiled import Compiled, compile_constraints
 from flipfix.repair.errors import InputError
 from flipfix.repair.model.problem import Problem
 from flipfix.repair.kernels.scores import Scorer, distances
-from flipfix.repair.solvers.portfolio import DEFAULT_MIX, Attempt, Mix, attempt_scores, run_plan
-from flipfix.repair.result import METHODS, AuditRow, RepairResult, Solution
+from flipfix.repair.solvers.portfolio import DEFAULT_MIX, Mix, attempt_scores, run_plan
+from flipfix.repair.result import METHODS, UNSCORED, Audit, RepairResult, Solution
 from flipfix.repair.solvers.alternatives import check_alternatives, pick_alternatives
 
 __all__ = ["repair", "warm_up", "check_options", "result_seconds", "search_deadline",
@@ -62,17 +62,22 @@ def _changes(problem: Problem, before: np.ndarray, after: np.ndarray) -> list:
 
 
 #: seconds building a result takes (:func:`result_seconds`): a fixed part (the best answer's
-#: breakdown, lists and dicts), per candidate (its audit row), per candidate and variable
-#: (the distances to the best answer), per variable (the answer's assignment and breakdown)
-#: and per attempt on the cost-flips front (pareto=True). Measured with bench/budget.py on
-#: the 2-vCPU development machine under load, plus half: 0.002-0.006 s at 1,000 variables
-#: x 100 candidates, 0.05 s at 1,000 x 10,000, 0.015-0.02 s at 20,000 x 1,000, 0.1-0.12 s
-#: at 20,000 x 10,000, 0.06-0.08 s at 100,000 x 1,000.
+#: breakdown, lists and dicts), per candidate scored (its audit entries: numpy columns), per
+#: candidate scored and variable (the distances to the best answer), per variable (the
+#: answer's assignment and breakdown) and per attempt on the cost-flips front (pareto=True).
+#: Measured with the audit by column (bench/budget.py's models, method greedy, T = 1 s, three
+#: runs each on the 2-vCPU development machine shared with other work), plus half:
+#: 0.0003-0.0007 s at 1,000 variables x 100 candidates, 0.002-0.003 s at 1,000 x 10,000,
+#: 0.009-0.043 s at 20,000 x 1,000, 0.015-0.041 s at 20,000 x 10,000, 0.03-0.075 s at
+#: 100,000 x 1,000.
 RESULT_FIXED = 0.004
-RESULT_PER_CANDIDATE = 7.5e-6
-RESULT_PER_CELL = 4e-10
-RESULT_PER_VARIABLE = 6e-7
+RESULT_PER_CANDIDATE = 1.5e-6
+RESULT_PER_CELL = 1.5e-10
+RESULT_PER_VARIABLE = 4e-7
 RESULT_PER_ATTEMPT = 1e-6
+#: most of the search's time (from the end of lowering to the search deadline) that scoring
+#: the library may take; the candidates it does not reach are reported unscored
+SCORING_SHARE = 0.5
 
 
 def result_seconds(candidates: int, variables: int, *, attempts: int = 0,
@@ -94,31 +99,12 @@ def search_deadline(t0: float, time_limit: float, reserve: float) -> float:
     return t0 + max(0.0, time_limit - reserve)
 
 
-def plan_reference(problem: Problem, constraints: Sequence[Any]):
+def plan_reference(compiled: Compiled):
     """The published plan the late constraints measure distance from: the reference of
     the first Hamming-type penalty (``HammingPenalty``: every label in its reference;
     ``DecisionChangePenalty``: the bits of every decision in its reference, at that value's
-    code), as (positions int64, bits int8); None when there is none. The constraints are
-    already validated (lowered) here."""
-    from flipfix.repair.model.constraints import DecisionChangePenalty, HammingPenalty
-
-    for c in constraints:
-        if isinstance(c, HammingPenalty):
-            ref = c.reference
-            idx = np.fromiter(map(problem.index.__getitem__, ref.keys()), np.int64, len(ref))
-            values = np.fromiter(ref.values(), np.float64, len(ref))
-            return idx, problem.from_caller(values, "reference")
-        if isinstance(c, DecisionChangePenalty):
-            from flipfix.repair.model.encodings import (decision_bits, encode, find_decision,
-                                                        value_index)
-
-            idx, bits = [], []
-            for name, value in c.reference.items():
-                d = find_decision(problem, name, "reference")
-                idx.append(decision_bits(problem, d))
-                bits.append(encode(d, value_index(d, value, "reference")))
-            return np.concatenate(idx), np.concatenate(bits).astype(np.int8)
-    return None
+    code), as (positions int64, bits int8), kept by its lowering; None when there is none."""
+    return next((p.reference for p in compiled.pieces if p.reference is not None), None)
 
 
 _GC_LOCK = threading.Lock()
@@ -205,11 +191,23 @@ def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, 
     if compiled is None:
         compiled = compile_constraints(problem, list(constraints))
     X0 = np.ascontiguousarray(candidates.X, dtype=np.int8)
-    K = X0.shape[0]
     price = float(flip_price)
-    plan_ref = plan_reference(problem, constraints)
+    plan_ref = plan_reference(compiled)
     t_lowered = time.perf_counter()
-    scorer = Scorer(compiled, X0, workers=workers)
+    # scoring the library, with what building the result will take for each candidate
+    # scored, may take at most SCORING_SHARE of the time left after lowering and the
+    # result's fixed part: past it, the rest of the library is reported unscored (and not
+    # searched from)
+    decisions = len(problem.decisions)
+    fixed_part = result_seconds(0, problem.n, decisions=decisions)
+    per_candidate = result_seconds(1, problem.n, attempts=2 if pareto else 0,
+                                   decisions=decisions) - fixed_part
+    # kept for the alternatives' own CP-SAT searches
+    held = ALTERNATIVES_SHARE * float(time_limit) if alternatives else 0.0
+    share = SCORING_SHARE * max(0.0, search_deadline(t0, float(time_limit), held + fixed_part)
+                                - t_lowered)
+    scorer = Scorer(compiled, X0, workers=workers, deadline=t_lowered + share,
+                    later_per_row=per_candidate)
     # where the time went (stats): lowering, scoring the library, search, the result
     stages = {"lowering": t_lowered - t0, "scoring": time.perf_counter() - t_lowered}
     common = dict(max_flips=max_flips, pareto=pareto, plan_ref=plan_ref, stages=stages)
@@ -228,10 +226,7 @@ def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, 
         return _name_conflict(res, compiled, time_limit=time_limit, seed=seed, cancel=cancel,
                               t0=t0)
     # the front's attempts are not known yet: those of greedy plus a round of kicks
-    reserve = result_seconds(K, problem.n, attempts=2 * K if pareto else 0,
-                             decisions=len(problem.decisions))
-    if alternatives:  # kept for the alternatives' own CP-SAT searches
-        reserve += ALTERNATIVES_SHARE * float(time_limit)
+    reserve = held + fixed_part + per_candidate * scorer.scored
     plan = run_plan(compiled, X0, method=method,
                     deadline=search_deadline(t0, float(time_limit), reserve),
                     max_flips=max_flips, flip_price=price, seed=seed, workers=workers,
@@ -259,12 +254,14 @@ ALTERNATIVES_SHARE = 0.2
 
 def _alternatives(problem, candidates, compiled, attempts, res, *, k, distance, by_decisions,
                   flip_price, max_flips, seed, workers, cancel, time_limit) -> list:
-    """The best answer and every attempt as the pool of :func:`pick_alternatives`; the
-    alternatives get their candidate ids and caller-form assignments."""
+    """The best answer, every attempt and the scored candidates no attempt started from (as
+    they are) as the pool of :func:`pick_alternatives`; the alternatives get their candidate
+    ids and caller-form assignments."""
     X0 = np.ascontiguousarray(candidates.X, dtype=np.int8)
     best_k = candidates.ids.index(res.best.repaired_from) if res.best.repaired_from else -1
-    pool = np.vstack([res.best.x] + [a.x for a in attempts])
-    origins = np.asarray([best_k] + [a.k for a in attempts], dtype=np.int64)
+    idle = np.flatnonzero(res.audit.method == "unrepaired")  # scored, as they are
+    pool = np.vstack([res.best.x] + [a.x for a in attempts] + [X0[idle]])
+    origins = np.concatenate([[best_k], [a.k for a in attempts], idle]).astype(np.int64)
     out = pick_alternatives(compiled, X0, pool, k=k, distance=distance,
                             by_decisions=by_decisions, flip_price=flip_price,
                             max_flips=max_flips, origins=origins,
@@ -302,15 +299,32 @@ def _build(problem, candidates, compiled, scorer, attempts, price, method, seed,
            max_flips=None, status=None, message="", plan=None, plan_ref=None,
            stages=None) -> RepairResult:
     """The result from every attempt's scores (see :func:`flipfix.repair.solvers.portfolio.attempt_scores`):
-    the best, one audit row per candidate, the front; only the best is evaluated by part.
-    ``stages``: seconds of the stages before, completed here and kept in ``stats["seconds"]``."""
+    the best, the audit (by column, :class:`flipfix.repair.result.Audit`), the front; only the
+    best is evaluated by part. Scored candidates no attempt started from stand as they are
+    ("unrepaired"); those the scorer did not reach are reported "unscored" (NaN figures) and
+    are not compared with the answer. ``stages``: seconds of the stages before, completed
+    here and kept in ``stats["seconds"]``."""
     t_build = time.perf_counter()
     X0 = scorer.X0
     K = X0.shape[0]
-    if not attempts:  # nothing ran: report the candidates as they are
-        attempts = [Attempt(k, X0[k], "unrepaired", 0.0, float(scorer.cost[k]),
-                            float(scorer.violation[k]), 0) for k in range(K)]
+    ns = scorer.scored
+    A = len(attempts)
     ks, cost, viol, flips = attempt_scores(scorer, attempts)
+    methods = [a.method for a in attempts]
+    # the scored candidates no attempt started from: as they are
+    tried = np.zeros(K, dtype=bool)
+    tried[ks] = True
+    idle = np.flatnonzero(~tried[:ns])
+    if idle.size:
+        ks = np.concatenate([ks, idle])
+        cost = np.concatenate([cost, scorer.cost[idle]])
+        viol = np.concatenate([viol, scorer.violation[idle]])
+        flips = np.concatenate([flips, np.zeros(idle.size, dtype=np.int64)])
+        methods += ["unrepaired"] * idle.size
+
+    def x_of(i: int) -> np.ndarray:
+        return attempts[i].x if i < A else X0[ks[i]]
+
     if max_flips is not None:  # the cap is hard: flips past it count as violation
         viol = viol + np.maximum(0, flips - max_flips)
     feas = viol == 0.0
@@ -318,19 +332,18 @@ def _build(problem, candidates, compiled, scorer, attempts, price, method, seed,
     # feasible first, then objective, then violation, then flips
     order = np.lexsort((flips, obj, viol, ~feas))
     b = int(order[0])
-    xb = attempts[b].x
+    xb = x_of(b)
     origin = int(ks[b])
-    # the answer is reported against the library candidate nearest to it (the one it was
-    # repaired from on ties): the smallest change from any plan the user keeps. Audit
+    # the answer is reported against the scored library candidate nearest to it (the one it
+    # was repaired from on ties): the smallest change from any plan the user keeps. Audit
     # rows stay per origin: each row is what that candidate's own repair reached.
-    dist = distances(X0, xb)
+    dist = distances(X0[:ns], xb)
     bk = origin if dist[origin] == dist.min() else int(np.argmin(dist))
     # best per candidate (feasible first, then objective, then flips): its first in order
     first = np.full(K, -1, dtype=np.int64)
-    ks_sorted = ks[order]
-    seen, at = np.unique(ks_sorted, return_index=True)
+    seen, at = np.unique(ks[order], return_index=True)
     first[seen] = order[at]
-    seconds = np.bincount(ks, weights=[a.seconds for a in attempts], minlength=K)
+    seconds = np.bincount(ks[:A], weights=[a.seconds for a in attempts], minlength=K)
     issues: dict = {}
     changed = np.zeros(K, dtype=np.int64)
     if problem.decisions:  # broken encodings are repair input; the audit names them
@@ -338,24 +351,22 @@ def _build(problem, candidates, compiled, scorer, attempts, price, method, seed,
 
         for i in check_candidates(problem, X0):
             issues.setdefault(i.candidate, []).append((i.decision, i.how))
-        after = np.vstack([attempts[a].x if a >= 0 else X0[k] for k, a in enumerate(first)])
+        after = np.vstack([x_of(a) if a >= 0 else X0[k] for k, a in enumerate(first.tolist())])
         M0, M1 = decode_indices(problem, X0), decode_indices(problem, after)
         changed = ((M0 != M1) | (M0 < 0)).sum(axis=1)  # as integer_changes counts them
+    reached = first >= 0  # every scored candidate (attempted or idle); no unscored one
+    pick = np.where(reached, first, 0)
+    nan = np.full(K, np.nan)
+    method_col = np.array(methods, dtype=object)[pick] if methods else np.empty(K, object)
+    method_col[~reached] = UNSCORED
+    audit = Audit(candidates.ids, encoding_issues=issues,
+                  cost_before=scorer.cost, feasible_before=scorer.violation == 0.0,
+                  cost_after=np.where(reached, cost[pick], nan),
+                  objective_after=np.where(reached, obj[pick], nan),
+                  flips=np.where(reached, flips[pick], 0),
+                  feasible=reached & feas[pick], violation=np.where(reached, viol[pick], nan),
+                  method=method_col, seconds=seconds, decisions_changed=changed)
     ids = candidates.ids
-    c0, v0 = scorer.cost.tolist(), scorer.violation.tolist()
-    # per candidate, as Python numbers (a row each, no numpy scalars)
-    pick = np.where(first >= 0, first, 0)
-    c1, o1, f1, v1 = (cost[pick].tolist(), obj[pick].tolist(), flips[pick].tolist(),
-                      viol[pick].tolist())
-    secs, chg = seconds.tolist(), changed.tolist()
-    audit = []
-    for k, a in enumerate(first.tolist()):
-        if a < 0:  # never attempted (a cancelled plan): as it was
-            audit.append(AuditRow(ids[k], c0[k], v0[k] == 0.0, c0[k], c0[k], 0, v0[k] == 0.0,
-                                  v0[k], "unrepaired", 0.0, 0, issues.get(k, [])))
-            continue
-        audit.append(AuditRow(ids[k], c0[k], v0[k] == 0.0, c1[k], o1[k], f1[k], v1[k] == 0.0,
-                              v1[k], attempts[a].method, secs[k], chg[k], issues.get(k, [])))
     ev = compiled.evaluate(xb[None, :])
     # a decision's validity row is listed only when the answer breaks it
     violations = {name: float(v[0]) for name, v in ev.violations.items()
@@ -370,7 +381,7 @@ def _build(problem, candidates, compiled, scorer, attempts, price, method, seed,
         base_energy=float(ev.base[0]), repaired_from=ids[origin],
         penalties={name: float(v[0]) for name, v in ev.penalties.items()}, flips=int(dist[bk]),
         feasible=bool(feas[b]), violation=float(sum(violations.values())),
-        violations=violations, method=attempts[b].method, changes=changes,
+        violations=violations, method=methods[b], changes=changes,
         decisions_changed=len(changes),
         plan_distance=None if plan_ref is None else int((xb[plan_ref[0]] != plan_ref[1]).sum()))
     if status is None:
@@ -383,14 +394,22 @@ def _build(problem, candidates, compiled, scorer, attempts, price, method, seed,
             status = "no_feasible_found"
             message = ("no feasible assignment found within the budget; best is the "
                        "least-violating one")
+    if ns < K:
+        note = (f"{K - ns} of {K} candidates were not scored within the budget (audit method "
+                f"{UNSCORED!r}, NaN costs): the search started from the first {ns}")
+        message = f"{message}; {note}" if message else note
     points = []
     if pareto:
         from flipfix.repair.audit.pareto import pareto_front, run_points
 
-        A = np.vstack([a.x for a in attempts])
-        points = pareto_front(run_points(X0, ids, scorer.cost, scorer.violation == 0.0, A, ks,
-                                         cost, feas, [a.method for a in attempts]))
+        AX = (np.vstack([a.x for a in attempts]) if attempts
+              else np.empty((0, problem.n), dtype=np.int8))
+        points = pareto_front(run_points(X0[:ns], ids[:ns], scorer.cost[:ns],
+                                         scorer.violation[:ns] == 0.0, AX, ks[:A], cost[:A],
+                                         feas[:A], methods[:A]))
     stats = plan.stats if plan is not None else {}
+    if ns < K:
+        stats["unscored"] = K - ns
     if stages is not None:
         done = time.perf_counter()
         stats["seconds"] = {**stages, "search": t_build - t0 - sum(stages.values()),

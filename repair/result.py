@@ -7,13 +7,16 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["Solution", "AuditRow", "RepairResult", "ParetoPoint", "STATUSES", "METHODS"]
+__all__ = ["Solution", "AuditRow", "Audit", "RepairResult", "ParetoPoint", "STATUSES",
+           "METHODS", "UNSCORED"]
 
 #: optimal: proved optimal by CP-SAT over the whole search space (no radius);
 #: feasible: a feasible answer without a proof; infeasible: proved that no
 #: assignment meets the hard constraints; no_feasible_found: none found in the budget.
 STATUSES = ("optimal", "feasible", "infeasible", "no_feasible_found")
 METHODS = ("portfolio", "greedy", "cpsat")
+#: the audit method of a candidate the budget did not reach even to score it (its costs NaN)
+UNSCORED = "unscored"
 
 
 @dataclass
@@ -71,6 +74,103 @@ class AuditRow:
     encoding_issues: list = field(default_factory=list)
 
 
+#: Audit's columns in AuditRow's field order, and the dtype each is held in
+_COLUMNS = (("cost_before", np.float64), ("feasible_before", np.bool_),
+            ("cost_after", np.float64), ("objective_after", np.float64), ("flips", np.int64),
+            ("feasible", np.bool_), ("violation", np.float64), ("method", object),
+            ("seconds", np.float64), ("decisions_changed", np.int64))
+
+
+class Audit:
+    """Repair figures of every candidate, held by column (one numpy array per figure, no
+    Python object per candidate): a library of 10,000 candidates costs 10 arrays.
+
+    Columns, each of length K in library order: ``candidate_id`` (tuple of str),
+    ``cost_before``, ``cost_after``, ``objective_after``, ``violation``, ``seconds``
+    float64; ``feasible_before``, ``feasible`` bool; ``flips``, ``decisions_changed`` int64;
+    ``method`` object (str). A candidate the budget did not reach even to score has method
+    :data:`UNSCORED`, NaN costs, objective and violation, and is not feasible.
+    ``encoding_issues`` maps a candidate's position to its ``[(decision, how)]``.
+
+    Reads like a sequence of :class:`AuditRow` (``len``, iteration, ``audit[k]``; a slice
+    gives an Audit), built on demand.
+    """
+
+    __slots__ = ("candidate_id", "encoding_issues") + tuple(name for name, _ in _COLUMNS)
+
+    def __init__(self, candidate_id, *, encoding_issues=None, **columns):
+        self.candidate_id = tuple(candidate_id)
+        K = len(self.candidate_id)
+        for name, dtype in _COLUMNS:
+            col = np.asarray(columns.pop(name), dtype=dtype)
+            if col.shape != (K,):
+                raise ValueError(f"audit column {name} has shape {col.shape}, expected ({K},)")
+            setattr(self, name, col)
+        if columns:
+            raise TypeError(f"unknown audit columns {sorted(columns)}")
+        self.encoding_issues = dict(encoding_issues or {})
+
+    @classmethod
+    def from_rows(cls, rows) -> "Audit":
+        """The columns of a sequence of :class:`AuditRow`."""
+        rows = list(rows)
+        cols = {name: [getattr(r, name) for r in rows] for name, _ in _COLUMNS}
+        issues = {k: list(r.encoding_issues) for k, r in enumerate(rows) if r.encoding_issues}
+        return cls([r.candidate_id for r in rows], encoding_issues=issues, **cols)
+
+    def __len__(self) -> int:
+        return len(self.candidate_id)
+
+    def __getitem__(self, k):
+        if isinstance(k, slice):
+            pos = range(len(self))[k]
+            idx = np.arange(pos.start, pos.stop, pos.step, dtype=np.int64)
+            issues = {j: self.encoding_issues[i] for j, i in enumerate(pos)
+                      if i in self.encoding_issues}
+            return Audit([self.candidate_id[i] for i in pos], encoding_issues=issues,
+                         **{name: getattr(self, name)[idx] for name, _ in _COLUMNS})
+        k = range(len(self))[k]  # IndexError past the end; negative counts from it
+        return AuditRow(self.candidate_id[k],
+                        *(getattr(self, name)[k].item() if dtype is not object
+                          else getattr(self, name)[k] for name, dtype in _COLUMNS),
+                        encoding_issues=list(self.encoding_issues.get(k, [])))
+
+    def __iter__(self):
+        cols = [getattr(self, name).tolist() for name, _ in _COLUMNS]  # Python numbers at once
+        issues = self.encoding_issues
+        for k, values in enumerate(zip(self.candidate_id, *cols)):
+            yield AuditRow(*values, encoding_issues=list(issues.get(k, [])))
+
+    def __eq__(self, other) -> bool:
+        if isinstance(other, Audit):
+            other = list(other)
+        return list(self) == list(other)
+
+    def __repr__(self) -> str:
+        return f"Audit({len(self)} candidates)"
+
+    def unscored(self) -> int:
+        """How many candidates the budget did not reach to score."""
+        return int(np.count_nonzero(self.method == UNSCORED))
+
+    def to_dicts(self) -> list:
+        """The rows as JSON-ready dicts (NaN figures of unscored candidates as None)."""
+
+        def floats(col):
+            return [None if v != v else v for v in col.tolist()]
+
+        cols = (self.candidate_id, floats(self.cost_before), self.feasible_before.tolist(),
+                floats(self.cost_after), floats(self.objective_after), self.flips.tolist(),
+                self.feasible.tolist(), floats(self.violation), self.method.tolist(),
+                np.round(self.seconds, 6).tolist(), self.decisions_changed.tolist())
+        issues = self.encoding_issues
+        return [{"candidate_id": cid, "cost_before": c0, "feasible_before": f0, "cost": c1,
+                 "objective": o1, "flips": fl, "feasible": f1, "violation": v1, "method": m,
+                 "seconds": sec, "decisions_changed": dc,
+                 "encoding_issues": [{"decision": d, "how": h} for d, h in issues.get(k, [])]}
+                for k, (cid, c0, f0, c1, o1, fl, f1, v1, m, sec, dc) in enumerate(zip(*cols))]
+
+
 @dataclass(frozen=True)
 class ParetoPoint:
     """A non-dominated (cost, flips) pair and where it came from."""
@@ -90,8 +190,9 @@ class RepairResult:
     splits it by those stages ("lowering", "scoring", "search", "result").
 
     ``best`` is the cheapest feasible solution (ties: fewer flips), or, when
-    none is feasible, the least-violating assignment found. ``audit`` has one
-    row per candidate in library order. ``scaling_error`` is the largest
+    none is feasible, the least-violating assignment found. ``audit`` (an :class:`Audit`;
+    a list of :class:`AuditRow` given here is converted) has one row per candidate in
+    library order. ``scaling_error`` is the largest
     absolute error made when CP-SAT coefficients were scaled to integers
     (0.0 when no scaling was needed or CP-SAT did not run); "optimal" means
     optimal for the scaled model, so within that error per coefficient.
@@ -99,7 +200,7 @@ class RepairResult:
 
     status: str
     best: Solution
-    audit: list
+    audit: Audit
     seed: int
     method: str
     seconds: float
@@ -114,6 +215,10 @@ class RepairResult:
     #: feasible alternatives, cheapest first, when asked for
     #: (:class:`flipfix.repair.solvers.alternatives.Alternative`)
     alternatives: list = field(default_factory=list)
+
+    def __post_init__(self):
+        if not isinstance(self.audit, Audit):
+            self.audit = Audit.from_rows(self.audit)
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready form (the CLI prints this)."""
@@ -148,18 +253,7 @@ class RepairResult:
                 "changes": [{"decision": d, "old": o, "new": nw} for d, o, nw in b.changes],
                 "decisions_changed": int(b.decisions_changed),
             },
-            "audit": [
-                {
-                    "candidate_id": r.candidate_id, "cost_before": num(r.cost_before),
-                    "feasible_before": bool(r.feasible_before), "cost": num(r.cost_after),
-                    "objective": num(r.objective_after), "flips": int(r.flips),
-                    "feasible": bool(r.feasible), "violation": num(r.violation),
-                    "method": r.method, "seconds": round(r.seconds, 6),
-                    "decisions_changed": int(r.decisions_changed),
-                    "encoding_issues": [{"decision": d, "how": h} for d, h in r.encoding_issues],
-                }
-                for r in self.audit
-            ],
+            "audit": self.audit.to_dicts(),
             "pareto": [{"cost": num(p.cost), "flips": int(p.flips), "candidate_id": p.candidate_id,
                         "method": p.method} for p in self.pareto],
             "conflict": None if self.conflict is None else self.conflict.to_dict(),

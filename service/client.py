@@ -513,12 +513,12 @@ class FlipfixClient:
                 "seconds": r.seconds, "time_limit": r.time_limit, "revision": int(r.revision)}
 
     def curate(self, name: str, family: Any, m: int, *, keep: bool = False,
-               selection: str = "greedy", timeout: float | None = None, **options) -> dict:
+               selection: str = "forward", timeout: float | None = None, **options) -> dict:
         """Choose ``m`` candidates by the stress test; ``keep=True`` removes the others from the
         store. ``{"stress": StressReport, "curation": CurationResult | None, "kept": bool,
         "removed_ids": [...], "message": str, "revision": int}``."""
         if selection not in convert.SELECTION_ENUM:
-            raise InputError("selection", f"must be greedy or exhaustive, got {selection}")
+            raise InputError("selection", f"must be forward or exhaustive, got {selection}")
         req = pb.CurateRequest(stress=self.stress_request(name, family, **options), m=m,
                                selection=convert.SELECTION_ENUM[selection], keep=keep)
         _, fam_doc = self._family(family)

@@ -144,6 +144,31 @@ def test_portfolio_reaches_brute_force_optimum_and_audits_every_candidate(seed):
     assert res.best.penalties and res.best.base_energy == pytest.approx(bqm.energy(res.best.assignment))
 
 
+def test_the_audit_is_held_by_column_and_reads_as_rows():
+    from flipfix.repair.result import Audit, AuditRow
+
+    bqm, p, cs, cands = random_case(140, 12, "BINARY")
+    res = repair(p, cands, cs, method="greedy", time_limit=2.0)
+    audit = res.audit
+    assert isinstance(audit, Audit) and len(audit) == len(cands.ids)
+    assert audit.cost_before.dtype == np.float64 and audit.flips.dtype == np.int64
+    rows = list(audit)
+    assert all(isinstance(r, AuditRow) for r in rows)
+    for k, row in enumerate(rows):  # each row is its columns' entries
+        assert row.candidate_id == cands.ids[k] and row.flips == audit.flips[k]
+        assert row.cost_after == audit.cost_after[k] and row.feasible == audit.feasible[k]
+        assert row.cost_before == pytest.approx(independent_cost(
+            bqm, p, cs, dict(zip(p.labels, p.to_caller(cands.X[k])))))
+    assert list(audit[1:3]) == rows[1:3] and audit[-1] == rows[-1]
+    assert Audit.from_rows(rows) == audit and audit == rows
+    dicts = res.to_dict()["audit"]
+    assert [d["candidate_id"] for d in dicts] == list(cands.ids)
+    assert [(d["cost"], d["flips"], d["feasible"], d["method"]) for d in dicts] == [
+        (r.cost_after, r.flips, r.feasible, r.method) for r in rows]
+    with pytest.raises(IndexError):
+        audit[len(audit)]
+
+
 def test_glover_kochenberger_du_worked_example():
     # Tutorial example (values from memory): minimise
     # y = -5x1 - 3x2 - 8x3 - 6x4 + 4x1x2 + 8x1x3 + 2x2x3 + 10x3x4, optimum y = -11 at x = (1, 0, 0, 1).

@@ -44,13 +44,13 @@ def test_curation_against_exhaustive_subset_search(seed):
         assert (gr.uncovered, gr.total_cost) == (got[0] - full[0], got[1])
         assert got >= opt
         if m == 1:
-            assert got == opt  # the first greedy step is an exhaustive search over singletons
+            assert got == opt  # the first forward step is an exhaustive search over singletons
         if m == K:
             assert gr.mean_gap == 0 and gr.worst_gap == 0 and gr.relative_gap == 0
-        # the curve records the total after each greedy step and never rises once covered
+        # the curve records the total after each forward step and never rises once covered
         assert gr.curve[-1] == gr.total_cost and len(gr.curve) == m
         if not np.isinf(C).any():
-            # monotone submodular benefit: greedy keeps >= (1 - 1/e) of the best benefit
+            # monotone submodular benefit: forward selection keeps >= (1 - 1/e) of the best benefit
             # (Nemhauser, Wolsey and Fisher, 1978), benefit measured from the worst costs
             u = C.max(axis=1).sum()
             assert u - got[1] >= (1 - 1 / math.e) * (u - opt[1]) - 1e-9

@@ -245,3 +245,19 @@ def test_every_input_layout_runs_the_one_compiled_kernel():
         descend_qubo(p.linear, p.indptr.astype(np.int32), p.indices, p.data, X, fixed=fixed)
     for kernel in (greedy.general.descend_general, greedy.qubo.descend_tree):
         assert len(kernel.signatures) == 1, kernel.signatures
+
+
+@pytest.mark.parametrize("width", [0, 1, 2, 5])
+def test_unique_rows_equal_numpys_unique_by_row(width):
+    """The layout's row grouping against numpy's own ``unique(axis=0)`` (the reference)."""
+    from flipfix.repair.solvers.greedy.layout import unique_rows
+
+    rng = np.random.default_rng(width)
+    base = rng.integers(-2, 3, size=(7, width)).astype(np.float64)
+    M = base[rng.integers(0, 7, size=500)]
+    uniq, inv = unique_rows(M)
+    want, want_inv = np.unique(M, axis=0, return_inverse=True)
+    assert np.array_equal(uniq, want) and np.array_equal(inv, want_inv.reshape(-1))
+    assert np.array_equal(uniq[inv], M)
+    neg = unique_rows(np.array([[0.0], [-0.0], [1.0]]))[1]
+    assert neg[0] == neg[1] != neg[2]

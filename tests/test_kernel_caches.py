@@ -7,7 +7,7 @@ scratch folder standing in for the package.
 
 from __future__ import annotations
 
-from flipfix.repair.solvers.greedy.cache import drop_stale
+from flipfix.repair.kernels.cache import drop_stale
 
 
 def _cached(folder):
@@ -29,3 +29,17 @@ def test_caches_survive_until_a_source_changes(tmp_path):
     (cache / "a.f-1.py311.nbi").write_text("compiled again")
     drop_stale(tmp_path)  # the new digest was kept: nothing more to drop
     assert _cached(tmp_path) == ["a.f-1.py311.nbi"]
+
+
+def test_a_change_to_a_file_outside_the_folder_listed_in_also_drops_the_caches(tmp_path):
+    pkg, other = tmp_path / "pkg", tmp_path / "rows.py"
+    pkg.mkdir()
+    (pkg / "a.py").write_text("x = 1\n")
+    other.write_text("def row_viol(): pass\n")
+    drop_stale(pkg, also=(str(other),))
+    (pkg / "__pycache__" / "a.f-1.py311.nbi").write_text("compiled")
+    drop_stale(pkg, also=(str(other),))
+    assert _cached(pkg) == ["a.f-1.py311.nbi"]
+    other.write_text("def row_viol(): return 0\n")  # the shared callee changes
+    drop_stale(pkg, also=(str(other),))
+    assert _cached(pkg) == []

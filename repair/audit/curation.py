@@ -5,11 +5,11 @@ repair was infeasible), a kept subset T serves scenario s at ``min_{k in T} C[s,
 The objective of T is, lexicographically, the number of scenarios T leaves
 without a feasible repair, then the sum over the other scenarios of that cost.
 
-Greedy forward selection adds, one at a time, the candidate that lowers the
+Forward selection adds, one at a time, the candidate that lowers the
 objective most (ties: lowest library index). Over scenarios every candidate
 of the library can serve, the benefit ``sum_s (u_s - min_{k in T} C[s, k])``
 (``u_s`` the worst cost in scenario s) is a monotone submodular function, so
-greedy keeps at least (1 - 1/e) of the best possible benefit (Nemhauser,
+forward selection keeps at least (1 - 1/e) of the best possible benefit (Nemhauser,
 Wolsey and Fisher, 1978). ``method="exhaustive"`` searches every subset of
 size M when there are at most ``max_subsets`` of them.
 """
@@ -25,20 +25,20 @@ import numpy as np
 
 from flipfix.repair.errors import InputError
 
-__all__ = ["CurationResult", "curate", "subset_objective", "select_greedy", "select_exhaustive"]
+__all__ = ["CurationResult", "curate", "subset_objective", "select_forward", "select_exhaustive"]
 
 
 @dataclass
 class CurationResult:
     """The kept candidates and how much worse they are than the full library.
 
-    ``kept_ids`` in selection order (greedy) or library order (exhaustive).
+    ``kept_ids`` in selection order (forward) or library order (exhaustive).
     ``uncovered`` counts scenarios the subset cannot repair feasibly while the
     full library can. ``mean_gap`` / ``worst_gap`` are the mean and largest
     per-scenario excess of the subset's best repair cost over the full
     library's (energy units, over scenarios both repair); ``relative_gap`` is
     the total excess over the total ``|cost|`` of the full library (a fraction).
-    ``curve`` holds the total cost after each greedy step (1..M).
+    ``curve`` holds the total cost after each forward step (1..M).
     """
 
     method: str
@@ -82,8 +82,8 @@ def subset_objective(C: np.ndarray, subset: Sequence[int]) -> tuple[int, float]:
     return int((~fin).sum()), float(best[fin].sum())
 
 
-def select_greedy(C: np.ndarray, m: int) -> tuple[list, list]:
-    """Greedy forward selection of m columns of C (S, K): (indices, total cost after each step)."""
+def select_forward(C: np.ndarray, m: int) -> tuple[list, list]:
+    """Forward selection of m columns of C (S, K): (indices, total cost after each step)."""
     S, K = C.shape
     chosen: list = []
     curve: list = []
@@ -115,7 +115,7 @@ def select_exhaustive(C: np.ndarray, m: int, *, max_subsets: int = 200_000) -> l
     return best
 
 
-def curate(cost: Any, m: int, *, ids: Sequence[str] | None = None, method: str = "greedy",
+def curate(cost: Any, m: int, *, ids: Sequence[str] | None = None, method: str = "forward",
            max_subsets: int = 200_000) -> CurationResult:
     """Keep ``m`` candidates; ``cost`` is (S, K) with +inf for infeasible repairs,
     e.g. ``StressReport.cost_matrix()`` (then pass ``ids=report.ids``)."""
@@ -126,13 +126,13 @@ def curate(cost: Any, m: int, *, ids: Sequence[str] | None = None, method: str =
     ids = [f"c{k}" for k in range(K)] if ids is None else [str(i) for i in ids]
     if len(ids) != K:
         raise InputError("ids", f"has {len(ids)} ids for {K} candidates")
-    if method == "greedy":
-        kept, curve = select_greedy(C, int(m))
+    if method == "forward":
+        kept, curve = select_forward(C, int(m))
     elif method == "exhaustive":
         kept = select_exhaustive(C, int(m), max_subsets=max_subsets)
         curve = []
     else:
-        raise InputError("method", f"must be 'greedy' or 'exhaustive', got {method!r}")
+        raise InputError("method", f"must be 'forward' or 'exhaustive', got {method!r}")
     sub = C[:, kept].min(axis=1)
     full = C.min(axis=1)
     both = np.isfinite(sub) & np.isfinite(full)

@@ -103,16 +103,16 @@ class RobustnessReport:
 
 
 # ----------------------------------------------------------------- helpers
-def _as_X(problem: Problem, X: np.ndarray | CandidateSet, field_name: str) -> np.ndarray:
+def _as_X(problem: Problem, X: np.ndarray | CandidateSet, field: str) -> np.ndarray:
     if isinstance(X, CandidateSet):
         X = X.X
     X = np.asarray(X)
     if X.ndim == 1:
         X = X[None, :]
     if X.ndim != 2 or X.shape[1] != problem.n:
-        raise InputError(field_name, f"must have shape (K, {problem.n}), got {X.shape}")
+        raise InputError(field, f"must have shape (K, {problem.n}), got {X.shape}")
     if X.size and not np.all((X == 0) | (X == 1)):
-        raise InputError(field_name, "must hold 0/1 values (internal form)")
+        raise InputError(field, "must hold 0/1 values (internal form)")
     return X.astype(np.int8, copy=False)
 
 

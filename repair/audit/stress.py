@@ -35,7 +35,7 @@ from __future__ import annotations
 
 import math
 import time
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass
 from typing import Any, Callable, Iterator, Mapping, Protocol, Sequence
 
 import numpy as np
@@ -46,7 +46,7 @@ from flipfix.repair.errors import InputError
 from flipfix.repair.model.constraints import ForbidValues
 from flipfix.repair.model.encodings import decode_indices
 from flipfix.repair.model.problem import Problem
-from flipfix.repair.model.vartypes import BINARY, SPIN, change_vartype
+from flipfix.repair.model.vartypes import BINARY, change_vartype
 from flipfix.repair.audit.robustness import robustness_profile
 
 __all__ = ["ScenarioFamily", "Scenario", "CandidateStress", "StressReport", "draw_scenarios",
@@ -91,8 +91,8 @@ class ScenarioFamily:
     unavailable_values: int = 0
     must_change: int = 0
 
-    def validate(self, problem: Problem, *, field_name: str = "family") -> None:
-        f = field_name + "."
+    def validate(self, problem: Problem, *, field: str = "family") -> None:
+        f = field + "."
         for name in ("hamming_weight", "hamming_threshold", "hamming_fraction", "perturb_rate",
                      "capacity_cut_percent"):
             v = getattr(self, name)
@@ -135,7 +135,7 @@ class ScenarioFamily:
                              f"exceed the problem's {n_dec} decisions (the two parts use distinct "
                              f"decisions)")
         if not any(getattr(self, name) for name in PARTS):
-            raise InputError(field_name, "enables no late constraint (set one of "
+            raise InputError(field, "enables no late constraint (set one of "
                                          + ", ".join(PARTS) + ")")
 
     def to_dict(self) -> dict[str, Any]:

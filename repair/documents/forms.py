@@ -109,7 +109,7 @@ def parse_problem(obj: Any, *, field: str = "problem") -> Problem:
 
     decisions = tuple(parse_decisions(obj.get("decisions"), f + ".decisions"))
     return Problem.from_terms(lin, quad, offset=offset, vartype=vartype, labels=labels,
-                              decisions=decisions, field_prefix=f + ".")
+                              decisions=decisions, field=f)
 
 
 def problem_document(problem: Problem) -> dict:
@@ -202,7 +202,7 @@ def parse_candidates(obj: Any, problem: Problem, *, field: str = "candidates") -
     """Candidates document -> :class:`CandidateSet` (every variable assigned, ids unique)."""
     recs = parse_candidate_records(obj, problem, field=field)
     return CandidateSet.from_mappings(
-        problem, [{"id": r["id"], "assignment": r["assignment"]} for r in recs], field_name=field)
+        problem, [{"id": r["id"], "assignment": r["assignment"]} for r in recs], field=field)
 
 
 # -------------------------------------------------------------- constraints

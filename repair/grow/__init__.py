@@ -3,10 +3,10 @@
 original and grown libraries (:mod:`.heldout`) and a planted test model (:mod:`.planted`).
 
 The chain kernel's numba cache is dropped when a source of this package changed (numba keys
-a cached kernel by its own file only; see :mod:`flipfix.repair.solvers.greedy.cache`)."""
+a cached kernel by its own file only; see :mod:`flipfix.repair.kernels.cache`)."""
 
 from pathlib import Path
 
-from flipfix.repair.solvers.greedy.cache import drop_stale
+from flipfix.repair.kernels.cache import drop_stale
 
 drop_stale(Path(__file__).resolve().parent)

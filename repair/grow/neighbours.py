@@ -91,10 +91,10 @@ class GrowSettings:
     workers: int = 1
 
     def checked(self, problem: Problem, candidates: CandidateSet, *,
-                field_name: str = "settings") -> "GrowSettings":
-        """These settings with the defaults filled in; errors name ``field_name.<option>``
-        (the bare option when ``field_name`` is empty)."""
-        f = field_name + "." if field_name else ""
+                field: str = "settings") -> "GrowSettings":
+        """These settings with the defaults filled in; errors name ``field.<option>``
+        (the bare option when ``field`` is empty)."""
+        f = field + "." if field else ""
         if self.mode not in MODES:
             raise InputError(f + "mode", f"must be one of {MODES}, got {self.mode!r}")
         eps = nonnegative(self.epsilon, f + "epsilon")
@@ -297,7 +297,7 @@ def hard_rows(problem: Problem, constraints) -> Rows:
         z, zi = np.zeros(0), np.zeros(0, np.int64)
         return Rows(np.zeros(1, np.int64), zi, z, np.zeros(n + 1, np.int64), zi, z, z, z, z)
     for k, c in enumerate(constraints):
-        one = compile_constraints(problem, [c], field_name=f"constraints[{k}]",
+        one = compile_constraints(problem, [c], field=f"constraints[{k}]",
                                   paths=[f"constraints[{k}]"])
         soft = (one.counts or (one.fixed >= 0).any() or one.data.size != problem.data.size
                 or not np.array_equal(one.h, problem.linear)

@@ -34,6 +34,8 @@ from typing import NamedTuple
 import numba as nb
 import numpy as np
 
+from flipfix.repair.kernels.rows import row_viol
+
 __all__ = ["Moves", "Plan", "Chain", "advance", "flip_changes", "new_chain", "temperature"]
 
 _U = np.uint64
@@ -158,16 +160,6 @@ def temperature(plan, s):
 
 # ------------------------------------------------------------- one flip
 @nb.njit(cache=True, inline="always")
-def _viol(a, lo, hi, tol):
-    v = 0.0
-    if a < lo:
-        v = lo - a
-    elif a > hi:
-        v = a - hi
-    return v if v > tol else 0.0
-
-
-@nb.njit(cache=True, inline="always")
 def _change(i, x, o, field, dist, price, C, dcount, sat, dd, R, act, w):
     """Flipping i: (objective change, weighted row-penalty change, violation change,
     new distance). The objective is QUBO + count penalties + price * distance."""
@@ -192,8 +184,8 @@ def _change(i, x, o, field, dist, price, C, dcount, sat, dd, R, act, w):
     for q in range(R.col_ptr[i], R.col_ptr[i + 1]):
         r = R.col_row[q]
         a0 = act[r]
-        dv = (_viol(a0 + sgn * R.col_val[q], R.lo[r], R.hi[r], R.rtol[r])
-              - _viol(a0, R.lo[r], R.hi[r], R.rtol[r]))
+        dv = (row_viol(a0 + sgn * R.col_val[q], R.lo[r], R.hi[r], R.rtol[r])
+              - row_viol(a0, R.lo[r], R.hi[r], R.rtol[r]))
         dviol += dv
         dpen += w[r] * dv
     nd = dist + 1 if xi == o[i] else dist - 1
@@ -309,7 +301,7 @@ def _sweep(Q, C, R, M, plan, o, ch, beta):
     for f in range(free.size):
         i = free[f]
         r = partner[i]
-        if r >= 0 and _viol(act[r], R.lo[r], R.hi[r], R.rtol[r]) == 0.0:
+        if r >= 0 and row_viol(act[r], R.lo[r], R.hi[r], R.rtol[r]) == 0.0:
             j = _partner(i, r, x, fixed, R, rng)  # swap i and j: row r stays as it is
             if j < 0:
                 continue
@@ -344,7 +336,7 @@ def _close_sweep(R, M, plan, ch, tol):
     ``tol``."""
     V = 0.0
     for r in range(ch.act.size):
-        v = _viol(ch.act[r], R.lo[r], R.hi[r], R.rtol[r])
+        v = row_viol(ch.act[r], R.lo[r], R.hi[r], R.rtol[r])
         if v > 0.0:
             V += v
             if ch.w[r] < plan.scale * M.wunit[r] * _WEIGHT_CAP:
@@ -407,7 +399,7 @@ def _begin(k, Q, C, R, M, plan, X, O, ch):
     e = _fresh(x, Q, C, R, ch.field, ch.dcount, ch.sat, ch.act)
     V = 0.0
     for r in range(ch.act.size):
-        V += _viol(ch.act[r], R.lo[r], R.hi[r], R.rtol[r])
+        V += row_viol(ch.act[r], R.lo[r], R.hi[r], R.rtol[r])
         ch.w[r] = plan.scale * M.wunit[r]
     ch.dist[0] = dist
     ch.num[0] = e + plan.price * dist

@@ -22,6 +22,8 @@ rounding; feasibility (violation == 0) is the same test.
 
 from __future__ import annotations
 
+import time
+
 import numba as nb
 import numpy as np
 
@@ -38,6 +40,8 @@ SAMPLE = 256
 #: most row activities (candidates x hard rows) a Scorer keeps; past it, assignments are
 #: scored from scratch
 KEEP_ACTIVITIES = 20_000_000
+#: seconds one block of a library's scoring aims at when it runs to a deadline
+BLOCK_SECONDS = 0.005
 
 
 @nb.njit(cache=True, nogil=True)
@@ -153,10 +157,12 @@ def _count_differing(x, a):
 
 
 @nb.njit(cache=True, nogil=True)
-def _library(X, first, stop, window, far, q, c, r, offset, e0, mis0, d0, act0, cost, viol):
-    """Rows first..stop-1 of X: each from the nearest of the ``window`` rows before it (in
-    the range; nearest on a sample of ``SAMPLE`` bits) when at most ``far`` bits differ, else
-    from scratch; fills each row's state (e0, mis0, d0 and, when kept, act0) and totals."""
+def _library(X, done, first, stop, window, far, q, c, r, offset, e0, mis0, d0, act0, cost,
+             viol):
+    """Rows first..stop-1 of X: each from the nearest of the ``window`` rows before it that
+    are already scored (rows before ``done``, or from ``first`` on in this range; nearest on a
+    sample of ``SAMPLE`` bits) when at most ``far`` bits differ, else from scratch; fills each
+    row's state (e0, mis0, d0 and, when kept, act0) and totals."""
     n = X.shape[1]
     m = r[6].size
     keep = act0.shape[1] == m
@@ -170,7 +176,9 @@ def _library(X, first, stop, window, far, q, c, r, offset, e0, mis0, d0, act0, c
         a_act = act0[k] if keep else act
         near, fewest = -1, n + 1
         if keep:  # the nearest by a sample of the bits, then the whole distance to it
-            for b in range(max(first, k - window), k):
+            for b in range(max(0, k - window), k):
+                if done <= b < first:  # another thread's range, maybe not scored yet
+                    continue
                 cnt = _count_differing(x[::stride], X[b, ::stride])
                 if cnt < fewest:
                     near, fewest = b, cnt
@@ -186,9 +194,10 @@ def _library(X, first, stop, window, far, q, c, r, offset, e0, mis0, d0, act0, c
 
 
 @nb.njit(cache=True, nogil=True)
-def _near(X, R, rows, e0, mis0, d0, act0, q, c, r, offset, far, cost, viol, flips):
+def _near(X, R, rows, scored, e0, mis0, d0, act0, q, c, r, offset, far, cost, viol, flips):
     """Row k of X from the state of row rows[k] of R (from scratch past ``far`` differing
-    bits); also its Hamming distance from that row."""
+    bits, or when that row is not among the first ``scored``); also its Hamming distance
+    from that row."""
     K, n = X.shape
     m = r[6].size
     keep = act0.shape[1] == m
@@ -202,7 +211,7 @@ def _near(X, R, rows, e0, mis0, d0, act0, q, c, r, offset, far, cost, viol, flip
         a = R[rows[k]]
         nd = _differing(x, a, diff)
         flips[k] = nd
-        if nd > far or not keep:
+        if nd > far or not keep or rows[k] >= scored:
             e, mis = _scratch(x, q, c, r, offset, d, act)
         else:
             d[:] = d0[rows[k]]
@@ -218,10 +227,18 @@ class Scorer:
 
     ``cost``, ``violation`` float64 (K,): the library's own scores, computed on creation on
     ``workers`` threads (each candidate from the nearest of the ``WINDOW`` before it when
-    at most a quarter of the bits differ, else from scratch).
+    at most a quarter of the bits differ, else from scratch), in library order.
+
+    ``deadline`` (a ``time.perf_counter()`` value, or None): scoring stops there, in blocks
+    of rows sized to take about ``BLOCK_SECONDS`` each (at least the first row is scored);
+    ``later_per_row`` seconds that each scored row will cost the caller later (its share of
+    the result) count against that deadline too;
+    ``scored`` is how many leading candidates were, and the rest keep NaN cost and
+    violation (:meth:`near` scores assignments near them from scratch).
     """
 
-    def __init__(self, compiled: Compiled, X0: np.ndarray, *, workers: int = 1):
+    def __init__(self, compiled: Compiled, X0: np.ndarray, *, workers: int = 1,
+                 deadline: float | None = None, later_per_row: float = 0.0):
         self.compiled = compiled
         self.X0 = np.ascontiguousarray(X0, dtype=np.int8)
         self.arrays = late_arrays(compiled)
@@ -232,31 +249,52 @@ class Scorer:
         self.mis0 = np.empty(K, dtype=np.int64)
         self.d0 = np.empty((K, c.cp_const.size), dtype=np.int64)
         self.act0 = np.empty((K, m if K * m <= KEEP_ACTIVITIES else 0))
-        self.cost, self.violation = np.empty(K), np.empty(K)
-        parts = max(1, min(workers, K))
-        cuts = np.linspace(0, K, parts + 1).astype(np.int64)
+        self.cost, self.violation = np.full(K, np.nan), np.full(K, np.nan)
+        self.scored = 0
 
-        def run(a, b):
-            _library(self.X0, a, b, WINDOW, n // 4, q, c, r, float(compiled.offset), self.e0,
-                     self.mis0, self.d0, self.act0, self.cost, self.violation)
+        def run(done, a, b):
+            _library(self.X0, done, a, b, WINDOW, n // 4, q, c, r, float(compiled.offset),
+                     self.e0, self.mis0, self.d0, self.act0, self.cost, self.violation)
 
-        if parts == 1:
-            run(0, K)
-        else:
-            jobs = [thread_pool(parts).submit(run, int(a), int(b)) for a, b in zip(cuts[:-1], cuts[1:])]
+        def block(a, b):  # rows a..b-1, split over the threads
+            parts = max(1, min(workers, b - a))
+            if parts == 1:
+                run(a, a, b)
+                return
+            cuts = np.linspace(a, b, parts + 1).astype(np.int64).tolist()
+            jobs = [thread_pool(parts).submit(run, a, x, y) for x, y in zip(cuts[:-1], cuts[1:])]
             for j in jobs:
                 j.result()
 
+        if deadline is None:
+            block(0, K)
+            self.scored = K
+            return
+        size = max(1, workers)
+        while self.scored < K:
+            t = time.perf_counter()
+            stop = min(K, self.scored + size)
+            block(self.scored, stop)
+            rows, self.scored = stop - self.scored, stop
+            now = time.perf_counter()
+            left = deadline - now - later_per_row * self.scored
+            if left <= 0.0:
+                break
+            per_row = max(1e-7, (now - t) / rows) + later_per_row
+            # the next block: about BLOCK_SECONDS, and never past the deadline
+            size = int(max(1, min(BLOCK_SECONDS, left) / per_row))
+
     def near(self, X: np.ndarray, ks) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(cost float64, violation float64, flips int64), each (len(X),), of the rows of X
-        int8 (len(X), n), row j scored from candidate ``ks[j]`` (flips: the distance from it)."""
+        int8 (len(X), n), row j scored from candidate ``ks[j]`` (flips: the distance from it;
+        from scratch when that candidate was not scored)."""
         X = np.ascontiguousarray(X, dtype=np.int8)
         if X.ndim == 1:
             X = X[None, :]
         ks = np.ascontiguousarray(np.broadcast_to(np.asarray(ks, dtype=np.int64), X.shape[:1]))
         q, c, r = self.arrays
         out = np.empty(X.shape[0]), np.empty(X.shape[0]), np.empty(X.shape[0], dtype=np.int64)
-        _near(X, self.X0, ks, self.e0, self.mis0, self.d0, self.act0, q, c, r,
+        _near(X, self.X0, ks, np.int64(self.scored), self.e0, self.mis0, self.d0, self.act0, q, c, r,
               float(self.compiled.offset), X.shape[1] // 4, *out)
         return out
 

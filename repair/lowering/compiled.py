@@ -94,9 +94,8 @@ class Compiled:
     def _qubo_value(self, p: Pieces, X: np.ndarray) -> np.ndarray:
         Xf = X.astype(np.float64)
         v = np.full(X.shape[0], p.offset)
-        if p.linear:
-            i, c = zip(*p.linear)
-            v += Xf[:, list(i)] @ np.asarray(c, dtype=np.float64)
+        if p.lin_idx.size:
+            v += Xf[:, p.lin_idx] @ p.lin_coef
         if p.quadratic:
             i, j, c = zip(*p.quadratic)
             v += (Xf[:, list(i)] * Xf[:, list(j)]) @ np.asarray(c, dtype=np.float64)
@@ -133,8 +132,8 @@ class Compiled:
                 v = np.zeros(X.shape[0])
                 for r in p.rows:
                     v += self.row_violation(r, X)
-                for i, b in p.fixed:
-                    v += (X[:, i] != b).astype(np.float64)
+                if p.fix_idx.size:
+                    v += (X[:, p.fix_idx] != p.fix_bits).sum(axis=1)
                 violations[p.name] = v
             else:
                 v = self._qubo_value(p, X)
@@ -171,21 +170,21 @@ def _unique_name(base: str, used: set) -> str:
 
 
 def compile_constraints(problem: Problem, constraints: Sequence[Any], *,
-                        field_name: str = "constraints",
+                        field: str = "constraints",
                         paths: Sequence[str] | None = None) -> Compiled:
     """Check every constraint against ``problem``, lower it, and merge (with the validity
     rows of the problem's decisions).
 
-    Errors name ``paths[k]`` (default ``field_name[k]``) followed by the constraint's
+    Errors name ``paths[k]`` (default ``field[k]``) followed by the constraint's
     attribute, e.g. ``constraints[2].reference['x3']``; a caller whose request nests
     each constraint under its kind passes ``paths`` such as ``constraints[2].hamming``.
     """
     if not isinstance(constraints, (list, tuple)):
-        raise InputError(field_name, "must be a list of constraints")
+        raise InputError(field, "must be a list of constraints")
     if paths is None:
-        paths = [f"{field_name}[{k}]" for k in range(len(constraints))]
+        paths = [f"{field}[{k}]" for k in range(len(constraints))]
     elif len(paths) != len(constraints):
-        raise InputError(field_name, f"has {len(constraints)} constraints for {len(paths)} paths")
+        raise InputError(field, f"has {len(constraints)} constraints for {len(paths)} paths")
     used: set = set()
     pieces: list = encoding_pieces(problem)
     used.update(p.name for p in pieces)
@@ -201,11 +200,10 @@ def compile_constraints(problem: Problem, constraints: Sequence[Any], *,
     rows: list = []
     fixed = np.full(n, -1, dtype=np.int8)
     conflicts: list = []  # (label, the piece that fixed it first, the one that disagrees)
-    fixed_by: dict = {}
+    fixed_by = np.empty(n, dtype=object)  # the name of the piece that fixed each position
     for p in pieces:
-        if p.linear:  # in order, as a loop of h[i] += c would
-            li, lc = zip(*p.linear)
-            np.add.at(h, np.asarray(li, dtype=np.int64), np.asarray(lc, dtype=np.float64))
+        if p.lin_idx.size:  # in order, as a loop of h[i] += c would
+            np.add.at(h, p.lin_idx, p.lin_coef)
         offset += p.offset
         for i, j, c in p.quadratic:
             extra_i.append(i)
@@ -213,11 +211,21 @@ def compile_constraints(problem: Problem, constraints: Sequence[Any], *,
             extra_v.append(c)
         counts.extend(p.counts)
         rows.extend(p.rows)
-        for i, b in p.fixed:
-            if fixed[i] >= 0 and fixed[i] != b:
-                conflicts.append((problem.labels[i], fixed_by[i], p.name))
-            fixed[i] = b
-            fixed_by[i] = p.name
+        if p.fix_idx.size:
+            # a position pinned both ways, by an earlier piece or twice in this one
+            seen = np.full(n, -1, dtype=np.int8)
+            seen[p.fix_idx] = p.fix_bits
+            earlier = (fixed[p.fix_idx] >= 0) & (fixed[p.fix_idx] != p.fix_bits)
+            clash = earlier | (seen[p.fix_idx] != p.fix_bits)
+            named: set = set()
+            for k in np.flatnonzero(clash).tolist():
+                i = int(p.fix_idx[k])
+                if i not in named:
+                    named.add(i)
+                    first = fixed_by[i] if earlier[k] else p.name
+                    conflicts.append((problem.labels[i], first, p.name))
+            fixed[p.fix_idx] = p.fix_bits
+            fixed_by[p.fix_idx] = p.name
     if extra_i:
         qi, qj, qv = problem.pairs()
         merged = Problem._assemble(

@@ -54,18 +54,19 @@ def value_literals(d: Decision, idx: np.ndarray, m: int) -> list:
 def forbid_pieces(problem: Problem, d: Decision, forbidden: Sequence[int], name: str) -> Pieces:
     """Hard: the decision takes none of the value indices ``forbidden``."""
     idx = decision_bits(problem, d)
-    p = Pieces(name, hard=True)
+    fix_idx, fix_bits, rows = [], [], []
     for m in sorted(set(forbidden)):
         lits = value_literals(d, idx, m)
         if len(lits) == 1:
             (i, b), = lits
-            p.fixed.append((i, 1 - b))
+            fix_idx.append(i)
+            fix_bits.append(1 - b)
         else:
             # not (x_{m-1} = 1 and x_m = 0):  x_{m-1} - x_m <= 0
             (i, _), (j, _) = lits
-            p.rows.append(RowSpec(f"{name}[{d.values[m]!r}]", np.asarray([i, j], dtype=np.int64),
-                                  np.asarray([1.0, -1.0]), -np.inf, 0.0))
-    return p
+            rows.append(RowSpec(f"{name}[{d.values[m]!r}]", np.asarray([i, j], dtype=np.int64),
+                                np.asarray([1.0, -1.0]), -np.inf, 0.0))
+    return Pieces(name, fix_idx=fix_idx, fix_bits=fix_bits, rows=rows, hard=True)
 
 
 def decision_values(problem: Problem, decision: Any, values: Any, field: str

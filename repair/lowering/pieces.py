@@ -21,7 +21,7 @@ import numpy as np
 from flipfix.repair.errors import InputError
 from flipfix.repair.model.problem import Problem
 
-__all__ = ["CountSpec", "RowSpec", "Pieces", "count_pieces", "label_bits"]
+__all__ = ["CountSpec", "RowSpec", "Pieces", "count_pieces", "label_bits", "distinct"]
 
 
 @dataclass
@@ -49,37 +49,65 @@ class RowSpec:
     hi: float
 
 
+def distinct(idx: np.ndarray, n: int) -> bool:
+    """Whether the positions idx int64 (p,) in 0..n-1 are all different (a count per
+    position: O(n + p), no sort; numpy's unique took 0.05 s at 100,000 positions)."""
+    return idx.size == 0 or int(np.bincount(idx, minlength=n).max()) <= 1
+
+
+def _ints(v) -> np.ndarray:
+    return np.asarray(v, dtype=np.int64).reshape(-1)
+
+
 @dataclass
 class Pieces:
-    """What one constraint lowers to (indices are variable positions, bits 0/1)."""
+    """What one constraint lowers to (indices are variable positions, bits 0/1).
+
+    Linear terms and fixings are held as arrays (one entry per term; a position may repeat
+    and its terms add up): ``lin_idx`` int64 (p,), ``lin_coef`` float64 (p,); ``fix_idx``
+    int64 (f,), ``fix_bits`` int8 (f,). Builders may pass lists; they are converted once.
+    ``reference``: the published plan this piece measures distance from, as
+    (positions int64, bits int8), for the Hamming-type penalties; else None.
+    """
 
     name: str
-    linear: list = field(default_factory=list)      # [(i, coef)]
+    lin_idx: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+    lin_coef: np.ndarray = field(default_factory=lambda: np.zeros(0))
     quadratic: list = field(default_factory=list)   # [(i, j, coef)], i != j
     offset: float = 0.0
     counts: list = field(default_factory=list)      # [CountSpec]
     rows: list = field(default_factory=list)        # [RowSpec]
-    fixed: list = field(default_factory=list)       # [(i, bit)]
+    fix_idx: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+    fix_bits: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int8))
     hard: bool = False
+    reference: tuple | None = None
+
+    def __post_init__(self):
+        self.lin_idx = _ints(self.lin_idx)
+        self.lin_coef = np.asarray(self.lin_coef, dtype=np.float64).reshape(-1)
+        self.fix_idx = _ints(self.fix_idx)
+        self.fix_bits = np.asarray(self.fix_bits, dtype=np.int8).reshape(-1)
+        if self.lin_idx.shape != self.lin_coef.shape or self.fix_idx.shape != self.fix_bits.shape:
+            raise ValueError(f"pieces {self.name!r}: positions and values differ in length")
 
 
-def label_bits(problem: Problem, mapping, field_name: str) -> tuple[np.ndarray, np.ndarray]:
+def label_bits(problem: Problem, mapping, field: str) -> tuple[np.ndarray, np.ndarray]:
     """A non-empty ``{label: caller value}`` mapping -> (positions int64 (p,), bits int8 (p,)).
 
-    Errors name ``field_name`` or ``field_name[label]``.
+    Errors name ``field`` or ``field[label]``.
     """
     if not hasattr(mapping, "items"):
-        raise InputError(field_name, "must map variable labels to values")
+        raise InputError(field, "must map variable labels to values")
     fast = _label_bits_at_once(problem, mapping)
     if fast is not None and fast[0].size:
         return fast
     idx, bits = [], []
     for lab, val in mapping.items():
-        f = f"{field_name}[{lab!r}]"
+        f = f"{field}[{lab!r}]"
         idx.append(problem.lookup(lab, f))
         bits.append(problem.value_to_bit(val, f))
     if not idx:
-        raise InputError(field_name, "is empty")
+        raise InputError(field, "is empty")
     return np.asarray(idx, dtype=np.int64), np.asarray(bits, dtype=np.int8)
 
 
@@ -123,19 +151,21 @@ def count_pieces(name: str, spec: CountSpec) -> Pieces:
     slope = linear_slope(t)
     if slope is None or not all(len(lits) <= 2 for _, lits in spec.terms):
         return Pieces(name, counts=[spec])
-    p = Pieces(name, offset=float(t[0] + slope * spec.const))
+    offset = float(t[0] + slope * spec.const)
+    lin_i, lin_c, quad = [], [], []
     for coef, lits in spec.terms:
         w = slope * coef
         # [x_i == b] = b*x_i + (1-b)*(1-x_i): an affine form a + s*x_i
         forms = [(1.0 - b, 2.0 * b - 1.0, i) for i, b in lits]
         if len(forms) == 1:
             a, s, i = forms[0]
-            p.offset += w * a
-            p.linear.append((i, w * s))
+            offset += w * a
+            lin_i.append(i)
+            lin_c.append(w * s)
         else:
             (a1, s1, i), (a2, s2, j) = forms
-            p.offset += w * a1 * a2
-            p.linear.append((i, w * s1 * a2))
-            p.linear.append((j, w * s2 * a1))
-            p.quadratic.append((i, j, w * s1 * s2))
-    return p
+            offset += w * a1 * a2
+            lin_i += [i, j]
+            lin_c += [w * s1 * a2, w * s2 * a1]
+            quad.append((i, j, w * s1 * s2))
+    return Pieces(name, lin_idx=lin_i, lin_coef=lin_c, quadratic=quad, offset=offset)

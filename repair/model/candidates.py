@@ -29,17 +29,17 @@ class CandidateSet:
         return len(self.ids)
 
     @staticmethod
-    def _check_ids(ids: Sequence[Any], k: int, field_name: str) -> tuple:
+    def _check_ids(ids: Sequence[Any], k: int, field: str) -> tuple:
         if len(ids) != k:
-            raise InputError(field_name, f"has {len(ids)} ids for {k} candidates")
+            raise InputError(field, f"has {len(ids)} ids for {k} candidates")
         out = []
         seen = set()
         for pos, cid in enumerate(ids):
             if not isinstance(cid, (str, int)) or isinstance(cid, bool) or str(cid) == "":
-                raise InputError(f"{field_name}[{pos}]", f"id {cid!r} must be a non-empty string")
+                raise InputError(f"{field}[{pos}]", f"id {cid!r} must be a non-empty string")
             cid = str(cid)
             if cid in seen:
-                raise InputError(f"{field_name}[{pos}]", f"duplicate candidate id {cid!r}")
+                raise InputError(f"{field}[{pos}]", f"duplicate candidate id {cid!r}")
             seen.add(cid)
             out.append(cid)
         return tuple(out)
@@ -47,23 +47,23 @@ class CandidateSet:
     @classmethod
     def from_array(
         cls, problem: Problem, values, *, ids: Sequence[Any] | None = None,
-        field_name: str = "candidates",
+        field: str = "candidates",
     ) -> "CandidateSet":
         """From an array (K, n) of values in the problem's vartype, columns in label order."""
         arr = np.asarray(values)
         if arr.ndim == 1:
             arr = arr[None, :]
         if arr.ndim != 2 or arr.shape[1] != problem.n:
-            raise InputError(field_name, f"must have shape (K, {problem.n}), got {arr.shape}")
+            raise InputError(field, f"must have shape (K, {problem.n}), got {arr.shape}")
         if arr.shape[0] == 0:
-            raise InputError(field_name, "is empty: at least one candidate is needed")
-        X = problem.from_caller(arr, field_name)
+            raise InputError(field, "is empty: at least one candidate is needed")
+        X = problem.from_caller(arr, field)
         ids = [f"c{k}" for k in range(arr.shape[0])] if ids is None else list(ids)
-        return cls(cls._check_ids(ids, arr.shape[0], field_name + ".ids"), np.ascontiguousarray(X))
+        return cls(cls._check_ids(ids, arr.shape[0], field + ".ids"), np.ascontiguousarray(X))
 
     @classmethod
     def from_mappings(
-        cls, problem: Problem, items: Iterable[Any], *, field_name: str = "candidates",
+        cls, problem: Problem, items: Iterable[Any], *, field: str = "candidates",
     ) -> "CandidateSet":
         """From ``[{"id": ..., "assignment": {label: value}}, ...]`` or ``[(id, {label: value})]``.
 
@@ -72,7 +72,7 @@ class CandidateSet:
         ids: list = []
         rows: list = []
         for k, item in enumerate(items):
-            f = f"{field_name}[{k}]"
+            f = f"{field}[{k}]"
             if isinstance(item, Mapping):
                 if "assignment" not in item:
                     raise InputError(f + ".assignment", "is missing")
@@ -95,31 +95,31 @@ class CandidateSet:
             ids.append(cid)
             rows.append(row)
         if not rows:
-            raise InputError(field_name, "is empty: at least one candidate is needed")
-        return cls(cls._check_ids(ids, len(rows), field_name), np.vstack(rows).astype(np.int8))
+            raise InputError(field, "is empty: at least one candidate is needed")
+        return cls(cls._check_ids(ids, len(rows), field), np.vstack(rows).astype(np.int8))
 
     @classmethod
     def from_sampleset(
         cls, problem: Problem, sampleset, *, ids: Sequence[Any] | None = None,
-        field_name: str = "sampleset",
+        field: str = "sampleset",
     ) -> "CandidateSet":
         """From a ``dimod.SampleSet`` whose vartype matches the problem's."""
         import dimod
 
         if not isinstance(sampleset, dimod.SampleSet):
-            raise InputError(field_name, f"expected a dimod.SampleSet, got {type(sampleset).__name__}")
+            raise InputError(field, f"expected a dimod.SampleSet, got {type(sampleset).__name__}")
         want = dimod.SPIN if problem.vartype == "SPIN" else dimod.BINARY
         if sampleset.vartype is not want:
             sampleset = sampleset.change_vartype(want, inplace=False)
         missing = set(problem.labels) - set(sampleset.variables)
         if missing:
-            raise InputError(field_name, f"misses variable {sorted(map(str, missing))[0]!r}")
+            raise InputError(field, f"misses variable {sorted(map(str, missing))[0]!r}")
         extra = set(sampleset.variables) - set(problem.labels)
         if extra:
-            raise InputError(field_name, f"has unknown variable {sorted(map(str, extra))[0]!r}")
+            raise InputError(field, f"has unknown variable {sorted(map(str, extra))[0]!r}")
         cols = [sampleset.variables.index(lab) for lab in problem.labels]
         arr = np.asarray(sampleset.record.sample)[:, cols]
-        return cls.from_array(problem, arr, ids=ids, field_name=field_name)
+        return cls.from_array(problem, arr, ids=ids, field=field)
 
     def assignments(self, problem: Problem) -> list[dict]:
         """Candidates as label -> value dicts in the caller's vartype."""

@@ -49,26 +49,26 @@ def decision_bits(problem: Problem, d: Decision) -> np.ndarray:
     return np.asarray([problem.index[lab] for lab in d.variables], dtype=np.int64)
 
 
-def find_decision(problem: Problem, name: Any, field_name: str) -> Decision:
-    """The declared decision called ``name``, or an InputError naming ``field_name``."""
+def find_decision(problem: Problem, name: Any, field: str) -> Decision:
+    """The declared decision called ``name``, or an InputError naming ``field``."""
     for d in problem.decisions:
         if d.name == name:
             return d
     known = ", ".join(repr(d.name) for d in problem.decisions[:8]) or "none declared"
-    raise InputError(field_name, f"unknown decision {name!r} (known: {known})")
+    raise InputError(field, f"unknown decision {name!r} (known: {known})")
 
 
-def value_index(d: Decision, value: Any, field_name: str) -> int:
+def value_index(d: Decision, value: Any, field: str) -> int:
     """Position of ``value`` in ``d.values`` (strings match strings only), or an InputError."""
     if isinstance(value, bool):
-        raise InputError(field_name, f"{value!r} is not a value of decision {d.name!r}")
+        raise InputError(field, f"{value!r} is not a value of decision {d.name!r}")
     for m, v in enumerate(d.values):
         if type(v) is str or type(value) is str:
             if v == value and type(v) is type(value):
                 return m
         elif v == value:
             return m
-    raise InputError(field_name, f"{value!r} is not a value of decision {d.name!r} (its values: "
+    raise InputError(field, f"{value!r} is not a value of decision {d.name!r} (its values: "
                                  f"{', '.join(map(repr, d.values))})")
 
 

@@ -33,33 +33,33 @@ DOMAIN_WALL = "domain_wall"
 ENCODINGS = (ONE_HOT, DOMAIN_WALL)
 
 
-def check_label(label: Any, field_name: str) -> Hashable:
+def check_label(label: Any, field: str) -> Hashable:
     """Labels are str or int (not bool); anything else is an error naming the field."""
     if isinstance(label, bool) or not isinstance(label, (str, int, np.integer)):
-        raise InputError(field_name, f"label {label!r} must be a string or an integer")
+        raise InputError(field, f"label {label!r} must be a string or an integer")
     return int(label) if isinstance(label, np.integer) else label
 
 
-def finite(value: Any, field_name: str) -> float:
+def finite(value: Any, field: str) -> float:
     """A finite float, or an InputError naming the field (booleans are not numbers)."""
     if isinstance(value, bool):
-        raise InputError(field_name, f"{value!r} is not a number")
+        raise InputError(field, f"{value!r} is not a number")
     try:
         v = float(value)
     except (TypeError, ValueError):
-        raise InputError(field_name, f"{value!r} is not a number") from None
+        raise InputError(field, f"{value!r} is not a number") from None
     if not math.isfinite(v):
-        raise InputError(field_name, f"{value!r} is not finite")
+        raise InputError(field, f"{value!r} is not finite")
     return v
 
 
-def check_value(value: Any, field_name: str) -> Any:
+def check_value(value: Any, field: str) -> Any:
     """A decision value: a string or a finite number (not bool); integral floats become int."""
     if isinstance(value, bool) or not isinstance(value, (str, int, float, np.integer, np.floating)):
-        raise InputError(field_name, f"value {value!r} must be a string or a number")
+        raise InputError(field, f"value {value!r} must be a string or a number")
     if isinstance(value, (float, np.floating)):
         if not math.isfinite(float(value)):
-            raise InputError(field_name, f"value {value!r} is not finite")
+            raise InputError(field, f"value {value!r} is not finite")
         return int(value) if float(value).is_integer() else float(value)
     return int(value) if isinstance(value, np.integer) else value
 
@@ -114,15 +114,16 @@ class Problem:
         vartype: str = BINARY,
         labels: Sequence[Hashable] | None = None,
         decisions: Sequence[Decision] = (),
-        field_prefix: str = "",
+        field: str = "",
     ) -> "Problem":
         """Build from label-keyed terms in the caller's vartype.
 
         ``labels`` fixes the variable order; by default it is the order of
         first appearance in ``linear`` and then ``quadratic``. Duplicate
         quadratic pairs are summed (as dimod does); a pair (u, u) is an error.
+        Errors name ``field.<part>`` (just ``<part>`` when ``field`` is empty).
         """
-        p = field_prefix
+        p = f"{field}." if field else ""
         if vartype not in VARTYPES:
             raise InputError(p + "vartype", f"must be one of {VARTYPES}, got {vartype!r}")
         lin_items = list(linear.items()) if isinstance(linear, Mapping) else list(linear)
@@ -185,7 +186,7 @@ class Problem:
     @classmethod
     def from_arrays(
         cls, labels: Sequence[Hashable], linear, u, v, bias, *, offset: float = 0.0,
-        vartype: str = BINARY, decisions: Sequence[Decision] = (), field_prefix: str = "",
+        vartype: str = BINARY, decisions: Sequence[Decision] = (), field: str = "",
         fields: tuple[str, str, str, str] = ("linear", "u", "v", "bias"),
     ) -> "Problem":
         """Build from terms by position, in the caller's vartype, without per-term Python.
@@ -193,9 +194,10 @@ class Problem:
         ``labels`` (n) fix the order; ``linear`` float64 (n,) or empty; term k of
         ``u``, ``v`` int (m,) and ``bias`` float64 (m,) couples ``labels[u[k]]`` and
         ``labels[v[k]]`` (duplicate pairs are summed, u == v is an error). ``fields``
-        names the four arrays in errors (after ``field_prefix``).
+        names the four arrays in errors (as ``field.<name>``, or ``<name>`` when ``field``
+        is empty).
         """
-        p = field_prefix
+        p = f"{field}." if field else ""
         if vartype not in VARTYPES:
             raise InputError(p + "vartype", f"must be one of {VARTYPES}, got {vartype!r}")
         order: list = []
@@ -269,7 +271,7 @@ class Problem:
             index={lab: i for i, lab in enumerate(order)},
         )
         if decisions:
-            validate_decisions(prob, field_prefix=p + "decisions")
+            validate_decisions(prob, field=p + "decisions")
         return prob
 
     @classmethod
@@ -368,7 +370,7 @@ class Problem:
         """0/1 values -> the caller's vartype values (int8, same shape)."""
         return vartypes.to_caller(X, self.vartype)
 
-    def from_caller(self, values: np.ndarray, field_name: str = "values") -> np.ndarray:
+    def from_caller(self, values: np.ndarray, field: str = "values") -> np.ndarray:
         """Caller's vartype values -> 0/1 int8; values outside the vartype are an error."""
         arr = np.asarray(values)
         lo, hi = (-1, 1) if self.vartype == SPIN else (0, 1)
@@ -376,27 +378,27 @@ class Problem:
         if arr.size and not ok.all():
             bad = arr[~ok].ravel()[0]
             bad = bad.item() if hasattr(bad, "item") else bad
-            raise InputError(field_name, f"value {bad!r} is not {self.vartype} (allowed: {lo} or {hi})")
+            raise InputError(field, f"value {bad!r} is not {self.vartype} (allowed: {lo} or {hi})")
         return vartypes.to_bits(arr, self.vartype)
 
-    def value_to_bit(self, value: Any, field_name: str) -> int:
+    def value_to_bit(self, value: Any, field: str) -> int:
         """One caller-vartype value -> 0/1, with a field-named error."""
         allowed = (-1, 1) if self.vartype == SPIN else (0, 1)
         if isinstance(value, bool):
             value = int(value)
         if not isinstance(value, (int, np.integer, float)) or value not in allowed:
-            raise InputError(field_name, f"value {value!r} is not {self.vartype} "
-                                         f"(allowed: {allowed[0]} or {allowed[1]})")
+            raise InputError(field, f"value {value!r} is not {self.vartype} "
+                                    f"(allowed: {allowed[0]} or {allowed[1]})")
         return vartypes.value_to_bit(value, self.vartype)
 
-    def lookup(self, label: Any, field_name: str) -> int:
+    def lookup(self, label: Any, field: str) -> int:
         """Label -> position, with a field-named error for unknown labels."""
         if isinstance(label, bool) or not isinstance(label, (str, int, np.integer)):
-            raise InputError(field_name, f"label {label!r} must be a string or an integer")
+            raise InputError(field, f"label {label!r} must be a string or an integer")
         try:
             return self.index[label]
         except KeyError:
-            raise InputError(field_name, f"unknown variable {label!r}") from None
+            raise InputError(field, f"unknown variable {label!r}") from None
 
     def to_bqm(self):
         """The model as a ``dimod.BinaryQuadraticModel`` in the caller's vartype."""
@@ -411,7 +413,7 @@ class Problem:
         return bqm.change_vartype(dimod.SPIN, inplace=False) if self.vartype == SPIN else bqm
 
 
-def validate_decisions(problem: Problem, *, field_prefix: str = "decisions") -> None:
+def validate_decisions(problem: Problem, *, field: str = "decisions") -> None:
     """Check every declared decision of ``problem``; raise :class:`InputError` naming the field.
 
     Checks: names are unique non-empty strings; the encoding is known; every bit
@@ -421,7 +423,7 @@ def validate_decisions(problem: Problem, *, field_prefix: str = "decisions") -> 
     names: set = set()
     owner: dict = {}
     for k, d in enumerate(problem.decisions):
-        f = f"{field_prefix}[{k}]"
+        f = f"{field}[{k}]"
         if not isinstance(d, Decision):
             raise InputError(f, f"must be a Decision, got {type(d).__name__}")
         if not isinstance(d.name, str) or d.name == "":

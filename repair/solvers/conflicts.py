@@ -141,8 +141,8 @@ def name_conflict(compiled: Compiled, *, time_limit: float = 10.0, seed: int = 0
         lits[a.index] = ConflictMember(pos - first, p.name)
         for r in p.rows:
             add_row(m, x, r, enforce=a)
-        for i, b in p.fixed:
-            m.add(x[int(i)] == int(b)).only_enforce_if(a)
+        for i, b in zip(p.fix_idx.tolist(), p.fix_bits.tolist()):
+            m.add(x[i] == b).only_enforce_if(a)
     if not lits:
         return Conflict("feasible", seconds=time.perf_counter() - t0,
                         message="no hard late constraint")

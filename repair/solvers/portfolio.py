@@ -72,9 +72,13 @@ FEWEST_MIN_SECONDS = 0.01
 #: relative cost slack of "no costlier" in the polish steps
 COST_SLACK = 1e-9
 #: share of what is left after greedy that the early proof attempt may take; it runs when
-#: CP-SAT's model and set-up fit in ``PROOF_SETUP`` of what is left
+#: CP-SAT's model and its per-item set-up fit in ``PROOF_SETUP`` of what is left
 PROOF_SHARE = 0.1
 PROOF_SETUP = 0.05
+#: most of what is left that a proof attempt's possible overrun (CP-SAT's latency) may take
+PROOF_LATENCY = 0.5
+#: shortest time limit of a proof attempt, when it fits in that room
+PROOF_MIN_SECONDS = 0.05
 #: shortest CP-SAT search worth starting after its set-up
 CPSAT_MIN_SECONDS = 0.02
 
@@ -240,27 +244,31 @@ class _LazyCpsat:
         self.stats = stats
         self.workers = workers
 
-    def affordable(self, seconds: float) -> bool:
-        """Whether a search (and the build, if not done yet) fits in ``seconds``."""
+    def affordable(self, seconds: float, workers: int | None = None) -> bool:
+        """Whether a search on ``workers`` threads (default the model's), and the build if
+        not done yet, fits in ``seconds``."""
         return _cpsat_affordable(self.compiled, seconds, built=self.model is not None,
-                                 workers=self.workers)
+                                 workers=workers or self.workers)
 
-    def ready(self, deadline: float) -> bool:
-        """Built (or now built), and a search still fits before ``deadline``."""
+    def ready(self, deadline: float, workers: int | None = None) -> bool:
+        """Built (or now built), and a search on ``workers`` threads still fits before
+        ``deadline``."""
         if self.model is None:
             from flipfix.repair.solvers.cpsat import LateModel
 
-            if not self.affordable(deadline - time.perf_counter()):
+            if not self.affordable(deadline - time.perf_counter(), workers):
                 self.stats["cpsat_skipped"] = "budget too short to build the CP-SAT model"
                 return False
             self.model = LateModel(self.compiled)
             CPSAT_COSTS.built(self.compiled, self.model.build_seconds)
             self.stats["cpsat_build_seconds"] = round(self.model.build_seconds, 4)
-        return self.affordable(deadline - time.perf_counter())
+        return self.affordable(deadline - time.perf_counter(), workers)
 
-    def limit(self, seconds: float) -> float:
-        """The time limit to give CP-SAT so that a search with its set-up takes ``seconds``."""
-        return max(0.01, seconds - CPSAT_COSTS.setup_seconds(self.compiled, self.workers))
+    def limit(self, seconds: float, workers: int | None = None) -> float:
+        """The time limit to give CP-SAT (on ``workers`` threads, default the model's) so
+        that a search with its set-up takes ``seconds``."""
+        return max(0.01, seconds - CPSAT_COSTS.setup_seconds(self.compiled,
+                                                             workers or self.workers))
 
     def _timed(self, run, time_limit: float, **kwargs):
         r = run(time_limit=time_limit, **kwargs)
@@ -270,10 +278,12 @@ class _LazyCpsat:
 
     def solve(self, *, time_limit: float, **kwargs):
         """A search that, set-up included, takes about ``time_limit`` seconds."""
-        return self._timed(self.model.solve, self.limit(time_limit), **kwargs)
+        return self._timed(self.model.solve, self.limit(time_limit, kwargs.get("workers")),
+                           **kwargs)
 
     def fewest_flips(self, *, time_limit: float, **kwargs):
-        return self._timed(self.model.fewest_flips, self.limit(time_limit), **kwargs)
+        return self._timed(self.model.fewest_flips,
+                           self.limit(time_limit, kwargs.get("workers")), **kwargs)
 
 
 def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, deadline: float,
@@ -286,11 +296,14 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, deadline: float
     greedy and portfolio keep the last ``POLISH_SHARE`` of the time (``POLISH_ALONE``
     when CP-SAT cannot run in it) to move the best answers back toward their candidates
     where that costs nothing (:func:`_polish`, then in the portfolio :func:`_fewest_flips`).
-    ``scorer`` (default: built here) scores the library and every attempt.
+    ``scorer`` (default: built here) scores the library and every attempt; only the
+    candidates it scored (a prefix of X0) are searched from. Candidates no attempt starts
+    from get none (:func:`flipfix.repair.api.repair` reports them as they are).
     """
     out = PlanOutcome(attempts=[])
     if scorer is None:
         scorer = Scorer(compiled, X0, workers=workers)
+    X0 = X0[:scorer.scored]  # the search starts only from candidates the scorer reached
     time_limit = max(0.0, deadline - time.perf_counter())
     tail = POLISH_SHARE
     cp = _LazyCpsat(compiled, out.stats, workers)
@@ -343,12 +356,10 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
 
     g_deadline = deadline if method == "greedy" else t0 + mix.greedy * time_limit
     # most promising candidates first, so a short budget is spent where it pays most
-    first = _ranked(scorer.violation == 0.0, scorer.cost)
-    cost, viol = scorer.cost.copy(), scorer.violation.copy()
+    cost, viol = scorer.cost[:K].copy(), scorer.violation[:K].copy()
+    first = _ranked(viol == 0.0, cost)
     flips = np.zeros(K, dtype=np.int64)
-    if stopped():  # nothing starts after the deadline: the candidates as they are
-        out.attempts.extend(Attempt(k, X0[k], "unrepaired", 0.0, cost[k], viol[k], 0)
-                            for k in range(K))
+    if stopped():  # nothing starts after the deadline: the candidates stay as they are
         out.stats["greedy_done"] = out.stats["greedy_moves"] = 0
         return out
     rows, seconds, steps = _greedy_stage(compiled, X0, first, deadline=g_deadline,
@@ -361,10 +372,8 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
     # each repaired candidate is scored from its own state; the others are as they were
     if fin.size:
         cost[fin], viol[fin], flips[fin] = scorer.near(np.vstack(list(rows.values())), fin)
-    for k in range(K):
-        out.attempts.append(Attempt(k, rows.get(k, X0[k]), "greedy" if done[k] else "unrepaired",
-                                    float(seconds[k]), float(cost[k]), float(viol[k]),
-                                    int(flips[k])))
+    out.attempts.extend(Attempt(k, rows[k], "greedy", float(seconds[k]), float(cost[k]),
+                                float(viol[k]), int(flips[k])) for k in fin.tolist())
     out.stats["greedy_done"] = int(done.sum())
     out.stats["greedy_moves"] = int(steps)
     if method == "greedy" or stopped():
@@ -442,23 +451,29 @@ def _greedy_stage(compiled, X0, order, *, deadline, first_deadline, max_flips, f
                   cancel, workers, report):
     """Greedy repair of the candidates X0[order] in that order: the first alone until
     ``first_deadline`` (the whole search's: with no repaired answer nothing else can start
-    from one), then the others in batches of doubling size (from ``GREEDY_FIRST_BATCH``)
-    until ``deadline``: each batch's set-up (its copies, its consensus) is paid only for
-    candidates the time reaches. Returns ({candidate: repaired x int8 (n,)} of those
+    from one), then the others in batches of doubling size (from ``GREEDY_FIRST_BATCH``;
+    at most what half of the time left fits at the last batch's pace) until ``deadline``:
+    each batch's set-up (its copies, its consensus) is paid only for candidates the time
+    reaches. Returns ({candidate: repaired x int8 (n,)} of those
     repaired, seconds float64 (K,) spent on each, total steps)."""
     K = X0.shape[0]
     rows: dict = {}
     seconds = np.zeros(K)
     steps = 0
     pos, size = 0, 1
+    each = 0.0  # seconds per candidate of the last batch, set-up included
     while pos < K and time.perf_counter() < (first_deadline if pos == 0 else deadline):
+        if each > 0.0:  # a batch's set-up (copies, consensus: O(size x n)) ends in time
+            size = max(1, min(size, int(0.5 * (deadline - time.perf_counter()) / each)))
         batch = order[pos:pos + size]
+        t = time.perf_counter()
         g = greedy_repair(compiled, X0[batch], max_flips=max_flips, flip_price=flip_price,
                           deadline=first_deadline if pos == 0 else deadline, cancel=cancel,
                           workers=workers,
                           progress=lambda d, tot, at=pos: report(done=at + d, total=K,
                                                                  phase="greedy"))
         seconds[batch] = g.seconds
+        each = (time.perf_counter() - t) / batch.size
         steps += int(g.steps.sum())
         rows.update((int(k), g.X[j]) for j, k in enumerate(batch.tolist()) if g.done[j])
         if not g.done.all() or (cancel is not None and cancel.is_set()):
@@ -504,18 +519,32 @@ def _early_proof(cp, compiled, X0, out, scorer, *, feasible, obj, deadline, max_
     if max_flips is not None or flip_price:
         return False
     left = deadline - time.perf_counter()
-    setup = CPSAT_COSTS.setup_seconds(compiled, cp.workers)
-    if cp.model is None:
-        setup += build_cost(compiled)
-    if setup > PROOF_SETUP * left or not cp.ready(deadline):
+    build = 0.0 if cp.model is not None else build_cost(compiled)
+    if build + CPSAT_COSTS.setup * _items(compiled) > PROOF_SETUP * left:
+        return False  # the model is too large for a proof to be likely in this budget
+    # a search that runs to its limit may overrun it by CPSAT_COSTS.latency (0.15 s or more
+    # on several workers, 0.01 s on one), and the later stages absorb it: on one worker
+    # when several would not fit in PROOF_LATENCY of what is left (a small model is proved
+    # at once either way, so a short budget still gets its proof)
+    workers = cp.workers
+    if CPSAT_COSTS.latency(workers) > PROOF_LATENCY * left:
+        workers = 1
+    if CPSAT_COSTS.latency(workers) > PROOF_LATENCY * left or not cp.ready(deadline, workers):
         return False
+    left = deadline - time.perf_counter()
+    proof_seconds = PROOF_SHARE * left
+    if PROOF_MIN_SECONDS + CPSAT_COSTS.latency(workers) <= PROOF_LATENCY * left:
+        proof_seconds = max(proof_seconds, PROOF_MIN_SECONDS)
     ok = np.flatnonzero(feasible)
     best = int(ok[np.argmin(obj[ok])]) if ok.size else None
-    anchor = best if best is not None else int(np.argmin(scorer.violation))
+    anchor = best if best is not None else int(np.argmin(scorer.violation[:X0.shape[0]]))
     _full_search(cp, X0, out, anchor=anchor,
                  best_obj=None if best is None else float(obj[best]),
-                 time_limit=PROOF_SHARE * (deadline - time.perf_counter()), max_flips=None,
-                 flip_price=0.0, seed=seed, workers=workers, cancel=cancel)
+                 # CP-SAT itself gets PROOF_SHARE of what is left (at least PROOF_MIN_SECONDS
+                 # when that and the overrun fit the gate's room: its start alone took 30 ms
+                 # on a loaded machine); its set-up and possible overrun come on top
+                 time_limit=(proof_seconds + CPSAT_COSTS.setup_seconds(compiled, workers)),
+                 max_flips=None, flip_price=0.0, seed=seed, workers=workers, cancel=cancel)
     if not (out.proven_optimal or out.proven_infeasible):
         return False
     what = "optimal" if out.proven_optimal else "infeasible"
@@ -583,6 +612,7 @@ def _fewest_flips(cp, compiled, X0, out, scorer, *, deadline, max_flips, flip_pr
     """
     stats = out.stats
     if not out.attempts:
+        stats["fewest_flips_status"] = "skipped: nothing repaired"
         return
     left = deadline - time.perf_counter()
     if cp.model is None and not cp.affordable(left):
@@ -792,7 +822,7 @@ def _per_candidate_cpsat(cp, compiled, X0, out, scorer, *, deadline, max_flips, 
                          workers, cancel, report):
     """CP-SAT from each candidate (hinted with it), best-ranked candidates first."""
     K = X0.shape[0]
-    order = [int(k) for k in _ranked(scorer.violation == 0.0, scorer.cost)]
+    order = [int(k) for k in _ranked(scorer.violation[:K] == 0.0, scorer.cost[:K])]
     reached = np.zeros(K, dtype=bool)
     statuses = []
     overrun = 0.0  # how far past its limit a solve ran, on average (set-up, presolve)
@@ -822,8 +852,5 @@ def _per_candidate_cpsat(cp, compiled, X0, out, scorer, *, deadline, max_flips, 
             out.proven_optimal = True
         if full and r.status == "infeasible":
             out.proven_infeasible = True
-    for k in np.flatnonzero(~reached).tolist():
-        out.attempts.append(Attempt(k, X0[k].copy(), "unrepaired", 0.0, float(scorer.cost[k]),
-                                    float(scorer.violation[k]), 0))
     if flip_price and statuses and all(s == "optimal" for s in statuses) and reached.all():
         out.proven_optimal = max_flips is None

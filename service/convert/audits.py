@@ -62,7 +62,7 @@ def family_to_domain(f: pb.ScenarioFamily, problem: Problem, *, field: str = "fa
         fix_k=int(f.fix_k), capacity_cut_percent=float(f.capacity_cut_percent),
         capacity_weights=weights, unavailable_values=int(f.unavailable_values),
         must_change=int(f.must_change))
-    fam.validate(problem, field_name=field)
+    fam.validate(problem, field=field)
     return fam
 
 
@@ -238,7 +238,7 @@ def reply_to_point(p: pb.ParetoPoint):
                        method=proto_to_solvers(p.solvers))
 
 
-def reply_to_curation(r: pb.CurateReply, m: int, selection: str = "greedy"):
+def reply_to_curation(r: pb.CurateReply, m: int, selection: str = "forward"):
     """CurateReply -> :class:`flipfix.repair.audit.curation.CurationResult` (None when nothing was chosen).
 
     ``kept_indices`` are positions in the audited library (the stress report's order).

@@ -131,16 +131,16 @@ def candidates_to_batch(problem: Problem, candidates: Any, *, ids: Sequence[str]
     if isinstance(candidates, CandidateSet):
         return arrays_to_batch(candidates.ids, candidates.X)
     if type(candidates).__name__ == "SampleSet":
-        cs = CandidateSet.from_sampleset(problem, candidates, ids=ids, field_name=field)
+        cs = CandidateSet.from_sampleset(problem, candidates, ids=ids, field=field)
         energies = np.asarray(candidates.record.energy, dtype=np.float64)
         return arrays_to_batch(cs.ids if ids is not None else [], cs.X,
                                [{"source": "dimod.SampleSet", "energy": float(e)}
                                 for e in energies])
     if isinstance(candidates, np.ndarray):
-        cs = CandidateSet.from_array(problem, candidates, ids=ids, field_name=field)
+        cs = CandidateSet.from_array(problem, candidates, ids=ids, field=field)
         return arrays_to_batch(cs.ids if ids is not None else [], cs.X)
     recs = documents.parse_candidate_records(candidates, problem, field=field)
     cs = CandidateSet.from_mappings(
-        problem, [{"id": r["id"], "assignment": r["assignment"]} for r in recs], field_name=field)
+        problem, [{"id": r["id"], "assignment": r["assignment"]} for r in recs], field=field)
     return arrays_to_batch(cs.ids, cs.X, recs)
 

@@ -182,7 +182,7 @@ def constraints_to_compiled(constraints: Sequence[pb.Constraint], problem: Probl
     """A request's constraints read once, checked against ``problem`` and lowered once
     (:func:`flipfix.repair.lowering.compiled.compile_constraints`), errors on proto paths."""
     return compile_constraints(problem, constraints_to_domain(constraints, field=field),
-                               field_name=field, paths=constraint_paths(constraints, field=field))
+                               field=field, paths=constraint_paths(constraints, field=field))
 
 
 def constraint_to_proto(dom: Any, *, field: str = "constraint") -> pb.Constraint:

@@ -40,9 +40,10 @@ METHOD_NAMES = {pb.METHOD_UNSPECIFIED: "portfolio", **{v: k for k, v in METHOD_E
 REFERENCE_ENUM = {"uniform": pb.REFERENCE_KIND_UNIFORM, "perturbed": pb.REFERENCE_KIND_PERTURBED}
 REFERENCE_NAMES = {pb.REFERENCE_KIND_UNSPECIFIED: "uniform",
                    **{v: k for k, v in REFERENCE_ENUM.items()}}
-#: the core's curation method names ("greedy" is forward selection)
-SELECTION_ENUM = {"greedy": pb.SELECTION_FORWARD, "exhaustive": pb.SELECTION_EXHAUSTIVE}
-SELECTION_NAMES = {pb.SELECTION_UNSPECIFIED: "greedy", **{v: k for k, v in SELECTION_ENUM.items()}}
+#: the core's curation method names
+SELECTION_ENUM = {"forward": pb.SELECTION_FORWARD, "exhaustive": pb.SELECTION_EXHAUSTIVE}
+SELECTION_NAMES = {pb.SELECTION_UNSPECIFIED: "forward",
+                   **{v: k for k, v in SELECTION_ENUM.items()}}
 STATUS_ENUM = {"optimal": pb.REPAIR_STATUS_OPTIMAL, "feasible": pb.REPAIR_STATUS_FEASIBLE,
                "infeasible": pb.REPAIR_STATUS_INFEASIBLE,
                "no_feasible_found": pb.REPAIR_STATUS_NO_FEASIBLE_FOUND}
@@ -62,7 +63,8 @@ PHASE_ENUM = {"greedy": pb.PHASE_GREEDY, "anneal": pb.PHASE_ANNEAL,
 PHASE_NAMES = {v: k for k, v in PHASE_ENUM.items()}
 #: the core's stage names (a method label joins them with "+", e.g. "anneal+greedy")
 SOLVER_ENUM = {"unrepaired": pb.SOLVER_UNREPAIRED, "unchanged": pb.SOLVER_UNCHANGED,
-               "greedy": pb.SOLVER_GREEDY, "anneal": pb.SOLVER_ANNEAL, "cpsat": pb.SOLVER_CPSAT}
+               "greedy": pb.SOLVER_GREEDY, "anneal": pb.SOLVER_ANNEAL, "cpsat": pb.SOLVER_CPSAT,
+               "unscored": pb.SOLVER_UNSCORED}
 SOLVER_NAMES = {v: k for k, v in SOLVER_ENUM.items()}
 
 

@@ -58,7 +58,7 @@ def request_to_job(r: gpb.GrowRequest, problem: Problem, candidates: CandidateSe
         depth=float(r.depth) if r.depth != 0 else 0.5, max_new=int(r.max_new) or 10,
         seed=int(r.seed))
     try:
-        settings = settings.checked(problem, candidates, field_name="")
+        settings = settings.checked(problem, candidates, field="")
     except InputError as err:
         head, dot, rest = err.field.partition(".")
         name, bracket, tail = head.partition("[")

@@ -53,7 +53,7 @@ def model_to_problem(model: pb.ProblemModel, *, field: str = "model") -> Problem
                       for k, d in enumerate(model.decisions))
     return Problem.from_terms(lin, quad, offset=finite(model.offset, field + ".offset"),
                               vartype=vartype, labels=labels, decisions=decisions,
-                              field_prefix=field + ".")
+                              field=field)
 
 
 def _indexed_to_problem(model: pb.ProblemModel, vartype: str, *, field: str) -> Problem:
@@ -72,7 +72,7 @@ def _indexed_to_problem(model: pb.ProblemModel, vartype: str, *, field: str) -> 
         labels, np.asarray(t.linear, dtype=np.float64), np.asarray(t.u, dtype=np.int64),
         np.asarray(t.v, dtype=np.int64), np.asarray(t.bias, dtype=np.float64),
         offset=finite(model.offset, field + ".offset"), vartype=vartype,
-        decisions=decisions, field_prefix=field + ".",
+        decisions=decisions, field=field,
         fields=(f + "linear", f + "u", f + "v", f + "bias"))
 
 

@@ -70,6 +70,7 @@ class Solver(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     SOLVER_GREEDY: _ClassVar[Solver]
     SOLVER_ANNEAL: _ClassVar[Solver]
     SOLVER_CPSAT: _ClassVar[Solver]
+    SOLVER_UNSCORED: _ClassVar[Solver]
 
 class RepairStatus(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = ()
@@ -156,6 +157,7 @@ SOLVER_UNCHANGED: Solver
 SOLVER_GREEDY: Solver
 SOLVER_ANNEAL: Solver
 SOLVER_CPSAT: Solver
+SOLVER_UNSCORED: Solver
 REPAIR_STATUS_UNSPECIFIED: RepairStatus
 REPAIR_STATUS_OPTIMAL: RepairStatus
 REPAIR_STATUS_FEASIBLE: RepairStatus

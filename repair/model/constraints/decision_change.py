@@ -13,7 +13,7 @@ from flipfix.repair.lowering.decisions import value_literals
 from flipfix.repair.lowering.pieces import CountSpec, Pieces, count_pieces
 from flipfix.repair.model.constraints.kind import ConstraintKind
 from flipfix.repair.model.constraints.shapes import check_penalty, shape_table
-from flipfix.repair.model.encodings import decision_bits, find_decision, value_index
+from flipfix.repair.model.encodings import decision_bits, encode, find_decision, value_index
 from flipfix.repair.model.problem import DOMAIN_WALL, Decision, Problem
 
 __all__ = ["DecisionChangePenalty", "DISTANCES", "MAX_TABLE", "KIND"]
@@ -84,11 +84,14 @@ def lower(problem: Problem, c: DecisionChangePenalty, name: str, field: str) -> 
     if not hasattr(ref, "items") or len(ref) == 0:
         raise InputError(field + ".reference", "must be a non-empty map of decision -> value")
     const, terms, d_max = 0, [], 0
+    plan_idx, plan_bits = [], []  # the reference's bits: each decision at its value's code
     for dname, value in ref.items():
         f = f"{field}.reference[{dname!r}]"
         d = find_decision(problem, dname, f)
         r = value_index(d, value, f)
         idx = decision_bits(problem, d)
+        plan_idx.append(idx)
+        plan_bits.append(encode(d, r))
         if c.distance == "changed":
             k, t = _changed_terms(d, idx, r)
             d_max += 1
@@ -100,8 +103,10 @@ def lower(problem: Problem, c: DecisionChangePenalty, name: str, field: str) -> 
     if d_max > MAX_TABLE:
         raise InputError(field + ".reference", f"distance can reach {d_max} (limit {MAX_TABLE})")
     table = shape_table(c.shape, c.weight, d_max, threshold=c.threshold, table=c.table,
-                        field_name=field)
-    return count_pieces(name, CountSpec(name, table, const, terms))
+                        field=field)
+    p = count_pieces(name, CountSpec(name, table, const, terms))
+    p.reference = (np.concatenate(plan_idx), np.concatenate(plan_bits).astype(np.int8))
+    return p
 
 
 def _changed_terms(d: Decision, idx: np.ndarray, r: int) -> tuple[int, list]:

@@ -71,7 +71,7 @@ def lower(problem: Problem, c: ExtraTerms, name: str, field: str) -> Pieces:
     idx, h, qv, offset = change_vartype(list(lin), list(lin.values()), qi, qj, qv,
                                         finite(c.offset, field + ".offset"),
                                         source=problem.vartype, target=BINARY)
-    return Pieces(name, linear=list(zip(idx.tolist(), h.tolist())),
+    return Pieces(name, lin_idx=idx, lin_coef=h,
                   quadratic=list(zip(np.asarray(qi, dtype=np.int64).tolist(),
                                      np.asarray(qj, dtype=np.int64).tolist(), qv.tolist())),
                   offset=offset)

@@ -53,7 +53,7 @@ read_json, write_json = assignment_form("values")
 
 def lower(problem: Problem, c: FixVariables, name: str, field: str) -> Pieces:
     idx, bits = label_bits(problem, c.values, field + ".values")
-    return Pieces(name, fixed=list(zip(idx.tolist(), bits.tolist())), hard=True)
+    return Pieces(name, fix_idx=idx, fix_bits=bits, hard=True)
 
 
 KIND = ConstraintKind(

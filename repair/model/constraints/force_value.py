@@ -34,7 +34,7 @@ def write_json(c: ForceValue) -> dict:
 def lower(problem: Problem, c: ForceValue, name: str, field: str) -> Pieces:
     d = find_decision(problem, c.decision, field + ".decision")
     bits = encode(d, value_index(d, c.value, field + ".value"))
-    return Pieces(name, fixed=list(zip(decision_bits(problem, d).tolist(), bits.tolist())),
+    return Pieces(name, fix_idx=decision_bits(problem, d), fix_bits=bits,
                   hard=True)
 
 

@@ -10,7 +10,7 @@ import numpy as np
 from flipfix.repair.documents.fields import as_list, number, require, resolve_label, resolve_mapping
 from flipfix.repair.errors import InputError
 from flipfix.repair.lowering.pieces import (CountSpec, Pieces, count_pieces, label_bits,
-                                           linear_slope)
+                                           distinct, linear_slope)
 from flipfix.repair.model.constraints.fix import assignment_json
 from flipfix.repair.model.constraints.kind import ConstraintKind
 from flipfix.repair.model.constraints.shapes import check_penalty, shape_table
@@ -71,6 +71,7 @@ def write_json(c: HammingPenalty) -> dict:
 
 def lower(problem: Problem, c: HammingPenalty, name: str, field: str) -> Pieces:
     idx, ref = label_bits(problem, c.reference, field + ".reference")
+    plan = (idx, ref)  # every label of the reference: the published plan
     if c.variables is not None:
         chosen = [problem.lookup(lab, f"{field}.variables[{k}]") for k, lab in enumerate(c.variables)]
         pos = {int(i): int(b) for i, b in zip(idx, ref)}
@@ -79,18 +80,20 @@ def lower(problem: Problem, c: HammingPenalty, name: str, field: str) -> Pieces:
             raise InputError(field + ".variables", f"{missing[0]!r} has no value in reference")
         idx = np.asarray(chosen, dtype=np.int64)
         ref = np.asarray([pos[i] for i in chosen], dtype=np.int8)
-        if np.unique(idx).size != idx.size:
+        if not distinct(idx, problem.n):
             raise InputError(field + ".variables", "lists a variable twice")
     table = shape_table(c.shape, c.weight, int(idx.size), threshold=c.threshold, table=c.table,
-                        field_name=field)
+                        field=field)
     slope = linear_slope(table)
     if slope is not None:  # as count_pieces merges it: [x_i != r_i] = r_i + (1 - 2 r_i) x_i
         r = ref.astype(np.float64)
-        return Pieces(name, linear=list(zip(idx.tolist(), (slope * (1.0 - 2.0 * r)).tolist())),
-                      offset=float(table[0] + slope * r.sum()))
+        return Pieces(name, lin_idx=idx, lin_coef=slope * (1.0 - 2.0 * r),
+                      offset=float(table[0] + slope * r.sum()), reference=plan)
     # d = number of i with x_i != ref_i: one single-literal term per variable
     terms = [(1, [(i, 1 - b)]) for i, b in zip(idx.tolist(), ref.tolist())]
-    return count_pieces(name, CountSpec(name, table, 0, terms))
+    p = count_pieces(name, CountSpec(name, table, 0, terms))
+    p.reference = plan
+    return p
 
 
 KIND = ConstraintKind(

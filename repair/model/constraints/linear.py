@@ -9,7 +9,7 @@ import numpy as np
 
 from flipfix.repair.documents.fields import number, require, resolve_mapping
 from flipfix.repair.errors import InputError
-from flipfix.repair.lowering.pieces import Pieces, RowSpec, label_keys
+from flipfix.repair.lowering.pieces import Pieces, RowSpec, distinct, label_keys
 from flipfix.repair.model.constraints.kind import ConstraintKind
 from flipfix.repair.model.problem import Problem, finite
 from flipfix.repair.model.vartypes import BINARY, change_vartype
@@ -61,7 +61,7 @@ def _terms_at_once(problem: Problem, terms):
     except KeyError:
         return None
     coef = np.fromiter(terms.values(), np.float64, len(terms))
-    if not np.all(np.isfinite(coef)) or np.unique(idx).size != idx.size:
+    if not np.all(np.isfinite(coef)) or not distinct(idx, problem.n):
         return None
     return idx, coef
 

@@ -27,15 +27,15 @@ def check_penalty(weight: Any, shape: Any, threshold: Any) -> None:
 
 
 def shape_table(shape: str, weight: float, d_max: int, *, threshold: float = 0.0,
-                table: Sequence[float] | None = None, field_name: str = "") -> np.ndarray:
+                table: Sequence[float] | None = None, field: str = "") -> np.ndarray:
     """Penalty value for every distance 0..d_max: float64 (d_max + 1,).
 
-    ``field_name`` is the constraint's field: errors name its ``.shape`` or ``.table``.
+    ``field`` is the constraint's field: errors name its ``.shape`` or ``.table``.
 
     linear: w*d; quadratic: w*d^2; threshold: w*max(0, d - threshold);
     table: w*table[d], the last entry repeated past the end of the table.
     """
-    prefix = field_name + "." if field_name else ""
+    prefix = field + "." if field else ""
     d = np.arange(d_max + 1, dtype=np.float64)
     if shape == "linear":
         f = d

@@ -24,8 +24,7 @@ late rows and count penalties, variables are grouped by how a flip moves the lon
 compares one top per group; with too many groups the kernel scans the free variables
 instead.
 
-Modules, one concept each: ``jit`` (how the kernels compile), ``cache`` (their on-disk
-caches), ``heap`` and ``tournament`` (the selection structures), ``state`` (a
+Modules, one concept each: ``jit`` (how the kernels compile), ``heap`` and ``tournament`` (the selection structures), ``state`` (a
 candidate's state and a flip's effect), ``start`` (start-up fields), ``qubo`` (the
 pure-QUBO path), ``restore`` (feasibility restore), ``pairs`` (pair moves), ``groups``
 (grouped tournament trees), ``layout`` (the general path's arrays per problem),
@@ -34,9 +33,13 @@ pure-QUBO path), ``restore`` (feasibility restore), ``pairs`` (pair moves), ``gr
 
 from __future__ import annotations
 
-from flipfix.repair.solvers.greedy.cache import drop_stale
+from pathlib import Path
 
-drop_stale()
+from flipfix.repair.kernels import rows as _rows
+from flipfix.repair.kernels.cache import drop_stale
+
+# the package's cached kernels hold the code of its modules and of kernels.rows
+drop_stale(Path(__file__).resolve().parent, also=(_rows.__file__,))
 
 from flipfix.repair.kernels.bundles import objective_tol  # noqa: E402
 from flipfix.repair.solvers.greedy.driver import (FIRST_SLICE, GreedyOutput,  # noqa: E402

@@ -125,7 +125,8 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
     start = 0
     size = 1 if deadline is not None else chunk  # with a deadline: measure one, then fit
     per_cand = 0.0  # measured seconds per candidate
-    pace = [0.0, 0]  # with a deadline: seconds and steps of the kernel calls so far
+    pace = [0.0, 0, 0.0]  # with a deadline: seconds and steps of the kernel calls so far,
+    # and the shortest call's seconds
     while start < K:
         if cancel is not None and cancel.is_set():
             break
@@ -158,23 +159,26 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
     return GreedyOutput(X=X, steps=steps, done=done, seconds=seconds)
 
 
-#: steps per candidate of the first kernel call under a deadline (a step of the feasibility
-#: phase scans every free variable: ~5 ms at 100,000 variables with a wide row)
-FIRST_SLICE = 16
+#: steps per candidate of the first kernel call under a deadline, before any pace is known:
+#: a step of the feasibility phase scans every free variable (5-50 ms at 100,000 variables
+#: with a wide row, by the machine's load), so 16 steps once overran a 1 s budget by 0.5 s
+FIRST_SLICE = 2
 
 
 def _in_slices(run, X, O, steps, workers, deadline, max_steps, pace, cancel) -> np.ndarray:
     """:func:`_in_parts` under a deadline: each kernel call is capped at the steps that fit
-    in half of what is left (at the pace measured so far, ``pace`` = [seconds, steps],
-    updated), and candidates that reach the cap continue from where they stopped (a
-    descent depends only on its current state) until they finish or the deadline passes.
-    Returns which rows finished (bool (rows,)); ``steps`` gets their steps."""
+    in half of what is left (at the pace measured so far, ``pace`` = [seconds, steps,
+    shortest call's seconds], updated), and candidates that reach the cap continue from
+    where they stopped (a descent depends only on its current state) until they finish or
+    the deadline passes. No call starts when less is left than the shortest call took (a
+    call's start-up, O(n) per candidate, is paid whatever its cap). Returns which rows
+    finished (bool (rows,)); ``steps`` gets their steps."""
     rows = X.shape[0]
     live = np.arange(rows)
     per_part = -(-rows // max(1, min(workers, rows)))  # candidates one thread descends
     while live.size:
         left = deadline - time.perf_counter()
-        if left <= 0.0 or (cancel is not None and cancel.is_set()):
+        if left <= pace[2] or (cancel is not None and cancel.is_set()):
             break
         if pace[1] > 0:
             fit = 0.5 * left * pace[1] / max(pace[0], 1e-9) / per_part
@@ -185,7 +189,9 @@ def _in_slices(run, X, O, steps, workers, deadline, max_steps, pace, cancel) -> 
         st = np.zeros(live.size, dtype=np.int64)
         t = time.perf_counter()
         _in_parts(lambda a, b, c: run(a, b, c, cap), sub, O[live], st, workers)
-        pace[0] += time.perf_counter() - t
+        took = time.perf_counter() - t
+        pace[0] += took
+        pace[2] = took if pace[2] == 0.0 else min(pace[2], took)
         pace[1] += int(st.sum()) // max(1, min(workers, live.size))
         X[live] = sub
         steps[live] += st

@@ -35,7 +35,7 @@ and emitted once per Python-facing kernel. So:
 Only the Python-facing kernels are cached (beside the module, in ``__pycache__``): their
 machine code holds their callees'. numba keys a cached kernel by its own source file,
 while these kernels call into their sibling modules:
-:func:`flipfix.repair.solvers.greedy.cache.drop_stale` clears the package's caches when
+:func:`flipfix.repair.kernels.cache.drop_stale` clears the package's caches when
 any of its sources changed.
 """
 

@@ -19,7 +19,7 @@ from flipfix.repair.lowering.compiled import Compiled
 from flipfix.repair.solvers.greedy.groups import Groups
 from flipfix.repair.solvers.greedy.pairs import PairBounds, pair_bounds
 
-__all__ = ["WIDE", "MAX_WIDE", "MAX_GROUP_SHARE", "MIN_GROUPS", "NarrowMaps", "Layout",
+__all__ = ["unique_rows", "WIDE", "MAX_WIDE", "MAX_GROUP_SHARE", "MIN_GROUPS", "NarrowMaps", "Layout",
            "GeneralArrays", "general_arrays", "groups_pay"]
 
 #: A row or count penalty over more than this many variables is "wide": its share of a
@@ -92,6 +92,24 @@ def _csr(keys: np.ndarray, values: np.ndarray, n: int):
     return np.cumsum(ptr), values[order]
 
 
+def unique_rows(M: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The distinct rows of M float64 (R, W), ascending (lexicographic, as
+    ``np.unique(M, axis=0)`` orders them), and each row's position among them: (uniq
+    float64 (U, W), inverse int64 (R,)). One stable sort of W keys (a 1-D sort when W is 1)
+    instead of numpy's sort of R structured rows: at 200,000 rows and W = 1 about 10 times
+    sooner. -0.0 and 0.0 are the same value here."""
+    R, W = M.shape
+    if W == 0:
+        return np.zeros((min(R, 1), 0)), np.zeros(R, dtype=np.int64)
+    order = np.argsort(M[:, 0], kind="stable") if W == 1 else np.lexsort(M.T[::-1])
+    S = M[order]
+    new = np.ones(R, dtype=bool)
+    new[1:] = (S[1:] != S[:-1]).any(axis=1)
+    inverse = np.empty(R, dtype=np.int64)
+    inverse[order] = np.cumsum(new) - 1
+    return S[new], inverse
+
+
 def _layout(compiled: Compiled, cnt: Counts, rows: Rows, qubo_indptr: np.ndarray,
             tol: float) -> Layout:
     """Groups of variables by their wide-structure signature, and the narrow maps."""
@@ -131,7 +149,7 @@ def _layout(compiled: Compiled, cnt: Counts, rows: Rows, qubo_indptr: np.ndarray
         v, lit, coef = l_var[sel], l_val[sel], t_coef[lit_term[sel]]
         for b in (0, 1):  # the literal (v, lit) is satisfied now iff b == lit
             np.add.at(M[b], (v, c), np.where(lit == b, -coef, coef).astype(np.float64))
-    uniq, inv = np.unique(M.reshape(2 * n, W), axis=0, return_inverse=True)
+    uniq, inv = unique_rows(M.reshape(2 * n, W))
     gbase = np.ascontiguousarray(inv.reshape(2, n).T, dtype=np.int64)
     free = compiled.fixed < 0
     groups = n + 1 if too_many else uniq.shape[0]  # n + 1: never worth the trees

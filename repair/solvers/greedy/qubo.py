@@ -18,8 +18,7 @@ import numpy as np
 from flipfix.repair.kernels.bundles import Qubo, unsigned
 from flipfix.repair.solvers.greedy.heap import Heap, compact, new_heap, pop, push
 from flipfix.repair.solvers.greedy.jit import entry, kernel
-from flipfix.repair.solvers.greedy.start import (StartRefs, consensus, init_field, route,
-                                                 start_refs)
+from flipfix.repair.solvers.greedy.start import consensus, init_field, route, start_refs
 from flipfix.repair.solvers.greedy.state import delta
 from flipfix.repair.solvers.greedy.tournament import tree_clear, tree_drain, tree_set
 

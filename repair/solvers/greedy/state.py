@@ -13,6 +13,7 @@ from typing import NamedTuple
 
 import numpy as np
 
+from flipfix.repair.kernels.rows import row_viol
 from flipfix.repair.solvers.greedy.jit import kernel
 
 __all__ = ["State", "delta", "row_viol", "total_viol", "eval_flip", "leave", "flip_state",
@@ -43,17 +44,6 @@ def delta(x, o, field, price, i):
     """The QUBO-and-price change of flipping variable i (int64): float64."""
     d = (1.0 - 2.0 * x[i]) * field[i]
     return d + price if x[i] == o[i] else d - price
-
-
-@kernel
-def row_viol(act, lo, hi, tol):
-    """How far ``act`` lies outside [lo, hi], 0 within ``tol`` of it: float64."""
-    v = 0.0
-    if act < lo:
-        v = lo - act
-    elif act > hi:
-        v = act - hi
-    return v if v > tol else 0.0
 
 
 @kernel
