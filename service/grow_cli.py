@@ -25,6 +25,10 @@ from flipfix.repair.errors import InputError
 
 __all__ = ["register", "run", "format_report"]
 
+#: seconds for the search and the comparison when --time-limit is not given (in-process;
+#: the same as the server's default for Grow)
+DEFAULT_TIME_LIMIT = 30.0
+
 CAUTION = ("The tool proposes; a responsible person decides which candidates the library "
            "keeps (local rules apply where plans affect people).")
 
@@ -70,8 +74,9 @@ def register(subparsers) -> argparse.ArgumentParser:
     p.add_argument("--depth", type=float, default=0.5, help="turning temperature in (0, 1] (0.5)")
     p.add_argument("--max-new", type=int, default=10, help="most states proposed (10)")
     p.add_argument("--seed", type=int, default=0)
-    p.add_argument("--time-limit", type=float, default=30.0,
-                   help="seconds for the search and the comparison (30)")
+    p.add_argument("--time-limit", type=float, default=None,
+                   help=f"seconds for the search and the comparison, > 0 (default "
+                        f"{DEFAULT_TIME_LIMIT:g}; with --server: the server's default)")
     p.add_argument("--heldout", type=int, default=0, metavar="M",
                    help="compare original and grown libraries curated to M on held-out scenarios")
     p.add_argument("--constraints", default=None, metavar="FILE",
@@ -97,6 +102,15 @@ def _settings(args):
                         from_ids=tuple(args.from_ids), top=args.top, chains=args.chains,
                         sweeps=args.sweeps, depth=args.depth, max_new=args.max_new,
                         seed=args.seed)
+
+
+def _budget(args) -> float:
+    """--time-limit checked (> 0, finite), or the default when it is not given."""
+    from flipfix.service.convert.options import check_time_limit
+
+    if args.time_limit is None:
+        return DEFAULT_TIME_LIMIT
+    return check_time_limit(float(args.time_limit), "time_limit")
 
 
 def _progress(enabled: bool, err: TextIO):
@@ -126,7 +140,7 @@ def _local(args, err: TextIO) -> dict:
 
     heldout = ({"m": args.heldout, "family": None, "scenarios": args.scenarios,
                 "seed": args.scenario_seed} if args.heldout else None)
-    res, cmp, note = grow_job(problem, cands, _settings(args), time_limit=args.time_limit,
+    res, cmp, note = grow_job(problem, cands, _settings(args), time_limit=_budget(args),
                               constraints=cons, heldout=heldout, progress=prog)
     out = res.to_dict(problem)
     if cmp is not None:
@@ -161,7 +175,9 @@ def _remote(args, err: TextIO) -> dict:
         problem=args.problem, from_ids=list(s.from_ids), mode=convert_grow.MODE_ENUM[s.mode],
         epsilon=s.epsilon, distance=convert_grow.UNIT_ENUM.get(s.unit, 0), top=s.top,
         chains=s.chains, sweeps=s.sweeps, depth=s.depth, max_new=s.max_new, seed=s.seed,
-        time_limit=args.time_limit, keep=args.keep)
+        keep=args.keep)
+    if args.time_limit is not None:  # unset: the server's default (0 would be refused)
+        req.time_limit = _budget(args)
     if s.tolerance is not None:
         req.tolerance_absolute = s.tolerance
     if s.tolerance_percent is not None:
@@ -175,12 +191,13 @@ def _remote(args, err: TextIO) -> dict:
         req.heldout.scenarios = args.scenarios
         req.heldout.seed = args.scenario_seed
     show = _progress(not args.quiet, err)
-    with FlipfixClient(args.server, timeout=2 * args.time_limit + 60.0) as fx:
+    wait = 2 * _budget(args) + 60.0
+    with FlipfixClient(args.server, timeout=wait) as fx:
         _info, problem = fx.get_problem(args.problem)
         req.constraints.extend(constraint_to_proto(c) for c in _constraints(args, problem))
         reply = None
         for event in gpb_grpc.GrowStub(fx.channel).ProposeStream(
-                req, timeout=2 * args.time_limit + 60.0):
+                req, timeout=wait):
             if event.HasField("progress"):
                 show(event.progress.done, event.progress.total,
                      convert.PHASE_NAMES.get(event.progress.current_phase, ""))

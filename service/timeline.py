@@ -48,6 +48,11 @@ AUDIT_RUNS = {
     "ParetoFront": ("pareto", tpb.ParetoRun),
     "CurateLibrary": ("curate", tpb.CurateRun),
 }
+#: the stored RPC name (history's ``rpc`` column) -> RecordSummary.recorded_rpc
+RPC_ENUM = {"Repair": tpb.RECORDED_RPC_REPAIR,
+            "ProfileRobustness": tpb.RECORDED_RPC_PROFILE_ROBUSTNESS,
+            "StressTest": tpb.RECORDED_RPC_STRESS_TEST, "ParetoFront": tpb.RECORDED_RPC_PARETO_FRONT,
+            "CurateLibrary": tpb.RECORDED_RPC_CURATE_LIBRARY}
 
 
 def caller_of(context) -> str:
@@ -280,11 +285,16 @@ def _summary(r: RecordRow) -> tpb.RecordSummary:
     s = tpb.RecordSummary(
         id=r.id, problem=shown(r.problem),
         kind=tpb.RECORD_KIND_REPAIR if r.kind == "repair" else tpb.RECORD_KIND_AUDIT,
-        rpc=r.rpc, revision=r.revision, recorded_at=r.recorded_at, caller=r.caller,
-        seconds=r.seconds, seed=r.seed, status=r.status, flips=r.flips,
+        recorded_rpc=RPC_ENUM.get(r.rpc, tpb.RECORDED_RPC_UNSPECIFIED), revision=r.revision,
+        recorded_at=r.recorded_at, caller=r.caller, seconds=r.seconds, seed=r.seed, flips=r.flips,
         decisions_changed=r.decisions_changed, event_ids=list(r.event_ids),
         adopted_candidate_id=r.adopted_candidate_id, feasible=r.feasible,
         published_candidate_id=r.published)
+    # the stored status is the core's name: a repair's status, or an audit's stop reason
+    if r.kind == "repair":
+        s.repair_status = convert.STATUS_ENUM.get(r.status, pb.REPAIR_STATUS_UNSPECIFIED)
+    else:
+        s.stop_reason = convert.STOP_ENUM.get(r.status, pb.STOP_REASON_UNSPECIFIED)
     if r.best_cost is not None:
         s.best_cost = r.best_cost
     return s

@@ -74,6 +74,7 @@ def test_propose_matches_the_core_and_stores_nothing(fx, planted):
         assert s["free_moves"] == c.free_moves
         assert s["origin_id"] == "narrow"
     assert not reply.kept and list(reply.added_ids) == []
+    assert reply.stop_reason == fpb.STOP_REASON_DONE and d["stopped"] == core.stopped == "done"
     batches = fx.list_candidates("planted")
     assert [i for b in batches for i in b.ids] == ["narrow"]  # nothing stored unless asked
 
@@ -99,6 +100,8 @@ def test_heldout_comparison_over_the_service(fx, planted):
     h = reply.heldout
     assert h.heldout == 4 and h.train == 4
     assert h.grown_mean < h.original_mean  # the broad states absorb the late penalties
+    assert h.stop_reason == fpb.STOP_REASON_DONE  # all 8 scenarios ran within 60 s
+    assert reply_to_dict(reply, planted.problem)["heldout"]["stopped"] == "done"
 
 
 def test_bad_requests_name_the_field(fx, planted):
@@ -117,9 +120,29 @@ def test_bad_requests_name_the_field(fx, planted):
 
 def test_deadline_ends_a_long_search_with_what_it_has(fx, planted):
     # 10**8 sweeps would take hours: only the deadline budget stops it
-    reply = _stub(fx).Propose(_request(sweeps=10 ** 6, chains=1, time_limit=0), timeout=1.5)
-    assert reply.stopped in ("time_limit", "cancelled")
+    req = _request(sweeps=10 ** 6, chains=1)
+    req.ClearField("time_limit")  # unset: the server's default (30 s), cut by the deadline
+    reply = _stub(fx).Propose(req, timeout=1.5)
+    assert reply.stop_reason in (fpb.STOP_REASON_TIME_LIMIT, fpb.STOP_REASON_CANCELLED)
     assert reply.time_limit < 1.5
+
+
+def test_time_limit_unset_is_the_stated_default_and_zero_is_refused(fx, planted):
+    from grpc_status import rpc_status
+    from google.rpc import error_details_pb2
+
+    req = _request(chains=1, sweeps=20)
+    req.ClearField("time_limit")
+    reply = _stub(fx).Propose(req, timeout=None)  # no deadline: nothing caps the default
+    assert reply.time_limit == 30.0  # the default grow.proto states
+    assert reply.stop_reason == fpb.STOP_REASON_DONE and reply.chains_run == reply.chains_total
+    for bad in (0.0, -2.0):
+        err = rpc_error(lambda: _stub(fx).Propose(_request(time_limit=bad), timeout=60))
+        assert err.code() == grpc.StatusCode.INVALID_ARGUMENT
+        assert err.details().startswith("time_limit: must be a number of seconds > 0")
+        info = error_details_pb2.ErrorInfo()
+        assert any(d.Unpack(info) for d in rpc_status.from_call(err).details)
+        assert info.reason == "INVALID_FIELD" and info.metadata["field"] == "time_limit"
 
 
 def test_cli_in_process_and_through_the_server(tmp_path, server, planted, capsys):
@@ -143,6 +166,9 @@ def test_cli_in_process_and_through_the_server(tmp_path, server, planted, capsys
     assert rc == 0 and "narrow~robust" in capsys.readouterr().out
     rc = cli.main(["grow", str(prob), str(cands), "--depth", "2", "--quiet"])
     assert rc == 2 and "--depth" in capsys.readouterr().err
+    for where in ([str(prob), str(cands)], ["planted", "--server", server.address]):
+        rc = cli.main(["grow", *where, "--time-limit", "0", "--quiet"])
+        assert rc == 2 and "--time-limit: must be a number of seconds > 0" in capsys.readouterr().err
 
 
 

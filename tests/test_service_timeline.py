@@ -76,7 +76,9 @@ def test_events_published_plan_record_adopt(tl, ward):
     [summary] = tl.list_records("ward")
     assert summary["id"] == out["record_id"] and summary["kind"] == "RECORD_KIND_REPAIR"
     assert summary["event_ids"] == [e1["id"]] and summary["feasible"]
-    assert summary["best_cost"] == pytest.approx(best) and summary["status"] == "optimal"
+    assert summary["best_cost"] == pytest.approx(best) and summary["repair_status"] == "REPAIR_STATUS_OPTIMAL"
+    assert summary["recorded_rpc"] == "RECORDED_RPC_REPAIR"
+    assert summary["stop_reason"] == "STOP_REASON_UNSPECIFIED"  # audit records only
     rec = tl.get_record("ward", out["record_id"])
     assert rec.repair.request.use_events and rec.repair.reply.best.cost == pytest.approx(best)
     assert [e.id for e in rec.events] == [e1["id"]]
@@ -170,7 +172,9 @@ def test_audit_runs_are_recorded_and_retention_holds(tl, server):
 
     tl.stress_test("ward", ScenarioFamily(hamming_weight=1.0), scenarios=3, time_limit=5.0)
     [rec] = tl.list_records("ward")
-    assert rec["kind"] == "RECORD_KIND_AUDIT" and rec["rpc"] == "StressTest"
+    assert rec["kind"] == "RECORD_KIND_AUDIT" and rec["recorded_rpc"] == "RECORDED_RPC_STRESS_TEST"
+    assert rec["stop_reason"] == "STOP_REASON_DONE"  # all 3 scenarios ran
+    assert rec["repair_status"] == "REPAIR_STATUS_UNSPECIFIED"  # repair records only
     full = tl.get_record("ward", rec["id"])
     assert full.WhichOneof("run") == "stress" and full.stress.reply.scenarios_done == 3
     err = rpc_error(lambda: tl.adopt("ward", rec["id"]))
@@ -182,6 +186,12 @@ def test_audit_runs_are_recorded_and_retention_holds(tl, server):
     tl.repair("ward", method="greedy", time_limit=0.5, skip_record=True)
     assert len(tl.list_records("ward")) == min(4, keep)
     assert as_dict(tpb.RecordSummary(id=5))["id"] == 5
+    # a run cut short by its time limit: the record's stop reason is the reply's
+    rep = tl.stress_test("ward", ScenarioFamily(hamming_weight=1.0), scenarios=1000,
+                         time_limit=0.05)
+    newest = tl.list_records("ward", limit=1)[0]
+    assert rep.scenarios_done < 1000 and rep.stopped == "time_limit"
+    assert newest["stop_reason"] == "STOP_REASON_TIME_LIMIT"
 
 
 def test_alternatives_through_the_server(tl, ward):

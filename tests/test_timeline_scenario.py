@@ -166,7 +166,7 @@ def test_a_day_of_events_survives_a_restart(tmp_path, capsys):
         after, _ = _tl(capsys, server, "records", "workshop")
         assert after == before and len(after) == 4
         assert [(r["id"], r["adopted_candidate_id"]) for r in after[:0:-1]] == adopted
-        assert after[0]["status"] == "infeasible" and after[0]["adopted_candidate_id"] == ""
+        assert after[0]["repair_status"] == "REPAIR_STATUS_INFEASIBLE" and after[0]["adopted_candidate_id"] == ""
         assert _tl(capsys, server, "events", "workshop", "--all")[0] == events_before
         assert [e["state"] for e in events_before["events"]].count("EVENT_STATE_IN_FORCE") == 9
         assert _tl(capsys, server, "published", "workshop")[0]["candidate_id"] == published

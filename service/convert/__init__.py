@@ -34,7 +34,7 @@ from flipfix.service.convert.constraints import (
 )
 from flipfix.service.convert.enums import (
     METHOD_ENUM, METHOD_NAMES, PHASE_ENUM, PHASE_NAMES, SELECTION_ENUM, SELECTION_NAMES,
-    STATUS_NAMES, STOP_NAMES,
+    STATUS_ENUM, STATUS_NAMES, STOP_ENUM, STOP_NAMES,
 )
 from flipfix.service.convert.labels import (
     assignment_to_dict, dict_to_assignment, label_to_py, py_to_label, py_to_value, value_to_py,
@@ -61,7 +61,8 @@ __all__ = [
     "constraint_paths", "constraints_to_compiled", "constraint_to_proto", "doc_to_constraint",
     "docs_to_constraints",
     "options_to_kwargs", "kwargs_to_options", "nonneg", "METHOD_NAMES", "METHOD_ENUM",
-    "SELECTION_NAMES", "SELECTION_ENUM", "PHASE_ENUM", "PHASE_NAMES", "STATUS_NAMES", "STOP_NAMES", "DEFAULT_TIME_LIMIT", "check_time_limit",
+    "SELECTION_NAMES", "SELECTION_ENUM", "PHASE_ENUM", "PHASE_NAMES", "STATUS_ENUM", "STATUS_NAMES",
+    "STOP_ENUM", "STOP_NAMES", "DEFAULT_TIME_LIMIT", "check_time_limit",
     "method_number",
     "result_to_reply", "reply_values", "reply_to_result", "reply_to_dict",
     "DEFAULT_SCENARIOS", "family_to_domain", "family_to_proto", "stress_to_kwargs",

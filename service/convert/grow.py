@@ -12,8 +12,9 @@ from flipfix.repair.model.problem import Problem
 from flipfix.service.convert.audits import DEFAULT_SCENARIOS, family_to_domain
 from flipfix.service.convert.candidates import array_to_packed, packed_to_array
 from flipfix.service.convert.constraints import constraints_to_domain
-from flipfix.service.convert.enums import enum_name
+from flipfix.service.convert.enums import STOP_ENUM, STOP_NAMES, enum_name
 from flipfix.service.convert.options import nonneg
+from flipfix.service.convert.options import time_limit as optional_time_limit
 from flipfix.service.generated import grow_pb2 as gpb
 
 __all__ = ["MODE_NAMES", "MODE_ENUM", "UNIT_NAMES", "UNIT_ENUM", "MAX_CHAINS", "MAX_SWEEPS",
@@ -37,7 +38,7 @@ def request_to_job(r: gpb.GrowRequest, problem: Problem, candidates: CandidateSe
                    default_time_limit: float, max_scenarios: int | None = None
                    ) -> tuple[Any, list, dict | None, float]:
     """(checked GrowSettings, hard constraints, held-out keyword arguments or None, requested
-    time limit).
+    time limit: ``default_time_limit`` when unset; 0 or less is refused).
 
     Errors name the request's fields (``tolerance_absolute``, ``from_ids[2]``,
     ``heldout.family.hamming_weight``...)."""
@@ -72,7 +73,7 @@ def request_to_job(r: gpb.GrowRequest, problem: Problem, candidates: CandidateSe
         raise LimitError("sweeps", f"{settings.sweeps} sweeps exceed the limit of {MAX_SWEEPS}")
     constraints = constraints_to_domain(r.constraints)
     hard_rows(problem, constraints)  # hard linear rows only; errors name constraints[k]
-    t = nonneg(r.time_limit, "time_limit")
+    t = optional_time_limit(r, "time_limit", "time_limit", default_time_limit)
     heldout = None
     h = r.heldout
     if h.m:
@@ -86,7 +87,7 @@ def request_to_job(r: gpb.GrowRequest, problem: Problem, candidates: CandidateSe
         family = (family_to_domain(h.family, problem, field="heldout.family")
                   if r.heldout.HasField("family") else None)
         heldout = {"m": int(h.m), "family": family, "scenarios": scenarios, "seed": int(h.seed)}
-    return settings, constraints, heldout, (t if t > 0 else float(default_time_limit))
+    return settings, constraints, heldout, t
 
 
 def _opt(msg, name: str, v: float) -> None:
@@ -99,7 +100,7 @@ def result_to_reply(res, cmp, *, time_limit: float, revision: int, kept: bool = 
     """A :class:`~flipfix.repair.grow.neighbours.GrowResult` (and comparison) as a reply."""
     s = res.settings
     reply = gpb.GrowReply(
-        best_energy=res.best_energy, energy_cap=res.energy_cap, stopped=res.stopped,
+        best_energy=res.best_energy, energy_cap=res.energy_cap, stop_reason=STOP_ENUM[res.stopped],
         seconds=res.seconds, time_limit=time_limit, chains_run=res.chains_run,
         chains_total=res.chains_total, outside_cap=res.outside_cap, repeats=res.repeats,
         no_gain=res.no_gain, reward_free=s.reward_free, reward_distance=s.reward_distance,
@@ -116,8 +117,9 @@ def result_to_reply(res, cmp, *, time_limit: float, revision: int, kept: bool = 
     if cmp is not None:
         h = reply.heldout
         for name in ("m", "m_original", "scenarios", "train", "heldout", "original_infeasible",
-                     "grown_infeasible", "wins", "ties", "losses", "stopped"):
+                     "grown_infeasible", "wins", "ties", "losses"):
             setattr(h, name, getattr(cmp, name))
+        h.stop_reason = STOP_ENUM[cmp.stopped]
         h.original_kept.extend(cmp.original_kept)
         h.grown_kept.extend(cmp.grown_kept)
         for name in ("original_mean", "original_worst", "grown_mean", "grown_worst"):
@@ -140,7 +142,8 @@ def reply_to_dict(reply: gpb.GrowReply, problem: Problem) -> dict[str, Any]:
             "seed": st.seed,
             "assignment": {str(lab): int(v) for lab, v in zip(problem.labels, vals)}})
     out = {"best_energy": reply.best_energy, "energy_cap": reply.energy_cap,
-           "stopped": reply.stopped, "seconds": reply.seconds, "time_limit": reply.time_limit,
+           "stopped": STOP_NAMES.get(reply.stop_reason, ""), "seconds": reply.seconds,
+           "time_limit": reply.time_limit,
            "chains_run": reply.chains_run, "chains_total": reply.chains_total,
            "outside_cap": reply.outside_cap, "repeats": reply.repeats, "no_gain": reply.no_gain,
            "reward_free": reply.reward_free, "reward_distance": reply.reward_distance,
@@ -151,7 +154,8 @@ def reply_to_dict(reply: gpb.GrowReply, problem: Problem) -> dict[str, Any]:
         h = reply.heldout
         d = {name: getattr(h, name) for name in (
             "m", "m_original", "scenarios", "train", "heldout", "original_infeasible",
-            "grown_infeasible", "wins", "ties", "losses", "stopped")}
+            "grown_infeasible", "wins", "ties", "losses")}
+        d["stopped"] = STOP_NAMES.get(h.stop_reason, "")
         d["original_kept"], d["grown_kept"] = list(h.original_kept), list(h.grown_kept)
         for name in ("original_mean", "original_worst", "grown_mean", "grown_worst"):
             d[name] = getattr(h, name) if h.HasField(name) else None

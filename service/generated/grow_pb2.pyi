@@ -120,7 +120,7 @@ class GrownState(_message.Message):
     def __init__(self, id: _Optional[str] = ..., values: _Optional[_Union[_flipfix_pb2.PackedAssignments, _Mapping]] = ..., energy: _Optional[float] = ..., energy_given_up: _Optional[float] = ..., above_best: _Optional[float] = ..., free_variables: _Optional[int] = ..., free_decisions: _Optional[int] = ..., free_moves: _Optional[int] = ..., free_gained: _Optional[int] = ..., distance: _Optional[int] = ..., nearest_id: _Optional[str] = ..., origin_id: _Optional[str] = ..., mode: _Optional[_Union[GrowMode, str]] = ..., chain: _Optional[int] = ..., seed: _Optional[int] = ...) -> None: ...
 
 class HeldoutComparison(_message.Message):
-    __slots__ = ("m", "m_original", "scenarios", "train", "heldout", "original_kept", "grown_kept", "original_mean", "original_worst", "grown_mean", "grown_worst", "original_infeasible", "grown_infeasible", "wins", "ties", "losses", "stopped")
+    __slots__ = ("m", "m_original", "scenarios", "train", "heldout", "original_kept", "grown_kept", "original_mean", "original_worst", "grown_mean", "grown_worst", "original_infeasible", "grown_infeasible", "wins", "ties", "losses", "stop_reason")
     M_FIELD_NUMBER: _ClassVar[int]
     M_ORIGINAL_FIELD_NUMBER: _ClassVar[int]
     SCENARIOS_FIELD_NUMBER: _ClassVar[int]
@@ -137,7 +137,7 @@ class HeldoutComparison(_message.Message):
     WINS_FIELD_NUMBER: _ClassVar[int]
     TIES_FIELD_NUMBER: _ClassVar[int]
     LOSSES_FIELD_NUMBER: _ClassVar[int]
-    STOPPED_FIELD_NUMBER: _ClassVar[int]
+    STOP_REASON_FIELD_NUMBER: _ClassVar[int]
     m: int
     m_original: int
     scenarios: int
@@ -154,15 +154,14 @@ class HeldoutComparison(_message.Message):
     wins: int
     ties: int
     losses: int
-    stopped: str
-    def __init__(self, m: _Optional[int] = ..., m_original: _Optional[int] = ..., scenarios: _Optional[int] = ..., train: _Optional[int] = ..., heldout: _Optional[int] = ..., original_kept: _Optional[_Iterable[str]] = ..., grown_kept: _Optional[_Iterable[str]] = ..., original_mean: _Optional[float] = ..., original_worst: _Optional[float] = ..., grown_mean: _Optional[float] = ..., grown_worst: _Optional[float] = ..., original_infeasible: _Optional[int] = ..., grown_infeasible: _Optional[int] = ..., wins: _Optional[int] = ..., ties: _Optional[int] = ..., losses: _Optional[int] = ..., stopped: _Optional[str] = ...) -> None: ...
+    stop_reason: _flipfix_pb2.StopReason
+    def __init__(self, m: _Optional[int] = ..., m_original: _Optional[int] = ..., scenarios: _Optional[int] = ..., train: _Optional[int] = ..., heldout: _Optional[int] = ..., original_kept: _Optional[_Iterable[str]] = ..., grown_kept: _Optional[_Iterable[str]] = ..., original_mean: _Optional[float] = ..., original_worst: _Optional[float] = ..., grown_mean: _Optional[float] = ..., grown_worst: _Optional[float] = ..., original_infeasible: _Optional[int] = ..., grown_infeasible: _Optional[int] = ..., wins: _Optional[int] = ..., ties: _Optional[int] = ..., losses: _Optional[int] = ..., stop_reason: _Optional[_Union[_flipfix_pb2.StopReason, str]] = ...) -> None: ...
 
 class GrowReply(_message.Message):
-    __slots__ = ("states", "best_energy", "energy_cap", "stopped", "seconds", "time_limit", "chains_run", "chains_total", "outside_cap", "repeats", "no_gain", "reward_free", "reward_distance", "distance", "kept", "added_ids", "message", "revision", "heldout", "scale")
+    __slots__ = ("states", "best_energy", "energy_cap", "seconds", "time_limit", "chains_run", "chains_total", "outside_cap", "repeats", "no_gain", "reward_free", "reward_distance", "distance", "kept", "added_ids", "message", "revision", "heldout", "scale", "stop_reason")
     STATES_FIELD_NUMBER: _ClassVar[int]
     BEST_ENERGY_FIELD_NUMBER: _ClassVar[int]
     ENERGY_CAP_FIELD_NUMBER: _ClassVar[int]
-    STOPPED_FIELD_NUMBER: _ClassVar[int]
     SECONDS_FIELD_NUMBER: _ClassVar[int]
     TIME_LIMIT_FIELD_NUMBER: _ClassVar[int]
     CHAINS_RUN_FIELD_NUMBER: _ClassVar[int]
@@ -179,10 +178,10 @@ class GrowReply(_message.Message):
     REVISION_FIELD_NUMBER: _ClassVar[int]
     HELDOUT_FIELD_NUMBER: _ClassVar[int]
     SCALE_FIELD_NUMBER: _ClassVar[int]
+    STOP_REASON_FIELD_NUMBER: _ClassVar[int]
     states: _containers.RepeatedCompositeFieldContainer[GrownState]
     best_energy: float
     energy_cap: float
-    stopped: str
     seconds: float
     time_limit: float
     chains_run: int
@@ -199,7 +198,8 @@ class GrowReply(_message.Message):
     revision: int
     heldout: HeldoutComparison
     scale: float
-    def __init__(self, states: _Optional[_Iterable[_Union[GrownState, _Mapping]]] = ..., best_energy: _Optional[float] = ..., energy_cap: _Optional[float] = ..., stopped: _Optional[str] = ..., seconds: _Optional[float] = ..., time_limit: _Optional[float] = ..., chains_run: _Optional[int] = ..., chains_total: _Optional[int] = ..., outside_cap: _Optional[int] = ..., repeats: _Optional[int] = ..., no_gain: _Optional[int] = ..., reward_free: _Optional[float] = ..., reward_distance: _Optional[float] = ..., distance: _Optional[_Union[GrowDistance, str]] = ..., kept: _Optional[bool] = ..., added_ids: _Optional[_Iterable[str]] = ..., message: _Optional[str] = ..., revision: _Optional[int] = ..., heldout: _Optional[_Union[HeldoutComparison, _Mapping]] = ..., scale: _Optional[float] = ...) -> None: ...
+    stop_reason: _flipfix_pb2.StopReason
+    def __init__(self, states: _Optional[_Iterable[_Union[GrownState, _Mapping]]] = ..., best_energy: _Optional[float] = ..., energy_cap: _Optional[float] = ..., seconds: _Optional[float] = ..., time_limit: _Optional[float] = ..., chains_run: _Optional[int] = ..., chains_total: _Optional[int] = ..., outside_cap: _Optional[int] = ..., repeats: _Optional[int] = ..., no_gain: _Optional[int] = ..., reward_free: _Optional[float] = ..., reward_distance: _Optional[float] = ..., distance: _Optional[_Union[GrowDistance, str]] = ..., kept: _Optional[bool] = ..., added_ids: _Optional[_Iterable[str]] = ..., message: _Optional[str] = ..., revision: _Optional[int] = ..., heldout: _Optional[_Union[HeldoutComparison, _Mapping]] = ..., scale: _Optional[float] = ..., stop_reason: _Optional[_Union[_flipfix_pb2.StopReason, str]] = ...) -> None: ...
 
 class GrowEvent(_message.Message):
     __slots__ = ("progress", "result")

@@ -21,7 +21,7 @@ _sym_db = _symbol_database.Default()
 from . import flipfix_pb2 as flipfix_dot_v1_dot_flipfix__pb2
 
 
-DESCRIPTOR = _descriptor_pool.Default().AddSerializedFile(b'\n\x19\x66lipfix/v1/timeline.proto\x12\nflipfix.v1\x1a\x18\x66lipfix/v1/flipfix.proto\"\xf2\x01\n\x05\x45vent\x12\n\n\x02id\x18\x01 \x01(\x04\x12\x0f\n\x07problem\x18\x02 \x01(\t\x12*\n\nconstraint\x18\x03 \x01(\x0b\x32\x16.flipfix.v1.Constraint\x12%\n\x05state\x18\x04 \x01(\x0e\x32\x16.flipfix.v1.EventState\x12\x10\n\x08\x61\x64\x64\x65\x64_at\x18\x05 \x01(\t\x12\x10\n\x08\x61\x64\x64\x65\x64_by\x18\x06 \x01(\t\x12\x10\n\x08revision\x18\x07 \x01(\x04\x12\x14\n\x0cwithdrawn_at\x18\x08 \x01(\t\x12\x14\n\x0cwithdrawn_by\x18\t \x01(\t\x12\x17\n\x0fproblem_message\x18\n \x01(\t\"N\n\x0f\x41\x64\x64\x45ventRequest\x12\x0f\n\x07problem\x18\x01 \x01(\t\x12*\n\nconstraint\x18\x02 \x01(\x0b\x32\x16.flipfix.v1.Constraint\"9\n\x14WithdrawEventRequest\x12\x0f\n\x07problem\x18\x01 \x01(\t\x12\x10\n\x08\x65vent_id\x18\x02 \x01(\x04\"?\n\x11ListEventsRequest\x12\x0f\n\x07problem\x18\x01 \x01(\t\x12\x19\n\x11include_withdrawn\x18\x02 \x01(\x08\"F\n\x0fListEventsReply\x12!\n\x06\x65vents\x18\x01 \x03(\x0b\x32\x11.flipfix.v1.Event\x12\x10\n\x08revision\x18\x02 \x01(\x04\"t\n\rPublishedPlan\x12\x0f\n\x07problem\x18\x01 \x01(\t\x12\x14\n\x0c\x63\x61ndidate_id\x18\x02 \x01(\t\x12\x10\n\x08revision\x18\x03 \x01(\x04\x12\x14\n\x0cpublished_at\x18\x04 \x01(\t\x12\x14\n\x0cpublished_by\x18\x05 \x01(\t\"@\n\x17SetPublishedPlanRequest\x12\x0f\n\x07problem\x18\x01 \x01(\t\x12\x14\n\x0c\x63\x61ndidate_id\x18\x02 \x01(\t\"*\n\x17GetPublishedPlanRequest\x12\x0f\n\x07problem\x18\x01 \x01(\t\"\xf8\x02\n\rRecordSummary\x12\n\n\x02id\x18\x01 \x01(\x04\x12\x0f\n\x07problem\x18\x02 \x01(\t\x12$\n\x04kind\x18\x03 \x01(\x0e\x32\x16.flipfix.v1.RecordKind\x12\x0b\n\x03rpc\x18\x04 \x01(\t\x12\x10\n\x08revision\x18\x05 \x01(\x04\x12\x13\n\x0brecorded_at\x18\x06 \x01(\t\x12\x0e\n\x06\x63\x61ller\x18\x07 \x01(\t\x12\x0f\n\x07seconds\x18\x08 \x01(\x01\x12\x0c\n\x04seed\x18\t \x01(\x04\x12\x0e\n\x06status\x18\n \x01(\t\x12\x16\n\tbest_cost\x18\x0b \x01(\x01H\x00\x88\x01\x01\x12\r\n\x05\x66lips\x18\x0c \x01(\r\x12\x19\n\x11\x64\x65\x63isions_changed\x18\r \x01(\r\x12\x11\n\tevent_ids\x18\x0e \x03(\x04\x12\x1c\n\x14\x61\x64opted_candidate_id\x18\x0f \x01(\t\x12\x10\n\x08\x66\x65\x61sible\x18\x10 \x01(\x08\x12\x1e\n\x16published_candidate_id\x18\x11 \x01(\tB\x0c\n\n_best_cost\"\xb3\x02\n\x06Record\x12*\n\x07summary\x18\x01 \x01(\x0b\x32\x19.flipfix.v1.RecordSummary\x12!\n\x06\x65vents\x18\x02 \x03(\x0b\x32\x11.flipfix.v1.Event\x12\'\n\x06repair\x18\x03 \x01(\x0b\x32\x15.flipfix.v1.RepairRunH\x00\x12/\n\nrobustness\x18\x04 \x01(\x0b\x32\x19.flipfix.v1.RobustnessRunH\x00\x12\'\n\x06stress\x18\x05 \x01(\x0b\x32\x15.flipfix.v1.StressRunH\x00\x12\'\n\x06pareto\x18\x06 \x01(\x0b\x32\x15.flipfix.v1.ParetoRunH\x00\x12\'\n\x06\x63urate\x18\x07 \x01(\x0b\x32\x15.flipfix.v1.CurateRunH\x00\x42\x05\n\x03run\"_\n\tRepairRun\x12*\n\x07request\x18\x01 \x01(\x0b\x32\x19.flipfix.v1.RepairRequest\x12&\n\x05reply\x18\x02 \x01(\x0b\x32\x17.flipfix.v1.RepairReply\"k\n\rRobustnessRun\x12.\n\x07request\x18\x01 \x01(\x0b\x32\x1d.flipfix.v1.RobustnessRequest\x12*\n\x05reply\x18\x02 \x01(\x0b\x32\x1b.flipfix.v1.RobustnessReply\"_\n\tStressRun\x12*\n\x07request\x18\x01 \x01(\x0b\x32\x19.flipfix.v1.StressRequest\x12&\n\x05reply\x18\x02 \x01(\x0b\x32\x17.flipfix.v1.StressReply\"_\n\tParetoRun\x12*\n\x07request\x18\x01 \x01(\x0b\x32\x19.flipfix.v1.ParetoRequest\x12&\n\x05reply\x18\x02 \x01(\x0b\x32\x17.flipfix.v1.ParetoReply\"_\n\tCurateRun\x12*\n\x07request\x18\x01 \x01(\x0b\x32\x19.flipfix.v1.CurateRequest\x12&\n\x05reply\x18\x02 \x01(\x0b\x32\x17.flipfix.v1.CurateReply\"L\n\x12ListRecordsRequest\x12\x0f\n\x07problem\x18\x01 \x01(\t\x12\x11\n\tpage_size\x18\x02 \x01(\r\x12\x12\n\npage_token\x18\x03 \x01(\t\"W\n\x10ListRecordsReply\x12*\n\x07records\x18\x01 \x03(\x0b\x32\x19.flipfix.v1.RecordSummary\x12\x17\n\x0fnext_page_token\x18\x02 \x01(\t\"6\n\x10GetRecordRequest\x12\x0f\n\x07problem\x18\x01 \x01(\t\x12\x11\n\trecord_id\x18\x02 \x01(\x04\"Y\n\x0c\x41\x64optRequest\x12\x0f\n\x07problem\x18\x01 \x01(\t\x12\x11\n\trecord_id\x18\x02 \x01(\x04\x12\x14\n\x0c\x63\x61ndidate_id\x18\x03 \x01(\t\x12\x0f\n\x07publish\x18\x04 \x01(\x08\"s\n\nAdoptReply\x12\x14\n\x0c\x63\x61ndidate_id\x18\x01 \x01(\t\x12\x10\n\x08revision\x18\x02 \x01(\x04\x12\x11\n\tpublished\x18\x03 \x01(\x08\x12*\n\nprovenance\x18\x04 \x01(\x0b\x32\x16.flipfix.v1.Provenance*w\n\nEventState\x12\x1b\n\x17\x45VENT_STATE_UNSPECIFIED\x10\x00\x12\x18\n\x14\x45VENT_STATE_IN_FORCE\x10\x01\x12\x19\n\x15\x45VENT_STATE_WITHDRAWN\x10\x02\x12\x17\n\x13\x45VENT_STATE_INVALID\x10\x03*X\n\nRecordKind\x12\x1b\n\x17RECORD_KIND_UNSPECIFIED\x10\x00\x12\x16\n\x12RECORD_KIND_REPAIR\x10\x01\x12\x15\n\x11RECORD_KIND_AUDIT\x10\x02\x32\xc5\x04\n\x08Timeline\x12:\n\x08\x41\x64\x64\x45vent\x12\x1b.flipfix.v1.AddEventRequest\x1a\x11.flipfix.v1.Event\x12\x44\n\rWithdrawEvent\x12 .flipfix.v1.WithdrawEventRequest\x1a\x11.flipfix.v1.Event\x12H\n\nListEvents\x12\x1d.flipfix.v1.ListEventsRequest\x1a\x1b.flipfix.v1.ListEventsReply\x12R\n\x10SetPublishedPlan\x12#.flipfix.v1.SetPublishedPlanRequest\x1a\x19.flipfix.v1.PublishedPlan\x12R\n\x10GetPublishedPlan\x12#.flipfix.v1.GetPublishedPlanRequest\x1a\x19.flipfix.v1.PublishedPlan\x12K\n\x0bListRecords\x12\x1e.flipfix.v1.ListRecordsRequest\x1a\x1c.flipfix.v1.ListRecordsReply\x12=\n\tGetRecord\x12\x1c.flipfix.v1.GetRecordRequest\x1a\x12.flipfix.v1.Record\x12\x39\n\x05\x41\x64opt\x12\x18.flipfix.v1.AdoptRequest\x1a\x16.flipfix.v1.AdoptReplyBt\n\x0eorg.flipfix.v1B\rTimelineProtoP\x01Z#flipfix/gen/go/flipfix/v1;flipfixv1\xa2\x02\x03\x46\x46X\xaa\x02\nFlipfix.V1\xca\x02\nFlipfix\\V1\xea\x02\x0b\x46lipfix::V1b\x06proto3')
+DESCRIPTOR = _descriptor_pool.Default().AddSerializedFile(b'\n\x19\x66lipfix/v1/timeline.proto\x12\nflipfix.v1\x1a\x18\x66lipfix/v1/flipfix.proto\"\xf2\x01\n\x05\x45vent\x12\n\n\x02id\x18\x01 \x01(\x04\x12\x0f\n\x07problem\x18\x02 \x01(\t\x12*\n\nconstraint\x18\x03 \x01(\x0b\x32\x16.flipfix.v1.Constraint\x12%\n\x05state\x18\x04 \x01(\x0e\x32\x16.flipfix.v1.EventState\x12\x10\n\x08\x61\x64\x64\x65\x64_at\x18\x05 \x01(\t\x12\x10\n\x08\x61\x64\x64\x65\x64_by\x18\x06 \x01(\t\x12\x10\n\x08revision\x18\x07 \x01(\x04\x12\x14\n\x0cwithdrawn_at\x18\x08 \x01(\t\x12\x14\n\x0cwithdrawn_by\x18\t \x01(\t\x12\x17\n\x0fproblem_message\x18\n \x01(\t\"N\n\x0f\x41\x64\x64\x45ventRequest\x12\x0f\n\x07problem\x18\x01 \x01(\t\x12*\n\nconstraint\x18\x02 \x01(\x0b\x32\x16.flipfix.v1.Constraint\"9\n\x14WithdrawEventRequest\x12\x0f\n\x07problem\x18\x01 \x01(\t\x12\x10\n\x08\x65vent_id\x18\x02 \x01(\x04\"?\n\x11ListEventsRequest\x12\x0f\n\x07problem\x18\x01 \x01(\t\x12\x19\n\x11include_withdrawn\x18\x02 \x01(\x08\"F\n\x0fListEventsReply\x12!\n\x06\x65vents\x18\x01 \x03(\x0b\x32\x11.flipfix.v1.Event\x12\x10\n\x08revision\x18\x02 \x01(\x04\"t\n\rPublishedPlan\x12\x0f\n\x07problem\x18\x01 \x01(\t\x12\x14\n\x0c\x63\x61ndidate_id\x18\x02 \x01(\t\x12\x10\n\x08revision\x18\x03 \x01(\x04\x12\x14\n\x0cpublished_at\x18\x04 \x01(\t\x12\x14\n\x0cpublished_by\x18\x05 \x01(\t\"@\n\x17SetPublishedPlanRequest\x12\x0f\n\x07problem\x18\x01 \x01(\t\x12\x14\n\x0c\x63\x61ndidate_id\x18\x02 \x01(\t\"*\n\x17GetPublishedPlanRequest\x12\x0f\n\x07problem\x18\x01 \x01(\t\"\x81\x04\n\rRecordSummary\x12\n\n\x02id\x18\x01 \x01(\x04\x12\x0f\n\x07problem\x18\x02 \x01(\t\x12$\n\x04kind\x18\x03 \x01(\x0e\x32\x16.flipfix.v1.RecordKind\x12\x10\n\x08revision\x18\x05 \x01(\x04\x12\x13\n\x0brecorded_at\x18\x06 \x01(\t\x12\x0e\n\x06\x63\x61ller\x18\x07 \x01(\t\x12\x0f\n\x07seconds\x18\x08 \x01(\x01\x12\x0c\n\x04seed\x18\t \x01(\x04\x12\x16\n\tbest_cost\x18\x0b \x01(\x01H\x00\x88\x01\x01\x12\r\n\x05\x66lips\x18\x0c \x01(\r\x12\x19\n\x11\x64\x65\x63isions_changed\x18\r \x01(\r\x12\x11\n\tevent_ids\x18\x0e \x03(\x04\x12\x1c\n\x14\x61\x64opted_candidate_id\x18\x0f \x01(\t\x12\x10\n\x08\x66\x65\x61sible\x18\x10 \x01(\x08\x12\x1e\n\x16published_candidate_id\x18\x11 \x01(\t\x12/\n\rrepair_status\x18\x1e \x01(\x0e\x32\x18.flipfix.v1.RepairStatus\x12+\n\x0bstop_reason\x18\x1f \x01(\x0e\x32\x16.flipfix.v1.StopReason\x12-\n\x0crecorded_rpc\x18  \x01(\x0e\x32\x17.flipfix.v1.RecordedRpcB\x0c\n\n_best_costJ\x04\x08\x04\x10\x05J\x04\x08\n\x10\x0bR\x03rpcR\x06status\"\xb3\x02\n\x06Record\x12*\n\x07summary\x18\x01 \x01(\x0b\x32\x19.flipfix.v1.RecordSummary\x12!\n\x06\x65vents\x18\x02 \x03(\x0b\x32\x11.flipfix.v1.Event\x12\'\n\x06repair\x18\x03 \x01(\x0b\x32\x15.flipfix.v1.RepairRunH\x00\x12/\n\nrobustness\x18\x04 \x01(\x0b\x32\x19.flipfix.v1.RobustnessRunH\x00\x12\'\n\x06stress\x18\x05 \x01(\x0b\x32\x15.flipfix.v1.StressRunH\x00\x12\'\n\x06pareto\x18\x06 \x01(\x0b\x32\x15.flipfix.v1.ParetoRunH\x00\x12\'\n\x06\x63urate\x18\x07 \x01(\x0b\x32\x15.flipfix.v1.CurateRunH\x00\x42\x05\n\x03run\"_\n\tRepairRun\x12*\n\x07request\x18\x01 \x01(\x0b\x32\x19.flipfix.v1.RepairRequest\x12&\n\x05reply\x18\x02 \x01(\x0b\x32\x17.flipfix.v1.RepairReply\"k\n\rRobustnessRun\x12.\n\x07request\x18\x01 \x01(\x0b\x32\x1d.flipfix.v1.RobustnessRequest\x12*\n\x05reply\x18\x02 \x01(\x0b\x32\x1b.flipfix.v1.RobustnessReply\"_\n\tStressRun\x12*\n\x07request\x18\x01 \x01(\x0b\x32\x19.flipfix.v1.StressRequest\x12&\n\x05reply\x18\x02 \x01(\x0b\x32\x17.flipfix.v1.StressReply\"_\n\tParetoRun\x12*\n\x07request\x18\x01 \x01(\x0b\x32\x19.flipfix.v1.ParetoRequest\x12&\n\x05reply\x18\x02 \x01(\x0b\x32\x17.flipfix.v1.ParetoReply\"_\n\tCurateRun\x12*\n\x07request\x18\x01 \x01(\x0b\x32\x19.flipfix.v1.CurateRequest\x12&\n\x05reply\x18\x02 \x01(\x0b\x32\x17.flipfix.v1.CurateReply\"L\n\x12ListRecordsRequest\x12\x0f\n\x07problem\x18\x01 \x01(\t\x12\x11\n\tpage_size\x18\x02 \x01(\r\x12\x12\n\npage_token\x18\x03 \x01(\t\"W\n\x10ListRecordsReply\x12*\n\x07records\x18\x01 \x03(\x0b\x32\x19.flipfix.v1.RecordSummary\x12\x17\n\x0fnext_page_token\x18\x02 \x01(\t\"6\n\x10GetRecordRequest\x12\x0f\n\x07problem\x18\x01 \x01(\t\x12\x11\n\trecord_id\x18\x02 \x01(\x04\"Y\n\x0c\x41\x64optRequest\x12\x0f\n\x07problem\x18\x01 \x01(\t\x12\x11\n\trecord_id\x18\x02 \x01(\x04\x12\x14\n\x0c\x63\x61ndidate_id\x18\x03 \x01(\t\x12\x0f\n\x07publish\x18\x04 \x01(\x08\"s\n\nAdoptReply\x12\x14\n\x0c\x63\x61ndidate_id\x18\x01 \x01(\t\x12\x10\n\x08revision\x18\x02 \x01(\x04\x12\x11\n\tpublished\x18\x03 \x01(\x08\x12*\n\nprovenance\x18\x04 \x01(\x0b\x32\x16.flipfix.v1.Provenance*w\n\nEventState\x12\x1b\n\x17\x45VENT_STATE_UNSPECIFIED\x10\x00\x12\x18\n\x14\x45VENT_STATE_IN_FORCE\x10\x01\x12\x19\n\x15\x45VENT_STATE_WITHDRAWN\x10\x02\x12\x17\n\x13\x45VENT_STATE_INVALID\x10\x03*X\n\nRecordKind\x12\x1b\n\x17RECORD_KIND_UNSPECIFIED\x10\x00\x12\x16\n\x12RECORD_KIND_REPAIR\x10\x01\x12\x15\n\x11RECORD_KIND_AUDIT\x10\x02*\xc7\x01\n\x0bRecordedRpc\x12\x1c\n\x18RECORDED_RPC_UNSPECIFIED\x10\x00\x12\x17\n\x13RECORDED_RPC_REPAIR\x10\x01\x12#\n\x1fRECORDED_RPC_PROFILE_ROBUSTNESS\x10\x02\x12\x1c\n\x18RECORDED_RPC_STRESS_TEST\x10\x03\x12\x1d\n\x19RECORDED_RPC_PARETO_FRONT\x10\x04\x12\x1f\n\x1bRECORDED_RPC_CURATE_LIBRARY\x10\x05\x32\xc5\x04\n\x08Timeline\x12:\n\x08\x41\x64\x64\x45vent\x12\x1b.flipfix.v1.AddEventRequest\x1a\x11.flipfix.v1.Event\x12\x44\n\rWithdrawEvent\x12 .flipfix.v1.WithdrawEventRequest\x1a\x11.flipfix.v1.Event\x12H\n\nListEvents\x12\x1d.flipfix.v1.ListEventsRequest\x1a\x1b.flipfix.v1.ListEventsReply\x12R\n\x10SetPublishedPlan\x12#.flipfix.v1.SetPublishedPlanRequest\x1a\x19.flipfix.v1.PublishedPlan\x12R\n\x10GetPublishedPlan\x12#.flipfix.v1.GetPublishedPlanRequest\x1a\x19.flipfix.v1.PublishedPlan\x12K\n\x0bListRecords\x12\x1e.flipfix.v1.ListRecordsRequest\x1a\x1c.flipfix.v1.ListRecordsReply\x12=\n\tGetRecord\x12\x1c.flipfix.v1.GetRecordRequest\x1a\x12.flipfix.v1.Record\x12\x39\n\x05\x41\x64opt\x12\x18.flipfix.v1.AdoptRequest\x1a\x16.flipfix.v1.AdoptReplyBt\n\x0eorg.flipfix.v1B\rTimelineProtoP\x01Z#flipfix/gen/go/flipfix/v1;flipfixv1\xa2\x02\x03\x46\x46X\xaa\x02\nFlipfix.V1\xca\x02\nFlipfix\\V1\xea\x02\x0b\x46lipfix::V1b\x06proto3')
 
 _globals = globals()
 _builder.BuildMessageAndEnumDescriptors(DESCRIPTOR, _globals)
@@ -29,10 +29,12 @@ _builder.BuildTopDescriptorsAndMessages(DESCRIPTOR, 'flipfix.v1.timeline_pb2', _
 if not _descriptor._USE_C_DESCRIPTORS:
   _globals['DESCRIPTOR']._loaded_options = None
   _globals['DESCRIPTOR']._serialized_options = b'\n\016org.flipfix.v1B\rTimelineProtoP\001Z#flipfix/gen/go/flipfix/v1;flipfixv1\242\002\003FFX\252\002\nFlipfix.V1\312\002\nFlipfix\\V1\352\002\013Flipfix::V1'
-  _globals['_EVENTSTATE']._serialized_start=2433
-  _globals['_EVENTSTATE']._serialized_end=2552
-  _globals['_RECORDKIND']._serialized_start=2554
-  _globals['_RECORDKIND']._serialized_end=2642
+  _globals['_EVENTSTATE']._serialized_start=2570
+  _globals['_EVENTSTATE']._serialized_end=2689
+  _globals['_RECORDKIND']._serialized_start=2691
+  _globals['_RECORDKIND']._serialized_end=2779
+  _globals['_RECORDEDRPC']._serialized_start=2782
+  _globals['_RECORDEDRPC']._serialized_end=2981
   _globals['_EVENT']._serialized_start=68
   _globals['_EVENT']._serialized_end=310
   _globals['_ADDEVENTREQUEST']._serialized_start=312
@@ -50,29 +52,29 @@ if not _descriptor._USE_C_DESCRIPTORS:
   _globals['_GETPUBLISHEDPLANREQUEST']._serialized_start=772
   _globals['_GETPUBLISHEDPLANREQUEST']._serialized_end=814
   _globals['_RECORDSUMMARY']._serialized_start=817
-  _globals['_RECORDSUMMARY']._serialized_end=1193
-  _globals['_RECORD']._serialized_start=1196
-  _globals['_RECORD']._serialized_end=1503
-  _globals['_REPAIRRUN']._serialized_start=1505
-  _globals['_REPAIRRUN']._serialized_end=1600
-  _globals['_ROBUSTNESSRUN']._serialized_start=1602
-  _globals['_ROBUSTNESSRUN']._serialized_end=1709
-  _globals['_STRESSRUN']._serialized_start=1711
-  _globals['_STRESSRUN']._serialized_end=1806
-  _globals['_PARETORUN']._serialized_start=1808
-  _globals['_PARETORUN']._serialized_end=1903
-  _globals['_CURATERUN']._serialized_start=1905
-  _globals['_CURATERUN']._serialized_end=2000
-  _globals['_LISTRECORDSREQUEST']._serialized_start=2002
-  _globals['_LISTRECORDSREQUEST']._serialized_end=2078
-  _globals['_LISTRECORDSREPLY']._serialized_start=2080
-  _globals['_LISTRECORDSREPLY']._serialized_end=2167
-  _globals['_GETRECORDREQUEST']._serialized_start=2169
-  _globals['_GETRECORDREQUEST']._serialized_end=2223
-  _globals['_ADOPTREQUEST']._serialized_start=2225
-  _globals['_ADOPTREQUEST']._serialized_end=2314
-  _globals['_ADOPTREPLY']._serialized_start=2316
-  _globals['_ADOPTREPLY']._serialized_end=2431
-  _globals['_TIMELINE']._serialized_start=2645
-  _globals['_TIMELINE']._serialized_end=3226
+  _globals['_RECORDSUMMARY']._serialized_end=1330
+  _globals['_RECORD']._serialized_start=1333
+  _globals['_RECORD']._serialized_end=1640
+  _globals['_REPAIRRUN']._serialized_start=1642
+  _globals['_REPAIRRUN']._serialized_end=1737
+  _globals['_ROBUSTNESSRUN']._serialized_start=1739
+  _globals['_ROBUSTNESSRUN']._serialized_end=1846
+  _globals['_STRESSRUN']._serialized_start=1848
+  _globals['_STRESSRUN']._serialized_end=1943
+  _globals['_PARETORUN']._serialized_start=1945
+  _globals['_PARETORUN']._serialized_end=2040
+  _globals['_CURATERUN']._serialized_start=2042
+  _globals['_CURATERUN']._serialized_end=2137
+  _globals['_LISTRECORDSREQUEST']._serialized_start=2139
+  _globals['_LISTRECORDSREQUEST']._serialized_end=2215
+  _globals['_LISTRECORDSREPLY']._serialized_start=2217
+  _globals['_LISTRECORDSREPLY']._serialized_end=2304
+  _globals['_GETRECORDREQUEST']._serialized_start=2306
+  _globals['_GETRECORDREQUEST']._serialized_end=2360
+  _globals['_ADOPTREQUEST']._serialized_start=2362
+  _globals['_ADOPTREQUEST']._serialized_end=2451
+  _globals['_ADOPTREPLY']._serialized_start=2453
+  _globals['_ADOPTREPLY']._serialized_end=2568
+  _globals['_TIMELINE']._serialized_start=2984
+  _globals['_TIMELINE']._serialized_end=3565
 # @@protoc_insertion_point(module_scope)

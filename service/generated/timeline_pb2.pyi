@@ -21,6 +21,15 @@ class RecordKind(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     RECORD_KIND_UNSPECIFIED: _ClassVar[RecordKind]
     RECORD_KIND_REPAIR: _ClassVar[RecordKind]
     RECORD_KIND_AUDIT: _ClassVar[RecordKind]
+
+class RecordedRpc(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+    __slots__ = ()
+    RECORDED_RPC_UNSPECIFIED: _ClassVar[RecordedRpc]
+    RECORDED_RPC_REPAIR: _ClassVar[RecordedRpc]
+    RECORDED_RPC_PROFILE_ROBUSTNESS: _ClassVar[RecordedRpc]
+    RECORDED_RPC_STRESS_TEST: _ClassVar[RecordedRpc]
+    RECORDED_RPC_PARETO_FRONT: _ClassVar[RecordedRpc]
+    RECORDED_RPC_CURATE_LIBRARY: _ClassVar[RecordedRpc]
 EVENT_STATE_UNSPECIFIED: EventState
 EVENT_STATE_IN_FORCE: EventState
 EVENT_STATE_WITHDRAWN: EventState
@@ -28,6 +37,12 @@ EVENT_STATE_INVALID: EventState
 RECORD_KIND_UNSPECIFIED: RecordKind
 RECORD_KIND_REPAIR: RecordKind
 RECORD_KIND_AUDIT: RecordKind
+RECORDED_RPC_UNSPECIFIED: RecordedRpc
+RECORDED_RPC_REPAIR: RecordedRpc
+RECORDED_RPC_PROFILE_ROBUSTNESS: RecordedRpc
+RECORDED_RPC_STRESS_TEST: RecordedRpc
+RECORDED_RPC_PARETO_FRONT: RecordedRpc
+RECORDED_RPC_CURATE_LIBRARY: RecordedRpc
 
 class Event(_message.Message):
     __slots__ = ("id", "problem", "constraint", "state", "added_at", "added_by", "revision", "withdrawn_at", "withdrawn_by", "problem_message")
@@ -114,17 +129,15 @@ class GetPublishedPlanRequest(_message.Message):
     def __init__(self, problem: _Optional[str] = ...) -> None: ...
 
 class RecordSummary(_message.Message):
-    __slots__ = ("id", "problem", "kind", "rpc", "revision", "recorded_at", "caller", "seconds", "seed", "status", "best_cost", "flips", "decisions_changed", "event_ids", "adopted_candidate_id", "feasible", "published_candidate_id")
+    __slots__ = ("id", "problem", "kind", "revision", "recorded_at", "caller", "seconds", "seed", "best_cost", "flips", "decisions_changed", "event_ids", "adopted_candidate_id", "feasible", "published_candidate_id", "repair_status", "stop_reason", "recorded_rpc")
     ID_FIELD_NUMBER: _ClassVar[int]
     PROBLEM_FIELD_NUMBER: _ClassVar[int]
     KIND_FIELD_NUMBER: _ClassVar[int]
-    RPC_FIELD_NUMBER: _ClassVar[int]
     REVISION_FIELD_NUMBER: _ClassVar[int]
     RECORDED_AT_FIELD_NUMBER: _ClassVar[int]
     CALLER_FIELD_NUMBER: _ClassVar[int]
     SECONDS_FIELD_NUMBER: _ClassVar[int]
     SEED_FIELD_NUMBER: _ClassVar[int]
-    STATUS_FIELD_NUMBER: _ClassVar[int]
     BEST_COST_FIELD_NUMBER: _ClassVar[int]
     FLIPS_FIELD_NUMBER: _ClassVar[int]
     DECISIONS_CHANGED_FIELD_NUMBER: _ClassVar[int]
@@ -132,16 +145,17 @@ class RecordSummary(_message.Message):
     ADOPTED_CANDIDATE_ID_FIELD_NUMBER: _ClassVar[int]
     FEASIBLE_FIELD_NUMBER: _ClassVar[int]
     PUBLISHED_CANDIDATE_ID_FIELD_NUMBER: _ClassVar[int]
+    REPAIR_STATUS_FIELD_NUMBER: _ClassVar[int]
+    STOP_REASON_FIELD_NUMBER: _ClassVar[int]
+    RECORDED_RPC_FIELD_NUMBER: _ClassVar[int]
     id: int
     problem: str
     kind: RecordKind
-    rpc: str
     revision: int
     recorded_at: str
     caller: str
     seconds: float
     seed: int
-    status: str
     best_cost: float
     flips: int
     decisions_changed: int
@@ -149,7 +163,10 @@ class RecordSummary(_message.Message):
     adopted_candidate_id: str
     feasible: bool
     published_candidate_id: str
-    def __init__(self, id: _Optional[int] = ..., problem: _Optional[str] = ..., kind: _Optional[_Union[RecordKind, str]] = ..., rpc: _Optional[str] = ..., revision: _Optional[int] = ..., recorded_at: _Optional[str] = ..., caller: _Optional[str] = ..., seconds: _Optional[float] = ..., seed: _Optional[int] = ..., status: _Optional[str] = ..., best_cost: _Optional[float] = ..., flips: _Optional[int] = ..., decisions_changed: _Optional[int] = ..., event_ids: _Optional[_Iterable[int]] = ..., adopted_candidate_id: _Optional[str] = ..., feasible: _Optional[bool] = ..., published_candidate_id: _Optional[str] = ...) -> None: ...
+    repair_status: _flipfix_pb2.RepairStatus
+    stop_reason: _flipfix_pb2.StopReason
+    recorded_rpc: RecordedRpc
+    def __init__(self, id: _Optional[int] = ..., problem: _Optional[str] = ..., kind: _Optional[_Union[RecordKind, str]] = ..., revision: _Optional[int] = ..., recorded_at: _Optional[str] = ..., caller: _Optional[str] = ..., seconds: _Optional[float] = ..., seed: _Optional[int] = ..., best_cost: _Optional[float] = ..., flips: _Optional[int] = ..., decisions_changed: _Optional[int] = ..., event_ids: _Optional[_Iterable[int]] = ..., adopted_candidate_id: _Optional[str] = ..., feasible: _Optional[bool] = ..., published_candidate_id: _Optional[str] = ..., repair_status: _Optional[_Union[_flipfix_pb2.RepairStatus, str]] = ..., stop_reason: _Optional[_Union[_flipfix_pb2.StopReason, str]] = ..., recorded_rpc: _Optional[_Union[RecordedRpc, str]] = ...) -> None: ...
 
 class Record(_message.Message):
     __slots__ = ("summary", "events", "repair", "robustness", "stress", "pareto", "curate")
