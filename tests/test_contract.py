@@ -425,6 +425,40 @@ def test_enums_are_prefixed_and_their_zero_value_is_unspecified():
     assert not bad, bad
 
 
+def _fields(fd):
+    """(message name, FieldDescriptorProto, comment) of every field of a file."""
+    comments = {tuple(loc.path): loc.leading_comments + loc.trailing_comments
+                for loc in fd.source_code_info.location}
+    stack = [(m, (4, i), m.name) for i, m in enumerate(fd.message_type)]
+    while stack:
+        m, path, name = stack.pop()
+        stack.extend((n, path + (3, i), f"{name}.{n.name}") for i, n in enumerate(m.nested_type))
+        for j, f in enumerate(m.field):
+            yield name, f, comments.get(path + (2, j), "")
+
+
+def test_no_string_field_is_an_enum_in_disguise():
+    # a comment that lists the values a string takes ("done", "time_limit" or "cancelled")
+    listed = re.compile(r'"\w+"(?:, "\w+")* or "\w+"')
+    bad = [f"{fd.name}: {m}.{f.name}: {c.strip()[:70]}" for fd in _descriptor_set().file
+           for m, f, c in _fields(fd)
+           if f.type == descriptor_pb2.FieldDescriptorProto.TYPE_STRING and listed.search(c)]
+    assert not bad, bad
+
+
+def test_every_requested_time_limit_is_optional():
+    # unset means the stated default; an explicit 0 is refused, never read as "default"
+    seen, bad = [], []
+    for fd in _descriptor_set().file:
+        for m, f, c in _fields(fd):
+            if f.name == "time_limit" and m.endswith(("Request", "Options")):
+                seen.append(f"{m}.{f.name}")
+                if not f.proto3_optional or "unset:" not in c or "> 0" not in c:
+                    bad.append(f"{fd.name}: {m}.{f.name}")
+    assert {"RepairOptions.time_limit", "GrowRequest.time_limit"} <= set(seen)
+    assert not bad, bad
+
+
 def test_language_options_are_set_alike_in_every_file_of_the_package():
     seen = {}
     for fd in _descriptor_set().file:
