@@ -637,10 +637,10 @@ def _run_remote(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
                 return 2
             print(f"flipfix audit: error: server {args.server}: {exc.code().name}: "
                   f"{exc.details()}", file=err)
-            return 1
+            return 2  # a server that refused or failed: exit code 2, as for every command
         except TimeoutError as exc:
             print(f"flipfix audit: error: server {args.server}: {exc}", file=err)
-            return 1
+            return 2
     _emit(args, report, out)
     return 0
 

@@ -8,7 +8,8 @@ In-process by default (the core's :func:`flipfix.repair.grow.neighbours.grow` an
 stored library of problem NAME is grown through the Grow service, and ``--keep`` adds the
 proposals to the store in one transaction. Prints a table (or ``--json FILE`` for
 everything, assignments included); progress goes to stderr. Bad input: one line naming the
-field or option, exit code 2.
+field or option, exit code 2; a server that refused or failed: one line naming the server
+and the status, exit code 2 too.
 """
 
 from __future__ import annotations
@@ -255,7 +256,8 @@ def format_report(report: dict) -> str:
 
 
 def run(args: argparse.Namespace, *, out: TextIO | None = None, err: TextIO | None = None) -> int:
-    """Run ``flipfix grow``; 0 on success, 2 on bad input (the message names the field)."""
+    """Run ``flipfix grow``; 0 on success, 2 on bad input (the message names the field) or a
+    server that refused or failed (the message names the server and the status)."""
     out = sys.stdout if out is None else out
     err = sys.stderr if err is None else err
     if args.server is None and args.candidates is None:
@@ -289,7 +291,7 @@ def run(args: argparse.Namespace, *, out: TextIO | None = None, err: TextIO | No
             return 2
         print(f"flipfix grow: error: server {args.server}: {code.name}: {exc.details()}",
               file=err)
-        return 1
+        return 2  # a server that refused or failed: exit code 2, as for every command
     print(format_report(report), file=out)
     if args.json:
         Path(args.json).write_text(json.dumps(report, indent=2), encoding="utf-8")

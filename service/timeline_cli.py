@@ -12,7 +12,8 @@ of a problem stored in a running service (``--server HOST:PORT``, default 127.0.
 
 Every command prints JSON on stdout. A repair whose hard constraints cannot all hold also
 prints the conflicting set on stderr (index, name and the event it came from). Errors:
-one line on stderr naming the field, exit code 2 (1 for a server fault).
+one line on stderr naming the field (or the server and the status when the server failed),
+exit code 2.
 """
 
 from __future__ import annotations
@@ -146,7 +147,7 @@ def run(args: argparse.Namespace, *, out: TextIO | None = None, err: TextIO | No
                grpc.StatusCode.ALREADY_EXISTS, grpc.StatusCode.FAILED_PRECONDITION)
         print(f"flipfix timeline: error: {code.name}: {exc.details()}"
               + ("" if code in bad else f" (server {args.server})"), file=err)
-        return 2 if code in bad else 1
+        return 2  # a refused request or a failed server alike, as for every command
     if isinstance(result, dict) and result.get("conflict"):
         print("\n".join(conflict_lines(result["conflict"])), file=err)
     json.dump(result, out, indent=2)

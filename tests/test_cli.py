@@ -163,3 +163,42 @@ def test_demo_runs_end_to_end():
     assert run_demo(time_limit=1.0, out=lines.append) == 0  # 0: the repaired plan is feasible
     text = "\n".join(lines)
     assert "feasible: yes" in text and "responsible person" in text
+
+
+def _closed_port() -> str:
+    import socket
+
+    with socket.socket() as s:  # bound then closed: nothing listens there
+        s.bind(("127.0.0.1", 0))
+        return f"127.0.0.1:{s.getsockname()[1]}"
+
+
+@pytest.mark.parametrize("command", ["repair", "audit", "grow", "timeline"])
+def test_a_server_that_fails_exits_2_on_every_command(files, capsys, command):
+    addr = _closed_port()
+    argv = {"repair": _args(files, "--server", addr),
+            "audit": ["audit", "stored", "--server", addr, "--quiet"],
+            "grow": ["grow", "stored", "--server", addr, "--quiet"],
+            "timeline": ["timeline", "--server", addr, "records", "stored"]}[command]
+    assert main(argv) == 2  # README, "Exit codes"
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and addr in err and "UNAVAILABLE" in err, err
+
+
+def test_a_server_that_refuses_exits_2_for_repair_and_audit(files, capsys, tmp_path):
+    from flipfix.repair.documents.forms import parse_problem
+    from flipfix.service.client import FlipfixClient
+    from flipfix.service.server import create_server
+
+    with create_server("127.0.0.1:0", db_path=str(tmp_path / "refuse.sqlite3"),
+                       max_constraints=1, max_scenarios=2) as srv:
+        with FlipfixClient(srv.address) as fx:
+            fx.create_problem("stored", parse_problem(PROBLEM))
+            fx.add_candidates("stored", CANDIDATES)
+        assert main(_args(files, "--server", srv.address)) == 2  # 2 constraints, 1 allowed
+        err = capsys.readouterr().err
+        assert srv.address in err and "RESOURCE_EXHAUSTED" in err, err
+        assert main(["audit", "stored", "--server", srv.address, "--scenarios", "5",
+                     "--quiet"]) == 2
+        err = capsys.readouterr().err
+        assert srv.address in err and "RESOURCE_EXHAUSTED" in err, err
