@@ -13,6 +13,7 @@ $(STAMP): pyproject.toml
 	$(BIN)/pip install --quiet -e '.[test]'
 	@echo "compiling the search kernels (once per machine; cached beside the kernel modules)"
 	$(BIN)/python -c "from flipfix.repair.api import warm_up; warm_up()"
+	$(BIN)/python -c "from flipfix.repair.grow.neighbours import warm_up; warm_up()"
 	touch $(STAMP)
 
 demo: $(STAMP)

@@ -187,8 +187,9 @@ def cmd_serve(args) -> int:
         raise UsageError(str(err)) from None
     except InputError as err:
         raise UsageError(f"{err.field}: {err.message}") from None
-    print(f"flipfix: serving on {args.host}:{srv.port} (db {args.db}, {args.workers} worker(s)); "
-          f"health NOT_SERVING until the search kernels are loaded", file=sys.stderr, flush=True)
+    print(f"flipfix: serving on {args.host}:{srv.port} (db {srv.store.where}, "
+          f"{args.workers} worker(s)); health NOT_SERVING until the search kernels are loaded",
+          file=sys.stderr, flush=True)
     srv.pool.when_ready(lambda: print("flipfix: ready (health SERVING)", file=sys.stderr,
                                       flush=True))
 

@@ -752,7 +752,7 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
         health_servicer.set(name, health_pb2.HealthCheckResponse.NOT_SERVING)
     pool.when_ready(lambda: [health_servicer.set(name, health_pb2.HealthCheckResponse.SERVING)
                              for name in served])
-    log.info("flipfix listening on port %d (db %s)", port, store._where)
+    log.info("flipfix listening on port %d (db %s)", port, store.where)
     srv = RunningServer(server, port, servicer, health_servicer, pool, store, drain)
     srv.tokens = tokens
     srv.cluster = cluster

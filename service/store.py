@@ -188,7 +188,7 @@ class Store:
                 if row is None:
                     db.execute("INSERT INTO schema_version VALUES (?)", (SCHEMA_VERSION,))
                 elif row[0] > SCHEMA_VERSION:
-                    raise RuntimeError(f"{self._where}: schema version {row[0]} is newer than "
+                    raise RuntimeError(f"{self.where}: schema version {row[0]} is newer than "
                                        f"this flipfix ({SCHEMA_VERSION})")
                 elif row[0] < SCHEMA_VERSION:
                     self._migrate(db, row[0])
@@ -198,8 +198,8 @@ class Store:
             raise
 
     @property
-    def _where(self) -> str:
-        """The database, for messages (a URL without its password)."""
+    def where(self) -> str:
+        """The database, for messages and logs (a URL without its password)."""
         return re.sub(r"//([^:/@]+):[^@/]*@", r"//\1:***@", self.path)
 
     def ddl(self, stmt: str) -> list[str]:

@@ -126,3 +126,25 @@ def test_quiet_shows_nothing():
     with Progress("repair", budget=1.0, stream=buf, enabled=False, interval=0.05) as show:
         show({"phase": "greedy", "done": 1, "total": 2})
     assert buf.getvalue() == ""
+
+
+def test_the_greedy_stage_reports_its_best_cost_before_the_search_goes_on():
+    """The core's progress: once greedy has repaired the library, the next report carries
+    the best repaired cost (not "no cost yet" until the first annealing round), and that
+    cost is one the run can reach: never below the final answer's."""
+    from flipfix.repair import CandidateSet, Problem, repair
+    from flipfix.repair.model.constraints import FixVariables
+
+    rng = np.random.default_rng(3)
+    n = 60
+    labels = [f"x{i}" for i in range(n)]
+    quad = [(labels[i], labels[j], float(rng.integers(-5, 6)))
+            for i in range(n) for j in range(i + 1, n) if rng.random() < 0.1]
+    p = Problem.from_terms({lab: float(rng.integers(-5, 6)) for lab in labels}, quad)
+    cands = CandidateSet.from_array(p, rng.integers(0, 2, size=(12, n)))
+    seen: list = []
+    res = repair(p, cands, [FixVariables({"x0": 1, "x1": 0})], method="portfolio",
+                 time_limit=1.0, seed=0, progress=seen.append)
+    greedy = [d for d in seen if d.get("phase") == "greedy" and d.get("best_cost") is not None]
+    assert greedy, seen[:5]
+    assert greedy[0]["best_cost"] >= res.best.cost - 1e-9

@@ -112,7 +112,7 @@ def read_candidates(obj: Any, problem: Problem, *, field: str = "candidates") ->
 
     obj = as_native(obj, field)
     if isinstance(obj, dimod.SampleSet):
-        return CandidateSet.from_sampleset(problem, obj, field_name=field)
+        return CandidateSet.from_sampleset(problem, obj, field=field)
     if isinstance(obj, Mapping) and "candidates" in obj:
         obj = obj["candidates"]
     return parse_candidates(obj, problem, field=field)
@@ -191,7 +191,7 @@ def from_cqm(cqm, *, field: str = "cqm") -> tuple[Problem, list]:
         [(v, float(obj.get_linear(v)) if v in obj.variables else 0.0) for v in labels],
         [(u, v, float(b)) for (u, v), b in obj.quadratic.items()],
         offset=float(obj.offset), vartype=vartype, labels=labels, decisions=decisions,
-        field_prefix=field + ".")
+        field=field)
     return problem, rows
 
 

@@ -376,6 +376,10 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
                                 float(viol[k]), int(flips[k])) for k in fin.tolist())
     out.stats["greedy_done"] = int(done.sum())
     out.stats["greedy_moves"] = int(steps)
+    ok = viol[fin] == 0.0
+    # progress shows the best repaired cost as soon as greedy has one
+    report(done=int(done.sum()), total=K, phase="greedy",
+           best_cost=float(cost[fin][ok].min()) if ok.any() else None)
     if method == "greedy" or stopped():
         return out
 
