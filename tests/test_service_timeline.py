@@ -186,12 +186,13 @@ def test_audit_runs_are_recorded_and_retention_holds(tl, server):
     tl.repair("ward", method="greedy", time_limit=0.5, skip_record=True)
     assert len(tl.list_records("ward")) == min(4, keep)
     assert as_dict(tpb.RecordSummary(id=5))["id"] == 5
-    # a run cut short by its time limit: the record's stop reason is the reply's
+    # a run cut short (time limit; or cancelled, as its budget ends): the record's stop
+    # reason is the reply's
     rep = tl.stress_test("ward", ScenarioFamily(hamming_weight=1.0), scenarios=1000,
                          time_limit=0.05)
     newest = tl.list_records("ward", limit=1)[0]
-    assert rep.scenarios_done < 1000 and rep.stopped == "time_limit"
-    assert newest["stop_reason"] == "STOP_REASON_TIME_LIMIT"
+    assert rep.scenarios_done < 1000 and rep.stopped in ("time_limit", "cancelled")
+    assert newest["stop_reason"] == "STOP_REASON_" + rep.stopped.upper()
 
 
 def test_alternatives_through_the_server(tl, ward):
