@@ -329,8 +329,9 @@ def _build(problem, candidates, compiled, scorer, attempts, price, method, seed,
         viol = viol + np.maximum(0, flips - max_flips)
     feas = viol == 0.0
     obj = cost + price * flips
-    # feasible first, then objective, then violation, then flips
-    order = np.lexsort((flips, obj, viol, ~feas))
+    # feasible first, then objective, then violation, then flips, then the candidate's place
+    # in the library (ties do not depend on the order the stages ran in)
+    order = np.lexsort((ks, flips, obj, viol, ~feas))
     b = int(order[0])
     xb = x_of(b)
     origin = int(ks[b])
