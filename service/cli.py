@@ -183,15 +183,10 @@ def cmd_serve(args) -> int:
         quota_mb=args.quota_mb, dask=args.dask or "", max_records=args.max_records)
     try:
         srv = create_server(f"{args.host}:{args.port}", config)
-    except (OSError, InputError) as err:
+    except OSError as err:
         raise UsageError(str(err)) from None
     except InputError as err:
         raise UsageError(f"{err.field}: {err.message}") from None
-    print(f"flipfix: serving on {args.host}:{srv.port} (db {srv.store.where}, "
-          f"{args.workers} worker(s)); health NOT_SERVING until the search kernels are loaded",
-          file=sys.stderr, flush=True)
-    srv.pool.when_ready(lambda: print("flipfix: ready (health SERVING)", file=sys.stderr,
-                                      flush=True))
 
     def stop(signum, _frame):
         srv.begin_shutdown()  # new calls get UNAVAILABLE from here on
@@ -202,9 +197,17 @@ def cmd_serve(args) -> int:
     def reload(_signum, _frame):
         threading.Thread(target=srv.reload_tokens, daemon=True).start()
 
+    # the handlers are in place before the line that tells a supervisor (or a test) that
+    # the server is up, so a signal sent on seeing it is never taken by the default action
     signal.signal(signal.SIGTERM, stop)
     signal.signal(signal.SIGINT, stop)
     signal.signal(signal.SIGHUP, reload)
+    print(f"flipfix: serving on {args.host}:{srv.port} (db {srv.store.where}, "
+          f"{args.workers} worker(s)); health NOT_SERVING until the search kernels are loaded",
+          file=sys.stderr, flush=True)
+    srv.pool.when_ready(lambda: print("flipfix: ready (health SERVING)", file=sys.stderr,
+                                      flush=True))
+
     srv.wait_for_termination()  # an event; signal handlers run while it waits
     print("flipfix: stopped", file=sys.stderr, flush=True)
     # the store is closed and the workers have ended: skip the interpreter's teardown
