@@ -699,7 +699,8 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
 
     Which arm runs is a bandit's choice (UCB1 over ``ARMS``): a round's reward is 1 when it
     lowered the best feasible objective, else 0, so the budget moves to what improves.
-    Rounds grow (``ROUND_GROWTH``): the last ones are long chains.
+    Rounds grow (``ROUND_GROWTH``): the last ones are long chains, and the last of all
+    (about half the stage) goes to the arm with the best record, without exploration.
     An annealing round runs one chain per worker thread from the best distinct current
     answers (on large models one long chain beat several short ones at equal time), each
     chain attributed to the candidate its start belongs to (flips and price from it). The
@@ -721,16 +722,19 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
         if not ranked:
             break
         best_before = min((obj[k] for k in ranked if feasible[k]), default=np.inf)
-        if rnd < len(ARMS):
-            a = rnd
-        else:
-            mean = wins / np.maximum(pulls, 1)
-            a = int(np.argmax(mean + np.sqrt(2.0 * np.log(rnd) / np.maximum(pulls, 1))))
-        kind, depth = ARMS[a]
         left = deadline - time.perf_counter()
         want = max(MIN_ROUND, ROUND_GROWTH * last_round)
-        if left < 2.0 * want:  # no stub of a round at the end
+        final = left < 2.0 * want
+        if final:  # no stub of a round at the end
             want = left
+        mean = wins / np.maximum(pulls, 1)
+        if rnd < len(ARMS):
+            a = rnd
+        elif final:  # exploring is worth nothing in the last round: the best record takes it
+            a = int(np.argmax(mean))
+        else:
+            a = int(np.argmax(mean + np.sqrt(2.0 * np.log(rnd) / np.maximum(pulls, 1))))
+        kind, depth = ARMS[a]
         round_end = time.perf_counter() + want
         t_round = time.perf_counter()
         if kind == "kicks":
@@ -753,9 +757,12 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
             else:
                 sweeps = FIRST_SWEEPS
             t = time.perf_counter()
+            # paced by the clock (``until``): the chain cools by the round's end even when
+            # the sweeps run slower than measured (a cut chain returns a warm state)
             res = anneal(compiled, cur[order], depth=depth, sweeps=sweeps, seed=seed + rnd,
                          origin=X0[order], flip_price=flip_price, max_flips=max_flips,
-                         scale=scale, workers=workers, deadline=deadline, cancel=cancel)
+                         scale=scale, workers=workers, deadline=deadline, cancel=cancel,
+                         until=None if a not in per_sweep else min(round_end, deadline))
             ran = int(res.sweeps.max(initial=0))
             if ran > 0:
                 per_sweep[a] = max(1e-7, (time.perf_counter() - t) / ran)
