@@ -69,6 +69,16 @@ def test_every_arm_is_tried_once_then_the_bandit_chooses():
     assert all(kw["phase"] == "anneal" for kw in seen)
 
 
+def test_arms_the_first_pass_did_not_reach_sit_out_the_stage(monkeypatch):
+    """A first pass cut at once (no share of the stage for exploring) leaves every round to
+    the first arm: an arm never tried is never chosen, not even by the exploration bonus."""
+    monkeypatch.setattr(P, "EXPLORE_SHARE", 0.0)
+    p = _bqp250()
+    X0 = np.random.default_rng(3).integers(0, 2, (6, p.n)).astype(np.int8)
+    _, _, _, out, _ = _stage(p, X0, rounds=6)
+    assert out.stats["local_rounds"] == {P._arm_name(P.ARMS[0]): 6}
+
+
 def test_the_stage_improves_on_greedy_and_reports_true_costs():
     p = _bqp250()
     X0 = np.random.default_rng(7).integers(0, 2, (8, p.n)).astype(np.int8)
