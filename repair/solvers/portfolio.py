@@ -479,7 +479,9 @@ def _greedy_stage(compiled, X0, order, *, deadline, first_deadline, max_flips, f
         seconds[batch] = g.seconds
         each = (time.perf_counter() - t) / batch.size
         steps += int(g.steps.sum())
-        rows.update((int(k), g.X[j]) for j, k in enumerate(batch.tolist()) if g.done[j])
+        # a descent the deadline cut short still gives its feasible state (g.partial)
+        rows.update((int(k), g.X[j]) for j, k in enumerate(batch.tolist())
+                    if g.done[j] or g.partial[j])
         if not g.done.all() or (cancel is not None and cancel.is_set()):
             break
         pos, size = pos + size, GREEDY_FIRST_BATCH if pos == 0 else 2 * size

@@ -9,11 +9,14 @@ in slices of capped steps that resume where they stopped).
 
 from __future__ import annotations
 
+import threading
 import time
+from contextlib import contextmanager
 from dataclasses import dataclass
 
 import numpy as np
 
+from flipfix.repair.cancel import CancelToken, as_token
 from flipfix.repair.kernels.batching import thread_pool
 from flipfix.repair.kernels.bundles import late_arrays, objective_tol
 from flipfix.repair.lowering.compiled import Compiled
@@ -31,12 +34,16 @@ __all__ = ["GreedyOutput", "greedy_repair", "warm_up", "FIRST_SLICE"]
 class GreedyOutput:
     """X: int8 (K, n) repaired assignments; steps: int64 (K,) moves taken;
     done: bool (K,) whether the candidate was processed within the budget;
-    seconds: float64 (K,) time spent on each candidate (its chunk's share)."""
+    seconds: float64 (K,) time spent on each candidate (its chunk's share);
+    partial: bool (K,) candidates the deadline or a cancel cut short in their descent,
+    after the restore: their row of X is that feasible state (not a local minimum; every
+    other unfinished row is returned unchanged)."""
 
     X: np.ndarray
     steps: np.ndarray
     done: np.ndarray
     seconds: np.ndarray
+    partial: np.ndarray
 
 
 def _in_parts(run, X: np.ndarray, O: np.ndarray, steps: np.ndarray, workers: int) -> None:
@@ -55,16 +62,17 @@ def _in_parts(run, X: np.ndarray, O: np.ndarray, steps: np.ndarray, workers: int
 
 
 def _kernel_call(compiled: Compiled, anchor: np.ndarray, *, radius: int, flip_price: float,
-                 pair_width: int, max_steps: int):
+                 pair_width: int, max_steps: int, stop: np.ndarray):
     """run(X, O, steps, cap=max_steps): one kernel call, in place on X int8 (rows, n) and
     steps int64 (rows,), at most ``cap`` moves per candidate, with every bundle that is
-    the same for all chunks built here, once."""
+    the same for all chunks built here, once. ``stop`` int64 (1,): the kernels end at
+    their next step once it is set (candidates cut short report ``cap`` steps)."""
     n = compiled.n
     qubo = late_arrays(compiled).qubo
     refs = start_refs(anchor, qubo)
     tol = float(objective_tol(compiled))
     if not compiled.counts and not compiled.rows and radius >= n:
-        params = Params(float(flip_price), tol, max_steps, radius, False, 1)
+        params = Params(float(flip_price), tol, max_steps, radius, False, 1, stop)
 
         def run(Xc, Oc, st, cap=max_steps):
             P = params if cap == max_steps else params._replace(max_steps=int(cap))
@@ -76,7 +84,7 @@ def _kernel_call(compiled: Compiled, anchor: np.ndarray, *, radius: int, flip_pr
     use_groups = groups_pay(lay.groups * par, int((compiled.fixed < 0).sum()))
     base, size = trees_for(lay.members, par, use_groups)
     slots = int(2 * size.sum())
-    params = Params(float(flip_price), tol, max_steps, radius, use_groups, par)
+    params = Params(float(flip_price), tol, max_steps, radius, use_groups, par, stop)
     counts, rows = arrays.counts, arrays.rows
     sizes = (n, counts.cp_const.size, counts.term_pen.size, rows.lo.size, lay.most)
 
@@ -120,8 +128,68 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
         longest = int(np.diff(compiled.a_indptr).max(initial=1))
         pair_width = max(1, min(32, longest))
     max_steps = 100 * n + 1000
+    stop = np.zeros(1, dtype=np.int64)  # set at the deadline or on cancel: kernels end
     run = _kernel_call(compiled, consensus(X0, compiled.fixed), radius=radius,
-                       flip_price=flip_price, pair_width=int(pair_width), max_steps=max_steps)
+                       flip_price=flip_price, pair_width=int(pair_width), max_steps=max_steps,
+                       stop=stop)
+    partial = np.zeros(K, dtype=bool)
+    with _stopper(stop, deadline, cancel):
+        _chunks(run, compiled, X, O, steps, done, seconds, partial, deadline=deadline,
+                cancel=cancel, chunk=chunk, max_steps=max_steps, workers=workers,
+                progress=progress, stop=stop)
+    return GreedyOutput(X=X, steps=steps, done=done, seconds=seconds, partial=partial)
+
+
+def _feasible(compiled: Compiled, X: np.ndarray) -> np.ndarray:
+    """Whether each row of X int8 (r, n) keeps the fixings and the hard rows (within each
+    row's tolerance, as the kernels count it): bool (r,). O(r x (n + nnz))."""
+    arrays = late_arrays(compiled)
+    fixed, rows = arrays.qubo.fixed, arrays.rows
+    pinned = fixed >= 0
+    ok = (X[:, pinned] == fixed[pinned]).all(axis=1)
+    if rows.lo.size and rows.a_col.size:
+        filled = np.diff(rows.a_ptr) > 0
+        act = np.zeros((X.shape[0], rows.lo.size))
+        act[:, filled] = np.add.reduceat(X[:, rows.a_col] * rows.a_val, rows.a_ptr[:-1][filled],
+                                         axis=1)
+        over = np.maximum(rows.lo - act, act - rows.hi)
+        ok &= (over <= rows.rtol).all(axis=1)
+    elif rows.lo.size:
+        ok &= ((rows.lo <= rows.rtol) & (-rows.hi <= rows.rtol)).all()
+    return ok
+
+
+@contextmanager
+def _stopper(stop: np.ndarray, deadline: float | None, cancel):
+    """Set ``stop[0]`` when ``deadline`` (a ``time.perf_counter()`` value) passes (a
+    timer thread) or ``cancel`` (a CancelToken or Event) is set, while the block runs: a
+    kernel call then ends at its next step instead of at its step cap."""
+
+    def fire():
+        stop[0] = 1
+
+    timer = None
+    if deadline is not None:
+        timer = threading.Timer(max(0.0, deadline - time.perf_counter()), fire)
+        timer.daemon = True
+        timer.start()
+    try:
+        # a plain Event is followed by a waiting thread: only up to a deadline
+        if isinstance(cancel, CancelToken) or (cancel is not None and deadline is not None):
+            with as_token(cancel).subscribed(fire, timeout=None if deadline is None else
+                                             max(0.0, deadline - time.perf_counter())):
+                yield
+        else:
+            yield
+    finally:
+        if timer is not None:
+            timer.cancel()
+
+
+def _chunks(run, compiled, X, O, steps, done, seconds, partial, *, deadline, cancel, chunk,
+            max_steps, workers, progress, stop):
+    """The chunk loop of :func:`greedy_repair` (in place on X, steps, done, seconds)."""
+    K = X.shape[0]
     start = 0
     size = 1 if deadline is not None else chunk  # with a deadline: measure one, then fit
     per_cand = 0.0  # measured seconds per candidate
@@ -143,12 +211,21 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
         st = np.zeros(Xc.shape[0], dtype=np.int64)
         if deadline is None:
             _in_parts(run, Xc, O[sl], st, workers)
-            finished = np.ones(Xc.shape[0], dtype=bool)
+            # cut short by a cancel: those report max_steps
+            finished = st < max_steps if stop[0] else np.ones(Xc.shape[0], dtype=bool)
         else:
             finished = _in_slices(run, Xc, O[sl], st, workers, deadline, max_steps, pace,
-                                  cancel)
+                                  cancel, stop)
         per_cand = (time.perf_counter() - t0) / Xc.shape[0]
-        X[sl] = np.where(finished[:, None], Xc, X[sl])  # unfinished: returned unchanged
+        cut = np.flatnonzero(~finished)
+        if cut.size:  # cut short in the descent (feasible): kept; others returned unchanged
+            kept = _feasible(compiled, Xc[cut])
+            partial[sl][cut[kept]] = True
+            keep = finished.copy()
+            keep[cut[kept]] = True
+        else:
+            keep = finished
+        X[sl] = np.where(keep[:, None], Xc, X[sl])
         steps[sl] = np.where(finished, st, 0)
         done[sl] = finished
         seconds[sl] = per_cand
@@ -156,16 +233,16 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
             progress(int(done.sum()), K)
         if not finished.all():
             break
-    return GreedyOutput(X=X, steps=steps, done=done, seconds=seconds)
 
 
-#: steps per candidate of the first kernel call under a deadline, before any pace is known:
-#: a step of the feasibility phase scans every free variable (5-50 ms at 100,000 variables
-#: with a wide row, by the machine's load), so 16 steps once overran a 1 s budget by 0.5 s
-FIRST_SLICE = 2
+#: steps per candidate of the first kernel call under a deadline, before any pace is known
+#: (a call is also ended at the deadline by the ``stop`` flag, so this only sets how soon
+#: the pace is measured)
+FIRST_SLICE = 64
 
 
-def _in_slices(run, X, O, steps, workers, deadline, max_steps, pace, cancel) -> np.ndarray:
+def _in_slices(run, X, O, steps, workers, deadline, max_steps, pace, cancel,
+               stop) -> np.ndarray:
     """:func:`_in_parts` under a deadline: each kernel call is capped at the steps that fit
     in half of what is left (at the pace measured so far, ``pace`` = [seconds, steps,
     shortest call's seconds], updated), and candidates that reach the cap continue from
@@ -178,7 +255,7 @@ def _in_slices(run, X, O, steps, workers, deadline, max_steps, pace, cancel) -> 
     per_part = -(-rows // max(1, min(workers, rows)))  # candidates one thread descends
     while live.size:
         left = deadline - time.perf_counter()
-        if left <= pace[2] or (cancel is not None and cancel.is_set()):
+        if left <= pace[2] or (cancel is not None and cancel.is_set()) or stop[0]:
             break
         if pace[1] > 0:
             fit = 0.5 * left * pace[1] / max(pace[0], 1e-9) / per_part
