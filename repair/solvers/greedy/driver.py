@@ -3,8 +3,8 @@
 Builds the kernels' bundles once per call (the problem's arrays are cached on the
 compiled problem), picks the pure-QUBO path (:mod:`~flipfix.repair.solvers.greedy.qubo`)
 or the general one (:mod:`~flipfix.repair.solvers.greedy.general`), and runs chunks of
-candidates, split over threads, until done, the deadline or a cancel (under a deadline,
-in slices of capped steps that resume where they stopped).
+candidates, split over threads, until done, the deadline or a cancel (a timer sets the
+kernels' ``stop`` flag at the deadline: a call ends at its next step).
 """
 
 from __future__ import annotations
@@ -27,7 +27,7 @@ from flipfix.repair.solvers.greedy.pairs import pair_lists
 from flipfix.repair.solvers.greedy.qubo import Params, descend_tree, tree_work
 from flipfix.repair.solvers.greedy.start import consensus, start_refs
 
-__all__ = ["GreedyOutput", "greedy_repair", "warm_up", "FIRST_SLICE"]
+__all__ = ["GreedyOutput", "greedy_repair", "warm_up"]
 
 
 @dataclass
@@ -63,10 +63,10 @@ def _in_parts(run, X: np.ndarray, O: np.ndarray, steps: np.ndarray, workers: int
 
 def _kernel_call(compiled: Compiled, anchor: np.ndarray, *, radius: int, flip_price: float,
                  pair_width: int, max_steps: int, stop: np.ndarray):
-    """run(X, O, steps, cap=max_steps): one kernel call, in place on X int8 (rows, n) and
-    steps int64 (rows,), at most ``cap`` moves per candidate, with every bundle that is
+    """run(X, O, steps): one kernel call, in place on X int8 (rows, n) and steps int64
+    (rows,), at most ``max_steps`` moves per candidate, with every bundle that is
     the same for all chunks built here, once. ``stop`` int64 (1,): the kernels end at
-    their next step once it is set (candidates cut short report ``cap`` steps)."""
+    their next step once it is set (candidates cut short report ``max_steps`` steps)."""
     n = compiled.n
     qubo = late_arrays(compiled).qubo
     refs = start_refs(anchor, qubo)
@@ -74,9 +74,8 @@ def _kernel_call(compiled: Compiled, anchor: np.ndarray, *, radius: int, flip_pr
     if not compiled.counts and not compiled.rows and radius >= n:
         params = Params(float(flip_price), tol, max_steps, radius, False, 1, stop)
 
-        def run(Xc, Oc, st, cap=max_steps):
-            P = params if cap == max_steps else params._replace(max_steps=int(cap))
-            descend_tree(Xc, Oc, qubo, refs, P, tree_work(n), st)
+        def run(Xc, Oc, st):
+            descend_tree(Xc, Oc, qubo, refs, params, tree_work(n), st)
         return run
     arrays = general_arrays(compiled)
     lay = arrays.layout
@@ -88,11 +87,10 @@ def _kernel_call(compiled: Compiled, anchor: np.ndarray, *, radius: int, flip_pr
     counts, rows = arrays.counts, arrays.rows
     sizes = (n, counts.cp_const.size, counts.term_pen.size, rows.lo.size, lay.most)
 
-    def run(Xc, Oc, st, cap=max_steps):
-        P = params if cap == max_steps else params._replace(max_steps=int(cap))
+    def run(Xc, Oc, st):
         trees = Trees(np.empty(slots), np.empty(slots, dtype=np.int64), base, size)
         descend_general(Xc, Oc, qubo, counts, rows, lay.narrow, lay.trees, trees, refs,
-                        arrays.bounds, pair_lists(pair_width), P, general_work(*sizes), st)
+                        arrays.bounds, pair_lists(pair_width), params, general_work(*sizes), st)
     return run
 
 
@@ -193,8 +191,6 @@ def _chunks(run, compiled, X, O, steps, done, seconds, partial, *, deadline, can
     start = 0
     size = 1 if deadline is not None else chunk  # with a deadline: measure one, then fit
     per_cand = 0.0  # measured seconds per candidate
-    pace = [0.0, 0, 0.0]  # with a deadline: seconds and steps of the kernel calls so far,
-    # and the shortest call's seconds
     while start < K:
         if cancel is not None and cancel.is_set():
             break
@@ -214,8 +210,7 @@ def _chunks(run, compiled, X, O, steps, done, seconds, partial, *, deadline, can
             # cut short by a cancel: those report max_steps
             finished = st < max_steps if stop[0] else np.ones(Xc.shape[0], dtype=bool)
         else:
-            finished = _in_slices(run, Xc, O[sl], st, workers, deadline, max_steps, pace,
-                                  cancel, stop)
+            finished = _until(run, Xc, O[sl], st, workers, deadline, cancel, stop, max_steps)
         per_cand = (time.perf_counter() - t0) / Xc.shape[0]
         cut = np.flatnonzero(~finished)
         if cut.size:  # cut short in the descent (feasible): kept; others returned unchanged
@@ -235,47 +230,17 @@ def _chunks(run, compiled, X, O, steps, done, seconds, partial, *, deadline, can
             break
 
 
-#: steps per candidate of the first kernel call under a deadline, before any pace is known
-#: (a call is also ended at the deadline by the ``stop`` flag, so this only sets how soon
-#: the pace is measured)
-FIRST_SLICE = 64
-
-
-def _in_slices(run, X, O, steps, workers, deadline, max_steps, pace, cancel,
-               stop) -> np.ndarray:
-    """:func:`_in_parts` under a deadline: each kernel call is capped at the steps that fit
-    in half of what is left (at the pace measured so far, ``pace`` = [seconds, steps,
-    shortest call's seconds], updated), and candidates that reach the cap continue from
-    where they stopped (a descent depends only on its current state) until they finish or
-    the deadline passes. No call starts when less is left than the shortest call took (a
-    call's start-up, O(n) per candidate, is paid whatever its cap). Returns which rows
-    finished (bool (rows,)); ``steps`` gets their steps."""
+def _until(run, X, O, steps, workers, deadline, cancel, stop, max_steps) -> np.ndarray:
+    """:func:`_in_parts` under a deadline: one kernel call, which the ``stop`` flag (set by
+    the driver's timer at the deadline, or by a cancel) ends at its next step; candidates
+    it cut short or never reached report ``max_steps`` steps. No call starts past the
+    deadline. Returns which rows finished (bool (rows,)); ``steps`` gets their steps."""
     rows = X.shape[0]
-    live = np.arange(rows)
-    per_part = -(-rows // max(1, min(workers, rows)))  # candidates one thread descends
-    while live.size:
-        left = deadline - time.perf_counter()
-        if left <= pace[2] or (cancel is not None and cancel.is_set()) or stop[0]:
-            break
-        if pace[1] > 0:
-            fit = 0.5 * left * pace[1] / max(pace[0], 1e-9) / per_part
-            cap = int(min(max_steps, max(FIRST_SLICE, fit)))
-        else:
-            cap = min(max_steps, FIRST_SLICE)
-        sub = X[live]
-        st = np.zeros(live.size, dtype=np.int64)
-        t = time.perf_counter()
-        _in_parts(lambda a, b, c: run(a, b, c, cap), sub, O[live], st, workers)
-        took = time.perf_counter() - t
-        pace[0] += took
-        pace[2] = took if pace[2] == 0.0 else min(pace[2], took)
-        pace[1] += int(st.sum()) // max(1, min(workers, live.size))
-        X[live] = sub
-        steps[live] += st
-        live = live[st >= cap] if cap < max_steps else live[:0]
-    finished = np.ones(rows, dtype=bool)
-    finished[live] = False
-    return finished
+    if (deadline - time.perf_counter() <= 0.0 or stop[0]
+            or (cancel is not None and cancel.is_set())):
+        return np.zeros(rows, dtype=bool)
+    _in_parts(run, X, O, steps, workers)
+    return steps < max_steps
 
 
 _WARM = False

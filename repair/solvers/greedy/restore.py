@@ -120,14 +120,52 @@ def _regime(a, lo, hi, tol, big):
 
 
 @kernel
+def _score(j, S, C, R, P):
+    """Variable j's key: objective change per unit of violation its flip removes, +inf
+    when it removes none."""
+    dobj, dviol, nd = eval_flip(j, S, np.int64(0), C, R, P.price)
+    return dobj / (-dviol) if dviol < -_VTOL else _INF
+
+
+@kernel
+def _rebuild(key, item, b0, N):
+    """Every inner node of the tree at b0 from its leaves, O(N)."""
+    for r in range(N - 1, 0, -1):
+        l = b0 + 2 * r
+        c = l + 1 if key[l + 1] < key[l] else l
+        key[b0 + r] = key[c]
+        item[b0 + r] = item[c]
+
+
+@kernel
+def _key_all(S, C, R, P, W, fixed):
+    """The start's keys when the violated rows hold many variables: leaves written
+    directly (members of violated rows only; the trees are empty on entry), then both
+    trees rebuilt, O(N + their entries) instead of O(log N) per member."""
+    act, lo, hi, rtol = S.act, R.lo, R.hi, R.rtol
+    a_ptr, a_col = R.a_ptr, R.a_col
+    key, x, o, stamp, tick = W.key, S.x, S.o, W.stamp, W.tick[0]
+    N = key.size // 4
+    for r in range(lo.size):
+        if row_viol(act[r], lo[r], hi[r], rtol[r]) > 0.0:
+            for q in range(a_ptr[r], a_ptr[r + 1]):
+                j = a_col[q]
+                if fixed[j] >= 0 or stamp[j] == tick:
+                    continue
+                stamp[j] = tick
+                key[(N if x[j] == o[j] else 3 * N) + j] = _score(j, S, C, R, P)
+    _rebuild(key, W.item, np.int64(0), N)
+    _rebuild(key, W.item, 2 * N, N)
+
+
+@kernel
 def _rekey(j, S, C, R, P, W, fixed):
     """Variable j's key (once per tick): its score if its flip reduces the violation,
     in the tree of its flip's direction; +inf in the other."""
     if fixed[j] >= 0 or W.stamp[j] == W.tick[0]:
         return
     W.stamp[j] = W.tick[0]
-    dobj, dviol, nd = eval_flip(j, S, np.int64(0), C, R, P.price)
-    key = dobj / (-dviol) if dviol < -_VTOL else _INF
+    key = _score(j, S, C, R, P)
     N = W.key.size // 4
     if S.x[j] == S.o[j]:  # a flip away from the candidate
         tree_set(W.key, W.item, np.int64(0), N, j, key)
@@ -247,10 +285,17 @@ def restore(S, dist, Q, C, R, free, nfree, P, W):
     steps = 0
     nviol = 0
     W.tick[0] += 1
+    members = 0
     for r in range(lo.size):
         if row_viol(act[r], lo[r], hi[r], rtol[r]) > 0.0:
             nviol += 1
-            _rekey_row(r, S, C, R, P, W, fixed)
+            members += R.a_ptr[r + 1] - R.a_ptr[r]
+    if members > N // 8:
+        _key_all(S, C, R, P, W, fixed)
+    elif nviol:
+        for r in range(lo.size):
+            if row_viol(act[r], lo[r], hi[r], rtol[r]) > 0.0:
+                _rekey_row(r, S, C, R, P, W, fixed)
     while nviol > 0 and steps < max_steps and stop[0] == 0:
         ka = key[1] if dist < radius else _INF  # away flips only inside the radius
         kb = key[N2 + 1]
