@@ -5,7 +5,8 @@ For every candidate, independently and deterministically:
 1. pin the fixed variables;
 2. restore feasibility with the least cost: while a hard row is violated, take
    the flip (or, when no single flip helps, the pair of flips) with the lowest
-   objective change per unit of violation removed;
+   objective change per unit of violation removed (single flips from two tournament
+   trees over the violated rows' members, re-keyed where a flip changes something);
 3. descend: take the feasible single flip with the most negative objective
    change; when none improves, try pair moves (one variable up, one down, both in
    a row that blocks some single flip) so tight and equality rows can still move;
@@ -28,7 +29,8 @@ Modules, one concept each: ``jit`` (how the kernels compile), ``heap`` and ``tou
 candidate's state and a flip's effect), ``start`` (start-up fields), ``qubo`` (the
 pure-QUBO path), ``restore`` (feasibility restore), ``pairs`` (pair moves), ``groups``
 (grouped tournament trees), ``layout`` (the general path's arrays per problem),
-``general`` (the general path), ``driver`` (chunks, threads, budget).
+``general`` (the general path), ``driver`` (chunks, threads, budget; a timer sets the
+kernels' stop flag at the deadline).
 """
 
 from __future__ import annotations
