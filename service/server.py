@@ -92,6 +92,10 @@ class ServerConfig:
     heavy_queue: int = 64
     memory_mb: float = 2048.0
     memory_factor: float = 25.0
+    #: requests (and stored problems) smaller than this are light: converted in the
+    #: server without a place in the gate; larger uploads are decoded, and calls on larger
+    #: stored problems prepared, in a pool worker (:mod:`flipfix.service.prepared`)
+    light_bytes: int = 64 * 1024
     #: TLS: the server's certificate chain and key (PEM files); with ``tls_client_ca``
     #: clients must present a certificate signed by it (mutual TLS)
     tls_cert: str | None = None
@@ -126,7 +130,7 @@ class ServerConfig:
     def admission(self) -> AdmissionConfig:
         return AdmissionConfig(capacity=self.heavy_calls, queue=self.heavy_queue,
                                memory_bytes=int(self.memory_mb * 1024 * 1024),
-                               memory_factor=self.memory_factor)
+                               memory_factor=self.memory_factor, light_bytes=self.light_bytes)
 
 
 def _deferred_model(method: str) -> tuple[str, tuple[str, int]]:
