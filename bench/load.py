@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import multiprocessing as mp
 import os
+import shutil
 import signal
 import subprocess
 import sys
@@ -257,6 +258,7 @@ def run(*, quick: bool = False, seed: int = 0, log=print) -> dict:
         if proc.poll() is None:
             proc.kill()
             proc.wait()
+        shutil.rmtree(tmp, ignore_errors=True)  # the database holds four large models
     return {"rows": rows, "columns": COLUMNS, "notes": notes}
 
 
