@@ -92,7 +92,7 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
                   max_flips: int | None = None, flip_price: float = 0.0,
                   deadline: float | None = None, cancel=None, chunk: int = 64,
                   pair_width: int | None = None, progress=None,
-                  workers: int = 1) -> GreedyOutput:
+                  workers: int = 1, anchor: np.ndarray | None = None) -> GreedyOutput:
     """Repair every row of X0 (int8 (K, n), 0/1) greedily on the compiled late problem.
 
     ``origin`` (int8 (K, n), default X0) is what flips are counted from (radius, price).
@@ -105,6 +105,9 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
     the best 32 of each side in longer rows.
     ``workers``: threads that descend parts of each chunk at once; the answers do not
     depend on it.
+    ``anchor`` (int8 (n,)): the reference state each candidate's start-up fields come
+    from (default: :func:`consensus` of X0's rows); calls given the same anchor give each
+    candidate the same answer however the candidates were split between them.
     """
     # C order and writeable (a read-only input is copied): the kernels are compiled for
     # one array type each, and a read-only array is another type to numba
@@ -120,7 +123,9 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
         longest = int(np.diff(compiled.a_indptr).max(initial=1))
         pair_width = max(1, min(32, longest))
     max_steps = 100 * n + 1000
-    run = _kernel_call(compiled, consensus(X0, compiled.fixed), radius=radius,
+    anchor = consensus(X0, compiled.fixed) if anchor is None else anchor
+    run = _kernel_call(compiled, np.require(anchor, dtype=np.int8, requirements=["C", "W"]),
+                       radius=radius,
                        flip_price=flip_price, pair_width=int(pair_width), max_steps=max_steps)
     start = 0
     size = 1 if deadline is not None else chunk  # with a deadline: measure one, then fit
