@@ -1,11 +1,15 @@
-"""Stress-test scenarios on a Dask distributed cluster (:class:`DaskRunner`).
+"""Stress-test scenarios and large repairs on a Dask distributed cluster (:class:`DaskRunner`).
 
 The core's stress test (:func:`flipfix.repair.audit.stress.stress_test`) takes a
-:class:`~flipfix.repair.audit.stress.ScenarioRunner`; this module is the one that sends
-each scenario's repair to a Dask cluster instead of running them one after another:
+:class:`~flipfix.repair.audit.stress.ScenarioRunner`, and its repair
+(:func:`flipfix.repair.api.repair`) a
+:class:`~flipfix.repair.solvers.candidate_runner.CandidateRunner` for the greedy stage of a
+large library (chunks of candidates); :class:`DaskRunner` is both, and sends each
+scenario's repair, or each chunk of candidates, to a Dask cluster:
 
-* the problem and the library travel once per worker (``scatter`` with ``broadcast``);
-  each task then carries only its scenario (a few constraints);
+* the problem and the library travel once per worker and run (``scatter`` with
+  ``broadcast``); each task then carries only its scenarios (a few constraints each) or
+  its chunks of candidate indices;
 * results come back in scenario order, each waited for with ``Future.result(timeout)``
   up to the run's deadline (no polling);
 * a cancel (the caller's token), the deadline or the end of the run sets a Dask ``Event``
@@ -19,7 +23,9 @@ each scenario's repair to a Dask cluster instead of running them one after anoth
 
 :func:`connect` takes what the operator gives: the address of a running scheduler
 (``tcp://host:8786``), or ``local:N`` for a cluster of N worker processes started here on
-loopback (closed with the :class:`Cluster`).
+loopback (closed with the :class:`Cluster`). A :class:`DaskRunner` pickles as its
+scheduler's address: a repair job sent to a worker process of ``flipfix serve`` takes it
+along and connects there on first use (one client per process, kept).
 """
 
 from __future__ import annotations
@@ -34,10 +40,11 @@ from typing import Any, Callable, Iterator, Mapping, Sequence
 
 from flipfix.repair.cancel import CancelToken, as_token
 from flipfix.repair.errors import InputError
+from flipfix.repair.solvers.candidate_runner import DEFAULT_MIN_BITS
 
 from flipfix.service.errors import TransientError
 
-__all__ = ["DaskRunner", "Cluster", "connect", "parse_address"]
+__all__ = ["DaskRunner", "Cluster", "connect", "parse_address", "client_at"]
 
 # how long past its own time limit a task's cancel watcher waits for the run's Event
 _WATCH_SLACK = 30.0
@@ -95,6 +102,19 @@ def connect(text: str, *, field: str = "dask", timeout: float = 30.0) -> Cluster
         raise TransientError("dask", f"scheduler {address} not reachable: {exc}") from exc
 
 
+_CLIENTS: dict[str, Cluster] = {}  # scheduler address -> Cluster, in this process
+_CLIENTS_LOCK = threading.Lock()
+
+
+def client_at(address: str, *, field: str = "dask"):
+    """A Dask client of the scheduler at ``address``, connected once per process and kept
+    (a ``local:N`` text starts a cluster once, too)."""
+    with _CLIENTS_LOCK:
+        if address not in _CLIENTS:
+            _CLIENTS[address] = connect(address, field=field)
+        return _CLIENTS[address].client
+
+
 _RUNS: dict[str, set] = {}  # run name -> cancel tokens of its tasks running here
 _RUNS_LOCK = threading.Lock()
 
@@ -146,15 +166,39 @@ def _left(deadline: float) -> float | None:
 
 
 class DaskRunner:
-    """A :class:`~flipfix.repair.audit.stress.ScenarioRunner` over a Dask client.
+    """A :class:`~flipfix.repair.audit.stress.ScenarioRunner` and
+    :class:`~flipfix.repair.solvers.candidate_runner.CandidateRunner` over a Dask client.
 
-    ``chunk``: items per task (0: about four tasks per worker thread, so that the
-    scheduler's cost per task stays small beside the work and the load still evens out).
+    ``client``: a connected client, or None with ``address`` (a scheduler address): the
+    client is then connected on first use (:func:`client_at`). ``chunk``: items per task
+    (0: about four tasks per worker thread, so that the scheduler's cost per task stays
+    small beside the work and the load still evens out). ``min_bits``: the smallest
+    library (candidates x variables) whose repair's greedy stage goes to the cluster.
+    ``tasks``: how many tasks this runner has submitted (all runs).
     """
 
-    def __init__(self, client, *, chunk: int = 0):
-        self.client = client
+    def __init__(self, client=None, *, address: str = "", chunk: int = 0,
+                 min_bits: int = DEFAULT_MIN_BITS):
+        if client is None and not address:
+            raise InputError("dask", "a Dask runner needs a client or a scheduler address")
+        self._client = client
+        self.address = address or client.scheduler.address
         self.chunk = int(chunk)
+        self.min_bits = int(min_bits)
+        self.tasks = 0
+
+    @property
+    def client(self):
+        if self._client is None:
+            self._client = client_at(self.address)
+        return self._client
+
+    def __getstate__(self) -> dict:  # the address travels, not the connection
+        return {"address": self.address, "chunk": self.chunk, "min_bits": self.min_bits}
+
+    def __setstate__(self, state: dict) -> None:
+        self.__init__(address=state["address"], chunk=state["chunk"],
+                      min_bits=state["min_bits"])
 
     @property
     def parallel(self) -> int:
@@ -180,6 +224,7 @@ class DaskRunner:
                                  event_name=run, run_seconds=run_seconds, options=dict(options),
                                  pure=False, key=f"{run}-{k}")
                    for k, chunk in enumerate(chunks)]
+        self.tasks += len(futures)
         stopped = threading.Event()
 
         def stop_all() -> None:
@@ -201,7 +246,7 @@ class DaskRunner:
                         break
                     except Exception as exc:  # a task that killed workers, or lost for good
                         if type(exc).__name__ == "KilledWorker":
-                            raise TransientError("dask", f"workers kept dying on a scenario: {exc}") \
+                            raise TransientError("dask", f"workers kept dying on a task: {exc}") \
                                 from exc
                         raise
                     yield from results

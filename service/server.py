@@ -305,6 +305,8 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
             used = self.timeline.used(request, problem, rev)  # published plan, events in force
             compiled = self._compiled(used.constraints, problem)
             budget = kwargs["time_limit"] = self._budget(kwargs["time_limit"], context)
+            if self.dask_address:  # a large library's greedy stage goes to the cluster
+                kwargs["candidate_runner"] = self.dask_runner
             job = self._watched(self.pool.submit(problem, cands, (),
                                                  {**kwargs, "compiled": compiled}), context)
         audit_limit = (request.options.audit_limit if request.options.HasField("audit_limit")
@@ -734,7 +736,7 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
         raise OSError(f"cannot bind {address}")
     cluster = None
     if config.dask:
-        from flipfix.service.cluster import connect
+        from flipfix.service.cluster import DaskRunner, connect
 
         try:
             cluster = connect(config.dask, field="dask")
@@ -744,6 +746,7 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
             store.close()
             raise
         servicer.dask_address = cluster.address
+        servicer.dask_runner = DaskRunner(address=cluster.address)  # pickles as the address
     server.start()
     # NOT_SERVING until the workers' kernels are warm (a first run compiles them); the
     # whole server ("") turns SERVING last, once every named service does
