@@ -18,7 +18,9 @@ scenario's repair, or each chunk of candidates, to a Dask cluster:
   (:class:`~flipfix.repair.cancel.CancelToken`) of each of the run's tasks running there,
   so their repairs stop at once; queued tasks are cancelled on the scheduler;
 * a worker lost mid-task: the scheduler runs the task again on another worker (Dask's
-  own retry of lost tasks); when no worker is left, or a task killed too many workers,
+  own retry of lost tasks); a task the scheduler gave up on (its data lost with the
+  worker that held it) is sent again with the data, up to ``RESEND_LOST`` times; when no
+  worker is left, or a task killed too many workers,
   :class:`~flipfix.service.errors.TransientError` (UNAVAILABLE) -- never a hang.
 
 :func:`connect` takes what the operator gives: the address of a running scheduler
@@ -48,6 +50,9 @@ __all__ = ["DaskRunner", "Cluster", "connect", "parse_address", "client_at"]
 
 # how long past its own time limit a task's cancel watcher waits for the run's Event
 _WATCH_SLACK = 30.0
+#: how many times a run sends its remaining tasks again after the cluster lost one (a
+#: worker that died holding the only copy of the run's data); then UNAVAILABLE
+RESEND_LOST = 2
 
 
 def parse_address(text: str, *, field: str = "dask") -> tuple[str, int]:
@@ -215,16 +220,25 @@ class DaskRunner:
         token = as_token(cancel)
         run = f"flipfix-{uuid.uuid4().hex}"
         stop = Event(run, client=client)
-        shared_futures = client.scatter(list(shared), broadcast=True, hash=False)
         run_seconds = _left(deadline)
         run_seconds = seconds_each * len(items) if run_seconds is None else run_seconds
         size = self.chunk or max(1, math.ceil(len(items) / (4 * self.parallel)))
         chunks = [list(items[i:i + size]) for i in range(0, len(items), size)]
-        futures = [client.submit(_run_task, fn, shared_futures, chunk, time_limit=seconds_each,
-                                 event_name=run, run_seconds=run_seconds, options=dict(options),
-                                 pure=False, key=f"{run}-{k}")
-                   for k, chunk in enumerate(chunks)]
-        self.tasks += len(futures)
+        futures: list = []  # one per chunk; the tail is replaced when a round is lost
+        shared_futures: list = []
+
+        def submit(first: int, round_: int) -> None:
+            """(Re)send the shared data and chunks ``first``.. as round ``round_``."""
+            client.cancel(futures[first:] + shared_futures)
+            shared_futures[:] = client.scatter(list(shared), broadcast=True, hash=False)
+            futures[first:] = [
+                client.submit(_run_task, fn, shared_futures, chunk, time_limit=seconds_each,
+                              event_name=run, run_seconds=run_seconds, options=dict(options),
+                              pure=False, key=f"{run}-{round_}-{k}")
+                for k, chunk in enumerate(chunks[first:], start=first)]
+            self.tasks += len(chunks) - first
+
+        submit(0, 0)
         stopped = threading.Event()
 
         def stop_all() -> None:
@@ -234,24 +248,38 @@ class DaskRunner:
             stop.set()
             client.cancel(futures)
 
+        resent = 0
         try:
             with token.subscribed(stop_all, timeout=_left(deadline)):
-                for fut, chunk in zip(futures, chunks):
+                k = 0
+                while k < len(chunks):
                     left = _left(deadline)
                     if stopped.is_set() or (left is not None and left <= 0):
                         break
                     try:
-                        results = fut.result(timeout=left)
-                    except (FutureTimeout, TimeoutError, CancelledError):
-                        break
+                        results = futures[k].result(timeout=left)
+                    except (FutureTimeout, TimeoutError):
+                        break  # the deadline
+                    except CancelledError as exc:
+                        if stopped.is_set():
+                            break
+                        # not our cancel: the scheduler lost the task or the data it needs
+                        # (a worker died holding the only copy): send the rest once more
+                        if resent == RESEND_LOST:
+                            raise TransientError("dask", f"the cluster lost a task: {exc}") \
+                                from exc
+                        resent += 1
+                        submit(k, resent)
+                        continue
                     except Exception as exc:  # a task that killed workers, or lost for good
                         if type(exc).__name__ == "KilledWorker":
                             raise TransientError("dask", f"workers kept dying on a task: {exc}") \
                                 from exc
                         raise
                     yield from results
-                    if len(results) < len(chunk):
+                    if len(results) < len(chunks[k]):
                         break  # a cancel cut this task short
+                    k += 1
         finally:
             stop_all()
             client.cancel(shared_futures)
