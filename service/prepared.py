@@ -101,6 +101,10 @@ def repair(env, request: pb.RepairRequest, *, deadline: float | None,
     used = env.timeline.used(request, problem, rev)  # published plan, events in force
     compiled = compiled_for(env, used.constraints, problem)
     budget = kwargs["time_limit"] = _budget(env, kwargs["time_limit"], deadline)
+    if env.dask_address:  # a large library's greedy stage goes to the cluster
+        from flipfix.service.cluster import DaskRunner
+
+        kwargs["candidate_runner"] = DaskRunner(address=env.dask_address)
     # the reply needs the events and counts, not the constraints (lowered into ``compiled``)
     return Prepared(None, (problem, cands, ()), {**kwargs, "compiled": compiled}, rev, budget,
                     {"used": replace(used, constraints=[])})
