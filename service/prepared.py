@@ -90,6 +90,17 @@ def audit_library(env, name: str, ids, all_revisions: bool, *, field: str = ""):
         raise NotFoundError(field + err.field, err.message) from None
 
 
+def _dask_runner(env):
+    """The server's runner (its settings, e.g. ``min_bits``), or in a pool worker one for
+    the same cluster address (a runner pickles as its address)."""
+    runner = getattr(env, "dask_runner", None)
+    if runner is None:
+        from flipfix.service.cluster import DaskRunner
+
+        runner = DaskRunner(address=env.dask_address)
+    return runner
+
+
 def repair(env, request: pb.RepairRequest, *, deadline: float | None,
            library: Callable | None = None) -> Prepared:
     """A Repair: options, the library (``library()``, else the stored one), the constraints
@@ -102,9 +113,7 @@ def repair(env, request: pb.RepairRequest, *, deadline: float | None,
     compiled = compiled_for(env, used.constraints, problem)
     budget = kwargs["time_limit"] = _budget(env, kwargs["time_limit"], deadline)
     if env.dask_address:  # a large library's greedy stage goes to the cluster
-        from flipfix.service.cluster import DaskRunner
-
-        kwargs["candidate_runner"] = DaskRunner(address=env.dask_address)
+        kwargs["candidate_runner"] = _dask_runner(env)
     # the reply needs the events and counts, not the constraints (lowered into ``compiled``)
     return Prepared(None, (problem, cands, ()), {**kwargs, "compiled": compiled}, rev, budget,
                     {"used": replace(used, constraints=[])})

@@ -151,6 +151,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         self.config = config
         self.limits = config.limits
         self.dask_address = ""  # set by create_server when stress tests go to Dask
+        self.dask_runner = None  # and the runner of a large repair's greedy stage
         self.timeline = timeline or Timeline(store, max_records=config.max_records)
         self.gate = gate or HeavyGate(config.admission)
 
@@ -706,7 +707,7 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
         raise OSError(f"cannot bind {address}")
     cluster = None
     if config.dask:
-        from flipfix.service.cluster import connect
+        from flipfix.service.cluster import DaskRunner, connect
 
         try:
             cluster = connect(config.dask, field="dask")
@@ -716,6 +717,7 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
             store.close()
             raise
         servicer.dask_address = cluster.address
+        servicer.dask_runner = DaskRunner(address=cluster.address)  # pickles as the address
     server.start()
     # NOT_SERVING until the workers' kernels are warm (a first run compiles them); the
     # whole server ("") turns SERVING last, once every named service does
