@@ -43,8 +43,8 @@ class RestoreWork(NamedTuple):
 
     key float64 (4N,), item int64 (4N,): two tournament trees (away flips at offset 0,
     flips back at 2N); stamp int64 (n,): the tick at which each variable was last
-    re-keyed; tick int64 (1,): the current tick; stack int64 (64,): the trees' drain
-    scratch; pens int64 (max(T, 1),): the penalties one flip changed; rowmax float64 (m,):
+    re-keyed; tick int64 (1,): the current tick; todo int64 (n,): the variables one flip
+    re-keys; stack int64 (64,): the trees' drain scratch; pens int64 (max(T, 1),): the penalties one flip changed; rowmax float64 (m,):
     each row's largest |coefficient|; pt_ptr int64 (P+1,), pt_term int64 (T,): each count
     penalty's terms. :func:`init_restore` fills the trees' items, rowmax and the penalty
     map once per kernel call.
@@ -54,6 +54,7 @@ class RestoreWork(NamedTuple):
     item: np.ndarray
     stamp: np.ndarray
     tick: np.ndarray
+    todo: np.ndarray
     stack: np.ndarray
     pens: np.ndarray
     rowmax: np.ndarray
@@ -67,7 +68,7 @@ def restore_work(n: int, P: int, T: int, m: int) -> RestoreWork:
         N *= 2
     i64 = np.int64
     return RestoreWork(np.empty(4 * N), np.empty(4 * N, dtype=i64), np.zeros(n, dtype=i64),
-                       np.zeros(1, dtype=i64), np.empty(64, dtype=i64),
+                       np.zeros(1, dtype=i64), np.empty(n, dtype=i64), np.empty(64, dtype=i64),
                        np.empty(max(T, 1), dtype=i64), np.empty(m), np.zeros(P + 1, dtype=i64),
                        np.empty(T, dtype=i64))
 
@@ -138,55 +139,53 @@ def _rebuild(key, item, b0, N):
 
 
 @kernel
-def _key_all(S, C, R, P, W, fixed):
-    """The start's keys when the violated rows hold many variables: leaves written
-    directly (members of violated rows only; the trees are empty on entry), then both
-    trees rebuilt, O(N + their entries) instead of O(log N) per member."""
-    act, lo, hi, rtol = S.act, R.lo, R.hi, R.rtol
-    a_ptr, a_col = R.a_ptr, R.a_col
-    key, x, o, stamp, tick = W.key, S.x, S.o, W.stamp, W.tick[0]
-    N = key.size // 4
-    for r in range(lo.size):
-        if row_viol(act[r], lo[r], hi[r], rtol[r]) > 0.0:
-            for q in range(a_ptr[r], a_ptr[r + 1]):
-                j = a_col[q]
-                if fixed[j] >= 0 or stamp[j] == tick:
-                    continue
-                stamp[j] = tick
-                key[(N if x[j] == o[j] else 3 * N) + j] = _score(j, S, C, R, P)
-    _rebuild(key, W.item, np.int64(0), N)
-    _rebuild(key, W.item, 2 * N, N)
+def _push(j, W, fixed, cnt):
+    """Add free variable j to the re-key list ``W.todo[:cnt]`` once per tick; returns the
+    new count."""
+    if fixed[j] < 0 and W.stamp[j] != W.tick[0]:
+        W.stamp[j] = W.tick[0]
+        W.todo[cnt] = j
+        cnt += 1
+    return cnt
 
 
 @kernel
-def _rekey(j, S, C, R, P, W, fixed):
-    """Variable j's key (once per tick): its score if its flip reduces the violation,
-    in the tree of its flip's direction; +inf in the other."""
-    if fixed[j] >= 0 or W.stamp[j] == W.tick[0]:
-        return
-    W.stamp[j] = W.tick[0]
-    key = _score(j, S, C, R, P)
-    N = W.key.size // 4
-    if S.x[j] == S.o[j]:  # a flip away from the candidate
-        tree_set(W.key, W.item, np.int64(0), N, j, key)
-        tree_set(W.key, W.item, 2 * N, N, j, _INF)
-    else:
-        tree_set(W.key, W.item, 2 * N, N, j, key)
-        tree_set(W.key, W.item, np.int64(0), N, j, _INF)
-
-
-@kernel
-def _rekey_row(r, S, C, R, P, W, fixed):
+def _push_row(r, R, W, fixed, cnt):
     a_ptr, a_col = R.a_ptr, R.a_col
     for q in range(a_ptr[r], a_ptr[r + 1]):
-        _rekey(a_col[q], S, C, R, P, W, fixed)
+        cnt = _push(a_col[q], W, fixed, cnt)
+    return cnt
 
 
 @kernel
-def _rekey_term(t, S, C, R, P, W, fixed):
+def _push_term(t, C, W, fixed, cnt):
     lit_ptr, lit_var = C.lit_ptr, C.lit_var
     for q in range(lit_ptr[t], lit_ptr[t + 1]):
-        _rekey(lit_var[q], S, C, R, P, W, fixed)
+        cnt = _push(lit_var[q], W, fixed, cnt)
+    return cnt
+
+
+@kernel
+def _rekey(cnt, S, C, R, P, W, bulk):
+    """The keys of ``W.todo[:cnt]``: each variable's score if its flip reduces the
+    violation, in the tree of its flip's direction; +inf in the other. ``bulk`` int64
+    non-zero (the start, on empty trees, with many variables): the leaves are written
+    directly and both trees rebuilt, O(N + cnt) instead of O(log N) per variable. (The one
+    place that keys: one call site of the score and the tree updates, a short compile.)"""
+    key, item, x, o, todo = W.key, W.item, S.x, S.o, W.todo
+    N = key.size // 4
+    for c in range(cnt):
+        j = todo[c]
+        k = _score(j, S, C, R, P)
+        away = np.int64(0) if x[j] == o[j] else 2 * N  # a flip away from the candidate?
+        if bulk != 0:
+            key[away + N + j] = k
+        else:
+            tree_set(key, item, away, N, j, k)
+            tree_set(key, item, 2 * N - away, N, j, _INF)
+    if bulk != 0:
+        _rebuild(key, item, np.int64(0), N)
+        _rebuild(key, item, 2 * N, N)
 
 
 @kernel
@@ -210,10 +209,10 @@ def _flip(i, S, dist, Q, C, R, P, W, nviol):
             npen += 1
     dist = flip_state(i, S, dist, Q, C, R)
     W.tick[0] += 1
-    _rekey(i, S, C, R, P, W, fixed)
+    cnt = _push(i, W, fixed, np.int64(0))
     indptr, indices = Q.indptr, Q.indices
     for p in range(indptr[i], indptr[i + 1]):
-        _rekey(np.int64(indices[p]), S, C, R, P, W, fixed)
+        cnt = _push(np.int64(indices[p]), W, fixed, cnt)
     sgn = 1.0 - 2.0 * xi
     for q in range(col_ptr[i], col_ptr[i + 1]):
         r = col_row[q]
@@ -223,13 +222,14 @@ def _flip(i, S, dist, Q, C, R, P, W, nviol):
                   - (row_viol(a0, lo[r], hi[r], rtol[r]) > 0.0))
         g0 = _regime(a0, lo[r], hi[r], rtol[r], W.rowmax[r])
         if g0 == 2 or g0 != _regime(a1, lo[r], hi[r], rtol[r], W.rowmax[r]):
-            _rekey_row(r, S, C, R, P, W, fixed)
+            cnt = _push_row(r, R, W, fixed, cnt)
     for q in range(vt_ptr[i], vt_ptr[i + 1]):
-        _rekey_term(vt_term[q], S, C, R, P, W, fixed)
+        cnt = _push_term(vt_term[q], C, W, fixed, cnt)
     for c in range(npen):
         p = W.pens[c]
         for u in range(W.pt_ptr[p], W.pt_ptr[p + 1]):
-            _rekey_term(W.pt_term[u], S, C, R, P, W, fixed)
+            cnt = _push_term(W.pt_term[u], C, W, fixed, cnt)
+    _rekey(cnt, S, C, R, P, W, np.int64(0))
     return dist, nviol
 
 
@@ -290,12 +290,12 @@ def restore(S, dist, Q, C, R, free, nfree, P, W):
         if row_viol(act[r], lo[r], hi[r], rtol[r]) > 0.0:
             nviol += 1
             members += R.a_ptr[r + 1] - R.a_ptr[r]
-    if members > N // 8:
-        _key_all(S, C, R, P, W, fixed)
-    elif nviol:
+    if nviol:
+        cnt = np.int64(0)
         for r in range(lo.size):
             if row_viol(act[r], lo[r], hi[r], rtol[r]) > 0.0:
-                _rekey_row(r, S, C, R, P, W, fixed)
+                cnt = _push_row(r, R, W, fixed, cnt)
+        _rekey(cnt, S, C, R, P, W, np.int64(1) if members > N // 8 else np.int64(0))
     while nviol > 0 and steps < max_steps and stop[0] == 0:
         ka = key[1] if dist < radius else _INF  # away flips only inside the radius
         kb = key[N2 + 1]
@@ -304,16 +304,16 @@ def restore(S, dist, Q, C, R, free, nfree, P, W):
             bi = item[1]
         elif kb < _INF:
             bi = item[N2 + 1]
-        if bi >= 0:
-            dist, nviol = _flip(bi, S, dist, Q, C, R, P, W, nviol)
-            steps += 1
-            continue
-        # no single flip helps: pairs (i in a violated row, j anywhere)
-        bi, bj = _best_repair_pair(S, dist, Q, C, R, free, nfree, P, _INF)
-        if bi < 0:
-            break  # stuck: report the least-violating point reached
-        for v in range(2):
-            dist, nviol = _flip(bi if v == 0 else bj, S, dist, Q, C, R, P, W, nviol)
+        bj = np.int64(-1)
+        if bi < 0:  # no single flip helps: pairs (i in a violated row, j anywhere)
+            bi, bj = _best_repair_pair(S, dist, Q, C, R, free, nfree, P, _INF)
+            if bi < 0:
+                break  # stuck: report the least-violating point reached
+        for v in range(2):  # one call site
+            w = bi if v == 0 else bj
+            if w < 0:
+                break
+            dist, nviol = _flip(w, S, dist, Q, C, R, P, W, nviol)
         steps += 1
     tree_drain(key, np.int64(0), N, W.stack)
     tree_drain(key, N2, N, W.stack)
