@@ -44,8 +44,8 @@ class RestoreWork(NamedTuple):
     key float64 (4N,), item int64 (4N,): two tournament trees (away flips at offset 0,
     flips back at 2N); stamp int64 (n,): the tick at which each variable was last
     re-keyed; tick int64 (1,): the current tick; todo int64 (n,): the variables one flip
-    re-keys; stack int64 (64,): the trees' drain scratch; pens int64 (max(T, 1),): the penalties one flip changed; rowmax float64 (m,):
-    each row's largest |coefficient|; pt_ptr int64 (P+1,), pt_term int64 (T,): each count
+    re-keys; stack int64 (64,): the trees' drain scratch; pens int64 (max(T, 1),): the
+    penalties one flip changed; rowmax float64 (m,): each row's largest |coefficient|; pt_ptr int64 (P+1,), pt_term int64 (T,): each count
     penalty's terms. :func:`init_restore` fills the trees' items, rowmax and the penalty
     map once per kernel call.
     """
