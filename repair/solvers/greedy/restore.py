@@ -43,9 +43,9 @@ class RestoreWork(NamedTuple):
 
     key float64 (4N,), item int64 (4N,): two tournament trees (away flips at offset 0,
     flips back at 2N); stamp int64 (n,): the tick at which each variable was last
-    re-keyed; tick int64 (1,): the current tick; stack int64 (64,): the trees' drain
-    scratch; pens int64 (max(T, 1),): the penalties one flip changed; rowmax float64 (m,):
-    each row's largest |coefficient|; pt_ptr int64 (P+1,), pt_term int64 (T,): each count
+    re-keyed; tick int64 (1,): the current tick; todo int64 (n,): the variables one flip
+    re-keys; stack int64 (64,): the trees' drain scratch; pens int64 (max(T, 1),): the
+    penalties one flip changed; rowmax float64 (m,): each row's largest |coefficient|; pt_ptr int64 (P+1,), pt_term int64 (T,): each count
     penalty's terms. :func:`init_restore` fills the trees' items, rowmax and the penalty
     map once per kernel call.
     """
@@ -54,6 +54,7 @@ class RestoreWork(NamedTuple):
     item: np.ndarray
     stamp: np.ndarray
     tick: np.ndarray
+    todo: np.ndarray
     stack: np.ndarray
     pens: np.ndarray
     rowmax: np.ndarray
@@ -67,7 +68,7 @@ def restore_work(n: int, P: int, T: int, m: int) -> RestoreWork:
         N *= 2
     i64 = np.int64
     return RestoreWork(np.empty(4 * N), np.empty(4 * N, dtype=i64), np.zeros(n, dtype=i64),
-                       np.zeros(1, dtype=i64), np.empty(64, dtype=i64),
+                       np.zeros(1, dtype=i64), np.empty(n, dtype=i64), np.empty(64, dtype=i64),
                        np.empty(max(T, 1), dtype=i64), np.empty(m), np.zeros(P + 1, dtype=i64),
                        np.empty(T, dtype=i64))
 
@@ -120,14 +121,6 @@ def _regime(a, lo, hi, tol, big):
 
 
 @kernel
-def _score(j, S, C, R, P):
-    """Variable j's key: objective change per unit of violation its flip removes, +inf
-    when it removes none."""
-    dobj, dviol, nd = eval_flip(j, S, np.int64(0), C, R, P.price)
-    return dobj / (-dviol) if dviol < -_VTOL else _INF
-
-
-@kernel
 def _rebuild(key, item, b0, N):
     """Every inner node of the tree at b0 from its leaves, O(N)."""
     for r in range(N - 1, 0, -1):
@@ -138,99 +131,30 @@ def _rebuild(key, item, b0, N):
 
 
 @kernel
-def _key_all(S, C, R, P, W, fixed):
-    """The start's keys when the violated rows hold many variables: leaves written
-    directly (members of violated rows only; the trees are empty on entry), then both
-    trees rebuilt, O(N + their entries) instead of O(log N) per member."""
-    act, lo, hi, rtol = S.act, R.lo, R.hi, R.rtol
-    a_ptr, a_col = R.a_ptr, R.a_col
-    key, x, o, stamp, tick = W.key, S.x, S.o, W.stamp, W.tick[0]
-    N = key.size // 4
-    for r in range(lo.size):
-        if row_viol(act[r], lo[r], hi[r], rtol[r]) > 0.0:
-            for q in range(a_ptr[r], a_ptr[r + 1]):
-                j = a_col[q]
-                if fixed[j] >= 0 or stamp[j] == tick:
-                    continue
-                stamp[j] = tick
-                key[(N if x[j] == o[j] else 3 * N) + j] = _score(j, S, C, R, P)
-    _rebuild(key, W.item, np.int64(0), N)
-    _rebuild(key, W.item, 2 * N, N)
+def _push(j, W, fixed, cnt):
+    """Add free variable j to the re-key list ``W.todo[:cnt]`` once per tick; returns the
+    new count."""
+    if fixed[j] < 0 and W.stamp[j] != W.tick[0]:
+        W.stamp[j] = W.tick[0]
+        W.todo[cnt] = j
+        cnt += 1
+    return cnt
 
 
 @kernel
-def _rekey(j, S, C, R, P, W, fixed):
-    """Variable j's key (once per tick): its score if its flip reduces the violation,
-    in the tree of its flip's direction; +inf in the other."""
-    if fixed[j] >= 0 or W.stamp[j] == W.tick[0]:
-        return
-    W.stamp[j] = W.tick[0]
-    key = _score(j, S, C, R, P)
-    N = W.key.size // 4
-    if S.x[j] == S.o[j]:  # a flip away from the candidate
-        tree_set(W.key, W.item, np.int64(0), N, j, key)
-        tree_set(W.key, W.item, 2 * N, N, j, _INF)
-    else:
-        tree_set(W.key, W.item, 2 * N, N, j, key)
-        tree_set(W.key, W.item, np.int64(0), N, j, _INF)
-
-
-@kernel
-def _rekey_row(r, S, C, R, P, W, fixed):
+def _push_row(r, R, W, fixed, cnt):
     a_ptr, a_col = R.a_ptr, R.a_col
     for q in range(a_ptr[r], a_ptr[r + 1]):
-        _rekey(a_col[q], S, C, R, P, W, fixed)
+        cnt = _push(a_col[q], W, fixed, cnt)
+    return cnt
 
 
 @kernel
-def _rekey_term(t, S, C, R, P, W, fixed):
+def _push_term(t, C, W, fixed, cnt):
     lit_ptr, lit_var = C.lit_ptr, C.lit_var
     for q in range(lit_ptr[t], lit_ptr[t + 1]):
-        _rekey(lit_var[q], S, C, R, P, W, fixed)
-
-
-@kernel
-def _flip(i, S, dist, Q, C, R, P, W, nviol):
-    """Flip i (:func:`flip_state`) and re-key what its flip changed (module docstring).
-    Returns (new distance, violated rows)."""
-    x, act, sat, fixed = S.x, S.act, S.sat, Q.fixed
-    vt_ptr, vt_term, vt_lit, lit_val = C.vt_ptr, C.vt_term, C.vt_lit, C.lit_val
-    term_pen, term_arity = C.term_pen, C.term_arity
-    col_ptr, col_row, col_val, lo, hi, rtol = (R.col_ptr, R.col_row, R.col_val, R.lo, R.hi,
-                                               R.rtol)
-    xi = x[i]
-    npen = 0
-    for q in range(vt_ptr[i], vt_ptr[i + 1]):  # penalties whose count the flip changes
-        t = vt_term[q]
-        a = term_arity[t]
-        s = sat[t]
-        s2 = s - 1 if xi == lit_val[vt_lit[q]] else s + 1
-        if (s == a) != (s2 == a):
-            W.pens[npen] = term_pen[t]
-            npen += 1
-    dist = flip_state(i, S, dist, Q, C, R)
-    W.tick[0] += 1
-    _rekey(i, S, C, R, P, W, fixed)
-    indptr, indices = Q.indptr, Q.indices
-    for p in range(indptr[i], indptr[i + 1]):
-        _rekey(np.int64(indices[p]), S, C, R, P, W, fixed)
-    sgn = 1.0 - 2.0 * xi
-    for q in range(col_ptr[i], col_ptr[i + 1]):
-        r = col_row[q]
-        a1 = act[r]
-        a0 = a1 - sgn * col_val[q]
-        nviol += ((row_viol(a1, lo[r], hi[r], rtol[r]) > 0.0)
-                  - (row_viol(a0, lo[r], hi[r], rtol[r]) > 0.0))
-        g0 = _regime(a0, lo[r], hi[r], rtol[r], W.rowmax[r])
-        if g0 == 2 or g0 != _regime(a1, lo[r], hi[r], rtol[r], W.rowmax[r]):
-            _rekey_row(r, S, C, R, P, W, fixed)
-    for q in range(vt_ptr[i], vt_ptr[i + 1]):
-        _rekey_term(vt_term[q], S, C, R, P, W, fixed)
-    for c in range(npen):
-        p = W.pens[c]
-        for u in range(W.pt_ptr[p], W.pt_ptr[p + 1]):
-            _rekey_term(W.pt_term[u], S, C, R, P, W, fixed)
-    return dist, nviol
+        cnt = _push(lit_var[q], W, fixed, cnt)
+    return cnt
 
 
 @kernel
@@ -275,45 +199,100 @@ def restore(S, dist, Q, C, R, free, nfree, P, W):
     distance ``dist`` int64) in place; ``free[:nfree]`` int64 the free variables; P
     :class:`~flipfix.repair.solvers.greedy.qubo.Params` (stops early when ``P.stop[0]``
     is set); W :class:`RestoreWork` (trees empty on entry and on return). Returns
-    (steps int64, distance int64, remaining violation float64)."""
-    act, fixed = S.act, Q.fixed
+    (steps int64, distance int64, remaining violation float64).
+
+    One kernel with one call site of each flip helper (the keying of the re-key list at
+    the top of each step, the flips at its end), for a short compile."""
+    x, o, act, sat, fixed = S.x, S.o, S.act, S.sat, Q.fixed
     lo, hi, rtol = R.lo, R.hi, R.rtol
-    radius, max_steps, stop = P.radius, P.max_steps, P.stop
-    key, item = W.key, W.item
+    col_ptr, col_row, col_val = R.col_ptr, R.col_row, R.col_val
+    vt_ptr, vt_term, vt_lit, lit_val = C.vt_ptr, C.vt_term, C.vt_lit, C.lit_val
+    term_pen, term_arity = C.term_pen, C.term_arity
+    indptr, indices = Q.indptr, Q.indices
+    price, radius, max_steps, stop = P.price, P.radius, P.max_steps, P.stop
+    key, item, todo = W.key, W.item, W.todo
     N = key.size // 4
     N2 = 2 * N
     steps = 0
     nviol = 0
     W.tick[0] += 1
     members = 0
+    cnt = np.int64(0)
     for r in range(lo.size):
         if row_viol(act[r], lo[r], hi[r], rtol[r]) > 0.0:
             nviol += 1
             members += R.a_ptr[r + 1] - R.a_ptr[r]
-    if members > N // 8:
-        _key_all(S, C, R, P, W, fixed)
-    elif nviol:
-        for r in range(lo.size):
-            if row_viol(act[r], lo[r], hi[r], rtol[r]) > 0.0:
-                _rekey_row(r, S, C, R, P, W, fixed)
-    while nviol > 0 and steps < max_steps and stop[0] == 0:
-        ka = key[1] if dist < radius else _INF  # away flips only inside the radius
+            cnt = _push_row(r, R, W, fixed, cnt)
+    # at a start with many keys: leaves written directly, then both trees rebuilt, O(N)
+    bulk = members > N // 8
+    while True:
+        # ---- key the re-key list: score if the flip reduces the violation, in the tree
+        # of the flip's direction (away from the candidate, or back); +inf in the other
+        for c in range(cnt):
+            j = todo[c]
+            dobj, dviol, nd = eval_flip(j, S, np.int64(0), C, R, price)
+            k = dobj / (-dviol) if dviol < -_VTOL else _INF
+            away = np.int64(0) if x[j] == o[j] else N2
+            if bulk:
+                key[away + N + j] = k
+            else:
+                tree_set(key, item, away, N, j, k)
+                tree_set(key, item, N2 - away, N, j, _INF)
+        if bulk:
+            _rebuild(key, item, np.int64(0), N)
+            _rebuild(key, item, N2, N)
+            bulk = False
+        if nviol == 0 or steps >= max_steps or stop[0] != 0:
+            break
+        # ---- the best single flip (away flips only inside the radius), else a pair
+        ka = key[1] if dist < radius else _INF
         kb = key[N2 + 1]
         bi = np.int64(-1)
         if ka < kb or (ka == kb and ka < _INF and item[1] < item[N2 + 1]):
             bi = item[1]
         elif kb < _INF:
             bi = item[N2 + 1]
-        if bi >= 0:
-            dist, nviol = _flip(bi, S, dist, Q, C, R, P, W, nviol)
-            steps += 1
-            continue
-        # no single flip helps: pairs (i in a violated row, j anywhere)
-        bi, bj = _best_repair_pair(S, dist, Q, C, R, free, nfree, P, _INF)
-        if bi < 0:
-            break  # stuck: report the least-violating point reached
-        for v in range(2):
-            dist, nviol = _flip(bi if v == 0 else bj, S, dist, Q, C, R, P, W, nviol)
+        bj = np.int64(-1)
+        if bi < 0:  # no single flip helps: pairs (i in a violated row, j anywhere)
+            bi, bj = _best_repair_pair(S, dist, Q, C, R, free, nfree, P, _INF)
+            if bi < 0:
+                break  # stuck: report the least-violating point reached
+        W.tick[0] += 1
+        cnt = np.int64(0)
+        for v in range(2):  # flip (one call site), listing what each flip changed
+            i = bi if v == 0 else bj
+            if i < 0:
+                break
+            xi = x[i]
+            npen = 0
+            for q in range(vt_ptr[i], vt_ptr[i + 1]):  # penalties whose count changes
+                t = vt_term[q]
+                a = term_arity[t]
+                st = sat[t]
+                st2 = st - 1 if xi == lit_val[vt_lit[q]] else st + 1
+                if (st == a) != (st2 == a):
+                    W.pens[npen] = term_pen[t]
+                    npen += 1
+            dist = flip_state(i, S, dist, Q, C, R)
+            cnt = _push(i, W, fixed, cnt)
+            for p in range(indptr[i], indptr[i + 1]):
+                cnt = _push(np.int64(indices[p]), W, fixed, cnt)
+            sgn = 1.0 - 2.0 * xi
+            for q in range(col_ptr[i], col_ptr[i + 1]):
+                r = col_row[q]
+                a1 = act[r]
+                a0 = a1 - sgn * col_val[q]
+                nviol += ((row_viol(a1, lo[r], hi[r], rtol[r]) > 0.0)
+                          - (row_viol(a0, lo[r], hi[r], rtol[r]) > 0.0))
+                g0 = _regime(a0, lo[r], hi[r], rtol[r], W.rowmax[r])
+                if g0 == 2 or g0 != _regime(a1, lo[r], hi[r], rtol[r], W.rowmax[r]):
+                    cnt = _push_row(r, R, W, fixed, cnt)
+            for q in range(vt_ptr[i], vt_ptr[i + 1]):
+                cnt = _push_term(vt_term[q], C, W, fixed, cnt)
+            for c in range(npen):
+                pen = W.pens[c]
+                for u in range(W.pt_ptr[pen], W.pt_ptr[pen + 1]):
+                    cnt = _push_term(W.pt_term[u], C, W, fixed, cnt)
         steps += 1
     tree_drain(key, np.int64(0), N, W.stack)
     tree_drain(key, N2, N, W.stack)
