@@ -1,6 +1,7 @@
 """How the search kernels are compiled (numba), and what keeps their compilation short.
 
-Three decorators:
+Three decorators (and :data:`counted_kernel`, :data:`counted_entry`: the first two with
+reference counting, for kernels that allocate or assign slices):
 
 * :data:`kernel` for inner kernels, called only from other kernels: no reference counting
   (they allocate nothing; their callers pass every array in and keep it alive, and the
@@ -43,7 +44,7 @@ from __future__ import annotations
 
 import numba as nb
 
-__all__ = ["kernel", "entry", "inline"]
+__all__ = ["kernel", "entry", "inline", "counted_kernel", "counted_entry"]
 
 #: Inner kernels: no reference counting, no Python/C entry wrappers, not cached alone.
 kernel = nb.njit(_nrt=False, no_cpython_wrapper=True, no_cfunc_wrapper=True)
@@ -51,3 +52,7 @@ kernel = nb.njit(_nrt=False, no_cpython_wrapper=True, no_cfunc_wrapper=True)
 inline = nb.njit(_nrt=False, inline="always")
 #: Kernels called from Python: no reference counting, the GIL released, cached.
 entry = nb.njit(cache=True, _nrt=False, nogil=True, no_cfunc_wrapper=True)
+#: :data:`kernel` and :data:`entry` with reference counting, for kernels that allocate
+#: (``np.empty``) or assign slices (``a[:] = b``, which may copy its source first).
+counted_kernel = nb.njit(no_cpython_wrapper=True, no_cfunc_wrapper=True)
+counted_entry = nb.njit(cache=True, nogil=True, no_cfunc_wrapper=True)

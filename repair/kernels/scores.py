@@ -29,7 +29,7 @@ import numpy as np
 
 from flipfix.repair.kernels.batching import thread_pool
 from flipfix.repair.kernels.bundles import late_arrays
-from flipfix.repair.kernels.jit import entry, kernel
+from flipfix.repair.kernels.jit import counted_entry, entry, kernel
 from flipfix.repair.lowering.compiled import Compiled
 
 __all__ = ["Scorer", "distances", "warm_up"]
@@ -43,10 +43,6 @@ SAMPLE = 256
 KEEP_ACTIVITIES = 20_000_000
 #: seconds one block of a library's scoring aims at when it runs to a deadline
 BLOCK_SECONDS = 0.005
-
-#: the Python-facing kernels that allocate their scratch arrays: reference counting on,
-#: the GIL released, only the Python wrapper (the helpers are :data:`kernels.jit.kernel`)
-_counted = nb.njit(cache=True, nogil=True, no_cfunc_wrapper=True)
 
 
 @kernel
@@ -169,7 +165,7 @@ def _count_differing(x, a):
     return cnt
 
 
-@_counted
+@counted_entry
 def _library(X, done, first, stop, window, far, q, c, r, offset, e0, mis0, d0, act0, cost,
              viol):
     """Rows first..stop-1 of X: each from the nearest of the ``window`` rows before it that
@@ -206,7 +202,7 @@ def _library(X, done, first, stop, window, far, q, c, r, offset, e0, mis0, d0, a
         cost[k], viol[k] = _total(e0[k], mis0[k], d0[k], a_act, c, r)
 
 
-@_counted
+@counted_entry
 def _near(X, R, rows, scored, e0, mis0, d0, act0, q, c, r, offset, far, cost, viol, flips):
     """Row k of X from the state of row rows[k] of R (from scratch past ``far`` differing
     bits, or when that row is not among the first ``scored``); also its Hamming distance
