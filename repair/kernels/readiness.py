@@ -85,7 +85,7 @@ def _cache_dir() -> Path:
     """Where numba keeps the scoring kernels' cache (the stamp lives there too)."""
     from flipfix.repair.kernels import scores
 
-    return Path(scores._total._cache.cache_path)
+    return Path(scores._library._cache.cache_path)
 
 
 def _kernel_modules() -> list:
