@@ -309,8 +309,15 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         """(Prepared, the job's result) of a job from :meth:`_prepared_call`."""
         return result if prep is None else (prep, result)
 
+    def _reply(self, rpc: str, request, result, prep):
+        """(Prepared, reply) of a job of :data:`prepared.REPLIES`: built here, or parsed
+        from the bytes the worker built."""
+        prep, out = self._settled(result, prep)
+        cls, build = prepared.REPLIES[rpc]
+        return prep, (cls.FromString(out) if isinstance(out, bytes) else build(request, prep, out))
+
     def _start(self, request, context):
-        """Validate, pick the budget, submit; returns (job, Prepared or None, audit_limit).
+        """Validate, pick the budget, submit; returns (job, Prepared or None).
 
         The constraints are read, checked and lowered once, in the server or in the worker
         (:func:`flipfix.service.prepared.repair`); the job gets the result (``compiled``,
@@ -318,13 +325,10 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         place in the heavy-call gate; the search waits in the pool's queue.
         """
         name = request.problem if request.WhichOneof("library") == "problem" else ""
-        job, prep = self._prepared_call(
+        return self._prepared_call(
             "Repair", request, context, name,
             lambda deadline: prepared.repair(self, request, deadline=deadline,
                                              library=lambda: self._library(request, context)))
-        audit_limit = (request.options.audit_limit if request.options.HasField("audit_limit")
-                       else None)
-        return job, prep, audit_limit
 
     def _compiled(self, constraints, problem):
         return prepared.compiled_for(self, constraints, problem)
@@ -386,11 +390,9 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
             pass
         return self._result(job)
 
-    def _repair_reply(self, request, context, result, prep, audit_limit):
-        prep, res = self._settled(result, prep)
-        return self.timeline.finish_repair(request, convert.result_to_reply(
-            res, audit_limit=audit_limit, time_limit=prep.budget, revision=prep.revision),
-            prep.keep["used"], context)
+    def _repair_reply(self, request, context, result, prep):
+        prep, reply = self._reply("Repair", request, result, prep)
+        return self.timeline.finish_repair(request, reply, prep.keep["used"], context)
 
     @staticmethod
     def _budget_of(prep) -> float | None:
@@ -398,17 +400,17 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
 
     @translate_errors
     def Repair(self, request, context):
-        job, prep, audit_limit = self._start(request, context)
+        job, prep = self._start(request, context)
         result = self._wait(job, context, self._budget_of(prep))
-        return self._repair_reply(request, context, result, prep, audit_limit)
+        return self._repair_reply(request, context, result, prep)
 
     @translate_errors
     def RepairStream(self, request, context):
-        job, prep, audit_limit = self._start(request, context)
+        job, prep = self._start(request, context)
         yield from self._stream(
             job, context, self._budget_of(prep), lambda msg: pb.RepairEvent(progress=msg),
             lambda result: pb.RepairEvent(result=self._repair_reply(request, context, result,
-                                                                    prep, audit_limit)))
+                                                                    prep)))
 
     def _stream(self, job, context, budget: float | None, progress_event, result_event):
         """Progress messages as the worker reports (the core's phase names), then the result.
@@ -458,16 +460,14 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         t0 = time.perf_counter()
         job, prep = self._audit("ProfileRobustness", request, context, request.problem)
         # vectorised, not interruptible
-        prep, rep = self._settled(self._wait(job, context, self._budget_of(prep)), prep)
-        reply = convert.robustness_to_reply(rep, revision=prep.revision)
+        prep, reply = self._reply("ProfileRobustness", request,
+                                  self._wait(job, context, self._budget_of(prep)), prep)
         self.timeline.record_audit("ProfileRobustness", request, reply, problem=request.problem,
                                    revision=prep.revision, started=t0, context=context)
         return reply
 
     def _stress_reply(self, request, context, result, prep, t0):
-        prep, rep = self._settled(result, prep)
-        reply = convert.stress_to_reply(rep, matrices=request.matrices, time_limit=prep.budget,
-                                        revision=prep.revision)
+        prep, reply = self._reply("StressTest", request, result, prep)
         self.timeline.record_audit("StressTest", request, reply, problem=request.problem,
                                    revision=prep.revision, started=t0, seed=request.seed,
                                    status=convert.STOP_NAMES.get(reply.stop_reason, ""),
