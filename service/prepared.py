@@ -32,7 +32,8 @@ from flipfix.service.deadlines import budget_until
 from flipfix.service.errors import NotFoundError
 from flipfix.service.generated import flipfix_pb2 as pb
 
-__all__ = ["Prepared", "StoreRef", "PREPARE", "REQUESTS", "REPLIES", "stored_call", "repair",
+__all__ = ["Prepared", "StoreRef", "PREPARE", "REQUESTS", "REPLIES", "stored_call",
+           "stored_problem", "problem_reply", "problem_info", "repair",
            "robustness", "stress", "pareto", "curation", "audit_library", "compiled_for"]
 
 
@@ -248,3 +249,26 @@ def stored_call(ref: StoreRef, rpc: str, raw: bytes, deadline: float | None, *,
 
 
 stored_call.prepares = True  # the pool passes ``started`` (see flipfix.service.worker)
+
+
+def problem_info(rec) -> pb.ProblemInfo:
+    """A :class:`~flipfix.service.store.ProblemRecord` as the contract's ProblemInfo."""
+    return pb.ProblemInfo(name=rec.name, revision=rec.revision, num_variables=rec.num_variables,
+                          num_interactions=rec.num_interactions,
+                          num_candidates=rec.num_candidates, created_at=rec.created_at,
+                          updated_at=rec.updated_at)
+
+
+def problem_reply(env, name: str, revision: int) -> pb.GetProblemReply:
+    """GetProblem: the stored model of ``revision`` (0: the current one) and its info."""
+    info, rev, problem = env.store.get_problem(name, revision)
+    return pb.GetProblemReply(info=problem_info(info), revision=rev,
+                              model=convert.problem_to_model(problem))
+
+
+def stored_problem(ref: StoreRef, name: str, revision: int, *, cancel=None, progress=None
+                   ) -> bytes:
+    """:func:`problem_reply` read and built in a worker, as ``ref.caller``; its bytes (the
+    server sends them as they are, see :class:`flipfix.service.admission.RequestGuard`)."""
+    with acting_as(ref.caller):
+        return problem_reply(_env(ref), name, revision).SerializeToString()

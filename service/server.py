@@ -143,6 +143,10 @@ def _deferred_model(method: str) -> tuple[str, tuple[str, int]]:
 DEFERRED = dict(map(_deferred_model, ("CreateProblem", "ReplaceProblem")))
 
 
+#: Methods whose reply a worker may send as bytes, passed through as they are.
+RAW_REPLIES = frozenset({f"/{SERVICE_NAME}/GetProblem"})
+
+
 class FlipfixServicer(pb_grpc.FlipfixServicer):
     def __init__(self, store: Store, pool: RepairPool, config: ServerConfig,
                  timeline: Timeline | None = None, gate: HeavyGate | None = None):
@@ -167,12 +171,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         return self.gate.admit(size, what, timeout=time_left(context))
 
     # ------------------------------------------------------------- problems
-    @staticmethod
-    def _info(rec) -> pb.ProblemInfo:
-        return pb.ProblemInfo(name=rec.name, revision=rec.revision, num_variables=rec.num_variables,
-                              num_interactions=rec.num_interactions,
-                              num_candidates=rec.num_candidates, created_at=rec.created_at,
-                              updated_at=rec.updated_at)
+    _info = staticmethod(prepared.problem_info)
 
     def _problem(self, model: pb.ProblemModel, field: str):
         self.limits.model(model, field)
@@ -220,10 +219,12 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
 
     @translate_errors
     def GetProblem(self, request, context):
+        if self._prepares_in_worker(request.name):  # read, converted and encoded there
+            job = self._submit_call(prepared.stored_problem,
+                                    (self._ref(), request.name, request.revision), {}, context)
+            return self._wait(job, context, math.inf)  # bytes, sent as they are
         with self._heavy(request, context, "GetProblem", request.name):
-            info, rev, problem = self.store.get_problem(request.name, request.revision)
-            return pb.GetProblemReply(info=self._info(info), revision=rev,
-                                      model=convert.problem_to_model(problem))
+            return prepared.problem_reply(self, request.name, request.revision)
 
     @translate_errors
     def ListProblems(self, request, context):
@@ -284,6 +285,11 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         return (bool(name) and self._store.path != ":memory:"
                 and self.store.stored_bytes(name) >= self.gate.config.light_bytes)
 
+    def _ref(self) -> prepared.StoreRef:
+        """The store and the caller, for a worker that reads the store itself."""
+        return prepared.StoreRef(self._store.path, current_caller(), self.config,
+                                 self.dask_address)
+
     def _prepared_call(self, rpc: str, request, context, name: str, prepare):
         """Submit the call ``rpc``: prepared in a worker from the store (see
         :meth:`_prepares_in_worker`), else here by ``prepare(deadline)`` holding a place in
@@ -291,11 +297,9 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         is ``(Prepared, result)`` (:meth:`_settled`)."""
         deadline = deadline_at(context)
         if self._prepares_in_worker(name):
-            ref = prepared.StoreRef(self._store.path, current_caller(), self.config,
-                                    self.dask_address)
             return self._submit_call(prepared.stored_call,
-                                     (ref, rpc, request.SerializeToString(), deadline), {},
-                                     context), None
+                                     (self._ref(), rpc, request.SerializeToString(), deadline),
+                                     {}, context), None
         with self._heavy(request, context, rpc, name):
             prep = prepare(deadline)
             if prep.fn is None:
@@ -682,7 +686,7 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
                                                     thread_name_prefix="flipfix-rpc"),
                          options=options,
                          interceptors=[drain] + ([AuthInterceptor(tokens)] if tokens else [])
-                         + [RequestGuard(gate, DEFERRED)])
+                         + [RequestGuard(gate, DEFERRED, RAW_REPLIES)])
     servicer = FlipfixServicer(store, pool, config, timeline, gate)
     pb_grpc.add_FlipfixServicer_to_server(servicer, server)
     grow_name = grow_service.register(servicer, server)

@@ -1,4 +1,5 @@
-"""Calls prepared in the pool worker (the worker reads the stored problem itself) answer
+"""Calls prepared in the pool worker (the worker reads the stored problem itself: Repair,
+the audits, GetProblem) answer
 exactly as calls prepared in the server: same answers, same status codes, same messages
 naming the same fields, same tenant isolation -- on SQLite and on PostgreSQL.
 
@@ -99,6 +100,12 @@ def _script(address: str, tokens: dict) -> dict:
             stress=pb.StressRequest(problem="p", scenarios=2), m=5)))
         out["pareto bad label"] = _outcome(lambda: north.stub.ParetoFront(pb.ParetoRequest(
             problem="p", constraints=[_fix({"zz": 1})])))
+        got = north.stub.GetProblem(pb.GetProblemRequest(name="p"))
+        out["get"] = ("OK", (got.revision, got.info.num_candidates, got.model))
+        out["get other tenant"] = _outcome(lambda: north.stub.GetProblem(
+            pb.GetProblemRequest(name="south-only")))
+        out["get revision 9"] = _outcome(lambda: north.stub.GetProblem(
+            pb.GetProblemRequest(name="p", revision=9)))
         rob = north.stub.ProfileRobustness(pb.RobustnessRequest(problem="p"))
         out["robustness"] = ("OK", [(p.candidate_id, p.energy) for p in rob.profiles])
         # an event that stops applying when the problem moves to a revision without 'c'
@@ -140,6 +147,10 @@ def test_calls_prepared_in_the_worker_answer_as_in_the_server(db, tokens):
     assert here["robustness other tenant"] == ("NOT_FOUND",
                                                "problem: no problem named 'south-only'")
     assert here["missing"] == ("NOT_FOUND", "problem: no problem named 'ghost'")
+    assert here["get"][1][:2] == (1, 2)
+    assert convert.model_to_problem(here["get"][1][2]).labels == ("a", "b", "c")
+    assert here["get other tenant"] == ("NOT_FOUND", "name: no problem named 'south-only'")
+    assert here["get revision 9"] == ("NOT_FOUND", "revision: problem 'p' has no revision 9")
     assert here["missing id"] == ("NOT_FOUND", "candidate_ids[1]: problem 'p' has no "
                                                "candidate 'no'")
     assert here["bad label"][0] == "INVALID_ARGUMENT"
@@ -178,6 +189,10 @@ def test_a_large_stored_problem_is_never_decoded_in_the_server(tmp_path, monkeyp
         assert reply.best.feasible and reply.revision == 1
         rob = fx.stub.ProfileRobustness(pb.RobustnessRequest(problem="big"))
         assert [p.candidate_id for p in rob.profiles] == ["zero"]
+        got = convert.model_to_problem(fx.stub.GetProblem(pb.GetProblemRequest(name="big")).model)
+        want = convert.model_to_problem(convert.doc_to_model(doc))
+        assert got.labels == want.labels and (got.linear == want.linear).all()
+        assert (got.data == want.data).all() and (got.indices == want.indices).all()
         assert calls == []
         with pytest.raises(ZeroDivisionError):  # the server's own read would have decoded it
             srv.store.get_problem("big")
