@@ -29,11 +29,12 @@ from flipfix.repair.errors import InputError
 from flipfix.service import audit_jobs, convert
 from flipfix.service.auth import Principal, acting_as
 from flipfix.service.deadlines import budget_until
-from flipfix.service.errors import NotFoundError
+from flipfix.service.errors import ConflictError, NotFoundError
 from flipfix.service.generated import flipfix_pb2 as pb
 
 __all__ = ["Prepared", "StoreRef", "PREPARE", "REQUESTS", "REPLIES", "stored_call",
-           "stored_problem", "problem_reply", "problem_info", "repair",
+           "stored_problem", "problem_reply", "problem_info", "stored_candidates",
+           "candidates_to_add", "repair",
            "robustness", "stress", "pareto", "curation", "audit_library", "compiled_for"]
 
 
@@ -249,6 +250,25 @@ def stored_call(ref: StoreRef, rpc: str, raw: bytes, deadline: float | None, *,
 
 
 stored_call.prepares = True  # the pool passes ``started`` (see flipfix.service.worker)
+
+
+def candidates_to_add(env, request: pb.AddCandidatesRequest) -> tuple:
+    """AddCandidates: ``(revision, ids, X int8 (K, n), provenance)`` of the request's batch
+    read against the stored model (which must still be at ``request.revision`` if given)."""
+    _info, rev, problem = env.store.get_problem(request.problem)
+    if request.revision and request.revision != rev:
+        raise ConflictError("revision", f"problem {request.problem!r} is at revision "
+                                        f"{rev}, not {request.revision}")
+    env.config.limits.candidates(request.candidates, "candidates")
+    ids, X, provs = convert.batch_to_arrays(problem, request.candidates)
+    return rev, ids, X, provs
+
+
+def stored_candidates(ref: StoreRef, raw: bytes, *, cancel=None, progress=None) -> tuple:
+    """:func:`candidates_to_add` in a worker (the stored model read there), as
+    ``ref.caller``; ``raw``: the AddCandidatesRequest's bytes. The server stores them."""
+    with acting_as(ref.caller):
+        return candidates_to_add(_env(ref), pb.AddCandidatesRequest.FromString(raw))
 
 
 def problem_info(rec) -> pb.ProblemInfo:

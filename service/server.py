@@ -17,8 +17,13 @@ core, and converts back; errors become status codes in :mod:`flipfix.service.err
 * :meth:`RunningServer.shutdown`: health NOT_SERVING, no new calls, in-flight
   calls get ``grace`` seconds, then are cancelled (their solvers stop).
 * The audit RPCs (robustness, stress test, Pareto front, curation) take
-  the same path: validate and convert here, run :mod:`flipfix.service.audit_jobs` in the
+  the same path: validate and convert, run :mod:`flipfix.service.audit_jobs` in the
   pool with the same slots, budget, deadline and cancellation, convert back.
+* Large work stays out of this process's interpreter (a long call into C holds it, and
+  health checks wait): a large upload is decoded in a worker from its raw bytes
+  (:mod:`flipfix.service.wire`, :mod:`flipfix.service.upload_jobs`); a call on a large
+  stored problem (Repair, the audits, GetProblem, AddCandidates) is prepared, and its
+  reply built, in the worker, which reads the store itself (:mod:`flipfix.service.prepared`).
 """
 
 from __future__ import annotations
@@ -41,17 +46,17 @@ from flipfix.repair.model.candidates import CandidateSet
 from flipfix.repair.errors import InputError
 
 from flipfix.service import prepared, upload_jobs
+# the margins are re-exported: the deadline's figures as the server applies them
 from flipfix.service.deadlines import (MARGIN_FIXED, MARGIN_MAX, MARGIN_SHARE,  # noqa: F401
-                                        MIN_BUDGET, NO_DEADLINE, STOP_SHARE, budget_until,
-                                        deadline_at, deadline_budget, deadline_margin,
-                                        time_left)
+                                        MIN_BUDGET, NO_DEADLINE, STOP_SHARE, deadline_at,
+                                        deadline_budget, deadline_margin, time_left)
 from flipfix.service.admission import AdmissionConfig, DrainInterceptor, HeavyGate, RequestGuard
 from flipfix.service.auth import AuthInterceptor, TokenFile
 from flipfix.service.auth import current as current_caller
 from flipfix.service import convert
 from flipfix.service import grow_service
 from flipfix.service import reflection_v1
-from flipfix.service.errors import ConflictError, NotFoundError, TransientError, translate_errors
+from flipfix.service.errors import TransientError, translate_errors
 from flipfix.service.generated import flipfix_pb2 as pb
 from flipfix.service.generated import flipfix_pb2_grpc as pb_grpc
 from flipfix.service.limits import Limits
@@ -239,13 +244,14 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
     # ----------------------------------------------------------- candidates
     @translate_errors
     def AddCandidates(self, request, context):
+        if self._prepares_in_worker(request.problem):  # the model is read there
+            job = self._submit_call(prepared.stored_candidates,
+                                    (self._ref(), request.SerializeToString()), {}, context)
+            rev, ids, X, provs = self._wait(job, context, math.inf)
+            out = self.store.add_candidates(request.problem, rev, ids, X, provs)
+            return pb.AddCandidatesReply(ids=out, revision=rev)
         with self._heavy(request, context, "AddCandidates", request.problem):
-            _info, rev, problem = self.store.get_problem(request.problem)
-            if request.revision and request.revision != rev:
-                raise ConflictError("revision", f"problem {request.problem!r} is at revision "
-                                                f"{rev}, not {request.revision}")
-            self.limits.candidates(request.candidates, "candidates")
-            ids, X, provs = convert.batch_to_arrays(problem, request.candidates)
+            rev, ids, X, provs = prepared.candidates_to_add(self, request)
             out = self.store.add_candidates(request.problem, rev, ids, X, provs)
             return pb.AddCandidatesReply(ids=out, revision=rev)
 
