@@ -238,11 +238,15 @@ class RequestGuard(grpc.ServerInterceptor):
     requests and health checks pass untouched.
 
     ``deferred``: method path -> (field name, field number) of a length-delimited field
-    left undecoded in requests of ``light_bytes`` or more (see the module doc)."""
+    left undecoded in requests of ``light_bytes`` or more (see the module doc);
+    ``raw_replies``: method paths whose servicer may return the reply already serialized
+    (``bytes``, built in a worker): sent as they are."""
 
-    def __init__(self, gate: HeavyGate, deferred: dict | None = None):
+    def __init__(self, gate: HeavyGate, deferred: dict | None = None,
+                 raw_replies=frozenset()):
         self.gate = gate
         self.deferred = dict(deferred or {})
+        self.raw_replies = frozenset(raw_replies)
 
     def intercept_service(self, continuation, handler_call_details):
         handler = continuation(handler_call_details)
@@ -285,7 +289,13 @@ class RequestGuard(grpc.ServerInterceptor):
                     context.abort(code, details)
                 yield from inner(request, context)
             return replace_behaviour(handler, refuse_or_stream, decode=guarded_decode)
-        return replace_behaviour(handler, refuse_or_run, decode=guarded_decode)
+        encode = None
+        if method in self.raw_replies:
+            serialize = handler.response_serializer
+
+            def encode(reply):
+                return reply if isinstance(reply, bytes) else serialize(reply)
+        return replace_behaviour(handler, refuse_or_run, decode=guarded_decode, encode=encode)
 
 
 def behaviour(handler):
@@ -294,22 +304,24 @@ def behaviour(handler):
             or handler.stream_stream)
 
 
-def replace_behaviour(handler, fn, *, decode=None):
+def replace_behaviour(handler, fn, *, decode=None, encode=None):
     """``handler`` with its behaviour replaced by ``fn`` (same serialisers and kind; the
-    request deserialiser too unless ``decode`` is given)."""
+    request deserialiser too unless ``decode`` is given, the response serialiser unless
+    ``encode`` is)."""
     decode = decode or handler.request_deserializer
+    encode = encode or handler.response_serializer
     if handler.request_streaming and handler.response_streaming:
         return grpc.stream_stream_rpc_method_handler(
             fn, request_deserializer=decode,
-            response_serializer=handler.response_serializer)
+            response_serializer=encode)
     if handler.request_streaming:
         return grpc.stream_unary_rpc_method_handler(
             fn, request_deserializer=decode,
-            response_serializer=handler.response_serializer)
+            response_serializer=encode)
     if handler.response_streaming:
         return grpc.unary_stream_rpc_method_handler(
             fn, request_deserializer=decode,
-            response_serializer=handler.response_serializer)
+            response_serializer=encode)
     return grpc.unary_unary_rpc_method_handler(
         fn, request_deserializer=decode,
-        response_serializer=handler.response_serializer)
+        response_serializer=encode)

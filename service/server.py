@@ -17,8 +17,13 @@ core, and converts back; errors become status codes in :mod:`flipfix.service.err
 * :meth:`RunningServer.shutdown`: health NOT_SERVING, no new calls, in-flight
   calls get ``grace`` seconds, then are cancelled (their solvers stop).
 * The audit RPCs (robustness, stress test, Pareto front, curation) take
-  the same path: validate and convert here, run :mod:`flipfix.service.audit_jobs` in the
+  the same path: validate and convert, run :mod:`flipfix.service.audit_jobs` in the
   pool with the same slots, budget, deadline and cancellation, convert back.
+* Large work stays out of this process's interpreter (a long call into C holds it, and
+  health checks wait): a large upload is decoded in a worker from its raw bytes
+  (:mod:`flipfix.service.wire`, :mod:`flipfix.service.upload_jobs`); a call on a large
+  stored problem (Repair, the audits, GetProblem, AddCandidates) is prepared, and its
+  reply built, in the worker, which reads the store itself (:mod:`flipfix.service.prepared`).
 """
 
 from __future__ import annotations
@@ -41,17 +46,17 @@ from flipfix.repair.model.candidates import CandidateSet
 from flipfix.repair.errors import InputError
 
 from flipfix.service import prepared, upload_jobs
+# the margins are re-exported: the deadline's figures as the server applies them
 from flipfix.service.deadlines import (MARGIN_FIXED, MARGIN_MAX, MARGIN_SHARE,  # noqa: F401
-                                        MIN_BUDGET, NO_DEADLINE, STOP_SHARE, budget_until,
-                                        deadline_at, deadline_budget, deadline_margin,
-                                        time_left)
+                                        MIN_BUDGET, NO_DEADLINE, STOP_SHARE, deadline_at,
+                                        deadline_budget, deadline_margin, time_left)
 from flipfix.service.admission import AdmissionConfig, DrainInterceptor, HeavyGate, RequestGuard
 from flipfix.service.auth import AuthInterceptor, TokenFile
 from flipfix.service.auth import current as current_caller
 from flipfix.service import convert
 from flipfix.service import grow_service
 from flipfix.service import reflection_v1
-from flipfix.service.errors import ConflictError, NotFoundError, TransientError, translate_errors
+from flipfix.service.errors import TransientError, translate_errors
 from flipfix.service.generated import flipfix_pb2 as pb
 from flipfix.service.generated import flipfix_pb2_grpc as pb_grpc
 from flipfix.service.limits import Limits
@@ -143,6 +148,10 @@ def _deferred_model(method: str) -> tuple[str, tuple[str, int]]:
 DEFERRED = dict(map(_deferred_model, ("CreateProblem", "ReplaceProblem")))
 
 
+#: Methods whose reply a worker may send as bytes, passed through as they are.
+RAW_REPLIES = frozenset({f"/{SERVICE_NAME}/GetProblem"})
+
+
 class FlipfixServicer(pb_grpc.FlipfixServicer):
     def __init__(self, store: Store, pool: RepairPool, config: ServerConfig,
                  timeline: Timeline | None = None, gate: HeavyGate | None = None):
@@ -168,12 +177,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         return self.gate.admit(size, what, timeout=time_left(context))
 
     # ------------------------------------------------------------- problems
-    @staticmethod
-    def _info(rec) -> pb.ProblemInfo:
-        return pb.ProblemInfo(name=rec.name, revision=rec.revision, num_variables=rec.num_variables,
-                              num_interactions=rec.num_interactions,
-                              num_candidates=rec.num_candidates, created_at=rec.created_at,
-                              updated_at=rec.updated_at)
+    _info = staticmethod(prepared.problem_info)
 
     def _problem(self, model: pb.ProblemModel, field: str):
         self.limits.model(model, field)
@@ -221,10 +225,12 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
 
     @translate_errors
     def GetProblem(self, request, context):
+        if self._prepares_in_worker(request.name):  # read, converted and encoded there
+            job = self._submit_call(prepared.stored_problem,
+                                    (self._ref(), request.name, request.revision), {}, context)
+            return self._wait(job, context, math.inf)  # bytes, sent as they are
         with self._heavy(request, context, "GetProblem", request.name):
-            info, rev, problem = self.store.get_problem(request.name, request.revision)
-            return pb.GetProblemReply(info=self._info(info), revision=rev,
-                                      model=convert.problem_to_model(problem))
+            return prepared.problem_reply(self, request.name, request.revision)
 
     @translate_errors
     def ListProblems(self, request, context):
@@ -239,13 +245,14 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
     # ----------------------------------------------------------- candidates
     @translate_errors
     def AddCandidates(self, request, context):
+        if self._prepares_in_worker(request.problem):  # the model is read there
+            job = self._submit_call(prepared.stored_candidates,
+                                    (self._ref(), request.SerializeToString()), {}, context)
+            rev, ids, X, provs = self._wait(job, context, math.inf)
+            out = self.store.add_candidates(request.problem, rev, ids, X, provs)
+            return pb.AddCandidatesReply(ids=out, revision=rev)
         with self._heavy(request, context, "AddCandidates", request.problem):
-            _info, rev, problem = self.store.get_problem(request.problem)
-            if request.revision and request.revision != rev:
-                raise ConflictError("revision", f"problem {request.problem!r} is at revision "
-                                                f"{rev}, not {request.revision}")
-            self.limits.candidates(request.candidates, "candidates")
-            ids, X, provs = convert.batch_to_arrays(problem, request.candidates)
+            rev, ids, X, provs = prepared.candidates_to_add(self, request)
             out = self.store.add_candidates(request.problem, rev, ids, X, provs)
             return pb.AddCandidatesReply(ids=out, revision=rev)
 
@@ -285,6 +292,11 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         return (bool(name) and self._store.path != ":memory:"
                 and self.store.stored_bytes(name) >= self.gate.config.light_bytes)
 
+    def _ref(self) -> prepared.StoreRef:
+        """The store and the caller, for a worker that reads the store itself."""
+        return prepared.StoreRef(self._store.path, current_caller(), self.config,
+                                 self.dask_address)
+
     def _prepared_call(self, rpc: str, request, context, name: str, prepare):
         """Submit the call ``rpc``: prepared in a worker from the store (see
         :meth:`_prepares_in_worker`), else here by ``prepare(deadline)`` holding a place in
@@ -292,11 +304,9 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         is ``(Prepared, result)`` (:meth:`_settled`)."""
         deadline = deadline_at(context)
         if self._prepares_in_worker(name):
-            ref = prepared.StoreRef(self._store.path, current_caller(), self.config,
-                                    self.dask_address)
             return self._submit_call(prepared.stored_call,
-                                     (ref, rpc, request.SerializeToString(), deadline), {},
-                                     context), None
+                                     (self._ref(), rpc, request.SerializeToString(), deadline),
+                                     {}, context), None
         with self._heavy(request, context, rpc, name):
             prep = prepare(deadline)
             if prep.fn is None:
@@ -310,8 +320,15 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         """(Prepared, the job's result) of a job from :meth:`_prepared_call`."""
         return result if prep is None else (prep, result)
 
+    def _reply(self, rpc: str, request, result, prep):
+        """(Prepared, reply) of a job of :data:`prepared.REPLIES`: built here, or parsed
+        from the bytes the worker built."""
+        prep, out = self._settled(result, prep)
+        cls, build = prepared.REPLIES[rpc]
+        return prep, (cls.FromString(out) if isinstance(out, bytes) else build(request, prep, out))
+
     def _start(self, request, context):
-        """Validate, pick the budget, submit; returns (job, Prepared or None, audit_limit).
+        """Validate, pick the budget, submit; returns (job, Prepared or None).
 
         The constraints are read, checked and lowered once, in the server or in the worker
         (:func:`flipfix.service.prepared.repair`); the job gets the result (``compiled``,
@@ -319,13 +336,10 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         place in the heavy-call gate; the search waits in the pool's queue.
         """
         name = request.problem if request.WhichOneof("library") == "problem" else ""
-        job, prep = self._prepared_call(
+        return self._prepared_call(
             "Repair", request, context, name,
             lambda deadline: prepared.repair(self, request, deadline=deadline,
                                              library=lambda: self._library(request, context)))
-        audit_limit = (request.options.audit_limit if request.options.HasField("audit_limit")
-                       else None)
-        return job, prep, audit_limit
 
     def _compiled(self, constraints, problem):
         return prepared.compiled_for(self, constraints, problem)
@@ -387,11 +401,9 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
             pass
         return self._result(job)
 
-    def _repair_reply(self, request, context, result, prep, audit_limit):
-        prep, res = self._settled(result, prep)
-        return self.timeline.finish_repair(request, convert.result_to_reply(
-            res, audit_limit=audit_limit, time_limit=prep.budget, revision=prep.revision),
-            prep.keep["used"], context)
+    def _repair_reply(self, request, context, result, prep):
+        prep, reply = self._reply("Repair", request, result, prep)
+        return self.timeline.finish_repair(request, reply, prep.keep["used"], context)
 
     @staticmethod
     def _budget_of(prep) -> float | None:
@@ -399,17 +411,17 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
 
     @translate_errors
     def Repair(self, request, context):
-        job, prep, audit_limit = self._start(request, context)
+        job, prep = self._start(request, context)
         result = self._wait(job, context, self._budget_of(prep))
-        return self._repair_reply(request, context, result, prep, audit_limit)
+        return self._repair_reply(request, context, result, prep)
 
     @translate_errors
     def RepairStream(self, request, context):
-        job, prep, audit_limit = self._start(request, context)
+        job, prep = self._start(request, context)
         yield from self._stream(
             job, context, self._budget_of(prep), lambda msg: pb.RepairEvent(progress=msg),
             lambda result: pb.RepairEvent(result=self._repair_reply(request, context, result,
-                                                                    prep, audit_limit)))
+                                                                    prep)))
 
     def _stream(self, job, context, budget: float | None, progress_event, result_event):
         """Progress messages as the worker reports (the core's phase names), then the result.
@@ -459,16 +471,14 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         t0 = time.perf_counter()
         job, prep = self._audit("ProfileRobustness", request, context, request.problem)
         # vectorised, not interruptible
-        prep, rep = self._settled(self._wait(job, context, self._budget_of(prep)), prep)
-        reply = convert.robustness_to_reply(rep, revision=prep.revision)
+        prep, reply = self._reply("ProfileRobustness", request,
+                                  self._wait(job, context, self._budget_of(prep)), prep)
         self.timeline.record_audit("ProfileRobustness", request, reply, problem=request.problem,
                                    revision=prep.revision, started=t0, context=context)
         return reply
 
     def _stress_reply(self, request, context, result, prep, t0):
-        prep, rep = self._settled(result, prep)
-        reply = convert.stress_to_reply(rep, matrices=request.matrices, time_limit=prep.budget,
-                                        revision=prep.revision)
+        prep, reply = self._reply("StressTest", request, result, prep)
         self.timeline.record_audit("StressTest", request, reply, problem=request.problem,
                                    revision=prep.revision, started=t0, seed=request.seed,
                                    status=convert.STOP_NAMES.get(reply.stop_reason, ""),
@@ -683,7 +693,7 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
                                                     thread_name_prefix="flipfix-rpc"),
                          options=options,
                          interceptors=[drain] + ([AuthInterceptor(tokens)] if tokens else [])
-                         + [RequestGuard(gate, DEFERRED)])
+                         + [RequestGuard(gate, DEFERRED, RAW_REPLIES)])
     servicer = FlipfixServicer(store, pool, config, timeline, gate)
     pb_grpc.add_FlipfixServicer_to_server(servicer, server)
     grow_name = grow_service.register(servicer, server)

@@ -1,4 +1,5 @@
-"""Calls prepared in the pool worker (the worker reads the stored problem itself) answer
+"""Calls prepared in the pool worker (the worker reads the stored problem itself: Repair,
+the audits, GetProblem) answer
 exactly as calls prepared in the server: same answers, same status codes, same messages
 naming the same fields, same tenant isolation -- on SQLite and on PostgreSQL.
 
@@ -15,6 +16,7 @@ from __future__ import annotations
 import itertools
 
 import grpc
+import numpy as np
 import pytest
 
 from flipfix.service import auth, convert, wire
@@ -99,6 +101,18 @@ def _script(address: str, tokens: dict) -> dict:
             stress=pb.StressRequest(problem="p", scenarios=2), m=5)))
         out["pareto bad label"] = _outcome(lambda: north.stub.ParetoFront(pb.ParetoRequest(
             problem="p", constraints=[_fix({"zz": 1})])))
+        out["add at old revision"] = _outcome(lambda: north.stub.AddCandidates(
+            pb.AddCandidatesRequest(problem="p", revision=7, candidates=convert.arrays_to_batch(
+                ["k9"], np.zeros((1, 3), dtype=np.int8)))))
+        out["add other tenant"] = _outcome(lambda: north.stub.AddCandidates(
+            pb.AddCandidatesRequest(problem="south-only", candidates=convert.arrays_to_batch(
+                ["k9"], np.zeros((1, 3), dtype=np.int8)))))
+        got = north.stub.GetProblem(pb.GetProblemRequest(name="p"))
+        out["get"] = ("OK", (got.revision, got.info.num_candidates, got.model))
+        out["get other tenant"] = _outcome(lambda: north.stub.GetProblem(
+            pb.GetProblemRequest(name="south-only")))
+        out["get revision 9"] = _outcome(lambda: north.stub.GetProblem(
+            pb.GetProblemRequest(name="p", revision=9)))
         rob = north.stub.ProfileRobustness(pb.RobustnessRequest(problem="p"))
         out["robustness"] = ("OK", [(p.candidate_id, p.energy) for p in rob.profiles])
         # an event that stops applying when the problem moves to a revision without 'c'
@@ -140,6 +154,13 @@ def test_calls_prepared_in_the_worker_answer_as_in_the_server(db, tokens):
     assert here["robustness other tenant"] == ("NOT_FOUND",
                                                "problem: no problem named 'south-only'")
     assert here["missing"] == ("NOT_FOUND", "problem: no problem named 'ghost'")
+    assert here["get"][1][:2] == (1, 2)
+    assert here["add at old revision"] == ("FAILED_PRECONDITION",
+                                           "revision: problem 'p' is at revision 1, not 7")
+    assert here["add other tenant"] == ("NOT_FOUND", "name: no problem named 'south-only'")
+    assert convert.model_to_problem(here["get"][1][2]).labels == ("a", "b", "c")
+    assert here["get other tenant"] == ("NOT_FOUND", "name: no problem named 'south-only'")
+    assert here["get revision 9"] == ("NOT_FOUND", "revision: problem 'p' has no revision 9")
     assert here["missing id"] == ("NOT_FOUND", "candidate_ids[1]: problem 'p' has no "
                                                "candidate 'no'")
     assert here["bad label"][0] == "INVALID_ARGUMENT"
@@ -170,14 +191,20 @@ def test_a_large_stored_problem_is_never_decoded_in_the_server(tmp_path, monkeyp
                        warm=False) as srv, FlipfixClient(srv.address, timeout=60) as fx:
         fx.create_problem("big", doc)
         fx.add_candidates("big", [{"id": "zero", "assignment": {f"v{k}": 0 for k in range(4000)}}])
-        assert srv.store.stored_bytes("big") >= srv.servicer.gate.config.light_bytes
         calls = []
         monkeypatch.setattr(store_module, "decode_model",
                             lambda text: calls.append(len(text)) or 1 / 0)
+        assert fx.add_candidates("big", [{"id": "one", "assignment": {
+            f"v{k}": 1 for k in range(4000)}}]) == ["one"]  # read against the model there
+        assert srv.store.stored_bytes("big") >= srv.servicer.gate.config.light_bytes
         reply = _repair(fx, "big", [_fix({"v3": 0})])
         assert reply.best.feasible and reply.revision == 1
         rob = fx.stub.ProfileRobustness(pb.RobustnessRequest(problem="big"))
-        assert [p.candidate_id for p in rob.profiles] == ["zero"]
+        assert [p.candidate_id for p in rob.profiles] == ["zero", "one"]
+        got = convert.model_to_problem(fx.stub.GetProblem(pb.GetProblemRequest(name="big")).model)
+        want = convert.model_to_problem(convert.doc_to_model(doc))
+        assert got.labels == want.labels and (got.linear == want.linear).all()
+        assert (got.data == want.data).all() and (got.indices == want.indices).all()
         assert calls == []
         with pytest.raises(ZeroDivisionError):  # the server's own read would have decoded it
             srv.store.get_problem("big")
