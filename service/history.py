@@ -210,7 +210,7 @@ class History:
                   caller: str = "") -> EventRow:
         """Store an event checked against ``revision``; ConflictError when the problem
         has moved on meanwhile (the check no longer holds)."""
-        with self.store._tx() as db:
+        with self.store._tx(problem) as db:
             rev = Store.current_revision(db, problem)
             if rev != revision:
                 raise ConflictError("constraint", f"problem {problem!r} moved to revision {rev} "
@@ -222,7 +222,7 @@ class History:
                                      (new_id,)).fetchone())
 
     def withdraw_event(self, problem: str, event_id: int, *, caller: str = "") -> EventRow:
-        with self.store._tx() as db:
+        with self.store._tx(problem) as db:
             Store.current_revision(db, problem)
             row = db.execute(f"SELECT {_EVENT_COLUMNS} FROM events WHERE id = ? AND problem = ?",
                              (event_id, problem)).fetchone()
@@ -252,7 +252,7 @@ class History:
         if not isinstance(candidate_id, str) or not candidate_id:
             raise InputError("candidate_id", "must name a stored candidate")
         if db is None:
-            with self.store._tx() as db:
+            with self.store._tx(problem) as db:
                 return self.publish(problem, candidate_id, caller=caller, db=db)
         Store.current_revision(db, problem)
         row = db.execute("SELECT revision FROM candidates WHERE problem = ? AND id = ?",
@@ -290,7 +290,7 @@ class History:
         """Store one run's record; returns its id. Keeps at most ``max_records`` per problem."""
         if kind not in KINDS:
             raise InputError("kind", f"must be one of {KINDS}, got {kind!r}")
-        with self.store._tx() as db:
+        with self.store._tx(problem) as db:
             Store.current_revision(db, problem)
             record_id = db.execute(
                 "INSERT INTO records (problem, kind, rpc, revision, recorded_at, caller, seconds, "
@@ -352,7 +352,7 @@ class History:
         record is not a feasible repair of the current revision. Returns (candidate id,
         revision, published row or None).
         """
-        with self.store._tx() as db:
+        with self.store._tx(problem) as db:
             rev = Store.current_revision(db, problem)
             rec = self._record_in(db, problem, record_id)
             if rec.adopted_candidate_id:
