@@ -139,6 +139,7 @@ def repair(
     progress: Callable[[dict], None] | None = None,
     compiled: Compiled | None = None, mix: Mix = DEFAULT_MIX,
     alternatives: int = 0, alternative_distance: int = 1, alternatives_by: str = "flips",
+    candidate_runner=None,
 ) -> RepairResult:
     """Repair every candidate under the late constraints; return the best and the audit.
 
@@ -156,6 +157,10 @@ def repair(
     ``alternatives`` > 0 also returns up to that many feasible answers pairwise at least
     ``alternative_distance`` apart (``alternatives_by``: "flips" or "decisions"), cheapest
     first (:mod:`flipfix.repair.solvers.alternatives`); a fifth of the budget is kept for them.
+
+    ``candidate_runner`` (a :class:`flipfix.repair.solvers.candidate_runner.CandidateRunner`,
+    e.g. a Dask cluster): the greedy repair of each candidate of a large library runs there,
+    in chunks, with the same answers; the rest of the plan runs here.
     """
     # one-time costs per process, kept out of the budget: the compiled kernels (loaded
     # from the cache, or compiled on a machine's first run) and OR-Tools
@@ -168,12 +173,13 @@ def repair(
                        pareto=pareto, cancel=cancel, progress=progress, compiled=compiled,
                        mix=mix, t0=time.perf_counter(), alternatives=alternatives,
                        alternative_distance=alternative_distance,
-                       alternatives_by=alternatives_by)
+                       alternatives_by=alternatives_by, candidate_runner=candidate_runner)
 
 
 def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, flip_price,
             seed, workers, pareto, cancel, progress, compiled, mix, t0, alternatives=0,
-            alternative_distance=1, alternatives_by="flips") -> RepairResult:
+            alternative_distance=1, alternatives_by="flips",
+            candidate_runner=None) -> RepairResult:
     if not isinstance(problem, Problem):
         raise InputError("problem", f"expected a Problem, got {type(problem).__name__}")
     if not isinstance(candidates, CandidateSet):
@@ -230,7 +236,8 @@ def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, 
     plan = run_plan(compiled, X0, method=method,
                     deadline=search_deadline(t0, float(time_limit), reserve),
                     max_flips=max_flips, flip_price=price, seed=seed, workers=workers,
-                    cancel=cancel, progress=report, mix=mix, scorer=scorer)
+                    cancel=cancel, progress=report, mix=mix, scorer=scorer,
+                    runner=candidate_runner)
     res = _build(problem, candidates, compiled, scorer, plan.attempts, price, method, seed, t0,
                  plan=plan, **common)
     res = _name_conflict(res, compiled, time_limit=time_limit, seed=seed, cancel=cancel, t0=t0)
@@ -246,8 +253,16 @@ def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, 
 
 
 #: the conflict search's time when the budget is spent (a small model needs a few
-#: milliseconds; a busy machine more)
+#: milliseconds; a busy machine more), for hard parts up to CONFLICT_SMALL entries
 CONFLICT_MIN_SECONDS = 0.25
+#: conflict models (variables plus row entries plus fixings) larger than this get only what
+#: is left of the budget, and none when that cannot pay for building its model
+#: (CONFLICT_BUILD_SECONDS per entry): at 100,000 variables its build and first solve took
+#: 0.45-1.3 s (bench/budget.py), past a 0.1 s budget's reply
+CONFLICT_SMALL = 10_000
+#: seconds per entry of building the conflict search's CP-SAT model (0.53 s for 100,000
+#: variables and 1,000 fixings, bench/budget.py under load)
+CONFLICT_BUILD_SECONDS = 5e-6
 #: share of the budget kept for the alternatives' CP-SAT searches when they are asked for
 ALTERNATIVES_SHARE = 0.2
 
@@ -277,14 +292,20 @@ def _name_conflict(res: RepairResult, compiled: Compiled, *, time_limit, seed, c
                    ) -> RepairResult:
     """Without a feasible answer, name a minimal set of hard late constraints that conflict
     (:mod:`flipfix.repair.solvers.conflicts`, in what is left of the budget, at least
-    CONFLICT_MIN_SECONDS); a proved conflict makes the status "infeasible" and the message
-    names it. A cancel stops it with what it has proved."""
+    CONFLICT_MIN_SECONDS when the hard part is small, else only what is left); a proved
+    conflict makes the status "infeasible" and the message names it. A cancel stops it with
+    what it has proved."""
     if (res.status not in ("infeasible", "no_feasible_found") or not compiled.has_hard
             or (cancel is not None and cancel.is_set())):
         return res
     from flipfix.repair.solvers.conflicts import name_conflict
 
-    left = max(CONFLICT_MIN_SECONDS, float(time_limit) - (time.perf_counter() - t0))
+    left = float(time_limit) - (time.perf_counter() - t0)
+    entries = compiled.n + compiled.a_data.size + int((compiled.fixed >= 0).sum())
+    if entries <= CONFLICT_SMALL:
+        left = max(CONFLICT_MIN_SECONDS, left)
+    elif left <= CONFLICT_BUILD_SECONDS * entries:
+        return res  # its model's build alone would pass the budget: the reply stays in it
     conflict = name_conflict(compiled, time_limit=left, seed=seed, cancel=cancel)
     if conflict.status == "conflict":  # a proof: a search that found nothing is now "infeasible"
         res.conflict = conflict

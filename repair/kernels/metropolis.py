@@ -34,6 +34,7 @@ from typing import NamedTuple
 import numba as nb
 import numpy as np
 
+from flipfix.repair.kernels.jit import counted_entry, counted_kernel, kernel
 from flipfix.repair.kernels.rows import row_viol
 
 __all__ = ["Moves", "Plan", "Chain", "advance", "flip_changes", "new_chain", "temperature",
@@ -151,7 +152,7 @@ def _stream(seed, k):
 
 
 # ---------------------------------------------------------------- schedule
-@nb.njit(cache=True)
+@kernel
 def temperature(plan, s):
     """Temperature of sweep s (0 <= s < plan.sweeps): geometric from ``t_quench`` up to
     ``t_turn`` over the ``heat`` first sweeps (ending at ``t_turn``), then geometric from
@@ -280,7 +281,7 @@ def _partner(i, r, x, fixed, R, rng):
 
 
 # ----------------------------------------------------------------- sweeps
-@nb.njit(cache=True, _nrt=False)
+@kernel
 def _sweep_plain(Q, M, plan, o, ch, beta):
     """:func:`_sweep` for a problem without count penalties nor rows: the QUBO, the flip
     price and the radius only (the same moves and random draws, less bookkeeping)."""
@@ -308,7 +309,7 @@ def _sweep_plain(Q, M, plan, o, ch, beta):
     ch.dist[0] = dist
 
 
-@nb.njit(cache=True, _nrt=False)
+@kernel
 def _sweep(Q, C, R, M, plan, o, ch, beta):
     """One Metropolis pass over the free variables at inverse temperature beta."""
     if C.cp_const.size == 0 and R.lo.size == 0:
@@ -404,7 +405,7 @@ def _fresh(x, Q, C, R, field, dcount, sat, act):
     return e
 
 
-@nb.njit(cache=True)
+@counted_kernel
 def _begin(k, Q, C, R, M, plan, X, O, ch):
     """Load start k into the chain: pinned bits set, random free bits when ``randomise``."""
     x, o = ch.x, O[k]
@@ -435,7 +436,7 @@ def _begin(k, Q, C, R, M, plan, X, O, ch):
     ch.sched[1] = 1.0 / max(1, plan.sweeps - 1)
 
 
-@nb.njit(cache=True, nogil=True)
+@counted_entry
 def advance(Q, C, R, M, plan, X, O, ch, pos, end, budget, tol, sweeps_out):
     """Run starts ``pos[0]`` .. ``end - 1`` of X (int8 (K, n), in place), resuming start
     ``pos[0]`` at sweep ``pos[1]`` (``pos[2]`` = 1 once it is loaded in ``ch``), until
@@ -481,7 +482,7 @@ def advance(Q, C, R, M, plan, X, O, ch, pos, end, budget, tol, sweeps_out):
     return used
 
 
-@nb.njit(cache=True, nogil=True)
+@counted_entry
 def flip_changes(Q, C, R, free, X, out):
     """The change of the QUBO-and-count-penalty objective when each free variable flips,
     for every row of X (int8 (K, n)): into out float64 (K, nf)."""

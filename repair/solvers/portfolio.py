@@ -53,6 +53,8 @@ from flipfix.repair.lowering.compiled import Compiled
 from flipfix.repair.errors import InputError
 from flipfix.repair.kernels.scores import Scorer, distances
 from flipfix.repair.solvers.greedy import objective_tol, greedy_repair
+from flipfix.repair.solvers.greedy.start import consensus
+from flipfix.repair.solvers.candidate_runner import ANCHOR_ROWS, distributes, greedy_on_runner
 
 __all__ = ["Attempt", "PlanOutcome", "CpsatCosts", "CPSAT_COSTS", "kick_masks", "run_plan",
            "attempt_scores"]
@@ -289,7 +291,7 @@ class _LazyCpsat:
 def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, deadline: float,
              max_flips: int | None, flip_price: float, seed: int, workers: int,
              cancel=None, progress=None, mix: Mix = DEFAULT_MIX,
-             scorer: Scorer | None = None) -> PlanOutcome:
+             scorer: Scorer | None = None, runner=None) -> PlanOutcome:
     """Run one plan on the candidates X0 (int8 (K, n)) until ``deadline`` (a
     ``time.perf_counter()`` value); see the module docstring.
 
@@ -299,6 +301,8 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, deadline: float
     ``scorer`` (default: built here) scores the library and every attempt; only the
     candidates it scored (a prefix of X0) are searched from. Candidates no attempt starts
     from get none (:func:`flipfix.repair.api.repair` reports them as they are).
+    ``runner``: where a large library's greedy stage runs
+    (:mod:`flipfix.repair.solvers.candidate_runner`).
     """
     out = PlanOutcome(attempts=[])
     if scorer is None:
@@ -314,7 +318,7 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, deadline: float
     _search(compiled, X0, out, cp, scorer, method=method,
             deadline=deadline - (1.0 - share) * time_limit, max_flips=max_flips,
             flip_price=flip_price, seed=seed, workers=workers, cancel=cancel,
-            progress=progress, mix=mix)
+            progress=progress, mix=mix, runner=runner)
 
     def cancelled() -> bool:
         return cancel is not None and cancel.is_set()
@@ -336,7 +340,7 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, deadline: float
 def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat,
             scorer: Scorer, *, method: str, deadline: float, max_flips: int | None,
             flip_price: float, seed: int, workers: int, cancel=None, progress=None,
-            mix: Mix = DEFAULT_MIX) -> PlanOutcome:
+            mix: Mix = DEFAULT_MIX, runner=None) -> PlanOutcome:
     """Run the search stages of one plan on the candidates X0 (int8 (K, n)) into ``out``
     until ``deadline``; see the module docstring. ``cp`` is the (lazily built) CP-SAT
     model, ``scorer`` scores the library and the attempts."""
@@ -365,7 +369,8 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
     rows, seconds, steps = _greedy_stage(compiled, X0, first, deadline=g_deadline,
                                          first_deadline=deadline,
                                          max_flips=max_flips, flip_price=flip_price,
-                                         cancel=cancel, workers=workers, report=report)
+                                         cancel=cancel, workers=workers, report=report,
+                                         runner=runner)
     fin = np.fromiter(rows, np.int64, len(rows))  # the candidates greedy repaired
     done = np.zeros(K, dtype=bool)
     done[fin] = True
@@ -452,14 +457,20 @@ GREEDY_FIRST_BATCH = 16
 
 
 def _greedy_stage(compiled, X0, order, *, deadline, first_deadline, max_flips, flip_price,
-                  cancel, workers, report):
+                  cancel, workers, report, runner=None):
     """Greedy repair of the candidates X0[order] in that order: the first alone until
     ``first_deadline`` (the whole search's: with no repaired answer nothing else can start
     from one), then the others in batches of doubling size (from ``GREEDY_FIRST_BATCH``;
     at most what half of the time left fits at the last batch's pace) until ``deadline``:
     each batch's set-up (its copies, its consensus) is paid only for candidates the time
     reaches. Returns ({candidate: repaired x int8 (n,)} of those
-    repaired, seconds float64 (K,) spent on each, total steps)."""
+    repaired, seconds float64 (K,) spent on each, total steps). Every batch starts from one
+    anchor, so the answers do not depend on the batches; a large library goes to ``runner``."""
+    anchor = consensus(X0[order[:ANCHOR_ROWS]], compiled.fixed)
+    if distributes(runner, *X0.shape):
+        return greedy_on_runner(runner, compiled, X0, order, anchor=anchor, deadline=deadline,
+                                max_flips=max_flips, flip_price=flip_price, cancel=cancel,
+                                report=report)
     K = X0.shape[0]
     rows: dict = {}
     seconds = np.zeros(K)
@@ -471,7 +482,8 @@ def _greedy_stage(compiled, X0, order, *, deadline, first_deadline, max_flips, f
             size = max(1, min(size, int(0.5 * (deadline - time.perf_counter()) / each)))
         batch = order[pos:pos + size]
         t = time.perf_counter()
-        g = greedy_repair(compiled, X0[batch], max_flips=max_flips, flip_price=flip_price,
+        g = greedy_repair(compiled, X0[batch], anchor=anchor, max_flips=max_flips,
+                          flip_price=flip_price,
                           deadline=first_deadline if pos == 0 else deadline, cancel=cancel,
                           workers=workers,
                           progress=lambda d, tot, at=pos: report(done=at + d, total=K,
@@ -479,7 +491,9 @@ def _greedy_stage(compiled, X0, order, *, deadline, first_deadline, max_flips, f
         seconds[batch] = g.seconds
         each = (time.perf_counter() - t) / batch.size
         steps += int(g.steps.sum())
-        rows.update((int(k), g.X[j]) for j, k in enumerate(batch.tolist()) if g.done[j])
+        # a descent the deadline cut short still gives its feasible state (g.partial)
+        rows.update((int(k), g.X[j]) for j, k in enumerate(batch.tolist())
+                    if g.done[j] or g.partial[j])
         if not g.done.all() or (cancel is not None and cancel.is_set()):
             break
         pos, size = pos + size, GREEDY_FIRST_BATCH if pos == 0 else 2 * size
