@@ -37,8 +37,8 @@ Columns, per row at budget T:
   to the late objective. Two threads (the sampler releases the GIL while it sweeps), each
   with ``SA_READS`` reads; its sweeps are calibrated once per late model (overhead and time
   per sweep measured on that model) so that the call lasts T, and when a run's wall time falls
-  outside [0.9, 1.05] x T (the machine's load moved), its sweeps are rescaled by the rate just
-  measured and it runs again (at most 4 runs; the last counts); ``SA wall/T`` shows how close
+  outside [0.9, 1.05] x T (the machine's load moved), its sweeps are rescaled in proportion
+  (at most x4 either way per step) and it runs again (at most 4 runs; the last counts); ``SA wall/T`` shows how close
   the last run came. Its cost is the best of its reads scored by flipfix's
   ``Compiled.evaluate`` (the same scoring as flipfix's); a read that breaks a hard row counts
   +inf, and so does the answer when no read is feasible.
@@ -79,8 +79,9 @@ TIE = 1e-9
 CARD_SUBSET = 1000
 #: the re-run's wall time must fall within these multiples of T; when the load on the machine
 #: moved it off (a calibration once per late model gave 0.59-1.71 T in loaded runs), its sweeps
-#: are rescaled by the measured rate and it runs again, at most FIT_TRIES runs in all (the last
-#: counts): the same wall time for both sides is the comparison's premise
+#: are rescaled in proportion (a factor of 0.25-4 per step) and it runs again, at most
+#: FIT_TRIES runs in all (the last counts): the same wall time for both sides is the
+#: comparison's premise
 FIT = (0.9, 1.05)
 FIT_TRIES = 4
 
@@ -350,8 +351,10 @@ class SaRerun:
             tries += 1
             if FIT[0] * T <= wall <= FIT[1] * T or tries >= FIT_TRIES:
                 break
-            sweeps = max(1, int(sweeps * 0.97 * (T - self.overhead)
-                                / max(wall - self.overhead, 1e-6)))
+            # in proportion to the whole call, the step at most x4 either way (the call's
+            # overhead, measured once, may be off as much as the rate: subtracting it from
+            # a short run divided by next to nothing and asked for minutes of sweeps)
+            sweeps = max(1, int(sweeps * float(np.clip(0.97 * T / max(wall, 1e-9), 0.25, 4.0))))
         ev = self.comp.evaluate(X)
         tol = self.tolerance + 1e-9 * max(1.0, float(np.abs(ev.cost).max()))
         gap = (E - ev.cost)[ev.feasible]
