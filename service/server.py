@@ -305,8 +305,11 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
             used = self.timeline.used(request, problem, rev)  # published plan, events in force
             compiled = self._compiled(used.constraints, problem)
             budget = kwargs["time_limit"] = self._budget(kwargs["time_limit"], context)
+            # with a deadline, the job's search ends by the same moment wherever it waits
+            until = {} if time_left(context) is None else {"until": time.monotonic() + budget}
             job = self._watched(self.pool.submit(problem, cands, (),
-                                                 {**kwargs, "compiled": compiled}), context)
+                                                 {**kwargs, "compiled": compiled, **until}),
+                                context)
         audit_limit = (request.options.audit_limit if request.options.HasField("audit_limit")
                        else None)
         return job, budget, audit_limit, rev, used

@@ -132,8 +132,20 @@ def _watch_cancel(pipe, ended, gen: int, token: CancelToken) -> None:
             return
 
 
+#: the least time_limit a job gets when its ``until`` has (nearly) passed (s)
+MIN_TIME_LIMIT = 0.01
+
+
 def _run_call(slot: int, gen: int, fn, args: tuple, kwargs: dict):
-    """Run ``fn(*args, cancel=token, progress=callback, **kwargs)`` as job ``gen`` of ``slot``."""
+    """Run ``fn(*args, cancel=token, progress=callback, **kwargs)`` as job ``gen`` of ``slot``.
+
+    ``kwargs["until"]`` (optional, popped): a ``time.monotonic()`` value (one clock for
+    every process of the machine) by which the job should have returned; its
+    ``time_limit`` is cut, once the job starts, to what is left until then, so time
+    spent queued or handing the job over comes off the search, not past the caller's
+    deadline."""
+    kwargs = dict(kwargs)
+    until = kwargs.pop("until", None)
     pipe = _PIPES[slot]
     base = slot * SLOT_WIDTH
     token = CancelToken()
@@ -156,6 +168,9 @@ def _run_call(slot: int, gen: int, fn, args: tuple, kwargs: dict):
         from flipfix.repair.api import warm_up
 
         warm_up()
+        if until is not None and "time_limit" in kwargs:
+            kwargs["time_limit"] = max(MIN_TIME_LIMIT, min(float(kwargs["time_limit"]),
+                                                           until - time.monotonic()))
         tell("started")
         last_phase = [None]
 
