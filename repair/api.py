@@ -139,6 +139,7 @@ def repair(
     progress: Callable[[dict], None] | None = None,
     compiled: Compiled | None = None, mix: Mix = DEFAULT_MIX,
     alternatives: int = 0, alternative_distance: int = 1, alternatives_by: str = "flips",
+    candidate_runner=None,
 ) -> RepairResult:
     """Repair every candidate under the late constraints; return the best and the audit.
 
@@ -156,6 +157,10 @@ def repair(
     ``alternatives`` > 0 also returns up to that many feasible answers pairwise at least
     ``alternative_distance`` apart (``alternatives_by``: "flips" or "decisions"), cheapest
     first (:mod:`flipfix.repair.solvers.alternatives`); a fifth of the budget is kept for them.
+
+    ``candidate_runner`` (a :class:`flipfix.repair.solvers.candidate_runner.CandidateRunner`,
+    e.g. a Dask cluster): the greedy repair of each candidate of a large library runs there,
+    in chunks, with the same answers; the rest of the plan runs here.
     """
     # one-time costs per process, kept out of the budget: the compiled kernels (loaded
     # from the cache, or compiled on a machine's first run) and OR-Tools
@@ -168,12 +173,13 @@ def repair(
                        pareto=pareto, cancel=cancel, progress=progress, compiled=compiled,
                        mix=mix, t0=time.perf_counter(), alternatives=alternatives,
                        alternative_distance=alternative_distance,
-                       alternatives_by=alternatives_by)
+                       alternatives_by=alternatives_by, candidate_runner=candidate_runner)
 
 
 def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, flip_price,
             seed, workers, pareto, cancel, progress, compiled, mix, t0, alternatives=0,
-            alternative_distance=1, alternatives_by="flips") -> RepairResult:
+            alternative_distance=1, alternatives_by="flips",
+            candidate_runner=None) -> RepairResult:
     if not isinstance(problem, Problem):
         raise InputError("problem", f"expected a Problem, got {type(problem).__name__}")
     if not isinstance(candidates, CandidateSet):
@@ -230,7 +236,8 @@ def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, 
     plan = run_plan(compiled, X0, method=method,
                     deadline=search_deadline(t0, float(time_limit), reserve),
                     max_flips=max_flips, flip_price=price, seed=seed, workers=workers,
-                    cancel=cancel, progress=report, mix=mix, scorer=scorer)
+                    cancel=cancel, progress=report, mix=mix, scorer=scorer,
+                    runner=candidate_runner)
     res = _build(problem, candidates, compiled, scorer, plan.attempts, price, method, seed, t0,
                  plan=plan, **common)
     res = _name_conflict(res, compiled, time_limit=time_limit, seed=seed, cancel=cancel, t0=t0)

@@ -45,15 +45,10 @@ def stress(problem: Problem, candidates: CandidateSet, family, *, scenarios: int
                        progress=progress, repair_options=repair_options, runner=runner)
 
 
-_CLUSTERS: dict = {}  # scheduler address -> Cluster, in this worker process
-
-
 def _dask_runner(address: str):
-    from flipfix.service.cluster import DaskRunner, connect
+    from flipfix.service.cluster import DaskRunner, client_at
 
-    if address not in _CLUSTERS:
-        _CLUSTERS[address] = connect(address, field="dask")
-    return DaskRunner(_CLUSTERS[address].client)
+    return DaskRunner(client_at(address))
 
 
 def pareto(problem: Problem, candidates: CandidateSet, compiled: Compiled, *,

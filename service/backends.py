@@ -7,20 +7,42 @@ SQLite's column types; a backend runs it:
   one connection under one lock (``BEGIN IMMEDIATE``), reads on pooled read-only
   connections of their own (one snapshot each, no write lock).
 * :class:`PostgresBackend` -- a ``postgresql://`` URL, a psycopg 3 connection pool.
-  Every write transaction first takes one transaction-scoped advisory lock, so writes from
-  any number of flipfix replicas on the same database run one at a time, exactly as on
-  SQLite (a revision check and the write that follows it can never interleave with
-  another replica's); commits are durable before they are acknowledged (PostgreSQL's
-  default ``synchronous_commit``). Reads are ``READ ONLY REPEATABLE READ`` transactions:
-  one snapshot, no lock. The DDL is translated (``BLOB`` -> ``BYTEA``, ...) and ``?``
+  Write transactions take transaction-scoped advisory locks first (see "Write locks"
+  below); commits are durable before they are acknowledged (PostgreSQL's default
+  ``synchronous_commit``). Reads are ``READ ONLY REPEATABLE READ`` transactions: one
+  snapshot, no lock. The DDL is translated (``BLOB`` -> ``BYTEA``, ...) and ``?``
   becomes ``%s``. A lost server connection is a
   :class:`~flipfix.service.errors.TransientError` (UNAVAILABLE: retry).
+
+Write locks (PostgreSQL; across every replica on the database). Everything a write
+checks before it writes -- a problem's revision (``expected_revision``), its next
+candidate number, whether an id is taken, its published plan, events and records -- lives
+in the rows of that one problem. So a write to one problem takes:
+
+* ``WRITE_LOCK`` *shared* (any number at once), then
+* the problem's own lock, exclusive: a key made from the tenant and the problem name
+  (:func:`lock_id`); writes to one problem run one at a time, writes to different
+  problems side by side. Under ``READ COMMITTED`` each statement reads what was committed
+  before it, so a check made under the lock sees every earlier write to that problem;
+* with quotas set, also its tenant's lock (:meth:`PostgresBackend.lock`, taken after the
+  problem's lock, never before: no two writers wait on each other in a cycle): a quota
+  check counts the tenant's rows of *all* its problems, so two writers of one tenant
+  could both pass a check that only one of them fits; without quotas nothing is counted
+  and no tenant lock is taken.
+
+A write not tied to one problem (the schema, its version and migrations) takes
+``WRITE_LOCK`` exclusive: it waits for every write under way and holds back every new one,
+exactly the one-at-a-time order of earlier versions. Candidate ids need no global lock:
+the server numbers them per problem (the counter is the problem's row), and the table's
+primary key (problem, id) refuses a duplicate in any case. On SQLite one writer at a time
+is the file's own rule (``BEGIN IMMEDIATE``); the keys are accepted and change nothing.
 
 :func:`open_backend` picks one from the ``--db`` value.
 """
 
 from __future__ import annotations
 
+import hashlib
 import queue
 import re
 import sqlite3
@@ -31,10 +53,19 @@ from typing import Iterator
 
 from flipfix.service.errors import TransientError
 
-__all__ = ["open_backend", "SQLiteBackend", "PostgresBackend", "is_postgres_url"]
+__all__ = ["open_backend", "SQLiteBackend", "PostgresBackend", "is_postgres_url", "lock_id"]
 
-#: the advisory lock every PostgreSQL write transaction holds (any constant; "flipfix")
+#: the advisory lock every PostgreSQL write transaction holds: shared by writes to one
+#: problem, exclusive for the others (any constant; "flipfix")
 WRITE_LOCK = 0x666C6970666978
+
+
+def lock_id(kind: str, key: str) -> int:
+    """The advisory lock (a signed 64-bit number) of ``kind`` ("problem", "tenant") ``key``:
+    the first 8 bytes of its BLAKE2b hash. Two keys that collide share a lock: they only
+    wait for each other, which never breaks a write."""
+    digest = hashlib.blake2b(f"{kind}\0{key}".encode("utf-8"), digest_size=8).digest()
+    return int.from_bytes(digest, "big", signed=True)
 
 
 def is_postgres_url(text: str) -> bool:
@@ -80,8 +111,9 @@ class SQLiteBackend:
         self.db.executescript(ddl)
 
     @contextmanager
-    def tx(self) -> Iterator[sqlite3.Connection]:
-        """One write transaction (``BEGIN IMMEDIATE``): commit on success, else roll back."""
+    def tx(self, key: str | None = None) -> Iterator[sqlite3.Connection]:
+        """One write transaction (``BEGIN IMMEDIATE``): commit on success, else roll back.
+        ``key`` (the problem written) changes nothing: SQLite has one writer at a time."""
         with self._lock:
             self.db.execute("BEGIN IMMEDIATE")
             try:
@@ -114,6 +146,10 @@ class SQLiteBackend:
                     db.execute("ROLLBACK")
         finally:
             self._idle_readers.put(db)
+
+    @staticmethod
+    def lock(db, kind: str, key: str) -> None:
+        """Nothing: the open write transaction is the only writer already."""
 
     def pragma(self, name: str):
         with self._lock:
@@ -189,14 +225,14 @@ class PostgresBackend:
                 db.execute(stmt)
 
     @contextmanager
-    def _transaction(self, begin: str, lock: bool):
+    def _transaction(self, begin: str, locks: tuple):
         OperationalError = self._psycopg.OperationalError
         try:
             with self.pool.connection() as conn:
                 conn.execute(begin)
                 try:
-                    if lock:
-                        conn.execute("SELECT pg_advisory_xact_lock(%s)", (WRITE_LOCK,))
+                    for fn, number in locks:
+                        conn.execute(f"SELECT {fn}(%s)", (number,))
                     yield _PgConnection(conn)
                 except BaseException:
                     if not conn.closed:
@@ -207,13 +243,24 @@ class PostgresBackend:
             raise TransientError("db", f"the PostgreSQL server connection failed: "
                                        f"{str(exc).strip()}") from None
 
-    def tx(self):
-        """One write transaction, serialised across replicas by the advisory lock."""
-        return self._transaction("BEGIN ISOLATION LEVEL READ COMMITTED", lock=True)
+    def tx(self, key: str | None = None):
+        """One write transaction: to the problem stored as ``key`` (``WRITE_LOCK`` shared,
+        then the problem's lock), or, with no key, to anything (``WRITE_LOCK`` exclusive).
+        See "Write locks" in the module docstring."""
+        locks = ((("pg_advisory_xact_lock", WRITE_LOCK),) if key is None else
+                 (("pg_advisory_xact_lock_shared", WRITE_LOCK),
+                  ("pg_advisory_xact_lock", lock_id("problem", key))))
+        return self._transaction("BEGIN ISOLATION LEVEL READ COMMITTED", locks)
+
+    @staticmethod
+    def lock(db, kind: str, key: str) -> None:
+        """Inside the open write transaction ``db``: take the lock of ``kind`` ``key`` too
+        (until the transaction ends), after its problem's lock."""
+        db.execute("SELECT pg_advisory_xact_lock(?)", (lock_id(kind, key),))
 
     def read(self):
         """One read-only snapshot, no lock."""
-        return self._transaction("BEGIN ISOLATION LEVEL REPEATABLE READ READ ONLY", lock=False)
+        return self._transaction("BEGIN ISOLATION LEVEL REPEATABLE READ READ ONLY", ())
 
     def close(self) -> None:
         self.pool.close()

@@ -62,6 +62,9 @@ class ServiceError(Exception):
         self.message = message
         super().__init__(f"{field}: {message}")
 
+    def __reduce__(self):  # rebuilt as the same kind after a pool worker raised it
+        return (type(self), (self.field, self.message))
+
 
 class NotFoundError(ServiceError):
     """An unknown problem, revision or candidate."""

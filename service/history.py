@@ -181,6 +181,9 @@ def _record(row, full: bool) -> RecordRow:
     return RecordRow(*head, *tail)
 
 
+_migrate = migrate  # the name is the keyword of History's constructor
+
+
 class History:
     """Events, published plan and records of the problems of ``store``.
 
@@ -188,13 +191,14 @@ class History:
     one is written); None keeps every record.
     """
 
-    def __init__(self, store: Store, *, max_records: int | None = 1000):
+    def __init__(self, store: Store, *, max_records: int | None = 1000, migrate: bool = True):
         if max_records is not None and (not isinstance(max_records, int) or max_records < 1):
             raise InputError("max_records", f"must be an integer >= 1, got {max_records!r}")
         self.store = store
         self.max_records = max_records
-        with store._tx() as db:
-            migrate(db, store.ddl)
+        if migrate:  # False: only reads, of tables the server process keeps up to date
+            with store._tx() as db:
+                _migrate(db, store.ddl)
 
     @property
     def version(self) -> int:
@@ -206,7 +210,7 @@ class History:
                   caller: str = "") -> EventRow:
         """Store an event checked against ``revision``; ConflictError when the problem
         has moved on meanwhile (the check no longer holds)."""
-        with self.store._tx() as db:
+        with self.store._tx(problem) as db:
             rev = Store.current_revision(db, problem)
             if rev != revision:
                 raise ConflictError("constraint", f"problem {problem!r} moved to revision {rev} "
@@ -218,7 +222,7 @@ class History:
                                      (new_id,)).fetchone())
 
     def withdraw_event(self, problem: str, event_id: int, *, caller: str = "") -> EventRow:
-        with self.store._tx() as db:
+        with self.store._tx(problem) as db:
             Store.current_revision(db, problem)
             row = db.execute(f"SELECT {_EVENT_COLUMNS} FROM events WHERE id = ? AND problem = ?",
                              (event_id, problem)).fetchone()
@@ -248,7 +252,7 @@ class History:
         if not isinstance(candidate_id, str) or not candidate_id:
             raise InputError("candidate_id", "must name a stored candidate")
         if db is None:
-            with self.store._tx() as db:
+            with self.store._tx(problem) as db:
                 return self.publish(problem, candidate_id, caller=caller, db=db)
         Store.current_revision(db, problem)
         row = db.execute("SELECT revision FROM candidates WHERE problem = ? AND id = ?",
@@ -286,7 +290,7 @@ class History:
         """Store one run's record; returns its id. Keeps at most ``max_records`` per problem."""
         if kind not in KINDS:
             raise InputError("kind", f"must be one of {KINDS}, got {kind!r}")
-        with self.store._tx() as db:
+        with self.store._tx(problem) as db:
             Store.current_revision(db, problem)
             record_id = db.execute(
                 "INSERT INTO records (problem, kind, rpc, revision, recorded_at, caller, seconds, "
@@ -348,7 +352,7 @@ class History:
         record is not a feasible repair of the current revision. Returns (candidate id,
         revision, published row or None).
         """
-        with self.store._tx() as db:
+        with self.store._tx(problem) as db:
             rev = Store.current_revision(db, problem)
             rec = self._record_in(db, problem, record_id)
             if rec.adopted_candidate_id:

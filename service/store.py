@@ -5,10 +5,11 @@ several replicas (:mod:`flipfix.service.backends`, chosen by the ``--db`` value)
 
 * a write is durable before it is acknowledged (SQLite: WAL, ``synchronous=FULL``;
   PostgreSQL: its commit);
-* every public write is one transaction, and writes run one at a time (SQLite's
-  ``BEGIN IMMEDIATE``; PostgreSQL: one advisory lock across replicas): a request that
-  fails validation half-way stores nothing, and a revision check cannot interleave with
-  another write;
+* every public write is one transaction, and writes to one problem run one at a time
+  (SQLite: every write, ``BEGIN IMMEDIATE``; PostgreSQL: an advisory lock per problem
+  across replicas, plus the tenant's when quotas are set -- see "Write locks" in
+  :mod:`flipfix.service.backends`): a request that fails validation half-way stores
+  nothing, and a revision check cannot interleave with another write to that problem;
 * every public read is one read-only snapshot without the write lock, so reads run
   beside each other and beside a write.
 * ``schema_version`` holds the schema number; opening a newer database fails,
@@ -197,6 +198,17 @@ class Store:
             self._backend.close()
             raise
 
+    @classmethod
+    def reader(cls, path: str | Path) -> "Store":
+        """The store at ``path`` for reads only, as another process keeps it (a pool
+        worker preparing a call): no schema creation, migration or quota; its writes
+        would still be serialised as every store's are."""
+        self = cls.__new__(cls)
+        self.path = str(path)
+        self.quotas = None
+        self._backend = open_backend(path)
+        return self
+
     @property
     def where(self) -> str:
         """The database, for messages and logs (a URL without its password)."""
@@ -248,9 +260,11 @@ class Store:
         db.execute("UPDATE schema_version SET version = ?", (version,))
 
     # ---------------------------------------------------------------- plumbing
-    def _tx(self):
-        """One write transaction (all or nothing), see :mod:`flipfix.service.backends`."""
-        return self._backend.tx()
+    def _tx(self, key: str | None = None):
+        """One write transaction (all or nothing) to the problem stored as ``key`` (None:
+        to anything; it then waits for every other write), see "Write locks" in
+        :mod:`flipfix.service.backends`."""
+        return self._backend.tx(key)
 
     def _read(self):
         """One read-only snapshot."""
@@ -304,6 +318,14 @@ class Store:
                              (self._key(tenant, name),)).fetchone()
         return int(row[0]) if row else 0
 
+    def stored_bytes(self, name: str, *, tenant: str = "") -> int:
+        """Bytes the problem holds in the store (every model revision and candidate; 0
+        when there is no such problem): one row's counter, nothing else is read."""
+        with self._read() as db:
+            row = db.execute("SELECT bytes FROM problems WHERE name = ?",
+                             (self._key(tenant, name),)).fetchone()
+        return int(row[0]) if row else 0
+
     def usage(self, *, tenant: str = "") -> dict:
         """The tenant's stored problems, candidates and bytes."""
         with self._read() as db:
@@ -323,6 +345,7 @@ class Store:
         would take ``tenant`` over a quota."""
         if self.quotas is None or not self.quotas.any:
             return
+        self._backend.lock(db, "tenant", tenant)  # the count below covers all its problems
         self.quotas.check(tenant, self._usage(db, tenant), problems=problems,
                           candidates=candidates, size=size)
 
@@ -353,7 +376,7 @@ class Store:
         self._check_name(name)
         model = encoded if encoded is not None else encode_model(problem)
         key = self._key(tenant, name)
-        with self._tx() as db:
+        with self._tx(key) as db:
             if db.execute("SELECT 1 FROM problems WHERE name = ?", (key,)).fetchone():
                 raise AlreadyExistsError("name", f"a problem named {name!r} exists")
             self._charge(db, tenant, problems=1, size=len(model))
@@ -370,7 +393,7 @@ class Store:
                         tenant: str = "", encoded: str | None = None) -> ProblemRecord:
         model = encoded if encoded is not None else encode_model(problem)
         key = self._key(tenant, name)
-        with self._tx() as db:
+        with self._tx(key) as db:
             row = db.execute("SELECT revision FROM problems WHERE name = ?", (key,)).fetchone()
             if row is None:
                 raise NotFoundError("name", f"no problem named {name!r}")
@@ -415,7 +438,7 @@ class Store:
     def delete_problem(self, name: str, *, tenant: str = "") -> int:
         """Delete a problem, its revisions and candidates; returns the candidates deleted."""
         key = self._key(tenant, name)
-        with self._tx() as db:
+        with self._tx(key) as db:
             self._exists(db, key, name, "name")
             n = db.execute("SELECT COUNT(*) FROM candidates WHERE problem = ?", (key,)).fetchone()[0]
             db.execute("DELETE FROM candidates WHERE problem = ?", (key,))
@@ -437,7 +460,7 @@ class Store:
         rb = packing.row_bytes(X.shape[1])
         blob = packing.pack_rows(X)
         key = self._key(tenant, name)
-        with self._tx() if db is None else nullcontext(db) as db:
+        with self._tx(key) if db is None else nullcontext(db) as db:
             row = db.execute("SELECT revision, next_candidate FROM problems WHERE name = ?",
                              (key,)).fetchone()
             if row is None:
@@ -509,7 +532,7 @@ class Store:
 
     def remove_candidates(self, name: str, ids: Sequence[str], *, tenant: str = "") -> int:
         key = self._key(tenant, name)
-        with self._tx() as db:
+        with self._tx(key) as db:
             self._exists(db, key, name, "problem")
             for k, cid in enumerate(ids):
                 if not db.execute("SELECT 1 FROM candidates WHERE problem = ? AND id = ?",
@@ -543,7 +566,7 @@ class Store:
         the choice was made on exactly that library.
         """
         key = self._key(tenant, name)
-        with self._tx() as db:
+        with self._tx(key) as db:
             row = db.execute("SELECT revision FROM problems WHERE name = ?", (key,)).fetchone()
             if row is None:
                 raise NotFoundError("problem", f"no problem named {name!r}")

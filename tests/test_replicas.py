@@ -178,3 +178,80 @@ def test_killing_a_replica_mid_write_loses_no_acknowledged_write(replicas):
     assert set(acknowledged) <= set(batches)  # every acknowledged batch is there
     assert all(count == BATCH for count in batches.values())  # all-or-nothing
     assert len(stored) == len(set(stored))
+
+
+# ------------------------------------------------------------- write locks
+# Two stores on one database stand for two replicas. The second one's sessions give up a
+# lock wait after LOCK_TIMEOUT_MS (PostgreSQL's lock_timeout): while the first holds a
+# write transaction open, a write of the second that needs one of its locks fails for
+# certain, and one that needs none succeeds -- an observation of the locks themselves,
+# whatever the machine's speed (lock_timeout counts only time spent waiting for a lock).
+LOCK_TIMEOUT_MS = 300
+
+
+def _impatient(url: str) -> str:
+    return url + ("&" if "?" in url else "?") + f"options=-c%20lock_timeout%3D{LOCK_TIMEOUT_MS}"
+
+
+def _row(seed: int) -> np.ndarray:
+    return np.random.default_rng(seed).integers(0, 2, size=(1, N), dtype=np.int8)
+
+
+def _lock_timeout(call):
+    from flipfix.service.errors import TransientError
+
+    with pytest.raises(TransientError, match="lock timeout"):
+        call()
+
+
+def test_writes_to_different_problems_do_not_wait_and_one_problem_still_serialises(postgres):
+    from flipfix.service.store import Store
+
+    url = postgres.new_database()
+    a, b = Store(url), Store(_impatient(url))
+    try:
+        for name in ("p1", "p2"):
+            a.create_problem(name, _problem())
+        with a._tx("p1") as db:  # a write to p1 under way (not committed yet)
+            assert a.add_candidates("p1", 1, [""], _row(0), [{}], db=db) == ["c0"]
+            # another problem: no wait (a single lock for all writes would time out here)
+            assert b.add_candidates("p2", 1, [""], _row(1), [{}]) == ["c0"]
+            b.create_problem("p3", _problem())
+            # the same problem waits for the open write: it cannot number c0 twice
+            _lock_timeout(lambda: b.add_candidates("p1", 1, [""], _row(2), [{}]))
+            _lock_timeout(lambda: b.replace_problem("p1", _problem(1.0), expected_revision=1))
+            # a write not tied to one problem waits for every write under way
+            _lock_timeout(lambda: b._tx().__enter__())
+        # committed: the waiting writes go through and see it
+        assert b.add_candidates("p1", 1, [""], _row(2), [{}]) == ["c1"]
+        assert b.replace_problem("p1", _problem(1.0), expected_revision=1).revision == 2
+        assert [r.id for r in a.list_candidates("p1")[0]] == ["c0", "c1"]
+    finally:
+        a.close()
+        b.close()
+
+
+def test_quota_checks_of_one_tenant_wait_for_each_other(postgres):
+    from flipfix.service.store import Store
+    from flipfix.service.tenancy import QuotaError, Quotas
+
+    url = postgres.new_database()
+    quotas = Quotas(problems=3)
+    a, b = Store(url, quotas=quotas), Store(_impatient(url), quotas=quotas)
+    try:
+        for name in ("p1", "p2"):
+            a.create_problem(name, _problem(), tenant="t1")
+        a.create_problem("p1", _problem(), tenant="t2")
+        with a._tx(a._key("t1", "p1")) as db:  # t1's usage counted, the write not committed
+            a.add_candidates("p1", 1, [""], _row(0), [{}], tenant="t1", db=db)
+            # a write of t1 to another problem counts t1's usage too: it waits
+            _lock_timeout(lambda: b.add_candidates("p2", 1, [""], _row(1), [{}], tenant="t1"))
+            _lock_timeout(lambda: b.create_problem("p3", _problem(), tenant="t1"))
+            # another tenant: no wait
+            assert b.add_candidates("p1", 1, [""], _row(2), [{}], tenant="t2") == ["c0"]
+        b.create_problem("p3", _problem(), tenant="t1")
+        with pytest.raises(QuotaError):  # the fourth problem of t1
+            b.create_problem("p4", _problem(), tenant="t1")
+    finally:
+        a.close()
+        b.close()

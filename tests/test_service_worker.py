@@ -115,26 +115,3 @@ def test_a_worker_that_dies_leaves_the_pool_working(pool):
     until_done(again)
     assert again.future.result() is True
 
-
-def given_time_limit(*, cancel, progress, time_limit: float) -> float:
-    """The time limit the job was started with."""
-    return time_limit
-
-
-def test_a_job_with_until_gets_only_the_time_left_until_then(pool):
-    """``until`` (a time.monotonic() value, one clock for every process) cuts the job's
-    time_limit to what is left when the worker starts it: time spent queued or handed
-    over comes off the search, not past the caller's deadline; a passed ``until`` leaves
-    the floor."""
-    import time
-
-    from flipfix.service.worker import MIN_TIME_LIMIT
-
-    sent = time.monotonic()
-    job = pool.submit_call(given_time_limit, kwargs={"time_limit": 50.0, "until": sent + 30.0})
-    got = job.future.result(WAIT)
-    assert 0.0 < got < 30.0  # cut from 50 s to what was left of the 30 s
-    late = pool.submit_call(given_time_limit, kwargs={"time_limit": 5.0, "until": sent - 1.0})
-    assert late.future.result(WAIT) == MIN_TIME_LIMIT
-    plain = pool.submit_call(given_time_limit, kwargs={"time_limit": 5.0})
-    assert plain.future.result(WAIT) == 5.0

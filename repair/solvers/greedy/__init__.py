@@ -37,11 +37,12 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from flipfix.repair.kernels import rows as _rows
+from flipfix.repair.kernels import jit as _jit, rows as _rows
 from flipfix.repair.kernels.cache import drop_stale
 
-# the package's cached kernels hold the code of its modules and of kernels.rows
-drop_stale(Path(__file__).resolve().parent, also=(_rows.__file__,))
+# the package's cached kernels hold the code of its modules and of kernels.rows, compiled
+# with the decorators of kernels.jit
+drop_stale(Path(__file__).resolve().parent, also=(_rows.__file__, _jit.__file__))
 
 from flipfix.repair.kernels.bundles import objective_tol  # noqa: E402
 from flipfix.repair.solvers.greedy.driver import (GreedyOutput,  # noqa: E402

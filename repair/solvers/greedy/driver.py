@@ -98,19 +98,23 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
                   max_flips: int | None = None, flip_price: float = 0.0,
                   deadline: float | None = None, cancel=None, chunk: int = 64,
                   pair_width: int | None = None, progress=None,
-                  workers: int = 1) -> GreedyOutput:
+                  workers: int = 1, anchor: np.ndarray | None = None) -> GreedyOutput:
     """Repair every row of X0 (int8 (K, n), 0/1) greedily on the compiled late problem.
 
     ``origin`` (int8 (K, n), default X0) is what flips are counted from (radius, price).
     ``deadline`` is a ``time.perf_counter()`` value; candidates not reached by then
     (or after ``cancel`` is set), or whose descent it interrupts, are returned unchanged
-    with ``done`` False; past the deadline no descent starts.
+    with ``done`` False (except a descent cut short after its restore: its feasible state,
+    ``partial`` True); past the deadline no descent starts (a timer stops the kernels).
     ``progress(done, total)`` is called after each chunk.
     ``pair_width``: pair moves inside a row try the best ``pair_width`` "up" and "down"
     variables of that row; by default every pair of rows up to 32 variables long,
     the best 32 of each side in longer rows.
     ``workers``: threads that descend parts of each chunk at once; the answers do not
     depend on it.
+    ``anchor`` (int8 (n,)): the reference state each candidate's start-up fields come
+    from (default: :func:`consensus` of X0's rows); calls given the same anchor give each
+    candidate the same answer however the candidates were split between them.
     """
     # C order and writeable (a read-only input is copied): the kernels are compiled for
     # one array type each, and a read-only array is another type to numba
@@ -127,7 +131,9 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
         pair_width = max(1, min(32, longest))
     max_steps = 100 * n + 1000
     stop = np.zeros(1, dtype=np.int64)  # set at the deadline or on cancel: kernels end
-    run = _kernel_call(compiled, consensus(X0, compiled.fixed), radius=radius,
+    anchor = consensus(X0, compiled.fixed) if anchor is None else anchor
+    run = _kernel_call(compiled, np.require(anchor, dtype=np.int8, requirements=["C", "W"]),
+                       radius=radius,
                        flip_price=flip_price, pair_width=int(pair_width), max_steps=max_steps,
                        stop=stop)
     partial = np.zeros(K, dtype=bool)
