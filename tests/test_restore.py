@@ -145,3 +145,67 @@ def test_cancel_ends_a_running_kernel_and_keeps_only_a_feasible_cut_state():
         assert compiled.evaluate(g.X).violation[0] == 0.0
     else:
         assert (g.X[0] == X0[0]).all()
+
+
+def _reference_restore_steps(compiled, x0, price, steps):
+    """The restore's rule by brute force (numpy, every free variable evaluated in full by
+    ``Compiled.evaluate``): ``steps`` times, the single flip with the least objective
+    change per unit of hard-row violation removed (ties: the lowest index). Returns the
+    states after each step (pinned start first) until feasible."""
+    fixed = compiled.fixed
+    x = x0.copy()
+    x[fixed >= 0] = fixed[fixed >= 0]
+    free = np.flatnonzero(fixed < 0)
+    out = [x.copy()]
+    for _ in range(steps):
+        ev = compiled.evaluate(x[None, :])
+        if ev.violation[0] == 0.0:
+            break
+        Y = np.repeat(x[None, :], free.size, axis=0)
+        Y[np.arange(free.size), free] ^= 1
+        ey = compiled.evaluate(Y)
+        dobj = ey.cost - ev.cost[0] + price * np.where(x[free] == x0[free], 1.0, -1.0)
+        dviol = ey.violation - ev.violation[0]
+        score = np.where(dviol < -1e-12, dobj / np.maximum(-dviol, 1e-300), np.inf)
+        j = free[int(np.argmin(score))]  # argmin: the lowest index among equal scores
+        assert np.isfinite(score.min()), "the instance always has a helping single flip"
+        x[j] ^= 1
+        out.append(x.copy())
+    return out
+
+
+@pytest.mark.parametrize("seed", range(4))
+@pytest.mark.parametrize("price", [0.0, 2.0])
+@pytest.mark.parametrize("shape", ["quadratic", "linear"])
+def test_restore_takes_the_same_flips_as_the_brute_force_rule(seed, price, shape):
+    """Step by step (the kernel capped at k moves, k = 1, 2, ...), the tree-keyed restore
+    reaches the state of the rule evaluated by brute force: keys re-keyed after every
+    flip (QUBO neighbours, count-term partners, rows changing regime) are exact.
+    Integer coefficients, so scores are exact and ties break the same way."""
+    from flipfix.repair.solvers.greedy.driver import _kernel_call
+    from flipfix.repair.solvers.greedy.start import consensus
+
+    n = 40
+    problem = _model(n, seed)
+    rng = np.random.default_rng(seed + 50)
+    cs = [LinearConstraint({int(i): 1.0 for i in rng.choice(n, 20, replace=False)}, "<=", 4.0,
+                           name=f"le{r}") for r in range(3)]
+    ref = {i: int(b) for i, b in enumerate(rng.integers(0, 2, n))}
+    # quadratic: a count penalty over every variable (each flip re-keys all of them);
+    # linear: folded into the QUBO (only neighbours and rows re-key)
+    cs.append(HammingPenalty(ref, weight=3.0, shape=shape, name="near"))
+    cs.append(FixVariables({0: 1, 1: 0}, name="pins"))
+    compiled = compile_constraints(problem, cs)
+    x0 = np.ones(n, dtype=np.int8)  # every row far above its bound
+    want = _reference_restore_steps(compiled, x0, price, 60)
+    assert len(want) > 10
+    for k in range(1, len(want)):
+        X = x0[None, :].copy()
+        run = _kernel_call(compiled, consensus(X, compiled.fixed), radius=n, flip_price=price,
+                           pair_width=8, max_steps=k, stop=np.zeros(1, dtype=np.int64))
+        steps = np.zeros(1, dtype=np.int64)
+        run(X, x0[None, :].copy(), steps)
+        # the restore stopped at its k-th move (the last one made it feasible: the cap
+        # leaves the descent no move)
+        assert np.array_equal(X[0], want[k]), (seed, price, shape, k)
+    assert compiled.evaluate(want[-1][None, :]).violation[0] == 0.0

@@ -114,3 +114,4 @@ def test_a_worker_that_dies_leaves_the_pool_working(pool):
     again.cancel()
     until_done(again)
     assert again.future.result() is True
+

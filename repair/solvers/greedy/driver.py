@@ -104,7 +104,8 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
     ``origin`` (int8 (K, n), default X0) is what flips are counted from (radius, price).
     ``deadline`` is a ``time.perf_counter()`` value; candidates not reached by then
     (or after ``cancel`` is set), or whose descent it interrupts, are returned unchanged
-    with ``done`` False; past the deadline no descent starts.
+    with ``done`` False (except a descent cut short after its restore: its feasible state,
+    ``partial`` True); past the deadline no descent starts (a timer stops the kernels).
     ``progress(done, total)`` is called after each chunk.
     ``pair_width``: pair moves inside a row try the best ``pair_width`` "up" and "down"
     variables of that row; by default every pair of rows up to 32 variables long,
