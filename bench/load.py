@@ -59,7 +59,10 @@ def _start_server(db: str, *extra: str, stalls: str | None = None):
             raise RuntimeError("the server exited before serving")
         line = proc.stderr.readline()
     port = int(line.split("serving on ")[1].split()[0].rsplit(":", 1)[1])
-    threading.Thread(target=lambda: [None for _ in proc.stderr], daemon=True).start()
+    proc.shutdown_lines = []  # the server's account of its shutdown (phases, seconds)
+    threading.Thread(target=lambda: [proc.shutdown_lines.append(x.strip().split("flipfix.server ")[-1])
+                                     for x in proc.stderr if "shutdown:" in x],
+                     daemon=True).start()
     return proc, f"127.0.0.1:{port}"
 
 
@@ -248,6 +251,7 @@ def run(*, quick: bool = False, seed: int = 0, log=print) -> dict:
         proc.send_signal(signal.SIGTERM)
         proc.wait(timeout=60)
         took = time.perf_counter() - t
+        notes.extend(proc.shutdown_lines)
         notes.append(stalls.summary(stalls_json))
         log(notes[-1])
         holder.join(timeout=60)
