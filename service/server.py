@@ -612,8 +612,8 @@ class RunningServer:
             if self.cluster is not None:
                 self.cluster.close()
             log.info("shutdown: calls %s in %.2f s, server stopped in %.2f s, workers in "
-                     "%.2f s, store in %.2f s", "ended" if idle else "cut", drained, stopped,
-                     pooled, lap())
+                     "%.2f s %s, store in %.2f s", "ended" if idle else "cut", drained, stopped,
+                     pooled, self.pool.shutdown_seconds, lap())
             self._stopped.set()
 
     stop = shutdown
