@@ -596,13 +596,25 @@ class RunningServer:
         with self._lock:
             if self._stopped.is_set():
                 return
+            t = [time.perf_counter()]
+
+            def lap() -> float:
+                t.append(time.perf_counter())
+                return t[-1] - t[-2]
+
             self.health.enter_graceful_shutdown()
             idle = self.drain.wait_idle(grace)
+            drained = lap()
             self.server.stop(0).wait()  # cancels what is left; their jobs are cancelled
+            stopped = lap()
             self.pool.shutdown(wait=True, terminate=not idle)
+            pooled = lap()
             self.store.close()
             if self.cluster is not None:
                 self.cluster.close()
+            log.info("shutdown: calls %s in %.2f s, server stopped in %.2f s, workers in "
+                     "%.2f s %s, store in %.2f s", "ended" if idle else "cut", drained, stopped,
+                     pooled, self.pool.shutdown_seconds, lap())
             self._stopped.set()
 
     stop = shutdown
