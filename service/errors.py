@@ -62,6 +62,9 @@ class ServiceError(Exception):
         self.message = message
         super().__init__(f"{field}: {message}")
 
+    def __reduce__(self):  # whole across processes (a pool worker's, a Dask worker's error)
+        return (type(self), (self.field, self.message))
+
 
 class NotFoundError(ServiceError):
     """An unknown problem, revision or candidate."""
