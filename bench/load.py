@@ -6,8 +6,13 @@ at once) on loopback. Measured:
 * 50 clients x 20 small repairs each (a stored 60-variable problem, 8 candidates, one
   variable fixed, greedy, 0.2 s budget): calls ok / rejected, p50 and p99 latency;
 * meanwhile, health checks from a separate process every 20 ms: p50, p99 and max latency;
-  in the full run 4 more clients upload a large label-keyed model (200,000 couplings)
-  during the repairs, so that health is measured beside uploads too;
+  in the full run 4 more clients each upload the largest model the server allows
+  (label-keyed, the coupling cap ``ServerConfig.max_couplings`` = ``serve --max-couplings``
+  default, 2,000,000 couplings, over ``max_variables`` = 100,000 variables: about 59 MiB,
+  within the 64 MiB message cap and, at 25 x its bytes, within ``--memory-mb`` 2048) during
+  the repairs, so that health is measured beside uploads too;
+* where the server's interpreter stalls: the server runs under :mod:`bench.stalls` (a
+  bench-only sampler thread; stalls of 30 ms or more and where the threads were);
 * peak memory (VmHWM) of the server process and of its largest worker;
 * shutdown: SIGTERM with a repair in flight and ``--grace 2``: seconds to exit.
 
@@ -20,6 +25,7 @@ from __future__ import annotations
 
 import multiprocessing as mp
 import os
+import shutil
 import signal
 import subprocess
 import sys
@@ -30,6 +36,7 @@ from pathlib import Path
 
 import numpy as np
 
+from bench import stalls
 from bench.common import table
 
 __all__ = ["run", "render"]
@@ -41,8 +48,9 @@ SHUTDOWN_SLACK = 0.5
 COLUMNS = ["measure", "value", "target", "result"]
 
 
-def _start_server(db: str, *extra: str):
-    proc = subprocess.Popen([sys.executable, "-m", "flipfix.service.cli", "serve", "--port", "0",
+def _start_server(db: str, *extra: str, stalls: str | None = None):
+    wrapper = ["bench.stalls", stalls] if stalls else ["flipfix.service.cli"]
+    proc = subprocess.Popen([sys.executable, "-m", *wrapper, "serve", "--port", "0",
                              "--db", db, "--grace", str(GRACE), *extra],
                             stderr=subprocess.PIPE, text=True)
     line = proc.stderr.readline()
@@ -104,11 +112,19 @@ def _small_problem(seed: int):
     return doc, cands
 
 
-def _big_model(couplings: int, seed: int):
+def largest_allowed() -> tuple[int, int]:
+    """(couplings, variables): the caps of a server with its defaults."""
+    from flipfix.service.server import ServerConfig
+
+    cfg = ServerConfig()
+    return cfg.max_couplings, cfg.max_variables
+
+
+def _big_model(couplings: int, seed: int, *, variables: int):
     from flipfix.service.generated import flipfix_pb2 as pb
 
     rng = np.random.default_rng(seed)
-    n = max(1000, couplings // 20)
+    n = min(variables, max(1000, couplings // 20))
     u = rng.integers(0, n, couplings)
     v = (u + 1 + rng.integers(0, n - 1, couplings)) % n
     lab = [pb.Label(str=f"v{i}") for i in range(n)]
@@ -128,7 +144,8 @@ def run(*, quick: bool = False, seed: int = 0, log=print) -> dict:
     from flipfix.service.generated import flipfix_pb2_grpc as pb_grpc
 
     tmp = tempfile.mkdtemp(prefix="flipfix-load-")
-    proc, target = _start_server(os.path.join(tmp, "load.sqlite3"))
+    stalls_json = os.path.join(tmp, "stalls.json")
+    proc, target = _start_server(os.path.join(tmp, "load.sqlite3"), stalls=stalls_json)
     rows, notes = [], []
     try:
         doc, cands = _small_problem(seed)
@@ -160,8 +177,11 @@ def run(*, quick: bool = False, seed: int = 0, log=print) -> dict:
 
         uploads, up_codes = [], {}
         if not quick:
-            big = _big_model(200_000, seed)
-            log(f"load: upload model {big.ByteSize() / 2**20:.1f} MiB")
+            couplings, variables = largest_allowed()
+            big = _big_model(couplings, seed, variables=variables)
+            big_what = (f"{len(big.quadratic):,} couplings, "
+                        f"{big.ByteSize() / 2**20:.1f} MiB")
+            log(f"load: upload model {big_what}")
 
             def uploader(u: int) -> None:
                 with grpc.insecure_channel(target, options=[
@@ -213,7 +233,7 @@ def run(*, quick: bool = False, seed: int = 0, log=print) -> dict:
              "result": "-"},
         ]
         if not quick:
-            rows.append({"measure": "uploads 200k couplings (4 clients) s",
+            rows.append({"measure": f"uploads of the largest model ({big_what}; 4 clients) s",
                          "value": f"{max(uploads):.1f} max; {up_codes}", "target": "-",
                          "result": "-"})
         # shutdown with a repair in flight
@@ -228,6 +248,8 @@ def run(*, quick: bool = False, seed: int = 0, log=print) -> dict:
         proc.send_signal(signal.SIGTERM)
         proc.wait(timeout=60)
         took = time.perf_counter() - t
+        notes.append(stalls.summary(stalls_json))
+        log(notes[-1])
         holder.join(timeout=60)
         rows.append({"measure": f"shutdown after SIGTERM s (grace {GRACE:g})",
                      "value": f"{took:.2f}", "target": f"<= {GRACE + SHUTDOWN_SLACK:g}",
@@ -236,6 +258,7 @@ def run(*, quick: bool = False, seed: int = 0, log=print) -> dict:
         if proc.poll() is None:
             proc.kill()
             proc.wait()
+        shutil.rmtree(tmp, ignore_errors=True)  # the database holds four large models
     return {"rows": rows, "columns": COLUMNS, "notes": notes}
 
 
@@ -247,5 +270,7 @@ def _quiet(fn) -> None:
 
 
 def render(section: dict) -> str:
-    return table(section["rows"], section["columns"],
+    text = table(section["rows"], section["columns"],
                  title="load: one `flipfix serve` (defaults) on loopback")
+    notes = "\n".join(section.get("notes") or [])
+    return text + ("\n\n```\n" + notes + "\n```" if notes else "")

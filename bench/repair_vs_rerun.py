@@ -36,8 +36,10 @@ Columns, per row at budget T:
   ``add_linear_inequality_constraint``), multiplier = the largest change one flip can make
   to the late objective. Two threads (the sampler releases the GIL while it sweeps), each
   with ``SA_READS`` reads; its sweeps are calibrated once per late model (overhead and time
-  per sweep measured on that model) so that the call lasts T; ``SA wall/T`` shows how close
-  the calibration came. Its cost is the best of its reads scored by flipfix's
+  per sweep measured on that model) so that the call lasts T, and when a run's wall time falls
+  outside [0.9, 1.05] x T (the machine's load moved), its sweeps are rescaled by the rate just
+  measured and it runs again (at most 4 runs; the last counts); ``SA wall/T`` shows how close
+  the last run came. Its cost is the best of its reads scored by flipfix's
   ``Compiled.evaluate`` (the same scoring as flipfix's); a read that breaks a hard row counts
   +inf, and so does the answer when no read is feasible.
 * ``CP@T``, ``CP@10T``: CP-SAT from scratch (no hint, 2 workers) at T and 10T; in quick
@@ -75,6 +77,12 @@ SA_READS = 1
 TIE = 1e-9
 #: largest subset the cardinality row of event (c) covers
 CARD_SUBSET = 1000
+#: the re-run's wall time must fall within these multiples of T; when the load on the machine
+#: moved it off (a calibration once per late model gave 0.59-1.71 T in loaded runs), its sweeps
+#: are rescaled by the measured rate and it runs again, at most FIT_TRIES runs in all (the last
+#: counts): the same wall time for both sides is the comparison's premise
+FIT = (0.9, 1.05)
+FIT_TRIES = 4
 
 CONFIG = {
     "quick": {"models": ["bqp100-1", "jeu_100_25_1", "G11", "rand1000", "demo"],
@@ -336,8 +344,14 @@ class SaRerun:
         Checks the model it annealed against flipfix's scoring: a feasible read's annealer
         energy equals its flipfix cost plus its (non-negative) row penalties.
         """
-        sweeps = self.sweeps_for(T)
-        X, E, wall = self.sample(sweeps, self.seed + 1)
+        sweeps, tries = self.sweeps_for(T), 0
+        while True:  # refit when the machine's load moved the wall time off T
+            X, E, wall = self.sample(sweeps, self.seed + 1)
+            tries += 1
+            if FIT[0] * T <= wall <= FIT[1] * T or tries >= FIT_TRIES:
+                break
+            sweeps = max(1, int(sweeps * 0.97 * (T - self.overhead)
+                                / max(wall - self.overhead, 1e-6)))
         ev = self.comp.evaluate(X)
         tol = self.tolerance + 1e-9 * max(1.0, float(np.abs(ev.cost).max()))
         gap = (E - ev.cost)[ev.feasible]
@@ -347,7 +361,8 @@ class SaRerun:
         cost = np.where(ev.feasible, ev.cost, np.inf)
         b = int(np.argmin(cost))
         return {"x": X[b], "cost": float(cost[b]), "wall": wall, "sweeps": sweeps,
-                "feasible_reads": int(ev.feasible.sum()), "reads": int(X.shape[0])}
+                "feasible_reads": int(ev.feasible.sum()), "reads": int(X.shape[0]),
+                "tries": tries}
 
 
 # ------------------------------------------------------------------ one row
@@ -465,7 +480,7 @@ def run(*, quick: bool = False, seed: int = 0, log=print) -> dict:
                 log(table([row], COLUMNS).splitlines()[-1])
                 raw.append({**row, "note": sc.note, "flipfix_status": res.status,
                             "flipfix_method": res.best.method, "flipfix_flips": res.best.flips,
-                            "flipfix_seconds": res.seconds, "sa_wall": sa["wall"],
+                            "flipfix_seconds": res.seconds, "sa_wall": sa["wall"], "sa_tries": sa["tries"],
                             "sa_feasible_reads": sa["feasible_reads"], "sa_reads": sa["reads"],
                             "sa_overhead": rerun.overhead, "sa_per_sweep": rerun.per_sweep,
                             "sa_penalty": rerun.penalty, "sa_slack": rerun.slack,

@@ -5,7 +5,8 @@ memory (peak RSS), mix (which portfolio budget mix wins at each budget), rerun (
 simulated annealer re-run from scratch; needs the ``bench`` extra), cluster (stress tests on
 Dask vs the local pool), grow (original vs grown library on held-out scenarios), load (50
 clients against one server process: rejections, latency, health p99, peak memory, shutdown
-time), conflicts (a minimal conflict among many hard rows). Prints a table per section and
+time), conflicts (a minimal conflict among many hard rows), compile (cold compilation of the
+search kernels on an empty numba cache, per kernel family). Prints a table per section and
 writes bench/results/latest.json
 (the figures, the machine, the command). Never part of the test suite.
 """
@@ -16,6 +17,7 @@ import argparse
 import sys
 import time
 
+from bench import compile as kernel_compile
 from bench import (budget, cluster, conflicts, grow, kernel, load, memory, mix,
                    repair_vs_rerun, repair_vs_resolve,
                    service_overhead)
@@ -35,6 +37,7 @@ SECTIONS = {
     "grow": grow,
     "load": load,
     "conflicts": conflicts,
+    "compile": kernel_compile,
 }
 
 

@@ -253,8 +253,16 @@ def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, 
 
 
 #: the conflict search's time when the budget is spent (a small model needs a few
-#: milliseconds; a busy machine more)
+#: milliseconds; a busy machine more), for hard parts up to CONFLICT_SMALL entries
 CONFLICT_MIN_SECONDS = 0.25
+#: conflict models (variables plus row entries plus fixings) larger than this get only what
+#: is left of the budget, and none when that cannot pay for building its model
+#: (CONFLICT_BUILD_SECONDS per entry): at 100,000 variables its build and first solve took
+#: 0.45-1.3 s (bench/budget.py), past a 0.1 s budget's reply
+CONFLICT_SMALL = 10_000
+#: seconds per entry of building the conflict search's CP-SAT model (0.53 s for 100,000
+#: variables and 1,000 fixings, bench/budget.py under load)
+CONFLICT_BUILD_SECONDS = 5e-6
 #: share of the budget kept for the alternatives' CP-SAT searches when they are asked for
 ALTERNATIVES_SHARE = 0.2
 
@@ -284,14 +292,20 @@ def _name_conflict(res: RepairResult, compiled: Compiled, *, time_limit, seed, c
                    ) -> RepairResult:
     """Without a feasible answer, name a minimal set of hard late constraints that conflict
     (:mod:`flipfix.repair.solvers.conflicts`, in what is left of the budget, at least
-    CONFLICT_MIN_SECONDS); a proved conflict makes the status "infeasible" and the message
-    names it. A cancel stops it with what it has proved."""
+    CONFLICT_MIN_SECONDS when the hard part is small, else only what is left); a proved
+    conflict makes the status "infeasible" and the message names it. A cancel stops it with
+    what it has proved."""
     if (res.status not in ("infeasible", "no_feasible_found") or not compiled.has_hard
             or (cancel is not None and cancel.is_set())):
         return res
     from flipfix.repair.solvers.conflicts import name_conflict
 
-    left = max(CONFLICT_MIN_SECONDS, float(time_limit) - (time.perf_counter() - t0))
+    left = float(time_limit) - (time.perf_counter() - t0)
+    entries = compiled.n + compiled.a_data.size + int((compiled.fixed >= 0).sum())
+    if entries <= CONFLICT_SMALL:
+        left = max(CONFLICT_MIN_SECONDS, left)
+    elif left <= CONFLICT_BUILD_SECONDS * entries:
+        return res  # its model's build alone would pass the budget: the reply stays in it
     conflict = name_conflict(compiled, time_limit=left, seed=seed, cancel=cancel)
     if conflict.status == "conflict":  # a proof: a search that found nothing is now "infeasible"
         res.conflict = conflict

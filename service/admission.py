@@ -16,6 +16,9 @@
 
 * :class:`RequestGuard` -- refuses, before decoding, a request whose bytes alone put its
   estimate over the whole memory budget, and turns undecodable bytes into INVALID_ARGUMENT.
+  For the methods it is told (model uploads), a request of ``light_bytes`` or more is
+  decoded without its large field (:mod:`flipfix.service.wire`): the servicer gets a
+  :class:`~flipfix.service.wire.Deferred` and a worker decodes the field.
 
 Health checks never pass through the gate, so they answer while uploads are converted.
 """
@@ -31,7 +34,7 @@ from dataclasses import dataclass
 import grpc
 
 from flipfix.repair.errors import InputError
-from flipfix.service import errors
+from flipfix.service import errors, wire
 from flipfix.service.errors import QueueFullError, status_for
 
 __all__ = ["AdmissionConfig", "HeavyGate", "DrainInterceptor", "RequestGuard", "HEALTH_PREFIX",
@@ -232,10 +235,18 @@ class RequestGuard(grpc.ServerInterceptor):
     memory (its bytes x the gate's factor) exceeds the gate's whole budget is refused
     RESOURCE_EXHAUSTED without being decoded, and bytes that are not a valid message are
     INVALID_ARGUMENT (``request: ...``) rather than the library's INTERNAL. Streaming
-    requests and health checks pass untouched."""
+    requests and health checks pass untouched.
 
-    def __init__(self, gate: HeavyGate):
+    ``deferred``: method path -> (field name, field number) of a length-delimited field
+    left undecoded in requests of ``light_bytes`` or more (see the module doc);
+    ``raw_replies``: method paths whose servicer may return the reply already serialized
+    (``bytes``, built in a worker): sent as they are."""
+
+    def __init__(self, gate: HeavyGate, deferred: dict | None = None,
+                 raw_replies=frozenset()):
         self.gate = gate
+        self.deferred = dict(deferred or {})
+        self.raw_replies = frozenset(raw_replies)
 
     def intercept_service(self, continuation, handler_call_details):
         handler = continuation(handler_call_details)
@@ -245,6 +256,7 @@ class RequestGuard(grpc.ServerInterceptor):
             return handler
         decode, inner, gate = handler.request_deserializer, behaviour(handler), self.gate
         what = method.rsplit("/", 1)[-1]
+        deferred = self.deferred.get(method)
 
         def guarded_decode(raw: bytes):
             need, cfg = gate.estimate(len(raw)), gate.config
@@ -255,6 +267,10 @@ class RequestGuard(grpc.ServerInterceptor):
                                f"exceeds the server's limit of {cfg.memory_bytes / MIB:.0f} MiB "
                                "per call (serve --memory-mb); not decoded"))
             try:
+                if deferred is not None and len(raw) >= cfg.light_bytes:
+                    parts = wire.split(raw, deferred[1])
+                    if parts is not None:
+                        return wire.Deferred(decode(parts[0]), deferred[0], raw, parts[1])
                 return decode(raw)
             except Exception as err:  # noqa: BLE001 - any decoding failure is the caller's
                 return _Refused(InputError("request", f"not a valid {what} request "
@@ -273,7 +289,13 @@ class RequestGuard(grpc.ServerInterceptor):
                     context.abort(code, details)
                 yield from inner(request, context)
             return replace_behaviour(handler, refuse_or_stream, decode=guarded_decode)
-        return replace_behaviour(handler, refuse_or_run, decode=guarded_decode)
+        encode = None
+        if method in self.raw_replies:
+            serialize = handler.response_serializer
+
+            def encode(reply):
+                return reply if isinstance(reply, bytes) else serialize(reply)
+        return replace_behaviour(handler, refuse_or_run, decode=guarded_decode, encode=encode)
 
 
 def behaviour(handler):
@@ -282,22 +304,24 @@ def behaviour(handler):
             or handler.stream_stream)
 
 
-def replace_behaviour(handler, fn, *, decode=None):
+def replace_behaviour(handler, fn, *, decode=None, encode=None):
     """``handler`` with its behaviour replaced by ``fn`` (same serialisers and kind; the
-    request deserialiser too unless ``decode`` is given)."""
+    request deserialiser too unless ``decode`` is given, the response serialiser unless
+    ``encode`` is)."""
     decode = decode or handler.request_deserializer
+    encode = encode or handler.response_serializer
     if handler.request_streaming and handler.response_streaming:
         return grpc.stream_stream_rpc_method_handler(
             fn, request_deserializer=decode,
-            response_serializer=handler.response_serializer)
+            response_serializer=encode)
     if handler.request_streaming:
         return grpc.stream_unary_rpc_method_handler(
             fn, request_deserializer=decode,
-            response_serializer=handler.response_serializer)
+            response_serializer=encode)
     if handler.response_streaming:
         return grpc.unary_stream_rpc_method_handler(
             fn, request_deserializer=decode,
-            response_serializer=handler.response_serializer)
+            response_serializer=encode)
     return grpc.unary_unary_rpc_method_handler(
         fn, request_deserializer=decode,
-        response_serializer=handler.response_serializer)
+        response_serializer=encode)

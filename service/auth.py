@@ -22,6 +22,7 @@ cheap profiles), ``planner`` (change problems and candidates, run repairs and au
 
 from __future__ import annotations
 
+import contextlib
 import contextvars
 import hashlib
 import json
@@ -38,7 +39,7 @@ from flipfix.service import errors
 from flipfix.service.admission import HEALTH_PREFIX, behaviour, replace_behaviour
 
 __all__ = ["ROLES", "METHOD_ROLES", "Principal", "TokenFile", "AuthInterceptor", "current",
-           "token_digest", "ANONYMOUS"]
+           "acting_as", "token_digest", "ANONYMOUS"]
 
 log = logging.getLogger("flipfix.auth")
 
@@ -89,6 +90,16 @@ _current: contextvars.ContextVar[Principal] = contextvars.ContextVar("flipfix_pr
 def current() -> Principal:
     """The caller of the call running in this thread (:data:`ANONYMOUS` without tokens)."""
     return _current.get()
+
+
+@contextlib.contextmanager
+def acting_as(principal: Principal):
+    """Run the block as ``principal`` (a pool worker preparing a call for its caller)."""
+    token = _current.set(principal)
+    try:
+        yield
+    finally:
+        _current.reset(token)
 
 
 def token_digest(token: str) -> str:

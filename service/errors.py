@@ -62,7 +62,7 @@ class ServiceError(Exception):
         self.message = message
         super().__init__(f"{field}: {message}")
 
-    def __reduce__(self):  # whole across processes (a pool worker's, a Dask worker's error)
+    def __reduce__(self):  # rebuilt as the same kind after a pool worker raised it
         return (type(self), (self.field, self.message))
 
 

@@ -181,6 +181,9 @@ def _record(row, full: bool) -> RecordRow:
     return RecordRow(*head, *tail)
 
 
+_migrate = migrate  # the name is the keyword of History's constructor
+
+
 class History:
     """Events, published plan and records of the problems of ``store``.
 
@@ -188,13 +191,14 @@ class History:
     one is written); None keeps every record.
     """
 
-    def __init__(self, store: Store, *, max_records: int | None = 1000):
+    def __init__(self, store: Store, *, max_records: int | None = 1000, migrate: bool = True):
         if max_records is not None and (not isinstance(max_records, int) or max_records < 1):
             raise InputError("max_records", f"must be an integer >= 1, got {max_records!r}")
         self.store = store
         self.max_records = max_records
-        with store._tx() as db:
-            migrate(db, store.ddl)
+        if migrate:  # False: only reads, of tables the server process keeps up to date
+            with store._tx() as db:
+                _migrate(db, store.ddl)
 
     @property
     def version(self) -> int:

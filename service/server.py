@@ -17,8 +17,13 @@ core, and converts back; errors become status codes in :mod:`flipfix.service.err
 * :meth:`RunningServer.shutdown`: health NOT_SERVING, no new calls, in-flight
   calls get ``grace`` seconds, then are cancelled (their solvers stop).
 * The audit RPCs (robustness, stress test, Pareto front, curation) take
-  the same path: validate and convert here, run :mod:`flipfix.service.audit_jobs` in the
+  the same path: validate and convert, run :mod:`flipfix.service.audit_jobs` in the
   pool with the same slots, budget, deadline and cancellation, convert back.
+* Large work stays out of this process's interpreter (a long call into C holds it, and
+  health checks wait): a large upload is decoded in a worker from its raw bytes
+  (:mod:`flipfix.service.wire`, :mod:`flipfix.service.upload_jobs`); a call on a large
+  stored problem (Repair, the audits, GetProblem, AddCandidates) is prepared, and its
+  reply built, in the worker, which reads the store itself (:mod:`flipfix.service.prepared`).
 """
 
 from __future__ import annotations
@@ -40,14 +45,18 @@ from flipfix.repair.model.candidates import CandidateSet
 
 from flipfix.repair.errors import InputError
 
-from flipfix.service import audit_jobs, upload_jobs
+from flipfix.service import prepared, upload_jobs
+# the margins are re-exported: the deadline's figures as the server applies them
+from flipfix.service.deadlines import (MARGIN_FIXED, MARGIN_MAX, MARGIN_SHARE,  # noqa: F401
+                                        MIN_BUDGET, NO_DEADLINE, STOP_SHARE, deadline_at,
+                                        deadline_budget, deadline_margin, time_left)
 from flipfix.service.admission import AdmissionConfig, DrainInterceptor, HeavyGate, RequestGuard
 from flipfix.service.auth import AuthInterceptor, TokenFile
 from flipfix.service.auth import current as current_caller
 from flipfix.service import convert
 from flipfix.service import grow_service
 from flipfix.service import reflection_v1
-from flipfix.service.errors import ConflictError, NotFoundError, TransientError, translate_errors
+from flipfix.service.errors import TransientError, translate_errors
 from flipfix.service.generated import flipfix_pb2 as pb
 from flipfix.service.generated import flipfix_pb2_grpc as pb_grpc
 from flipfix.service.limits import Limits
@@ -55,6 +64,7 @@ from flipfix.service.store import Store
 from flipfix.service.generated import timeline_pb2_grpc as tpb_grpc
 from flipfix.service.timeline import TIMELINE_SERVICE_NAME, Timeline, TimelineServicer
 from flipfix.service.tenancy import Quotas, TenantView
+from flipfix.service.wire import Deferred
 from flipfix.service.worker import RepairPool
 
 __all__ = ["create_server", "RunningServer", "ServerConfig", "SERVICE_NAME"]
@@ -87,6 +97,10 @@ class ServerConfig:
     heavy_queue: int = 64
     memory_mb: float = 2048.0
     memory_factor: float = 25.0
+    #: requests (and stored problems) smaller than this are light: converted in the
+    #: server without a place in the gate; larger uploads are decoded, and calls on larger
+    #: stored problems prepared, in a pool worker (:mod:`flipfix.service.prepared`)
+    light_bytes: int = 64 * 1024
     #: TLS: the server's certificate chain and key (PEM files); with ``tls_client_ca``
     #: clients must present a certificate signed by it (mutual TLS)
     tls_cert: str | None = None
@@ -121,45 +135,21 @@ class ServerConfig:
     def admission(self) -> AdmissionConfig:
         return AdmissionConfig(capacity=self.heavy_calls, queue=self.heavy_queue,
                                memory_bytes=int(self.memory_mb * 1024 * 1024),
-                               memory_factor=self.memory_factor)
+                               memory_factor=self.memory_factor, light_bytes=self.light_bytes)
 
 
-#: Held back from a call's deadline for what is not search: the hand-over to a worker,
-#: the solver's stop and its result, the reply (see :func:`deadline_budget`).
-MARGIN_SHARE = 0.2
-MARGIN_FIXED = 0.02  # s
-MARGIN_MAX = 3.0  # s
-MIN_BUDGET = 0.01  # s
-#: The server stops a job still running this share of the margin before the deadline.
-STOP_SHARE = 0.5
-#: gRPC reports a call without a deadline as one in the far future: beyond this many
-#: seconds a call counts as having none.
-NO_DEADLINE = 1e6
+def _deferred_model(method: str) -> tuple[str, tuple[str, int]]:
+    """The method path and its request's ``model`` field (name, number)."""
+    rpc = pb.DESCRIPTOR.services_by_name["Flipfix"].methods_by_name[method]
+    return f"/{SERVICE_NAME}/{method}", ("model", rpc.input_type.fields_by_name["model"].number)
 
 
-def time_left(context) -> float | None:
-    """Seconds to the call's deadline; None when it has none."""
-    remaining = context.time_remaining()
-    return None if remaining is None or remaining > NO_DEADLINE else remaining
+#: Uploads whose model a large request leaves undecoded in the server (:mod:`wire`).
+DEFERRED = dict(map(_deferred_model, ("CreateProblem", "ReplaceProblem")))
 
 
-def deadline_margin(remaining: float) -> float:
-    """Seconds held back from ``remaining`` seconds to the deadline:
-    ``min(MARGIN_MAX, MARGIN_FIXED + MARGIN_SHARE * remaining)``."""
-    return min(MARGIN_MAX, MARGIN_FIXED + MARGIN_SHARE * max(0.0, remaining))
-
-
-def deadline_budget(requested: float, remaining: float | None) -> float:
-    """Solver budget (s) for a call with ``remaining`` seconds to its deadline (None: none).
-
-    ``min(requested, remaining - deadline_margin(remaining))``, at least ``MIN_BUDGET``: the
-    margin is proportional (a fifth of what remains plus 20 ms, at most 3 s), so a 1 s
-    deadline leaves 0.78 s of search, 0.3 s leaves 0.22 s, 5 s leaves 3.98 s and 60 s
-    leaves 57 s.
-    """
-    if remaining is None:
-        return requested
-    return max(MIN_BUDGET, min(requested, remaining - deadline_margin(remaining)))
+#: Methods whose reply a worker may send as bytes, passed through as they are.
+RAW_REPLIES = frozenset({f"/{SERVICE_NAME}/GetProblem"})
 
 
 class FlipfixServicer(pb_grpc.FlipfixServicer):
@@ -170,6 +160,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         self.config = config
         self.limits = config.limits
         self.dask_address = ""  # set by create_server when stress tests go to Dask
+        self.dask_runner = None  # and the runner of a large repair's greedy stage
         self.timeline = timeline or Timeline(store, max_records=config.max_records)
         self.gate = gate or HeavyGate(config.admission)
 
@@ -181,24 +172,27 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
     def _heavy(self, request, context, what: str, problem: str = ""):
         """A place in the heavy-call gate for this call (waits at most to its deadline);
         ``problem``: the stored problem it reads (its model's bytes count too)."""
-        size = request.ByteSize() + (self.store.model_bytes(problem) if problem else 0)
+        size = (request.size if isinstance(request, Deferred) else request.ByteSize()) + (
+            self.store.model_bytes(problem) if problem else 0)
         return self.gate.admit(size, what, timeout=time_left(context))
 
     # ------------------------------------------------------------- problems
-    @staticmethod
-    def _info(rec) -> pb.ProblemInfo:
-        return pb.ProblemInfo(name=rec.name, revision=rec.revision, num_variables=rec.num_variables,
-                              num_interactions=rec.num_interactions,
-                              num_candidates=rec.num_candidates, created_at=rec.created_at,
-                              updated_at=rec.updated_at)
+    _info = staticmethod(prepared.problem_info)
 
     def _problem(self, model: pb.ProblemModel, field: str):
         self.limits.model(model, field)
         return convert.model_to_problem(model, field=field)
 
-    def _upload(self, request, context):
+    def _upload(self, request, context, what: str):
         """(Problem, stored JSON or None) of an uploaded ``request.model``: a large one is
-        converted in a pool worker (:mod:`flipfix.service.upload_jobs`), a small one here."""
+        converted in a pool worker (:mod:`flipfix.service.upload_jobs`) -- from the raw bytes
+        when the request guard left it undecoded (:mod:`flipfix.service.wire`) -- a small
+        one here."""
+        if isinstance(request, Deferred):
+            job = self._submit_call(upload_jobs.model_to_stored,
+                                    (request.raw, self.limits, "model"),
+                                    {"span": request.span, "what": what}, context)
+            return self._wait(job, context, math.inf)
         if request.model.ByteSize() < self.gate.config.light_bytes:
             return self._problem(request.model, "model"), None
         return self._in_worker(request.model, "model", context)
@@ -218,23 +212,25 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
     def CreateProblem(self, request, context):
         Store._check_name(request.name)  # before the conversion, not after
         with self._heavy(request, context, "CreateProblem"):
-            problem, encoded = self._upload(request, context)
+            problem, encoded = self._upload(request, context, "CreateProblem")
             return self._info(self.store.create_problem(request.name, problem, encoded=encoded))
 
     @translate_errors
     def ReplaceProblem(self, request, context):
         with self._heavy(request, context, "ReplaceProblem"):
-            problem, encoded = self._upload(request, context)
+            problem, encoded = self._upload(request, context, "ReplaceProblem")
             return self._info(self.store.replace_problem(
                 request.name, problem, expected_revision=request.expected_revision,
                 encoded=encoded))
 
     @translate_errors
     def GetProblem(self, request, context):
+        if self._prepares_in_worker(request.name):  # read, converted and encoded there
+            job = self._submit_call(prepared.stored_problem,
+                                    (self._ref(), request.name, request.revision), {}, context)
+            return self._wait(job, context, math.inf)  # bytes, sent as they are
         with self._heavy(request, context, "GetProblem", request.name):
-            info, rev, problem = self.store.get_problem(request.name, request.revision)
-            return pb.GetProblemReply(info=self._info(info), revision=rev,
-                                      model=convert.problem_to_model(problem))
+            return prepared.problem_reply(self, request.name, request.revision)
 
     @translate_errors
     def ListProblems(self, request, context):
@@ -249,13 +245,14 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
     # ----------------------------------------------------------- candidates
     @translate_errors
     def AddCandidates(self, request, context):
+        if self._prepares_in_worker(request.problem):  # the model is read there
+            job = self._submit_call(prepared.stored_candidates,
+                                    (self._ref(), request.SerializeToString()), {}, context)
+            rev, ids, X, provs = self._wait(job, context, math.inf)
+            out = self.store.add_candidates(request.problem, rev, ids, X, provs)
+            return pb.AddCandidatesReply(ids=out, revision=rev)
         with self._heavy(request, context, "AddCandidates", request.problem):
-            _info, rev, problem = self.store.get_problem(request.problem)
-            if request.revision and request.revision != rev:
-                raise ConflictError("revision", f"problem {request.problem!r} is at revision "
-                                                f"{rev}, not {request.revision}")
-            self.limits.candidates(request.candidates, "candidates")
-            ids, X, provs = convert.batch_to_arrays(problem, request.candidates)
+            rev, ids, X, provs = prepared.candidates_to_add(self, request)
             out = self.store.add_candidates(request.problem, rev, ids, X, provs)
             return pb.AddCandidatesReply(ids=out, revision=rev)
 
@@ -276,10 +273,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
     def _library(self, request, context):
         which = request.WhichOneof("library")
         if which == "problem":
-            rev, problem, cands = self.store.library(
-                request.problem, ids=self.timeline.candidate_ids(request),
-                all_revisions=request.all_revisions, max_candidates=self.config.max_candidates)
-            return rev, problem, cands
+            return prepared.stored_library(self, request)
         if which == "inline":
             problem = self._converted(request.inline.model, "inline.model", context)
             self.limits.candidates(request.inline.candidates, "inline.candidates")
@@ -290,32 +284,65 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
                                                                     "inline.candidates.ids"), X)
         raise InputError("library", "set problem (a stored problem) or inline")
 
-    def _start(self, request, context):
-        """Validate, pick the budget, submit; returns (job, budget, audit_limit, revision,
-        the timeline's :class:`~flipfix.service.timeline.Used`).
+    def _prepares_in_worker(self, name: str) -> bool:
+        """Whether a call on the caller's stored problem ``name`` is prepared in the pool
+        worker that runs it (:mod:`flipfix.service.prepared`): its store is one other
+        processes can open and it holds ``light_bytes`` or more (model revisions and
+        candidates) -- reading and decoding it here would hold the interpreter lock."""
+        return (bool(name) and self._store.path != ":memory:"
+                and self.store.stored_bytes(name) >= self.gate.config.light_bytes)
 
-        The constraints are read, checked and lowered once, here; the worker gets the
-        result (``compiled``, picklable) and does not compile again. The conversion holds a
+    def _ref(self) -> prepared.StoreRef:
+        """The store and the caller, for a worker that reads the store itself."""
+        return prepared.StoreRef(self._store.path, current_caller(), self.config,
+                                 self.dask_address)
+
+    def _prepared_call(self, rpc: str, request, context, name: str, prepare):
+        """Submit the call ``rpc``: prepared in a worker from the store (see
+        :meth:`_prepares_in_worker`), else here by ``prepare(deadline)`` holding a place in
+        the heavy-call gate. Returns ``(job, Prepared or None)``; None: the job's result
+        is ``(Prepared, result)`` (:meth:`_settled`)."""
+        deadline = deadline_at(context)
+        if self._prepares_in_worker(name):
+            return self._submit_call(prepared.stored_call,
+                                     (self._ref(), rpc, request.SerializeToString(), deadline),
+                                     {}, context), None
+        with self._heavy(request, context, rpc, name):
+            prep = prepare(deadline)
+            if prep.fn is None:
+                job = self.pool.submit(*prep.args, prep.kwargs)
+            else:
+                job = self.pool.submit_call(prep.fn, prep.args, prep.kwargs)
+            return self._watched(job, context), prep
+
+    @staticmethod
+    def _settled(result, prep):
+        """(Prepared, the job's result) of a job from :meth:`_prepared_call`."""
+        return result if prep is None else (prep, result)
+
+    def _reply(self, rpc: str, request, result, prep):
+        """(Prepared, reply) of a job of :data:`prepared.REPLIES`: built here, or parsed
+        from the bytes the worker built."""
+        prep, out = self._settled(result, prep)
+        cls, build = prepared.REPLIES[rpc]
+        return prep, (cls.FromString(out) if isinstance(out, bytes) else build(request, prep, out))
+
+    def _start(self, request, context):
+        """Validate, pick the budget, submit; returns (job, Prepared or None).
+
+        The constraints are read, checked and lowered once, in the server or in the worker
+        (:func:`flipfix.service.prepared.repair`); the job gets the result (``compiled``,
+        picklable) and does not compile again. Prepared here, the conversion holds a
         place in the heavy-call gate; the search waits in the pool's queue.
         """
-        with self._heavy(request, context, "Repair", request.problem):
-            kwargs = convert.options_to_kwargs(request.options,
-                                               default_time_limit=self.config.default_time_limit)
-            rev, problem, cands = self._library(request, context)
-            used = self.timeline.used(request, problem, rev)  # published plan, events in force
-            compiled = self._compiled(used.constraints, problem)
-            budget = kwargs["time_limit"] = self._budget(kwargs["time_limit"], context)
-            if self.dask_address:  # a large library's greedy stage goes to the cluster
-                kwargs["candidate_runner"] = self.dask_runner
-            job = self._watched(self.pool.submit(problem, cands, (),
-                                                 {**kwargs, "compiled": compiled}), context)
-        audit_limit = (request.options.audit_limit if request.options.HasField("audit_limit")
-                       else None)
-        return job, budget, audit_limit, rev, used
+        name = request.problem if request.WhichOneof("library") == "problem" else ""
+        return self._prepared_call(
+            "Repair", request, context, name,
+            lambda deadline: prepared.repair(self, request, deadline=deadline,
+                                             library=lambda: self._library(request, context)))
 
     def _compiled(self, constraints, problem):
-        self.limits.constraints(constraints, "constraints")
-        return convert.constraints_to_compiled(constraints, problem)
+        return prepared.compiled_for(self, constraints, problem)
 
     @staticmethod
     def _watched(job, context):
@@ -324,7 +351,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
             job.cancel()
         return job
 
-    def _follow(self, job, context, budget: float):
+    def _follow(self, job, context, budget: float | None):
         """Yield at each progress report of the job; return when it has ended.
 
         Blocks on the job's events (:meth:`flipfix.service.worker.Job.next_event`), each wait
@@ -334,12 +361,12 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
         finish a phase), or ``STOP_SHARE`` of the deadline margin before the deadline; a
         call that ends cancels it through :meth:`_watched`. While a stream's reader holds a
         progress message back, the stops wait for it (the core still keeps its own budget).
+        ``budget`` None: the job reports it as it starts (:mod:`flipfix.service.prepared`).
         """
         remaining = time_left(context)
         if remaining is None:
-            slack, stop_at = max(1.0, 0.25 * budget), math.inf
+            stop_at = math.inf
         else:
-            slack = 0.0
             stop_at = time.monotonic() + remaining - STOP_SHARE * deadline_margin(remaining)
         asked = False
         while True:
@@ -348,6 +375,9 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
             if kind == "done":
                 return
             if kind == "started":
+                if budget is None:  # a job that prepared itself reports its budget
+                    budget = math.inf if job.budget is None else job.budget
+                slack = max(1.0, 0.25 * budget) if remaining is None else 0.0
                 stop_at = min(stop_at, job.started_at + budget + slack)
             elif kind == "progress":
                 yield
@@ -365,30 +395,35 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
             self.pool.restart_if_broken()
             raise
 
-    def _wait(self, job, context, budget: float):
+    def _wait(self, job, context, budget: float | None):
         """Wait for the job (see :meth:`_follow`) and return its result."""
         for _ in self._follow(job, context, budget):
             pass
         return self._result(job)
 
+    def _repair_reply(self, request, context, result, prep):
+        prep, reply = self._reply("Repair", request, result, prep)
+        return self.timeline.finish_repair(request, reply, prep.keep["used"], context)
+
+    @staticmethod
+    def _budget_of(prep) -> float | None:
+        return None if prep is None else prep.budget
+
     @translate_errors
     def Repair(self, request, context):
-        job, budget, audit_limit, rev, used = self._start(request, context)
-        res = self._wait(job, context, budget)
-        return self.timeline.finish_repair(request, convert.result_to_reply(
-            res, audit_limit=audit_limit, time_limit=budget, revision=rev), used, context)
+        job, prep = self._start(request, context)
+        result = self._wait(job, context, self._budget_of(prep))
+        return self._repair_reply(request, context, result, prep)
 
     @translate_errors
     def RepairStream(self, request, context):
-        job, budget, audit_limit, rev, used = self._start(request, context)
+        job, prep = self._start(request, context)
         yield from self._stream(
-            job, context, budget, lambda msg: pb.RepairEvent(progress=msg),
-            lambda res: pb.RepairEvent(result=self.timeline.finish_repair(
-                request, convert.result_to_reply(res, audit_limit=audit_limit,
-                                                 time_limit=budget, revision=rev),
-                used, context)))
+            job, context, self._budget_of(prep), lambda msg: pb.RepairEvent(progress=msg),
+            lambda result: pb.RepairEvent(result=self._repair_reply(request, context, result,
+                                                                    prep)))
 
-    def _stream(self, job, context, budget: float, progress_event, result_event):
+    def _stream(self, job, context, budget: float | None, progress_event, result_event):
         """Progress messages as the worker reports (the core's phase names), then the result.
 
         ``progress_event(RepairProgress) -> event``, ``result_event(result) -> event``.
@@ -418,21 +453,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
     # ---------------------------------------------------------------- audit
     def _audit_library(self, name: str, ids, all_revisions: bool, *, field: str = ""):
         """(revision, problem, candidates) of a stored library; errors under ``field``."""
-        try:
-            if not name:
-                raise InputError("problem", "must name a stored problem")
-            ids = list(ids)
-            seen: dict = {}
-            for k, cid in enumerate(ids):
-                if cid in seen:
-                    raise InputError(f"candidate_ids[{k}]", f"{cid!r} is listed twice")
-                seen[cid] = k
-            return self.store.library(name, ids=ids, all_revisions=all_revisions,
-                                      max_candidates=self.config.max_candidates)
-        except InputError as err:
-            raise type(err)(field + err.field, err.message) from None
-        except NotFoundError as err:
-            raise NotFoundError(field + err.field, err.message) from None
+        return prepared.audit_library(self, name, ids, all_revisions, field=field)
 
     def _budget(self, requested: float, context) -> float:
         return deadline_budget(min(requested, self.config.max_time_limit), time_left(context))
@@ -440,114 +461,74 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
     def _submit_call(self, fn, args: tuple, kwargs: dict, context):
         return self._watched(self.pool.submit_call(fn, args, kwargs), context)
 
+    def _audit(self, rpc: str, request, context, name: str):
+        """(job, Prepared or None) of an audit call (see :meth:`_prepared_call`)."""
+        return self._prepared_call(rpc, request, context, name, lambda deadline: prepared.PREPARE[
+            rpc](self, request, deadline=deadline))
+
     @translate_errors
     def ProfileRobustness(self, request, context):
         t0 = time.perf_counter()
-        with self._heavy(request, context, "ProfileRobustness", request.problem):
-            eps = convert.nonneg(request.epsilon, "epsilon")
-            rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
-                                                      request.all_revisions)
-            job = self._submit_call(audit_jobs.robustness, (problem, cands),
-                                    {"epsilon": eps, "spectrum": bool(request.spectrum)}, context)
-        rep = self._wait(job, context, math.inf)  # vectorised, not interruptible
-        reply = convert.robustness_to_reply(rep, revision=rev)
+        job, prep = self._audit("ProfileRobustness", request, context, request.problem)
+        # vectorised, not interruptible
+        prep, reply = self._reply("ProfileRobustness", request,
+                                  self._wait(job, context, self._budget_of(prep)), prep)
         self.timeline.record_audit("ProfileRobustness", request, reply, problem=request.problem,
-                                   revision=rev, started=t0, context=context)
+                                   revision=prep.revision, started=t0, context=context)
         return reply
 
-    def _start_stress(self, request, context, *, field: str = ""):
-        with self._heavy(request, context, "StressTest", request.problem):
-            rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
-                                                      request.all_revisions, field=field)
-            family, kwargs = convert.stress_to_kwargs(
-                request, problem, default_time_limit=self.config.default_audit_time_limit,
-                max_scenarios=self.config.max_scenarios, field=field)
-        kwargs["time_limit"] = self._budget(kwargs["time_limit"], context)
-        if self.dask_address:
-            kwargs["dask"] = self.dask_address
-        return rev, problem, cands, family, kwargs
-
-    @translate_errors
-    def StressTest(self, request, context):
-        t0 = time.perf_counter()
-        rev, problem, cands, family, kwargs = self._start_stress(request, context)
-        job = self._submit_call(audit_jobs.stress, (problem, cands, family), kwargs, context)
-        rep = self._wait(job, context, kwargs["time_limit"])
-        reply = convert.stress_to_reply(rep, matrices=request.matrices,
-                                        time_limit=kwargs["time_limit"], revision=rev)
+    def _stress_reply(self, request, context, result, prep, t0):
+        prep, reply = self._reply("StressTest", request, result, prep)
         self.timeline.record_audit("StressTest", request, reply, problem=request.problem,
-                                   revision=rev, started=t0, seed=request.seed,
+                                   revision=prep.revision, started=t0, seed=request.seed,
                                    status=convert.STOP_NAMES.get(reply.stop_reason, ""),
                                    context=context)
         return reply
 
     @translate_errors
+    def StressTest(self, request, context):
+        t0 = time.perf_counter()
+        job, prep = self._audit("StressTest", request, context, request.problem)
+        return self._stress_reply(request, context,
+                                  self._wait(job, context, self._budget_of(prep)), prep, t0)
+
+    @translate_errors
     def StressTestStream(self, request, context):
         t0 = time.perf_counter()
-        rev, problem, cands, family, kwargs = self._start_stress(request, context)
-        job = self._submit_call(audit_jobs.stress, (problem, cands, family), kwargs, context)
-        budget = kwargs["time_limit"]
-
-        def result(rep):
-            reply = convert.stress_to_reply(rep, matrices=request.matrices, time_limit=budget,
-                                            revision=rev)
-            self.timeline.record_audit("StressTest", request, reply, problem=request.problem,
-                                       revision=rev, started=t0, seed=request.seed,
-                                       status=convert.STOP_NAMES.get(reply.stop_reason, ""),
-                                   context=context)
-            return pb.StressEvent(result=reply)
-
-        yield from self._stream(job, context, budget, lambda msg: pb.StressEvent(progress=msg),
-                                result)
+        job, prep = self._audit("StressTest", request, context, request.problem)
+        yield from self._stream(
+            job, context, self._budget_of(prep), lambda msg: pb.StressEvent(progress=msg),
+            lambda result: pb.StressEvent(result=self._stress_reply(request, context, result,
+                                                                    prep, t0)))
 
     @translate_errors
     def ParetoFront(self, request, context):
         from flipfix.repair.audit.pareto import cheapest_within, fewest_flips_within
 
-        with self._heavy(request, context, "ParetoFront", request.problem):
-            rev, problem, cands = self._audit_library(request.problem, request.candidate_ids,
-                                                      request.all_revisions)
-            compiled = self._compiled(request.constraints, problem)
-            kwargs = convert.pareto_to_kwargs(request,
-                                              default_time_limit=self.config.default_time_limit)
-        kwargs["time_limit"] = budget = self._budget(kwargs["time_limit"], context)
         t0 = time.perf_counter()
-        job = self._submit_call(audit_jobs.pareto, (problem, cands, compiled), kwargs, context)
-        front = self._wait(job, context, budget)
+        job, prep = self._audit("ParetoFront", request, context, request.problem)
+        prep, front = self._settled(self._wait(job, context, self._budget_of(prep)), prep)
         cheapest = fewest = None
         if request.HasField("cheapest_within_flips"):
             cheapest = cheapest_within(front, int(request.cheapest_within_flips))
         if request.HasField("fewest_flips_within_percent"):
             fewest = fewest_flips_within(front, request.fewest_flips_within_percent)
         reply = convert.pareto_to_reply(front, cheapest=cheapest, fewest=fewest,
-                                        seconds=time.perf_counter() - t0, time_limit=budget,
-                                        revision=rev)
+                                        seconds=time.perf_counter() - t0, time_limit=prep.budget,
+                                        revision=prep.revision)
         self.timeline.record_audit("ParetoFront", request, reply, problem=request.problem,
-                                   revision=rev, started=t0, seed=request.seed, context=context)
+                                   revision=prep.revision, started=t0, seed=request.seed,
+                                   context=context)
         return reply
 
     @translate_errors
     def CurateLibrary(self, request, context):
         t0 = time.perf_counter()
-        rev, problem, cands, family, kwargs = self._start_stress(request.stress, context,
-                                                                 field="stress.")
-        K = len(cands.ids)
-        if not 1 <= request.m <= K:
-            raise InputError("m", f"must be in [1, {K}] (the audited library), got {request.m}")
-        if request.selection not in convert.SELECTION_NAMES:
-            raise InputError("selection", f"unknown selection {request.selection}")
-        selection = convert.SELECTION_NAMES[request.selection]
-        # checked here, before the stress test runs (curate's default max_subsets)
-        if selection == "exhaustive" and math.comb(K, request.m) > 200_000:
-            raise InputError("selection", f"EXHAUSTIVE over C({K}, {request.m}) subsets is too "
-                                          "many; use FORWARD")
-        budget = kwargs["time_limit"]
-        job = self._submit_call(audit_jobs.curation, (problem, cands, family),
-                                {"m": int(request.m), "selection": selection,
-                                 "stress_options": kwargs}, context)
-        rep, cur = self._wait(job, context, budget)
+        job, prep = self._audit("CurateLibrary", request, context, request.stress.problem)
+        prep, (rep, cur) = self._settled(self._wait(job, context, self._budget_of(prep)), prep)
+        rev, ids = prep.revision, prep.keep["ids"]
         stress = convert.stress_to_reply(rep, matrices=request.stress.matrices,
-                                         time_limit=budget, revision=rev)
+                                         time_limit=prep.budget, revision=rev)
         kept, removed, message = False, [], ""
         if cur is None:
             message = "no scenario completed: nothing chosen"
@@ -560,7 +541,7 @@ class FlipfixServicer(pb_grpc.FlipfixServicer):
             else:
                 keep = set(cur.kept_ids)
                 removed = self.store.keep_only(request.stress.problem, cur.kept_ids,
-                                               [c for c in cands.ids if c not in keep],
+                                               [c for c in ids if c not in keep],
                                                revision=rev)
                 kept = True
                 message = f"kept {len(cur.kept_ids)} candidates, removed {len(removed)}"
@@ -712,7 +693,7 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
                                                     thread_name_prefix="flipfix-rpc"),
                          options=options,
                          interceptors=[drain] + ([AuthInterceptor(tokens)] if tokens else [])
-                         + [RequestGuard(gate)])
+                         + [RequestGuard(gate, DEFERRED, RAW_REPLIES)])
     servicer = FlipfixServicer(store, pool, config, timeline, gate)
     pb_grpc.add_FlipfixServicer_to_server(servicer, server)
     grow_name = grow_service.register(servicer, server)

@@ -198,6 +198,17 @@ class Store:
             self._backend.close()
             raise
 
+    @classmethod
+    def reader(cls, path: str | Path) -> "Store":
+        """The store at ``path`` for reads only, as another process keeps it (a pool
+        worker preparing a call): no schema creation, migration or quota; its writes
+        would still be serialised as every store's are."""
+        self = cls.__new__(cls)
+        self.path = str(path)
+        self.quotas = None
+        self._backend = open_backend(path)
+        return self
+
     @property
     def where(self) -> str:
         """The database, for messages and logs (a URL without its password)."""
@@ -304,6 +315,14 @@ class Store:
         with self._read() as db:
             row = db.execute("SELECT LENGTH(r.model) FROM problems p JOIN revisions r ON "
                              "r.problem = p.name AND r.revision = p.revision WHERE p.name = ?",
+                             (self._key(tenant, name),)).fetchone()
+        return int(row[0]) if row else 0
+
+    def stored_bytes(self, name: str, *, tenant: str = "") -> int:
+        """Bytes the problem holds in the store (every model revision and candidate; 0
+        when there is no such problem): one row's counter, nothing else is read."""
+        with self._read() as db:
+            row = db.execute("SELECT bytes FROM problems WHERE name = ?",
                              (self._key(tenant, name),)).fetchone()
         return int(row[0]) if row else 0
 

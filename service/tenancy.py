@@ -56,7 +56,7 @@ class TenantView:
     _METHODS = frozenset({"create_problem", "replace_problem", "get_problem", "list_problems",
                           "delete_problem", "add_candidates", "list_candidates",
                           "remove_candidates", "keep_only", "library", "usage",
-                          "model_bytes"})
+                          "model_bytes", "stored_bytes"})
 
     def __init__(self, store, tenant: str):
         self.store = store

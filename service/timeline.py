@@ -149,9 +149,11 @@ class Used:
 class Timeline:
     """The timeline's part of the Flipfix servicer's calls (see the module doc)."""
 
-    def __init__(self, store, *, max_records: int | None = 1000):
+    def __init__(self, store, *, max_records: int | None = 1000, migrate: bool = True):
+        """``migrate``: bring the timeline's tables up to date (False: a reader of a
+        store another process keeps, e.g. in a pool worker)."""
         self.store = store
-        self.history = History(store, max_records=max_records)
+        self.history = History(store, max_records=max_records, migrate=migrate)
 
     # ----------------------------------------------------------- before a run
     def candidate_ids(self, request: pb.RepairRequest) -> list[str]:

@@ -17,6 +17,7 @@ the next job in its slot. Each slot has:
 
     [0] candidates done   [1] total   [2] best cost so far (NaN: none)   [3] update count
     [4] phase sequence number (odd while the worker writes the phase name)
+    [5] the job's solver budget in s, when the job worked it out itself (NaN: not so)
 
   and a row of a shared byte array, ``PHASE_BYTES`` wide, holding the core's phase name
   (``greedy``, ``anneal``, ``neighbourhood``, ``full``, ``cpsat``, ``stress``, ...). The worker
@@ -28,7 +29,10 @@ a cancel that comes after its job ended (and the slot took a new job) does nothi
 
 A job is :func:`flipfix.repair.repair` (:meth:`RepairPool.submit`) or any module-level
 function taking ``cancel=`` and ``progress=`` keywords (:meth:`RepairPool.submit_call`,
-used by the audit RPCs, see :mod:`flipfix.service.audit_jobs`).
+used by the audit RPCs, see :mod:`flipfix.service.audit_jobs`). A function marked
+``fn.prepares = True`` prepares its job first (:func:`flipfix.service.prepared.stored_call`
+reads the store) and also gets ``started=``: it calls ``started(budget)`` when its search
+begins, and only then is "started" sent (the budget clock does not count the preparation).
 """
 
 from __future__ import annotations
@@ -52,9 +56,10 @@ from flipfix.service.errors import QueueFullError, TransientError
 
 __all__ = ["RepairPool", "Job", "Progress", "SLOT_WIDTH", "PHASE_BYTES", "WorkerInputError"]
 
-SLOT_WIDTH = 5
+SLOT_WIDTH = 6
 PHASE_BYTES = 32
 _SEQ = 4  # the phase sequence number's place in a slot row
+_BUDGET = 5  # the budget a job reported (NaN: none)
 _FLAGS = None  # the shared arrays and the workers' ends of the slot pipes, in a worker process
 _PHASES = None
 _PIPES = None
@@ -156,7 +161,13 @@ def _run_call(slot: int, gen: int, fn, args: tuple, kwargs: dict):
         from flipfix.repair.api import warm_up
 
         warm_up()
-        tell("started")
+        if getattr(fn, "prepares", False):
+            def started(budget: float) -> None:
+                _FLAGS[base + _BUDGET] = float(budget)
+                tell("started")
+            kwargs = {**kwargs, "started": started}
+        else:
+            tell("started")
         last_phase = [None]
 
         def progress(info: dict) -> None:
@@ -235,6 +246,12 @@ class Job:
         if kind == "started":
             self.started_at = time.monotonic()
         self._events.put(kind)
+
+    @property
+    def budget(self) -> float | None:
+        """The solver budget (s) the job reported as it started (None: it reported none)."""
+        value = self._pool._flags[self.slot * SLOT_WIDTH + _BUDGET]
+        return None if math.isnan(value) else float(value)
 
     def phase(self) -> str:
         """The last phase name the worker wrote (read under its sequence number)."""
@@ -363,7 +380,7 @@ class RepairPool:
             slot = self._free.pop()
             gen = next(self._generations)
             b = slot * SLOT_WIDTH
-            self._flags[b:b + SLOT_WIDTH] = [0.0, 0.0, math.nan, 0.0, 0.0]
+            self._flags[b:b + SLOT_WIDTH] = [0.0, 0.0, math.nan, 0.0, 0.0, math.nan]
             self._phases[slot * PHASE_BYTES:(slot + 1) * PHASE_BYTES] = b"\0" * PHASE_BYTES
             try:
                 fut = self._executor.submit(target, slot, gen, *args)

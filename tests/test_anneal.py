@@ -9,6 +9,7 @@ Outside references used (named again next to each check):
 
 from __future__ import annotations
 
+import math
 import threading
 import time
 
@@ -313,3 +314,67 @@ def test_plain_path_matches_the_general_path():
         b = anneal(general, starts, depth=0.8, sweeps=50, seed=2, scale=scale, **kw)
         np.testing.assert_array_equal(a.X, b.X)
         assert not np.array_equal(a.X, starts)  # the anneal moved
+
+
+# ------------------------------------------------- the schedule paced by the clock
+def test_timed_schedule_has_the_shape_of_the_sweep_schedule():
+    """temperature_at: the quench at phase 0 and 1, the turn at the end of the heating
+    share, geometric (log-linear) in between, as temperature() is by sweep."""
+    plan = K.Plan(100, 10, 0.03, 3.0, 0.0, 10, np.uint64(0), False, 1.0, True)
+    at = [K.temperature_at(plan, f) for f in np.linspace(0.0, 1.0, 101)]
+    assert at[0] == pytest.approx(0.03) and at[-1] == pytest.approx(0.03)
+    assert at[10] == pytest.approx(3.0)  # heat / sweeps = 0.1
+    assert np.all(np.diff(at[:11]) > 0) and np.all(np.diff(at[10:]) < 0)
+    assert K.temperature_at(plan, 0.55) == pytest.approx(math.sqrt(0.03 * 3.0))
+    # the sweep schedule reaches the same turn and quench
+    assert K.temperature(plan._replace(timed=False), 9) == pytest.approx(3.0)
+    assert K.temperature(plan._replace(timed=False), 99) == pytest.approx(0.03)
+
+
+def _timed_run(comp, starts, sweeps, seed):
+    """The kernel on a timed plan left unpaced (its phase grows by 1 / (sweeps - 1))."""
+    late, moves = late_arrays(comp), A._moves(comp)
+    scale = flip_scale(comp, starts)
+    tq, tt = A.temperatures(0.6, scale)
+    plan = K.Plan(sweeps, sweeps // 10, tq, tt, 0.0, comp.n, np.uint64(seed), False, scale,
+                  True)
+    X = starts.copy()
+    ch = K.new_chain(comp.n, late.counts.cp_const.size, late.counts.term_pen.size,
+                     late.rows.lo.size)
+    pos, done = np.zeros(3, dtype=np.int64), np.zeros(len(X), dtype=np.int64)
+    K.advance(late.qubo, late.counts, late.rows, moves, plan, X, starts, ch, pos, len(X),
+              10 ** 12, 1e-9, done)
+    return X, done
+
+
+def test_timed_plan_unpaced_runs_its_sweeps_and_is_scale_invariant():
+    p1, cs1 = _sparse(150, 8)
+    p10, cs10 = _sparse(150, 8, factor=10.0)
+    c1, c10 = compile_constraints(p1, cs1), compile_constraints(p10, cs10)
+    starts = greedy_repair(c1, np.random.default_rng(2).integers(0, 2, (3, 150)).astype(
+        np.int8)).X
+    X1, done = _timed_run(c1, starts, 40, 5)
+    X10, _ = _timed_run(c10, starts, 40, 5)
+    assert (done == 40).all()  # phase 0, 1/39, ..., 1: forty sweeps, the last at the quench
+    np.testing.assert_array_equal(X1, X10)  # model x 10: every temperature x 10, same moves
+
+
+@pytest.mark.parametrize("guess", [4, 10 ** 8])
+def test_paced_anneal_ends_cold_at_until_whatever_the_guess(guess):
+    """A chain paced to ``until`` stretches a guess of 4 sweeps and shortens one of 10^8;
+    its answers are feasible, their costs agree with an independent recomputation and are
+    never below the exact optimum (dimod.ExactSolver over every bit string)."""
+    p, cs = _late_model(3)
+    comp = compile_constraints(p, cs)
+    every = _every_string(p)
+    cost_all, ok_all = _independent(p, cs, every)
+    optimum = cost_all[ok_all].min()
+    starts = np.random.default_rng(4).integers(0, 2, (4, p.n)).astype(np.int8)
+    out = anneal(comp, starts, depth=0.7, sweeps=guess, seed=1, workers=2,
+                 until=time.perf_counter() + 0.05)
+    assert (out.sweeps > 0).all() and (out.sweeps < 10 ** 8).all()
+    cost, ok = _independent(p, cs, out.X)
+    ev = comp.evaluate(out.X)
+    assert ok.all() and ev.feasible.all()
+    np.testing.assert_allclose(ev.cost, cost, rtol=0, atol=1e-9)
+    assert (cost >= optimum - 1e-9).all()

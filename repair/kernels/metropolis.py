@@ -34,9 +34,11 @@ from typing import NamedTuple
 import numba as nb
 import numpy as np
 
+from flipfix.repair.kernels.jit import counted_entry, counted_kernel, kernel
 from flipfix.repair.kernels.rows import row_viol
 
-__all__ = ["Moves", "Plan", "Chain", "advance", "flip_changes", "new_chain", "temperature"]
+__all__ = ["Moves", "Plan", "Chain", "advance", "flip_changes", "new_chain", "temperature",
+           "temperature_at"]
 
 _U = np.uint64
 _GOLDEN = np.uint64(0x9E3779B97F4A7C15)
@@ -76,7 +78,10 @@ class Plan(NamedTuple):
     per flip away from the origin; ``radius`` the largest distance from it; ``seed`` the
     call's seed (each start k draws from its own stream of (seed, k)); ``randomise``:
     start from uniformly random free bits instead of the given state; ``scale`` the
-    temperature unit (row weights start at ``scale * wunit``)."""
+    temperature unit (row weights start at ``scale * wunit``); ``timed``: the schedule
+    follows the chain's phase (``Chain.sched``, which the caller may pace between slices
+    so that the chain ends cold at a given time) instead of the sweep count (see
+    :func:`advance`)."""
 
     sweeps: int
     heat: int
@@ -87,6 +92,7 @@ class Plan(NamedTuple):
     seed: np.uint64
     randomise: bool
     scale: float
+    timed: bool = False
 
 
 class Chain(NamedTuple):
@@ -96,7 +102,9 @@ class Chain(NamedTuple):
     (n,) ``h + J x``; dcount int64 (P,), sat int64 (T,), dd int64 (P,) (zeros): the
     counts, each term's satisfied literals, a scratch of count changes; act, w float64 (m,):
     row activities and penalty weights; rng uint64 (1,); num float64 (4,): objective,
-    violation, best objective, best violation; dist int64 (1,): distance from the origin.
+    violation, best objective, best violation; dist int64 (1,): distance from the origin;
+    sched float64 (2,): the phase of the schedule (0 at the start, 1 at the quench) and its
+    step per sweep (timed plans only).
     """
 
     x: np.ndarray
@@ -110,13 +118,14 @@ class Chain(NamedTuple):
     rng: np.ndarray
     num: np.ndarray
     dist: np.ndarray
+    sched: np.ndarray
 
 
 def new_chain(n: int, P: int, T: int, m: int) -> Chain:
     """Scratch arrays for one thread (n variables, P count penalties, T terms, m rows)."""
     return Chain(np.zeros(n, np.int8), np.zeros(n, np.int8), np.zeros(n), np.zeros(P, np.int64),
                  np.zeros(T, np.int64), np.zeros(P, np.int64), np.zeros(m), np.zeros(m),
-                 np.zeros(1, np.uint64), np.zeros(4), np.zeros(1, np.int64))
+                 np.zeros(1, np.uint64), np.zeros(4), np.zeros(1, np.int64), np.zeros(2))
 
 
 # ------------------------------------------------------------------ randomness
@@ -143,7 +152,7 @@ def _stream(seed, k):
 
 
 # ---------------------------------------------------------------- schedule
-@nb.njit(cache=True)
+@kernel
 def temperature(plan, s):
     """Temperature of sweep s (0 <= s < plan.sweeps): geometric from ``t_quench`` up to
     ``t_turn`` over the ``heat`` first sweeps (ending at ``t_turn``), then geometric from
@@ -156,6 +165,20 @@ def temperature(plan, s):
     if cool <= 1:
         return plan.t_turn
     return math.exp(lt + (lq - lt) * (s - plan.heat) / (cool - 1))
+
+
+@nb.njit(cache=True)
+def temperature_at(plan, phi):
+    """Temperature at phase phi in [0, 1] of a timed plan: geometric from ``t_quench`` up to
+    ``t_turn`` over the first ``heat / sweeps`` of the phase, then geometric back down to
+    ``t_quench`` at phi = 1 (the shape of :func:`temperature`, by phase)."""
+    lq = math.log(plan.t_quench)
+    lt = math.log(plan.t_turn)
+    hf = plan.heat / plan.sweeps if plan.sweeps > 0 else 0.0
+    phi = min(1.0, max(0.0, phi))
+    if phi < hf:
+        return math.exp(lq + (lt - lq) * phi / hf)
+    return math.exp(lt + (lq - lt) * (phi - hf) / (1.0 - hf))
 
 
 # ------------------------------------------------------------- one flip
@@ -258,7 +281,7 @@ def _partner(i, r, x, fixed, R, rng):
 
 
 # ----------------------------------------------------------------- sweeps
-@nb.njit(cache=True, _nrt=False)
+@kernel
 def _sweep_plain(Q, M, plan, o, ch, beta):
     """:func:`_sweep` for a problem without count penalties nor rows: the QUBO, the flip
     price and the radius only (the same moves and random draws, less bookkeeping)."""
@@ -286,7 +309,7 @@ def _sweep_plain(Q, M, plan, o, ch, beta):
     ch.dist[0] = dist
 
 
-@nb.njit(cache=True, _nrt=False)
+@kernel
 def _sweep(Q, C, R, M, plan, o, ch, beta):
     """One Metropolis pass over the free variables at inverse temperature beta."""
     if C.cp_const.size == 0 and R.lo.size == 0:
@@ -382,7 +405,7 @@ def _fresh(x, Q, C, R, field, dcount, sat, act):
     return e
 
 
-@nb.njit(cache=True)
+@counted_kernel
 def _begin(k, Q, C, R, M, plan, X, O, ch):
     """Load start k into the chain: pinned bits set, random free bits when ``randomise``."""
     x, o = ch.x, O[k]
@@ -409,15 +432,23 @@ def _begin(k, Q, C, R, M, plan, X, O, ch):
     ch.best[:] = x
     for p in range(ch.dd.size):
         ch.dd[p] = 0
+    ch.sched[0] = 0.0
+    ch.sched[1] = 1.0 / max(1, plan.sweeps - 1)
 
 
-@nb.njit(cache=True, nogil=True)
+@counted_entry
 def advance(Q, C, R, M, plan, X, O, ch, pos, end, budget, tol, sweeps_out):
     """Run starts ``pos[0]`` .. ``end - 1`` of X (int8 (K, n), in place), resuming start
     ``pos[0]`` at sweep ``pos[1]`` (``pos[2]`` = 1 once it is loaded in ``ch``), until
     about ``budget`` flip attempts are spent (a sweep is not cut). A finished start's row
     of X becomes its best state; its sweeps go to ``sweeps_out``. O int8 (K, n): origins.
-    Returns the attempts spent."""
+    Returns the attempts spent.
+
+    A plain plan runs ``plan.sweeps`` sweeps per start at :func:`temperature`. A timed plan
+    runs at :func:`temperature_at` of the chain's phase ``ch.sched[0]``, which grows by
+    ``ch.sched[1]`` per sweep (1 / (sweeps - 1) when a start is loaded; the caller may
+    change it between slices), the last sweep at phase 1 (the quench), where the start
+    ends."""
     used = 0
     n = X.shape[1]
     per_sweep = max(1, M.free.size)
@@ -427,21 +458,31 @@ def advance(Q, C, R, M, plan, X, O, ch, pos, end, budget, tol, sweeps_out):
             _begin(k, Q, C, R, M, plan, X, O, ch)
             pos[2] = 1
             used += n
-        while pos[1] < plan.sweeps and used < budget:
-            _sweep(Q, C, R, M, plan, O[k], ch, 1.0 / temperature(plan, pos[1]))
+        while (plan.timed or pos[1] < plan.sweeps) and used < budget:
+            if plan.timed:
+                phi = ch.sched[0]
+                if phi > 1.0:
+                    break
+                _sweep(Q, C, R, M, plan, O[k], ch, 1.0 / temperature_at(plan, phi))
+                nxt = phi + ch.sched[1]
+                ch.sched[0] = 1.0 if phi < 1.0 < nxt else nxt  # the last sweep at the quench
+                if phi >= 1.0:
+                    ch.sched[0] = 2.0
+            else:
+                _sweep(Q, C, R, M, plan, O[k], ch, 1.0 / temperature(plan, pos[1]))
             _close_sweep(R, M, plan, ch, tol)
             pos[1] += 1
             used += per_sweep
-        if pos[1] >= plan.sweeps:
+        if ch.sched[0] > 1.0 if plan.timed else pos[1] >= plan.sweeps:
             X[k, :] = ch.best
-            sweeps_out[k] = plan.sweeps
+            sweeps_out[k] = pos[1]
             pos[0] += 1
             pos[1] = 0
             pos[2] = 0
     return used
 
 
-@nb.njit(cache=True, nogil=True)
+@counted_entry
 def flip_changes(Q, C, R, free, X, out):
     """The change of the QUBO-and-count-penalty objective when each free variable flips,
     for every row of X (int8 (K, n)): into out float64 (K, nf)."""

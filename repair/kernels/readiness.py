@@ -21,9 +21,13 @@ too, so a library caller is warned as well.
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
+import importlib
 import json
+import os
 import platform
+import subprocess
 import sys
 import threading
 import time
@@ -41,6 +45,7 @@ _ROOT = Path(__file__).resolve().parents[1]  # the repair package
 #: sources whose kernels warm_up compiles: a change to any of them invalidates the stamp
 _SOURCES = ("kernels", "solvers/greedy", "solvers/anneal.py")
 _STAMP = "flipfix-kernels.ready"
+_LOCKFILE = "flipfix-kernels.lock"
 
 _LOCK = threading.Lock()
 _WARM = [False]
@@ -80,12 +85,10 @@ def _cache_dir() -> Path:
     """Where numba keeps the scoring kernels' cache (the stamp lives there too)."""
     from flipfix.repair.kernels import scores
 
-    return Path(scores._total._cache.cache_path)
+    return Path(scores._library._cache.cache_path)
 
 
 def _kernel_modules() -> list:
-    import importlib
-
     from flipfix.repair.solvers import greedy
 
     names = ["flipfix.repair.kernels.scores", "flipfix.repair.kernels.energy",
@@ -128,14 +131,119 @@ def is_warm() -> bool:
     return _WARM[0]
 
 
-def warm_up(*, notice: Callable[[str], None] | None = stderr_notice) -> float:
+#: the kernel families and the module whose ``warm_up()`` compiles (or loads) each one
+FAMILIES = {"greedy": "flipfix.repair.solvers.greedy",
+            "scoring": "flipfix.repair.kernels.scores",
+            "annealing": "flipfix.repair.solvers.anneal",
+            "grow": "flipfix.repair.grow.neighbours"}
+#: the search kernels every repair needs (the growing kernel is the Grow service's)
+SEARCH = ("greedy", "scoring", "annealing")
+
+
+def _warm_family(name: str) -> None:
+    import importlib
+
+    importlib.import_module(FAMILIES[name]).warm_up()
+
+
+def _split(families: tuple) -> tuple[tuple, tuple]:
+    """(this process's families, the helper process's) for a cold compile on two cores,
+    about even by their measured compile times (bench/compile.py). Annealing's warm-up
+    ends with a greedy repair, so greedy and annealing stay in one process (annealing
+    finds greedy compiled there, never half-written by the other process)."""
+    return (tuple(f for f in ("greedy", "annealing") if f in families),
+            tuple(f for f in ("scoring", "grow") if f in families))
+
+
+def _cores() -> int:
+    try:
+        return len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):
+        return os.cpu_count() or 1
+
+
+#: what the helper process runs: the parent's import path, then the families it is given
+_HELPER = ("import json, os, sys; sys.path[:] = json.loads(os.environ['FLIPFIX_KERNEL_PATH']); "
+           "from flipfix.repair.kernels.readiness import _warm_family; "
+           "[_warm_family(f) for f in sys.argv[1:]]")
+
+
+def _helper(families: tuple):
+    """A process compiling ``families`` into numba's on-disk cache (the same cache: it
+    inherits the environment, ``NUMBA_CACHE_DIR`` included), or None when it cannot start.
+    numba writes every cache file under a unique temporary name and renames it into place,
+    so processes filling one cache never see each other's partial files."""
+    if not families or not sys.executable:
+        return None
+    env = dict(os.environ, FLIPFIX_KERNEL_PATH=json.dumps(sys.path))
+    try:
+        return subprocess.Popen([sys.executable, "-c", _HELPER, *families], env=env,
+                                stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
+                                stderr=subprocess.DEVNULL)
+    except OSError:
+        return None
+
+
+@contextlib.contextmanager
+def _fill_lock():
+    """Held while one process fills a cold cache: a second process warming up at the same
+    time (the server's pool workers) blocks here until the first is done, then loads."""
+    try:
+        import fcntl
+
+        folder = _cache_dir()
+        folder.mkdir(parents=True, exist_ok=True)
+        f = open(folder / _LOCKFILE, "a+b")
+    except (ImportError, OSError):  # no lock on this platform or a read-only cache
+        yield
+        return
+    with f:
+        fcntl.flock(f, fcntl.LOCK_EX)
+        try:
+            yield
+        finally:
+            fcntl.flock(f, fcntl.LOCK_UN)
+
+
+def _fill(families: tuple, parallel: bool) -> None:
+    """Compile ``families`` into the on-disk cache and load them here: on two or more
+    cores a helper process compiles part of them while this one compiles the rest, then
+    this process loads the helper's part from the cache (and compiles whatever the helper
+    did not leave there)."""
+    mine, theirs = _split(families) if parallel and _cores() >= 2 else (families, ())
+    helper = _helper(theirs)
+    if helper is None:
+        mine, theirs = families, ()
+    try:
+        for f in mine:
+            _warm_family(f)
+    except BaseException:
+        if helper is not None:
+            helper.kill()
+        raise
+    finally:
+        if helper is not None:
+            helper.wait()  # its exit is the event: the cache holds its families now
+    for f in theirs:
+        _warm_family(f)
+
+
+def warm_up(*, notice: Callable[[str], None] | None = stderr_notice, grow: bool = False,
+            parallel: bool = True) -> float:
     """Load (or compile) every search kernel once per process; returns the seconds it took
     (0.0 when this process had already done it).
 
     ``notice(message)`` is called first when the cache is cold (:func:`cold_notice`);
-    ``None`` stays silent. Thread-safe: concurrent callers wait for the one warming up.
+    ``None`` stays silent. A cold compile uses two cores when there are (``parallel``): a
+    helper process compiles some kernel families into the cache while this process
+    compiles the others. ``grow`` warms the growing kernel too (set-up). Thread-safe:
+    concurrent callers wait for the one warming up, and processes sharing a cache wait
+    for the one compiling it.
     """
+    families = SEARCH + (("grow",) if grow else ())
     if _WARM[0]:
+        if grow:
+            _warm_family("grow")
         return 0.0
     with _LOCK:
         if _WARM[0]:
@@ -144,18 +252,24 @@ def warm_up(*, notice: Callable[[str], None] | None = stderr_notice) -> float:
         cold = not is_cached()
         if cold and notice is not None:
             notice(cold_notice())
-        from flipfix.repair.kernels import scores
-        from flipfix.repair.solvers import anneal, greedy
-
-        greedy.warm_up()
-        scores.warm_up()
-        anneal.warm_up()
+        for name in families:  # imports (and the greedy package's stale-cache check)
+            importlib.import_module(FAMILIES[name])
         if cold:
-            try:
-                (_cache_dir() / _STAMP).write_text(json.dumps(
-                    {"key": _key(), "indexes": _compiled_indexes(),
-                     "seconds": round(time.perf_counter() - t0, 1)}), encoding="utf-8")
-            except OSError:  # a read-only cache: the notice shows again next time
-                pass
+            with _fill_lock():
+                if is_cached():  # another process filled it meanwhile
+                    for f in families:
+                        _warm_family(f)
+                else:
+                    _fill(families, parallel)
+                    try:
+                        (_cache_dir() / _STAMP).write_text(json.dumps(
+                            {"key": _key(), "indexes": _compiled_indexes(),
+                             "seconds": round(time.perf_counter() - t0, 1)}),
+                            encoding="utf-8")
+                    except OSError:  # a read-only cache: the notice shows again next time
+                        pass
+        else:
+            for f in families:
+                _warm_family(f)
         _WARM[0] = True
         return time.perf_counter() - t0

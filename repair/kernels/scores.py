@@ -29,6 +29,7 @@ import numpy as np
 
 from flipfix.repair.kernels.batching import thread_pool
 from flipfix.repair.kernels.bundles import late_arrays
+from flipfix.repair.kernels.jit import counted_entry, entry, kernel
 from flipfix.repair.lowering.compiled import Compiled
 
 __all__ = ["Scorer", "distances", "warm_up"]
@@ -44,7 +45,15 @@ KEEP_ACTIVITIES = 20_000_000
 BLOCK_SECONDS = 0.005
 
 
-@nb.njit(cache=True, nogil=True)
+@kernel
+def _copy(dst, src):
+    """dst[:] = src, as a loop (a slice assignment brings numba's shape-mismatch message
+    formatting, a second of compilation, into the kernel)."""
+    for i in range(dst.size):
+        dst[i] = src[i]
+
+
+@kernel
 def _scratch(x, q, c, r, offset, d, act):
     """From scratch for x int8 (n,): fills d int64 (P,) and, when act has m entries, act
     float64 (m,); returns (merged-QUBO energy, number of pinned bits x misses)."""
@@ -79,7 +88,7 @@ def _scratch(x, q, c, r, offset, d, act):
     return e + offset, mis
 
 
-@nb.njit(cache=True, nogil=True)
+@kernel
 def _delta(x, a, diff, nd, e, mis, d, act, q, c, r, stamp, mark, touched):
     """The state (e, mis, d, act) of ``a`` moved, in place for d and act, to that of ``x``
     by the ``nd`` bits ``diff[:nd]`` where they differ; returns (e, mis). ``stamp`` int64
@@ -123,7 +132,7 @@ def _delta(x, a, diff, nd, e, mis, d, act, q, c, r, stamp, mark, touched):
     return e, mis
 
 
-@nb.njit(cache=True, nogil=True)
+@kernel
 def _total(e, mis, d, act, c, r):
     """(cost, violation) from an energy, missed fixings, count values and activities."""
     cp_ptr, cp_table = c[0], c[1]
@@ -138,7 +147,7 @@ def _total(e, mis, d, act, c, r):
     return e, v
 
 
-@nb.njit(cache=True, nogil=True)
+@kernel
 def _differing(x, a, diff):
     nd = 0
     for i in range(x.size):
@@ -148,7 +157,7 @@ def _differing(x, a, diff):
     return nd
 
 
-@nb.njit(cache=True, nogil=True)
+@kernel
 def _count_differing(x, a):
     cnt = 0
     for i in range(x.size):
@@ -156,7 +165,7 @@ def _count_differing(x, a):
     return cnt
 
 
-@nb.njit(cache=True, nogil=True)
+@counted_entry
 def _library(X, done, first, stop, window, far, q, c, r, offset, e0, mis0, d0, act0, cost,
              viol):
     """Rows first..stop-1 of X: each from the nearest of the ``window`` rows before it that
@@ -186,14 +195,14 @@ def _library(X, done, first, stop, window, far, q, c, r, offset, e0, mis0, d0, a
         if nd > far:
             e0[k], mis0[k] = _scratch(x, q, c, r, offset, d0[k], a_act)
         else:
-            d0[k, :] = d0[near]
-            a_act[:] = act0[near]
+            _copy(d0[k], d0[near])
+            _copy(a_act, act0[near])
             e0[k], mis0[k] = _delta(x, X[near], diff, nd, e0[near], mis0[near], d0[k], a_act,
                                     q, c, r, stamp, k + 1, touched)
         cost[k], viol[k] = _total(e0[k], mis0[k], d0[k], a_act, c, r)
 
 
-@nb.njit(cache=True, nogil=True)
+@counted_entry
 def _near(X, R, rows, scored, e0, mis0, d0, act0, q, c, r, offset, far, cost, viol, flips):
     """Row k of X from the state of row rows[k] of R (from scratch past ``far`` differing
     bits, or when that row is not among the first ``scored``); also its Hamming distance
@@ -214,8 +223,8 @@ def _near(X, R, rows, scored, e0, mis0, d0, act0, q, c, r, offset, far, cost, vi
         if nd > far or not keep or rows[k] >= scored:
             e, mis = _scratch(x, q, c, r, offset, d, act)
         else:
-            d[:] = d0[rows[k]]
-            act[:] = act0[rows[k]]
+            _copy(d, d0[rows[k]])
+            _copy(act, act0[rows[k]])
             e, mis = _delta(x, a, diff, nd, e0[rows[k]], mis0[rows[k]], d, act, q, c, r,
                             stamp, k + 1, touched)
         cost[k], viol[k] = _total(e, mis, d, act, c, r)
@@ -299,7 +308,7 @@ class Scorer:
         return out
 
 
-@nb.njit(cache=True, nogil=True)
+@entry
 def _distances(X, y, out):
     for k in range(X.shape[0]):
         x = X[k]

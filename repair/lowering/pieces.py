@@ -21,7 +21,8 @@ import numpy as np
 from flipfix.repair.errors import InputError
 from flipfix.repair.model.problem import Problem
 
-__all__ = ["CountSpec", "RowSpec", "Pieces", "count_pieces", "label_bits", "distinct"]
+__all__ = ["CountSpec", "RowSpec", "Pieces", "count_pieces", "label_bits", "distinct",
+           "positions"]
 
 
 @dataclass
@@ -111,10 +112,36 @@ def label_bits(problem: Problem, mapping, field: str) -> tuple[np.ndarray, np.nd
     return np.asarray(idx, dtype=np.int64), np.asarray(bits, dtype=np.int8)
 
 
-def label_keys(keys) -> bool:
-    """Whether every key is a str or an int (not a bool): a label :meth:`Problem.lookup` takes."""
-    return all(issubclass(t, (str, int, np.integer)) and t is not bool
-               for t in set(map(type, keys)))
+def _range_labels(problem: Problem) -> bool:
+    """Whether the problem's labels are the ints 0..n-1 in order (checked once, kept on it)."""
+    known = problem.__dict__.get("_range_labels")
+    if known is None:
+        labels = problem.labels
+        known = (all(type(lab) is int for lab in labels)
+                 and np.array_equal(np.fromiter(labels, np.int64, len(labels)),
+                                    np.arange(len(labels))))
+        object.__setattr__(problem, "_range_labels", known)
+    return known
+
+
+def positions(problem: Problem, keys, count: int) -> np.ndarray | None:
+    """The positions int64 (count,) of ``count`` labels ``keys`` (an iterable that can be
+    walked twice, such as a dict's keys), or None when one is not a str / int label of the
+    problem (the caller's entry-by-entry path then names it). Integer keys of a problem
+    labelled 0..n-1 are their own positions: no dict lookup per label (16-20 ms at 100,000
+    labels, against ~1 ms)."""
+    types = set(map(type, keys))
+    if not all(issubclass(t, (str, int, np.integer)) and t is not bool for t in types):
+        return None
+    if _range_labels(problem) and all(issubclass(t, (int, np.integer)) for t in types):
+        idx = np.fromiter(keys, np.int64, count)
+        if count and (idx.min() < 0 or idx.max() >= problem.n):
+            return None
+        return idx
+    try:
+        return np.fromiter(map(problem.index.__getitem__, keys), np.int64, count)
+    except KeyError:
+        return None
 
 
 def _label_bits_at_once(problem: Problem, mapping):
@@ -122,12 +149,11 @@ def _label_bits_at_once(problem: Problem, mapping):
     str / int and every value a number of the vartype; None otherwise (the entry by entry
     path then names the bad one). At 100,000 labels: ~3 s -> 0.2 s of lowering."""
     keys, values = mapping.keys(), mapping.values()
-    if not label_keys(keys) or not all(issubclass(t, (int, np.integer, float)) and t is not bool
-                                       for t in set(map(type, values))):
+    if not all(issubclass(t, (int, np.integer, float)) and t is not bool
+               for t in set(map(type, values))):
         return None
-    try:
-        idx = np.fromiter(map(problem.index.__getitem__, keys), np.int64, len(mapping))
-    except KeyError:
+    idx = positions(problem, keys, len(mapping))
+    if idx is None:
         return None
     v = np.fromiter(values, np.float64, len(mapping))
     lo = -1.0 if problem.vartype == "SPIN" else 0.0

@@ -194,20 +194,27 @@ def _check(compiled, starts, origin, depth, sweeps, flip_price, max_flips, scale
     return starts, origin
 
 
-def _block(late, moves, plan, X, O, a, b, tol, sweeps_out, stop):
-    """Anneal starts a..b-1 of X in place, slice by slice, until done or ``stop()``."""
+def _block(late, moves, plan, X, O, a, b, tol, sweeps_out, stop, until=None):
+    """Anneal starts a..b-1 of X in place, slice by slice, until done or ``stop()``. With
+    ``until`` (a timed plan), each slice paces the start in progress so that it reaches its
+    quench when its share of the time left (an equal share per start left) ends."""
     q, c, r = late
     ch = new_chain(X.shape[1], c.cp_const.size, c.term_pen.size, r.lo.size)
     pos = np.array([a, 0, 0], dtype=np.int64)
-    budget = 2 * max(1, moves.free.size)  # the first slice: a start and a sweep or so
+    per_sweep = max(1, moves.free.size)
+    budget = 2 * per_sweep  # the first slice: a start and a sweep or so
     while pos[0] < b:
         if stop():
             break
         t0 = time.perf_counter()
         used = advance(q, c, r, moves, plan, X, O, ch, pos, b, budget, tol, sweeps_out)
-        dt = time.perf_counter() - t0
+        now = time.perf_counter()
+        dt = now - t0
         rate = used / dt if dt > 0 else 4.0 * budget / SLICE_SECONDS
         budget = int(min(4 * budget, max(1, rate * SLICE_SECONDS)))
+        if until is not None and pos[2] == 1 and pos[0] < b:
+            sweeps_left = rate / per_sweep * max(0.0, until - now) / (b - pos[0])
+            ch.sched[1] = max(0.0, 1.0 - ch.sched[0]) / max(1.0, sweeps_left)
     if pos[0] < b and pos[2] == 1:  # stopped inside a start: its best state so far
         X[pos[0]] = ch.best
         sweeps_out[pos[0]] = pos[1]
@@ -216,7 +223,7 @@ def _block(late, moves, plan, X, O, a, b, tol, sweeps_out, stop):
 def anneal(compiled: Compiled, starts: np.ndarray, *, depth: float, sweeps: int, seed: int,
            origin: np.ndarray | None = None, flip_price: float = 0.0,
            max_flips: int | None = None, scale: float | None = None, workers: int = 1,
-           deadline: float | None = None,
+           deadline: float | None = None, until: float | None = None,
            cancel: threading.Event | None = None) -> AnnealOutput:
     """Anneal every row of ``starts`` (int8 (R, n), 0/1), then repair it greedily.
 
@@ -229,6 +236,14 @@ def anneal(compiled: Compiled, starts: np.ndarray, *, depth: float, sweeps: int,
     (``time.perf_counter()`` value) and ``cancel`` stop the sweeps promptly; the greedy
     pass honours both as well (a state it does not reach is returned as the anneal left
     it: the best it saw, never more violated nor costlier than its start).
+
+    ``until`` (``time.perf_counter()`` value): pace the schedule by the clock instead: each
+    start follows the same temperatures, heating then cooling, but spread so that it
+    reaches the quench when its share of the time to ``until`` ends (the starts of one
+    thread share it equally); ``sweeps`` is then only the first guess of the pace. A chain
+    sized in sweeps that the deadline cuts short returns a state from the middle of its
+    schedule; a paced chain cools in time even when the machine slows down. The answers
+    then depend on the timing, not on the seed alone.
     """
     t0 = time.perf_counter()
     starts, O = _check(compiled, starts, origin, depth, sweeps, flip_price, max_flips, scale,
@@ -248,7 +263,7 @@ def anneal(compiled: Compiled, starts: np.ndarray, *, depth: float, sweeps: int,
         randomise = float(depth) >= 1.0 and radius >= n
         plan = Plan(int(sweeps), 0 if randomise else int(round(HEAT * sweeps)), tq, tt,
                     float(flip_price), radius, np.uint64(int(seed) & (2 ** 64 - 1)),
-                    randomise, float(scale))
+                    randomise, float(scale), until is not None)
         tol = objective_tol(compiled)
 
         def stop():
@@ -259,9 +274,10 @@ def anneal(compiled: Compiled, starts: np.ndarray, *, depth: float, sweeps: int,
         cuts = np.linspace(0, R, parts + 1).astype(np.int64)
         args = (late, moves, plan, X, O)
         if parts == 1:
-            _block(*args, 0, R, tol, done, stop)
+            _block(*args, 0, R, tol, done, stop, until)
         else:
-            jobs = [thread_pool(parts).submit(_block, *args, int(a), int(b), tol, done, stop)
+            jobs = [thread_pool(parts).submit(_block, *args, int(a), int(b), tol, done, stop,
+                                                 until)
                     for a, b in zip(cuts[:-1], cuts[1:])]
             for j in jobs:
                 j.result()

@@ -491,7 +491,9 @@ def _greedy_stage(compiled, X0, order, *, deadline, first_deadline, max_flips, f
         seconds[batch] = g.seconds
         each = (time.perf_counter() - t) / batch.size
         steps += int(g.steps.sum())
-        rows.update((int(k), g.X[j]) for j, k in enumerate(batch.tolist()) if g.done[j])
+        # a descent the deadline cut short still gives its feasible state (g.partial)
+        rows.update((int(k), g.X[j]) for j, k in enumerate(batch.tolist())
+                    if g.done[j] or g.partial[j])
         if not g.done.all() or (cancel is not None and cancel.is_set()):
             break
         pos, size = pos + size, GREEDY_FIRST_BATCH if pos == 0 else 2 * size
@@ -686,13 +688,20 @@ def kick_masks(rng: np.random.Generator, rows: int, width: int, top: int) -> np.
 
 #: The local-search stage's arms: annealing from the best answers at these turning depths
 #: (bench/anneal_depths.py: 0.15-0.5 paid near good candidates, 0.5-0.7 far from them), and
-#: random kicks each followed by greedy descent. The first rounds try each arm in this order.
-ARMS = (("anneal", 0.3), ("anneal", 0.5), ("anneal", 0.7), ("anneal", 0.15), ("kicks", None))
+#: random kicks each followed by greedy descent. The first rounds try each arm in this order,
+#: and ties of the bandit go to the earlier arm: 0.5 first, the depth whose long chains were
+#: the best or within noise of it on G11 (both events), rand1000 (both) at equal sweeps.
+ARMS = (("anneal", 0.5), ("anneal", 0.3), ("anneal", 0.7), ("anneal", 0.15), ("kicks", None))
 #: Sweeps of an arm's first annealing round (it measures the sweep time).
 FIRST_SWEEPS = 16
-#: A round aims at this share of the stage's time left (but at least ``MIN_ROUND`` s), so
-#: the bandit sees several rounds and a good arm gets longer chains as it keeps paying.
-ROUND_SHARE = 0.2
+#: After the first pass over the arms, each round aims at ``ROUND_GROWTH`` times the last
+#: round's time (at least ``MIN_ROUND`` s); a round that would leave less than itself takes
+#: all that is left. Rounds thus double, and the last takes about half the stage: longer
+#: chains, fewer restarts as the budget grows. (Measured, bench/repair_vs_rerun.py's G11
+#: and rand1000 rows at 0.1 s on one worker timed by CPU: rounds of a fifth of what was
+#: left, shrinking toward the deadline, left G11 a long annealing chain short: -267.7 and
+#: -528.5 mean over 6 seeds on events b and a_weak, against -268.7 and -529.1 doubling.)
+ROUND_GROWTH = 2.0
 MIN_ROUND = 0.005
 
 
@@ -704,6 +713,8 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
 
     Which arm runs is a bandit's choice (UCB1 over ``ARMS``): a round's reward is 1 when it
     lowered the best feasible objective, else 0, so the budget moves to what improves.
+    Rounds grow (``ROUND_GROWTH``): the last ones are long chains, and the last of all
+    (about half the stage) goes to the arm with the best record, without exploration.
     An annealing round runs one chain per worker thread from the best distinct current
     answers (on large models one long chain beat several short ones at equal time), each
     chain attributed to the candidate its start belongs to (flips and price from it). The
@@ -719,19 +730,27 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
     scale = None
     chains = max(1, workers)
     rnd = 0
+    last_round = 0.0
     while not stopped():
         ranked = [int(k) for k in _ranked(feasible, obj) if done[k]]
         if not ranked:
             break
         best_before = min((obj[k] for k in ranked if feasible[k]), default=np.inf)
+        left = deadline - time.perf_counter()
+        want = max(MIN_ROUND, ROUND_GROWTH * last_round)
+        final = left < 2.0 * want
+        if final:  # no stub of a round at the end
+            want = left
+        mean = wins / np.maximum(pulls, 1)
         if rnd < len(ARMS):
             a = rnd
+        elif final:  # exploring is worth nothing in the last round: the best record takes it
+            a = int(np.argmax(mean))
         else:
-            mean = wins / np.maximum(pulls, 1)
             a = int(np.argmax(mean + np.sqrt(2.0 * np.log(rnd) / np.maximum(pulls, 1))))
         kind, depth = ARMS[a]
-        left = deadline - time.perf_counter()
-        round_end = time.perf_counter() + max(MIN_ROUND, ROUND_SHARE * left)
+        round_end = time.perf_counter() + want
+        t_round = time.perf_counter()
         if kind == "kicks":
             _kicks(compiled, X0, cur, obj, feasible, flips, done, out, scorer,
                    deadline=min(round_end, deadline), max_flips=max_flips,
@@ -752,9 +771,12 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
             else:
                 sweeps = FIRST_SWEEPS
             t = time.perf_counter()
+            # paced by the clock (``until``): the chain cools by the round's end even when
+            # the sweeps run slower than measured (a cut chain returns a warm state)
             res = anneal(compiled, cur[order], depth=depth, sweeps=sweeps, seed=seed + rnd,
                          origin=X0[order], flip_price=flip_price, max_flips=max_flips,
-                         scale=scale, workers=workers, deadline=deadline, cancel=cancel)
+                         scale=scale, workers=workers, deadline=deadline, cancel=cancel,
+                         until=None if a not in per_sweep else min(round_end, deadline))
             ran = int(res.sweeps.max(initial=0))
             if ran > 0:
                 per_sweep[a] = max(1e-7, (time.perf_counter() - t) / ran)
@@ -770,6 +792,7 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
                     out.attempts.append(Attempt(k, res.X[pos].copy(), "anneal", each,
                                                 float(new_cost[pos]), 0.0, int(new_flips[pos])))
         best_after = min((obj[k] for k in ranked if feasible[k]), default=np.inf)
+        last_round = time.perf_counter() - t_round
         pulls[a] += 1
         wins[a] += best_after < best_before
         rnd += 1

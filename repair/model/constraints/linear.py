@@ -9,7 +9,7 @@ import numpy as np
 
 from flipfix.repair.documents.fields import number, require, resolve_mapping
 from flipfix.repair.errors import InputError
-from flipfix.repair.lowering.pieces import Pieces, RowSpec, distinct, label_keys
+from flipfix.repair.lowering.pieces import Pieces, RowSpec, distinct, positions
 from flipfix.repair.model.constraints.kind import ConstraintKind
 from flipfix.repair.model.problem import Problem, finite
 from flipfix.repair.model.vartypes import BINARY, change_vartype
@@ -52,13 +52,11 @@ def _terms_at_once(problem: Problem, terms):
     """(positions int64, coefficients float64) of a label -> coefficient mapping without a
     Python call per entry, when every label is a distinct known str / int and every
     coefficient a finite number; None otherwise."""
-    if not label_keys(terms.keys()) or not all(
-            issubclass(t, (int, float, np.integer, np.floating)) and t is not bool
-            for t in set(map(type, terms.values()))):
+    if not all(issubclass(t, (int, float, np.integer, np.floating)) and t is not bool
+               for t in set(map(type, terms.values()))):
         return None
-    try:
-        idx = np.fromiter(map(problem.index.__getitem__, terms.keys()), np.int64, len(terms))
-    except KeyError:
+    idx = positions(problem, terms.keys(), len(terms))
+    if idx is None:
         return None
     coef = np.fromiter(terms.values(), np.float64, len(terms))
     if not np.all(np.isfinite(coef)) or not distinct(idx, problem.n):

@@ -5,7 +5,8 @@ For every candidate, independently and deterministically:
 1. pin the fixed variables;
 2. restore feasibility with the least cost: while a hard row is violated, take
    the flip (or, when no single flip helps, the pair of flips) with the lowest
-   objective change per unit of violation removed;
+   objective change per unit of violation removed (single flips from two tournament
+   trees over the violated rows' members, re-keyed where a flip changes something);
 3. descend: take the feasible single flip with the most negative objective
    change; when none improves, try pair moves (one variable up, one down, both in
    a row that blocks some single flip) so tight and equality rows can still move;
@@ -28,21 +29,23 @@ Modules, one concept each: ``jit`` (how the kernels compile), ``heap`` and ``tou
 candidate's state and a flip's effect), ``start`` (start-up fields), ``qubo`` (the
 pure-QUBO path), ``restore`` (feasibility restore), ``pairs`` (pair moves), ``groups``
 (grouped tournament trees), ``layout`` (the general path's arrays per problem),
-``general`` (the general path), ``driver`` (chunks, threads, budget).
+``general`` (the general path), ``driver`` (chunks, threads, budget; a timer sets the
+kernels' stop flag at the deadline).
 """
 
 from __future__ import annotations
 
 from pathlib import Path
 
-from flipfix.repair.kernels import rows as _rows
+from flipfix.repair.kernels import jit as _jit, rows as _rows
 from flipfix.repair.kernels.cache import drop_stale
 
-# the package's cached kernels hold the code of its modules and of kernels.rows
-drop_stale(Path(__file__).resolve().parent, also=(_rows.__file__,))
+# the package's cached kernels hold the code of its modules and of kernels.rows, compiled
+# with the decorators of kernels.jit
+drop_stale(Path(__file__).resolve().parent, also=(_rows.__file__, _jit.__file__))
 
 from flipfix.repair.kernels.bundles import objective_tol  # noqa: E402
-from flipfix.repair.solvers.greedy.driver import (FIRST_SLICE, GreedyOutput,  # noqa: E402
+from flipfix.repair.solvers.greedy.driver import (GreedyOutput,  # noqa: E402
                                                   greedy_repair, warm_up)
 from flipfix.repair.solvers.greedy.layout import (MAX_GROUP_SHARE, MAX_WIDE,  # noqa: E402
                                                   MIN_GROUPS, WIDE, general_arrays)
@@ -51,4 +54,4 @@ from flipfix.repair.solvers.greedy.start import consensus  # noqa: E402
 
 __all__ = ["GreedyOutput", "greedy_repair", "descend_qubo", "objective_tol", "warm_up",
            "consensus", "general_arrays", "WIDE", "MAX_WIDE", "MAX_GROUP_SHARE", "MIN_GROUPS",
-           "SMALL_START", "FIRST_SLICE"]
+           "SMALL_START"]

@@ -3,17 +3,20 @@
 Builds the kernels' bundles once per call (the problem's arrays are cached on the
 compiled problem), picks the pure-QUBO path (:mod:`~flipfix.repair.solvers.greedy.qubo`)
 or the general one (:mod:`~flipfix.repair.solvers.greedy.general`), and runs chunks of
-candidates, split over threads, until done, the deadline or a cancel (under a deadline,
-in slices of capped steps that resume where they stopped).
+candidates, split over threads, until done, the deadline or a cancel (a timer sets the
+kernels' ``stop`` flag at the deadline: a call ends at its next step).
 """
 
 from __future__ import annotations
 
+import threading
 import time
+from contextlib import contextmanager
 from dataclasses import dataclass
 
 import numpy as np
 
+from flipfix.repair.cancel import CancelToken, as_token
 from flipfix.repair.kernels.batching import thread_pool
 from flipfix.repair.kernels.bundles import late_arrays, objective_tol
 from flipfix.repair.lowering.compiled import Compiled
@@ -24,19 +27,23 @@ from flipfix.repair.solvers.greedy.pairs import pair_lists
 from flipfix.repair.solvers.greedy.qubo import Params, descend_tree, tree_work
 from flipfix.repair.solvers.greedy.start import consensus, start_refs
 
-__all__ = ["GreedyOutput", "greedy_repair", "warm_up", "FIRST_SLICE"]
+__all__ = ["GreedyOutput", "greedy_repair", "warm_up"]
 
 
 @dataclass
 class GreedyOutput:
     """X: int8 (K, n) repaired assignments; steps: int64 (K,) moves taken;
     done: bool (K,) whether the candidate was processed within the budget;
-    seconds: float64 (K,) time spent on each candidate (its chunk's share)."""
+    seconds: float64 (K,) time spent on each candidate (its chunk's share);
+    partial: bool (K,) candidates the deadline or a cancel cut short in their descent,
+    after the restore: their row of X is that feasible state (not a local minimum; every
+    other unfinished row is returned unchanged)."""
 
     X: np.ndarray
     steps: np.ndarray
     done: np.ndarray
     seconds: np.ndarray
+    partial: np.ndarray
 
 
 def _in_parts(run, X: np.ndarray, O: np.ndarray, steps: np.ndarray, workers: int) -> None:
@@ -55,20 +62,20 @@ def _in_parts(run, X: np.ndarray, O: np.ndarray, steps: np.ndarray, workers: int
 
 
 def _kernel_call(compiled: Compiled, anchor: np.ndarray, *, radius: int, flip_price: float,
-                 pair_width: int, max_steps: int):
-    """run(X, O, steps, cap=max_steps): one kernel call, in place on X int8 (rows, n) and
-    steps int64 (rows,), at most ``cap`` moves per candidate, with every bundle that is
-    the same for all chunks built here, once."""
+                 pair_width: int, max_steps: int, stop: np.ndarray):
+    """run(X, O, steps): one kernel call, in place on X int8 (rows, n) and steps int64
+    (rows,), at most ``max_steps`` moves per candidate, with every bundle that is
+    the same for all chunks built here, once. ``stop`` int64 (1,): the kernels end at
+    their next step once it is set (candidates cut short report ``max_steps`` steps)."""
     n = compiled.n
     qubo = late_arrays(compiled).qubo
     refs = start_refs(anchor, qubo)
     tol = float(objective_tol(compiled))
     if not compiled.counts and not compiled.rows and radius >= n:
-        params = Params(float(flip_price), tol, max_steps, radius, False, 1)
+        params = Params(float(flip_price), tol, max_steps, radius, False, 1, stop)
 
-        def run(Xc, Oc, st, cap=max_steps):
-            P = params if cap == max_steps else params._replace(max_steps=int(cap))
-            descend_tree(Xc, Oc, qubo, refs, P, tree_work(n), st)
+        def run(Xc, Oc, st):
+            descend_tree(Xc, Oc, qubo, refs, params, tree_work(n), st)
         return run
     arrays = general_arrays(compiled)
     lay = arrays.layout
@@ -76,15 +83,14 @@ def _kernel_call(compiled: Compiled, anchor: np.ndarray, *, radius: int, flip_pr
     use_groups = groups_pay(lay.groups * par, int((compiled.fixed < 0).sum()))
     base, size = trees_for(lay.members, par, use_groups)
     slots = int(2 * size.sum())
-    params = Params(float(flip_price), tol, max_steps, radius, use_groups, par)
+    params = Params(float(flip_price), tol, max_steps, radius, use_groups, par, stop)
     counts, rows = arrays.counts, arrays.rows
     sizes = (n, counts.cp_const.size, counts.term_pen.size, rows.lo.size, lay.most)
 
-    def run(Xc, Oc, st, cap=max_steps):
-        P = params if cap == max_steps else params._replace(max_steps=int(cap))
+    def run(Xc, Oc, st):
         trees = Trees(np.empty(slots), np.empty(slots, dtype=np.int64), base, size)
         descend_general(Xc, Oc, qubo, counts, rows, lay.narrow, lay.trees, trees, refs,
-                        arrays.bounds, pair_lists(pair_width), P, general_work(*sizes), st)
+                        arrays.bounds, pair_lists(pair_width), params, general_work(*sizes), st)
     return run
 
 
@@ -123,15 +129,73 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
         longest = int(np.diff(compiled.a_indptr).max(initial=1))
         pair_width = max(1, min(32, longest))
     max_steps = 100 * n + 1000
+    stop = np.zeros(1, dtype=np.int64)  # set at the deadline or on cancel: kernels end
     anchor = consensus(X0, compiled.fixed) if anchor is None else anchor
     run = _kernel_call(compiled, np.require(anchor, dtype=np.int8, requirements=["C", "W"]),
                        radius=radius,
-                       flip_price=flip_price, pair_width=int(pair_width), max_steps=max_steps)
+                       flip_price=flip_price, pair_width=int(pair_width), max_steps=max_steps,
+                       stop=stop)
+    partial = np.zeros(K, dtype=bool)
+    with _stopper(stop, deadline, cancel):
+        _chunks(run, compiled, X, O, steps, done, seconds, partial, deadline=deadline,
+                cancel=cancel, chunk=chunk, max_steps=max_steps, workers=workers,
+                progress=progress, stop=stop)
+    return GreedyOutput(X=X, steps=steps, done=done, seconds=seconds, partial=partial)
+
+
+def _feasible(compiled: Compiled, X: np.ndarray) -> np.ndarray:
+    """Whether each row of X int8 (r, n) keeps the fixings and the hard rows (within each
+    row's tolerance, as the kernels count it): bool (r,). O(r x (n + nnz))."""
+    arrays = late_arrays(compiled)
+    fixed, rows = arrays.qubo.fixed, arrays.rows
+    pinned = fixed >= 0
+    ok = (X[:, pinned] == fixed[pinned]).all(axis=1)
+    if rows.lo.size and rows.a_col.size:
+        filled = np.diff(rows.a_ptr) > 0
+        act = np.zeros((X.shape[0], rows.lo.size))
+        act[:, filled] = np.add.reduceat(X[:, rows.a_col] * rows.a_val, rows.a_ptr[:-1][filled],
+                                         axis=1)
+        over = np.maximum(rows.lo - act, act - rows.hi)
+        ok &= (over <= rows.rtol).all(axis=1)
+    elif rows.lo.size:
+        ok &= ((rows.lo <= rows.rtol) & (-rows.hi <= rows.rtol)).all()
+    return ok
+
+
+@contextmanager
+def _stopper(stop: np.ndarray, deadline: float | None, cancel):
+    """Set ``stop[0]`` when ``deadline`` (a ``time.perf_counter()`` value) passes (a
+    timer thread) or ``cancel`` (a CancelToken or Event) is set, while the block runs: a
+    kernel call then ends at its next step instead of at its step cap."""
+
+    def fire():
+        stop[0] = 1
+
+    timer = None
+    if deadline is not None:
+        timer = threading.Timer(max(0.0, deadline - time.perf_counter()), fire)
+        timer.daemon = True
+        timer.start()
+    try:
+        # a plain Event is followed by a waiting thread: only up to a deadline
+        if isinstance(cancel, CancelToken) or (cancel is not None and deadline is not None):
+            with as_token(cancel).subscribed(fire, timeout=None if deadline is None else
+                                             max(0.0, deadline - time.perf_counter())):
+                yield
+        else:
+            yield
+    finally:
+        if timer is not None:
+            timer.cancel()
+
+
+def _chunks(run, compiled, X, O, steps, done, seconds, partial, *, deadline, cancel, chunk,
+            max_steps, workers, progress, stop):
+    """The chunk loop of :func:`greedy_repair` (in place on X, steps, done, seconds)."""
+    K = X.shape[0]
     start = 0
     size = 1 if deadline is not None else chunk  # with a deadline: measure one, then fit
     per_cand = 0.0  # measured seconds per candidate
-    pace = [0.0, 0, 0.0]  # with a deadline: seconds and steps of the kernel calls so far,
-    # and the shortest call's seconds
     while start < K:
         if cancel is not None and cancel.is_set():
             break
@@ -148,12 +212,20 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
         st = np.zeros(Xc.shape[0], dtype=np.int64)
         if deadline is None:
             _in_parts(run, Xc, O[sl], st, workers)
-            finished = np.ones(Xc.shape[0], dtype=bool)
+            # cut short by a cancel: those report max_steps
+            finished = st < max_steps if stop[0] else np.ones(Xc.shape[0], dtype=bool)
         else:
-            finished = _in_slices(run, Xc, O[sl], st, workers, deadline, max_steps, pace,
-                                  cancel)
+            finished = _until(run, Xc, O[sl], st, workers, deadline, cancel, stop, max_steps)
         per_cand = (time.perf_counter() - t0) / Xc.shape[0]
-        X[sl] = np.where(finished[:, None], Xc, X[sl])  # unfinished: returned unchanged
+        cut = np.flatnonzero(~finished)
+        if cut.size:  # cut short in the descent (feasible): kept; others returned unchanged
+            kept = _feasible(compiled, Xc[cut])
+            partial[sl][cut[kept]] = True
+            keep = finished.copy()
+            keep[cut[kept]] = True
+        else:
+            keep = finished
+        X[sl] = np.where(keep[:, None], Xc, X[sl])
         steps[sl] = np.where(finished, st, 0)
         done[sl] = finished
         seconds[sl] = per_cand
@@ -161,49 +233,19 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
             progress(int(done.sum()), K)
         if not finished.all():
             break
-    return GreedyOutput(X=X, steps=steps, done=done, seconds=seconds)
 
 
-#: steps per candidate of the first kernel call under a deadline, before any pace is known:
-#: a step of the feasibility phase scans every free variable (5-50 ms at 100,000 variables
-#: with a wide row, by the machine's load), so 16 steps once overran a 1 s budget by 0.5 s
-FIRST_SLICE = 2
-
-
-def _in_slices(run, X, O, steps, workers, deadline, max_steps, pace, cancel) -> np.ndarray:
-    """:func:`_in_parts` under a deadline: each kernel call is capped at the steps that fit
-    in half of what is left (at the pace measured so far, ``pace`` = [seconds, steps,
-    shortest call's seconds], updated), and candidates that reach the cap continue from
-    where they stopped (a descent depends only on its current state) until they finish or
-    the deadline passes. No call starts when less is left than the shortest call took (a
-    call's start-up, O(n) per candidate, is paid whatever its cap). Returns which rows
-    finished (bool (rows,)); ``steps`` gets their steps."""
+def _until(run, X, O, steps, workers, deadline, cancel, stop, max_steps) -> np.ndarray:
+    """:func:`_in_parts` under a deadline: one kernel call, which the ``stop`` flag (set by
+    the driver's timer at the deadline, or by a cancel) ends at its next step; candidates
+    it cut short or never reached report ``max_steps`` steps. No call starts past the
+    deadline. Returns which rows finished (bool (rows,)); ``steps`` gets their steps."""
     rows = X.shape[0]
-    live = np.arange(rows)
-    per_part = -(-rows // max(1, min(workers, rows)))  # candidates one thread descends
-    while live.size:
-        left = deadline - time.perf_counter()
-        if left <= pace[2] or (cancel is not None and cancel.is_set()):
-            break
-        if pace[1] > 0:
-            fit = 0.5 * left * pace[1] / max(pace[0], 1e-9) / per_part
-            cap = int(min(max_steps, max(FIRST_SLICE, fit)))
-        else:
-            cap = min(max_steps, FIRST_SLICE)
-        sub = X[live]
-        st = np.zeros(live.size, dtype=np.int64)
-        t = time.perf_counter()
-        _in_parts(lambda a, b, c: run(a, b, c, cap), sub, O[live], st, workers)
-        took = time.perf_counter() - t
-        pace[0] += took
-        pace[2] = took if pace[2] == 0.0 else min(pace[2], took)
-        pace[1] += int(st.sum()) // max(1, min(workers, live.size))
-        X[live] = sub
-        steps[live] += st
-        live = live[st >= cap] if cap < max_steps else live[:0]
-    finished = np.ones(rows, dtype=bool)
-    finished[live] = False
-    return finished
+    if (deadline - time.perf_counter() <= 0.0 or stop[0]
+            or (cancel is not None and cancel.is_set())):
+        return np.zeros(rows, dtype=bool)
+    _in_parts(run, X, O, steps, workers)
+    return steps < max_steps
 
 
 _WARM = False

@@ -18,7 +18,7 @@ from flipfix.repair.solvers.greedy.groups import (best_group_top, drain_trees, f
                                                   init_trees, narrow_view, rekey_all)
 from flipfix.repair.solvers.greedy.jit import entry
 from flipfix.repair.solvers.greedy.pairs import best_pair
-from flipfix.repair.solvers.greedy.restore import restore
+from flipfix.repair.solvers.greedy.restore import RestoreWork, init_restore, restore, restore_work
 from flipfix.repair.solvers.greedy.start import init_field, route
 from flipfix.repair.solvers.greedy.state import State, eval_flip, fresh_counts, leave
 
@@ -32,7 +32,8 @@ class Work(NamedTuple):
     zeros: the candidate's :class:`~flipfix.repair.solvers.greedy.state.State` arrays;
     free int64 (n,): the free variables; found int64 (n,); todo int64 (most,): a flip's
     re-key list; adcount int64 (P,), asat int64 (T,), aact float64 (m,): the anchor's
-    counts, term states and activities.
+    counts, term states and activities; rw: the restore's
+    :class:`~flipfix.repair.solvers.greedy.restore.RestoreWork`.
     """
 
     field: np.ndarray
@@ -46,6 +47,7 @@ class Work(NamedTuple):
     adcount: np.ndarray
     asat: np.ndarray
     aact: np.ndarray
+    rw: RestoreWork
 
 
 def general_work(n: int, P: int, T: int, m: int, most: int) -> Work:
@@ -53,7 +55,7 @@ def general_work(n: int, P: int, T: int, m: int, most: int) -> Work:
     return Work(np.empty(n), np.empty(P, dtype=i64), np.empty(T, dtype=i64), np.empty(m),
                 np.zeros(P, dtype=i64), np.empty(n, dtype=i64), np.empty(n, dtype=i64),
                 np.empty(most, dtype=i64), np.empty(P, dtype=i64), np.empty(T, dtype=i64),
-                np.empty(m))
+                np.empty(m), restore_work(n, P, T, m))
 
 
 @entry
@@ -89,7 +91,12 @@ def descend_general(X, origin, Q, C, R, maps, groups, T, refs, bounds, lists, P,
     narrow = narrow_view(C, R, maps)
     fresh_counts(anchor, C, R, adcount, asat, aact)
     init_trees(T, groups, P.par)
+    init_restore(work.rw, C, R)
+    stop = P.stop
     for k in range(K):
+        if stop[0] != 0:  # cut short: this and the later candidates are unfinished
+            steps_out[k] = max_steps
+            continue
         x = X[k]
         o = origin[k]
         S = State(x, o, field, dcount, sat, act, work.dd)
@@ -117,15 +124,18 @@ def descend_general(X, origin, Q, C, R, maps, groups, T, refs, bounds, lists, P,
         else:
             fresh_counts(x, C, R, dcount, sat, act)
         # ---- phase 1: restore feasibility at least cost per unit of violation
-        steps, dist, viol = restore(S, dist, Q, C, R, free, nfree, P)
+        steps, dist, viol = restore(S, dist, Q, C, R, free, nfree, P, work.rw)
         if viol > 0.0:
-            steps_out[k] = steps
+            steps_out[k] = max_steps if stop[0] != 0 else steps
             continue
         # ---- phase 2: feasible steepest descent, single flips then pair moves
         if P.use_groups:
             drain_trees(T, found)
             rekey_all(S, narrow, groups, T, P, fixed)
         while steps < max_steps:
+            if stop[0] != 0:
+                steps = max_steps
+                break
             if P.use_groups:
                 best, bi = best_group_top(S, dist, T, groups, C, R, P)
             else:

@@ -34,8 +34,11 @@ class Params(NamedTuple):
     """A call's scalars: price float (per flip away from the candidate), tol float (the
     least change counted as an improvement), max_steps int (moves per candidate), radius
     int (the most flips from the candidate), use_groups bool (single flips from the grouped
-    trees), par int (2 when a radius splits each group by the flip's direction, else 1).
-    The pure-QUBO descent reads the first three."""
+    trees), par int (2 when a radius splits each group by the flip's direction, else 1),
+    stop int64 (1,): set non-zero (by the driver's deadline timer or a cancel, while a
+    kernel runs) to end the call at the next step; the candidates it cuts short report
+    ``max_steps`` steps (unfinished). The pure-QUBO descent reads price, tol, max_steps and
+    stop."""
 
     price: float
     tol: float
@@ -43,6 +46,7 @@ class Params(NamedTuple):
     radius: int
     use_groups: bool
     par: int
+    stop: np.ndarray
 
 
 class TreeWork(NamedTuple):
@@ -83,7 +87,10 @@ def _heap_descent(x, o, field, Q, P, found, cnt, heap, stamp):
         i = found[c]
         size = push(heap, size, delta(x, o, field, price, i), i, stamp[i])
     steps = 0
+    stop = P.stop
     while steps < P.max_steps and size > 0:
+        if stop[0] != 0:
+            return P.max_steps
         i = hi[0]
         if hs[0] != stamp[i] or hv[0] >= -tol:  # stale entry (or no improvement): drop it
             size = pop(heap, size)
@@ -126,7 +133,11 @@ def descend_tree(X, origin, Q, refs, P, work, steps_out):
     pinned = 0
     for i in range(n):
         pinned += fixed[i] >= 0
+    stop = P.stop
     for k in range(K):
+        if stop[0] != 0:  # cut short: this and the later candidates are unfinished
+            steps_out[k] = max_steps
+            continue
         x = X[k]
         o = origin[k]
         if pinned:
@@ -147,6 +158,9 @@ def descend_tree(X, origin, Q, refs, P, work, steps_out):
             tree_set(tkey, titem, b0, N, i, delta(x, o, field, price, i))
         steps = 0
         while steps < max_steps and tkey[1] < -tol:
+            if stop[0] != 0:
+                steps = max_steps
+                break
             i = titem[1]
             s = 1.0 - 2.0 * x[i]  # +1 for 0 -> 1
             x[i] = 1 - x[i]
@@ -179,6 +193,7 @@ def descend_qubo(h, indptr, indices, data, X0, *, fixed=None, flip_price: float 
     qubo = Qubo(np.ascontiguousarray(h, np.float64), np.ascontiguousarray(indptr, np.int64),
                 unsigned(indices), np.ascontiguousarray(data, np.float64), fixed)
     anchor = consensus(X, fixed)
-    params = Params(float(flip_price), float(tol), int(max_steps or 100 * n + 1000), n, False, 1)
+    params = Params(float(flip_price), float(tol), int(max_steps or 100 * n + 1000), n, False, 1,
+                    np.zeros(1, dtype=np.int64))
     descend_tree(X, origin, qubo, start_refs(anchor, qubo), params, tree_work(n), steps)
     return X, steps
