@@ -26,6 +26,11 @@ every candidate's repaired cost and flips and the best answer equal the local ru
 Dask run is faster. Also measured: the bytes broadcast once per worker (late problem +
 library + anchor, pickled). Quick mode: 2,000 candidates (the smallest library that
 goes to the cluster by default: 4,000,000 bits).
+
+The PostgreSQL store's write locks (third table; skipped without PostgreSQL): a server
+started like the tests' (tests/pg_server.py), one store, 4 threads each committing 50
+batches of 5 candidates (16 variables), all to one problem, then each to its own problem:
+acknowledged commits per second (fsync on). Check: 4 problems commit faster than one.
 """
 
 from __future__ import annotations
@@ -94,6 +99,7 @@ def run(*, quick: bool = False, seed: int = 0, log=print) -> dict:
         repair_section = _large_repair(cluster, quick=quick, seed=seed, log=log)
     finally:
         cluster.close()
+    store_section = _store_locks(log=log)
     same = dask_rep.cost == reports[1].cost and dask_rep.flips == reports[1].flips
     base = rows[0]["seconds"]
     for r in rows:
@@ -110,7 +116,63 @@ def run(*, quick: bool = False, seed: int = 0, log=print) -> dict:
         "faster": rows[2]["seconds"] < rows[0]["seconds"],
         "same": same,
         "repair": repair_section,
+        "store": store_section,
     }
+
+
+def _store_locks(*, log, writers: int = 4, batches: int = 50) -> dict | None:
+    """Commits per second of ``writers`` threads on one problem, then on one each."""
+    import sys
+    import threading
+    from pathlib import Path
+
+    from flipfix.repair import Problem
+    from flipfix.service.store import Store
+
+    sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
+    try:
+        from pg_server import PostgresServer
+
+        server = PostgresServer().start()
+    except Exception as exc:  # noqa: BLE001 - no PostgreSQL here: the table is skipped
+        log(f"store locks skipped: {exc}")
+        return None
+    labels = [f"x{i}" for i in range(16)]
+    problem = Problem.from_terms({lab: 1.0 for lab in labels},
+                                 [(labels[i], labels[i + 1], 1.0) for i in range(15)],
+                                 vartype="BINARY")
+    X = np.zeros((5, 16), dtype=np.int8)
+
+    def rate(store, names) -> float:
+        def write(name):
+            for _ in range(batches):
+                store.add_candidates(name, 1, [""] * 5, X, [{}] * 5)
+        threads = [threading.Thread(target=write, args=(name,)) for name in names]
+        t = time.perf_counter()
+        for th in threads:
+            th.start()
+        for th in threads:
+            th.join()
+        return len(names) * batches / (time.perf_counter() - t)
+
+    try:
+        store = Store(server.new_database())
+        try:
+            for k in range(writers):
+                store.create_problem(f"p{k}", problem)
+            log(f"store locks: {writers} writers on one problem, then on {writers}")
+            rows = [{"writers": writers, "problems": 1,
+                     "commits/s": rate(store, ["p0"] * writers)},
+                    {"writers": writers, "problems": writers,
+                     "commits/s": rate(store, [f"p{k}" for k in range(writers)])}]
+        finally:
+            store.close()
+    finally:
+        server.stop()
+    for r in rows:
+        r["ratio"] = r["commits/s"] / rows[0]["commits/s"]
+    rows[1]["target"] = "PASS" if rows[1]["ratio"] > 1.0 else "MISS"
+    return {"rows": rows}
 
 
 def _audit_figures(res) -> tuple:
@@ -178,7 +240,12 @@ def render(section: dict) -> str:
         f"\n- Dask answers equal the local 1-thread answers: "
         f"{'PASS' if section['same'] else 'MISS'}"
         f"\n- 2 Dask workers faster than the local 1-thread run: "
-        f"{'PASS' if section['faster'] else 'MISS'}") + _render_repair(section.get("repair"))
+        f"{'PASS' if section['faster'] else 'MISS'}") + _render_repair(section.get("repair")) + (
+        "\n\n" + table(section["store"]["rows"], ["writers", "problems", "commits/s", "ratio",
+                                                   "target"],
+                        title="PostgreSQL store: acknowledged commits per second, one problem "
+                              "vs one problem per writer (target: faster)")
+        if section.get("store") else "")
 
 
 def _render_repair(rep: dict | None) -> str:
