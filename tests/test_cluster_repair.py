@@ -246,3 +246,34 @@ def test_a_server_with_dask_repairs_like_the_core(tmp_path):
         assert got["best"]["cost"] == pytest.approx(ref.best.cost, abs=1e-9)
     finally:
         srv.shutdown(grace=1.0)
+
+
+def test_a_server_whose_cluster_has_no_workers_answers_unavailable(tmp_path):
+    """The repair runs in a pool worker of the server; the cluster's TransientError comes
+    back whole and the RPC answers UNAVAILABLE (retry), and the server keeps serving."""
+    import grpc
+    from distributed import LocalCluster
+
+    from flipfix.service.client import FlipfixClient
+    from flipfix.service.server import create_server
+
+    problem, cands, late = _library(n=20, k=10)
+    empty = LocalCluster(n_workers=0, processes=True, host="127.0.0.1",
+                         dashboard_address="127.0.0.1:0")
+    srv = create_server("127.0.0.1:0", db_path=str(tmp_path / "db.sqlite3"), workers=1,
+                        queue_size=2, dask=empty.scheduler_address)
+    try:
+        srv.servicer.dask_runner.min_bits = 0
+        with FlipfixClient(srv.address, timeout=120.0) as fx:
+            fx.create_problem("m", problem)
+            fx.add_candidates("m", cands)
+            with pytest.raises(grpc.RpcError) as err:
+                fx.repair("m", constraints_document(late), method="greedy", time_limit=30)
+            assert err.value.code() == grpc.StatusCode.UNAVAILABLE
+            assert "no workers" in err.value.details()
+            srv.servicer.dask_runner.min_bits = 10**12  # small libraries stay local again
+            assert fx.repair("m", constraints_document(late), method="greedy",
+                             time_limit=30)["best"]["feasible"] in (True, False)
+    finally:
+        srv.shutdown(grace=1.0)
+        empty.close()
