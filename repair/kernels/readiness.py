@@ -2,8 +2,10 @@
 
 numba compiles the search kernels (greedy, scoring, annealing) on their first use and
 caches the machine code on disk (``__pycache__`` beside the modules, or
-``NUMBA_CACHE_DIR``). On a machine's first run that compilation takes about a minute;
-it is set-up, never part of a repair's budget, and it never runs silently:
+``NUMBA_CACHE_DIR``). On a machine's first run that compilation takes
+:data:`EXPECTED_COLD_SECONDS` on two cores (a helper process compiles part of the kernels
+while this one compiles the rest); it is set-up, never part of a repair's budget, and it
+never runs silently:
 
 * :func:`is_cached` says, without compiling anything, whether a previous
   :func:`warm_up` on this machine left every kernel in the cache (a stamp beside the
@@ -12,7 +14,9 @@ it is set-up, never part of a repair's budget, and it never runs silently:
   makes it False);
 * :func:`warm_up` loads (or compiles) every kernel once per process; when the cache is
   cold it first calls ``notice`` with a one-line message that gives the expected time
-  (:data:`EXPECTED_COLD_SECONDS`), and writes the stamp when it is done.
+  (:data:`EXPECTED_COLD_SECONDS`), and writes the stamp when it is done. Processes that
+  share a cache (the server's pool workers) take turns: one compiles, the others wait on
+  a file lock beside the cache and then load.
 
 Entry points (the CLI's ``repair``, ``audit`` and ``demo``, the server's workers) call
 :func:`warm_up` before any budget clock starts; :func:`flipfix.repair.api.repair` calls it
