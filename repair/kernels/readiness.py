@@ -147,8 +147,6 @@ SEARCH = ("greedy", "scoring", "annealing")
 
 
 def _warm_family(name: str) -> None:
-    import importlib
-
     importlib.import_module(FAMILIES[name]).warm_up()
 
 
