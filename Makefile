@@ -11,9 +11,8 @@ $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
 	$(BIN)/pip install --quiet --upgrade pip
 	$(BIN)/pip install --quiet -e '.[test]'
-	@echo "compiling the search kernels (once per machine; cached beside the kernel modules)"
-	$(BIN)/python -c "from flipfix.repair.api import warm_up; warm_up()"
-	$(BIN)/python -c "from flipfix.repair.grow.neighbours import warm_up; warm_up()"
+	@echo "compiling the search and growing kernels (once per machine, on two cores; cached beside the kernel modules)"
+	$(BIN)/python -c "from flipfix.repair.kernels.readiness import warm_up; warm_up(grow=True)"
 	touch $(STAMP)
 
 demo: $(STAMP)

@@ -217,8 +217,11 @@ class FlipfixClient:
                 if reply.status == health_pb2.HealthCheckResponse.SERVING:
                     return
                 if notice is not None:
+                    from flipfix.repair.kernels.readiness import EXPECTED_COLD_SECONDS
+
                     notice(f"flipfix: waiting for {self.target}: the server is loading its "
-                           f"search kernels (a first run compiles them, about a minute)")
+                           f"search kernels (a first run compiles them, about "
+                           f"{EXPECTED_COLD_SECONDS:.0f} s on 2 cores)")
                     notice = None
         except grpc.RpcError as err:
             if err.code() == grpc.StatusCode.DEADLINE_EXCEEDED:
