@@ -248,6 +248,18 @@ def anneal(compiled: Compiled, starts: np.ndarray, *, depth: float, sweeps: int,
     t0 = time.perf_counter()
     starts, O = _check(compiled, starts, origin, depth, sweeps, flip_price, max_flips, scale,
                        workers)
+    X, done = _sweep_rows(compiled, starts, O, depth=depth, sweeps=sweeps, seed=seed,
+                          flip_price=flip_price, max_flips=max_flips, scale=scale,
+                          workers=workers, deadline=deadline, until=until, cancel=cancel)
+    g = greedy_repair(compiled, X, origin=O, max_flips=max_flips, flip_price=float(flip_price),
+                      workers=int(workers), deadline=deadline, cancel=cancel)
+    return AnnealOutput(X=g.X, sweeps=done, seconds=time.perf_counter() - t0)
+
+
+def _sweep_rows(compiled: Compiled, starts: np.ndarray, O: np.ndarray, *, depth, sweeps,
+                seed, flip_price, max_flips, scale, workers, deadline, until, cancel):
+    """The Metropolis part of :func:`anneal` (checked arguments): (X int8 (R, n) the
+    states it leaves, sweeps int64 (R,) done per start)."""
     R, n = starts.shape
     X = starts.copy()
     pinned = compiled.fixed >= 0
@@ -281,17 +293,18 @@ def anneal(compiled: Compiled, starts: np.ndarray, *, depth: float, sweeps: int,
                     for a, b in zip(cuts[:-1], cuts[1:])]
             for j in jobs:
                 j.result()
-    g = greedy_repair(compiled, X, origin=O, max_flips=max_flips, flip_price=float(flip_price),
-                      workers=int(workers), deadline=deadline, cancel=cancel)
-    return AnnealOutput(X=g.X, sweeps=done, seconds=time.perf_counter() - t0)
+    return X, done
 
 
 _WARM = False
 
 
-def warm_up() -> None:
+def warm_up(*, greedy_pass: bool = True) -> None:
     """Compile (or load from numba's on-disk cache) the annealing kernels on a tiny model
-    with every kind of late structure, once per process."""
+    with every kind of late structure, once per process. ``greedy_pass`` False: the
+    Metropolis kernels only, not the greedy pass that ends an anneal (a process that
+    fills the cache beside another one compiling greedy; this process is then not marked
+    warm)."""
     global _WARM
     if _WARM:
         return
@@ -307,5 +320,9 @@ def warm_up() -> None:
         LinearConstraint({0: 1, 1: 1}, "==", 1), LinearConstraint({2: 1, 3: 2}, "<=", 2),
         FixVariables({3: 0})])
     X0 = np.zeros((2, 4), dtype=np.int8)
+    if not greedy_pass:
+        _sweep_rows(comp, X0, X0.copy(), depth=0.5, sweeps=2, seed=0, flip_price=0.1,
+                    max_flips=3, scale=None, workers=1, deadline=None, until=None, cancel=None)
+        return
     anneal(comp, X0, depth=0.5, sweeps=2, seed=0, max_flips=3, flip_price=0.1)
     _WARM = True
