@@ -91,20 +91,31 @@ class Cluster:
 
 def connect(text: str, *, field: str = "dask", timeout: float = 30.0) -> Cluster:
     """Connect to a scheduler, or start ``local:N`` (N single-threaded worker processes
-    on 127.0.0.1; its HTTP status page on a free loopback port)."""
+    on 127.0.0.1; its HTTP status page on a free loopback port). Returns once every worker
+    has the search kernels loaded (:mod:`flipfix.service.cluster_warm`); workers that join
+    later load them as they join."""
     address, n = parse_address(text, field=field)
     try:
         from distributed import Client, LocalCluster
     except ImportError:
         raise InputError(field, "needs Dask distributed: pip install 'flipfix[cluster]'") from None
+    from flipfix.service.cluster_warm import register
+
     if n:
         local = LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
                              host="127.0.0.1", dashboard_address="127.0.0.1:0")
-        return Cluster(Client(local, timeout=timeout), local)
+        cluster = Cluster(Client(local, timeout=timeout), local)
+    else:
+        try:
+            cluster = Cluster(Client(address, timeout=timeout))
+        except (OSError, TimeoutError) as exc:
+            raise TransientError("dask", f"scheduler {address} not reachable: {exc}") from exc
     try:
-        return Cluster(Client(address, timeout=timeout))
-    except (OSError, TimeoutError) as exc:
-        raise TransientError("dask", f"scheduler {address} not reachable: {exc}") from exc
+        register(cluster.client)  # kernels loaded in every worker before its first task
+    except BaseException:
+        cluster.close()
+        raise
+    return cluster
 
 
 _CLIENTS: dict[str, Cluster] = {}  # scheduler address -> Cluster, in this process

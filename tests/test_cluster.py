@@ -51,6 +51,25 @@ def _model(n: int = 40, k: int = 24, seed: int = 5):
     return problem, CandidateSet.from_array(problem, bits)
 
 
+def _kernels_warm() -> bool:
+    from flipfix.repair.kernels.readiness import is_warm
+
+    return is_warm()
+
+
+def test_every_worker_has_the_kernels_loaded_before_its_first_task(cluster):
+    """connect() returns once each worker process has run warm_up (a worker plugin), so
+    no repair chunk or scenario pays for loading the kernels inside its budget; a worker
+    that joins later loads them as it joins."""
+    assert cluster.client.run(_kernels_warm) and all(cluster.client.run(_kernels_warm).values())
+    if cluster.local is not None:
+        cluster.local.scale(3)
+        cluster.client.wait_for_workers(3, timeout=120)
+        flags = cluster.client.run(_kernels_warm)
+        assert len(flags) == 3 and all(flags.values())
+        cluster.local.scale(2)
+
+
 def test_dask_answers_equal_the_serial_run(cluster):
     problem, cands = _model()
     family = ScenarioFamily(fix_k=3, hamming_weight=2.0)
