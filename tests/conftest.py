@@ -48,3 +48,17 @@ def postgres():
         yield server
     finally:
         server.stop()
+
+
+@pytest.fixture(scope="module")
+def cluster():
+    """A local Dask cluster (2 single-threaded worker processes on loopback), one per test
+    module that asks for it."""
+    pytest.importorskip("distributed")
+    from flipfix.service.cluster import connect
+
+    c = connect("local:2")
+    try:
+        yield c
+    finally:
+        c.close()

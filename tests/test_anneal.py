@@ -220,12 +220,19 @@ def test_slicing_does_not_change_the_answers():
     np.testing.assert_array_equal(results[0], results[1])
 
 
-def test_scale_invariance_model_times_ten():
+def _model_and_times_ten(rows: int):
+    """The late model of ``_sparse(150, 8)``, the same with every weight x10, and ``rows``
+    greedy-repaired random starts: (compiled, compiled x10, starts int8 (rows, 150))."""
     p1, cs1 = _sparse(150, 8)
     p10, cs10 = _sparse(150, 8, factor=10.0)
     c1, c10 = compile_constraints(p1, cs1), compile_constraints(p10, cs10)
-    starts = greedy_repair(c1, np.random.default_rng(2).integers(0, 2, (5, 150)).astype(
+    starts = greedy_repair(c1, np.random.default_rng(2).integers(0, 2, (rows, 150)).astype(
         np.int8)).X
+    return c1, c10, starts
+
+
+def test_scale_invariance_model_times_ten():
+    c1, c10, starts = _model_and_times_ten(5)
     assert flip_scale(c10, starts) == 10.0 * flip_scale(c1, starts)
     for depth in (0.4, 1.0):
         a = anneal(c1, starts, depth=depth, sweeps=60, seed=3, flip_price=0.5)
@@ -355,11 +362,7 @@ def _timed_run(comp, starts, sweeps, seed):
 
 
 def test_timed_plan_unpaced_runs_its_sweeps_and_is_scale_invariant():
-    p1, cs1 = _sparse(150, 8)
-    p10, cs10 = _sparse(150, 8, factor=10.0)
-    c1, c10 = compile_constraints(p1, cs1), compile_constraints(p10, cs10)
-    starts = greedy_repair(c1, np.random.default_rng(2).integers(0, 2, (3, 150)).astype(
-        np.int8)).X
+    c1, c10, starts = _model_and_times_ten(3)
     X1, done = _timed_run(c1, starts, 40, 5)
     X10, _ = _timed_run(c10, starts, 40, 5)
     assert (done == 40).all()  # phase 0, 1/39, ..., 1: forty sweeps, the last at the quench

@@ -29,15 +29,6 @@ from flipfix.service.errors import TransientError  # noqa: E402
 cloudpickle.register_pickle_by_value(sys.modules[__name__])
 
 
-@pytest.fixture(scope="module")
-def cluster():
-    c = connect("local:2")
-    try:
-        yield c
-    finally:
-        c.close()
-
-
 def _model(n: int = 40, k: int = 24, seed: int = 5):
     rng = np.random.default_rng(seed)
     linear = {f"x{i}": float(rng.integers(-20, 21)) for i in range(n)}

@@ -35,15 +35,6 @@ from flipfix.service.errors import TransientError  # noqa: E402
 cloudpickle.register_pickle_by_value(sys.modules[__name__])
 
 
-@pytest.fixture(scope="module")
-def cluster():
-    c = connect("local:2")
-    try:
-        yield c
-    finally:
-        c.close()
-
-
 def _library(n: int = 60, k: int = 300, seed: int = 3):
     """A random sparse QUBO with real-valued weights, random candidates, and late
     constraints that make every candidate move: a cardinality row and a Hamming penalty."""
