@@ -107,3 +107,43 @@ def test_portfolio_keeps_the_local_search_answer_when_it_is_best():
     assert res.best.cost <= greedy.best.cost
     assert "local_rounds" in res.stats and sum(res.stats["local_rounds"].values()) >= 1
     assert res.best.cost >= BEST_KNOWN - 1e-9
+
+
+def _timed_stage(problem, X0, *, seconds: float, seed: int = 0):
+    """The stage for ``seconds`` with no cancel: (out, [(time, report)] of every round)."""
+    compiled = compile_constraints(problem, [])
+    K = X0.shape[0]
+    g = greedy_repair(compiled, X0)
+    scorer = Scorer(compiled, X0)
+    cost, viol, flips = scorer.near(g.X, np.arange(K))
+    out = P.PlanOutcome(attempts=[])
+    seen = []
+    t0 = time.perf_counter()
+    P._local_search(compiled, X0, g.X.copy(), cost.copy(), viol == 0.0, flips,
+                    np.ones(K, dtype=bool), out, scorer, deadline=t0 + seconds,
+                    max_flips=None, flip_price=0.0, seed=seed, cancel=None, workers=1,
+                    report=lambda **kw: seen.append((time.perf_counter(), kw)))
+    return out, [t - t0 for t, _ in seen]
+
+
+def test_a_model_short_of_sweeps_gets_one_long_chain_after_the_first_pass(monkeypatch):
+    """When a chain could run at most LONG_CHAIN_SWEEPS sweeps in what is left, the rest of
+    the stage is one round at an annealing arm, as soon as a round of RATE_SWEEPS or more
+    has measured the pace; without the rule the rounds keep doubling."""
+    p = _bqp250()
+    X0 = np.random.default_rng(5).integers(0, 2, (6, p.n)).astype(np.int8)
+    monkeypatch.setattr(P, "LONG_CHAIN_SWEEPS", 10 ** 12)  # every model is short of sweeps
+    out, ends = _timed_stage(p, X0, seconds=0.6)
+    rounds = sum(out.stats["local_rounds"].values())
+    # the first pass, at most two rounds until one ran RATE_SWEEPS sweeps, then the long one
+    assert rounds <= len(P.ARMS) + 2
+    assert ends[-1] - ends[-2] > 0.5 * ends[-1]  # the last round took most of the stage
+    monkeypatch.setattr(P, "LONG_CHAIN_SWEEPS", 0)  # never short: doubling rounds
+    out2, _ = _timed_stage(p, X0, seconds=0.6)
+    assert sum(out2.stats["local_rounds"].values()) > rounds
+
+
+def test_short_of_sweeps_counts_at_the_fastest_measured_pace():
+    left = 1.0
+    assert P._short_of_sweeps({0: left / P.LONG_CHAIN_SWEEPS}, left)
+    assert not P._short_of_sweeps({0: 1.0, 2: 0.5 * left / P.LONG_CHAIN_SWEEPS}, left)

@@ -710,6 +710,21 @@ MIN_ROUND = 0.005
 #: G11 b / a_weak and rand1000 b / a_weak at T = 0.1 s means of -264.7 / -527.5 / -45640 /
 #: -56772.8 against -262.3 / -526.6 / -45624 / -56761.8 (6 runs each, interleaved).
 EXPLORE_SHARE = 0.1
+#: After the first pass over the arms, when one chain could run at most this many sweeps in
+#: the time the stage has left, the rest of the stage is one round (one chain per worker) at
+#: the best annealing arm: such models are short of sweeps, and a chain gains more from
+#: being longer than from the restarts that doubling rounds would buy. Measured (quiet
+#: machine, bench/repair_vs_rerun.py's models at T = 5 s, 3 seeds each, means): rand20000
+#: a_weak (about 23,000 sweeps left) -1,125,071 as one round against -1,124,858 doubling
+#: (the re-run: -1,125,029); G67 a_weak (about 40,000) -6,512.3 against -6,513.7, the same
+#: within noise. 5 seeds at T = 0.1 s: G67 a_weak -6,432.3 against -6,422.1, G11 b -268.6
+#: against -268.4, rand1000 a_weak -56,784.1 against -56,785.6; rand5000 b at 5 s (about
+#: 98,000 sweeps left) keeps doubling. 1 s, 3 seeds: rand20000 a_weak -1,125,021 against
+#: -1,124,765, b -922,787 against -922,665.
+LONG_CHAIN_SWEEPS = 50_000
+#: Fewest sweeps of a round whose pace that rule trusts (a 16-sweep first round is mostly
+#: fixed costs: it measured 2-3 times the time per sweep of a long chain).
+RATE_SWEEPS = 64
 
 
 def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *, deadline,
@@ -721,7 +736,10 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
     Which arm runs is a bandit's choice (UCB1 over ``ARMS``): a round's reward is 1 when it
     lowered the best feasible objective, else 0, so the budget moves to what improves.
     Rounds grow (``ROUND_GROWTH``): the last ones are long chains, and the last of all
-    (about half the stage) goes to the arm with the best record, without exploration.
+    (about half the stage) goes to the arm with the best record, without exploration. A
+    model short of sweeps (``LONG_CHAIN_SWEEPS``: large models, short budgets) gets one
+    long round at the best annealing arm as soon as the first pass is over and a round has
+    measured the pace.
     An annealing round runs one chain per worker thread from the best distinct current
     answers (on large models one long chain beat several short ones at equal time), each
     chain attributed to the candidate its start belongs to (flips and price from it). The
@@ -734,6 +752,7 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
     pulls = np.zeros(len(ARMS))
     wins = np.zeros(len(ARMS))
     per_sweep = {}  # arm -> measured seconds per sweep of one chain
+    sweep_only = {}  # arm -> the same, the Metropolis sweeps alone (no greedy pass, no scoring)
     scale = None
     chains = max(1, workers)
     rnd = 0
@@ -757,6 +776,9 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
                 explored = float(rnd)  # the arms not tried yet sit out this stage
         if rnd < len(ARMS) and explored < 0.0:
             a = rnd
+        elif sweep_only and _short_of_sweeps(sweep_only, left):
+            final, want = True, left  # one long chain per worker at the best annealing arm
+            a = max(sweep_only, key=lambda i: (mean[i], -i))
         elif final:  # exploring is worth nothing in the last round: the best record takes it
             a = int(np.argmax(np.where(pulls > 0, mean, -np.inf)))
         else:
@@ -794,6 +816,8 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
             ran = int(res.sweeps.max(initial=0))
             if ran > 0:
                 per_sweep[a] = max(1e-7, (time.perf_counter() - t) / ran)
+                if ran >= RATE_SWEEPS:  # long enough for its fixed costs not to count
+                    sweep_only[a] = max(1e-9, res.sweep_seconds / ran)
             new_cost, new_viol, new_flips = scorer.near(res.X, order)
             new_obj = new_cost + flip_price * new_flips
             inside = np.ones(len(order), bool) if max_flips is None else new_flips <= max_flips
@@ -814,6 +838,12 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
                best_cost=None if not np.isfinite(best_after) else float(best_after))
     out.stats["local_rounds"] = {_arm_name(arm): int(n) for arm, n in zip(ARMS, pulls) if n}
     out.stats["local_wins"] = {_arm_name(arm): int(w) for arm, w in zip(ARMS, wins) if w}
+
+
+def _short_of_sweeps(per_sweep: dict, left: float) -> bool:
+    """Whether one chain at the fastest measured annealing arm (seconds per sweep, by arm)
+    could run at most ``LONG_CHAIN_SWEEPS`` sweeps in ``left`` seconds."""
+    return left / min(per_sweep.values()) <= LONG_CHAIN_SWEEPS
 
 
 def _arm_name(arm) -> str:
