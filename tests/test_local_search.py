@@ -147,3 +147,21 @@ def test_short_of_sweeps_counts_at_the_fastest_measured_pace():
     left = 1.0
     assert P._short_of_sweeps({0: left / P.LONG_CHAIN_SWEEPS}, left)
     assert not P._short_of_sweeps({0: 1.0, 2: 0.5 * left / P.LONG_CHAIN_SWEEPS}, left)
+
+
+def test_a_hedged_round_is_each_group_annealed_at_its_own_depth():
+    """_anneal_at with two depths gives, group by group, exactly what a plain anneal call
+    at that group's depth and seed gives (seeded chains: the threads do not matter)."""
+    from flipfix.repair.solvers.anneal import anneal
+
+    p = _bqp250()
+    compiled = compile_constraints(p, [])
+    X = greedy_repair(compiled, np.random.default_rng(9).integers(0, 2, (4, p.n)).astype(
+        np.int8)).X
+    kw = dict(sweeps=200, flip_price=0.0, max_flips=None, scale=None, deadline=None,
+              cancel=None, until=None)
+    both = P._anneal_at(compiled, X, depths=[0.3, 1.0], workers=2, seed=5, origin=X, **kw)
+    low = anneal(compiled, X[:2], depth=0.3, workers=1, seed=5, origin=X[:2], **kw)
+    high = anneal(compiled, X[2:], depth=1.0, workers=1, seed=5 + 7919, origin=X[2:], **kw)
+    assert np.array_equal(both.X, np.vstack([low.X, high.X]))
+    assert both.sweeps.tolist() == [200] * 4
