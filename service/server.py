@@ -47,6 +47,7 @@ from flipfix.repair.errors import InputError
 
 from flipfix.service import prepared, upload_jobs
 # the margins are re-exported: the deadline's figures as the server applies them
+from flipfix.service.collector import settle
 from flipfix.service.deadlines import (MARGIN_FIXED, MARGIN_MAX, MARGIN_SHARE,  # noqa: F401
                                         MIN_BUDGET, NO_DEADLINE, STOP_SHARE, deadline_at,
                                         deadline_budget, deadline_margin, time_left)
@@ -752,4 +753,5 @@ def create_server(address: str = "127.0.0.1:0", config: ServerConfig | None = No
     srv = RunningServer(server, port, servicer, health_servicer, pool, store, drain)
     srv.tokens = tokens
     srv.cluster = cluster
+    settle()  # the server's structures are built: later collections skip them
     return srv

@@ -110,6 +110,9 @@ def _warm() -> int:
         repair(p, cands, late, method="portfolio", time_limit=0.5)
     except Exception:  # noqa: BLE001 - warming is best effort
         pass
+    from flipfix.service.collector import settle
+
+    settle()  # what the worker keeps is loaded: later collections skip it
     return os.getpid()
 
 
