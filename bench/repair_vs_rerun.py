@@ -454,14 +454,6 @@ def run(*, quick: bool = False, seed: int = 0, log=print) -> dict:
                 f"{rerun.penalty:g}; {rerun.overhead * 1e3:.1f} ms + "
                 f"{rerun.per_sweep * 1e6:.1f} us/sweep")
             for T in cfg["budgets"]:
-                cp = {}
-                limit10 = 10 * T if cfg["cp10_cap"] is None else min(10 * T, cfg["cp10_cap"])
-                for key, S in (("T", T), ("10T", limit10)):
-                    t = time.perf_counter()
-                    r = solve_cpsat(comp, hint=None, time_limit=S, workers=WORKERS, seed=seed)
-                    cp[key] = {"cost": _score(comp, r.x), "d": _dist(r.x, mdl.plan),
-                               "wall": time.perf_counter() - t, "status": r.status,
-                               "limit": S}
                 t = time.perf_counter()
                 res = repair(p, cands, sc.constraints, time_limit=T, workers=WORKERS,
                              seed=seed)
@@ -470,6 +462,22 @@ def run(*, quick: bool = False, seed: int = 0, log=print) -> dict:
                       "wall": wall}
                 sa = rerun.run(T)
                 sa["d"] = _dist(sa["x"], mdl.plan)
+                # CP-SAT last, then one lowering of the late model thrown away: right after a
+                # CP-SAT search on a large model the first numpy-heavy call of the process ran
+                # 20 times slower (lowering 20,000 variables: 25-54 ms against 1.3-1.5 ms,
+                # with or without a pause or the garbage collector, no page faults; the
+                # second call at full speed; cause not found). The full run of 2026-12-03
+                # (CP-SAT first) lost up to half of a 0.1 s budget to it at 5,000-20,000
+                # variables: the side measured right after the reference paid for it
+                cp = {}
+                limit10 = 10 * T if cfg["cp10_cap"] is None else min(10 * T, cfg["cp10_cap"])
+                for key, S in (("T", T), ("10T", limit10)):
+                    t = time.perf_counter()
+                    r = solve_cpsat(comp, hint=None, time_limit=S, workers=WORKERS, seed=seed)
+                    cp[key] = {"cost": _score(comp, r.x), "d": _dist(r.x, mdl.plan),
+                               "wall": time.perf_counter() - t, "status": r.status,
+                               "limit": S}
+                compile_constraints(p, sc.constraints)  # takes the slow first call (above)
                 row = {"model": name, "n": p.n, "event": ename, "T s": T,
                        "flipfix": ff["cost"], "d": ff["d"], "wall/T": wall / T,
                        "SA": sa["cost"], "d SA": sa["d"], "SA wall/T": sa["wall"] / T,

@@ -34,14 +34,19 @@ def _bqp250():
     return read_bqp(BQP250)
 
 
+def _repaired(problem, X0):
+    """(compiled, greedy output, scorer, cost, violation, flips) of greedy repair of X0."""
+    compiled = compile_constraints(problem, [])
+    g = greedy_repair(compiled, X0)
+    scorer = Scorer(compiled, X0)
+    return (compiled, g, scorer, *scorer.near(g.X, np.arange(X0.shape[0])))
+
+
 def _stage(problem, X0, *, rounds: int, workers: int = 1, seed: int = 0):
     """Run the stage on the greedy-repaired X0 until ``rounds`` rounds have reported (a
     cancel set from the progress callback: event-driven, not timed)."""
-    compiled = compile_constraints(problem, [])
+    compiled, g, scorer, cost, viol, flips = _repaired(problem, X0)
     K = X0.shape[0]
-    g = greedy_repair(compiled, X0)
-    scorer = Scorer(compiled, X0)
-    cost, viol, flips = scorer.near(g.X, np.arange(K))
     out = P.PlanOutcome(attempts=[])
     cancel = threading.Event()
     seen = []
@@ -110,12 +115,10 @@ def test_portfolio_keeps_the_local_search_answer_when_it_is_best():
 
 
 def _timed_stage(problem, X0, *, seconds: float, seed: int = 0):
-    """The stage for ``seconds`` with no cancel: (out, [(time, report)] of every round)."""
-    compiled = compile_constraints(problem, [])
+    """The stage for ``seconds`` with no cancel: (out, seconds at which each round
+    reported)."""
+    compiled, g, scorer, cost, viol, flips = _repaired(problem, X0)
     K = X0.shape[0]
-    g = greedy_repair(compiled, X0)
-    scorer = Scorer(compiled, X0)
-    cost, viol, flips = scorer.near(g.X, np.arange(K))
     out = P.PlanOutcome(attempts=[])
     seen = []
     t0 = time.perf_counter()
