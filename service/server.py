@@ -46,8 +46,8 @@ from flipfix.repair.model.candidates import CandidateSet
 from flipfix.repair.errors import InputError
 
 from flipfix.service import prepared, upload_jobs
-# the margins are re-exported: the deadline's figures as the server applies them
 from flipfix.service.collector import settle
+# the margins are re-exported: the deadline's figures as the server applies them
 from flipfix.service.deadlines import (MARGIN_FIXED, MARGIN_MAX, MARGIN_SHARE,  # noqa: F401
                                         MIN_BUDGET, NO_DEADLINE, STOP_SHARE, deadline_at,
                                         deadline_budget, deadline_margin, time_left)

@@ -89,8 +89,8 @@ SCALE_FLIPS = 200_000
 class AnnealOutput:
     """X int8 (R, n): final states, after the quench and the greedy pass; sweeps int64
     (R,): sweeps actually run per start (fewer than asked when stopped); seconds: the
-    call's wall time, greedy pass included; sweep_seconds: the Metropolis sweeps' part of
-    it."""
+    call's wall time, greedy pass included; sweep_seconds: its part before the greedy pass
+    (the argument checks and the Metropolis sweeps)."""
 
     X: np.ndarray
     sweeps: np.ndarray
