@@ -168,3 +168,65 @@ def test_a_hedged_round_is_each_group_annealed_at_its_own_depth():
     high = anneal(compiled, X[2:], depth=1.0, workers=1, seed=5 + 7919, origin=X[2:], **kw)
     assert np.array_equal(both.X, np.vstack([low.X, high.X]))
     assert both.sweeps.tolist() == [200] * 4
+
+
+def _portfolio(problem, X0, monkeypatch, *, reserve: float, time_limit: float = 0.5):
+    """repair(method="portfolio") with ANNEAL_RESERVE set; records every _anneal_at call's
+    (number of starts, depths)."""
+    calls = []
+    inner = P._anneal_at
+
+    def spy(compiled, starts, **kw):
+        calls.append((starts.shape[0], list(kw["depths"])))
+        return inner(compiled, starts, **kw)
+
+    monkeypatch.setattr(P, "ANNEAL_RESERVE", reserve)
+    monkeypatch.setattr(P, "_anneal_at", spy)
+    res = repair(problem, CandidateSet.from_array(problem, X0), [], method="portfolio",
+                 time_limit=time_limit, seed=0, workers=2)
+    return res, calls
+
+
+def test_the_greedy_stage_leaves_the_search_its_reserve_of_sweeps(monkeypatch):
+    """A reserve longer than any budget stops the greedy stage after the first candidate
+    (the rest are reported as they are, 'unrepaired'), and both chains then start from that
+    one answer; with no reserve every candidate is repaired. Every reported cost is
+    recomputed by dimod."""
+    p = _bqp250()
+    X0 = np.random.default_rng(21).integers(0, 2, (12, p.n)).astype(np.int8)
+    bqm = p.to_bqm()
+    res, calls = _portfolio(p, X0, monkeypatch, reserve=1e9)
+    assert res.stats["greedy_done"] == 1
+    methods = list(res.audit.method)
+    assert methods.count("unrepaired") == X0.shape[0] - 1
+    assert calls and all(n == 2 for n, _ in calls)  # one answer, two chains from it
+    assert res.best.feasible and res.best.cost >= BEST_KNOWN - 1e-9
+    full, _ = _portfolio(p, X0, monkeypatch, reserve=0.0)
+    assert full.stats["greedy_done"] == X0.shape[0]
+    assert "unrepaired" not in list(full.audit.method)
+    for r in (res, full):
+        assert bqm.energies(([r.best.x], list(range(p.n))))[0] == pytest.approx(r.best.cost)
+
+
+def test_a_stage_short_of_probe_sweeps_skips_the_first_pass(monkeypatch):
+    """With time for at most NO_EXPLORE_SWEEPS probe sweeps, the first round is the long
+    hedged one (the first arm and HEDGE_DEPTH), not a probe of the first arm alone."""
+    p = _bqp250()
+    X0 = np.random.default_rng(22).integers(0, 2, (6, p.n)).astype(np.int8)
+    monkeypatch.setattr(P, "NO_EXPLORE_SWEEPS", 10 ** 12)
+    _, calls = _portfolio(p, X0, monkeypatch, reserve=0.0)
+    assert calls[0][1] == [P.ARMS[0][1], max(P.ARMS[0][1], P.HEDGE_DEPTH)]
+    monkeypatch.setattr(P, "NO_EXPLORE_SWEEPS", 0)
+    _, calls = _portfolio(p, X0, monkeypatch, reserve=0.0)
+    assert calls[0][1] == [P.ARMS[0][1]]  # the first pass: one depth per round
+
+
+def test_sweep_pace_leaves_its_state_as_it_was():
+    from flipfix.repair.solvers.anneal import sweep_pace
+
+    p = _bqp250()
+    compiled = compile_constraints(p, [])
+    x = np.random.default_rng(4).integers(0, 2, p.n).astype(np.int8)
+    keep = x.copy()
+    assert sweep_pace(compiled, x) > 0.0
+    assert np.array_equal(x, keep)

@@ -69,7 +69,7 @@ from flipfix.repair.kernels.metropolis import Moves, Plan, advance, flip_changes
 from flipfix.repair.lowering.compiled import Compiled
 from flipfix.repair.solvers.greedy import greedy_repair
 
-__all__ = ["AnnealOutput", "anneal", "flip_scale", "temperatures", "warm_up",
+__all__ = ["AnnealOutput", "anneal", "flip_scale", "sweep_pace", "temperatures", "warm_up",
            "T_QUENCH", "T_FULL", "HEAT"]
 
 #: Quench temperature, in units of scale (see the module docstring).
@@ -298,6 +298,19 @@ def _sweep_rows(compiled: Compiled, starts: np.ndarray, O: np.ndarray, *, depth,
             for j in jobs:
                 j.result()
     return X, done
+
+
+def sweep_pace(compiled: Compiled, x: np.ndarray, *, sweeps: int = 2) -> float:
+    """Seconds one Metropolis sweep over the free variables takes, measured on state x
+    (int8 (n,)): ``sweeps`` sweeps at depth 0.5 and the model's scale at x, the chain's
+    set-up included (so a little more than a sweep of a long chain)."""
+    X = _states(compiled, np.asarray(x).reshape(1, -1), "x")
+    scale = flip_scale(compiled, X)
+    t = time.perf_counter()
+    _sweep_rows(compiled, X, X.copy(), depth=0.5, sweeps=sweeps, seed=0, flip_price=0.0,
+                max_flips=None, scale=scale, workers=1, deadline=None, until=None,
+                cancel=None)
+    return max(1e-9, (time.perf_counter() - t) / max(1, sweeps))
 
 
 _WARM = False

@@ -5,7 +5,8 @@ candidate it started from); :mod:`flipfix.repair.api` scores them and builds the
 
 Portfolio, within a budget of T seconds:
 
-1. greedy repair of every candidate, best-ranked first (it may use up to 60% of T);
+1. greedy repair of every candidate, best-ranked first (it may use up to 60% of T, and
+   leaves the local search time for at least ``ANNEAL_RESERVE`` sweeps);
 2. local search from the best repaired answers — a share ``Mix.kicks`` of what is left:
    rounds of annealing that starts at an answer, heats to a turning depth and cools back
    (classical reverse annealing, :mod:`flipfix.repair.solvers.anneal`), or of random kicks
@@ -362,6 +363,12 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
     # most promising candidates first, so a short budget is spent where it pays most
     cost, viol = scorer.cost[:K].copy(), scorer.violation[:K].copy()
     first = _ranked(viol == 0.0, cost)
+    then, probe = None, {}
+    if method == "portfolio" and mix.kicks > 0.0:
+        def then(x):  # the later batches leave the search ANNEAL_RESERVE probe sweeps
+            from flipfix.repair.solvers.anneal import sweep_pace
+            probe["pace"] = sweep_pace(compiled, x)
+            return deadline - ANNEAL_RESERVE * probe["pace"]
     flips = np.zeros(K, dtype=np.int64)
     if stopped():  # nothing starts after the deadline: the candidates stay as they are
         out.stats["greedy_done"] = out.stats["greedy_moves"] = 0
@@ -370,7 +377,7 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
                                          first_deadline=deadline,
                                          max_flips=max_flips, flip_price=flip_price,
                                          cancel=cancel, workers=workers, report=report,
-                                         runner=runner)
+                                         runner=runner, then=then)
     fin = np.fromiter(rows, np.int64, len(rows))  # the candidates greedy repaired
     done = np.zeros(K, dtype=bool)
     done[fin] = True
@@ -407,7 +414,8 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
     local_deadline = time.perf_counter() + local_share * left
     _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer,
                   deadline=local_deadline, max_flips=max_flips, flip_price=flip_price,
-                  seed=seed, cancel=cancel, workers=workers, report=report)
+                  seed=seed, cancel=cancel, workers=workers, report=report,
+                  pace=probe.get("pace"))
     if stopped():
         return out
     order = [int(k) for k in _ranked(feasible, obj) if done[k]]
@@ -452,18 +460,43 @@ def _search(compiled: Compiled, X0: np.ndarray, out: PlanOutcome, cp: _LazyCpsat
     return out
 
 
+#: Once the first candidate is repaired, a short probe times a Metropolis sweep from its
+#: answer (:func:`flipfix.repair.solvers.anneal.sweep_pace`: two sweeps and a chain's
+#: set-up, 1.7-3.4x a long chain's sweep on bench/repair_vs_rerun.py's models), and the
+#: greedy stage's later batches end in time to leave the search at least this many probe
+#: sweeps. The local search only starts from the few best answers; on a large model at a
+#: short budget, repairing the rest of the library took the sweeps the answer needed.
+#: Measured (quiet machine, T = 0.1 s, means of 6-10 seeds, against the stage repairing
+#: all 50 candidates): rand20000 b -921,464 against -919,742 (the re-run: -920,677 and
+#: -921,247 in two full runs), G67 a_weak -6,444 against -6,427, G67 b -3,338 against
+#: -3,318, rand20000 c -1,123,246 against -1,120,910; rand5000 and the small models the
+#: same within noise. The candidates it does not reach are reported as they are
+#: ("unrepaired"); from 1 s on every candidate of these models is repaired.
+ANNEAL_RESERVE = 300
+#: When the search's time holds at most this many probe sweeps, the local search skips its
+#: first pass over the arms (probes whose fixed costs are most of a short stage) and runs
+#: one long round at the first arm, hedged (``HEDGE_DEPTH``). Measured (T = 0.1 s, 16
+#: seeds, means, against the first pass): G67 a_weak -6,455.4 against -6,439.4, G67 b
+#: -3,347.9 against -3,337.3, rand20000 a_weak -1,123,312 against -1,123,143; rand20000 b
+#: -920,919 against -921,139 and rand5000 b -231,983.6 against -231,983.8 (within noise).
+NO_EXPLORE_SWEEPS = 500
+
+
 #: candidates in the first greedy batch; each next batch is twice the last
 GREEDY_FIRST_BATCH = 16
 
 
 def _greedy_stage(compiled, X0, order, *, deadline, first_deadline, max_flips, flip_price,
-                  cancel, workers, report, runner=None):
+                  cancel, workers, report, runner=None, then=None):
     """Greedy repair of the candidates X0[order] in that order: the first alone until
     ``first_deadline`` (the whole search's: with no repaired answer nothing else can start
     from one), then the others in batches of doubling size (from ``GREEDY_FIRST_BATCH``;
     at most what half of the time left fits at the last batch's pace) until ``deadline``:
     each batch's set-up (its copies, its consensus) is paid only for candidates the time
-    reaches. Returns ({candidate: repaired x int8 (n,)} of those
+    reaches. ``then`` (optional): called with the first candidate's repaired x once it is
+    done; the later batches end by the earlier of its answer (a ``time.perf_counter()``
+    value) and ``deadline`` (a stage on ``runner`` does not call it). Returns
+    ({candidate: repaired x int8 (n,)} of those
     repaired, seconds float64 (K,) spent on each, total steps). Every batch starts from one
     anchor, so the answers do not depend on the batches; a large library goes to ``runner``."""
     anchor = consensus(X0[order[:ANCHOR_ROWS]], compiled.fixed)
@@ -496,6 +529,8 @@ def _greedy_stage(compiled, X0, order, *, deadline, first_deadline, max_flips, f
                     if g.done[j] or g.partial[j])
         if not g.done.all() or (cancel is not None and cancel.is_set()):
             break
+        if pos == 0 and then is not None:
+            deadline = min(deadline, then(g.X[0]))
         pos, size = pos + size, GREEDY_FIRST_BATCH if pos == 0 else 2 * size
     return rows, seconds, steps
 
@@ -736,7 +771,7 @@ RATE_SWEEPS = 64
 
 
 def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *, deadline,
-                  max_flips, flip_price, seed, cancel, workers, report):
+                  max_flips, flip_price, seed, cancel, workers, report, pace=None):
     """Rounds of annealing from the best answers (classical reverse annealing,
     :func:`flipfix.repair.solvers.anneal.anneal`) or of kicks (:func:`_kicks`) until
     ``deadline``, in place on each candidate's current answer ``cur`` and its scores.
@@ -747,9 +782,12 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
     (about half the stage) goes to the arm with the best record, without exploration. A
     model short of sweeps (``LONG_CHAIN_SWEEPS``: large models, short budgets) gets one
     long round at the best annealing arm as soon as the first pass is over and a round has
-    measured the pace.
+    measured the pace; given ``pace`` (seconds per sweep of the probe of
+    :func:`flipfix.repair.solvers.anneal.sweep_pace`) and time for at most
+    ``NO_EXPLORE_SWEEPS`` of them, that round is the first and only one.
     An annealing round runs one chain per worker thread from the best distinct current
-    answers (on large models one long chain beat several short ones at equal time), each
+    answers (the best again when there are fewer; on large models one long chain beat
+    several short ones at equal time), each
     chain attributed to the candidate its start belongs to (flips and price from it). The
     temperature unit is the model's own (:func:`flipfix.repair.solvers.anneal.flip_scale`
     of the starts), measured once. Records rounds and wins per arm in ``out.stats``.
@@ -782,7 +820,10 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
             spent = time.perf_counter() - t_stage
             if rnd > 0 and spent > EXPLORE_SHARE * (deadline - t_stage):
                 explored = float(rnd)  # the arms not tried yet sit out this stage
-        if rnd < len(ARMS) and explored < 0.0:
+        if rnd == 0 and pace is not None and left / pace <= NO_EXPLORE_SWEEPS:
+            final, want, a = True, left, 0
+            per_sweep[0] = pace  # a first guess: the chains are paced by the clock
+        elif rnd < len(ARMS) and explored < 0.0:
             a = rnd
         elif sweep_only and _short_of_sweeps(sweep_only, left):
             final, want = True, left  # one long chain per worker at the best annealing arm
@@ -808,6 +849,8 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
                     order.append(k)
                 if len(order) == chains:
                     break
+            # fewer distinct answers than chains: the best again (each chain its own stream)
+            order = [order[i % len(order)] for i in range(chains)]
             if scale is None:
                 scale = flip_scale(compiled, cur[order])
             if a in per_sweep:
