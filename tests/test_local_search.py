@@ -230,3 +230,14 @@ def test_sweep_pace_leaves_its_state_as_it_was():
     keep = x.copy()
     assert sweep_pace(compiled, x) > 0.0
     assert np.array_equal(x, keep)
+
+
+def test_answers_read_and_write_like_the_rows_of_a_library_array():
+    X = np.arange(12, dtype=np.int8).reshape(3, 4)
+    a = P.Answers(np.array([7, 2, 5]), X.copy())
+    assert np.array_equal(a[2], X[1])
+    assert np.array_equal(a[[5, 7]], X[[2, 0]])
+    a[np.int64(5)] = np.zeros(4, dtype=np.int8)
+    assert not a[5].any() and np.array_equal(a[7], X[0])
+    with pytest.raises(KeyError):
+        a[3]

@@ -300,17 +300,20 @@ def _sweep_rows(compiled: Compiled, starts: np.ndarray, O: np.ndarray, *, depth,
     return X, done
 
 
-def sweep_pace(compiled: Compiled, x: np.ndarray, *, sweeps: int = 2) -> float:
+def sweep_pace(compiled: Compiled, x: np.ndarray, *, sweeps: int = 2,
+               deadline: float | None = None) -> float:
     """Seconds one Metropolis sweep over the free variables takes, measured on state x
-    (int8 (n,)): ``sweeps`` sweeps at depth 0.5 and the model's scale at x, the chain's
-    set-up included (so a little more than a sweep of a long chain)."""
+    (int8 (n,), left as it is): ``sweeps`` sweeps at depth 0.5 and the model's scale at x,
+    the chain's set-up included (so a little more than a sweep of a long chain). A
+    ``deadline`` (``time.perf_counter()`` value) cuts the probe after its sweep in progress;
+    the time is then divided by the sweeps done (at least one)."""
     X = _states(compiled, np.asarray(x).reshape(1, -1), "x")
     scale = flip_scale(compiled, X)
     t = time.perf_counter()
-    _sweep_rows(compiled, X, X.copy(), depth=0.5, sweeps=sweeps, seed=0, flip_price=0.0,
-                max_flips=None, scale=scale, workers=1, deadline=None, until=None,
-                cancel=None)
-    return max(1e-9, (time.perf_counter() - t) / max(1, sweeps))
+    _, done = _sweep_rows(compiled, X, X.copy(), depth=0.5, sweeps=sweeps, seed=0,
+                          flip_price=0.0, max_flips=None, scale=scale, workers=1,
+                          deadline=deadline, until=None, cancel=None)
+    return max(1e-9, (time.perf_counter() - t) / max(1, int(done[0])))
 
 
 _WARM = False
