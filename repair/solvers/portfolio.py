@@ -485,12 +485,13 @@ class Answers:
 #: greedy stage's later batches end in time to leave the search at least this many probe
 #: sweeps. The local search only starts from the few best answers; on a large model at a
 #: short budget, repairing the rest of the library took the sweeps the answer needed.
-#: Measured (quiet machine, T = 0.1 s, means of 6-10 seeds, against the stage repairing
-#: all 50 candidates): rand20000 b -921,464 against -919,742 (the re-run: -920,677 and
-#: -921,247 in two full runs), G67 a_weak -6,444 against -6,427, G67 b -3,338 against
-#: -3,318, rand20000 c -1,123,246 against -1,120,910; rand5000 and the small models the
-#: same within noise. The candidates it does not reach are reported as they are
-#: ("unrepaired"); from 1 s on every candidate of these models is repaired.
+#: Measured (quiet machine, T = 0.1 s, against no reserve, i.e. all 50 candidates
+#: repaired; 8 seeds): rand20000 b -921,192 against -919,742 (the re-run: -920,677 and
+#: -921,247 in two full runs), G67 a_weak -6,443.3 against -6,424.8, G67 b -3,338.5 against
+#: -3,317.6; 6 seeds: rand20000 c -1,123,246 against -1,120,910; rand5000 and the small
+#: models the same within noise. The candidates it does not reach are reported as they are
+#: ("unrepaired"); from 1 s on every candidate of bench/repair_vs_rerun.py's models is
+#: repaired (at 100,000 variables, 1 s, only the first: bench/RESULTS.md).
 ANNEAL_RESERVE = 300
 #: When the search's time holds at most this many probe sweeps, the local search skips its
 #: first pass over the arms (probes whose fixed costs are most of a short stage) and runs
