@@ -388,3 +388,70 @@ def test_paced_anneal_ends_cold_at_until_whatever_the_guess(guess):
     assert ok.all() and ev.feasible.all()
     np.testing.assert_allclose(ev.cost, cost, rtol=0, atol=1e-9)
     assert (cost >= optimum - 1e-9).all()
+
+
+# ------------------------------------------------------------- a part of the model
+def _plain_qubo(n: int, seed: int) -> Problem:
+    """Random sparse integer QUBO (~4 neighbours a variable), no rows nor decisions."""
+    rng = np.random.default_rng(seed)
+    quad = {}
+    for _ in range(2 * n):
+        i, j = rng.choice(n, 2, replace=False)
+        quad[(int(min(i, j)), int(max(i, j)))] = float(rng.integers(-10, 11))
+    return Problem.from_terms({i: float(rng.integers(-5, 6)) for i in range(n)},
+                              [(i, j, w) for (i, j), w in quad.items()], labels=range(n))
+
+
+def _sweeps_only(comp, starts, **kw):
+    """The Metropolis part of anneal alone (no greedy pass afterwards)."""
+    X, done = A._sweep_rows(comp, starts, starts.copy(), depth=0.8, sweeps=30, seed=4,
+                            flip_price=0.0, max_flips=None, scale=None, workers=2,
+                            deadline=None, until=None, cancel=None, **kw)
+    return X, done
+
+
+def test_within_sweeps_only_that_part_and_all_of_it_is_the_whole_model():
+    p = _plain_qubo(300, 2)
+    comp = compile_constraints(p, [FixVariables({0: 1})])
+    starts = np.random.default_rng(3).integers(0, 2, (4, p.n)).astype(np.int8)
+    starts[:, 0] = 1
+    part = np.arange(0, 300, 3)
+    X, done = _sweeps_only(comp, starts, within=part)
+    outside = np.setdiff1d(np.arange(p.n), part)
+    np.testing.assert_array_equal(X[:, outside], starts[:, outside])
+    assert (X[:, part] != starts[:, part]).any() and (done == 30).all()
+    whole, _ = _sweeps_only(comp, starts, within=np.arange(p.n))  # the fixed 0 drops out
+    plain, _ = _sweeps_only(comp, starts)
+    np.testing.assert_array_equal(whole, plain)
+    out = anneal(comp, starts, depth=0.8, sweeps=30, seed=4, within=part)
+    assert comp.evaluate(out.X).feasible.all()  # the greedy pass after it as usual
+
+
+@pytest.mark.parametrize("within", [np.array([[1, 2]]), np.array([0, 400]), np.array([0.5])])
+def test_bad_within_names_the_field(within):
+    p = _plain_qubo(300, 2)
+    comp = compile_constraints(p, [])
+    with pytest.raises(InputError) as e:
+        anneal(comp, np.zeros((1, p.n), np.int8), depth=0.5, sweeps=2, seed=0, within=within)
+    assert e.value.field == "within"
+
+
+def test_disagreement_is_where_rows_differ_grown_by_qubo_neighbours():
+    """Neighbours from dimod's adjacency of the same model, not from flipfix's arrays."""
+    p = _plain_qubo(200, 5)
+    comp = compile_constraints(p, [FixVariables({7: 0})])
+    X = np.random.default_rng(1).integers(0, 2, (3, p.n)).astype(np.int8)
+    X[:] = X[0]
+    X[0, 7] = 0
+    X[1:, 7] = 1  # a fixed variable: never in the part
+    X[1, [10, 20]] ^= 1
+    X[2, 30] ^= 1
+    assert A.disagreement(comp, X[:1]).size == 0
+    np.testing.assert_array_equal(A.disagreement(comp, X, ring=0), [10, 20, 30])
+    adj = p.to_bqm().adj
+    want = {10, 20, 30} | {int(v) for u in (10, 20, 30) for v in adj[u]}
+    want.discard(7)
+    np.testing.assert_array_equal(A.disagreement(comp, X, ring=1), sorted(want))
+    two = set(want) | {int(v) for u in want for v in adj[u]}
+    two.discard(7)
+    np.testing.assert_array_equal(A.disagreement(comp, X, ring=2), sorted(two))

@@ -17,7 +17,7 @@ import dimod
 import numpy as np
 import pytest
 
-from flipfix.repair import CandidateSet, repair
+from flipfix.repair import CandidateSet, Problem, repair
 from flipfix.repair.documents.instances import read_bqp
 from flipfix.repair.kernels.scores import Scorer
 from flipfix.repair.lowering.compiled import compile_constraints
@@ -114,7 +114,7 @@ def test_portfolio_keeps_the_local_search_answer_when_it_is_best():
     assert res.best.cost >= BEST_KNOWN - 1e-9
 
 
-def _timed_stage(problem, X0, *, seconds: float, seed: int = 0):
+def _timed_stage(problem, X0, *, seconds: float, seed: int = 0, workers: int = 1):
     """The stage for ``seconds`` with no cancel: (out, seconds at which each round
     reported)."""
     compiled, g, scorer, cost, viol, flips = _repaired(problem, X0)
@@ -124,7 +124,7 @@ def _timed_stage(problem, X0, *, seconds: float, seed: int = 0):
     t0 = time.perf_counter()
     P._local_search(compiled, X0, g.X.copy(), cost.copy(), viol == 0.0, flips,
                     np.ones(K, dtype=bool), out, scorer, deadline=t0 + seconds,
-                    max_flips=None, flip_price=0.0, seed=seed, cancel=None, workers=1,
+                    max_flips=None, flip_price=0.0, seed=seed, cancel=None, workers=workers,
                     report=lambda **kw: seen.append((time.perf_counter(), kw)))
     return out, [t - t0 for t, _ in seen]
 
@@ -241,3 +241,29 @@ def test_answers_read_and_write_like_the_rows_of_a_library_array():
     assert not a[5].any() and np.array_equal(a[7], X[0])
     with pytest.raises(KeyError):
         a[3]
+
+
+def test_a_long_last_round_ends_on_the_part_its_chains_disagree_on(monkeypatch):
+    """Two chains (two workers) in a long last round: its second part anneals the variables
+    their answers disagree on with their neighbours (on a random sparse model of 3,000
+    variables: some of them, not all); every answer kept is reported at its true cost
+    (dimod's energies of the same model). Below FOCUS_MIN_SWEEPS there is no second part."""
+    rng = np.random.default_rng(4)
+    n = 3000
+    ij = rng.integers(0, n, (2 * n, 2))
+    ij = ij[ij[:, 0] != ij[:, 1]]
+    p = Problem.from_terms({i: float(rng.integers(-3, 4)) for i in range(n)},
+                           [(int(i), int(j), float(rng.choice([-2.0, -1.0, 1.0, 2.0])))
+                            for i, j in ij], labels=range(n))
+    X0 = rng.integers(0, 2, (4, n)).astype(np.int8)
+    monkeypatch.setattr(P, "LONG_CHAIN_SWEEPS", 10 ** 12)  # one long last round
+    monkeypatch.setattr(P, "FOCUS_MIN_SWEEPS", 1)
+    out, _ = _timed_stage(p, X0, seconds=0.3, workers=2)
+    parts = out.stats["focus_parts"]
+    assert len(parts) == 1 and 0 < parts[0] < n
+    bqm = p.to_bqm()
+    for a in out.attempts:
+        assert abs(bqm.energy(dict(enumerate(a.x.tolist()))) - a.cost) < 1e-6
+    monkeypatch.setattr(P, "FOCUS_MIN_SWEEPS", 10 ** 12)
+    out2, _ = _timed_stage(p, X0, seconds=0.3, workers=2)
+    assert "focus_parts" not in out2.stats

@@ -45,6 +45,12 @@ swap moves; every other row is an exact penalty whose weight starts at
 violated, so it rises until the state is feasible. Fixed variables never move;
 ``max_flips`` is a hard radius from ``origin``.
 
+A part of the model: ``within`` (variable indices) limits the sweeps to those variables;
+the rest keep the start's values (a swap partner may still move with a member of its row).
+A sweep then costs about ``len(within) / free`` of a full one, so a part gets that many
+times more sweeps in the same time. :func:`disagreement` picks such a part: where two good
+answers differ, and the variables coupled to those (their QUBO neighbours).
+
 Threads and stopping: the starts are split into ``workers`` contiguous blocks, each
 annealed by one thread (the kernels release the GIL). A thread runs short slices of a few
 milliseconds and checks ``deadline`` and ``cancel`` between them; on a stop, the start in
@@ -69,8 +75,8 @@ from flipfix.repair.kernels.metropolis import Moves, Plan, advance, flip_changes
 from flipfix.repair.lowering.compiled import Compiled
 from flipfix.repair.solvers.greedy import greedy_repair
 
-__all__ = ["AnnealOutput", "anneal", "flip_scale", "sweep_pace", "temperatures", "warm_up",
-           "T_QUENCH", "T_FULL", "HEAT"]
+__all__ = ["AnnealOutput", "anneal", "disagreement", "flip_scale", "sweep_pace", "temperatures",
+           "warm_up", "T_QUENCH", "T_FULL", "HEAT"]
 
 #: Quench temperature, in units of scale (see the module docstring).
 T_QUENCH = 0.03
@@ -160,6 +166,24 @@ def flip_scale(compiled: Compiled, X: np.ndarray) -> float:
     return float(big) if big > 0.0 else 1.0
 
 
+def disagreement(compiled: Compiled, X: np.ndarray, *, ring: int = 1) -> np.ndarray:
+    """int64 (ascending): the free variables on which the rows of X (int8 (R, n), R >= 1)
+    do not all agree, grown ``ring`` times by their QUBO neighbours (the variables coupled
+    to one of them). Empty when the rows agree everywhere."""
+    X = _states(compiled, X, "X")
+    if int(ring) != ring or ring < 0:
+        raise InputError("ring", f"must be an integer >= 0, got {ring!r}")
+    free = compiled.fixed < 0
+    mask = ((X != X[:1]).any(axis=0) if X.shape[0] else np.zeros(compiled.n, bool)) & free
+    q = late_arrays(compiled).qubo
+    owner = np.repeat(np.arange(compiled.n), np.diff(q.indptr))
+    for _ in range(int(ring)):
+        grown = mask.copy()
+        grown[q.indices[mask[owner]]] = True
+        mask = grown & free
+    return np.flatnonzero(mask).astype(np.int64)
+
+
 # ------------------------------------------------------------------ checks
 def _states(compiled: Compiled, X, name: str) -> np.ndarray:
     X = np.asarray(X)
@@ -226,7 +250,8 @@ def anneal(compiled: Compiled, starts: np.ndarray, *, depth: float, sweeps: int,
            origin: np.ndarray | None = None, flip_price: float = 0.0,
            max_flips: int | None = None, scale: float | None = None, workers: int = 1,
            deadline: float | None = None, until: float | None = None,
-           cancel: threading.Event | None = None) -> AnnealOutput:
+           cancel: threading.Event | None = None,
+           within: np.ndarray | None = None) -> AnnealOutput:
     """Anneal every row of ``starts`` (int8 (R, n), 0/1), then repair it greedily.
 
     ``depth`` in (0, 1]: how far from the start the anneal may wander (see the module
@@ -246,13 +271,25 @@ def anneal(compiled: Compiled, starts: np.ndarray, *, depth: float, sweeps: int,
     sized in sweeps that the deadline cuts short returns a state from the middle of its
     schedule; a paced chain cools in time even when the machine slows down. The answers
     then depend on the timing, not on the seed alone.
+
+    ``within`` (int, (w,), indices of variables): sweep only these (the free ones among
+    them); every other variable keeps its start's value through the sweeps (a swap
+    partner excepted), and the greedy pass afterwards may move any free variable.
     """
     t0 = time.perf_counter()
     starts, O = _check(compiled, starts, origin, depth, sweeps, flip_price, max_flips, scale,
                        workers)
+    if within is not None:
+        within = np.asarray(within)
+        if within.ndim != 1 or (within.size and (not np.issubdtype(within.dtype, np.integer)
+                                                 or within.min() < 0
+                                                 or within.max() >= compiled.n)):
+            raise InputError("within", f"must be a 1-D array of variable indices in "
+                                       f"0..{compiled.n - 1}")
     X, done = _sweep_rows(compiled, starts, O, depth=depth, sweeps=sweeps, seed=seed,
                           flip_price=flip_price, max_flips=max_flips, scale=scale,
-                          workers=workers, deadline=deadline, until=until, cancel=cancel)
+                          workers=workers, deadline=deadline, until=until, cancel=cancel,
+                          within=within)
     t1 = time.perf_counter()
     g = greedy_repair(compiled, X, origin=O, max_flips=max_flips, flip_price=float(flip_price),
                       workers=int(workers), deadline=deadline, cancel=cancel)
@@ -261,7 +298,8 @@ def anneal(compiled: Compiled, starts: np.ndarray, *, depth: float, sweeps: int,
 
 
 def _sweep_rows(compiled: Compiled, starts: np.ndarray, O: np.ndarray, *, depth, sweeps,
-                seed, flip_price, max_flips, scale, workers, deadline, until, cancel):
+                seed, flip_price, max_flips, scale, workers, deadline, until, cancel,
+                within=None):
     """The Metropolis part of :func:`anneal` (checked arguments): (X int8 (R, n) the
     states it leaves, sweeps int64 (R,) done per start)."""
     R, n = starts.shape
@@ -271,6 +309,8 @@ def _sweep_rows(compiled: Compiled, starts: np.ndarray, O: np.ndarray, *, depth,
     done = np.zeros(R, dtype=np.int64)
     late = late_arrays(compiled)
     moves = _moves(compiled)
+    if within is not None:
+        moves = moves._replace(free=np.intersect1d(moves.free, within).astype(np.int64))
     radius = n if max_flips is None else int(max_flips)
     if scale is None:
         scale = flip_scale(compiled, starts)

@@ -785,6 +785,24 @@ LONG_CHAIN_SWEEPS = 50_000
 #: with every round at 0.3: 12 of 12 runs stuck; at 0.7 or at 1.0: 12 of 12 runs found
 #: 235.1, the optimum CP-SAT finds at 10 T.
 HEDGE_DEPTH = 0.7
+#: A long last round (at least ``FOCUS_MIN_SWEEPS`` sweeps a chain at the measured pace)
+#: comes in two parts. Its chains run as above for the first ``FOCUS_SPLIT`` of its time;
+#: then every chain restarts from the better of their answers and anneals, at
+#: ``FOCUS_DEPTH``, only the variables the chains' answers disagree on and their QUBO
+#: neighbours (``FOCUS_RING`` rings: :func:`flipfix.repair.solvers.anneal.disagreement`).
+#: Where two good chains agree the answer is likely settled; the part they dispute gets
+#: the rest of the time, in sweeps that cost its share of a full one. Measured (one
+#: round of two chains from the two best repaired candidates against a first part of half
+#: the sweeps then the part, equal wall time, 6 seeds, means; bench/repair_vs_rerun.py's
+#: models): G67 a_weak at 6,000 sweeps -6,498.1 against -6,508.3 (part 3,900 of 10,000
+#: variables), G67 b -3,370.2 against -3,374.3, rand5000 b at 10,000 sweeps -232,133.3
+#: against -232,149.0, rand20000 b at 3,000 sweeps -922,735 against -922,814 (4 seeds);
+#: without the ring the part was too narrow on rand20000 b (-922,659), with two rings too
+#: wide on rand5000 b (-232,111); at 400 sweeps on G67 no difference beyond noise.
+FOCUS_MIN_SWEEPS = 2000
+FOCUS_SPLIT = 0.5
+FOCUS_DEPTH = 0.5
+FOCUS_RING = 1
 #: Fewest sweeps of a round whose pace that rule trusts (a 16-sweep first round is mostly
 #: fixed costs: it measured 2-3 times the time per sweep of a long chain).
 RATE_SWEEPS = 64
@@ -810,9 +828,11 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
     several short ones at equal time), each
     chain attributed to the candidate its start belongs to (flips and price from it). The
     temperature unit is the model's own (:func:`flipfix.repair.solvers.anneal.flip_scale`
-    of the starts), measured once. Records rounds and wins per arm in ``out.stats``.
+    of the starts), measured once. A long last round ends on the part its chains disagree
+    on (``FOCUS_MIN_SWEEPS``). Records rounds and wins per arm in ``out.stats``, and the
+    size of each such part (``focus_parts``).
     """
-    from flipfix.repair.solvers.anneal import flip_scale
+    from flipfix.repair.solvers.anneal import disagreement, flip_scale
 
     stopped = lambda: (cancel is not None and cancel.is_set()) or time.perf_counter() >= deadline
     pulls = np.zeros(len(ARMS))
@@ -825,6 +845,21 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
     last_round = 0.0
     t_stage = time.perf_counter()
     explored = -1.0  # the round the first pass over the arms ended early, if it did
+
+    def take(res, order):
+        """Keep each chain's answer where it is feasible and cheaper than its candidate's."""
+        new_cost, new_viol, new_flips = scorer.near(res.X, order)
+        new_obj = new_cost + flip_price * new_flips
+        inside = np.ones(len(order), bool) if max_flips is None else new_flips <= max_flips
+        each = res.seconds / max(1, len(order))
+        for pos, k in enumerate(order):
+            if new_viol[pos] == 0.0 and inside[pos] and (
+                    not feasible[k] or new_obj[pos] < obj[k] - 1e-9):
+                cur[k] = res.X[pos]
+                obj[k], feasible[k], flips[k] = new_obj[pos], True, new_flips[pos]
+                out.attempts.append(Attempt(k, res.X[pos].copy(), "anneal", each,
+                                            float(new_cost[pos]), 0.0, int(new_flips[pos])))
+
     while not stopped():
         ranked = [int(k) for k in _ranked(feasible, obj) if done[k]]
         if not ranked:
@@ -877,33 +912,43 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
                 sweeps = int(np.clip((round_end - time.perf_counter()) / per_sweep[a], 4, 10**7))
             else:
                 sweeps = FIRST_SWEEPS
-            t = time.perf_counter()
             # paced by the clock (``until``): the chain cools by the round's end even when
             # the sweeps run slower than measured (a cut chain returns a warm state)
             # the last round hedges: half its chains turn at HEDGE_DEPTH or deeper
             depths = ([depth, max(depth, HEDGE_DEPTH)] if final and len(order) >= 2
                       else [depth])
+            until = None if a not in per_sweep else min(round_end, deadline)
+            focus = (until is not None and final and len(order) >= 2
+                     and want / per_sweep[a] >= FOCUS_MIN_SWEEPS)
+            if focus:  # the round's first part as usual, then the part its chains disagree on
+                until = t_round + FOCUS_SPLIT * want
+                sweeps = int(FOCUS_SPLIT * sweeps)
+            t = time.perf_counter()
             res = _anneal_at(compiled, cur[order], depths=depths, sweeps=sweeps,
                              seed=seed + rnd, origin=X0[order], flip_price=flip_price,
                              max_flips=max_flips, scale=scale, workers=workers,
-                             deadline=deadline, cancel=cancel,
-                             until=None if a not in per_sweep else min(round_end, deadline))
+                             deadline=deadline, cancel=cancel, until=until)
             ran = int(res.sweeps.max(initial=0))
             if ran > 0:
                 per_sweep[a] = max(1e-7, (time.perf_counter() - t) / ran)
                 if ran >= RATE_SWEEPS:  # long enough for its fixed costs not to count
                     sweep_only[a] = max(1e-9, res.sweep_seconds / ran)
-            new_cost, new_viol, new_flips = scorer.near(res.X, order)
-            new_obj = new_cost + flip_price * new_flips
-            inside = np.ones(len(order), bool) if max_flips is None else new_flips <= max_flips
-            each = res.seconds / max(1, len(order))
-            for pos, k in enumerate(order):
-                if new_viol[pos] == 0.0 and inside[pos] and (
-                        not feasible[k] or new_obj[pos] < obj[k] - 1e-9):
-                    cur[k] = res.X[pos]
-                    obj[k], feasible[k], flips[k] = new_obj[pos], True, new_flips[pos]
-                    out.attempts.append(Attempt(k, res.X[pos].copy(), "anneal", each,
-                                                float(new_cost[pos]), 0.0, int(new_flips[pos])))
+            take(res, order)
+            if focus and not stopped():
+                part = disagreement(compiled, res.X, ring=FOCUS_RING)
+                share = max(1, part.size) / max(1, int((compiled.fixed < 0).sum()))
+                kb = min(order, key=lambda k: (not feasible[k], obj[k]))
+                again = [kb] * len(order)
+                res = _anneal_at(compiled, cur[again], depths=[FOCUS_DEPTH],
+                                 sweeps=max(4, int((round_end - time.perf_counter())
+                                                   / (per_sweep[a] * share))),
+                                 seed=seed + rnd + 104729, origin=X0[again],
+                                 flip_price=flip_price, max_flips=max_flips, scale=scale,
+                                 workers=workers, deadline=deadline, cancel=cancel,
+                                 until=min(round_end, deadline),
+                                 within=part if part.size else None)
+                take(res, again)
+                out.stats["focus_parts"] = out.stats.get("focus_parts", []) + [int(part.size)]
         best_after = min((obj[k] for k in ranked if feasible[k]), default=np.inf)
         last_round = time.perf_counter() - t_round
         pulls[a] += 1
