@@ -261,3 +261,37 @@ def test_unique_rows_equal_numpys_unique_by_row(width):
     assert np.array_equal(uniq[inv], M)
     neg = unique_rows(np.array([[0.0], [-0.0], [1.0]]))[1]
     assert neg[0] == neg[1] != neg[2]
+
+
+def _chain_model(n: int = 40) -> Problem:
+    return Problem.from_terms({i: float((-1) ** i) for i in range(n)},
+                              [(i, i + 1, 2.0) for i in range(n - 1)], labels=range(n))
+
+
+def test_clamp_fixings_sets_the_fixed_bits_only_where_that_alone_is_feasible():
+    """Checked against the constraint definitions directly (fixed values, the row's sum)."""
+    p = _chain_model()
+    fix = FixVariables({0: 1, 5: 0, 9: 1})
+    X = np.zeros((3, p.n), np.int8)
+    X[1, 5] = 1
+    X[2, :20] = 1
+    O = X.copy()
+    only_fixings = compile_constraints(p, [fix])
+    Y = X.copy()
+    ok = greedy.clamp_fixings(only_fixings, Y, O, np.arange(3), p.n)
+    assert ok.all()
+    assert (Y[:, [0, 5, 9]] == [1, 0, 1]).all()
+    others = np.setdiff1d(np.arange(p.n), [0, 5, 9])
+    np.testing.assert_array_equal(Y[:, others], X[:, others])
+    # a row the clamp alone does not satisfy (at most 10 ones): that state is left alone
+    cap = compile_constraints(p, [fix, LinearConstraint({i: 1.0 for i in range(p.n)}, "<=", 10)])
+    Y = X.copy()
+    ok = greedy.clamp_fixings(cap, Y, O, np.arange(3), p.n)
+    np.testing.assert_array_equal(ok, [True, True, False])
+    np.testing.assert_array_equal(Y[2], X[2])
+    assert (Y[:2].sum(axis=1) <= 10).all()
+    # the radius: row 0 needs two flips (x0, x9), row 1 three (x0, x5, x9)
+    Y = X.copy()
+    np.testing.assert_array_equal(greedy.clamp_fixings(only_fixings, Y, O, np.arange(2), 2),
+                                  [True, False])
+    np.testing.assert_array_equal(Y[1], X[1])

@@ -267,3 +267,32 @@ def test_a_long_last_round_ends_on_the_part_its_chains_disagree_on(monkeypatch):
     monkeypatch.setattr(P, "FOCUS_MIN_SWEEPS", 10 ** 12)
     out2, _ = _timed_stage(p, X0, seconds=0.3, workers=2)
     assert "focus_parts" not in out2.stats
+
+
+def test_a_stage_out_of_time_still_answers_with_the_first_candidate_clamped():
+    """No time for any descent: with fixings as the only hard constraints, the first
+    candidate with its fixed bits set is the stage's answer (feasible by the constraint
+    definitions); with a hard row that clamping alone breaks there is none."""
+    from flipfix.repair.model.constraints import FixVariables, LinearConstraint
+
+    rng = np.random.default_rng(2)
+    n = 60
+    p = Problem.from_terms({i: float(rng.integers(-3, 4)) for i in range(n)},
+                           [(i, (i + 7) % n, float(rng.integers(-3, 4))) for i in range(n)],
+                           labels=range(n))
+    X0 = rng.integers(0, 2, (5, n)).astype(np.int8)
+    X0[:, 3] = 0
+    fix = FixVariables({3: 1})
+    past = time.perf_counter() - 1.0
+    order = np.array([2, 0, 1, 3, 4])
+
+    def stage(constraints):
+        compiled = compile_constraints(p, constraints)
+        return P._greedy_stage(compiled, X0, order, deadline=past, first_deadline=past,
+                               max_flips=None, flip_price=0.0, cancel=None, workers=1,
+                               report=lambda **kw: None)[0]
+
+    rows = stage([fix])
+    assert list(rows) == [2]
+    assert rows[2][3] == 1 and (np.delete(rows[2], 3) == np.delete(X0[2], 3)).all()
+    assert stage([fix, LinearConstraint({i: 1.0 for i in range(n)}, "<=", 0.0)]) == {}

@@ -53,7 +53,7 @@ import numpy as np
 from flipfix.repair.lowering.compiled import Compiled
 from flipfix.repair.errors import InputError
 from flipfix.repair.kernels.scores import Scorer, distances
-from flipfix.repair.solvers.greedy import objective_tol, greedy_repair
+from flipfix.repair.solvers.greedy import clamp_fixings, objective_tol, greedy_repair
 from flipfix.repair.solvers.greedy.start import consensus
 from flipfix.repair.solvers.candidate_runner import ANCHOR_ROWS, distributes, greedy_on_runner
 
@@ -552,6 +552,13 @@ def _greedy_stage(compiled, X0, order, *, deadline, first_deadline, max_flips, f
         if pos == 0 and then is not None:
             deadline = min(deadline, then(g.X[0]))
         pos, size = pos + size, GREEDY_FIRST_BATCH if pos == 0 else 2 * size
+    if not rows and K:  # the time ran out before the first descent: where the fixings are
+        # the only hard constraints, the first candidate with them applied is an answer
+        k = int(order[0])
+        X = X0[k:k + 1].copy()
+        radius = compiled.n if max_flips is None else int(max_flips)
+        if clamp_fixings(compiled, X, X0[k:k + 1], np.zeros(1, np.int64), radius)[0]:
+            rows[k] = X[0]
     return rows, seconds, steps
 
 

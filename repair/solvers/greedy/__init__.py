@@ -46,12 +46,12 @@ drop_stale(Path(__file__).resolve().parent, also=(_rows.__file__, _jit.__file__)
 
 from flipfix.repair.kernels.bundles import objective_tol  # noqa: E402
 from flipfix.repair.solvers.greedy.driver import (GreedyOutput,  # noqa: E402
-                                                  greedy_repair, warm_up)
+                                                  clamp_fixings, greedy_repair, warm_up)
 from flipfix.repair.solvers.greedy.layout import (MAX_GROUP_SHARE, MAX_WIDE,  # noqa: E402
                                                   MIN_GROUPS, WIDE, general_arrays)
 from flipfix.repair.solvers.greedy.qubo import SMALL_START, descend_qubo  # noqa: E402
 from flipfix.repair.solvers.greedy.start import consensus  # noqa: E402
 
-__all__ = ["GreedyOutput", "greedy_repair", "descend_qubo", "objective_tol", "warm_up",
+__all__ = ["GreedyOutput", "clamp_fixings", "greedy_repair", "descend_qubo", "objective_tol", "warm_up",
            "consensus", "general_arrays", "WIDE", "MAX_WIDE", "MAX_GROUP_SHARE", "MIN_GROUPS",
            "SMALL_START"]

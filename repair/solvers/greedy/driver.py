@@ -27,7 +27,7 @@ from flipfix.repair.solvers.greedy.pairs import pair_lists
 from flipfix.repair.solvers.greedy.qubo import Params, descend_tree, tree_work
 from flipfix.repair.solvers.greedy.start import consensus, start_refs
 
-__all__ = ["GreedyOutput", "greedy_repair", "warm_up"]
+__all__ = ["GreedyOutput", "clamp_fixings", "greedy_repair", "warm_up"]
 
 
 @dataclass
@@ -36,8 +36,9 @@ class GreedyOutput:
     done: bool (K,) whether the candidate was processed within the budget;
     seconds: float64 (K,) time spent on each candidate (its chunk's share);
     partial: bool (K,) candidates the deadline or a cancel cut short in their descent,
-    after the restore: their row of X is that feasible state (not a local minimum; every
-    other unfinished row is returned unchanged)."""
+    after the restore: their row of X is that feasible state (not a local minimum), or,
+    cut inside the restore, the candidate with its fixings applied where that alone is
+    feasible (within the radius); every other unfinished row is returned unchanged."""
 
     X: np.ndarray
     steps: np.ndarray
@@ -140,7 +141,7 @@ def greedy_repair(compiled: Compiled, X0: np.ndarray, *, origin: np.ndarray | No
     with _stopper(stop, deadline, cancel):
         _chunks(run, compiled, X, O, steps, done, seconds, partial, deadline=deadline,
                 cancel=cancel, chunk=chunk, max_steps=max_steps, workers=workers,
-                progress=progress, stop=stop)
+                progress=progress, stop=stop, radius=radius)
     return GreedyOutput(X=X, steps=steps, done=done, seconds=seconds, partial=partial)
 
 
@@ -160,6 +161,22 @@ def _feasible(compiled: Compiled, X: np.ndarray) -> np.ndarray:
         ok &= (over <= rows.rtol).all(axis=1)
     elif rows.lo.size:
         ok &= ((rows.lo <= rows.rtol) & (-rows.hi <= rows.rtol)).all()
+    return ok
+
+
+def clamp_fixings(compiled: Compiled, X: np.ndarray, O: np.ndarray, rows: np.ndarray,
+                       radius: int) -> np.ndarray:
+    """Rows ``rows`` of X (int8 (r, n), in place) with their fixed variables set to their
+    values, where that alone makes them feasible within ``radius`` flips of their origins
+    O (int8 (r, n)): in a model whose only hard constraints are fixings, a descent the
+    deadline cut in its restore still yields a feasible answer. The other rows are left
+    as they are. Returns bool (len(rows),): which were set."""
+    fixed = late_arrays(compiled).qubo.fixed
+    pinned = fixed >= 0
+    C = X[rows]
+    C[:, pinned] = fixed[pinned]
+    ok = _feasible(compiled, C) & ((C != O[rows]).sum(axis=1) <= radius)
+    X[rows[ok]] = C[ok]
     return ok
 
 
@@ -191,7 +208,7 @@ def _stopper(stop: np.ndarray, deadline: float | None, cancel):
 
 
 def _chunks(run, compiled, X, O, steps, done, seconds, partial, *, deadline, cancel, chunk,
-            max_steps, workers, progress, stop):
+            max_steps, workers, progress, stop, radius):
     """The chunk loop of :func:`greedy_repair` (in place on X, steps, done, seconds)."""
     K = X.shape[0]
     start = 0
@@ -221,6 +238,8 @@ def _chunks(run, compiled, X, O, steps, done, seconds, partial, *, deadline, can
         cut = np.flatnonzero(~finished)
         if cut.size:  # cut short in the descent (feasible): kept; others returned unchanged
             kept = _feasible(compiled, Xc[cut])
+            if not kept.all():  # cut inside the restore: its state with the fixings applied
+                kept[~kept] = clamp_fixings(compiled, Xc, O[sl], cut[~kept], radius)
             partial[sl][cut[kept]] = True
             keep = finished.copy()
             keep[cut[kept]] = True

@@ -142,18 +142,11 @@ def _push(j, W, fixed, cnt):
 
 
 @kernel
-def _push_row(r, R, W, fixed, cnt):
-    a_ptr, a_col = R.a_ptr, R.a_col
-    for q in range(a_ptr[r], a_ptr[r + 1]):
-        cnt = _push(a_col[q], W, fixed, cnt)
-    return cnt
-
-
-@kernel
-def _push_term(t, C, W, fixed, cnt):
-    lit_ptr, lit_var = C.lit_ptr, C.lit_var
-    for q in range(lit_ptr[t], lit_ptr[t + 1]):
-        cnt = _push(lit_var[q], W, fixed, cnt)
+def _push_span(s, ptr, idx, W, fixed, cnt):
+    """:func:`_push` every variable of span s of a CSR list (``idx[ptr[s]:ptr[s + 1]]``:
+    the members of row s, or the literals of term s); returns the new count."""
+    for q in range(ptr[s], ptr[s + 1]):
+        cnt = _push(idx[q], W, fixed, cnt)
     return cnt
 
 
@@ -222,7 +215,7 @@ def restore(S, dist, Q, C, R, free, nfree, P, W):
         if row_viol(act[r], lo[r], hi[r], rtol[r]) > 0.0:
             nviol += 1
             members += R.a_ptr[r + 1] - R.a_ptr[r]
-            cnt = _push_row(r, R, W, fixed, cnt)
+            cnt = _push_span(r, R.a_ptr, R.a_col, W, fixed, cnt)
     # at a start with many keys: leaves written directly, then both trees rebuilt, O(N)
     bulk = members > N // 8
     while True:
@@ -286,13 +279,13 @@ def restore(S, dist, Q, C, R, free, nfree, P, W):
                           - (row_viol(a0, lo[r], hi[r], rtol[r]) > 0.0))
                 g0 = _regime(a0, lo[r], hi[r], rtol[r], W.rowmax[r])
                 if g0 == 2 or g0 != _regime(a1, lo[r], hi[r], rtol[r], W.rowmax[r]):
-                    cnt = _push_row(r, R, W, fixed, cnt)
+                    cnt = _push_span(r, R.a_ptr, R.a_col, W, fixed, cnt)
             for q in range(vt_ptr[i], vt_ptr[i + 1]):
-                cnt = _push_term(vt_term[q], C, W, fixed, cnt)
+                cnt = _push_span(vt_term[q], C.lit_ptr, C.lit_var, W, fixed, cnt)
             for c in range(npen):
                 pen = W.pens[c]
                 for u in range(W.pt_ptr[pen], W.pt_ptr[pen + 1]):
-                    cnt = _push_term(W.pt_term[u], C, W, fixed, cnt)
+                    cnt = _push_span(W.pt_term[u], C.lit_ptr, C.lit_var, W, fixed, cnt)
         steps += 1
     tree_drain(key, np.int64(0), N, W.stack)
     tree_drain(key, N2, N, W.stack)
