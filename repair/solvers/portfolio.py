@@ -943,7 +943,9 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
             take(res, order)
             if focus and not stopped():
                 part = disagreement(compiled, res.X, ring=FOCUS_RING)
-                share = max(1, part.size) / max(1, int((compiled.fixed < 0).sum()))
+                # the part's share of a full sweep (all of it when the answers agree)
+                share = (part.size / max(1, int((compiled.fixed < 0).sum()))
+                         if part.size else 1.0)
                 kb = min(order, key=lambda k: (not feasible[k], obj[k]))
                 again = [kb] * len(order)
                 res = _anneal_at(compiled, cur[again], depths=[FOCUS_DEPTH],
