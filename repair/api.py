@@ -16,12 +16,13 @@ from flipfix.repair.lowering.compiled import Compiled, compile_constraints
 from flipfix.repair.errors import InputError
 from flipfix.repair.model.problem import Problem
 from flipfix.repair.kernels.scores import Scorer, distances
-from flipfix.repair.solvers.portfolio import DEFAULT_MIX, Mix, attempt_scores, run_plan
+from flipfix.repair.solvers.portfolio import (DEFAULT_MIX, Mix, answer_order, attempt_scores,
+                                              run_plan)
 from flipfix.repair.result import METHODS, UNSCORED, Audit, RepairResult, Solution
 from flipfix.repair.solvers.alternatives import check_alternatives, pick_alternatives
 
 __all__ = ["repair", "warm_up", "check_options", "result_seconds", "search_deadline",
-           "plan_reference"]
+           "plan_reference", "published_plan"]
 
 
 def warm_up() -> None:
@@ -139,7 +140,7 @@ def repair(
     progress: Callable[[dict], None] | None = None,
     compiled: Compiled | None = None, mix: Mix = DEFAULT_MIX,
     alternatives: int = 0, alternative_distance: int = 1, alternatives_by: str = "flips",
-    candidate_runner=None,
+    candidate_runner=None, plan: Any = None,
 ) -> RepairResult:
     """Repair every candidate under the late constraints; return the best and the audit.
 
@@ -161,6 +162,14 @@ def repair(
     ``candidate_runner`` (a :class:`flipfix.repair.solvers.candidate_runner.CandidateRunner`,
     e.g. a Dask cluster): the greedy repair of each candidate of a large library runs there,
     in chunks, with the same answers; the rest of the plan runs here.
+
+    ``plan``: the plan in force (usually the published one), the id of one of the candidates
+    or an assignment (n,) in the problem's vartype and label order. The answer's ``plan_distance`` is then its
+    Hamming distance from it; among answers of equal objective the one nearest to it is
+    reported, and the last steps move the best answers toward it where that costs nothing
+    (instead of toward their own candidates: fewest changes to what was published).
+    Without it, ``plan_distance`` counts from the reference of the first Hamming-type
+    penalty (:func:`plan_reference`).
     """
     # one-time costs per process, kept out of the budget: the compiled kernels (loaded
     # from the cache, or compiled on a machine's first run) and OR-Tools
@@ -173,13 +182,30 @@ def repair(
                        pareto=pareto, cancel=cancel, progress=progress, compiled=compiled,
                        mix=mix, t0=time.perf_counter(), alternatives=alternatives,
                        alternative_distance=alternative_distance,
-                       alternatives_by=alternatives_by, candidate_runner=candidate_runner)
+                       alternatives_by=alternatives_by, candidate_runner=candidate_runner,
+                       plan=plan)
+
+
+def published_plan(problem: Problem, candidates: CandidateSet, plan: Any) -> np.ndarray | None:
+    """The ``plan`` option of :func:`repair` as int8 (n,) 0/1 (None for None): a candidate
+    id of ``candidates``, or an assignment (n,) in the problem's vartype."""
+    if plan is None:
+        return None
+    if isinstance(plan, str):
+        if plan not in candidates.ids:
+            raise InputError("plan", f"no candidate with id {plan!r}")
+        return np.ascontiguousarray(candidates.X[candidates.ids.index(plan)], dtype=np.int8)
+    values = np.asarray(plan)
+    if values.shape != (problem.n,):
+        raise InputError("plan", f"must be a candidate id or {problem.n} values, got shape "
+                                 f"{values.shape}")
+    return np.ascontiguousarray(problem.from_caller(values, field="plan"), dtype=np.int8)
 
 
 def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, flip_price,
             seed, workers, pareto, cancel, progress, compiled, mix, t0, alternatives=0,
             alternative_distance=1, alternatives_by="flips",
-            candidate_runner=None) -> RepairResult:
+            candidate_runner=None, plan=None) -> RepairResult:
     if not isinstance(problem, Problem):
         raise InputError("problem", f"expected a Problem, got {type(problem).__name__}")
     if not isinstance(candidates, CandidateSet):
@@ -194,11 +220,13 @@ def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, 
                        alternatives_by=alternatives_by)
     if alternatives_by == "decisions" and not problem.decisions:
         raise InputError("alternatives_by", "the problem declares no decisions")
+    plan_x = published_plan(problem, candidates, plan)
     if compiled is None:
         compiled = compile_constraints(problem, list(constraints))
     X0 = np.ascontiguousarray(candidates.X, dtype=np.int8)
     price = float(flip_price)
-    plan_ref = plan_reference(compiled)
+    plan_ref = (plan_reference(compiled) if plan_x is None
+                else (np.arange(problem.n, dtype=np.int64), plan_x))
     t_lowered = time.perf_counter()
     # scoring the library, with what building the result will take for each candidate
     # scored, may take at most SCORING_SHARE of the time left after lowering and the
@@ -216,7 +244,8 @@ def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, 
                     later_per_row=per_candidate)
     # where the time went (stats): lowering, scoring the library, search, the result
     stages = {"lowering": t_lowered - t0, "scoring": time.perf_counter() - t_lowered}
-    common = dict(max_flips=max_flips, pareto=pareto, plan_ref=plan_ref, stages=stages)
+    common = dict(max_flips=max_flips, pareto=pareto, plan_ref=plan_ref, plan_x=plan_x,
+                  stages=stages)
 
     def report(**kw):
         if progress is not None:
@@ -237,7 +266,7 @@ def _repair(problem, candidates, constraints, *, method, time_limit, max_flips, 
                     deadline=search_deadline(t0, float(time_limit), reserve),
                     max_flips=max_flips, flip_price=price, seed=seed, workers=workers,
                     cancel=cancel, progress=report, mix=mix, scorer=scorer,
-                    runner=candidate_runner)
+                    runner=candidate_runner, plan=plan_x)
     res = _build(problem, candidates, compiled, scorer, plan.attempts, price, method, seed, t0,
                  plan=plan, **common)
     res = _name_conflict(res, compiled, time_limit=time_limit, seed=seed, cancel=cancel, t0=t0)
@@ -317,7 +346,7 @@ def _name_conflict(res: RepairResult, compiled: Compiled, *, time_limit, seed, c
 
 
 def _build(problem, candidates, compiled, scorer, attempts, price, method, seed, t0, *, pareto,
-           max_flips=None, status=None, message="", plan=None, plan_ref=None,
+           max_flips=None, status=None, message="", plan=None, plan_ref=None, plan_x=None,
            stages=None) -> RepairResult:
     """The result from every attempt's scores (see :func:`flipfix.repair.solvers.portfolio.attempt_scores`):
     the best, the audit (by column, :class:`flipfix.repair.result.Audit`), the front; only the
@@ -350,9 +379,7 @@ def _build(problem, candidates, compiled, scorer, attempts, price, method, seed,
         viol = viol + np.maximum(0, flips - max_flips)
     feas = viol == 0.0
     obj = cost + price * flips
-    # feasible first, then objective, then violation, then flips, then the candidate's place
-    # in the library (ties do not depend on the order the stages ran in)
-    order = np.lexsort((ks, flips, obj, viol, ~feas))
+    order = answer_order(ks=ks, obj=obj, viol=viol, flips=flips, plan=plan_x, x_of=x_of)
     b = int(order[0])
     xb = x_of(b)
     origin = int(ks[b])

@@ -58,7 +58,8 @@ def _load_json(path: str, what: str):
 
 
 _OPTION_FIELDS = {"method": "--method", "time_limit": "--time-limit", "max_flips": "--max-flips",
-                  "flip_price": "--flip-price", "seed": "--seed", "workers": "--workers"}
+                  "flip_price": "--flip-price", "seed": "--seed", "workers": "--workers",
+                  "plan": "--plan", "plan_candidate_id": "--plan"}
 
 
 def _blame(err: InputError, files: dict) -> str:
@@ -78,7 +79,7 @@ def _blame(err: InputError, files: dict) -> str:
 def _repair_options(args) -> dict:
     return {"method": args.method, "time_limit": args.time_limit, "max_flips": args.max_flips,
             "flip_price": args.flip_price, "seed": args.seed, "workers": args.workers,
-            "pareto": args.pareto}
+            "pareto": args.pareto, "plan": args.plan}
 
 
 def cmd_repair(args) -> int:
@@ -298,6 +299,9 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--seed", type=int, default=0)
     r.add_argument("--workers", type=int, default=1, help="search threads: CP-SAT workers and greedy batches")
     r.add_argument("--pareto", action="store_true", help="also report the (cost, flips) front")
+    r.add_argument("--plan", metavar="CANDIDATE_ID", default=None,
+                   help="the plan in force (a candidate id): plan_distance counts from it and, "
+                        "at equal cost, the answer nearest to it is reported")
     r.add_argument("--server", metavar="HOST:PORT", help="repair through a running service")
     r.add_argument("--quiet", action="store_true", help="no progress on stderr")
     r.add_argument("--output", choices=("result", "sampleset"), default="result",

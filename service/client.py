@@ -370,7 +370,9 @@ class FlipfixClient:
 
     def _repair_request(self, problem, constraints, *, candidates=None, candidate_ids=(),
                         all_revisions=False, **options) -> tuple[pb.RepairRequest, Problem, int]:
-        """(request, the model its values refer to, its revision; 0: inline)."""
+        """(request, the model its values refer to, its revision; 0: inline). ``plan`` (in
+        ``options``): the id of the plan in force (RepairRequest.plan_candidate_id)."""
+        plan = options.pop("plan", None)
         if isinstance(problem, str):
             _info, rev, dom = self._get_problem(problem)
             req = pb.RepairRequest(problem=problem, candidate_ids=list(candidate_ids),
@@ -389,6 +391,10 @@ class FlipfixClient:
                 model=m, candidates=self._candidates(dom, candidates)))
         req.constraints.extend(self._constraints(dom, [*rows, *(constraints or [])]))
         req.options.CopyFrom(convert.kwargs_to_options(**options))
+        if plan is not None:
+            if not isinstance(plan, str):
+                raise InputError("plan_candidate_id", "must be a candidate id (a string)")
+            req.plan_candidate_id = plan
         return req, dom, rev
 
     def repair(self, problem: str | Any, constraints: Iterable[Any] = (), *,

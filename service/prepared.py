@@ -111,14 +111,16 @@ def repair(env, request: pb.RepairRequest, *, deadline: float | None,
     kwargs = convert.options_to_kwargs(request.options,
                                        default_time_limit=env.config.default_time_limit)
     rev, problem, cands = library() if library is not None else stored_library(env, request)
-    used = env.timeline.used(request, problem, rev)  # published plan, events in force
+    used = env.timeline.used(request, problem, rev, cands)  # plans, events in force
     compiled = compiled_for(env, used.constraints, problem)
+    if used.plan is not None:
+        kwargs["plan"] = problem.to_caller(used.plan)
     budget = kwargs["time_limit"] = _budget(env, kwargs["time_limit"], deadline)
     if env.dask_address:  # a large library's greedy stage goes to the cluster
         kwargs["candidate_runner"] = _dask_runner(env)
     # the reply needs the events and counts, not the constraints (lowered into ``compiled``)
     return Prepared(None, (problem, cands, ()), {**kwargs, "compiled": compiled}, rev, budget,
-                    {"used": replace(used, constraints=[])})
+                    {"used": replace(used, constraints=[], plan=None)})
 
 
 def robustness(env, request: pb.RobustnessRequest, *, deadline: float | None) -> Prepared:

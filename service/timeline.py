@@ -7,7 +7,8 @@ Thin, as the rest of the service: proto -> domain, the store's timeline tables
 * :class:`Timeline`: what the Flipfix servicer calls around a run. Before: the candidates to
   repair (``from_published_plan``), the constraints actually used (the request's, with
   published-plan references filled in, then the events in force with ``use_events``: an
-  event that no longer applies to the current revision is FAILED_PRECONDITION naming it).
+  event that no longer applies to the current revision is FAILED_PRECONDITION naming it),
+  the plan in force (``plan_candidate_id``, else the stored problem's published plan).
   After: conflict members traced to their events, the record written (every repair of a
   stored problem unless ``skip_record``, every audit run), its id in the reply.
 """
@@ -140,6 +141,7 @@ class Used:
     events: list = field(default_factory=list)  # [EventRow]
     started: float = field(default_factory=time.perf_counter)
     published: str = ""  # the published plan referred to, if any
+    plan: np.ndarray | None = None  # int8 (n,): the plan in force, if any
 
     @property
     def event_ids(self) -> list[int]:
@@ -190,8 +192,10 @@ class Timeline:
             out.append(c2)
         return out
 
-    def used(self, request: pb.RepairRequest, problem: Problem, revision: int) -> Used:
-        """The constraints a repair uses (see the module doc); events checked one by one."""
+    def used(self, request: pb.RepairRequest, problem: Problem, revision: int,
+             candidates=None) -> Used:
+        """The constraints a repair uses (see the module doc); events checked one by one;
+        the plan in force (:meth:`plan_in_force`; ``candidates``: the library repaired)."""
         stored = request.WhichOneof("library") == "problem"
         name = stored_key(request.problem) if stored else None
         if request.use_events and not stored:
@@ -209,8 +213,43 @@ class Timeline:
         cons = self.resolve(name, request.constraints, problem, pub=pub)
         for e in events:
             cons.append(self.check_event(name, e, problem, rev, field="use_events", pub=pub))
+        plan, from_pub = self.plan_in_force(request, problem, candidates, name, pub)
+        if pub is None and from_pub is not None:
+            pub = from_pub
         return Used(cons, len(request.constraints), events,
-                    published=pub.candidate_id if pub is not None else "")
+                    published=pub.candidate_id if pub is not None else "", plan=plan)
+
+    def plan_in_force(self, request: pb.RepairRequest, problem: Problem, candidates,
+                      name: str | None, pub: PublishedRow | None):
+        """(int8 (n,) bits or None, the published plan row when the plan is it): the
+        request's ``plan_candidate_id`` (among ``candidates``, else a stored candidate of
+        the current revision), else a stored problem's published plan when one is set and
+        fits the current revision (a stale or missing one is no plan, not an error)."""
+        cid = request.plan_candidate_id
+        if cid:
+            ids = list(candidates.ids) if candidates is not None else []
+            if cid in ids:
+                return np.asarray(candidates.X[ids.index(cid)], dtype=np.int8), None
+            if name is None:
+                raise InputError("plan_candidate_id",
+                                 f"no candidate with id {cid!r} among the inline candidates")
+            try:
+                _rev, _p, one = self.store.library(name, ids=[cid])
+            except NotFoundError:
+                raise NotFoundError("plan_candidate_id", f"problem {shown(name)!r} has no "
+                                                         f"candidate {cid!r}") from None
+            except InputError as err:
+                raise InputError("plan_candidate_id", err.message) from None
+            if one.X.shape[1] != problem.n:
+                raise ConflictError("plan_candidate_id", "the problem changed during the call")
+            return np.asarray(one.X[0], dtype=np.int8), None
+        if name is None:
+            return None, None
+        try:
+            pub = pub or self.history.published(name)
+            return np.asarray(_published_x(self.store, name, pub, problem), np.int8), pub
+        except (NotFoundError, ConflictError):
+            return None, None
 
     def check_event(self, name: str, e: EventRow, problem: Problem, revision: int, *,
                     field: str, pub: PublishedRow | None = None) -> pb.Constraint:

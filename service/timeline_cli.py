@@ -67,6 +67,8 @@ def register(subparsers) -> argparse.ArgumentParser:
     c.add_argument("--distance", type=int, default=1, metavar="D",
                    help="alternatives at least D bits (or decisions) apart")
     c.add_argument("--no-record", action="store_true", help="do not record this repair")
+    c.add_argument("--plan", metavar="CANDIDATE_ID", default=None,
+                   help="the plan in force, if not the published plan")
     c = cmd("records", "list the records, newest first")
     c.add_argument("--limit", type=int, default=None, metavar="N")
     c = cmd("record", "show one record in full")
@@ -114,7 +116,7 @@ def _call(tl, args):
                      by_decisions=args.by_decisions, skip_record=args.no_record,
                      method=args.method, time_limit=args.time_limit, seed=args.seed,
                      alternatives=args.alternatives, alternative_distance=args.distance,
-                     timeout=args.time_limit * 2 + 30.0)
+                     plan=args.plan, timeout=args.time_limit * 2 + 30.0)
 
 
 def conflict_lines(conflict: dict) -> list[str]:

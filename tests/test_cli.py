@@ -66,6 +66,22 @@ def test_in_process_repair_prints_the_result_json(files, capsys):
     assert [r["candidate_id"] for r in out["audit"]] == ["p1", "p2"]
 
 
+def test_plan_option_counts_from_that_candidate_here_and_through_a_server(files, capsys,
+                                                                           tmp_path):
+    """--plan p2: plan_distance is the answer's distance from p2's assignment (counted here);
+    an unknown id names the option."""
+    from flipfix.service.server import create_server
+
+    p2 = CANDIDATES[1]["assignment"]
+    with create_server("127.0.0.1:0", db_path=str(tmp_path / "cli.sqlite3")) as srv:
+        for extra in ([], ["--server", srv.address]):
+            assert main(_args(files, "--plan", "p2", *extra)) == 0
+            best = json.loads(capsys.readouterr().out)["best"]
+            assert best["plan_distance"] == sum(best["assignment"][k] != v for k, v in p2.items())
+            assert main(_args(files, "--plan", "p9", *extra)) == 2
+            assert "--plan" in capsys.readouterr().err
+
+
 def test_server_and_in_process_give_the_same_best_cost(files, capsys, tmp_path):
     from flipfix.service.server import create_server
 

@@ -197,3 +197,75 @@ def test_a_fractional_flip_price_on_a_whole_number_model_is_scaled_exactly(price
     assert r.status == "optimal" and r.scaling_error == 0.0
     got = float(bqm.energy(dict(zip(p.labels, r.x)))) + price * int((r.x != center).sum())
     assert abs(got - want) < 1e-9 and abs(r.objective - want) < 1e-9
+
+
+# ---------------------------------------------------------------- the published plan
+def plan_case(seed: int):
+    """A degenerate small QUBO (coefficients in {-1, 0, 1}, many optima), a library of two
+    random candidates and a published plan (a third random state, not in the library)."""
+    bqm = random_bqm(seed, n=10)
+    p = Problem.from_bqm(bqm)
+    X, E = exhaustive(bqm, list(p.labels))
+    rng = np.random.default_rng(100 + seed)
+    lib = rng.integers(0, 2, size=(2, p.n)).astype(np.int8)
+    plan = rng.integers(0, 2, size=p.n).astype(np.int8)
+    return bqm, p, X, E, lib, plan
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2, 3])
+def test_with_a_plan_the_answer_is_the_optimum_nearest_to_it(seed):
+    """Expected: among dimod.ExactSolver's optima, the smallest distance from the plan."""
+    bqm, p, X, E, lib, plan = plan_case(seed)
+    best = float(E.min())
+    want = expected_fewest(X, E, plan, upper=best, ok=np.ones(X.shape[0], dtype=bool))
+    res = repair(p, CandidateSet.from_array(p, lib), [], method="portfolio", time_limit=0.6,
+                 workers=1, seed=0, plan=plan)
+    assert res.best.cost == pytest.approx(best)
+    assert res.best.plan_distance == int((res.best.x != plan).sum()) == want
+    assert res.stats["fewest_flips_center"] == "plan"
+    # the flips still count from the nearest library candidate
+    assert res.best.flips == int((lib != res.best.x[None, :]).sum(axis=1).min())
+
+
+def test_a_plan_named_by_candidate_id_is_that_candidate():
+    bqm, p, X, E, lib, plan = plan_case(4)
+    lib = np.vstack([lib, plan])
+    cands = CandidateSet.from_array(p, lib, ids=["a", "b", "published"])
+    by_id = repair(p, cands, [], time_limit=0.5, workers=1, seed=0, plan="published")
+    by_values = repair(p, cands, [], time_limit=0.5, workers=1, seed=0, plan=plan)
+    assert by_id.best.plan_distance == by_values.best.plan_distance
+    assert by_id.best.plan_distance == int((by_id.best.x != plan).sum())
+
+
+def test_the_greedy_plan_moves_free_variables_to_the_plan():
+    """Variables with no bias and no coupling cost nothing either way: with a plan, the
+    greedy plan's last step sets them as the plan has them (without one, as the candidate)."""
+    n, free = 60, np.arange(40, 60)
+    rng = np.random.default_rng(5)
+    lin = {i: float(rng.choice([-1.0, 1.0])) for i in range(40)}
+    lin.update({int(i): 0.0 for i in free})
+    quad = {(i, i + 1): float(rng.choice([-1.0, 1.0])) for i in range(39)}
+    p = Problem.from_bqm(dimod.BinaryQuadraticModel(lin, quad, 0.0, dimod.BINARY))
+    cand = rng.integers(0, 2, size=(1, n)).astype(np.int8)
+    plan = 1 - cand[0]
+    col = [p.labels.index(int(i)) for i in free]
+    res = repair(p, CandidateSet.from_array(p, cand), [], method="greedy", time_limit=0.5,
+                 plan=plan)
+    assert np.array_equal(res.best.x[col], plan[col])
+    plain = repair(p, CandidateSet.from_array(p, cand), [], method="greedy", time_limit=0.5)
+    assert np.array_equal(plain.best.x[col], cand[0, col])
+    assert res.best.cost <= plain.best.cost + 1e-9  # kept only when no costlier
+
+
+@pytest.mark.parametrize("plan,needle", [
+    ("nobody", "no candidate with id 'nobody'"),
+    (np.zeros(3, dtype=np.int8), "must be a candidate id or 10 values"),
+    (np.full(10, 2), "value 2 is not"),
+])
+def test_a_bad_plan_names_the_field(plan, needle):
+    from flipfix.repair.errors import InputError
+
+    bqm, p, X, E, lib, _ = plan_case(0)
+    with pytest.raises(InputError) as e:
+        repair(p, CandidateSet.from_array(p, lib), [], time_limit=0.2, plan=plan)
+    assert e.value.field == "plan" and needle in str(e.value)

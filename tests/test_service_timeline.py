@@ -9,6 +9,7 @@ against the rule that a decision cannot both take and avoid a value.
 from __future__ import annotations
 
 import itertools
+import json
 
 import grpc
 import numpy as np
@@ -152,6 +153,9 @@ def test_bad_requests_name_the_field(tl, ward):
         (lambda: tl.repair(problem, candidates=np.zeros((1, problem.n), np.int8),
                            use_events=True), "use_events"),
         (lambda: tl.repair("ward", from_published_plan=True), "problem"),
+        (lambda: tl.repair("ward", plan="zz"), "plan_candidate_id"),
+        (lambda: tl.repair(problem, candidates=np.zeros((1, problem.n), np.int8), plan="zz"),
+         "plan_candidate_id"),
         (lambda: tl.list_records("nowhere"), "problem"),
     ]
     for call, field in cases:
@@ -232,6 +236,14 @@ def test_option_and_cli_errors_name_the_field(tl, server, tmp_path, capsys):
     assert "constraint.values['nobody']" in capsys.readouterr().err
     assert main(["timeline", "--server", server.address, "adopt", "ward", "999"]) == 2
     assert "NOT_FOUND: record_id:" in capsys.readouterr().err
+    assert main(["timeline", "--server", server.address, "repair", "ward", "--plan", "zz",
+                 "--time-limit", "0.3"]) == 2
+    assert "NOT_FOUND: plan_candidate_id:" in capsys.readouterr().err
+    assert main(["timeline", "--server", server.address, "repair", "ward", "--plan", "c3",
+                 "--method", "greedy", "--time-limit", "0.3", "--no-record"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    x = np.array([out["best"]["assignment"][lab] for lab in tl.get_problem("ward")[1].labels])
+    assert out["best"]["plan_distance"] == int((x != plan_bits(tl.plans[2])).sum())
 
 
 def test_hamming_to_the_published_plan(tl, ward):
@@ -249,4 +261,30 @@ def test_hamming_to_the_published_plan(tl, ward):
     tl.set_published_plan("ward", "c3")
     assert tl.get_record("ward", out["record_id"]).summary.published_candidate_id == "c2"
     plain = tl.repair("ward", method="greedy", time_limit=0.5)
-    assert tl.get_record("ward", plain["record_id"]).summary.published_candidate_id == ""
+    # no penalty refers to it, but the published plan is the plan in force
+    assert tl.get_record("ward", plain["record_id"]).summary.published_candidate_id == "c3"
+
+
+def test_the_plan_in_force(tl, ward):
+    """plan_distance counts from the request's plan_candidate_id, else from the published
+    plan; without either (and no Hamming penalty) it is not reported. Expected distances:
+    counted here from the candidates' own bits (tests/roster.py's plan_bits)."""
+    problem, _ = ward
+    bits = {cid: plan_bits(p) for cid, p in zip(["c1", "c2", "c3"], tl.plans)}
+    labels = list(problem.labels)
+
+    def distance(out, cid):
+        x = np.array([out["best"]["assignment"][lab] for lab in labels], dtype=np.int8)
+        return int((x != bits[cid]).sum())
+
+    none = tl.repair("ward", method="greedy", time_limit=0.5)
+    assert none["best"].get("plan_distance") is None
+    assert tl.get_record("ward", none["record_id"]).summary.published_candidate_id == ""
+    tl.set_published_plan("ward", "c2")
+    pub = tl.repair("ward", method="greedy", time_limit=0.5)
+    assert pub["best"]["plan_distance"] == distance(pub, "c2")
+    named = tl.repair("ward", method="greedy", time_limit=0.5, plan="c3", candidate_ids=["c1"])
+    assert named["best"]["plan_distance"] == distance(named, "c3")  # not repaired, still known
+    inline = tl.repair(problem, candidates=np.vstack([bits["c1"], bits["c3"]]),
+                       method="greedy", time_limit=0.5, plan="c1")  # inline ids: c0, c1
+    assert inline["best"]["plan_distance"] == distance(inline, "c3")

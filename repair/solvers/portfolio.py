@@ -58,7 +58,7 @@ from flipfix.repair.solvers.greedy.start import consensus
 from flipfix.repair.solvers.candidate_runner import ANCHOR_ROWS, distributes, greedy_on_runner
 
 __all__ = ["Attempt", "PlanOutcome", "CpsatCosts", "CPSAT_COSTS", "kick_masks", "run_plan",
-           "attempt_scores"]
+           "attempt_scores", "answer_order"]
 
 KICK_BATCH = 32
 #: share of the budget kept at the end for moving the best answers back toward their candidates
@@ -292,7 +292,8 @@ class _LazyCpsat:
 def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, deadline: float,
              max_flips: int | None, flip_price: float, seed: int, workers: int,
              cancel=None, progress=None, mix: Mix = DEFAULT_MIX,
-             scorer: Scorer | None = None, runner=None) -> PlanOutcome:
+             scorer: Scorer | None = None, runner=None,
+             plan: np.ndarray | None = None) -> PlanOutcome:
     """Run one plan on the candidates X0 (int8 (K, n)) until ``deadline`` (a
     ``time.perf_counter()`` value); see the module docstring.
 
@@ -303,7 +304,8 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, deadline: float
     candidates it scored (a prefix of X0) are searched from. Candidates no attempt starts
     from get none (:func:`flipfix.repair.api.repair` reports them as they are).
     ``runner``: where a large library's greedy stage runs
-    (:mod:`flipfix.repair.solvers.candidate_runner`).
+    (:mod:`flipfix.repair.solvers.candidate_runner`). ``plan`` (int8 (n,)): the plan in
+    force; the last steps then also move the best answers toward it at no cost.
     """
     out = PlanOutcome(attempts=[])
     if scorer is None:
@@ -331,10 +333,11 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, deadline: float
     exact = method == "portfolio" and cp.affordable((1.0 - POLISH_GREEDY) * left)
     polish_deadline = time.perf_counter() + POLISH_GREEDY * left if exact else deadline
     _polish(compiled, X0, out, scorer, deadline=polish_deadline, max_flips=max_flips,
-            flip_price=flip_price, workers=workers)
+            flip_price=flip_price, workers=workers, plan=plan)
     if method == "portfolio" and not cancelled():
         _fewest_flips(cp, compiled, X0, out, scorer, deadline=deadline, max_flips=max_flips,
-                      flip_price=flip_price, seed=seed, workers=workers, cancel=cancel)
+                      flip_price=flip_price, seed=seed, workers=workers, cancel=cancel,
+                      plan=plan)
     return out
 
 
@@ -639,13 +642,45 @@ def _objective(out, scorer, flip_price):
     return ks, cost, viol == 0.0, cost + flip_price * flips, flips
 
 
-def _polish(compiled, X0, out, scorer, *, deadline, max_flips, flip_price, workers=1):
-    """Move the best answers back toward their candidates where the cost does not rise.
+def answer_order(*, ks, obj, viol, flips, plan=None, x_of=None) -> np.ndarray:
+    """Indices of the answers (arrays ks, obj, viol, flips of equal length (A,)), the
+    reported one first: feasible first (violation 0), then objective, then violation, then
+    flips from the answer's candidate, then the candidate's place ``ks`` in the library (ties
+    do not depend on the order the stages ran in). Given the plan in force (``plan`` int8
+    (n,); ``x_of(i)``: answer i's bits), the answers level with the first (same objective
+    and violation) go nearest to the plan first; only their distances are computed."""
+    order = np.lexsort((ks, flips, obj, viol, viol > 0.0))
+    if plan is not None and order.size:
+        first = order[0]
+        top = order[(viol[order] == viol[first]) & (obj[order] == obj[first])]
+        near = distances(np.vstack([x_of(int(i)) for i in top]), plan)
+        order[:top.size] = top[np.lexsort((ks[top], flips[top], near))]
+    return order
+
+
+def _polish(compiled, X0, out, scorer, *, deadline, max_flips, flip_price, workers=1,
+            plan=None):
+    """Move the best answers back toward their candidates where the cost does not rise;
+    given the plan in force (``plan`` int8 (n,)), then toward it the same way.
 
     Greedy descent from each of the ``POLISH_TOP`` best answers with a tiny extra price
-    per flip away from its candidate: only flips that cost (next to) nothing and undo a
-    change are taken. A result is kept when it is feasible, no costlier and has fewer flips.
+    per flip away from the target: only flips that cost (next to) nothing and come nearer
+    to it are taken. A result is kept (an attempt of the answer's candidate) when it is
+    feasible, within ``max_flips`` of its candidate, no costlier and nearer the target.
     """
+    _move_toward(compiled, X0, out, scorer, None, deadline=deadline, max_flips=max_flips,
+                 flip_price=flip_price, workers=workers)
+    if plan is not None:
+        _move_toward(compiled, X0, out, scorer, plan, deadline=deadline, max_flips=max_flips,
+                     flip_price=flip_price, workers=workers)
+
+
+def _move_toward(compiled, X0, out, scorer, target, *, deadline, max_flips, flip_price,
+                 workers):
+    """One pass of :func:`_polish`: toward each answer's own candidate (``target`` None:
+    the flip price counts from there, the greedy radius is ``max_flips``) or toward the
+    plan ``target`` (int8 (n,): only the tiny price; the flip price and ``max_flips`` are
+    checked from the candidate afterwards)."""
     if not out.attempts or time.perf_counter() >= deadline:
         return
     ks, _, feas, obj, flips = _objective(out, scorer, flip_price)
@@ -661,34 +696,48 @@ def _polish(compiled, X0, out, scorer, *, deadline, max_flips, flip_price, worke
             break
     if not picked:
         return
+    X = np.vstack([out.attempts[i].x for i in picked])
     eps = 1e3 * objective_tol(compiled)
-    g = greedy_repair(compiled, np.vstack([out.attempts[i].x for i in picked]),
-                      origin=X0[ks[picked]], max_flips=max_flips,
-                      flip_price=flip_price + eps, deadline=deadline, chunk=4, workers=workers)
+    if target is None:
+        origin, price, radius = X0[ks[picked]], flip_price + eps, max_flips
+    else:
+        origin, price, radius = np.repeat(target[None, :], len(picked), axis=0), eps, None
+    g = greedy_repair(compiled, X, origin=origin, max_flips=radius, flip_price=price,
+                      deadline=deadline, chunk=4, workers=workers)
     cost2, viol2, flips2 = scorer.near(g.X, ks[picked])
     obj2 = cost2 + flip_price * flips2
+    nearer = (flips2 < flips[picked] if target is None
+              else distances(g.X, target) < distances(X, target))
+    inside = np.ones(len(picked), bool) if max_flips is None else flips2 <= max_flips
+    stat = "polished" if target is None else "toward_plan"
     for pos, i in enumerate(picked):
         slack = COST_SLACK * max(1.0, abs(obj[i]))
-        if (g.done[pos] and viol2[pos] == 0.0 and flips2[pos] < flips[i]
+        if (g.done[pos] and viol2[pos] == 0.0 and nearer[pos] and inside[pos]
                 and obj2[pos] <= obj[i] + slack):
             src = out.attempts[i]
             label = "greedy" if src.method == "greedy" else f"{src.method}+greedy"
             out.attempts.append(Attempt(int(ks[i]), g.X[pos].copy(), label, float(g.seconds[pos]),
                                         float(cost2[pos]), float(viol2[pos]), int(flips2[pos])))
-            out.stats["polished"] = out.stats.get("polished", 0) + 1
+            out.stats[stat] = out.stats.get(stat, 0) + 1
 
 
 def _fewest_flips(cp, compiled, X0, out, scorer, *, deadline, max_flips, flip_price, seed,
-                  workers, cancel):
+                  workers, cancel, plan=None):
     """CP-SAT: the fewest flips at the best cost (:meth:`flipfix.repair.solvers.cpsat.LateModel.fewest_flips`).
 
-    The best answer is the one :func:`flipfix.repair.api.repair` reports (feasible, then objective,
-    then flips from its candidate); the step is centred on the candidate the report counts
+    The best answer is the one :func:`flipfix.repair.api.repair` reports (:func:`answer_order`);
+    the step is centred on the candidate the report counts
     flips from (the nearest one, its own candidate on ties), hinted with the answer and
     bounded by its objective measured from that candidate. A result is kept (as an attempt
     of that candidate) when it is feasible, no costlier (within ``COST_SLACK``) and has fewer
     flips. ``out.stats["fewest_flips_status"]`` records the CP-SAT status ("optimal": no
     assignment that cheap has fewer flips) or why the step was skipped.
+
+    Given the plan in force (``plan`` int8 (n,)), the step is centred on the plan instead:
+    the assignment nearest to it among those no costlier than the answer (its cost bounds the
+    search; a result is kept, as an attempt of the answer's candidate, when its objective
+    from that candidate is no higher, it is within ``max_flips`` of it and nearer the plan);
+    ``fewest_flips_center`` is then "plan" and the flips in the stats count from the plan.
     """
     stats = out.stats
     if not out.attempts:
@@ -707,19 +756,25 @@ def _fewest_flips(cp, compiled, X0, out, scorer, *, deadline, max_flips, flip_pr
     if not feas.any():
         stats["fewest_flips_status"] = "skipped: no feasible answer"
         return
-    b = int(np.lexsort((flips, obj, ~feas))[0])  # as flipfix.repair.api._build picks the best
+    b = int(answer_order(ks=ks, obj=obj, viol=np.where(feas, 0.0, 1.0), flips=flips, plan=plan,
+                         x_of=lambda i: out.attempts[i].x)[0])  # as api._build picks it
     xb = out.attempts[b].x
-    dist = distances(X0, xb)
-    origin = int(ks[b])
-    k = origin if dist[origin] == dist.min() else int(np.argmin(dist))
-    d0 = int(dist[k])
+    if plan is None:
+        dist = distances(X0, xb)
+        origin = int(ks[b])
+        k = origin if dist[origin] == dist.min() else int(np.argmin(dist))
+        center, d0, price = X0[k], int(dist[k]), flip_price
+        upper = bound = float(cost[b]) + flip_price * d0  # <= obj[b]: its objective from k
+    else:
+        stats["fewest_flips_center"] = "plan"
+        center, k, d0, price = plan, int(ks[b]), int((xb != plan).sum()), 0.0
+        upper, bound = float(cost[b]), float(obj[b])
     stats["fewest_flips_before"] = d0
     if d0 == 0:
         stats["fewest_flips_status"] = "skipped: already unchanged"
         return
-    upper = float(cost[b]) + flip_price * d0  # <= obj[b]: its objective from candidate k
-    r = cp.fewest_flips(center=X0[k], upper=upper, hint=xb, radius=d0,
-                        flip_price=flip_price, slack=COST_SLACK,
+    r = cp.fewest_flips(center=center, upper=upper, hint=xb, radius=d0,
+                        flip_price=price, slack=COST_SLACK,
                         time_limit=deadline - time.perf_counter(), workers=workers,
                         seed=seed, cancel=cancel)
     out.scaling_error = max(out.scaling_error, r.scaling_error)
@@ -729,13 +784,14 @@ def _fewest_flips(cp, compiled, X0, out, scorer, *, deadline, max_flips, flip_pr
         return
     cost2, viol2, flips2 = scorer.near(r.x, k)
     obj2 = cost2[0] + flip_price * flips2[0]
-    if (viol2[0] == 0.0 and flips2[0] < d0
-            and obj2 <= upper + COST_SLACK * max(1.0, abs(upper))):
+    d2 = int((r.x != center).sum())
+    if (viol2[0] == 0.0 and d2 < d0 and (max_flips is None or flips2[0] <= max_flips)
+            and obj2 <= bound + COST_SLACK * max(1.0, abs(bound))):
         src = out.attempts[b].method
         label = src if src.endswith("cpsat") else f"{src}+cpsat"
         out.attempts.append(Attempt(k, r.x.copy(), label, r.seconds, float(cost2[0]),
                                     float(viol2[0]), int(flips2[0])))
-        stats["fewest_flips"] = int(flips2[0])
+        stats["fewest_flips"] = d2
 
 
 def kick_masks(rng: np.random.Generator, rows: int, width: int, top: int) -> np.ndarray:

@@ -605,7 +605,7 @@ class InlineLibrary(_message.Message):
     def __init__(self, model: _Optional[_Union[ProblemModel, _Mapping]] = ..., candidates: _Optional[_Union[CandidateBatch, _Mapping]] = ...) -> None: ...
 
 class RepairRequest(_message.Message):
-    __slots__ = ("problem", "inline", "candidate_ids", "all_revisions", "constraints", "options", "use_events", "skip_record", "from_published_plan")
+    __slots__ = ("problem", "inline", "candidate_ids", "all_revisions", "constraints", "options", "use_events", "skip_record", "from_published_plan", "plan_candidate_id")
     PROBLEM_FIELD_NUMBER: _ClassVar[int]
     INLINE_FIELD_NUMBER: _ClassVar[int]
     CANDIDATE_IDS_FIELD_NUMBER: _ClassVar[int]
@@ -615,6 +615,7 @@ class RepairRequest(_message.Message):
     USE_EVENTS_FIELD_NUMBER: _ClassVar[int]
     SKIP_RECORD_FIELD_NUMBER: _ClassVar[int]
     FROM_PUBLISHED_PLAN_FIELD_NUMBER: _ClassVar[int]
+    PLAN_CANDIDATE_ID_FIELD_NUMBER: _ClassVar[int]
     problem: str
     inline: InlineLibrary
     candidate_ids: _containers.RepeatedScalarFieldContainer[str]
@@ -624,7 +625,8 @@ class RepairRequest(_message.Message):
     use_events: bool
     skip_record: bool
     from_published_plan: bool
-    def __init__(self, problem: _Optional[str] = ..., inline: _Optional[_Union[InlineLibrary, _Mapping]] = ..., candidate_ids: _Optional[_Iterable[str]] = ..., all_revisions: _Optional[bool] = ..., constraints: _Optional[_Iterable[_Union[Constraint, _Mapping]]] = ..., options: _Optional[_Union[RepairOptions, _Mapping]] = ..., use_events: _Optional[bool] = ..., skip_record: _Optional[bool] = ..., from_published_plan: _Optional[bool] = ...) -> None: ...
+    plan_candidate_id: str
+    def __init__(self, problem: _Optional[str] = ..., inline: _Optional[_Union[InlineLibrary, _Mapping]] = ..., candidate_ids: _Optional[_Iterable[str]] = ..., all_revisions: _Optional[bool] = ..., constraints: _Optional[_Iterable[_Union[Constraint, _Mapping]]] = ..., options: _Optional[_Union[RepairOptions, _Mapping]] = ..., use_events: _Optional[bool] = ..., skip_record: _Optional[bool] = ..., from_published_plan: _Optional[bool] = ..., plan_candidate_id: _Optional[str] = ...) -> None: ...
 
 class NamedValue(_message.Message):
     __slots__ = ("name", "value")
