@@ -295,3 +295,30 @@ def test_clamp_fixings_sets_the_fixed_bits_only_where_that_alone_is_feasible():
     np.testing.assert_array_equal(greedy.clamp_fixings(only_fixings, Y, O, np.arange(2), 2),
                                   [True, False])
     np.testing.assert_array_equal(Y[1], X[1])
+
+
+def test_clamp_fixings_settles_a_cardinality_row_by_its_cheapest_flips():
+    """At most 10 ones, 20 set: with ``settle`` the 10 members whose single flip (1 -> 0)
+    costs least at the clamped state are turned off (costs by Problem.flip_costs, the
+    model's own formula, not the kernel); a row of unequal coefficients is left broken."""
+    p = _chain_model()
+    fix = FixVariables({0: 1, 5: 0, 9: 1})
+    x = np.zeros((1, p.n), np.int8)
+    x[0, :20] = 1
+    cap = compile_constraints(p, [fix, LinearConstraint({i: 1.0 for i in range(p.n)}, "<=", 10)])
+    Y = x.copy()
+    assert greedy.clamp_fixings(cap, Y, x.copy(), np.arange(1), p.n, settle=True)[0]
+    clamped = x.copy()
+    clamped[0, [0, 5, 9]] = [1, 0, 1]
+    costs = p.flip_costs(clamped)[0]
+    ones = [i for i in range(p.n) if clamped[0, i] == 1 and i not in (0, 9)]
+    want = sorted(ones, key=lambda i: (costs[i], i))[:int(clamped.sum()) - 10]
+    expected = clamped.copy()
+    expected[0, want] = 0
+    np.testing.assert_array_equal(Y, expected)
+    assert Y.sum() == 10 and (Y[0, [0, 5, 9]] == [1, 0, 1]).all()
+    uneven = compile_constraints(p, [fix, LinearConstraint(
+        {i: 1.0 + (i % 2) for i in range(p.n)}, "<=", 10)])
+    Y = x.copy()
+    assert not greedy.clamp_fixings(uneven, Y, x.copy(), np.arange(1), p.n, settle=True)[0]
+    np.testing.assert_array_equal(Y, x)

@@ -555,12 +555,13 @@ def _greedy_stage(compiled, X0, order, *, deadline, first_deadline, max_flips, f
         if pos == 0 and then is not None:
             deadline = min(deadline, then(g.X[0]))
         pos, size = pos + size, GREEDY_FIRST_BATCH if pos == 0 else 2 * size
-    if not rows and K:  # the time ran out before the first descent: where the fixings are
-        # the only hard constraints, the first candidate with them applied is an answer
+    if not rows and K:  # the time ran out before the first descent: the first candidate
+        # with the fixings applied (and cardinality rows settled) is an answer if feasible
         k = int(order[0])
         X = X0[k:k + 1].copy()
         radius = compiled.n if max_flips is None else int(max_flips)
-        if clamp_fixings(compiled, X, X0[k:k + 1], np.zeros(1, np.int64), radius)[0]:
+        if clamp_fixings(compiled, X, X0[k:k + 1], np.zeros(1, np.int64), radius,
+                         settle=True)[0]:
             rows[k] = X[0]
     return rows, seconds, steps
 

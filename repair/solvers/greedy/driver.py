@@ -165,19 +165,61 @@ def _feasible(compiled: Compiled, X: np.ndarray) -> np.ndarray:
 
 
 def clamp_fixings(compiled: Compiled, X: np.ndarray, O: np.ndarray, rows: np.ndarray,
-                       radius: int) -> np.ndarray:
+                       radius: int, *, settle: bool = False) -> np.ndarray:
     """Rows ``rows`` of X (int8 (r, n), in place) with their fixed variables set to their
-    values, where that alone makes them feasible within ``radius`` flips of their origins
-    O (int8 (r, n)): in a model whose only hard constraints are fixings, a descent the
-    deadline cut in its restore still yields a feasible answer. The other rows are left
-    as they are. Returns bool (len(rows),): which were set."""
+    values and, with ``settle``, where a hard row is then broken and its free members share
+    one |coefficient| (a cardinality row), the fewest of them flipped toward its bounds, the
+    cheapest single flips first (:func:`_settle_rows`, O(n + nnz) per row): kept where that
+    makes them feasible within ``radius`` flips of their origins O (int8 (r, n)). A descent the deadline cut in
+    its restore still yields a feasible answer, if not a locally optimal one. The other rows
+    are left as they are. Returns bool (len(rows),): which were set."""
     fixed = late_arrays(compiled).qubo.fixed
     pinned = fixed >= 0
     C = X[rows]
     C[:, pinned] = fixed[pinned]
-    ok = _feasible(compiled, C) & ((C != O[rows]).sum(axis=1) <= radius)
+    ok = _feasible(compiled, C)
+    if settle and not ok.all():
+        for j in np.flatnonzero(~ok):
+            C[j] = _settle_rows(compiled, C[j])
+        ok = _feasible(compiled, C)
+    ok &= (C != O[rows]).sum(axis=1) <= radius
     X[rows[ok]] = C[ok]
     return ok
+
+
+def _settle_rows(compiled: Compiled, x: np.ndarray) -> np.ndarray:
+    """x (int8 (n,)) with each broken hard row whose free members share one |coefficient|
+    brought inside its bounds by the fewest flips of those members, the ones whose single
+    flip costs least at x first (QUBO and count penalties, :func:`flip_changes`; rows in
+    order, each from the state the ones before left). Other broken rows are left broken."""
+    from flipfix.repair.kernels.metropolis import flip_changes
+
+    late = late_arrays(compiled)
+    fixed, R = late.qubo.fixed, late.rows
+    x = x.copy()
+    free = np.flatnonzero(fixed < 0).astype(np.int64)
+    cost = np.full(x.size, np.inf)
+    out = np.empty((1, free.size))
+    flip_changes(late.qubo, late.counts, late.rows, free, x[None, :], out)
+    cost[free] = out[0]
+    for i in range(R.lo.size):
+        cols, vals = R.a_col[R.a_ptr[i]:R.a_ptr[i + 1]], R.a_val[R.a_ptr[i]:R.a_ptr[i + 1]]
+        act = float(vals @ x[cols])
+        need = R.lo[i] - act if act < R.lo[i] - R.rtol[i] else (
+            R.hi[i] - act if act > R.hi[i] + R.rtol[i] else 0.0)
+        mine = fixed[cols] < 0
+        if need == 0.0 or not mine.any():
+            continue
+        size = np.abs(vals[mine])
+        if not np.allclose(size, size[0]):
+            continue
+        step = vals * (1 - 2 * x[cols].astype(np.float64))  # each member's flip, signed
+        useful = mine & (np.sign(step) == np.sign(need))
+        k = int(np.ceil(abs(need) / size[0] - 1e-9))
+        pick = cols[useful][np.argsort(cost[cols[useful]], kind="stable")[:k]]
+        if pick.size == k:
+            x[pick] = 1 - x[pick]
+    return x
 
 
 @contextmanager
