@@ -85,16 +85,22 @@ def shown(key: str) -> str:
 
 
 # ------------------------------------------------------------- published plan
+def _stored_x(store, name: str, cid: str, problem: Problem, field: str) -> np.ndarray:
+    """Stored candidate ``cid``'s bits int8 (n,) in ``problem``'s label order (the store's
+    errors as they come; ConflictError naming ``field`` when the problem changed meanwhile)."""
+    _rev, _p, cands = store.library(name, ids=[cid])
+    if cands.X.shape[1] != problem.n:
+        raise ConflictError(field, "the problem changed during the call")
+    return np.asarray(cands.X[0], dtype=np.int8)
+
+
 def _published_x(store, name: str, pub: PublishedRow, problem: Problem) -> np.ndarray:
     """The published candidate's bits int8 (n,) in ``problem``'s label order."""
     try:
-        _rev, _p, cands = store.library(name, ids=[pub.candidate_id])
+        return _stored_x(store, name, pub.candidate_id, problem, "published_plan")
     except InputError as err:
         raise ConflictError("published_plan", f"the published plan {pub.candidate_id!r} does "
                                               f"not fit the current revision: {err.message}") from None
-    if cands.X.shape[1] != problem.n:
-        raise ConflictError("published_plan", "the problem changed during the call")
-    return cands.X[0]
 
 
 def _fill_published(c: pb.Constraint, x: np.ndarray, problem: Problem, field: str,
@@ -234,20 +240,17 @@ class Timeline:
                 raise InputError("plan_candidate_id",
                                  f"no candidate with id {cid!r} among the inline candidates")
             try:
-                _rev, _p, one = self.store.library(name, ids=[cid])
+                return _stored_x(self.store, name, cid, problem, "plan_candidate_id"), None
             except NotFoundError:
                 raise NotFoundError("plan_candidate_id", f"problem {shown(name)!r} has no "
                                                          f"candidate {cid!r}") from None
             except InputError as err:
                 raise InputError("plan_candidate_id", err.message) from None
-            if one.X.shape[1] != problem.n:
-                raise ConflictError("plan_candidate_id", "the problem changed during the call")
-            return np.asarray(one.X[0], dtype=np.int8), None
         if name is None:
             return None, None
         try:
             pub = pub or self.history.published(name)
-            return np.asarray(_published_x(self.store, name, pub, problem), np.int8), pub
+            return _published_x(self.store, name, pub, problem), pub
         except (NotFoundError, ConflictError):
             return None, None
 

@@ -170,9 +170,9 @@ def clamp_fixings(compiled: Compiled, X: np.ndarray, O: np.ndarray, rows: np.nda
     values and, with ``settle``, where a hard row is then broken and its free members share
     one |coefficient| (a cardinality row), the fewest of them flipped toward its bounds, the
     cheapest single flips first (:func:`_settle_rows`, O(n + nnz) per row): kept where that
-    makes them feasible within ``radius`` flips of their origins O (int8 (r, n)). A descent the deadline cut in
-    its restore still yields a feasible answer, if not a locally optimal one. The other rows
-    are left as they are. Returns bool (len(rows),): which were set."""
+    makes them feasible within ``radius`` flips of their origins O (int8 (r, n)). A descent
+    the deadline cut in its restore still yields a feasible answer, if not a locally optimal
+    one. The other rows are left as they are. Returns bool (len(rows),): which were set."""
     fixed = late_arrays(compiled).qubo.fixed
     pinned = fixed >= 0
     C = X[rows]
