@@ -308,6 +308,57 @@ def test_bad_inputs_name_the_field(kwargs, field):
     assert e.value.field == field
 
 
+def _knapsack(seed: int, n: int = 14):
+    """n items with weights 4-7 under a capacity that holds about five of them; values
+    20-40 (as negative linear terms) and a few integer couplings of -3..3."""
+    rng = np.random.default_rng(seed)
+    w = rng.integers(4, 8, n).astype(float)
+    lin = {i: -float(rng.integers(20, 41)) for i in range(n)}
+    quad = []
+    for _ in range(12):
+        i, j = rng.choice(n, 2, replace=False)
+        quad.append((int(i), int(j), float(rng.integers(-3, 4))))
+    p = Problem.from_terms(lin, quad, labels=range(n))
+    cap = float(np.sort(w)[:5].sum() + 1)
+    return p, [LinearConstraint({i: w[i] for i in range(n)}, "<=", cap, name="cap")]
+
+
+@pytest.mark.parametrize("seed", [1, 4])
+def test_tight_knapsack_row_is_crossed_by_pair_moves(seed):
+    """From full knapsacks where no single flip is both feasible and cheaper, a shallow
+    anneal reaches the optimum by moving an item out and another in at once; with those
+    pair moves switched off it mostly does not. Reference: dimod.ExactSolver (every
+    string, its cost and feasibility)."""
+    p, cs = _knapsack(seed)
+    comp = compile_constraints(p, cs)
+    every = _every_string(p)
+    ev = comp.evaluate(every)
+    optimum = ev.cost[ev.feasible].min()
+    stuck = []  # feasible, not optimal, every single flip infeasible or costlier
+    for x, c in zip(every[ev.feasible], ev.cost[ev.feasible]):
+        one = np.repeat(x[None], p.n, axis=0)
+        one[np.arange(p.n), np.arange(p.n)] ^= 1
+        e = comp.evaluate(one)
+        if c > optimum + 1e-9 and ((~e.feasible) | (e.cost > c + 1e-9)).all():
+            stuck.append(x)
+    starts = np.array(stuck[:: max(1, len(stuck) // 64)], dtype=np.int8)
+    assert A._moves(comp).pairs.all()  # unequal weights: the row gets pair moves
+    reached = {}
+    for pairs in (True, False):
+        c2 = compile_constraints(p, cs)
+        if not pairs:
+            moves = A._moves(c2)
+            c2._anneal_moves = moves._replace(pairs=np.zeros_like(moves.pairs))
+        X, _ = A._sweep_rows(c2, starts, starts.copy(), depth=0.1, sweeps=200, seed=1,
+                             flip_price=0.0, max_flips=None, scale=None, workers=1,
+                             deadline=None, until=None, cancel=None)
+        e = c2.evaluate(X)
+        assert e.feasible.all() and (e.cost >= optimum - 1e-9).all()
+        reached[pairs] = float(np.mean(np.abs(e.cost - optimum) < 1e-9))
+    assert reached[True] >= 0.85
+    assert reached[False] < 0.5
+
+
 def test_plain_path_matches_the_general_path():
     """A pure QUBO sweeps through a lean loop; with a row that never binds the general
     loop runs instead, and must take the same moves (same random draws)."""
@@ -388,6 +439,40 @@ def test_paced_anneal_ends_cold_at_until_whatever_the_guess(guess):
     assert ok.all() and ev.feasible.all()
     np.testing.assert_allclose(ev.cost, cost, rtol=0, atol=1e-9)
     assert (cost >= optimum - 1e-9).all()
+
+
+@pytest.mark.parametrize("reserve", [True, False])
+def test_paced_to_its_deadline_the_anneal_keeps_time_for_its_greedy_pass(monkeypatch, reserve):
+    """Chains paced to end at their deadline stop early enough for the greedy pass that
+    ends an anneal: no single flip of an answer lowers its cost (checked one flip at a
+    time with comp.evaluate). Without that reserve the pass gets no time and the quenched
+    states are returned as they are, with flips left that pay (real-valued couplings: the
+    quench still accepts the smallest uphill changes). The reserve is widened here to 20 ms
+    so that a loaded machine cannot eat it: this checks that the chains honour it; its
+    default size is measured in anneal.PASS_SECONDS's note."""
+    monkeypatch.setattr(A, "PASS_SECONDS", 0.02 if reserve else 0.0)
+    monkeypatch.setattr(A, "PASS_SWEEPS", A.PASS_SWEEPS if reserve else 0)
+    n = 4000
+    rng = np.random.default_rng(3)
+    pairs = rng.integers(0, n, (3 * n, 2))
+    pairs = pairs[pairs[:, 0] != pairs[:, 1]]
+    p = Problem.from_terms({i: float(v) for i, v in enumerate(rng.normal(size=n))},
+                           [(int(i), int(j), float(w)) for (i, j), w in
+                            zip(pairs, rng.normal(size=len(pairs)))], labels=range(n))
+    comp = compile_constraints(p, [])
+    starts = rng.integers(0, 2, (2, n)).astype(np.int8)
+    anneal(comp, starts, depth=0.5, sweeps=2, seed=0, workers=2)  # this model's first call
+    end = time.perf_counter() + 0.1
+    out = anneal(comp, starts, depth=0.5, sweeps=50, seed=1, workers=2, until=end,
+                 deadline=end)
+    assert (out.sweeps > 100).all()
+    base = comp.evaluate(out.X).cost
+    gains = 0
+    for k in range(out.X.shape[0]):
+        one = np.repeat(out.X[k][None], n, axis=0)
+        one[np.arange(n), np.arange(n)] ^= 1
+        gains += int((comp.evaluate(one).cost < base[k] - 1e-9).sum())
+    assert (gains == 0) if reserve else (gains > 0)
 
 
 # ------------------------------------------------------------- a part of the model

@@ -6,6 +6,8 @@ are checked on those assignments directly in numpy; the expected answer is the s
 Hamming distance from the centre among the assignments that meet them at the bound.
 """
 
+import time
+
 import dimod
 import numpy as np
 import pytest
@@ -269,3 +271,41 @@ def test_a_bad_plan_names_the_field(plan, needle):
     with pytest.raises(InputError) as e:
         repair(p, CandidateSet.from_array(p, lib), [], time_limit=0.2, plan=plan)
     assert e.value.field == "plan" and needle in str(e.value)
+
+
+def test_the_last_greedy_step_keeps_a_cheaper_answer_that_is_no_nearer():
+    """An answer that a cut search left short of a local minimum (here: three uphill flips
+    from the candidate) is brought down by the polish although the result is no nearer the
+    candidate (the step used to keep only nearer results); the kept answer's cost is its
+    dimod.ExactSolver energy and no more than the best single-flip neighbour's."""
+    from flipfix.repair.kernels.scores import Scorer
+    from flipfix.repair.solvers import portfolio as pf
+
+    bqm = random_bqm(21, n=12)
+    labels = list(range(12))
+    X, E = exhaustive(bqm, labels)
+    p = Problem.from_terms({i: bqm.get_linear(i) for i in labels},
+                           [(u, v, w) for (u, v), w in bqm.quadratic.items()], labels=labels)
+    comp = compile_constraints(p, [])
+    rng = np.random.default_rng(3)
+    X0 = rng.integers(0, 2, (1, 12)).astype(np.int8)
+    index = {tuple(row): e for row, e in zip(X.tolist(), E.tolist())}
+    start = X0[0].copy()
+    for _ in range(3):  # three flips away from the candidate, each one a step uphill or level
+        gains = [index[tuple(np.where(np.arange(12) == i, 1 - start, start).tolist())]
+                 - index[tuple(start.tolist())] for i in range(12)]
+        start[int(np.argmax(gains))] ^= 1
+    one = np.repeat(start[None], 12, axis=0)
+    one[np.arange(12), np.arange(12)] ^= 1
+    best_single = min(index[tuple(r)] for r in one.tolist())
+    assert best_single < index[tuple(start.tolist())]  # the start is no local minimum
+    scorer = Scorer(comp, X0)
+    out = pf.PlanOutcome(attempts=[pf.Attempt(0, start, "anneal", 0.0)])
+    pf._polish(comp, X0, out, scorer, deadline=time.perf_counter() + 10.0, max_flips=None,
+               flip_price=0.0)
+    ks, cost, viol, flips = pf.attempt_scores(scorer, out.attempts)
+    assert len(out.attempts) == 2 and out.stats.get("polished") == 1
+    kept = out.attempts[1]
+    assert kept.cost == pytest.approx(index[tuple(kept.x.tolist())], abs=1e-9)
+    assert kept.cost <= best_single + 1e-9
+    assert kept.flips >= 3  # no nearer the candidate than the answer it came from

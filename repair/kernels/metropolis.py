@@ -12,7 +12,11 @@ The objective of a state x (0/1, int8 (n,)) is the one greedy repair minimises:
   violated, so it rises until the state is feasible; and equality rows whose
   coefficients are all equal (one-hot, "exactly k of these") kept by the moves: a variable
   of such a row, while the row holds, moves only by a swap with a row member of the other
-  value (one up, one down), which leaves the row as it is;
+  value (one up, one down), which leaves the row as it is; and in a row whose members'
+  |coefficients| differ (a knapsack capacity), a flip that would break the row while it
+  holds is proposed together with a random member whose flip moves the row back (an item
+  out as another goes in), one Metropolis decision on the pair's total change: between two
+  full knapsacks a single flip is either uphill (an item out) or breaks the row;
 * the fixings: pinned variables are set at the start and never visited.
 
 Every state change is incremental: a flip attempt costs the variable's couplings, count
@@ -64,12 +68,15 @@ class Moves(NamedTuple):
     coefficients containing it), -1 if none;
     wunit float64 (m,): each row's first penalty weight per unit of temperature scale
     (1 / the median |coefficient| of the row, so a typical member's violation costs one
-    unit of scale).
+    unit of scale); pairs bool (m,): the rows whose members' |coefficients| differ (a
+    flip that would break such a row while it holds is proposed together with a member
+    moving the row back, see :func:`_sweep`).
     """
 
     free: np.ndarray
     partner: np.ndarray
     wunit: np.ndarray
+    pairs: np.ndarray
 
 
 class Plan(NamedTuple):
@@ -280,6 +287,67 @@ def _partner(i, r, x, fixed, R, rng):
     return -1
 
 
+@nb.njit(cache=True, inline="always")
+def _broken(i, x, R, act, pairs):
+    """The entry (an index into ``R.col_row``) of a row marked in ``pairs`` that holds now
+    and that flipping i alone would break; -1 if none."""
+    sgn = 1.0 - 2.0 * x[i]
+    for q in range(R.col_ptr[i], R.col_ptr[i + 1]):
+        r = R.col_row[q]
+        a0 = act[r]
+        if (pairs[r] and row_viol(a0, R.lo[r], R.hi[r], R.rtol[r]) == 0.0
+                and row_viol(a0 + sgn * R.col_val[q], R.lo[r], R.hi[r], R.rtol[r]) > 0.0):
+            return q
+    return -1
+
+
+@nb.njit(cache=True, inline="always")
+def _counter(i, r, way, x, fixed, R, rng):
+    """A free member of row r (not i) whose flip moves the row's activity the other way
+    than ``way`` (the sign of i's move), uniformly at random (random probes in rows longer
+    than SWAP_SCAN); -1 if none is found."""
+    a, b = R.a_ptr[r], R.a_ptr[r + 1]
+    if b - a > SWAP_SCAN:
+        for _ in range(_PROBES):
+            q = a + int(_uniform(rng) * (b - a))
+            j = R.a_col[q]
+            if j != i and fixed[j] < 0 and (1.0 - 2.0 * x[j]) * R.a_val[q] * way < 0.0:
+                return j
+        return -1
+    c = 0
+    for q in range(a, b):
+        j = R.a_col[q]
+        c += j != i and fixed[j] < 0 and (1.0 - 2.0 * x[j]) * R.a_val[q] * way < 0.0
+    if c == 0:
+        return -1
+    pick = int(_uniform(rng) * c)
+    for q in range(a, b):
+        j = R.a_col[q]
+        if j != i and fixed[j] < 0 and (1.0 - 2.0 * x[j]) * R.a_val[q] * way < 0.0:
+            if pick == 0:
+                return j
+            pick -= 1
+    return -1
+
+
+@nb.njit(cache=True, inline="always")
+def _pair(i, j, first, x, o, field, dist, radius, beta, Q, C, dcount, sat, dd, R, act, w, rng,
+          num, price):
+    """Propose flipping i and j together (Metropolis on the pair's total change), ``first``
+    being i's own change (:func:`_change`); on acceptance the objective and violation in
+    num[0], num[1] follow. Returns the new distance from the origin."""
+    o1, p1, v1, d1 = first
+    _apply(i, x, field, Q, C, dcount, sat, R, act)
+    o2, p2, v2, d2 = _change(j, x, o, field, d1, price, C, dcount, sat, dd, R, act, w)
+    if (d2 <= radius or d2 <= dist) and _accept(o1 + p1 + o2 + p2, beta, rng):
+        _apply(j, x, field, Q, C, dcount, sat, R, act)
+        num[0] += o1 + o2
+        num[1] += v1 + v2
+        return d2
+    _apply(i, x, field, Q, C, dcount, sat, R, act)  # undo
+    return dist
+
+
 # ----------------------------------------------------------------- sweeps
 @kernel
 def _sweep_plain(Q, M, plan, o, ch, beta):
@@ -317,7 +385,7 @@ def _sweep(Q, C, R, M, plan, o, ch, beta):
         return
     x, field, dcount, sat, dd, act, w, rng = (ch.x, ch.field, ch.dcount, ch.sat, ch.dd,
                                                 ch.act, ch.w, ch.rng)
-    E, V = ch.num[0], ch.num[1]
+    num = ch.num
     dist = ch.dist[0]
     price, radius = plan.price, plan.radius
     free, partner, fixed = M.free, M.partner, Q.fixed
@@ -326,29 +394,29 @@ def _sweep(Q, C, R, M, plan, o, ch, beta):
         r = partner[i]
         if r >= 0 and row_viol(act[r], R.lo[r], R.hi[r], R.rtol[r]) == 0.0:
             j = _partner(i, r, x, fixed, R, rng)  # swap i and j: row r stays as it is
-            if j < 0:
-                continue
-            o1, p1, v1, d1 = _change(i, x, o, field, dist, price, C, dcount, sat, dd, R, act, w)
-            _apply(i, x, field, Q, C, dcount, sat, R, act)
-            o2, p2, v2, d2 = _change(j, x, o, field, d1, price, C, dcount, sat, dd, R, act, w)
-            if (d2 <= radius or d2 <= dist) and _accept(o1 + p1 + o2 + p2, beta, rng):
-                _apply(j, x, field, Q, C, dcount, sat, R, act)
-                E += o1 + o2
-                V += v1 + v2
-                dist = d2
-            else:
-                _apply(i, x, field, Q, C, dcount, sat, R, act)  # undo
+            if j >= 0:
+                first = _change(i, x, o, field, dist, price, C, dcount, sat, dd, R, act, w)
+                dist = _pair(i, j, first, x, o, field, dist, radius, beta, Q, C, dcount, sat,
+                             dd, R, act, w, rng, num, price)
             continue
-        dobj, dpen, dv, nd = _change(i, x, o, field, dist, price, C, dcount, sat, dd, R, act, w)
+        first = _change(i, x, o, field, dist, price, C, dcount, sat, dd, R, act, w)
+        dobj, dpen, dv, nd = first
+        if dv > 0.0:  # i alone would break a row that holds: i with a member moving back
+            q = _broken(i, x, R, act, M.pairs)
+            if q >= 0:
+                j = _counter(i, R.col_row[q], (1.0 - 2.0 * x[i]) * R.col_val[q], x, fixed, R,
+                             rng)
+                if j >= 0:
+                    dist = _pair(i, j, first, x, o, field, dist, radius, beta, Q, C, dcount,
+                                 sat, dd, R, act, w, rng, num, price)
+                    continue
         if nd > radius and nd > dist:
             continue
         if _accept(dobj + dpen, beta, rng):
             _apply(i, x, field, Q, C, dcount, sat, R, act)
-            E += dobj
-            V += dv
+            num[0] += dobj
+            num[1] += dv
             dist = nd
-    ch.num[0] = E
-    ch.num[1] = V
     ch.dist[0] = dist
 
 

@@ -667,7 +667,8 @@ def _polish(compiled, X0, out, scorer, *, deadline, max_flips, flip_price, worke
     Greedy descent from each of the ``POLISH_TOP`` best answers with a tiny extra price
     per flip away from the target: only flips that cost (next to) nothing and come nearer
     to it are taken. A result is kept (an attempt of the answer's candidate) when it is
-    feasible, within ``max_flips`` of its candidate, no costlier and nearer the target.
+    feasible, within ``max_flips`` of its candidate, and either cheaper (an answer that a
+    cut search left short of a local minimum) or no costlier and nearer the target.
     """
     _move_toward(compiled, X0, out, scorer, None, deadline=deadline, max_flips=max_flips,
                  flip_price=flip_price, workers=workers)
@@ -713,8 +714,9 @@ def _move_toward(compiled, X0, out, scorer, target, *, deadline, max_flips, flip
     stat = "polished" if target is None else "toward_plan"
     for pos, i in enumerate(picked):
         slack = COST_SLACK * max(1.0, abs(obj[i]))
-        if (g.done[pos] and viol2[pos] == 0.0 and nearer[pos] and inside[pos]
-                and obj2[pos] <= obj[i] + slack):
+        cheaper = obj2[pos] < obj[i] - slack
+        level = nearer[pos] and obj2[pos] <= obj[i] + slack
+        if g.done[pos] and viol2[pos] == 0.0 and inside[pos] and (cheaper or level):
             src = out.attempts[i]
             label = "greedy" if src.method == "greedy" else f"{src.method}+greedy"
             out.attempts.append(Attempt(int(ks[i]), g.X[pos].copy(), label, float(g.seconds[pos]),
@@ -1022,6 +1024,8 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
         rnd += 1
         report(done=len(ranked), total=X0.shape[0], phase="anneal",
                best_cost=None if not np.isfinite(best_after) else float(best_after))
+        if final:  # it had all that was left (its chains end early enough for their pass)
+            break
     out.stats["local_rounds"] = {_arm_name(arm): int(n) for arm, n in zip(ARMS, pulls) if n}
     out.stats["local_wins"] = {_arm_name(arm): int(w) for arm, w in zip(ARMS, wins) if w}
 
