@@ -309,3 +309,42 @@ def test_the_last_greedy_step_keeps_a_cheaper_answer_that_is_no_nearer():
     assert kept.cost == pytest.approx(index[tuple(kept.x.tolist())], abs=1e-9)
     assert kept.cost <= best_single + 1e-9
     assert kept.flips >= 3  # no nearer the candidate than the answer it came from
+
+
+def test_with_a_plan_the_tail_anneals_toward_it_without_raising_the_cost(benchmarks):
+    """Gset G11 (../shared/benchmarks, 800 spins on a torus, weights +-1) as a QUBO with a
+    linear Hamming penalty toward a random reference: its optima are many and not joined by
+    cost-free single flips, so the greedy polish cannot move between them. From an answer a
+    long anneal reached, the plan-priced anneal finds answers nearer a plan (another
+    anneal's answer) at no higher cost; every kept answer's cost is recomputed with
+    dimod's energies plus the penalty counted here."""
+    from flipfix.repair.documents.instances import read_gset
+    from flipfix.repair.kernels.scores import Scorer
+    from flipfix.repair.model.constraints import HammingPenalty
+    from flipfix.repair.solvers import portfolio as pf
+    from flipfix.repair.solvers.anneal import anneal
+
+    p = read_gset(benchmarks / "gset" / "G11.txt")
+    rng = np.random.default_rng(0)
+    ref = rng.integers(0, 2, p.n).astype(np.int8)
+    cs = [HammingPenalty({lab: int(b) for lab, b in zip(p.labels, ref)}, weight=0.5)]
+    comp = compile_constraints(p, cs)
+    starts = rng.integers(0, 2, (2, p.n)).astype(np.int8)
+    two = anneal(comp, starts, depth=1.0, sweeps=20_000, seed=1, workers=2).X
+    answer, plan = two[0], two[1]
+    X0 = answer[None, :].copy()  # the answer's candidate: itself
+    scorer = Scorer(comp, X0)
+    out = pf.PlanOutcome(attempts=[pf.Attempt(0, answer.copy(), "anneal", 0.0)])
+    base = float(comp.evaluate(answer[None]).cost[0])
+    d0 = int((answer != plan).sum())
+    assert d0 > 20  # two long anneals end in different optima
+    pf._toward_plan(comp, X0, out, scorer, plan, deadline=time.perf_counter() + 0.2,
+                    max_flips=None, flip_price=0.0, seed=0, workers=2, cancel=None)
+    kept = out.attempts[1:]
+    assert kept and out.stats["toward_plan_anneal"] == len(kept)
+    bqm = p.to_bqm()
+    for a in kept:
+        energy = float(bqm.energy({lab: int(v) for lab, v in zip(p.labels, a.x)}))
+        assert a.cost == pytest.approx(energy + 0.5 * int((a.x != ref).sum()), abs=1e-9)
+        assert a.cost <= base + 1e-9
+        assert int((a.x != plan).sum()) < d0

@@ -55,10 +55,10 @@ violated, so it rises until the state is feasible. Fixed variables never move;
 ``max_flips`` is a hard radius from ``origin``.
 
 A part of the model: ``within`` (variable indices) limits the sweeps to those variables;
-the rest keep the start's values (a swap partner may still move with a member of its row).
-A sweep then costs about ``len(within) / free`` of a full one, so a part gets that many
-times more sweeps in the same time. :func:`disagreement` picks such a part: where two good
-answers differ, and the variables coupled to those (their QUBO neighbours).
+the rest keep the start's values (a swap or pair partner may still move with a member of
+its row). A sweep then costs about ``len(within) / free`` of a full one, so a part gets
+that many times more sweeps in the same time. :func:`disagreement` picks such a part: where
+two good answers differ, and the variables coupled to those (their QUBO neighbours).
 
 Threads and stopping: the starts are split into ``workers`` contiguous blocks, each
 annealed by one thread (the kernels release the GIL). A thread runs short slices of a few
@@ -300,7 +300,7 @@ def anneal(compiled: Compiled, starts: np.ndarray, *, depth: float, sweeps: int,
     then depend on the timing, not on the seed alone.
 
     ``within`` (int, (w,), indices of variables): sweep only these (the free ones among
-    them); every other variable keeps its start's value through the sweeps (a swap
+    them); every other variable keeps its start's value through the sweeps (a swap or pair
     partner excepted), and the greedy pass afterwards may move any free variable.
     """
     t0 = time.perf_counter()

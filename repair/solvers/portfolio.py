@@ -67,8 +67,21 @@ POLISH_SHARE = 0.05
 #: (it gets the rest). Measured on the quick repair benchmark: the polish takes 1-19 ms; the
 #: CP-SAT step needs 20-200 ms there to return its hint and did not find fewer flips in 3 s.
 POLISH_GREEDY = 0.5
-#: the tail when only the greedy polish can run in it
+#: the tail when only the greedy polish can run in it (and no plan is in force)
 POLISH_ALONE = 0.02
+#: Given a plan in force, the tail also anneals the best answer toward it (:func:`_toward_plan`):
+#: chains at depth ``PLAN_DEPTH`` whose price per flip away from the plan is ``PLAN_PRICE``
+#: times the model's scale, kept only where no costlier and nearer. Measured on G11 (b) at 1 s
+#: (answers at the optimum -269, 371-389 flips from the plan; 8 chains from each of 3 answers):
+#: price 0.005-0.02 and depth 0.1-0.2 found equal-cost answers nearer the plan in 7-8 of 8
+#: chains (down to 353-377) in 500-2,000 sweeps; at 0.04 and depth 0.2 some chains ended
+#: costlier, at 0.1 all did. Its share of the tail: ``PLAN_SHARE`` of what the greedy polish
+#: leaves when the CP-SAT step can run too, else all of it.
+PLAN_PRICE = 0.01
+PLAN_DEPTH = 0.2
+PLAN_SHARE = 0.5
+#: shortest time worth that anneal (its greedy pass keeps ``anneal.PASS_SECONDS`` of it)
+PLAN_MIN_SECONDS = 0.004
 POLISH_TOP = 8
 #: shortest time worth a fewest-flips CP-SAT search (a clone and a hinted solve)
 FEWEST_MIN_SECONDS = 0.01
@@ -305,7 +318,9 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, deadline: float
     from get none (:func:`flipfix.repair.api.repair` reports them as they are).
     ``runner``: where a large library's greedy stage runs
     (:mod:`flipfix.repair.solvers.candidate_runner`). ``plan`` (int8 (n,)): the plan in
-    force; the last steps then also move the best answers toward it at no cost.
+    force; the last steps then also move the best answers toward it at no cost (the greedy
+    polish, an anneal priced by the distance from the plan: :func:`_toward_plan`), and the
+    tail is ``POLISH_SHARE`` even when CP-SAT cannot run in it.
     """
     out = PlanOutcome(attempts=[])
     if scorer is None:
@@ -314,9 +329,9 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, deadline: float
     time_limit = max(0.0, deadline - time.perf_counter())
     tail = POLISH_SHARE
     cp = _LazyCpsat(compiled, out.stats, workers)
-    if method == "greedy" or (method == "portfolio" and not cp.affordable(
+    if method == "greedy" or (method == "portfolio" and plan is None and not cp.affordable(
             (1.0 - POLISH_GREEDY) * POLISH_SHARE * time_limit)):
-        tail = POLISH_ALONE  # no CP-SAT step in the tail: only the greedy polish
+        tail = POLISH_ALONE  # no CP-SAT step nor plan in the tail: only the greedy polish
     share = 1.0 if method == "cpsat" else 1.0 - tail
     _search(compiled, X0, out, cp, scorer, method=method,
             deadline=deadline - (1.0 - share) * time_limit, max_flips=max_flips,
@@ -334,6 +349,12 @@ def run_plan(compiled: Compiled, X0: np.ndarray, *, method: str, deadline: float
     polish_deadline = time.perf_counter() + POLISH_GREEDY * left if exact else deadline
     _polish(compiled, X0, out, scorer, deadline=polish_deadline, max_flips=max_flips,
             flip_price=flip_price, workers=workers, plan=plan)
+    if method == "portfolio" and plan is not None and not cancelled():
+        left = deadline - time.perf_counter()
+        _toward_plan(compiled, X0, out, scorer, plan,
+                     deadline=time.perf_counter() + (PLAN_SHARE * left if exact else left),
+                     max_flips=max_flips, flip_price=flip_price, seed=seed, workers=workers,
+                     cancel=cancel)
     if method == "portfolio" and not cancelled():
         _fewest_flips(cp, compiled, X0, out, scorer, deadline=deadline, max_flips=max_flips,
                       flip_price=flip_price, seed=seed, workers=workers, cancel=cancel,
@@ -722,6 +743,50 @@ def _move_toward(compiled, X0, out, scorer, target, *, deadline, max_flips, flip
             out.attempts.append(Attempt(int(ks[i]), g.X[pos].copy(), label, float(g.seconds[pos]),
                                         float(cost2[pos]), float(viol2[pos]), int(flips2[pos])))
             out.stats[stat] = out.stats.get(stat, 0) + 1
+
+
+def _toward_plan(compiled, X0, out, scorer, plan, *, deadline, max_flips, flip_price, seed,
+                 workers, cancel):
+    """Anneal the reported answer toward the plan in force (``plan`` int8 (n,)) until
+    ``deadline``: one chain per worker, at ``PLAN_DEPTH``, paying ``PLAN_PRICE`` times the
+    model's scale per flip away from the plan, so that among states of equal cost the chains
+    drift toward it (the greedy polish moves single free variables only; equal-cost answers
+    of a model like G11 are not joined by such flips). A result is kept, as an attempt of the
+    answer's candidate, when it is feasible, within ``max_flips`` of that candidate, no
+    costlier (its objective from the candidate) and nearer the plan; the cost is never
+    traded. ``out.stats["toward_plan_anneal"]`` counts the kept results."""
+    from flipfix.repair.solvers.anneal import anneal, flip_scale
+
+    if not out.attempts or deadline - time.perf_counter() < PLAN_MIN_SECONDS or not (
+            compiled.fixed < 0).any():
+        return
+    ks, cost, feas, obj, flips = _objective(out, scorer, flip_price)
+    if max_flips is not None:
+        feas = feas & (flips <= max_flips)
+    if not feas.any():
+        return
+    b = int(answer_order(ks=ks, obj=obj, viol=np.where(feas, 0.0, 1.0), flips=flips, plan=plan,
+                         x_of=lambda i: out.attempts[i].x)[0])
+    xb, k = out.attempts[b].x, int(ks[b])
+    chains = max(1, workers)
+    starts = np.repeat(xb[None, :], chains, axis=0)
+    scale = flip_scale(compiled, starts[:1])
+    res = anneal(compiled, starts, depth=PLAN_DEPTH, sweeps=100, seed=seed + 7,
+                 origin=np.repeat(plan[None, :], chains, axis=0),
+                 flip_price=PLAN_PRICE * scale, scale=scale, workers=workers,
+                 deadline=deadline, until=deadline, cancel=cancel)
+    order = [k] * chains
+    cost2, viol2, flips2 = scorer.near(res.X, order)
+    obj2 = cost2 + flip_price * flips2
+    near = distances(res.X, plan)
+    d0 = int((xb != plan).sum())
+    bound = float(obj[b]) + COST_SLACK * max(1.0, abs(float(obj[b])))
+    for pos in range(chains):
+        if (viol2[pos] == 0.0 and near[pos] < d0 and obj2[pos] <= bound
+                and (max_flips is None or flips2[pos] <= max_flips)):
+            out.attempts.append(Attempt(k, res.X[pos].copy(), "anneal", res.seconds / chains,
+                                        float(cost2[pos]), 0.0, int(flips2[pos])))
+            out.stats["toward_plan_anneal"] = out.stats.get("toward_plan_anneal", 0) + 1
 
 
 def _fewest_flips(cp, compiled, X0, out, scorer, *, deadline, max_flips, flip_price, seed,
