@@ -745,6 +745,21 @@ def _move_toward(compiled, X0, out, scorer, target, *, deadline, max_flips, flip
             out.stats[stat] = out.stats.get(stat, 0) + 1
 
 
+def _reported(out, scorer, *, flip_price, max_flips, plan):
+    """The answer :func:`flipfix.repair.api.repair` reports among ``out.attempts`` (as
+    ``api._build`` picks it, :func:`answer_order`), only feasible ones within ``max_flips``
+    of their candidates counting: (its index, and ks, cost, objective, flips over every
+    attempt), or None when none counts."""
+    ks, cost, feas, obj, flips = _objective(out, scorer, flip_price)
+    if max_flips is not None:
+        feas = feas & (flips <= max_flips)
+    if not feas.any():
+        return None
+    b = int(answer_order(ks=ks, obj=obj, viol=np.where(feas, 0.0, 1.0), flips=flips, plan=plan,
+                         x_of=lambda i: out.attempts[i].x)[0])
+    return b, ks, cost, obj, flips
+
+
 def _toward_plan(compiled, X0, out, scorer, plan, *, deadline, max_flips, flip_price, seed,
                  workers, cancel):
     """Anneal the reported answer toward the plan in force (``plan`` int8 (n,)) until
@@ -760,13 +775,10 @@ def _toward_plan(compiled, X0, out, scorer, plan, *, deadline, max_flips, flip_p
     if not out.attempts or deadline - time.perf_counter() < PLAN_MIN_SECONDS or not (
             compiled.fixed < 0).any():
         return
-    ks, cost, feas, obj, flips = _objective(out, scorer, flip_price)
-    if max_flips is not None:
-        feas = feas & (flips <= max_flips)
-    if not feas.any():
+    found = _reported(out, scorer, flip_price=flip_price, max_flips=max_flips, plan=plan)
+    if found is None:
         return
-    b = int(answer_order(ks=ks, obj=obj, viol=np.where(feas, 0.0, 1.0), flips=flips, plan=plan,
-                         x_of=lambda i: out.attempts[i].x)[0])
+    b, ks, _, obj, _ = found
     xb, k = out.attempts[b].x, int(ks[b])
     chains = max(1, workers)
     starts = np.repeat(xb[None, :], chains, axis=0)
@@ -818,14 +830,11 @@ def _fewest_flips(cp, compiled, X0, out, scorer, *, deadline, max_flips, flip_pr
     if left < FEWEST_MIN_SECONDS or not cp.ready(deadline):
         stats["fewest_flips_status"] = "skipped: no time left"
         return
-    ks, cost, feas, obj, flips = _objective(out, scorer, flip_price)
-    if max_flips is not None:
-        feas = feas & (flips <= max_flips)
-    if not feas.any():
+    found = _reported(out, scorer, flip_price=flip_price, max_flips=max_flips, plan=plan)
+    if found is None:
         stats["fewest_flips_status"] = "skipped: no feasible answer"
         return
-    b = int(answer_order(ks=ks, obj=obj, viol=np.where(feas, 0.0, 1.0), flips=flips, plan=plan,
-                         x_of=lambda i: out.attempts[i].x)[0])  # as api._build picks it
+    b, ks, cost, obj, flips = found
     xb = out.attempts[b].x
     if plan is None:
         dist = distances(X0, xb)
