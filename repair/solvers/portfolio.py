@@ -30,7 +30,9 @@ toward their candidates: greedy descent with a tiny price per flip (:func:`_poli
 in the portfolio when CP-SAT is affordable, its exact counterpart (:func:`_fewest_flips`):
 CP-SAT's fewest flips from the reported candidate among assignments no costlier than the
 best answer. When that CP-SAT step cannot be afforded in the tail, the tail is only
-``POLISH_ALONE`` of the budget (the greedy polish) and the search keeps the rest.
+``POLISH_ALONE`` of the budget (the greedy polish) and the search keeps the rest. Given a
+plan in force, the tail stays ``POLISH_SHARE`` and, between the two, anneals the reported
+answer toward the plan at no cost (:func:`_toward_plan`).
 
 Every stage works to one ``deadline`` (a ``time.perf_counter()`` value) that the caller sets
 so that the reply fits its budget (:func:`flipfix.repair.api.repair` keeps back what building
