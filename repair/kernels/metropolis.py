@@ -260,34 +260,6 @@ def _accept(delta, beta, rng):
 
 
 @nb.njit(cache=True, inline="always")
-def _partner(i, r, x, fixed, R, rng):
-    """A free member of row r holding the other value than i, uniformly at random
-    (random probes in rows longer than SWAP_SCAN); -1 if none is found."""
-    a, b = R.a_ptr[r], R.a_ptr[r + 1]
-    want = 1 - x[i]
-    if b - a > SWAP_SCAN:
-        for _ in range(_PROBES):
-            j = R.a_col[a + int(_uniform(rng) * (b - a))]
-            if j != i and x[j] == want and fixed[j] < 0:
-                return j
-        return -1
-    c = 0
-    for q in range(a, b):
-        j = R.a_col[q]
-        c += x[j] == want and fixed[j] < 0
-    if c == 0:
-        return -1
-    pick = int(_uniform(rng) * c)
-    for q in range(a, b):
-        j = R.a_col[q]
-        if x[j] == want and fixed[j] < 0:
-            if pick == 0:
-                return j
-            pick -= 1
-    return -1
-
-
-@nb.njit(cache=True, inline="always")
 def _broken(i, x, R, act, pairs):
     """The entry (an index into ``R.col_row``) of a row marked in ``pairs`` that holds now
     and that flipping i alone would break; -1 if none."""
@@ -305,7 +277,8 @@ def _broken(i, x, R, act, pairs):
 def _counter(i, r, way, x, fixed, R, rng):
     """A free member of row r (not i) whose flip moves the row's activity the other way
     than ``way`` (the sign of i's move), uniformly at random (random probes in rows longer
-    than SWAP_SCAN); -1 if none is found."""
+    than SWAP_SCAN); -1 if none is found. In a row whose coefficients are all equal, that is
+    a member holding the other value than i (a swap partner)."""
     a, b = R.a_ptr[r], R.a_ptr[r + 1]
     if b - a > SWAP_SCAN:
         for _ in range(_PROBES):
@@ -393,7 +366,8 @@ def _sweep(Q, C, R, M, plan, o, ch, beta):
         i = free[f]
         r = partner[i]
         if r >= 0 and row_viol(act[r], R.lo[r], R.hi[r], R.rtol[r]) == 0.0:
-            j = _partner(i, r, x, fixed, R, rng)  # swap i and j: row r stays as it is
+            # swap i and j: row r stays as it is
+            j = _counter(i, r, (1.0 - 2.0 * x[i]) * R.a_val[R.a_ptr[r]], x, fixed, R, rng)
             if j >= 0:
                 first = _change(i, x, o, field, dist, price, C, dcount, sat, dd, R, act, w)
                 dist = _pair(i, j, first, x, o, field, dist, radius, beta, Q, C, dcount, sat,
