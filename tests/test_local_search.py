@@ -209,16 +209,33 @@ def test_the_greedy_stage_leaves_the_search_its_reserve_of_sweeps(monkeypatch):
 
 
 def test_a_stage_short_of_probe_sweeps_skips_the_first_pass(monkeypatch):
-    """With time for at most NO_EXPLORE_SWEEPS probe sweeps, the first round is the long
-    hedged one (the first arm and HEDGE_DEPTH), not a probe of the first arm alone."""
+    """With time for at most NO_EXPLORE_SWEEPS probe sweeps, the first round is the last:
+    one long round at the first arm (hedged when long enough, HEDGE_MIN_SWEEPS), not a
+    probe of the first arm followed by others."""
     p = _bqp250()
     X0 = np.random.default_rng(22).integers(0, 2, (6, p.n)).astype(np.int8)
     monkeypatch.setattr(P, "NO_EXPLORE_SWEEPS", 10 ** 12)
+    monkeypatch.setattr(P, "HEDGE_MIN_SWEEPS", 0)
     _, calls = _portfolio(p, X0, monkeypatch, reserve=0.0)
     assert calls[0][1] == [P.ARMS[0][1], max(P.ARMS[0][1], P.HEDGE_DEPTH)]
     monkeypatch.setattr(P, "NO_EXPLORE_SWEEPS", 0)
     _, calls = _portfolio(p, X0, monkeypatch, reserve=0.0)
     assert calls[0][1] == [P.ARMS[0][1]]  # the first pass: one depth per round
+
+
+def test_the_last_round_hedges_only_when_its_chains_are_long(monkeypatch):
+    """The last annealing round turns half its chains at HEDGE_DEPTH only when they have
+    time for HEDGE_MIN_SWEEPS sweeps: with the threshold at 0 the last round carries two
+    depths, with it beyond any budget every round carries one."""
+    p = _bqp250()
+    X0 = np.random.default_rng(23).integers(0, 2, (6, p.n)).astype(np.int8)
+    monkeypatch.setattr(P, "HEDGE_MIN_SWEEPS", 0)
+    _, calls = _portfolio(p, X0, monkeypatch, reserve=0.0)
+    assert any(len(d) == 2 for _, d in calls)
+    assert all(d[1] == max(d[0], P.HEDGE_DEPTH) for _, d in calls if len(d) == 2)
+    monkeypatch.setattr(P, "HEDGE_MIN_SWEEPS", 10 ** 12)
+    _, calls = _portfolio(p, X0, monkeypatch, reserve=0.0)
+    assert calls and all(len(d) == 1 for _, d in calls)
 
 
 def test_sweep_pace_leaves_its_state_as_it_was():

@@ -521,8 +521,8 @@ class Answers:
 ANNEAL_RESERVE = 300
 #: When the search's time holds at most this many probe sweeps, the local search skips its
 #: first pass over the arms (probes whose fixed costs are most of a short stage) and runs
-#: one long round at the first arm, hedged (``HEDGE_DEPTH``). Measured (T = 0.1 s, 16
-#: seeds, means, against the first pass): G67 a_weak -6,455.4 against -6,439.4, G67 b
+#: one long round at the first arm (unhedged: far fewer sweeps than ``HEDGE_MIN_SWEEPS``).
+#: Measured (T = 0.1 s, 16 seeds, means, against the first pass, both then hedged): G67 a_weak -6,455.4 against -6,439.4, G67 b
 #: -3,347.9 against -3,337.3, rand20000 a_weak -1,123,312 against -1,123,143; rand20000 b
 #: -920,919 against -921,139 and rand5000 b -231,983.6 against -231,983.8 (within noise).
 NO_EXPLORE_SWEEPS = 500
@@ -927,6 +927,17 @@ LONG_CHAIN_SWEEPS = 50_000
 #: with every round at 0.3: 12 of 12 runs stuck; at 0.7 or at 1.0: 12 of 12 runs found
 #: 235.1, the optimum CP-SAT finds at 10 T.
 HEDGE_DEPTH = 0.7
+#: The hedge needs long chains: a chain turning deeper needs more sweeps to cool back, and
+#: short ones at ``HEDGE_DEPTH`` ended costlier than at the chosen depth. So the last round
+#: hedges only when its chains have time for at least this many sweeps at the measured pace.
+#: Measured (T = 0.1 s, quiet machine, means, hedged against not): G67 a_weak (a round of a
+#: few hundred sweeps) -6,469.7 against -6,478.6 (16 seeds) and -6,470.1 against -6,477.3
+#: (24); G14 a_weak (about 10,000) -3,020.3 and -3,021.7 (24 seeds twice) against -3,021.4
+#: (24) and -3,022.4 (48); G11 a_weak and G14 b within noise. The demo's event (b) (about
+#: 41,000 sweeps) needs it: 235.2 hedged (24 seeds), 236.9 with no hedge (16). At T = 1 s
+#: (6 seeds; 4,000-15,000 sweeps) G67 a_weak and b, rand5000 a_weak and b and rand20000 b
+#: were the same within noise without it; G14 at 1 s (about 100,000) gains from it.
+HEDGE_MIN_SWEEPS = 20_000
 #: A long last round (at least ``FOCUS_MIN_SWEEPS`` sweeps a chain at the measured pace)
 #: comes in two parts. Its chains run as above for the first ``FOCUS_SPLIT`` of its time;
 #: then every chain restarts from the better of their answers and anneals, at
@@ -1056,9 +1067,9 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
                 sweeps = FIRST_SWEEPS
             # paced by the clock (``until``): the chain cools by the round's end even when
             # the sweeps run slower than measured (a cut chain returns a warm state)
-            # the last round hedges: half its chains turn at HEDGE_DEPTH or deeper
-            depths = ([depth, max(depth, HEDGE_DEPTH)] if final and len(order) >= 2
-                      else [depth])
+            # a long last round hedges: half its chains turn at HEDGE_DEPTH or deeper
+            hedge = final and len(order) >= 2 and sweeps >= HEDGE_MIN_SWEEPS
+            depths = [depth, max(depth, HEDGE_DEPTH)] if hedge else [depth]
             until = None if a not in per_sweep else min(round_end, deadline)
             focus = (until is not None and final and len(order) >= 2
                      and want / per_sweep[a] >= FOCUS_MIN_SWEEPS)
