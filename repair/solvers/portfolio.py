@@ -522,8 +522,8 @@ ANNEAL_RESERVE = 300
 #: When the search's time holds at most this many probe sweeps, the local search skips its
 #: first pass over the arms (probes whose fixed costs are most of a short stage) and runs
 #: one long round at the first arm (unhedged: far fewer sweeps than ``HEDGE_MIN_SWEEPS``).
-#: Measured (T = 0.1 s, 16 seeds, means, against the first pass, both then hedged): G67 a_weak -6,455.4 against -6,439.4, G67 b
-#: -3,347.9 against -3,337.3, rand20000 a_weak -1,123,312 against -1,123,143; rand20000 b
+#: Measured (T = 0.1 s, 16 seeds, means, against the first pass, both then hedged): G67
+#: a_weak -6,455.4 against -6,439.4, G67 b -3,347.9 against -3,337.3, rand20000 a_weak -1,123,312 against -1,123,143; rand20000 b
 #: -920,919 against -921,139 and rand5000 b -231,983.6 against -231,983.8 (within noise).
 NO_EXPLORE_SWEEPS = 500
 
