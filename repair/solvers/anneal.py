@@ -84,8 +84,8 @@ from flipfix.repair.kernels.metropolis import Moves, Plan, advance, flip_changes
 from flipfix.repair.lowering.compiled import Compiled
 from flipfix.repair.solvers.greedy import greedy_repair
 
-__all__ = ["AnnealOutput", "anneal", "disagreement", "flip_scale", "sweep_pace", "temperatures",
-           "warm_up", "T_QUENCH", "T_FULL", "HEAT"]
+__all__ = ["AnnealOutput", "anneal", "disagreement", "flip_scale", "swap_rows", "sweep_pace",
+           "temperatures", "warm_up", "T_QUENCH", "T_FULL", "HEAT"]
 
 #: Quench temperature, in units of scale (see the module docstring).
 T_QUENCH = 0.03
@@ -158,6 +158,13 @@ def _moves(compiled: Compiled) -> Moves:
     cached = Moves(free, partner, wunit, pairs)
     compiled._anneal_moves = cached
     return cached
+
+
+def swap_rows(compiled: Compiled) -> tuple[np.ndarray, int]:
+    """(partner int64 (n,), m): each variable's swap row (an equality row with equal
+    coefficients, whose members the sweeps move only in swaps), -1 if none, and the number
+    of hard rows m (swap rows are numbered among them)."""
+    return _moves(compiled).partner, int(late_arrays(compiled).rows.lo.size)
 
 
 def flip_scale(compiled: Compiled, X: np.ndarray) -> float:
@@ -407,6 +414,9 @@ def warm_up(*, greedy_pass: bool = True) -> None:
         LinearConstraint({0: 1, 1: 1}, "==", 1), LinearConstraint({2: 1, 3: 2}, "<=", 2),
         FixVariables({3: 0})])
     X0 = np.zeros((2, 4), dtype=np.int8)
+    from flipfix.repair.kernels.regions import warm_up as regions_warm_up
+
+    regions_warm_up()  # the local search merges its chains' answers region by region
     if not greedy_pass:
         _sweep_rows(comp, X0, X0.copy(), depth=0.5, sweeps=2, seed=0, flip_price=0.1,
                     max_flips=3, scale=None, workers=1, deadline=None, until=None, cancel=None)

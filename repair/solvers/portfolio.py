@@ -11,7 +11,9 @@ Portfolio, within a budget of T seconds:
    rounds of annealing that starts at an answer, heats to a turning depth and cools back
    (classical reverse annealing, :mod:`flipfix.repair.solvers.anneal`), or of random kicks
    followed by greedy descent; a bandit (:func:`_local_search`) gives each round to the
-   arm (a depth, or the kicks) that has lowered the best objective most often;
+   arm (a depth, or the kicks) that has lowered the best objective most often; after each
+   annealing round the best answer takes the regions where other good answers beat it
+   (:mod:`flipfix.repair.solvers.merge`);
 3. local branching: CP-SAT around the candidate(s) whose repaired results rank best,
    each hinted with its result, within ``flips + margin`` of the candidate (or within
    ``max_flips``) — ``Mix.neighbourhood_share`` of what is left;
@@ -956,6 +958,12 @@ FOCUS_MIN_SWEEPS = 2000
 FOCUS_SPLIT = 0.5
 FOCUS_DEPTH = 0.5
 FOCUS_RING = 1
+#: After every annealing round the best answer takes, region by region, what the round's
+#: chains and the next best answers (``MERGE_POOL`` in all) got better than it
+#: (:mod:`flipfix.repair.solvers.merge`). The last round ends ``MERGE_RESERVE`` times the
+#: longest merge so far before the stage's end, so that its own merge fits. (0: no merging.)
+MERGE_POOL = 8
+MERGE_RESERVE = 1.5
 #: Fewest sweeps of a round whose pace that rule trusts (a 16-sweep first round is mostly
 #: fixed costs: it measured 2-3 times the time per sweep of a long chain).
 RATE_SWEEPS = 64
@@ -998,6 +1006,8 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
     last_round = 0.0
     t_stage = time.perf_counter()
     explored = -1.0  # the round the first pass over the arms ended early, if it did
+    merge_seconds = 0.0  # the longest merge of a round's answers so far
+    recent = deque(maxlen=MERGE_POOL)  # the last rounds' answers, kept or not: merge donors
 
     def take(res, order):
         """Keep each chain's answer where it is feasible and cheaper than its candidate's."""
@@ -1071,6 +1081,8 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
             hedge = final and len(order) >= 2 and sweeps >= HEDGE_MIN_SWEEPS
             depths = [depth, max(depth, HEDGE_DEPTH)] if hedge else [depth]
             until = None if a not in per_sweep else min(round_end, deadline)
+            if until is not None and final:  # the last merge fits before the deadline
+                until -= MERGE_RESERVE * merge_seconds
             focus = (until is not None and final and len(order) >= 2
                      and want / per_sweep[a] >= FOCUS_MIN_SWEEPS)
             if focus:  # the round's first part as usual, then the part its chains disagree on
@@ -1087,6 +1099,7 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
                 if ran >= RATE_SWEEPS:  # long enough for its fixed costs not to count
                     sweep_only[a] = max(1e-9, res.sweep_seconds / ran)
             take(res, order)
+            made = [res.X]
             if focus and not stopped():
                 part = disagreement(compiled, res.X, ring=FOCUS_RING)
                 # the part's share of a full sweep (all of it when the answers agree)
@@ -1100,10 +1113,19 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
                                  seed=seed + rnd + 104729, origin=X0[again],
                                  flip_price=flip_price, max_flips=max_flips, scale=scale,
                                  workers=workers, deadline=deadline, cancel=cancel,
-                                 until=min(round_end, deadline),
+                                 until=min(round_end, deadline) - MERGE_RESERVE * merge_seconds,
                                  within=part if part.size else None)
                 take(res, again)
+                made.append(res.X)
                 out.stats["focus_parts"] = out.stats.get("focus_parts", []) + [int(part.size)]
+            if not stopped():
+                t = time.perf_counter()
+                made = np.vstack(made)
+                _merge_answers(compiled, X0, cur, obj, feasible, flips, done, out, scorer,
+                               [*made, *reversed(recent)], max_flips=max_flips,
+                               flip_price=flip_price, deadline=deadline, cancel=cancel)
+                recent.extend(made)
+                merge_seconds = max(merge_seconds, time.perf_counter() - t)
         best_after = min((obj[k] for k in ranked if feasible[k]), default=np.inf)
         last_round = time.perf_counter() - t_round
         pulls[a] += 1
@@ -1115,6 +1137,55 @@ def _local_search(compiled, X0, cur, obj, feasible, flips, done, out, scorer, *,
             break
     out.stats["local_rounds"] = {_arm_name(arm): int(n) for arm, n in zip(ARMS, pulls) if n}
     out.stats["local_wins"] = {_arm_name(arm): int(w) for arm, w in zip(ARMS, wins) if w}
+
+
+def _merge_answers(compiled, X0, cur, obj, feasible, flips, done, out, scorer, made, *,
+                   max_flips, flip_price, deadline, cancel):
+    """Merge into the best current answer the regions where other good answers beat it
+    (:func:`flipfix.repair.solvers.merge.merge`): the states ``made`` (int8 (n,) each: the
+    round's answers, then earlier ones) first, then the next best distinct current answers,
+    ``MERGE_POOL`` donors in all. The merged answer, after a greedy pass, replaces the best
+    answer's candidate's current answer when its objective (from that candidate) is lower.
+    Counts the regions taken in ``out.stats["merged"]``; returns whether it lowered the
+    best objective."""
+    from flipfix.repair.solvers.merge import merge
+
+    ranked = [int(k) for k in _ranked(feasible, obj) if done[k] and feasible[k]]
+    if not ranked or MERGE_POOL < 1:
+        return False
+    kb = ranked[0]
+    seen, donors = {cur[kb].tobytes()}, []
+    for y in [*made, *(cur[k] for k in ranked[1:])]:
+        key = y.tobytes()
+        if key not in seen:
+            seen.add(key)
+            donors.append(y)
+        if len(donors) == MERGE_POOL:
+            break
+    if not donors:
+        return False
+
+    def score(X):
+        cost, viol, fl = scorer.near(X, np.full(X.shape[0], kb))
+        bad = (viol > 0.0) if max_flips is None else (viol > 0.0) | (fl > max_flips)
+        return np.where(bad, np.inf, cost + flip_price * fl)
+
+    t = time.perf_counter()
+    x, best, taken = merge(compiled, cur[kb], np.vstack(donors), score=score,
+                           price=flip_price, origin=X0[kb], deadline=deadline)
+    if not taken or not best < obj[kb] - 1e-9:
+        return False
+    g = greedy_repair(compiled, x[None, :], origin=X0[kb][None, :], max_flips=max_flips,
+                      flip_price=flip_price, deadline=deadline, cancel=cancel)
+    if g.done[0] and score(g.X)[0] < best:
+        x = g.X[0]
+    cost, _, fl = scorer.near(x[None, :], [kb])
+    cur[kb] = x
+    obj[kb], flips[kb] = float(cost[0] + flip_price * fl[0]), int(fl[0])
+    out.attempts.append(Attempt(kb, x.copy(), "anneal", time.perf_counter() - t,
+                                float(cost[0]), 0.0, int(fl[0])))
+    out.stats["merged"] = out.stats.get("merged", 0) + taken
+    return True
 
 
 def _anneal_at(compiled, starts, *, depths: list, workers: int, seed: int, origin, **kw):
