@@ -8,15 +8,15 @@ its objective independently of every other region. :func:`merge` therefore takes
 each donor every region that lowers the answer's objective; measured on the Gset graph
 G11 with a weak Hamming penalty (bench/repair_vs_rerun.py's event a_weak, 8 annealing
 chains of 5,000 sweeps from the best repaired candidate, three repetitions): the best
-chain -530.5, -530.1 and -530.3, merged -531.0, -531.0 and -532.0, in about 5 ms.
+chain -530.5, -530.1 and -530.3, merged -531.0, -531.0 and -532.0 (1-6 ms a merge).
 On denser graphs (G14) the differences form one region and merging seldom gains.
 
-The objective is the caller's (``score``), exact: a merged answer is kept only when
-``score`` says it is better, so count penalties and hard rows, which do tie regions
-together, are respected: the regions that lower the score one at a time are first taken
-all at once (the best choice when they do not interact, as in a QUBO), and when that is
-not better than the best single region they are taken one by one, each kept only when
-it lowers the score of the answer so far.
+Each donor costs one pass over the couplings (:func:`region_changes` gives every region's
+exact change of the QUBO part and the flip price at once) and a few exact scores
+(``score``, the caller's objective): the improving regions are taken together when
+``score`` agrees, else one at a time (at most ``ONE_BY_ONE``), each kept only when it
+lowers the score of the answer so far, so count penalties and hard rows, which tie
+regions together, are respected.
 """
 
 from __future__ import annotations
