@@ -315,7 +315,7 @@ class RepairPool:
             def warmed(_f) -> None:
                 with self._lock:
                     left[0] -= 1
-                    if left[0]:
+                    if left[0] or self._closed:  # closed: the warm-up was cut, not done
                         return
                 self._set_ready()
 
@@ -433,7 +433,10 @@ class RepairPool:
     def shutdown(self, *, wait: bool = True, terminate: bool = False) -> None:
         """Close the pool: cancel every job; ``terminate``: end the worker processes at once
         (SIGTERM) rather than wait for them to finish their job and exit (they hold nothing
-        durable: the store is the server's)."""
+        durable: the store is the server's). Workers still loading their kernels are ended
+        at once whatever ``terminate`` says: a first run's compile takes a minute and cannot
+        be cancelled (numba writes each cache file whole, under a temporary name)."""
+        terminate = terminate or not self.ready.is_set()
         t = [time.perf_counter()]
 
         def lap(name: str) -> None:  # the seconds of each step, for the server's log

@@ -12,6 +12,8 @@ from __future__ import annotations
 
 import json
 import os
+import select
+import signal
 import subprocess
 import sys
 import time
@@ -109,6 +111,71 @@ def test_wait_ready_fails_at_once_where_nothing_listens(tmp_path, capsys):
         files.append(str(tmp_path / f"{name}.json"))
     assert main(["repair", *files, "--server", "127.0.0.1:9", "--quiet"]) == 2
     assert "server 127.0.0.1:9: UNAVAILABLE" in capsys.readouterr().err
+
+
+HELPER_OWNER = """
+import threading
+from flipfix.repair.kernels import readiness
+helper = readiness._helper(readiness.SEARCH)
+print(helper.pid, flush=True)
+threading.Event().wait()
+"""
+
+
+def _ends_within(pid: int, seconds: float) -> bool:
+    """Whether process ``pid`` (any parent's) ends within ``seconds``: its pidfd becomes
+    readable when it exits (an event, not polling)."""
+    try:
+        fd = os.pidfd_open(pid)
+    except ProcessLookupError:
+        return True
+    try:
+        return bool(select.select([fd], [], [], seconds)[0])
+    finally:
+        os.close(fd)
+
+
+def test_a_compile_helper_ends_when_the_process_that_started_it_is_killed(tmp_path):
+    """A cold cache takes about a minute to fill (EXPECTED_COLD_SECONDS); the helper compiling
+    half of it must not compile on as an orphan once its starter is killed."""
+    env = {**os.environ, "NUMBA_CACHE_DIR": str(tmp_path / "cache")}
+    owner = subprocess.Popen([sys.executable, "-c", HELPER_OWNER], cwd=ROOT, env=env,
+                             stdout=subprocess.PIPE, text=True)
+    try:
+        helper = int(owner.stdout.readline())
+        assert not _ends_within(helper, 0.0)  # compiling
+        owner.kill()
+        owner.wait()
+        assert _ends_within(helper, 15.0), "the helper compiled on after its starter died"
+    finally:
+        owner.kill()
+        owner.wait()
+        owner.stdout.close()
+
+
+def test_a_server_stopped_while_its_kernels_compile_exits_at_once(tmp_path):
+    """SIGTERM during the first start's compile (an empty numba cache): the warming worker
+    holds no call and nothing durable, so the server ends without waiting for it, and does
+    not claim to be ready on the way out."""
+    env = {**os.environ, "NUMBA_CACHE_DIR": str(tmp_path / "cache")}
+    proc = subprocess.Popen([sys.executable, "-m", "flipfix.service.cli", "serve", "--port", "0",
+                             "--db", str(tmp_path / "s.sqlite3"), "--workers", "1"],
+                            cwd=ROOT, env=env, stderr=subprocess.PIPE, text=True)
+    try:
+        lines = [proc.stderr.readline()]
+        while "compiling the search kernels" not in lines[-1]:  # the worker's cold notice
+            assert lines[-1], "server exited before its worker began compiling"
+            lines.append(proc.stderr.readline())
+        proc.send_signal(signal.SIGTERM)
+        # waiting for the compile to end would take EXPECTED_COLD_SECONDS (17 s on 2 cores)
+        assert proc.wait(timeout=8) == 0
+        err = "".join(lines) + proc.stderr.read()
+        assert "ready (health SERVING)" not in err and "stopped" in err
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+        proc.stderr.close()
 
 
 @pytest.fixture(scope="module")

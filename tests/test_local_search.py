@@ -19,6 +19,7 @@ import pytest
 
 from flipfix.repair import CandidateSet, Problem, repair
 from flipfix.repair.documents.instances import read_bqp
+from flipfix.repair.kernels.readiness import warm_up
 from flipfix.repair.kernels.scores import Scorer
 from flipfix.repair.lowering.compiled import compile_constraints
 from flipfix.repair.solvers import portfolio as P
@@ -44,7 +45,10 @@ def _repaired(problem, X0):
 
 def _stage(problem, X0, *, rounds: int, workers: int = 1, seed: int = 0):
     """Run the stage on the greedy-repaired X0 until ``rounds`` rounds have reported (a
-    cancel set from the progress callback: event-driven, not timed)."""
+    cancel set from the progress callback: event-driven, not timed). The kernels are
+    loaded first, as :func:`flipfix.repair.repair` does before its clock starts: a cold
+    compile must not eat the stage's deadline."""
+    warm_up()
     compiled, g, scorer, cost, viol, flips = _repaired(problem, X0)
     K = X0.shape[0]
     out = P.PlanOutcome(attempts=[])

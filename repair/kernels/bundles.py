@@ -24,8 +24,8 @@ import numpy as np
 
 from flipfix.repair.lowering.compiled import FEAS_TOL, Compiled
 
-__all__ = ["Qubo", "Counts", "Rows", "LateArrays", "late_arrays", "unsigned",
-           "objective_tol"]
+__all__ = ["Qubo", "Counts", "Rows", "LateArrays", "late_arrays", "coupling_rows",
+           "unsigned", "objective_tol"]
 
 
 class Qubo(NamedTuple):
@@ -162,4 +162,15 @@ def late_arrays(compiled: Compiled) -> LateArrays:
                     np.asarray(compiled.fixed, dtype=np.int8))
         cached = LateArrays(qubo, _counts(compiled, n), _rows(compiled, n))
         compiled._late_arrays = cached
+    return cached
+
+
+def coupling_rows(compiled: Compiled) -> np.ndarray:
+    """int64 (nnz,): the row of each coupling of ``late_arrays(compiled).qubo`` (its CSR
+    ``indices`` give the columns), built on first use and cached on ``compiled``."""
+    cached = getattr(compiled, "_coupling_rows", None)
+    if cached is None:
+        q = late_arrays(compiled).qubo
+        cached = np.repeat(np.arange(q.h.size, dtype=np.int64), np.diff(q.indptr))
+        compiled._coupling_rows = cached
     return cached

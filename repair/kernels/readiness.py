@@ -174,7 +174,13 @@ def _cores() -> int:
 
 
 #: what the helper process runs: the parent's import path, then the families it is given
-_HELPER = ("import json, os, sys; sys.path[:] = json.loads(os.environ['FLIPFIX_KERNEL_PATH']); "
+#: the helper's program; its first thread blocks on stdin, whose other end only the
+#: starting process holds: when that process ends (killed mid-compile, say), the read
+#: returns and the helper ends too rather than compile on for a minute as an orphan
+_HELPER = ("import json, os, sys, threading; "
+           "sys.path[:] = json.loads(os.environ['FLIPFIX_KERNEL_PATH']); "
+           "threading.Thread(target=lambda: (sys.stdin.buffer.read(), os._exit(1)), "
+           "daemon=True).start(); "
            "from flipfix.repair.kernels.readiness import _warm_family; "
            "[_warm_family(f, helper=True) for f in sys.argv[1:]]")
 
@@ -183,13 +189,14 @@ def _helper(families: tuple):
     """A process compiling ``families`` into numba's on-disk cache (the same cache: it
     inherits the environment, ``NUMBA_CACHE_DIR`` included), or None when it cannot start.
     numba writes every cache file under a unique temporary name and renames it into place,
-    so processes filling one cache never see each other's partial files."""
+    so processes filling one cache never see each other's partial files. The helper ends
+    when this process does (its stdin, a pipe only this process writes, closes)."""
     if not families or not sys.executable:
         return None
     env = dict(os.environ, FLIPFIX_KERNEL_PATH=json.dumps(sys.path))
     try:
         return subprocess.Popen([sys.executable, "-c", _HELPER, *families], env=env,
-                                stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL,
+                                stdin=subprocess.PIPE, stdout=subprocess.DEVNULL,
                                 stderr=subprocess.DEVNULL)
     except OSError:
         return None
@@ -235,6 +242,7 @@ def _fill(families: tuple, parallel: bool) -> None:
     finally:
         if helper is not None:
             helper.wait()  # its exit is the event: the cache holds its families now
+            helper.stdin.close()
     for f in theirs:
         _warm_family(f)
 

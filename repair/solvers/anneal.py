@@ -79,7 +79,7 @@ import numpy as np
 
 from flipfix.repair.errors import InputError
 from flipfix.repair.kernels.batching import thread_pool
-from flipfix.repair.kernels.bundles import late_arrays, objective_tol
+from flipfix.repair.kernels.bundles import coupling_rows, late_arrays, objective_tol
 from flipfix.repair.kernels.metropolis import Moves, Plan, advance, flip_changes, new_chain
 from flipfix.repair.lowering.compiled import Compiled
 from flipfix.repair.solvers.greedy import greedy_repair
@@ -204,7 +204,7 @@ def disagreement(compiled: Compiled, X: np.ndarray, *, ring: int = 1) -> np.ndar
     free = compiled.fixed < 0
     mask = ((X != X[:1]).any(axis=0) if X.shape[0] else np.zeros(compiled.n, bool)) & free
     q = late_arrays(compiled).qubo
-    owner = np.repeat(np.arange(compiled.n), np.diff(q.indptr))
+    owner = coupling_rows(compiled)
     for _ in range(int(ring)):
         grown = mask.copy()
         grown[q.indices[mask[owner]]] = True

@@ -26,7 +26,7 @@ from typing import Callable
 
 import numpy as np
 
-from flipfix.repair.kernels.bundles import late_arrays, objective_tol
+from flipfix.repair.kernels.bundles import coupling_rows, late_arrays, objective_tol
 from flipfix.repair.kernels.regions import regions
 from flipfix.repair.lowering.compiled import Compiled
 from flipfix.repair.solvers.anneal import swap_rows
@@ -99,7 +99,7 @@ def region_changes(compiled: Compiled, x: np.ndarray, y: np.ndarray, label: np.n
     local field ``f = h + J x``, the change is ``sum_r d_i f_i`` plus the couplings inside
     r, ``sum_{i<j in r} J_ij d_i d_j`` (no coupling joins two regions)."""
     q = late_arrays(compiled).qubo
-    owner = _owner(compiled)
+    owner = coupling_rows(compiled)
     xf = x.astype(np.float64)
     d = y.astype(np.float64) - xf
     field = q.h + np.bincount(owner, weights=q.data * xf[q.indices], minlength=x.size)
@@ -113,13 +113,3 @@ def region_changes(compiled: Compiled, x: np.ndarray, y: np.ndarray, label: np.n
         away = (y != origin).astype(np.float64) - (x != origin)
         change += price * np.bincount(label[inside], weights=away[inside], minlength=count)
     return change
-
-
-def _owner(compiled: Compiled) -> np.ndarray:
-    """int64 (nnz,): the row of each QUBO coupling (cached on compiled)."""
-    cached = getattr(compiled, "_merge_owner", None)
-    if cached is None:
-        q = late_arrays(compiled).qubo
-        cached = np.repeat(np.arange(q.h.size, dtype=np.int64), np.diff(q.indptr))
-        compiled._merge_owner = cached
-    return cached

@@ -182,6 +182,20 @@ def _ranked(feasible: np.ndarray, objective: np.ndarray) -> np.ndarray:
     return np.lexsort((objective, ~feasible))
 
 
+def _distinct(items, key, limit: int, *, seen=()) -> list:
+    """The first ``limit`` of ``items`` whose ``key(item)`` is new (not in ``seen`` nor
+    an earlier item's), in order."""
+    seen, kept = set(seen), []
+    for item in items:
+        if len(kept) == limit:
+            break
+        k = key(item)
+        if k not in seen:
+            seen.add(k)
+            kept.append(item)
+    return kept
+
+
 def _items(compiled: Compiled) -> int:
     """Size of the CP-SAT model: products, count terms, row entries and bits."""
     return (compiled.data.size // 2 + sum(len(c.terms) for c in compiled.counts)
@@ -711,16 +725,8 @@ def _move_toward(compiled, X0, out, scorer, target, *, deadline, max_flips, flip
     if not out.attempts or time.perf_counter() >= deadline:
         return
     ks, _, feas, obj, flips = _objective(out, scorer, flip_price)
-    picked, seen = [], set()
-    for i in _ranked(feas, obj).tolist():
-        if not feas[i]:
-            break
-        key = (int(ks[i]), out.attempts[i].x.tobytes())
-        if key not in seen:
-            seen.add(key)
-            picked.append(i)
-        if len(picked) == POLISH_TOP:
-            break
+    picked = _distinct((i for i in _ranked(feas, obj).tolist() if feas[i]),
+                       lambda i: (int(ks[i]), out.attempts[i].x.tobytes()), POLISH_TOP)
     if not picked:
         return
     X = np.vstack([out.attempts[i].x for i in picked])
@@ -1154,14 +1160,8 @@ def _merge_answers(compiled, X0, cur, obj, feasible, flips, done, out, scorer, m
     if not ranked or MERGE_POOL < 1:
         return False
     kb = ranked[0]
-    seen, donors = {cur[kb].tobytes()}, []
-    for y in [*made, *(cur[k] for k in ranked[1:])]:
-        key = y.tobytes()
-        if key not in seen:
-            seen.add(key)
-            donors.append(y)
-        if len(donors) == MERGE_POOL:
-            break
+    donors = _distinct([*made, *(cur[k] for k in ranked[1:])], lambda y: y.tobytes(),
+                       MERGE_POOL, seen=[cur[kb].tobytes()])
     if not donors:
         return False
 
