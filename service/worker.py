@@ -434,8 +434,8 @@ class RepairPool:
         """Close the pool: cancel every job; ``terminate``: end the worker processes at once
         (SIGTERM) rather than wait for them to finish their job and exit (they hold nothing
         durable: the store is the server's). Workers still loading their kernels are ended
-        at once whatever ``terminate`` says: a first run's compile takes a minute and cannot
-        be cancelled (numba writes each cache file whole, under a temporary name)."""
+        at once whatever ``terminate`` says: a first run's compile takes many seconds and
+        cannot be cancelled (numba writes each cache file whole, under a temporary name)."""
         terminate = terminate or not self.ready.is_set()
         t = [time.perf_counter()]
 

@@ -136,8 +136,8 @@ def _ends_within(pid: int, seconds: float) -> bool:
 
 
 def test_a_compile_helper_ends_when_the_process_that_started_it_is_killed(tmp_path):
-    """A cold cache takes about a minute to fill (EXPECTED_COLD_SECONDS); the helper compiling
-    half of it must not compile on as an orphan once its starter is killed."""
+    """A cold cache takes EXPECTED_COLD_SECONDS to fill (17 s on 2 cores, the helper's half
+    about 10 s); the helper must not compile on as an orphan once its starter is killed."""
     env = {**os.environ, "NUMBA_CACHE_DIR": str(tmp_path / "cache")}
     owner = subprocess.Popen([sys.executable, "-c", HELPER_OWNER], cwd=ROOT, env=env,
                              stdout=subprocess.PIPE, text=True)
@@ -146,7 +146,7 @@ def test_a_compile_helper_ends_when_the_process_that_started_it_is_killed(tmp_pa
         assert not _ends_within(helper, 0.0)  # compiling
         owner.kill()
         owner.wait()
-        assert _ends_within(helper, 15.0), "the helper compiled on after its starter died"
+        assert _ends_within(helper, 5.0), "the helper compiled on after its starter died"
     finally:
         owner.kill()
         owner.wait()

@@ -176,7 +176,7 @@ def _cores() -> int:
 #: what the helper process runs: the parent's import path, then the families it is given
 #: the helper's program; its first thread blocks on stdin, whose other end only the
 #: starting process holds: when that process ends (killed mid-compile, say), the read
-#: returns and the helper ends too rather than compile on for a minute as an orphan
+#: returns and the helper ends too rather than compile on as an orphan
 _HELPER = ("import json, os, sys, threading; "
            "sys.path[:] = json.loads(os.environ['FLIPFIX_KERNEL_PATH']); "
            "threading.Thread(target=lambda: (sys.stdin.buffer.read(), os._exit(1)), "
