@@ -137,6 +137,14 @@ def new_chain(n: int, P: int, T: int, m: int) -> Chain:
 
 # ------------------------------------------------------------------ randomness
 @nb.njit(cache=True, inline="always")
+def _copy(dst, src):
+    """dst[:] = src, element by element (same length): a slice assignment would compile
+    numba's shape-mismatch error path, seconds of a cold compile for nothing here."""
+    for i in range(src.size):
+        dst[i] = src[i]
+
+
+@nb.njit(cache=True, inline="always")
 def _mix(z):
     """splitmix64's output function (a bijection of uint64 with good avalanche)."""
     z = (z ^ (z >> _S30)) * _MIX1
@@ -409,7 +417,7 @@ def _close_sweep(R, M, plan, ch, tol):
     ch.num[1] = V
     E, bE, bV = ch.num[0], ch.num[2], ch.num[3]
     if V < bV - 1e-12 or (V <= bV + 1e-12 and E < bE - tol):
-        ch.best[:] = ch.x
+        _copy(ch.best, ch.x)
         ch.num[2] = E
         ch.num[3] = V
 
@@ -471,7 +479,7 @@ def _begin(k, Q, C, R, M, plan, X, O, ch):
     ch.num[1] = V
     ch.num[2] = ch.num[0]
     ch.num[3] = V
-    ch.best[:] = x
+    _copy(ch.best, x)
     for p in range(ch.dd.size):
         ch.dd[p] = 0
     ch.sched[0] = 0.0
@@ -516,7 +524,7 @@ def advance(Q, C, R, M, plan, X, O, ch, pos, end, budget, tol, sweeps_out):
             pos[1] += 1
             used += per_sweep
         if ch.sched[0] > 1.0 if plan.timed else pos[1] >= plan.sweeps:
-            X[k, :] = ch.best
+            _copy(X[k], ch.best)
             sweeps_out[k] = pos[1]
             pos[0] += 1
             pos[1] = 0

@@ -43,9 +43,9 @@ __all__ = ["EXPECTED_COLD_SECONDS", "is_cached", "is_warm", "warm_up", "cold_not
 
 #: Seconds a cold compile of every search kernel takes on 2 otherwise idle cores (the wall
 #: time of a cold ``warm_up()``, measured with ``python -m bench.compile`` on a quiet
-#: machine: 20.7 s on 2026-12-04, bench/RESULTS.md); the notice quotes this figure. A
+#: machine: 16.6 s on 2026-12-04, bench/RESULTS.md); the notice quotes this figure. A
 #: loaded machine takes longer: the measured wall time stands beside it in the table.
-EXPECTED_COLD_SECONDS = 21.0
+EXPECTED_COLD_SECONDS = 17.0
 
 _ROOT = Path(__file__).resolve().parents[1]  # the repair package
 #: sources whose kernels warm_up compiles: a change to any of them invalidates the stamp
@@ -156,10 +156,10 @@ def _warm_family(name: str, *, helper: bool = False) -> None:
         module.warm_up()
 
 
-#: seconds each family takes to compile cold, one process after another on a quiet machine
-#: (``annealing``: its Metropolis kernels, the helper's way; the greedy pass an anneal ends
-#: with is greedy's); measured 2026-12-04 with a script timing each ``_warm_family`` call
-COMPILE_SECONDS = {"annealing": 16.8, "greedy": 13.2, "grow": 7.6, "scoring": 3.6}
+#: seconds each family takes to compile cold, each timed ``_warm_family`` call on a quiet
+#: machine, empty cache (``annealing``: its Metropolis and region kernels, the helper's way;
+#: the greedy pass an anneal ends with is greedy's); measured 2026-12-04
+COMPILE_SECONDS = {"annealing": 13.1, "greedy": 11.2, "grow": 9.1, "scoring": 3.1}
 
 
 def _split(families: tuple) -> tuple[tuple, tuple]:
@@ -167,8 +167,8 @@ def _split(families: tuple) -> tuple[tuple, tuple]:
     about even by :data:`COMPILE_SECONDS`: the longest first, each to the side with less so
     far. The helper always takes annealing (its Metropolis kernels, without the greedy pass
     that ends an anneal); this process then loads them and finds greedy compiled already.
-    The search kernels: greedy and scoring here, annealing there (16.8 s each); with grow:
-    greedy and grow here (20.8 s), annealing and scoring there (20.4 s)."""
+    The search kernels: greedy and scoring here (14.3 s), annealing there (13.1 s); with
+    grow: greedy and grow here (20.3 s), annealing and scoring there (16.2 s)."""
     if "annealing" not in families:
         return families, ()
     mine, theirs = [], ["annealing"]
