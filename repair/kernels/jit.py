@@ -44,7 +44,7 @@ from __future__ import annotations
 
 import numba as nb
 
-__all__ = ["kernel", "entry", "inline", "counted_kernel", "counted_entry"]
+__all__ = ["kernel", "entry", "inline", "counted_kernel", "counted_entry", "copy_into"]
 
 #: Inner kernels: no reference counting, no Python/C entry wrappers, not cached alone.
 kernel = nb.njit(_nrt=False, no_cpython_wrapper=True, no_cfunc_wrapper=True)
@@ -56,3 +56,11 @@ entry = nb.njit(cache=True, _nrt=False, nogil=True, no_cfunc_wrapper=True)
 #: (``np.empty``) or assign slices (``a[:] = b``, which may copy its source first).
 counted_kernel = nb.njit(no_cpython_wrapper=True, no_cfunc_wrapper=True)
 counted_entry = nb.njit(cache=True, nogil=True, no_cfunc_wrapper=True)
+
+
+@kernel
+def copy_into(dst, src):
+    """dst[:] = src (same length), as a loop: a slice assignment compiles numba's
+    shape-mismatch error path and its message formatting, seconds of every cold compile."""
+    for i in range(dst.size):
+        dst[i] = src[i]

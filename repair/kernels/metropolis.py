@@ -38,7 +38,7 @@ from typing import NamedTuple
 import numba as nb
 import numpy as np
 
-from flipfix.repair.kernels.jit import counted_entry, counted_kernel, kernel
+from flipfix.repair.kernels.jit import copy_into, counted_entry, counted_kernel, kernel
 from flipfix.repair.kernels.rows import row_viol
 
 __all__ = ["Moves", "Plan", "Chain", "advance", "flip_changes", "new_chain", "temperature",
@@ -136,14 +136,6 @@ def new_chain(n: int, P: int, T: int, m: int) -> Chain:
 
 
 # ------------------------------------------------------------------ randomness
-@nb.njit(cache=True, inline="always")
-def _copy(dst, src):
-    """dst[:] = src, element by element (same length): a slice assignment would compile
-    numba's shape-mismatch error path, seconds of a cold compile for nothing here."""
-    for i in range(src.size):
-        dst[i] = src[i]
-
-
 @nb.njit(cache=True, inline="always")
 def _mix(z):
     """splitmix64's output function (a bijection of uint64 with good avalanche)."""
@@ -417,7 +409,7 @@ def _close_sweep(R, M, plan, ch, tol):
     ch.num[1] = V
     E, bE, bV = ch.num[0], ch.num[2], ch.num[3]
     if V < bV - 1e-12 or (V <= bV + 1e-12 and E < bE - tol):
-        _copy(ch.best, ch.x)
+        copy_into(ch.best, ch.x)
         ch.num[2] = E
         ch.num[3] = V
 
@@ -479,7 +471,7 @@ def _begin(k, Q, C, R, M, plan, X, O, ch):
     ch.num[1] = V
     ch.num[2] = ch.num[0]
     ch.num[3] = V
-    _copy(ch.best, x)
+    copy_into(ch.best, x)
     for p in range(ch.dd.size):
         ch.dd[p] = 0
     ch.sched[0] = 0.0
@@ -524,7 +516,7 @@ def advance(Q, C, R, M, plan, X, O, ch, pos, end, budget, tol, sweeps_out):
             pos[1] += 1
             used += per_sweep
         if ch.sched[0] > 1.0 if plan.timed else pos[1] >= plan.sweeps:
-            _copy(X[k], ch.best)
+            copy_into(X[k], ch.best)
             sweeps_out[k] = pos[1]
             pos[0] += 1
             pos[1] = 0

@@ -172,12 +172,15 @@ def _split(families: tuple) -> tuple[tuple, tuple]:
     if "annealing" not in families:
         return families, ()
     mine, theirs = [], ["annealing"]
-    load = {"mine": 0.0, "theirs": COMPILE_SECONDS["annealing"]}
+    here, there = 0.0, COMPILE_SECONDS["annealing"]
     for f in sorted((f for f in families if f != "annealing"), key=COMPILE_SECONDS.get,
                     reverse=True):
-        side = "mine" if load["mine"] <= load["theirs"] else "theirs"
-        (mine if side == "mine" else theirs).append(f)
-        load[side] += COMPILE_SECONDS[f]
+        if here <= there:
+            mine.append(f)
+            here += COMPILE_SECONDS[f]
+        else:
+            theirs.append(f)
+            there += COMPILE_SECONDS[f]
     return (tuple(f for f in families if f in mine), tuple(f for f in families if f in theirs))
 
 

@@ -29,7 +29,7 @@ import numpy as np
 
 from flipfix.repair.kernels.batching import thread_pool
 from flipfix.repair.kernels.bundles import late_arrays
-from flipfix.repair.kernels.jit import counted_entry, entry, kernel
+from flipfix.repair.kernels.jit import copy_into, counted_entry, entry, kernel
 from flipfix.repair.lowering.compiled import Compiled
 
 __all__ = ["Scorer", "distances", "warm_up"]
@@ -43,14 +43,6 @@ SAMPLE = 256
 KEEP_ACTIVITIES = 20_000_000
 #: seconds one block of a library's scoring aims at when it runs to a deadline
 BLOCK_SECONDS = 0.005
-
-
-@kernel
-def _copy(dst, src):
-    """dst[:] = src, as a loop (a slice assignment brings numba's shape-mismatch message
-    formatting, a second of compilation, into the kernel)."""
-    for i in range(dst.size):
-        dst[i] = src[i]
 
 
 @kernel
@@ -195,8 +187,8 @@ def _library(X, done, first, stop, window, far, q, c, r, offset, e0, mis0, d0, a
         if nd > far:
             e0[k], mis0[k] = _scratch(x, q, c, r, offset, d0[k], a_act)
         else:
-            _copy(d0[k], d0[near])
-            _copy(a_act, act0[near])
+            copy_into(d0[k], d0[near])
+            copy_into(a_act, act0[near])
             e0[k], mis0[k] = _delta(x, X[near], diff, nd, e0[near], mis0[near], d0[k], a_act,
                                     q, c, r, stamp, k + 1, touched)
         cost[k], viol[k] = _total(e0[k], mis0[k], d0[k], a_act, c, r)
@@ -223,8 +215,8 @@ def _near(X, R, rows, scored, e0, mis0, d0, act0, q, c, r, offset, far, cost, vi
         if nd > far or not keep or rows[k] >= scored:
             e, mis = _scratch(x, q, c, r, offset, d, act)
         else:
-            _copy(d, d0[rows[k]])
-            _copy(act, act0[rows[k]])
+            copy_into(d, d0[rows[k]])
+            copy_into(act, act0[rows[k]])
             e, mis = _delta(x, a, diff, nd, e0[rows[k]], mis0[rows[k]], d, act, q, c, r,
                             stamp, k + 1, touched)
         cost[k], viol[k] = _total(e, mis, d, act, c, r)
